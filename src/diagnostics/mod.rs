@@ -1,0 +1,10 @@
+//! The diagnostics: pure functions on arrays and geometry.
+//!
+//! In: arrays (NaN where missing) and coordinates. Out: owned arrays. They do
+//! no I/O and log nothing; the same input gives the same bits out. Each
+//! function carries its equation and source in its doc comment and a
+//! closed-form test beside it.
+
+pub mod constants;
+pub mod stability;
+pub mod vorticity;

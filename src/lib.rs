@@ -1,0 +1,24 @@
+//! leeward turns GRIB2 numerical weather model output into the dynamical
+//! diagnostics forecasters read every cycle, computed on the model's own grid
+//! and written as CF-convention NetCDF.
+//!
+//! These diagnostics are guidance for trained forecasters, not warnings. Local
+//! procedures and the responsible national meteorological service take
+//! precedence.
+//!
+//! # Layout
+//! - [`config`]: the TOML file, defaults, validation naming each key.
+//! - [`ingest`]: GRIB2 bytes to a catalogue of fields, grids and decoded values.
+//! - [`geometry`]: grids, projections and derivative operators; no GRIB, no NetCDF.
+//! - [`diagnostics`]: pure functions, each written as its formula.
+//! - [`output`]: CF NetCDF files, written whole or not at all.
+//! - [`pipeline`]: one cycle step end to end, shared by `process` and the service.
+//! - [`cli`]: the command line, kept thin.
+
+pub mod cli;
+pub mod config;
+pub mod diagnostics;
+pub mod geometry;
+pub mod ingest;
+pub mod output;
+pub mod pipeline;

@@ -1,0 +1,374 @@
+//! CF-1.10 NetCDF-4 writing of one step's products.
+//!
+//! In: a [`StepProducts`] (grid, coordinates, times, data arrays, notes).
+//! Out: one NetCDF-4 file, written under a hidden temporary name in the target
+//! directory, fsynced, then renamed into place, so a reader never sees a
+//! partial file. On any error the temporary is removed and nothing already in
+//! the directory is touched.
+
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use chrono::NaiveDateTime;
+use ndarray::{Array2, Array3};
+use thiserror::Error;
+
+use super::variables::VarSpec;
+use crate::geometry::{Conformal, Earth, Grid, Horizontal};
+
+/// The netCDF default fill value for floats, used as `_FillValue`.
+pub const FILL_F32: f32 = 9.969_21e36;
+
+/// Why a file could not be written.
+#[derive(Debug, Error)]
+pub enum OutputError {
+    /// The netCDF library refused.
+    #[error("netCDF error writing {path}: {source}")]
+    NetCdf {
+        /// File being written.
+        path: PathBuf,
+        /// The library's error.
+        source: netcdf::Error,
+    },
+    /// The filesystem refused.
+    #[error("cannot write {path}: {source}")]
+    Io {
+        /// File or directory.
+        path: PathBuf,
+        /// The system's error.
+        source: std::io::Error,
+    },
+}
+
+/// Everything one output file holds.
+#[derive(Debug, Clone)]
+pub struct StepProducts {
+    /// Originating centre (common code table C-1).
+    pub centre: u16,
+    /// Reference time of the cycle.
+    pub reference_time: NaiveDateTime,
+    /// Valid time of the step.
+    pub valid_time: NaiveDateTime,
+    /// The grid.
+    pub grid: Grid,
+    /// Geographic latitudes of every point, degrees.
+    pub lat: Array2<f64>,
+    /// Geographic longitudes of every point, degrees.
+    pub lon: Array2<f64>,
+    /// Isobaric levels, Pa, in the order of the data's first axis.
+    pub levels: Vec<f64>,
+    /// Data variables on (level, row, column); NaN where missing.
+    pub fields: Vec<(VarSpec, Array3<f32>)>,
+    /// How levels below the ground were masked.
+    pub masking: String,
+    /// Whether the input winds were grid- or earth-relative.
+    pub winds: String,
+    /// Input file names.
+    pub inputs: Vec<String>,
+    /// deflate level 0-9.
+    pub deflate: i32,
+}
+
+/// Short name of a centre for file names (our own list; numbers from common code table C-1).
+pub fn centre_short_name(c: u16) -> String {
+    match c {
+        7 => "ncep".into(),
+        54 => "cmc".into(),
+        98 => "ecmwf".into(),
+        74 => "ukmo".into(),
+        78 => "dwd".into(),
+        34 => "jma".into(),
+        85 => "mfr".into(),
+        n => format!("c{n}"),
+    }
+}
+
+/// Institution name for a centre (common code table C-1).
+pub fn institution(c: u16) -> String {
+    match c {
+        7 => "US National Weather Service, National Centers for Environmental Prediction (NCEP)".into(),
+        54 => "Canadian Meteorological Service, Montreal".into(),
+        98 => "European Centre for Medium-Range Weather Forecasts (ECMWF)".into(),
+        74 => "UK Meteorological Office, Exeter".into(),
+        78 => "Deutscher Wetterdienst, Offenbach".into(),
+        34 => "Japan Meteorological Agency, Tokyo".into(),
+        85 => "Meteo-France, Toulouse".into(),
+        n => format!("originating centre {n} (WMO common code table C-1)"),
+    }
+}
+
+/// The file name for a step: `{centre}_{YYYYMMDD}T{HHMM}Z_{HHH}h.nc`.
+pub fn step_file_name(centre: u16, reference: NaiveDateTime, lead_hours: i64, grid_suffix: Option<usize>) -> String {
+    let g = grid_suffix.map(|n| format!("_g{n}")).unwrap_or_default();
+    format!(
+        "{}_{}_{:03}h{}.nc",
+        centre_short_name(centre),
+        reference.format("%Y%m%dT%H%MZ"),
+        lead_hours,
+        g
+    )
+}
+
+/// The caution every file and document carries.
+pub const CAUTION: &str = "These diagnostics are guidance for trained forecasters, not warnings. Local procedures and the responsible national meteorological service take precedence.";
+
+fn nc(path: &Path) -> impl Fn(netcdf::Error) -> OutputError + '_ {
+    move |source| OutputError::NetCdf { path: path.to_path_buf(), source }
+}
+
+fn earth_attrs(v: &mut netcdf::VariableMut<'_>, e: &Earth) -> netcdf::Result<()> {
+    if e.is_sphere() {
+        v.put_attribute("earth_radius", e.a)?;
+    } else {
+        v.put_attribute("semi_major_axis", e.a)?;
+        v.put_attribute("semi_minor_axis", e.b)?;
+    }
+    Ok(())
+}
+
+/// Write `p` to `dir/name` atomically (temporary, fsync, rename).
+pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, OutputError> {
+    let final_path = dir.join(name);
+    let tmp = dir.join(format!(".{name}.partial-{}", std::process::id()));
+    let result = write_file(&tmp, p).and_then(|()| {
+        let io = |path: &Path| {
+            let path = path.to_path_buf();
+            move |source| OutputError::Io { path, source }
+        };
+        fs::File::open(&tmp).and_then(|f| f.sync_all()).map_err(io(&tmp))?;
+        fs::rename(&tmp, &final_path).map_err(io(&final_path))?;
+        // Make the rename itself durable.
+        fs::File::open(dir).and_then(|d| d.sync_all()).map_err(io(dir))?;
+        Ok(())
+    });
+    if result.is_err() {
+        let _ = fs::remove_file(&tmp);
+    }
+    result.map(|()| final_path)
+}
+
+fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
+    let e = nc(path);
+    let mut f = netcdf::create(path).map_err(&e)?;
+    let (ny, nx) = p.grid.shape();
+    let nz = p.levels.len();
+
+    // Global attributes.
+    f.add_attribute("Conventions", "CF-1.10").map_err(&e)?;
+    f.add_attribute("title", "leeward dynamical diagnostics on isobaric levels").map_err(&e)?;
+    f.add_attribute("institution", institution(p.centre).as_str()).map_err(&e)?;
+    f.add_attribute(
+        "source",
+        format!(
+            "GRIB2 output of {} on a {} grid, processed by leeward {}",
+            institution(p.centre),
+            p.grid.describe(),
+            env!("CARGO_PKG_VERSION")
+        )
+        .as_str(),
+    )
+    .map_err(&e)?;
+    f.add_attribute(
+        "history",
+        format!(
+            "{} leeward {}: diagnostics computed on the model grid from {}",
+            chrono::Utc::now().format("%Y-%m-%dT%H:%M:%SZ"),
+            env!("CARGO_PKG_VERSION"),
+            p.inputs.join(", ")
+        )
+        .as_str(),
+    )
+    .map_err(&e)?;
+    f.add_attribute(
+        "references",
+        "WMO-No. 306 Manual on Codes (GRIB2); CF Conventions 1.10; Holton, An Introduction to Dynamic Meteorology; Bluestein 1992, Synoptic-Dynamic Meteorology in Midlatitudes; Snyder 1987, USGS Professional Paper 1395",
+    )
+    .map_err(&e)?;
+    f.add_attribute("comment", CAUTION).map_err(&e)?;
+    f.add_attribute("leeward_below_ground_masking", p.masking.as_str()).map_err(&e)?;
+    f.add_attribute("leeward_wind_components", p.winds.as_str()).map_err(&e)?;
+
+    // Dimensions and horizontal coordinates.
+    let (ydim, xdim, aux_latlon) = match &p.grid.horizontal {
+        Horizontal::LatLon { .. } => ("lat", "lon", false),
+        Horizontal::Rotated { .. } => ("rlat", "rlon", true),
+        Horizontal::Projected { .. } => ("y", "x", true),
+    };
+    f.add_dimension("time", 1).map_err(&e)?;
+    f.add_dimension("pressure", nz).map_err(&e)?;
+    f.add_dimension(ydim, ny).map_err(&e)?;
+    f.add_dimension(xdim, nx).map_err(&e)?;
+
+    let hours_since = format!("hours since {}", p.reference_time.format("%Y-%m-%d %H:%M:%S"));
+    let lead_h = (p.valid_time - p.reference_time).num_seconds() as f64 / 3600.0;
+    {
+        let mut v = f.add_variable::<f64>("time", &["time"]).map_err(&e)?;
+        v.put_attribute("standard_name", "time").map_err(&e)?;
+        v.put_attribute("long_name", "valid time").map_err(&e)?;
+        v.put_attribute("units", hours_since.as_str()).map_err(&e)?;
+        v.put_attribute("calendar", "proleptic_gregorian").map_err(&e)?;
+        v.put_attribute("axis", "T").map_err(&e)?;
+        v.put_values(&[lead_h], ..).map_err(&e)?;
+    }
+    {
+        let mut v = f.add_variable::<f64>("reference_time", &[]).map_err(&e)?;
+        v.put_attribute("standard_name", "forecast_reference_time").map_err(&e)?;
+        v.put_attribute("long_name", "reference time of the model cycle").map_err(&e)?;
+        v.put_attribute("units", hours_since.as_str()).map_err(&e)?;
+        v.put_attribute("calendar", "proleptic_gregorian").map_err(&e)?;
+        v.put_value(0.0f64, ..).map_err(&e)?;
+    }
+    {
+        let mut v = f.add_variable::<f64>("lead_time", &[]).map_err(&e)?;
+        v.put_attribute("standard_name", "forecast_period").map_err(&e)?;
+        v.put_attribute("long_name", "time since the reference time").map_err(&e)?;
+        v.put_attribute("units", "hours").map_err(&e)?;
+        v.put_value(lead_h, ..).map_err(&e)?;
+    }
+    {
+        let mut v = f.add_variable::<f64>("pressure", &["pressure"]).map_err(&e)?;
+        v.put_attribute("standard_name", "air_pressure").map_err(&e)?;
+        v.put_attribute("long_name", "pressure of the isobaric level").map_err(&e)?;
+        v.put_attribute("units", "Pa").map_err(&e)?;
+        v.put_attribute("positive", "down").map_err(&e)?;
+        v.put_attribute("axis", "Z").map_err(&e)?;
+        v.put_values(&p.levels, ..).map_err(&e)?;
+    }
+
+    // Grid mapping and horizontal coordinates.
+    {
+        let mut v = f.add_variable::<i32>("crs", &[]).map_err(&e)?;
+        match &p.grid.horizontal {
+            Horizontal::LatLon { .. } => {
+                v.put_attribute("grid_mapping_name", "latitude_longitude").map_err(&e)?;
+            }
+            Horizontal::Rotated { pole, .. } => {
+                let (plat, plon, pgl) = pole.cf_north_pole();
+                v.put_attribute("grid_mapping_name", "rotated_latitude_longitude").map_err(&e)?;
+                v.put_attribute("grid_north_pole_latitude", plat).map_err(&e)?;
+                v.put_attribute("grid_north_pole_longitude", plon).map_err(&e)?;
+                v.put_attribute("north_pole_grid_longitude", pgl).map_err(&e)?;
+            }
+            Horizontal::Projected { proj, .. } => {
+                match *proj {
+                    Conformal::Mercator { lat_ts, lon0 } => {
+                        v.put_attribute("grid_mapping_name", "mercator").map_err(&e)?;
+                        v.put_attribute("standard_parallel", lat_ts).map_err(&e)?;
+                        v.put_attribute("longitude_of_projection_origin", lon0).map_err(&e)?;
+                    }
+                    Conformal::PolarStereographic { north, lat_ts, lon0 } => {
+                        v.put_attribute("grid_mapping_name", "polar_stereographic").map_err(&e)?;
+                        v.put_attribute("straight_vertical_longitude_from_pole", lon0).map_err(&e)?;
+                        v.put_attribute("latitude_of_projection_origin", if north { 90.0 } else { -90.0 })
+                            .map_err(&e)?;
+                        // PROJ takes the hemisphere from the sign of standard_parallel.
+                        let sp = if north { lat_ts.abs() } else { -lat_ts.abs() };
+                        v.put_attribute("standard_parallel", sp).map_err(&e)?;
+                    }
+                    Conformal::Lambert { lat1, lat2, lat0, lon0 } => {
+                        v.put_attribute("grid_mapping_name", "lambert_conformal_conic").map_err(&e)?;
+                        // Always two values: with one, readers take the origin at that
+                        // parallel and drop latitude_of_projection_origin.
+                        v.put_attribute("standard_parallel", vec![lat1, lat2]).map_err(&e)?;
+                        v.put_attribute("longitude_of_central_meridian", lon0).map_err(&e)?;
+                        v.put_attribute("latitude_of_projection_origin", lat0).map_err(&e)?;
+                    }
+                }
+                v.put_attribute("false_easting", 0.0).map_err(&e)?;
+                v.put_attribute("false_northing", 0.0).map_err(&e)?;
+            }
+        }
+        earth_attrs(&mut v, &p.grid.earth).map_err(&e)?;
+    }
+    match &p.grid.horizontal {
+        Horizontal::LatLon { lat, lon, .. } => {
+            let mut v = f.add_variable::<f64>("lat", &["lat"]).map_err(&e)?;
+            v.put_attribute("standard_name", "latitude").map_err(&e)?;
+            v.put_attribute("long_name", "latitude").map_err(&e)?;
+            v.put_attribute("units", "degrees_north").map_err(&e)?;
+            v.put_attribute("axis", "Y").map_err(&e)?;
+            v.put_values(lat, ..).map_err(&e)?;
+            let mut v = f.add_variable::<f64>("lon", &["lon"]).map_err(&e)?;
+            v.put_attribute("standard_name", "longitude").map_err(&e)?;
+            v.put_attribute("long_name", "longitude").map_err(&e)?;
+            v.put_attribute("units", "degrees_east").map_err(&e)?;
+            v.put_attribute("axis", "X").map_err(&e)?;
+            v.put_values(lon, ..).map_err(&e)?;
+        }
+        Horizontal::Rotated { rlat, rlon, .. } => {
+            let mut v = f.add_variable::<f64>("rlat", &["rlat"]).map_err(&e)?;
+            v.put_attribute("standard_name", "grid_latitude").map_err(&e)?;
+            v.put_attribute("long_name", "latitude in the rotated grid").map_err(&e)?;
+            v.put_attribute("units", "degrees").map_err(&e)?;
+            v.put_attribute("axis", "Y").map_err(&e)?;
+            v.put_values(rlat, ..).map_err(&e)?;
+            let mut v = f.add_variable::<f64>("rlon", &["rlon"]).map_err(&e)?;
+            v.put_attribute("standard_name", "grid_longitude").map_err(&e)?;
+            v.put_attribute("long_name", "longitude in the rotated grid").map_err(&e)?;
+            v.put_attribute("units", "degrees").map_err(&e)?;
+            v.put_attribute("axis", "X").map_err(&e)?;
+            v.put_values(rlon, ..).map_err(&e)?;
+        }
+        Horizontal::Projected { x, y, .. } => {
+            let mut v = f.add_variable::<f64>("y", &["y"]).map_err(&e)?;
+            v.put_attribute("standard_name", "projection_y_coordinate").map_err(&e)?;
+            v.put_attribute("long_name", "y coordinate of the projection").map_err(&e)?;
+            v.put_attribute("units", "m").map_err(&e)?;
+            v.put_attribute("axis", "Y").map_err(&e)?;
+            v.put_values(y, ..).map_err(&e)?;
+            let mut v = f.add_variable::<f64>("x", &["x"]).map_err(&e)?;
+            v.put_attribute("standard_name", "projection_x_coordinate").map_err(&e)?;
+            v.put_attribute("long_name", "x coordinate of the projection").map_err(&e)?;
+            v.put_attribute("units", "m").map_err(&e)?;
+            v.put_attribute("axis", "X").map_err(&e)?;
+            v.put_values(x, ..).map_err(&e)?;
+        }
+    }
+    if aux_latlon {
+        for (name, std, units, arr) in [
+            ("lat", "latitude", "degrees_north", &p.lat),
+            ("lon", "longitude", "degrees_east", &p.lon),
+        ] {
+            let mut v = f.add_variable::<f64>(name, &[ydim, xdim]).map_err(&e)?;
+            v.put_attribute("standard_name", std).map_err(&e)?;
+            v.put_attribute("long_name", std).map_err(&e)?;
+            v.put_attribute("units", units).map_err(&e)?;
+            v.set_compression(p.deflate, true).map_err(&e)?;
+            let data: Vec<f64> = arr.iter().copied().collect();
+            v.put_values(&data, ..).map_err(&e)?;
+        }
+    }
+
+    let coords = if aux_latlon {
+        "reference_time lead_time lat lon"
+    } else {
+        "reference_time lead_time"
+    };
+    for (spec, data) in &p.fields {
+        let mut v = f
+            .add_variable::<f32>(spec.name, &["time", "pressure", ydim, xdim])
+            .map_err(&e)?;
+        v.set_fill_value(FILL_F32).map_err(&e)?;
+        if p.deflate > 0 {
+            v.set_compression(p.deflate, true).map_err(&e)?;
+        }
+        v.set_chunking(&[1, 1, ny, nx]).map_err(&e)?;
+        if let Some(s) = spec.standard_name {
+            v.put_attribute("standard_name", s).map_err(&e)?;
+        }
+        v.put_attribute("long_name", spec.long_name).map_err(&e)?;
+        v.put_attribute("units", spec.units).map_err(&e)?;
+        v.put_attribute("grid_mapping", "crs").map_err(&e)?;
+        v.put_attribute("coordinates", coords).map_err(&e)?;
+        v.put_attribute("comment", spec.formula).map_err(&e)?;
+        for (k, level) in data.outer_iter().enumerate() {
+            let buf: Vec<f32> = level
+                .iter()
+                .map(|&x| if x.is_finite() { x } else { FILL_F32 })
+                .collect();
+            v.put_values(&buf, (0, k, .., ..)).map_err(&e)?;
+        }
+    }
+    f.close().map_err(&e)?;
+    Ok(())
+}
