@@ -63,6 +63,16 @@ pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError>
     }
     let template = f.data_template;
     let n = f.num_points;
+    let mut s5 = s5;
+    // Octet 21 of these templates, type of original field values (code table 5.1),
+    // only says whether the producer held floats or integers; the unpacking
+    // Y = (R + X 2^E) / 10^D is the same, but the crate refuses "integer".
+    if matches!(template, 0 | 2 | 3 | 40 | 41 | 42) && s5.get(20) == Some(&1) {
+        s5[20] = 0;
+    }
+    if let Some(v) = constant_field(template, &s5, &s6, n) {
+        return Ok(v);
+    }
     let run = || -> Result<Vec<f32>, String> {
         let dec = grib::Grib2SubmessageDecoder::new(n, s5, s6, s7).map_err(|e| e.to_string())?;
         let vals = dec.dispatch().map_err(|e| e.to_string())?;
@@ -82,6 +92,36 @@ pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError>
         return Err(DecodeError::Count { got: values.len(), want: n });
     }
     Ok(values)
+}
+
+/// A field packed with zero bits per value holds one value everywhere:
+/// Y = R / 10^D (WMO-No. 306, templates 5.0-5.3 and 5.40-5.42 share octets
+/// 12-20: reference value R, binary scale E, decimal scale D, bits per value).
+/// Section 7 is then empty, which the crate's complex-packing decoder refuses.
+fn constant_field(template: u16, s5: &[u8], s6: &[u8], n: usize) -> Option<Vec<f32>> {
+    use super::bytes::{f32_at, u16_at, u8_at};
+    if !matches!(template, 0 | 2 | 3 | 40 | 41 | 42) || u8_at(s5, 19)? != 0 {
+        return None;
+    }
+    let r = f64::from(f32_at(s5, 11)?);
+    let d = u16_at(s5, 17)?;
+    let d = if d & 0x8000 != 0 { -i32::from(d & 0x7fff) } else { i32::from(d) };
+    let value = (r / 10f64.powi(d)) as f32;
+    match u8_at(s6, 5)? {
+        255 => Some(vec![value; n]),
+        0 => {
+            let bits = s6.get(6..)?;
+            if bits.len() * 8 < n {
+                return None;
+            }
+            Some(
+                (0..n)
+                    .map(|k| if bits[k / 8] & (0x80 >> (k % 8)) != 0 { value } else { f32::NAN })
+                    .collect(),
+            )
+        }
+        _ => None,
+    }
 }
 
 /// Decode one field and put its values in leeward's orientation.

@@ -347,18 +347,19 @@ def geometry(grid: Grid) -> Geometry:
 def east_north_in_grid_axes(grid: Grid, geo: Geometry):
     """Unit vectors of local east and north expressed in the grid's (x, y) axes.
 
-    Computed numerically with pyproj: the point itself and a point a few metres east
-    (north) of it are both projected, and the difference is normalised. For rotated grids
-    the "projection" is the rotated sphere (rlon, rlat), whose local x axis is
-    cos(rlat) d rlon. Returns (ex, ey, nx, ny), each shaped like geo.lat.
+    Computed numerically with pyproj: two points a few metres apart along the parallel
+    (meridian), centred on the grid point, are projected and their difference normalised.
+    For rotated grids the "projection" is the rotated sphere (rlon, rlat), whose local
+    x axis is cos(rlat) d rlon. Returns (ex, ey, nx, ny), each shaped like geo.lat.
     """
     lat, lon = geo.lat, geo.lon
     a = grid.earth_radius
-    step = 5.0  # metres
-    dlam = np.degrees(step / (a * np.maximum(np.cos(np.radians(lat)), 1e-12)))
-    dphi = np.degrees(step / a)
-    # Near the north (south) pole step southward (northward) and flip the sign.
-    nsign = np.where(lat + dphi > 90.0, -1.0, 1.0)
+    step = 2.0  # metres
+    half_lam = 0.5 * np.degrees(step / (a * np.maximum(np.cos(np.radians(lat)), 1e-12)))
+    half_phi = 0.5 * np.degrees(step / a)
+    # Within a step of a pole, use the one-sided pair that stays on the sphere.
+    n_hi = np.minimum(lat + half_phi, 90.0)
+    n_lo = np.maximum(lat - half_phi, -90.0)
     if grid.kind == "rotated_ll":
         fwd = pyproj.Transformer.from_crs(grid.sphere_crs(), grid.rotated_crs(), always_xy=True)
 
@@ -366,21 +367,23 @@ def east_north_in_grid_axes(grid: Grid, geo: Geometry):
             rlo, rla = fwd.transform(lo, la)
             return np.radians(np.asarray(rlo)), np.radians(np.asarray(rla))
 
-        x0, y0 = proj(lon, lat)
-        xe, ye = proj(lon + dlam, lat)
-        xn, yn = proj(lon, lat + nsign * dphi)
-        dxe = np.angle(np.exp(1j * (xe - x0))) * np.cos(y0)
-        dye = ye - y0
-        dxn = nsign * np.angle(np.exp(1j * (xn - x0))) * np.cos(y0)
-        dyn = nsign * (yn - y0)
+        _, y0 = proj(lon, lat)
+        xe1, ye1 = proj(lon - half_lam, lat)
+        xe2, ye2 = proj(lon + half_lam, lat)
+        xn1, yn1 = proj(lon, n_lo)
+        xn2, yn2 = proj(lon, n_hi)
+        dxe = np.angle(np.exp(1j * (xe2 - xe1))) * np.cos(y0)
+        dye = ye2 - ye1
+        dxn = np.angle(np.exp(1j * (xn2 - xn1))) * np.cos(y0)
+        dyn = yn2 - yn1
     else:
-        crs = grid.proj_crs()
-        fwd = pyproj.Transformer.from_crs(grid.sphere_crs(), crs, always_xy=True)
-        x0, y0 = (np.asarray(v) for v in fwd.transform(lon, lat))
-        xe, ye = (np.asarray(v) for v in fwd.transform(lon + dlam, lat))
-        xn, yn = (np.asarray(v) for v in fwd.transform(lon, lat + nsign * dphi))
-        dxe, dye = xe - x0, ye - y0
-        dxn, dyn = nsign * (xn - x0), nsign * (yn - y0)
+        fwd = pyproj.Transformer.from_crs(grid.sphere_crs(), grid.proj_crs(), always_xy=True)
+        xe1, ye1 = (np.asarray(v) for v in fwd.transform(lon - half_lam, lat))
+        xe2, ye2 = (np.asarray(v) for v in fwd.transform(lon + half_lam, lat))
+        xn1, yn1 = (np.asarray(v) for v in fwd.transform(lon, n_lo))
+        xn2, yn2 = (np.asarray(v) for v in fwd.transform(lon, n_hi))
+        dxe, dye = xe2 - xe1, ye2 - ye1
+        dxn, dyn = xn2 - xn1, yn2 - yn1
     ne = np.hypot(dxe, dye)
     nn = np.hypot(dxn, dyn)
     return dxe / ne, dye / ne, dxn / nn, dyn / nn

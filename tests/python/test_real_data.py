@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import pyproj  # noqa: F401  (before ecCodes)
 import numpy as np
-import pytest
 
 import gribgen
 from conftest import FIGURES, single_product

@@ -1,0 +1,322 @@
+"""CF conformance of every NetCDF file leeward writes in the closed-form and real-data runs.
+
+Outside references: the IOOS compliance checker (PyPI compliance-checker, CF 1.9 suite with
+its bundled standard name table), netCDF4-python and xarray as a downstream reader opens the
+files, pyproj's CRS.from_cf for the grid mapping (CF 1.10 section 5.6 and appendix F), and
+ecCodes for the geography of the GRIB input.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import shutil
+import subprocess
+
+import pyproj  # first: PROJ before ecCodes in this process
+import netCDF4
+import numpy as np
+import pytest
+import xarray as xr
+
+import gribgen
+from conftest import FIGURES, REAL_SAMPLES, samples_path, single_product
+from ncproducts import NC_FILL_FLOAT, align_to_product, read_product
+
+CASES = gribgen.closed_form_cases()
+PRODUCTS = [("closed", n) for n in CASES] + [("real", n) for n in REAL_SAMPLES]
+IDS = [f"{k}-{n}" for k, n in PRODUCTS]
+
+#: CF grid_mapping_name for each ecCodes gridType (CF 1.10 appendix F).
+GRID_MAPPING = {
+    "regular_ll": "latitude_longitude",
+    "regular_gg": "latitude_longitude",
+    "rotated_ll": "rotated_latitude_longitude",
+    "mercator": "mercator",
+    "polar_stereographic": "polar_stereographic",
+    "lambert": "lambert_conformal_conic",
+}
+#: Centre short names in file names (output contract); WMO common code table C-11 numbers.
+CENTRE_NAMES = {7: "ncep", 54: "cmc", 98: "ecmwf"}
+
+#: Data variables: (units, standard_name or None) from the output contract; the standard
+#: names are those of the CF Standard Name Table (REFERENCES.md).
+DATA_VARS = {
+    "zeta": ("s-1", "atmosphere_upward_relative_vorticity"),
+    "eta": ("s-1", "atmosphere_upward_absolute_vorticity"),
+    "theta": ("K", "air_potential_temperature"),
+    "stab": ("K Pa-1", None),
+    "n2": ("s-2", "square_of_brunt_vaisala_frequency_in_air"),
+}
+
+
+def _run_for(request, kind, name):
+    runs = request.getfixturevalue("closed_form_runs" if kind == "closed" else "real_runs")
+    return runs.get(name)
+
+
+def _input_for(request, kind, name):
+    if kind == "closed":
+        return request.getfixturevalue("closed_form_inputs")[name]
+    return request.getfixturevalue("samples_dir") / REAL_SAMPLES[name]
+
+
+def _first_field(path):
+    """The first isobaric u field of an input: its grid and times describe the product."""
+    for f in gribgen.read_fields(path):
+        if f["level_type"] == 100 and (f["category"], f["number"]) == gribgen.PARAM_U:
+            return f
+    raise AssertionError(f"{path}: no isobaric u field")
+
+
+def _products(request, kind, name):
+    run = _run_for(request, kind, name)
+    ok = (0,) if kind == "closed" else (0, 3)  # exit codes of the contract
+    assert run.returncode in ok, run.describe()
+    assert run.nc_files, f"no .nc written\n{run.describe()}"
+    return run, run.nc_files
+
+
+# ---------------------------------------------------------------------------------------
+# IOOS compliance checker, one run over every file
+# ---------------------------------------------------------------------------------------
+@pytest.fixture(scope="session")
+def compliance(request, closed_form_runs, tmp_path_factory):
+    files = []
+    for n in CASES:
+        files += closed_form_runs.get(n).nc_files
+    try:
+        real = request.getfixturevalue("real_runs")
+        for n in REAL_SAMPLES:
+            files += real.get(n).nc_files
+    except pytest.skip.Exception:
+        pass  # the real-data products' own tests show the skip
+    exe = shutil.which("compliance-checker")
+    assert exe, "compliance-checker not installed (tests/python/requirements.txt)"
+    out = tmp_path_factory.mktemp("compliance") / "report.json"
+    # --format=json_new: the checker's JSON form for several datasets in one report.
+    cp = subprocess.run([exe, "--test=cf:1.9", "--format=json_new", "-o", str(out), *map(str, files)],
+                        capture_output=True, text=True, timeout=600)
+    assert out.is_file(), f"compliance-checker wrote no report (exit {cp.returncode}):\n{cp.stderr[-3000:]}"
+    return json.loads(out.read_text())
+
+
+@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
+def test_compliance_checker_cf19(kind, name, request, compliance):
+    # IOOS compliance checker, CF 1.9 suite: no failed high-priority check; medium ones
+    # are printed in the summary.
+    _, files = _products(request, kind, name)
+    for path in files:
+        rep = compliance.get(str(path))
+        assert rep is not None, f"no compliance report for {path.name}"
+        cf = rep.get("cf:1.9")
+        assert cf is not None, f"{path.name}: report has no cf:1.9 section: {list(rep)}"
+        high = [(c["name"], c["msgs"]) for c in cf["high_priorities"]
+                if c["value"][0] < c["value"][1]]
+        medium = sorted({m for c in cf["medium_priorities"] if c["value"][0] < c["value"][1]
+                         for m in c["msgs"]})
+        for m in medium:
+            note = f"compliance-checker medium: {m}"
+            if note not in FIGURES:
+                FIGURES.append(note)
+        assert not high, f"{path.name}: high-priority CF failures: {high}"
+
+
+# ---------------------------------------------------------------------------------------
+# Structure as the contract states it, read with netCDF4-python
+# ---------------------------------------------------------------------------------------
+def _attrs(var):
+    return {k: var.getncattr(k) for k in var.ncattrs()}
+
+
+def _expected_radius(f):
+    """Sphere radius from GRIB2 code table 3.2 of the input (WMO-No. 306)."""
+    soe = f["shape_of_earth"]
+    if soe == 6:
+        return gribgen.RADIUS_SHAPE_6
+    if soe == 0:
+        return gribgen.RADIUS_SHAPE_0
+    if soe == 1:
+        grid = gribgen.closed_form_grids()["latlon_given_radius"]
+        return grid.radius
+    raise AssertionError(f"shape of earth {soe} not expected in these inputs")
+
+
+@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
+def test_netcdf_structure(kind, name, request):
+    run, files = _products(request, kind, name)
+    path = single_product(run)
+    field = _first_field(_input_for(request, kind, name))
+    with netCDF4.Dataset(path) as ds:
+        g = {k: ds.getncattr(k) for k in ds.ncattrs()}
+        assert g.get("Conventions") == "CF-1.10"
+        for key in ("title", "institution", "source", "history", "references",
+                    "leeward_below_ground_masking"):
+            assert isinstance(g.get(key), str) and g[key].strip(), f"global attribute {key} missing or empty"
+        if kind == "closed":  # no surface pressure or orography in these inputs
+            assert g["leeward_below_ground_masking"].startswith("none"), g["leeward_below_ground_masking"]
+
+        assert ds.dimensions["time"].size == 1
+        t = ds["time"]
+        ta = _attrs(t)
+        assert t.dtype == np.float64 and t.dimensions == ("time",)
+        assert ta.get("units", "").startswith("hours since ")
+        assert ta.get("standard_name") == "time" and ta.get("axis") == "T"
+        assert ta.get("calendar") == "proleptic_gregorian"
+        rt, lt = ds["reference_time"], ds["lead_time"]
+        assert rt.dimensions == () and lt.dimensions == ()
+        assert _attrs(rt).get("standard_name") == "forecast_reference_time"
+        assert _attrs(rt).get("units", "").startswith("hours since ")
+        assert _attrs(lt).get("standard_name") == "forecast_period"
+        assert _attrs(lt).get("units") == "hours"
+
+        pr = ds["pressure"]
+        pa = _attrs(pr)
+        assert pr.dtype == np.float64 and pr.dimensions == ("pressure",)
+        assert (pa.get("units"), pa.get("standard_name"), pa.get("positive"), pa.get("axis")) == (
+            "Pa", "air_pressure", "down", "Z")
+
+        gt = field["grid_type"]
+        if gt in ("regular_ll", "regular_gg"):
+            hdims = ("lat", "lon")
+            assert ds["lat"].dimensions == ("lat",) and ds["lon"].dimensions == ("lon",)
+            assert (_attrs(ds["lat"]).get("units"), _attrs(ds["lat"]).get("standard_name")) == (
+                "degrees_north", "latitude")
+            assert (_attrs(ds["lon"]).get("units"), _attrs(ds["lon"]).get("standard_name")) == (
+                "degrees_east", "longitude")
+            aux = ()
+        elif gt == "rotated_ll":
+            hdims = ("rlat", "rlon")
+            assert (_attrs(ds["rlat"]).get("standard_name"), _attrs(ds["rlat"]).get("units")) == (
+                "grid_latitude", "degrees")
+            assert (_attrs(ds["rlon"]).get("standard_name"), _attrs(ds["rlon"]).get("units")) == (
+                "grid_longitude", "degrees")
+            aux = ("lat", "lon")
+        else:
+            hdims = ("y", "x")
+            assert (_attrs(ds["x"]).get("standard_name"), _attrs(ds["x"]).get("units")) == (
+                "projection_x_coordinate", "m")
+            assert (_attrs(ds["y"]).get("standard_name"), _attrs(ds["y"]).get("units")) == (
+                "projection_y_coordinate", "m")
+            aux = ("lat", "lon")
+        for a in aux:
+            assert ds[a].dimensions == hdims, f"{a} dims {ds[a].dimensions}"
+        assert (ds.dimensions[hdims[0]].size, ds.dimensions[hdims[1]].size) == (field["nj"], field["ni"])
+
+        crs = ds["crs"]
+        assert crs.dimensions == () and np.issubdtype(crs.dtype, np.integer)
+        ca = _attrs(crs)
+        assert ca.get("grid_mapping_name") == GRID_MAPPING[gt]
+        radius = _expected_radius(field)
+        got_r = ca.get("earth_radius", ca.get("semi_major_axis"))
+        assert got_r is not None, f"crs has no earth shape: {ca}"
+        assert abs(float(got_r) - radius) < 0.5, f"earth radius {got_r}, GRIB code table 3.2 says {radius}"
+        if "semi_minor_axis" in ca:
+            assert abs(float(ca["semi_minor_axis"]) - radius) < 0.5
+
+        for v, (units, sn) in DATA_VARS.items():
+            assert v in ds.variables, f"data variable {v} missing"
+            var = ds[v]
+            va = _attrs(var)
+            assert var.dtype == np.float32
+            assert var.dimensions == ("time", "pressure", *hdims)
+            assert np.float32(va.get("_FillValue")) == np.float32(NC_FILL_FLOAT), va.get("_FillValue")
+            assert va.get("units") == units, f"{v} units {va.get('units')}"
+            if sn:
+                assert va.get("standard_name") == sn
+            else:
+                assert "standard_name" not in va and va.get("long_name"), f"{v}: {va}"
+            assert va.get("grid_mapping") == "crs"
+            coords = str(va.get("coordinates", "")).split()
+            for c in ("reference_time", "lead_time", *aux):
+                assert c in coords, f"{v}: coordinates {coords} lack {c}"
+            var.set_auto_mask(False)
+            raw = var[:]
+            assert not np.isnan(raw).any(), f"{v}: NaN in the file (missing must be the fill value)"
+
+
+@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
+def test_file_name(kind, name, request):
+    # Output contract: {centre}_{YYYYMMDD}T{HHMM}Z_{HHH}h.nc, centre 7 ncep, 54 cmc,
+    # 98 ecmwf, else c{number}; values from ecCodes' reading of the input.
+    run, _ = _products(request, kind, name)
+    f = _first_field(_input_for(request, kind, name))
+    centre = CENTRE_NAMES.get(f["centre"], f"c{f['centre']}")
+    want = f"{centre}_{f['date']:08d}T{f['time']:04d}Z_{f['step']:03d}h.nc"
+    assert [p.name for p in run.nc_files] == [want]
+
+
+@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
+def test_xarray_decodes_times(kind, name, request):
+    # xarray decodes CF times as a downstream reader would; time = reference_time +
+    # lead_time, both as the GRIB input says (ecCodes).
+    run, _ = _products(request, kind, name)
+    f = _first_field(_input_for(request, kind, name))
+    with xr.open_dataset(single_product(run), decode_timedelta=True) as ds:
+        t = ds["time"].values
+        assert np.issubdtype(t.dtype, np.datetime64), t.dtype
+        ref = ds["reference_time"].values
+        lead = ds["lead_time"].values
+        assert np.issubdtype(lead.dtype, np.timedelta64), lead.dtype
+        assert t[0] == ref + lead
+        d, hm = f["date"], f["time"]
+        want_ref = np.datetime64(dt.datetime(d // 10000, d // 100 % 100, d % 100, hm // 100, hm % 100))
+        assert ref == want_ref, f"reference time {ref}, GRIB says {want_ref}"
+        assert lead == np.timedelta64(f["step"], "h"), f"lead time {lead}, GRIB says {f['step']} h"
+        for v in DATA_VARS:
+            assert ds[v].dtype == np.float32  # decoded with the fill value masked as NaN
+
+
+@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
+def test_geography_matches_ecCodes(kind, name, request):
+    # Latitudes and longitudes of the file against ecCodes' own geometry of the input,
+    # within 1e-4 degree (after re-ordering rows/columns south to north, west to east).
+    run, _ = _products(request, kind, name)
+    f = _first_field(_input_for(request, kind, name))
+    prod = read_product(single_product(run))
+    align_to_product(prod, f["lat"], f["lon"], tol_deg=1e-4)
+
+
+def _geographic(crs: pyproj.CRS) -> pyproj.CRS:
+    e = crs.ellipsoid
+    return pyproj.CRS.from_proj4(f"+proj=longlat +a={e.semi_major_metre} +b={e.semi_minor_metre} +no_defs")
+
+
+@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
+def test_grid_mapping_reproduces_coordinates(kind, name, request):
+    # pyproj.CRS.from_cf(attributes of crs) (CF 1.10 appendix F, as PROJ reads it) must
+    # give back the file's own 2-D latitudes and longitudes from its x/y (rlon/rlat),
+    # within 1e-4 degree; on lat/lon grids the CRS must be geographic with the right sphere.
+    run, _ = _products(request, kind, name)
+    path = single_product(run)
+    with netCDF4.Dataset(path) as ds:
+        attrs = _attrs(ds["crs"])
+        crs = pyproj.CRS.from_cf(attrs)
+        lat = np.ma.filled(ds["lat"][:].astype(float), np.nan)
+        lon = np.ma.filled(ds["lon"][:].astype(float), np.nan)
+        if "x" in ds.dimensions:
+            xs, ys = ds["x"][:].astype(float), ds["y"][:].astype(float)
+            fwd_tol = 11.0  # metres, about 1e-4 degree
+        elif "rlat" in ds.dimensions:
+            xs, ys = ds["rlon"][:].astype(float), ds["rlat"][:].astype(float)
+            fwd_tol = 1e-4  # degrees of the rotated sphere
+        else:
+            assert crs.is_geographic, crs
+            field = _first_field(_input_for(request, kind, name))
+            assert abs(crs.ellipsoid.semi_major_metre - _expected_radius(field)) < 0.5
+            return
+    xx, yy = np.meshgrid(xs, ys)
+    geo = _geographic(crs)
+    inv = pyproj.Transformer.from_crs(crs, geo, always_xy=True)
+    lo, la = (np.asarray(v) for v in inv.transform(xx, yy))
+    dlat = np.nanmax(np.abs(la - lat))
+    away = np.abs(lat) < 89.99
+    dlon = np.nanmax(np.abs((lo - lon + 180.0) % 360.0 - 180.0)[away])
+    assert dlat <= 1e-4 and dlon <= 1e-4, (
+        f"{path.name}: CRS.from_cf({attrs}) maps x/y to lat/lon off by {dlat:.2e} / {dlon:.2e} degree")
+    # and forward: the file's lat/lon -> its x/y (rlon/rlat)
+    fwd = pyproj.Transformer.from_crs(geo, crs, always_xy=True)
+    x2, y2 = (np.asarray(v) for v in fwd.transform(lon, lat))
+    dx = np.nanmax(np.abs(x2 - xx)) if fwd_tol > 1 else np.nanmax(np.abs((x2 - xx + 180) % 360 - 180))
+    dy = np.nanmax(np.abs(y2 - yy))
+    assert dx <= fwd_tol and dy <= fwd_tol, f"{path.name}: lat/lon -> x/y off by {dx:.3g}, {dy:.3g}"
