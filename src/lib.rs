@@ -13,10 +13,12 @@
 //! - [`diagnostics`]: pure functions, each written as its formula.
 //! - [`output`]: CF NetCDF files, written whole or not at all.
 //! - [`pipeline`]: one cycle step end to end, shared by `process` and the service.
+//! - [`demo`]: an invented scenario written as GRIB2 by our own encoder.
 //! - [`cli`]: the command line, kept thin.
 
 pub mod cli;
 pub mod config;
+pub mod demo;
 pub mod diagnostics;
 pub mod geometry;
 pub mod ingest;

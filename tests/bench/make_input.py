@@ -51,13 +51,11 @@ USSA_P0 = 1013.25
 
 def ussa1976_temperature(p_hpa: float) -> float:
     """US Standard Atmosphere 1976 temperature at pressure p (hPa), 0 to 32 km."""
-    # Layer bases: (pressure hPa, temperature K, lapse rate K/m), each pressure following
-    # from the layer below with the hydrostatic equation.
-    layers = [(USSA_P0, USSA_T0, -0.0065), (None, 216.65, 0.0), (None, 216.65, 0.001)]
-    tops_m = [11000.0, 20000.0, 32000.0]
-    base_p, base_t = USSA_P0, USSA_T0
-    base_z = 0.0
-    for (_, _, lapse), top in zip(layers, tops_m):
+    # Layers up to 32 km: (lapse rate K/m, top in geopotential metres); each layer's base
+    # pressure follows from the layer below with the hydrostatic equation.
+    layers = [(-0.0065, 11000.0), (0.0, 20000.0), (0.001, 32000.0)]
+    base_p, base_t, base_z = USSA_P0, USSA_T0, 0.0
+    for lapse, top in layers:
         dz = top - base_z
         if lapse != 0.0:
             top_t = base_t + lapse * dz

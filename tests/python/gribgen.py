@@ -16,7 +16,6 @@ two PROJ libraries can clash (see the practical notes in the project's reference
 from __future__ import annotations
 
 import dataclasses
-import math
 from pathlib import Path
 from typing import Sequence
 
@@ -43,12 +42,16 @@ T0 = 288.15
 GAMMA = 0.0065
 P0 = 101325.0
 
-#: Amplitude of the solid-body zonal flow, m s-1 (Williamson et al. 1992 use about 38.6).
+#: Amplitude of the solid-body zonal flow, m s-1 (Williamson et al. 1992 use about 38.6,
+#: one revolution in 12 days; from memory).
 U0 = 40.0
 
 #: Default isobaric levels (hPa): unevenly spaced on purpose, so that the vertical
 #: differences are the non-uniform kind; 850, 500 and 300 hPa carry standard-atmosphere checks.
 DEFAULT_LEVELS_HPA = (1000, 925, 850, 700, 600, 500, 400, 300, 250, 200)
+
+#: Closely spaced levels (hPa) for the column checks.
+DENSE_LEVELS_HPA = tuple(range(1000, 499, -25)) + tuple(range(480, 299, -20)) + tuple(range(290, 199, -10))
 
 #: WMO code table 4.2, discipline 0 (meteorological): (parameterCategory, parameterNumber).
 PARAM_T = (0, 0)  # temperature, K
@@ -571,6 +574,9 @@ def closed_form_grids() -> dict[str, Grid]:
     g["lambert_secant_30_60"] = projected("lambert_secant_30_60", "lambert", 111, 91, 40000.0,
                                           40000.0, 50.0, 10.0, lad=30.0, lov=10.0, latin1=30.0,
                                           latin2=60.0)
+    # A small 1 degree grid for the column checks on closely spaced levels.
+    g["latlon_small_1p0"] = regular_ll("latlon_small_1p0", 60.0, 40.0, 0.0, 21, 1.0, 1.0,
+                                       north_to_south=True)
     # A global 2.5 degree grid whose shape of the earth is code 1 (radius given by the
     # producer), with a radius far from Earth's, so that a fixed radius would show.
     g["latlon_given_radius"] = Grid("latlon_given_radius", "regular_ll",
@@ -601,13 +607,18 @@ def closed_form_cases() -> dict[str, dict]:
                                      times=t)
     c["latlon_given_radius"] = dict(grid="latlon_given_radius", grid_relative=False, centre=98,
                                     times=t)
+    # Closely spaced levels, 1000 to 200 hPa (25, 20 then 10 hPa apart): a three-point
+    # difference in p or in ln p is then within 0.25% of the exact derivative.
+    c["column_dense_levels"] = dict(grid="latlon_small_1p0", grid_relative=False, centre=98, times=t,
+                                    levels=DENSE_LEVELS_HPA)
     # Geometry cases carry 24-bit simple packing, so that quantisation stays far below the
     # closed-form tolerances; the packing cases use 16 bits, a common operational choice.
     for v in c.values():
         v.setdefault("bits", 24)
+        v.setdefault("levels", DEFAULT_LEVELS_HPA)
     for pk in PACKINGS:
         c[f"packing_{pk}"] = dict(grid="latlon_europe_1p0", grid_relative=False, centre=98, times=t,
-                                  packing=pk, bits=16)
+                                  packing=pk, bits=16, levels=DEFAULT_LEVELS_HPA)
     return c
 
 
@@ -692,7 +703,7 @@ def build_all(outdir) -> dict[str, Path]:
         paths[name] = solid_body(
             outdir / f"{name}.grib2", grid, grid_relative=case["grid_relative"],
             packing=case.get("packing", "grid_simple"), times=case["times"], centre=case["centre"],
-            bits=case["bits"],
+            bits=case["bits"], levels_hpa=case["levels"],
         )
     return paths
 

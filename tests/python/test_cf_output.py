@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import re
 import shutil
 import subprocess
 
@@ -20,7 +21,7 @@ import pytest
 import xarray as xr
 
 import gribgen
-from conftest import FIGURES, REAL_SAMPLES, samples_path, single_product
+from conftest import FIGURES, REAL_SAMPLES, single_product
 from ncproducts import NC_FILL_FLOAT, align_to_product, read_product
 
 CASES = gribgen.closed_form_cases()
@@ -37,7 +38,8 @@ GRID_MAPPING = {
     "lambert": "lambert_conformal_conic",
 }
 #: Centre short names in file names (output contract); WMO common code table C-11 numbers.
-CENTRE_NAMES = {7: "ncep", 54: "cmc", 98: "ecmwf"}
+#: leeward's short centre names (docs/output.md); numbers from WMO common code table C-11.
+CENTRE_NAMES = {7: "ncep", 54: "cmc", 98: "ecmwf", 74: "ukmo", 78: "dwd", 34: "jma", 85: "mfr"}
 
 #: Data variables: (units, standard_name or None) from the output contract; the standard
 #: names are those of the CF Standard Name Table (REFERENCES.md).
@@ -101,6 +103,48 @@ def compliance(request, closed_form_runs, tmp_path_factory):
     return json.loads(out.read_text())
 
 
+def _checker_table_defects() -> dict:
+    """Grid mappings whose required attributes the checker's own Appendix F table holds as
+    a bare string instead of a tuple (compliance-checker 6.1.0 has ("longitude_of_projection_origin")
+    for mercator): it then asks for one attribute per character. Returns name -> the
+    attribute really meant."""
+    try:
+        from compliance_checker.cf.appendix_f import grid_mapping_dict17
+    except ImportError:
+        return {}
+    return {k: v[0] for k, v in grid_mapping_dict17.items() if isinstance(v[0], str)}
+
+
+_SPURIOUS = re.compile(r"^(.) is a required attribute for grid mapping (\S+)$")
+
+
+def _real_failures(path, failed_checks):
+    """Drop the checker's one-character messages that come from its table defect, after
+    checking in the file that the attribute really meant is present."""
+    defects = _checker_table_defects()
+    out = []
+    for name, msgs in failed_checks:
+        keep = []
+        for m in msgs:
+            hit = _SPURIOUS.match(m)
+            if hit and hit.group(2) in defects and hit.group(1) in defects[hit.group(2)]:
+                with netCDF4.Dataset(path) as ds:
+                    gm = {ds[v].getncattr("grid_mapping") for v in DATA_VARS if v in ds.variables
+                          and "grid_mapping" in ds[v].ncattrs()}
+                    for g in gm:
+                        assert defects[hit.group(2)] in ds[g].ncattrs(), (
+                            f"{path.name}: grid mapping {g} lacks {defects[hit.group(2)]} (CF appendix F)")
+                note = (f"compliance-checker defect ignored: its appendix F table asks {hit.group(2)} "
+                        f"for one-character attributes; '{defects[hit.group(2)]}' checked present instead")
+                if note not in FIGURES:
+                    FIGURES.append(note)
+                continue
+            keep.append(m)
+        if keep:
+            out.append((name, keep))
+    return out
+
+
 @pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
 def test_compliance_checker_cf19(kind, name, request, compliance):
     # IOOS compliance checker, CF 1.9 suite: no failed high-priority check; medium ones
@@ -119,6 +163,7 @@ def test_compliance_checker_cf19(kind, name, request, compliance):
             note = f"compliance-checker medium: {m}"
             if note not in FIGURES:
                 FIGURES.append(note)
+        high = _real_failures(path, high)
         assert not high, f"{path.name}: high-priority CF failures: {high}"
 
 
@@ -148,6 +193,8 @@ def test_netcdf_structure(kind, name, request):
     path = single_product(run)
     field = _first_field(_input_for(request, kind, name))
     with netCDF4.Dataset(path) as ds:
+        # Global attributes: CF 1.10 section 2.6 (Conventions, title, institution, source,
+        # history, references); the masking note is leeward's output contract.
         g = {k: ds.getncattr(k) for k in ds.ncattrs()}
         assert g.get("Conventions") == "CF-1.10"
         for key in ("title", "institution", "source", "history", "references",
@@ -156,6 +203,8 @@ def test_netcdf_structure(kind, name, request):
         if kind == "closed":  # no surface pressure or orography in these inputs
             assert g["leeward_below_ground_masking"].startswith("none"), g["leeward_below_ground_masking"]
 
+        # Time: CF 1.10 section 4.4 (units "hours since", calendar), standard names time,
+        # forecast_reference_time, forecast_period (CF Standard Name Table).
         assert ds.dimensions["time"].size == 1
         t = ds["time"]
         ta = _attrs(t)
@@ -170,12 +219,15 @@ def test_netcdf_structure(kind, name, request):
         assert _attrs(lt).get("standard_name") == "forecast_period"
         assert _attrs(lt).get("units") == "hours"
 
+        # Vertical: CF 1.10 section 4.3, air_pressure in Pa, positive down.
         pr = ds["pressure"]
         pa = _attrs(pr)
         assert pr.dtype == np.float64 and pr.dimensions == ("pressure",)
         assert (pa.get("units"), pa.get("standard_name"), pa.get("positive"), pa.get("axis")) == (
             "Pa", "air_pressure", "down", "Z")
 
+        # Horizontal: CF 1.10 sections 4.1, 4.2 (latitude/longitude), 5.2 (2-D auxiliary
+        # coordinates), 5.6 and appendix F (projection and rotated-pole coordinates).
         gt = field["grid_type"]
         if gt in ("regular_ll", "regular_gg"):
             hdims = ("lat", "lon")
@@ -203,6 +255,7 @@ def test_netcdf_structure(kind, name, request):
             assert ds[a].dimensions == hdims, f"{a} dims {ds[a].dimensions}"
         assert (ds.dimensions[hdims[0]].size, ds.dimensions[hdims[1]].size) == (field["nj"], field["ni"])
 
+        # Grid mapping: CF 1.10 appendix F; the sphere from GRIB2 code table 3.2 of the input.
         crs = ds["crs"]
         assert crs.dimensions == () and np.issubdtype(crs.dtype, np.integer)
         ca = _attrs(crs)
@@ -214,6 +267,8 @@ def test_netcdf_structure(kind, name, request):
         if "semi_minor_axis" in ca:
             assert abs(float(ca["semi_minor_axis"]) - radius) < 0.5
 
+        # Data variables: float32, units and CF standard names (REFERENCES.md), netCDF
+        # default float fill as _FillValue, grid_mapping and coordinates (CF 1.10 5.6, 5).
         for v, (units, sn) in DATA_VARS.items():
             assert v in ds.variables, f"data variable {v} missing"
             var = ds[v]
@@ -238,7 +293,7 @@ def test_netcdf_structure(kind, name, request):
 @pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
 def test_file_name(kind, name, request):
     # Output contract: {centre}_{YYYYMMDD}T{HHMM}Z_{HHH}h.nc, centre 7 ncep, 54 cmc,
-    # 98 ecmwf, else c{number}; values from ecCodes' reading of the input.
+    # 98 ecmwf, ... (docs/output.md), else c{number}; values from ecCodes' reading of the input.
     run, _ = _products(request, kind, name)
     f = _first_field(_input_for(request, kind, name))
     centre = CENTRE_NAMES.get(f["centre"], f"c{f['centre']}")

@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 import gribgen
-from conftest import single_product
+from conftest import FIGURES, single_product
 from ncproducts import align_to_product, interior_mask, level_index, read_product
 
 CASES = gribgen.closed_form_cases()
@@ -84,8 +84,11 @@ def test_relative_vorticity_solid_body(case, closed_form_runs, closed_form_input
     mask = interior_mask(prod, lat.shape, edge=2, global_grid=glob)
     low = abs(gribgen.solid_body_zeta(LOW_LAT, gribgen.U0, a))
     assert "zeta" in prod.fields, f"{prod.path.name}: no zeta"
-    for k, p in enumerate(prod.pressure):
-        _compare(f"{case} zeta at {p / 100:g} hPa", prod.fields["zeta"][k], want, lat, mask, low)
+    worst = [_compare(f"{case} zeta at {p / 100:g} hPa", prod.fields["zeta"][k], want, lat, mask, low)
+             for k, p in enumerate(prod.pressure)]
+    FIGURES.append(f"closed form {case}: zeta max relative error {max(w[0] for w in worst):.2e}"
+                   + (f", max |error| below {LOW_LAT:g} deg {max(w[1] for w in worst):.1e} s-1"
+                      if any(w[1] for w in worst) else ""))
 
 
 @pytest.mark.parametrize("case", GEOMETRY_CASES)
@@ -161,7 +164,10 @@ def _uniform_column(prod, name):
     return np.array(out)
 
 
-STABILITY_CASES = ["latlon_europe_1p0", "lambert_tangent_25"]
+#: Realistic, unevenly spaced levels on two grids (tolerance follows the truncation of a
+#: three-point difference on those levels), and closely spaced levels (tolerance 0.5%
+#: interior, 2% at the end levels).
+STABILITY_CASES = ["latlon_europe_1p0", "lambert_tangent_25", "column_dense_levels"]
 
 
 @pytest.mark.parametrize("case", STABILITY_CASES)
@@ -263,6 +269,9 @@ def test_static_stability_closed_form(case, closed_form_runs, closed_form_inputs
         report.append(f"{p[k] / 100:g} hPa: stab {stab[k]:.5e} (want {want_stab[k]:.5e}, rel {rs:+.2e}), "
                       f"n2 {n2[k]:.5e} (want {want_n2[k]:.5e}, rel {rn:+.2e}), tol {tol[k]:.1e}")
     print("\n".join(report))
+    FIGURES.append(f"closed form {case}: stab/n2 max relative error "
+                   f"{max(max(abs(stab[k] / want_stab[k] - 1), abs(n2[k] / want_n2[k] - 1)) for k in range(len(p))):.2e}"
+                   f" (kappa from theta {kappa:.5f})")
     bad = [r for k, r in enumerate(report)
            if abs(stab[k] / want_stab[k] - 1) > tol[k] or abs(n2[k] / want_n2[k] - 1) > tol[k]]
     assert not bad, f"{case}: static stability off the closed form:\n" + "\n".join(bad)

@@ -44,7 +44,7 @@ def test_fields_levels_and_flags(case, decoded):
     c = CASES[case]
     fields = decoded[case]
     have = {(f["category"], f["number"], f["level"]) for f in fields}
-    for lev in gribgen.DEFAULT_LEVELS_HPA:
+    for lev in c["levels"]:
         for p in (gribgen.PARAM_T, gribgen.PARAM_GH, gribgen.PARAM_U, gribgen.PARAM_V):
             assert (*p, lev) in have
     grid = GRIDS[c["grid"]]

@@ -1,0 +1,27 @@
+#!/usr/bin/env bash
+# Makes sure the system libraries leeward builds against are present (Debian 12).
+# Installs them with apt-get when run as root; otherwise stops with the exact command.
+set -euo pipefail
+
+need=()
+command -v cargo >/dev/null 2>&1 || {
+  echo "leeward: the Rust toolchain is missing. Install it with:" >&2
+  echo "  curl --proto '=https' --tlsv1.2 -sSf https://sh.rustup.rs | sh" >&2
+  exit 1
+}
+command -v pkg-config >/dev/null 2>&1 || need+=(pkg-config)
+[ -e /usr/include/netcdf.h ] || need+=(libnetcdf-dev)
+command -v cc >/dev/null 2>&1 || need+=(build-essential)
+
+if [ ${#need[@]} -gt 0 ]; then
+  if [ "$(id -u)" = 0 ]; then
+    echo "leeward: installing ${need[*]} with apt-get" >&2
+    # apt-get update first: without it Debian 12 reports unmet libcurl dependencies.
+    DEBIAN_FRONTEND=noninteractive apt-get update -qq
+    DEBIAN_FRONTEND=noninteractive apt-get install -y -qq "${need[@]}" >/dev/null
+  else
+    echo "leeward: missing system packages. Install them with:" >&2
+    echo "  sudo apt-get update && sudo apt-get install -y ${need[*]}" >&2
+    exit 1
+  fi
+fi
