@@ -61,6 +61,12 @@ pub enum Command {
         #[arg(required = true)]
         inputs: Vec<PathBuf>,
     },
+    /// Write the invented demo scenario as GRIB2 and process it: shows leeward at work.
+    Demo {
+        /// Directory for the demo's input and products (default: a new one under the system temporary directory).
+        #[arg(long)]
+        dir: Option<PathBuf>,
+    },
 }
 
 fn init_logging(format: &str) {
@@ -85,6 +91,7 @@ pub fn main() -> ExitCode {
     init_logging(&cli.log_format);
     match cli.command {
         Command::Process { config, out, inputs } => ExitCode::from(process(config, out, inputs)),
+        Command::Demo { dir } => ExitCode::from(demo(dir)),
     }
 }
 
@@ -99,11 +106,14 @@ fn summary(r: &StepReport) {
     }
     match (&r.output, &r.skipped) {
         (Some(p), _) => line.push_str(&format!(
-            ": {} fields used, products {} -> {} ({:.2} s)",
+            ": {} fields used, products {} -> {} ({:.2} s: decode {:.2}, diagnostics {:.2}, write {:.2})",
             r.fields_used,
             r.products.join(" "),
             p.display(),
-            r.seconds
+            r.seconds,
+            r.decode_seconds,
+            r.compute_seconds,
+            r.write_seconds
         )),
         (None, Some(why)) => line.push_str(&format!(": nothing written: {why}")),
         (None, None) => line.push_str(": nothing written"),
@@ -197,4 +207,28 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     } else {
         exit::OK
     }
+}
+
+/// `leeward demo`: returns the exit code.
+pub fn demo(dir: Option<PathBuf>) -> u8 {
+    let dir = dir.unwrap_or_else(|| {
+        std::env::temp_dir().join(format!(
+            "leeward-demo-{}",
+            chrono::Utc::now().format("%Y%m%dT%H%M%S")
+        ))
+    });
+    let incoming = dir.join("incoming");
+    let products = dir.join("products");
+    println!("leeward demo: writing the invented scenario as GRIB2 into {}", incoming.display());
+    let inputs = match crate::demo::write_inputs(&incoming, &[0, 6, 12, 18, 24]) {
+        Ok(v) => v,
+        Err(e) => {
+            eprintln!("leeward: cannot write the demo input in {}: {e}", incoming.display());
+            return exit::NOTHING;
+        }
+    };
+    let code = process(None, products.clone(), inputs);
+    println!("leeward demo: products are in {}", products.display());
+    println!("    open them with any CF-aware reader, e.g. ncdump -h {}/*.nc", products.display());
+    code
 }

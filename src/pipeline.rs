@@ -215,6 +215,12 @@ pub struct StepReport {
     pub issues: Vec<Issue>,
     /// Wall time, seconds.
     pub seconds: f64,
+    /// Of which decoding the fields.
+    pub decode_seconds: f64,
+    /// Of which computing the diagnostics.
+    pub compute_seconds: f64,
+    /// Of which writing the file.
+    pub write_seconds: f64,
     /// Why nothing was written, when nothing was.
     pub skipped: Option<String>,
 }
@@ -398,8 +404,11 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
             wanted.push((Want::Orography, fr.clone()));
         }
     }
+    let t_decode = Instant::now();
     let mut dec = decode_all(wanted, inputs, &scan, &mut issues);
     rep.fields_used = dec.len();
+    rep.decode_seconds = t_decode.elapsed().as_secs_f64();
+    let t_compute = Instant::now();
 
     // Below-ground mask per level, from surface pressure or from orography and heights.
     let (ny, nx) = grid.shape();
@@ -526,6 +535,7 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
         fields.push((variables::N2, st.n2));
     }
     rep.products = fields.iter().map(|(s, _)| s.name.to_string()).collect();
+    rep.compute_seconds = t_compute.elapsed().as_secs_f64();
 
     let mut inputs_used: Vec<String> = step
         .fields
@@ -558,7 +568,10 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
     if let Some(m) = step.key.member {
         name = name.replace(".nc", &format!("_m{m:02}.nc"));
     }
-    match write_step(out_dir, &name, &products) {
+    let t_write = Instant::now();
+    let written = write_step(out_dir, &name, &products);
+    rep.write_seconds = t_write.elapsed().as_secs_f64();
+    match written {
         Ok(path) => {
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");
             rep.output = Some(path);

@@ -30,7 +30,7 @@ impl GridSpec {
 /// One field to encode.
 #[derive(Debug, Clone)]
 pub struct Message<'a> {
-    /// Originating centre (common code table C-1).
+    /// Originating centre (common code table C-11).
     pub centre: u16,
     /// Reference time.
     pub reference: NaiveDateTime,

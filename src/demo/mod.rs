@@ -13,7 +13,7 @@ use chrono::NaiveDate;
 
 use encode::{encode, Message};
 
-/// Centre number written into the demo files: 255, "missing" in common code table C-1,
+/// Centre number written into the demo files: 255, "missing" in common code table C-11,
 /// since the demo model belongs to no centre.
 pub const DEMO_CENTRE: u16 = 255;
 

@@ -49,7 +49,7 @@ pub struct FieldEntry {
     pub message_offset: usize,
     /// Discipline, code table 0.0.
     pub discipline: u8,
-    /// Originating centre, common code table C-1.
+    /// Originating centre, common code table C-11.
     pub centre: u16,
     /// Originating sub-centre.
     pub subcentre: u16,

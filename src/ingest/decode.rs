@@ -40,10 +40,39 @@ pub enum DecodeError {
 /// Data representation templates the decoder reads (code table 5.0).
 pub const SUPPORTED_PACKINGS: [u16; 7] = [0, 2, 3, 40, 41, 42, 200];
 
+/// Largest field leeward decodes, in points (a 0.025-degree global grid has 104 M).
+pub const MAX_POINTS: usize = 200_000_000;
+
 /// Decode one field's values in file order (NaN where the bitmap says missing).
 pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError> {
     if let Some(r) = &f.unusable {
         return Err(DecodeError::Unusable(r.clone()));
+    }
+    // Lengths a file states are checked before anything is allocated from them.
+    if f.num_points == 0 || f.num_points > MAX_POINTS {
+        return Err(DecodeError::Unusable(format!(
+            "section 3 claims {} grid points (leeward reads 1 to {MAX_POINTS})",
+            f.num_points
+        )));
+    }
+    let encoded = bytes
+        .get(f.sect5.clone())
+        .and_then(|s| super::bytes::u32_at(s, 5))
+        .unwrap_or(0) as usize;
+    if encoded > f.num_points {
+        return Err(DecodeError::Unusable(format!(
+            "section 5 claims {encoded} packed values for a grid of {} points",
+            f.num_points
+        )));
+    }
+    if f.bitmap_indicator == 0 || f.bitmap_indicator == 254 {
+        let bitmap_octets = f.sect6.len().saturating_sub(6);
+        if bitmap_octets * 8 < f.num_points {
+            return Err(DecodeError::Unusable(format!(
+                "bitmap of {bitmap_octets} octets is too short for {} points",
+                f.num_points
+            )));
+        }
     }
     if !SUPPORTED_PACKINGS.contains(&f.data_template) {
         return Err(DecodeError::Packing {

@@ -43,7 +43,7 @@ pub enum OutputError {
 /// Everything one output file holds.
 #[derive(Debug, Clone)]
 pub struct StepProducts {
-    /// Originating centre (common code table C-1).
+    /// Originating centre (common code table C-11).
     pub centre: u16,
     /// Reference time of the cycle.
     pub reference_time: NaiveDateTime,
@@ -69,7 +69,7 @@ pub struct StepProducts {
     pub deflate: i32,
 }
 
-/// Short name of a centre for file names (our own list; numbers from common code table C-1).
+/// Short name of a centre for file names (our own list; numbers from common code table C-11).
 pub fn centre_short_name(c: u16) -> String {
     match c {
         7 => "ncep".into(),
@@ -83,7 +83,7 @@ pub fn centre_short_name(c: u16) -> String {
     }
 }
 
-/// Institution name for a centre (common code table C-1).
+/// Institution name for a centre (common code table C-11).
 pub fn institution(c: u16) -> String {
     match c {
         7 => "US National Weather Service, National Centers for Environmental Prediction (NCEP)".into(),
@@ -93,7 +93,7 @@ pub fn institution(c: u16) -> String {
         78 => "Deutscher Wetterdienst, Offenbach".into(),
         34 => "Japan Meteorological Agency, Tokyo".into(),
         85 => "Meteo-France, Toulouse".into(),
-        n => format!("originating centre {n} (WMO common code table C-1)"),
+        n => format!("originating centre {n} (WMO common code table C-11)"),
     }
 }
 
