@@ -71,7 +71,9 @@ pub enum Command {
 
 fn init_logging(format: &str) {
     let filter = EnvFilter::try_from_env("LEEWARD_LOG").unwrap_or_else(|_| EnvFilter::new("warn"));
-    let b = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let b = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
     if format == "json" {
         b.json().init();
     } else {
@@ -85,12 +87,20 @@ pub fn main() -> ExitCode {
         Ok(c) => c,
         Err(e) => {
             let _ = e.print();
-            return ExitCode::from(if e.use_stderr() { exit::USAGE } else { exit::OK });
+            return ExitCode::from(if e.use_stderr() {
+                exit::USAGE
+            } else {
+                exit::OK
+            });
         }
     };
     init_logging(&cli.log_format);
     match cli.command {
-        Command::Process { config, out, inputs } => ExitCode::from(process(config, out, inputs)),
+        Command::Process {
+            config,
+            out,
+            inputs,
+        } => ExitCode::from(process(config, out, inputs)),
         Command::Demo { dir } => ExitCode::from(demo(dir)),
     }
 }
@@ -138,12 +148,16 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
         None => Config::default(),
     };
     if let Err(e) = std::fs::create_dir_all(&out) {
-        eprintln!("leeward: cannot create output directory {}: {e}", out.display());
+        eprintln!(
+            "leeward: cannot create output directory {}: {e}",
+            out.display()
+        );
         return exit::NOTHING;
     }
     let bar = if inputs.len() > 1 && std::io::stderr().is_terminal() {
         let b = ProgressBar::new(inputs.len() as u64);
-        if let Ok(style) = ProgressStyle::with_template("{msg:12} [{bar:30}] {pos}/{len} {elapsed}") {
+        if let Ok(style) = ProgressStyle::with_template("{msg:12} [{bar:30}] {pos}/{len} {elapsed}")
+        {
             b.set_style(style.progress_chars("=> "));
         }
         b.set_message("cataloguing");
@@ -191,7 +205,15 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     for i in &issues {
         print_issue(i);
     }
-    let failed_writes = reports.iter().filter(|r| r.output.is_none() && r.skipped.as_deref().is_some_and(|s| s.starts_with("netCDF") || s.starts_with("cannot write"))).count();
+    let failed_writes = reports
+        .iter()
+        .filter(|r| {
+            r.output.is_none()
+                && r.skipped
+                    .as_deref()
+                    .is_some_and(|s| s.starts_with("netCDF") || s.starts_with("cannot write"))
+        })
+        .count();
     println!(
         "{} step file(s) written to {} in {:.2} s; {} input problem(s)",
         written,
@@ -219,16 +241,25 @@ pub fn demo(dir: Option<PathBuf>) -> u8 {
     });
     let incoming = dir.join("incoming");
     let products = dir.join("products");
-    println!("leeward demo: writing the invented scenario as GRIB2 into {}", incoming.display());
+    println!(
+        "leeward demo: writing the invented scenario as GRIB2 into {}",
+        incoming.display()
+    );
     let inputs = match crate::demo::write_inputs(&incoming, &[0, 6, 12, 18, 24]) {
         Ok(v) => v,
         Err(e) => {
-            eprintln!("leeward: cannot write the demo input in {}: {e}", incoming.display());
+            eprintln!(
+                "leeward: cannot write the demo input in {}: {e}",
+                incoming.display()
+            );
             return exit::NOTHING;
         }
     };
     let code = process(None, products.clone(), inputs);
     println!("leeward demo: products are in {}", products.display());
-    println!("    open them with any CF-aware reader, e.g. ncdump -h {}/*.nc", products.display());
+    println!(
+        "    open them with any CF-aware reader, e.g. ncdump -h {}/*.nc",
+        products.display()
+    );
     code
 }

@@ -62,7 +62,11 @@ pub struct Products {
 
 impl Default for Products {
     fn default() -> Self {
-        Products { vorticity: true, stability: true, mask_below_ground: true }
+        Products {
+            vorticity: true,
+            stability: true,
+            mask_below_ground: true,
+        }
     }
 }
 
@@ -91,7 +95,10 @@ impl Config {
         if problems.is_empty() {
             Ok(cfg)
         } else {
-            Err(ConfigError::Invalid { path: origin.to_string(), problems })
+            Err(ConfigError::Invalid {
+                path: origin.to_string(),
+                problems,
+            })
         }
     }
 
@@ -127,7 +134,8 @@ mod tests {
     #[test]
     fn defaults_and_every_problem_at_once() {
         assert_eq!(Config::from_toml("", "t").ok(), Some(Config::default()));
-        let bad = "[products]\nvorticity = false\nstability = false\n[output]\ndeflate_level = 12\n";
+        let bad =
+            "[products]\nvorticity = false\nstability = false\n[output]\ndeflate_level = 12\n";
         match Config::from_toml(bad, "t") {
             Err(ConfigError::Invalid { problems, .. }) => {
                 assert_eq!(problems.len(), 2);
@@ -136,6 +144,9 @@ mod tests {
             other => panic!("expected two problems, got {other:?}"),
         }
         let unknown = "[output]\ndeflate = 3\n";
-        assert!(matches!(Config::from_toml(unknown, "t"), Err(ConfigError::Parse { .. })));
+        assert!(matches!(
+            Config::from_toml(unknown, "t"),
+            Err(ConfigError::Parse { .. })
+        ));
     }
 }

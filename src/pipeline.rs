@@ -79,7 +79,11 @@ pub fn read_input(path: &Path) -> (Option<InputFile>, Vec<Issue>) {
                 })
                 .collect();
             (
-                Some(InputFile { path: path.to_path_buf(), bytes: Arc::new(bytes), catalogue }),
+                Some(InputFile {
+                    path: path.to_path_buf(),
+                    bytes: Arc::new(bytes),
+                    catalogue,
+                }),
                 issues,
             )
         }
@@ -135,7 +139,10 @@ impl Step {
 }
 
 fn grid_key(bytes: &[u8], f: &FieldEntry) -> Vec<u8> {
-    let mut k = bytes.get(f.sect3.clone()).map(<[u8]>::to_vec).unwrap_or_default();
+    let mut k = bytes
+        .get(f.sect3.clone())
+        .map(<[u8]>::to_vec)
+        .unwrap_or_default();
     let flags_at = match f.grid_template {
         0..=3 | 40..=43 => Some(54),
         10 | 20 | 30 | 31 => Some(46),
@@ -170,7 +177,12 @@ pub fn plan(inputs: &[InputFile]) -> (Vec<Step>, Vec<Issue>) {
         for e in &input.catalogue.fields {
             if let Some(reason) = &e.unusable {
                 // Problems already reported by the catalogue carry the same reason.
-                if !input.catalogue.problems.iter().any(|p| p.field == Some(e.index)) {
+                if !input
+                    .catalogue
+                    .problems
+                    .iter()
+                    .any(|p| p.field == Some(e.index))
+                {
                     issues.push(Issue {
                         file: input.path.clone(),
                         field: Some(e.index),
@@ -187,10 +199,16 @@ pub fn plan(inputs: &[InputFile]) -> (Vec<Step>, Vec<Issue>) {
                 member: e.member,
                 grid_key: grid_key(&input.bytes, e),
             };
-            groups.entry(key).or_default().push(FieldRef { file: fi, entry: e.clone() });
+            groups.entry(key).or_default().push(FieldRef {
+                file: fi,
+                entry: e.clone(),
+            });
         }
     }
-    let steps = groups.into_iter().map(|(key, fields)| Step { key, fields }).collect();
+    let steps = groups
+        .into_iter()
+        .map(|(key, fields)| Step { key, fields })
+        .collect();
     (steps, issues)
 }
 
@@ -249,22 +267,27 @@ fn inventory(step: &Step, inputs: &[InputFile], issues: &mut Vec<Issue>) -> Inve
         match (e.level.kind, e.level.value) {
             (surface::ISOBARIC, Some(p)) if p > 0.0 => {
                 let k = (q, pa_key(p));
-                if inv.isobaric.contains_key(&k) {
-                    issues.push(Issue {
+                match inv.isobaric.entry(k) {
+                    std::collections::btree_map::Entry::Vacant(slot) => {
+                        slot.insert(fr.clone());
+                    }
+                    std::collections::btree_map::Entry::Occupied(_) => issues.push(Issue {
                         file: inputs[fr.file].path.clone(),
                         field: Some(e.index),
                         what: describe(e),
-                        reason: "duplicate of a field already seen for this step; the first is used".into(),
-                    });
-                } else {
-                    inv.isobaric.insert(k, fr.clone());
+                        reason:
+                            "duplicate of a field already seen for this step; the first is used"
+                                .into(),
+                    }),
                 }
             }
             (surface::GROUND, _) => match q {
                 Quantity::Pressure => {
                     inv.surface_pressure.get_or_insert(fr.clone());
                 }
-                Quantity::GeopotentialHeight | Quantity::GeometricHeight | Quantity::TerrainHeight => {
+                Quantity::GeopotentialHeight
+                | Quantity::GeometricHeight
+                | Quantity::TerrainHeight => {
                     inv.orography.get_or_insert((fr.clone(), 1.0));
                 }
                 Quantity::Geopotential => {
@@ -296,16 +319,21 @@ fn decode_all<K: Ord + Clone + Send + Sync>(
         .collect();
     let mut out = BTreeMap::new();
     for (k, fr, r) in results {
-        match r.and_then(|v| {
-            Array2::from_shape_vec((scan.nj, scan.ni), v).map_err(|e| e.to_string())
-        }) {
+        match r
+            .and_then(|v| Array2::from_shape_vec((scan.nj, scan.ni), v).map_err(|e| e.to_string()))
+        {
             Ok(a) => {
                 out.insert(k, a);
             }
             Err(reason) => {
                 let file = inputs[fr.file].path.clone();
                 warn!(file = %file.display(), field = fr.entry.index, what = %describe(&fr.entry), %reason, "field not decoded");
-                issues.push(Issue { file, field: Some(fr.entry.index), what: describe(&fr.entry), reason });
+                issues.push(Issue {
+                    file,
+                    field: Some(fr.entry.index),
+                    what: describe(&fr.entry),
+                    reason,
+                });
             }
         }
     }
@@ -313,11 +341,25 @@ fn decode_all<K: Ord + Clone + Send + Sync>(
 }
 
 /// Run every step of `inputs` and write its products into `out_dir`.
-pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path, grid_suffix: Option<usize>) -> StepReport {
+pub fn run_step(
+    step: &Step,
+    inputs: &[InputFile],
+    cfg: &Config,
+    out_dir: &Path,
+    grid_suffix: Option<usize>,
+) -> StepReport {
     let t0 = Instant::now();
-    let cycle = step.key.reference_time.format("%Y-%m-%dT%H:%MZ").to_string();
+    let cycle = step
+        .key
+        .reference_time
+        .format("%Y-%m-%dT%H:%MZ")
+        .to_string();
     let lead = step.lead_hours();
-    let mut rep = StepReport { cycle: cycle.clone(), lead_hours: lead, ..Default::default() };
+    let mut rep = StepReport {
+        cycle: cycle.clone(),
+        lead_hours: lead,
+        ..Default::default()
+    };
     let first = &step.fields[0];
     let (grid, scan) = match inputs[first.file]
         .bytes
@@ -351,17 +393,27 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
     let inv = inventory(step, inputs, &mut issues);
 
     let levels_of = |q: Quantity| -> Vec<i64> {
-        inv.isobaric.keys().filter(|(qq, _)| *qq == q).map(|(_, p)| *p).collect()
+        inv.isobaric
+            .keys()
+            .filter(|(qq, _)| *qq == q)
+            .map(|(_, p)| *p)
+            .collect()
     };
     let t_levels = levels_of(Quantity::Temperature);
     let u_levels = levels_of(Quantity::WindU);
     let v_levels = levels_of(Quantity::WindV);
-    let wind_levels: Vec<i64> = u_levels.iter().copied().filter(|p| v_levels.contains(p)).collect();
+    let wind_levels: Vec<i64> = u_levels
+        .iter()
+        .copied()
+        .filter(|p| v_levels.contains(p))
+        .collect();
     for p in u_levels.iter().filter(|p| !v_levels.contains(p)) {
-        rep.missing.push(format!("v at {} hPa (u present)", *p as f64 / 1e4));
+        rep.missing
+            .push(format!("v at {} hPa (u present)", *p as f64 / 1e4));
     }
     for p in v_levels.iter().filter(|p| !u_levels.contains(p)) {
-        rep.missing.push(format!("u at {} hPa (v present)", *p as f64 / 1e4));
+        rep.missing
+            .push(format!("u at {} hPa (v present)", *p as f64 / 1e4));
     }
     let want_vort = cfg.products.vorticity && !wind_levels.is_empty();
     let want_stab = cfg.products.stability && !t_levels.is_empty();
@@ -369,11 +421,15 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
         rep.missing.push("isobaric u and v: no vorticity".into());
     }
     if cfg.products.stability && t_levels.is_empty() {
-        rep.missing.push("isobaric temperature: no theta, stab, n2".into());
+        rep.missing
+            .push("isobaric temperature: no theta, stab, n2".into());
     }
     if !want_vort && !want_stab {
         rep.issues = issues;
-        rep.skipped = Some(format!("no fields for any product ({})", rep.missing.join("; ")));
+        rep.skipped = Some(format!(
+            "no fields for any product ({})",
+            rep.missing.join("; ")
+        ));
         rep.seconds = t0.elapsed().as_secs_f64();
         return rep;
     }
@@ -390,7 +446,11 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
         let need = match q {
             Quantity::Temperature => want_stab,
             Quantity::WindU | Quantity::WindV => want_vort && wind_levels.contains(p),
-            Quantity::GeopotentialHeight => cfg.products.mask_below_ground && inv.orography.is_some() && inv.surface_pressure.is_none(),
+            Quantity::GeopotentialHeight => {
+                cfg.products.mask_below_ground
+                    && inv.orography.is_some()
+                    && inv.surface_pressure.is_none()
+            }
             _ => false,
         };
         if need {
@@ -430,9 +490,12 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
             if let Some(z) = dec.get(&Want::Iso(Quantity::GeopotentialHeight, *lk)) {
                 any = true;
                 let mut m = Array2::from_elem((ny, nx), false);
-                ndarray::Zip::from(&mut m).and(z).and(&oro).for_each(|m, &z, &o| {
-                    *m = z.is_finite() && o.is_finite() && f64::from(z) < f64::from(o) * scale;
-                });
+                ndarray::Zip::from(&mut m)
+                    .and(z)
+                    .and(&oro)
+                    .for_each(|m, &z, &o| {
+                        *m = z.is_finite() && o.is_finite() && f64::from(z) < f64::from(o) * scale;
+                    });
                 below[k] = Some(m);
             }
         }
@@ -498,15 +561,31 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
                 }
                 let z = match &grid.horizontal {
                     Horizontal::LatLon { lat, lon, .. } => vorticity::relative_vorticity_sphere(
-                        u.view(), v.view(), lat, lon, grid.radius(), grid.periodic(),
+                        u.view(),
+                        v.view(),
+                        lat,
+                        lon,
+                        grid.radius(),
+                        grid.periodic(),
                     ),
                     Horizontal::Rotated { rlat, rlon, .. } => vorticity::relative_vorticity_sphere(
-                        u.view(), v.view(), rlat, rlon, grid.radius(), grid.periodic(),
+                        u.view(),
+                        v.view(),
+                        rlat,
+                        rlon,
+                        grid.radius(),
+                        grid.periodic(),
                     ),
                     Horizontal::Projected { x, y, .. } => {
                         let dx = if x.len() > 1 { x[1] - x[0] } else { f64::NAN };
                         let dy = if y.len() > 1 { y[1] - y[0] } else { f64::NAN };
-                        vorticity::relative_vorticity_conformal(u.view(), v.view(), m.view(), dx, dy)
+                        vorticity::relative_vorticity_conformal(
+                            u.view(),
+                            v.view(),
+                            m.view(),
+                            dx,
+                            dy,
+                        )
                     }
                 };
                 Some((k, z))
@@ -589,12 +668,18 @@ pub fn run_step(step: &Step, inputs: &[InputFile], cfg: &Config, out_dir: &Path,
 /// Suffixes `_g2`, `_g3`, ... for steps that share centre, cycle, lead and member
 /// but not the grid.
 pub fn grid_suffixes(steps: &[Step]) -> Vec<Option<usize>> {
-    let mut seen: BTreeMap<(u16, NaiveDateTime, NaiveDateTime, Option<u8>), usize> = BTreeMap::new();
+    let mut seen: BTreeMap<(u16, NaiveDateTime, NaiveDateTime, Option<u8>), usize> =
+        BTreeMap::new();
     steps
         .iter()
         .map(|s| {
             let n = seen
-                .entry((s.key.centre, s.key.reference_time, s.key.valid_time, s.key.member))
+                .entry((
+                    s.key.centre,
+                    s.key.reference_time,
+                    s.key.valid_time,
+                    s.key.member,
+                ))
                 .or_insert(0);
             *n += 1;
             if *n > 1 {

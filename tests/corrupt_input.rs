@@ -31,31 +31,59 @@ fn exercise(bytes: &[u8]) -> usize {
 fn seeds() -> Vec<Vec<u8>> {
     let mut v = Vec::new();
     let vals: Vec<f64> = (0..35).map(|k| 280.0 + k as f64).collect();
-    let reference = chrono::NaiveDate::from_ymd_opt(2026, 3, 14).and_then(|d| d.and_hms_opt(0, 0, 0)).unwrap();
+    let reference = chrono::NaiveDate::from_ymd_opt(2026, 3, 14)
+        .and_then(|d| d.and_hms_opt(0, 0, 0))
+        .unwrap();
     for grid in [
-        leeward::demo::encode::GridSpec::LatLon { ni: 7, nj: 5, lat0: 10.0, lon0: 0.0, dlat: 1.0, dlon: 1.0 },
-        leeward::demo::encode::GridSpec::Lambert { nx: 7, ny: 5, lat1: 40.0, lon1: -5.0, dx: 20e3, dy: 20e3, lov: 0.0, latin1: 45.0, latin2: 45.0 },
+        leeward::demo::encode::GridSpec::LatLon {
+            ni: 7,
+            nj: 5,
+            lat0: 10.0,
+            lon0: 0.0,
+            dlat: 1.0,
+            dlon: 1.0,
+        },
+        leeward::demo::encode::GridSpec::Lambert {
+            nx: 7,
+            ny: 5,
+            lat1: 40.0,
+            lon1: -5.0,
+            dx: 20e3,
+            dy: 20e3,
+            lov: 0.0,
+            latin1: 45.0,
+            latin2: 45.0,
+        },
     ] {
-        v.push(leeward::demo::encode::encode(&leeward::demo::encode::Message {
-            centre: 255,
-            reference,
-            lead_hours: 6,
-            param: (0, 0, 0),
-            surface: (100, 85_000.0),
-            grid,
-            grid_relative_winds: true,
-            values: &vals,
-            decimal_scale: 1,
-        }));
+        v.push(leeward::demo::encode::encode(
+            &leeward::demo::encode::Message {
+                centre: 255,
+                reference,
+                lead_hours: 6,
+                param: (0, 0, 0),
+                surface: (100, 85_000.0),
+                grid,
+                grid_relative_winds: true,
+                values: &vals,
+                decimal_scale: 1,
+            },
+        ));
     }
     if let Some(dir) = common::samples_dir("corrupt_input seeds") {
-        for name in ["scanning-mode.grib2", "scanning-mode-with-bitmap.grib2", "no-radius-shapeOfEarth-7.grib2"] {
+        for name in [
+            "scanning-mode.grib2",
+            "scanning-mode-with-bitmap.grib2",
+            "no-radius-shapeOfEarth-7.grib2",
+        ] {
             if let Ok(b) = std::fs::read(dir.join(name)) {
                 v.push(b);
             }
         }
         // The first message of a complex-packed and a JPEG 2000 file.
-        for name in ["gfs-2p5deg-2011100800-f072.grib2", "polar-stereo-jpeg2000.grib2"] {
+        for name in [
+            "gfs-2p5deg-2011100800-f072.grib2",
+            "polar-stereo-jpeg2000.grib2",
+        ] {
             if let Ok(b) = std::fs::read(dir.join(name)) {
                 let len = leeward::ingest::bytes::u64_at(&b, 8).unwrap_or(0) as usize;
                 v.push(b[..len.min(b.len())].to_vec());

@@ -12,9 +12,26 @@ use chrono::{Datelike, NaiveDateTime, Timelike};
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum GridSpec {
     /// Regular latitude/longitude from (lat0, lon0), south-west corner, with steps in degrees.
-    LatLon { ni: usize, nj: usize, lat0: f64, lon0: f64, dlat: f64, dlon: f64 },
+    LatLon {
+        ni: usize,
+        nj: usize,
+        lat0: f64,
+        lon0: f64,
+        dlat: f64,
+        dlon: f64,
+    },
     /// Lambert conformal: first point (south-west), spacing in metres, LoV, standard parallels.
-    Lambert { nx: usize, ny: usize, lat1: f64, lon1: f64, dx: f64, dy: f64, lov: f64, latin1: f64, latin2: f64 },
+    Lambert {
+        nx: usize,
+        ny: usize,
+        lat1: f64,
+        lon1: f64,
+        dx: f64,
+        dy: f64,
+        lov: f64,
+        latin1: f64,
+        latin2: f64,
+    },
 }
 
 impl GridSpec {
@@ -97,7 +114,14 @@ pub fn encode(m: &Message<'_>) -> Vec<u8> {
     let flags = if m.grid_relative_winds { 0x08 } else { 0x00 };
     let earth = [6u8, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0]; // sphere 6 371 229 m
     match m.grid {
-        GridSpec::LatLon { ni, nj, lat0, lon0, dlat, dlon } => {
+        GridSpec::LatLon {
+            ni,
+            nj,
+            lat0,
+            lon0,
+            dlat,
+            dlon,
+        } => {
             s3.extend_from_slice(&0u16.to_be_bytes());
             s3.extend_from_slice(&earth);
             s3.extend_from_slice(&(ni as u32).to_be_bytes());
@@ -108,12 +132,24 @@ pub fn encode(m: &Message<'_>) -> Vec<u8> {
             s3.extend_from_slice(&sm32(micro(lon0.rem_euclid(360.0))));
             s3.push(0x30 | flags);
             s3.extend_from_slice(&sm32(micro(lat0 + dlat * (nj - 1) as f64)));
-            s3.extend_from_slice(&sm32(micro((lon0 + dlon * (ni - 1) as f64).rem_euclid(360.0))));
+            s3.extend_from_slice(&sm32(micro(
+                (lon0 + dlon * (ni - 1) as f64).rem_euclid(360.0),
+            )));
             s3.extend_from_slice(&(micro(dlon) as u32).to_be_bytes());
             s3.extend_from_slice(&(micro(dlat) as u32).to_be_bytes());
             s3.push(0x40); // +i, +j: rows south to north
         }
-        GridSpec::Lambert { nx, ny, lat1, lon1, dx, dy, lov, latin1, latin2 } => {
+        GridSpec::Lambert {
+            nx,
+            ny,
+            lat1,
+            lon1,
+            dx,
+            dy,
+            lov,
+            latin1,
+            latin2,
+        } => {
             s3.extend_from_slice(&30u16.to_be_bytes());
             s3.extend_from_slice(&earth);
             s3.extend_from_slice(&(nx as u32).to_be_bytes());
@@ -209,7 +245,14 @@ mod tests {
             lead_hours: 12,
             param: (0, 0, 0),
             surface: (100, 50_000.0),
-            grid: GridSpec::LatLon { ni: 4, nj: 3, lat0: 40.0, lon0: -10.0, dlat: 1.0, dlon: 2.0 },
+            grid: GridSpec::LatLon {
+                ni: 4,
+                nj: 3,
+                lat0: 40.0,
+                lon0: -10.0,
+                dlat: 1.0,
+                dlon: 2.0,
+            },
             grid_relative_winds: false,
             values: &values,
             decimal_scale: 0,
@@ -218,7 +261,10 @@ mod tests {
         let cat = catalogue(&bytes);
         assert!(cat.problems.is_empty(), "{:?}", cat.problems);
         let f = &cat.fields[0];
-        assert_eq!((f.category, f.number, f.level.value), (0, 0, Some(50_000.0)));
+        assert_eq!(
+            (f.category, f.number, f.level.value),
+            (0, 0, Some(50_000.0))
+        );
         assert_eq!(f.lead.num_hours(), 12);
         let v = decode_raw(&bytes, f).unwrap();
         for (a, b) in v.iter().zip(&values) {

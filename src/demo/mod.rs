@@ -28,7 +28,12 @@ pub fn write_inputs(dir: &Path, leads: &[u32]) -> std::io::Result<Vec<PathBuf>> 
         let s = scenario::step(f64::from(lead));
         let mut bytes = Vec::new();
         for (p, t, z, u, v) in &s.levels {
-            for (param, vals, dscale) in [((0, 0, 0), t, 2), ((0, 3, 5), z, 1), ((0, 2, 2), u, 2), ((0, 2, 3), v, 2)] {
+            for (param, vals, dscale) in [
+                ((0, 0, 0), t, 2),
+                ((0, 3, 5), z, 1),
+                ((0, 2, 2), u, 2),
+                ((0, 2, 3), v, 2),
+            ] {
                 bytes.extend(encode(&Message {
                     centre: DEMO_CENTRE,
                     reference,
@@ -42,7 +47,10 @@ pub fn write_inputs(dir: &Path, leads: &[u32]) -> std::io::Result<Vec<PathBuf>> 
                 }));
             }
         }
-        let path = dir.join(format!("lwdemo_{}_{lead:03}.grib2", reference.format("%Y%m%d%H")));
+        let path = dir.join(format!(
+            "lwdemo_{}_{lead:03}.grib2",
+            reference.format("%Y%m%d%H")
+        ));
         let tmp = dir.join(format!(".{}.tmp", lead));
         std::fs::write(&tmp, &bytes)?;
         std::fs::rename(&tmp, &path)?;

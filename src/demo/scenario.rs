@@ -53,28 +53,55 @@ pub fn height(p: f64, lat: f64, lon: f64, lead: f64) -> f64 {
     let lnr = (1000.0 / p).ln();
     // Baroclinic zone: the height falls poleward, more with altitude (thermal wind),
     // tapering above 250 hPa where the jet has its core.
-    let depth = if p >= 250.0 { lnr } else { (1000.0f64 / 250.0).ln() * (p / 250.0).powf(0.6) };
+    let depth = if p >= 250.0 {
+        lnr
+    } else {
+        (1000.0f64 / 250.0).ln() * (p / 250.0).powf(0.6)
+    };
     let jet = -240.0 * depth * ((lat - 47.0) / 7.0).tanh();
     // An upper trough moving east at 12 m/s, deepening with height.
-    let lon_c = -20.0 + 12.0 * lead * 3600.0 / (EARTH_RADIUS * 47f64.to_radians().cos()) * 180.0 / std::f64::consts::PI;
+    let lon_c = -20.0
+        + 12.0 * lead * 3600.0 / (EARTH_RADIUS * 47f64.to_radians().cos()) * 180.0
+            / std::f64::consts::PI;
     let (dl, dp) = (lon - lon_c, lat - 50.0);
-    let trough = -140.0 * depth.min(1.4) * (-(dl * dl) / (8.0 * 8.0) - (dp * dp) / (7.0 * 7.0)).exp();
+    let trough =
+        -140.0 * depth.min(1.4) * (-(dl * dl) / (8.0 * 8.0) - (dp * dp) / (7.0 * 7.0)).exp();
     standard_height(p) + jet + trough
 }
 
-/// One step of the scenario on its grid: (level hPa, T, Z, u_grid, v_grid), rows south to north.
+/// One level of a step: (level hPa, temperature K, height gpm, grid-relative u and v m/s),
+/// each field with rows south to north.
+pub type LevelFields = (f64, Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>);
+
+/// One step of the scenario on its grid.
 pub struct StepFields {
-    /// Per level: level (hPa), temperature K, height gpm, grid-relative u and v, m/s.
-    pub levels: Vec<(f64, Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>)>,
+    /// Every level, from the bottom up.
+    pub levels: Vec<LevelFields>,
 }
 
 /// Compute every field of one step.
 pub fn step(lead: f64) -> StepFields {
-    let GridSpec::Lambert { nx, ny, lat1, lon1, dx, dy, lov, latin1, latin2 } = GRID else {
+    let GridSpec::Lambert {
+        nx,
+        ny,
+        lat1,
+        lon1,
+        dx,
+        dy,
+        lov,
+        latin1,
+        latin2,
+    } = GRID
+    else {
         return StepFields { levels: Vec::new() };
     };
     let earth = Earth::sphere(EARTH_RADIUS);
-    let proj = Conformal::Lambert { lat1: latin1, lat2: latin2, lat0: latin1, lon0: lov };
+    let proj = Conformal::Lambert {
+        lat1: latin1,
+        lat2: latin2,
+        lat0: latin1,
+        lon0: lov,
+    };
     let (x0, y0) = proj.forward(&earth, lat1, lon1);
     let mut points = Vec::with_capacity(nx * ny);
     for j in 0..ny {
@@ -100,8 +127,10 @@ pub fn step(lead: f64) -> StepFields {
                 t.push(-G0 / R_DRY * dz / dlnp);
                 // Geostrophic wind on the sphere, earth-relative.
                 let f = 2.0 * OMEGA * la.to_radians().sin();
-                let dzdphi = (height(p, la + d, lo, lead) - height(p, la - d, lo, lead)) / (2.0 * d.to_radians());
-                let dzdlam = (height(p, la, lo + d, lead) - height(p, la, lo - d, lead)) / (2.0 * d.to_radians());
+                let dzdphi = (height(p, la + d, lo, lead) - height(p, la - d, lo, lead))
+                    / (2.0 * d.to_radians());
+                let dzdlam = (height(p, la, lo + d, lead) - height(p, la, lo - d, lead))
+                    / (2.0 * d.to_radians());
                 let ue = -G0 / f * dzdphi / EARTH_RADIUS;
                 let ve = G0 / f * dzdlam / (EARTH_RADIUS * la.to_radians().cos());
                 // Into the grid's axes (alpha: angle from east to grid x).
@@ -122,8 +151,18 @@ mod tests {
     #[test]
     fn standard_heights_match_the_handbook() {
         // US Standard Atmosphere 1976 values in REFERENCES.md.
-        for (p, z) in [(1000.0, 110.9), (850.0, 1457.3), (500.0, 5574.4), (200.0, 11784.0), (100.0, 16179.7)] {
-            assert!((standard_height(p) - z).abs() < 1.0, "{p}: {} vs {z}", standard_height(p));
+        for (p, z) in [
+            (1000.0, 110.9),
+            (850.0, 1457.3),
+            (500.0, 5574.4),
+            (200.0, 11784.0),
+            (100.0, 16179.7),
+        ] {
+            assert!(
+                (standard_height(p) - z).abs() < 1.0,
+                "{p}: {} vs {z}",
+                standard_height(p)
+            );
         }
     }
 

@@ -34,9 +34,21 @@ pub fn column_derivative(f: &[f64], x: &[f64], out: &mut [f64]) {
         out[k] = if below && above {
             nonuniform_centred(f[k - 1], f[k], f[k + 1], x[k] - x[k - 1], x[k + 1] - x[k])
         } else if below && k + 2 < n && ok(k + 2) {
-            nonuniform_one_sided(f[k], f[k + 1], f[k + 2], x[k + 1] - x[k], x[k + 2] - x[k + 1])
+            nonuniform_one_sided(
+                f[k],
+                f[k + 1],
+                f[k + 2],
+                x[k + 1] - x[k],
+                x[k + 2] - x[k + 1],
+            )
         } else if above && k >= 2 && ok(k - 2) {
-            nonuniform_one_sided(f[k], f[k - 1], f[k - 2], x[k - 1] - x[k], x[k - 2] - x[k - 1])
+            nonuniform_one_sided(
+                f[k],
+                f[k - 1],
+                f[k - 2],
+                x[k - 1] - x[k],
+                x[k - 2] - x[k - 1],
+            )
         } else if below {
             (f[k + 1] - f[k]) / (x[k + 1] - x[k])
         } else if above {
@@ -66,7 +78,11 @@ pub fn stability(t: ArrayView3<f32>, p: &[f64]) -> Stability {
     let mut neg = Array3::from_elem((nz, ny, nx), f32::NAN);
     let mut n2 = Array3::from_elem((nz, ny, nx), f32::NAN);
     if p.len() != nz || nz == 0 {
-        return Stability { theta, neg_dtheta_dp: neg, n2 };
+        return Stability {
+            theta,
+            neg_dtheta_dp: neg,
+            n2,
+        };
     }
     let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
     Zip::from(t.lanes(Axis(0)))
@@ -75,7 +91,11 @@ pub fn stability(t: ArrayView3<f32>, p: &[f64]) -> Stability {
         .and(n2.lanes_mut(Axis(0)))
         .par_for_each(|tc, mut thc, mut ndc, mut n2c| {
             let tk: Vec<f64> = tc.iter().map(|&x| f64::from(x)).collect();
-            let th: Vec<f64> = tk.iter().zip(p).map(|(&t, &pk)| potential_temperature(t, pk)).collect();
+            let th: Vec<f64> = tk
+                .iter()
+                .zip(p)
+                .map(|(&t, &pk)| potential_temperature(t, pk))
+                .collect();
             let mut der = vec![0.0; nz];
             column_derivative(&th, &lnp, &mut der);
             for k in 0..nz {
@@ -85,7 +105,11 @@ pub fn stability(t: ArrayView3<f32>, p: &[f64]) -> Stability {
                 n2c[k] = (-(G0 * G0 * p[k] / (R_DRY * tk[k] * th[k])) * dthdp) as f32;
             }
         });
-    Stability { theta, neg_dtheta_dp: neg, n2 }
+    Stability {
+        theta,
+        neg_dtheta_dp: neg,
+        n2,
+    }
 }
 
 #[cfg(test)]
@@ -112,10 +136,12 @@ mod tests {
     fn stability_of_a_constant_lapse_rate_atmosphere() {
         // Closed form: theta = T0 (p/p0)^c (p00/p)^kappa with c = R gamma/g, so
         // d theta/dp = (c - kappa) theta / p.
-        let p: Vec<f64> = [100.0, 150.0, 200.0, 250.0, 300.0, 400.0, 500.0, 700.0, 850.0, 925.0, 1000.0]
-            .iter()
-            .map(|h| h * 100.0)
-            .collect();
+        let p: Vec<f64> = [
+            100.0, 150.0, 200.0, 250.0, 300.0, 400.0, 500.0, 700.0, 850.0, 925.0, 1000.0,
+        ]
+        .iter()
+        .map(|h| h * 100.0)
+        .collect();
         let t = Array3::from_shape_fn((p.len(), 2, 3), |(k, _, _)| lapse_t(p[k]) as f32);
         let s = stability(t.view(), &p);
         let c = R_DRY * 0.0065 / G0;
@@ -123,8 +149,15 @@ mod tests {
             let th = potential_temperature(lapse_t(p[k]), p[k]);
             let exact = -(c - KAPPA) * th / p[k];
             let got = f64::from(s.neg_dtheta_dp[(k, 1, 2)]);
-            let tol = if k == 0 || k + 1 == p.len() { 0.02 } else { 0.005 };
-            assert!(((got - exact) / exact).abs() < tol, "level {k}: {got} vs {exact}");
+            let tol = if k == 0 || k + 1 == p.len() {
+                0.02
+            } else {
+                0.005
+            };
+            assert!(
+                ((got - exact) / exact).abs() < tol,
+                "level {k}: {got} vs {exact}"
+            );
             let n2 = G0 * G0 * p[k] / (R_DRY * lapse_t(p[k]) * th) * exact;
             assert!(((f64::from(s.n2[(k, 1, 2)]) - n2) / n2).abs() < tol);
         }

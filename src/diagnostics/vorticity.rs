@@ -73,15 +73,25 @@ pub fn relative_vorticity_sphere(
         let hn = phi[jn] - phi[jn - 1];
         if !on_pole(jn) && half_pi - phi[jn] <= 1.5 * hn.abs() {
             for i in 0..nx {
-                ducos_dphi[(jn, i)] =
-                    nonuniform_centred(ucos[(jn - 1, i)], ucos[(jn, i)], 0.0, hn, half_pi - phi[jn]);
+                ducos_dphi[(jn, i)] = nonuniform_centred(
+                    ucos[(jn - 1, i)],
+                    ucos[(jn, i)],
+                    0.0,
+                    hn,
+                    half_pi - phi[jn],
+                );
             }
         }
         let hs = phi[js + 1] - phi[js];
         if !on_pole(js) && phi[js] + half_pi <= 1.5 * hs.abs() {
             for i in 0..nx {
-                ducos_dphi[(js, i)] =
-                    nonuniform_centred(0.0, ucos[(js, i)], ucos[(js + 1, i)], phi[js] + half_pi, hs);
+                ducos_dphi[(js, i)] = nonuniform_centred(
+                    0.0,
+                    ucos[(js, i)],
+                    ucos[(js + 1, i)],
+                    phi[js] + half_pi,
+                    hs,
+                );
             }
         }
     }
@@ -170,7 +180,11 @@ mod tests {
             for i in [0, 71, 143] {
                 let got = z[(j, i)];
                 let tol = 5e-3 * exact.abs() + 1e-12;
-                assert!((got - exact).abs() <= tol, "lat {} got {got} exact {exact}", lat[j]);
+                assert!(
+                    (got - exact).abs() <= tol,
+                    "lat {} got {got} exact {exact}",
+                    lat[j]
+                );
             }
         }
     }
@@ -201,7 +215,10 @@ mod tests {
         assert!(z[(0, 5)].is_nan() && z[(5, 0)].is_nan());
         assert!(z[(4, 5)].is_nan() && z[(6, 5)].is_nan());
         assert!(z[(5, 5)].is_nan(), "a missing point has no vorticity");
-        assert!(z[(5, 7)].is_finite() && z[(3, 5)].is_finite(), "points off the stencil keep theirs");
+        assert!(
+            z[(5, 7)].is_finite() && z[(3, 5)].is_finite(),
+            "points off the stencil keep theirs"
+        );
     }
 
     #[test]

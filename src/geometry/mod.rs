@@ -175,17 +175,29 @@ impl Grid {
     /// A short description for logs: template and size.
     pub fn describe(&self) -> String {
         let kind = match &self.horizontal {
-            Horizontal::LatLon { gaussian: Some(n), .. } => format!("Gaussian N{n}"),
+            Horizontal::LatLon {
+                gaussian: Some(n), ..
+            } => format!("Gaussian N{n}"),
             Horizontal::LatLon { .. } => "latitude/longitude".to_string(),
             Horizontal::Rotated { .. } => "rotated latitude/longitude".to_string(),
-            Horizontal::Projected { proj: Conformal::Mercator { .. }, .. } => "Mercator".to_string(),
-            Horizontal::Projected { proj: Conformal::PolarStereographic { .. }, .. } => {
-                "polar stereographic".to_string()
-            }
-            Horizontal::Projected { proj: Conformal::Lambert { .. }, .. } => {
-                "Lambert conformal".to_string()
-            }
+            Horizontal::Projected {
+                proj: Conformal::Mercator { .. },
+                ..
+            } => "Mercator".to_string(),
+            Horizontal::Projected {
+                proj: Conformal::PolarStereographic { .. },
+                ..
+            } => "polar stereographic".to_string(),
+            Horizontal::Projected {
+                proj: Conformal::Lambert { .. },
+                ..
+            } => "Lambert conformal".to_string(),
         };
-        format!("{kind} {}x{} (template 3.{})", self.nx(), self.ny(), self.template)
+        format!(
+            "{kind} {}x{} (template 3.{})",
+            self.nx(),
+            self.ny(),
+            self.template
+        )
     }
 }

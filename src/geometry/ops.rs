@@ -61,8 +61,7 @@ pub fn ddy_nonuniform(f: ArrayView2<f64>, c: &[f64]) -> Array2<f64> {
     for j in 1..ny - 1 {
         let (h1, h2) = (c[j] - c[j - 1], c[j + 1] - c[j]);
         for i in 0..nx {
-            out[(j, i)] =
-                nonuniform_centred(f[(j - 1, i)], f[(j, i)], f[(j + 1, i)], h1, h2);
+            out[(j, i)] = nonuniform_centred(f[(j - 1, i)], f[(j, i)], f[(j + 1, i)], h1, h2);
         }
     }
     out
@@ -107,7 +106,9 @@ mod tests {
     #[test]
     fn mismatched_shapes_give_nan_not_panic() {
         let f = Array2::<f64>::zeros((4, 4));
-        assert!(ddy_nonuniform(f.view(), &[0.0, 1.0]).iter().all(|v| v.is_nan()));
+        assert!(ddy_nonuniform(f.view(), &[0.0, 1.0])
+            .iter()
+            .all(|v| v.is_nan()));
         assert!(ddx_uniform(f.view(), 0.0, false).iter().all(|v| v.is_nan()));
     }
 }

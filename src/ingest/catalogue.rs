@@ -195,7 +195,9 @@ fn walk_message(b: &[u8], start: usize, cat: &mut Catalogue) -> Result<usize, St
     let total = u64_at(b, start + 8).ok_or("message header cut short (fewer than 16 octets)")?;
     let total = usize::try_from(total).map_err(|_| "message length does not fit in memory")?;
     if total < SECTION0_LEN + 4 {
-        return Err(format!("message claims a length of {total} octets, too short for GRIB2"));
+        return Err(format!(
+            "message claims a length of {total} octets, too short for GRIB2"
+        ));
     }
     let available = b.len() - start;
     let truncated = total > available;
@@ -255,7 +257,8 @@ fn walk_message(b: &[u8], start: usize, cat: &mut Catalogue) -> Result<usize, St
                             field: Some(field_index),
                             reason: reason.clone(),
                         });
-                        cat.fields.push(placeholder(start, discipline, field_index, reason));
+                        cat.fields
+                            .push(placeholder(start, discipline, field_index, reason));
                     }
                 }
             }
@@ -305,8 +308,14 @@ fn placeholder(start: usize, discipline: u8, index: usize, reason: String) -> Fi
         category: 255,
         number: 255,
         process: 255,
-        level: Surface { kind: 255, value: None },
-        level2: Surface { kind: 255, value: None },
+        level: Surface {
+            kind: 255,
+            value: None,
+        },
+        level2: Surface {
+            kind: 255,
+            value: None,
+        },
         lead: Duration::zero(),
         valid_time: epoch,
         member: None,
@@ -361,10 +370,22 @@ fn build_field(
     s7: Range<usize>,
     index: usize,
 ) -> Result<FieldEntry, String> {
-    let s1 = open.s1.clone().ok_or("field has no section 1 (identification)")?;
-    let s3 = open.s3.clone().ok_or("field has no section 3 (grid definition)")?;
-    let s4 = open.s4.clone().ok_or("field has no section 4 (product definition)")?;
-    let s5 = open.s5.clone().ok_or("field has no section 5 (data representation)")?;
+    let s1 = open
+        .s1
+        .clone()
+        .ok_or("field has no section 1 (identification)")?;
+    let s3 = open
+        .s3
+        .clone()
+        .ok_or("field has no section 3 (grid definition)")?;
+    let s4 = open
+        .s4
+        .clone()
+        .ok_or("field has no section 4 (product definition)")?;
+    let s5 = open
+        .s5
+        .clone()
+        .ok_or("field has no section 5 (data representation)")?;
     let s6 = match (&open.s6, open.s6_indicator) {
         (Some(r), _) => r.clone(),
         (None, 254) => {
@@ -375,8 +396,8 @@ fn build_field(
     let sec1 = &b[s1.clone()];
     let centre = u16_at(sec1, 5).ok_or("section 1 cut short")?;
     let subcentre = u16_at(sec1, 7).ok_or("section 1 cut short")?;
-    let reference_time = date_time_at(sec1, 12)
-        .ok_or("section 1 gives an impossible reference time")?;
+    let reference_time =
+        date_time_at(sec1, 12).ok_or("section 1 gives an impossible reference time")?;
 
     let sec3 = &b[s3.clone()];
     let num_points = u32_at(sec3, 6).ok_or("section 3 cut short")? as usize;

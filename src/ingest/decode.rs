@@ -82,7 +82,9 @@ pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError>
     }
     let get = |r: &std::ops::Range<usize>| bytes.get(r.clone()).map(<[u8]>::to_vec);
     let (Some(s5), Some(s6), Some(s7)) = (get(&f.sect5), get(&f.sect6), get(&f.sect7)) else {
-        return Err(DecodeError::Unusable("section ranges outside the file".into()));
+        return Err(DecodeError::Unusable(
+            "section ranges outside the file".into(),
+        ));
     };
     let mut s6 = s6;
     // A field that reuses the previous bitmap (indicator 254) was pointed at that
@@ -118,7 +120,10 @@ pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError>
         }
     };
     if values.len() != n {
-        return Err(DecodeError::Count { got: values.len(), want: n });
+        return Err(DecodeError::Count {
+            got: values.len(),
+            want: n,
+        });
     }
     Ok(values)
 }
@@ -134,7 +139,11 @@ fn constant_field(template: u16, s5: &[u8], s6: &[u8], n: usize) -> Option<Vec<f
     }
     let r = f64::from(f32_at(s5, 11)?);
     let d = u16_at(s5, 17)?;
-    let d = if d & 0x8000 != 0 { -i32::from(d & 0x7fff) } else { i32::from(d) };
+    let d = if d & 0x8000 != 0 {
+        -i32::from(d & 0x7fff)
+    } else {
+        i32::from(d)
+    };
     let value = (r / 10f64.powi(d)) as f32;
     match u8_at(s6, 5)? {
         255 => Some(vec![value; n]),
@@ -145,7 +154,13 @@ fn constant_field(template: u16, s5: &[u8], s6: &[u8], n: usize) -> Option<Vec<f
             }
             Some(
                 (0..n)
-                    .map(|k| if bits[k / 8] & (0x80 >> (k % 8)) != 0 { value } else { f32::NAN })
+                    .map(|k| {
+                        if bits[k / 8] & (0x80 >> (k % 8)) != 0 {
+                            value
+                        } else {
+                            f32::NAN
+                        }
+                    })
                     .collect(),
             )
         }
@@ -157,7 +172,10 @@ fn constant_field(template: u16, s5: &[u8], s6: &[u8], n: usize) -> Option<Vec<f
 pub fn decode(bytes: &[u8], f: &FieldEntry, scan: &Scan) -> Result<Vec<f32>, DecodeError> {
     let raw = decode_raw(bytes, f)?;
     if raw.len() != scan.ni * scan.nj {
-        return Err(DecodeError::Count { got: raw.len(), want: scan.ni * scan.nj });
+        return Err(DecodeError::Count {
+            got: raw.len(),
+            want: scan.ni * scan.nj,
+        });
     }
     Ok(scan.normalise(&raw))
 }

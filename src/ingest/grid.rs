@@ -131,20 +131,32 @@ fn earth(s: &[u8], t: u16) -> Result<Earth, GridError> {
     Ok(match shape {
         0 => Earth::sphere(6_367_470.0),
         1 => Earth::sphere(given("radius", scaled(15)?)?),
-        2 => Earth { a: 6_378_160.0, b: 6_356_775.0 },
+        2 => Earth {
+            a: 6_378_160.0,
+            b: 6_356_775.0,
+        },
         3 => Earth {
             a: given("major axis", scaled(20)?)? * 1000.0,
             b: given("minor axis", scaled(25)?)? * 1000.0,
         },
-        4 => Earth { a: 6_378_137.0, b: 6_356_752.314_140 },
-        5 => Earth { a: 6_378_137.0, b: 6_378_137.0 * (1.0 - 1.0 / 298.257_223_563) },
+        4 => Earth {
+            a: 6_378_137.0,
+            b: 6_356_752.314_140,
+        },
+        5 => Earth {
+            a: 6_378_137.0,
+            b: 6_378_137.0 * (1.0 - 1.0 / 298.257_223_563),
+        },
         6 => Earth::sphere(6_371_229.0),
         7 => Earth {
             a: given("major axis", scaled(20)?)?,
             b: given("minor axis", scaled(25)?)?,
         },
         8 => Earth::sphere(6_371_200.0),
-        9 => Earth { a: 6_377_563.396, b: 6_356_256.909 },
+        9 => Earth {
+            a: 6_377_563.396,
+            b: 6_356_256.909,
+        },
         n => {
             return Err(GridError::Invalid(
                 t,
@@ -193,7 +205,10 @@ pub fn parse_grid(s: &[u8]) -> Result<(Grid, Scan), GridError> {
     if scan.ni * scan.nj != num_points {
         return Err(GridError::Invalid(
             t,
-            format!("{} x {} points but section 3 says {num_points}", scan.ni, scan.nj),
+            format!(
+                "{} x {} points but section 3 says {num_points}",
+                scan.ni, scan.nj
+            ),
         ));
     }
     Ok((grid, scan))
@@ -203,8 +218,16 @@ pub fn parse_grid(s: &[u8]) -> Result<(Grid, Scan), GridError> {
 fn angle_unit(s: &[u8], t: u16) -> Result<f64, GridError> {
     let basic = u32_at(s, 38).ok_or(GridError::Short(t, s.len()))?;
     let sub = u32_at(s, 42).ok_or(GridError::Short(t, s.len()))?;
-    let basic = if basic == 0 || basic == u32::MAX { 1 } else { basic };
-    let sub = if sub == 0 || sub == u32::MAX { 1_000_000 } else { sub };
+    let basic = if basic == 0 || basic == u32::MAX {
+        1
+    } else {
+        basic
+    };
+    let sub = if sub == 0 || sub == u32::MAX {
+        1_000_000
+    } else {
+        sub
+    };
     Ok(f64::from(basic) / f64::from(sub))
 }
 
@@ -227,7 +250,10 @@ fn latlon(s: &[u8], t: u16) -> Result<(Grid, Scan), GridError> {
     let lo2 = deg(s, 59, t, unit)?;
     let flags = u8_at(s, 71).ok_or(GridError::Short(t, s.len()))?;
     if flags & 0x0f != 0 {
-        return Err(GridError::Invalid(t, format!("scanning mode {flags:#04x}: staggered rows (bits 5-8) are not supported")));
+        return Err(GridError::Invalid(
+            t,
+            format!("scanning mode {flags:#04x}: staggered rows (bits 5-8) are not supported"),
+        ));
     }
     let scan = Scan::from_flags(ni, nj, flags);
     // Longitudes from the first and last points, in the scan's direction.
@@ -236,7 +262,9 @@ fn latlon(s: &[u8], t: u16) -> Result<(Grid, Scan), GridError> {
     } else {
         (lo1, (lo2 - lo1).rem_euclid(360.0))
     };
-    let di_coded = u32_at(s, 63).filter(|&v| v != u32::MAX).map(|v| f64::from(v) * unit);
+    let di_coded = u32_at(s, 63)
+        .filter(|&v| v != u32::MAX)
+        .map(|v| f64::from(v) * unit);
     let di = if ni > 1 && span > 0.0 {
         span / (ni - 1) as f64
     } else {
@@ -245,12 +273,18 @@ fn latlon(s: &[u8], t: u16) -> Result<(Grid, Scan), GridError> {
     let lon: Vec<f64> = (0..ni).map(|i| west + i as f64 * di).collect();
     let (south, north) = (la1.min(la2), la1.max(la2));
     if !(-90.0..=90.0).contains(&south) || !(-90.0..=90.0).contains(&north) {
-        return Err(GridError::Invalid(t, format!("latitudes {la1} and {la2} out of range")));
+        return Err(GridError::Invalid(
+            t,
+            format!("latitudes {la1} and {la2} out of range"),
+        ));
     }
     let lat: Vec<f64> = if t == 40 {
         let n = u32_at(s, 67).ok_or(GridError::Short(t, s.len()))? as usize;
         if n == 0 || n > 8000 || nj > 2 * n {
-            return Err(GridError::Invalid(t, format!("Gaussian N = {n} with {nj} rows")));
+            return Err(GridError::Invalid(
+                t,
+                format!("Gaussian N = {n} with {nj} rows"),
+            ));
         }
         let all = gaussian_latitudes(n); // north to south
         let first = all
@@ -269,7 +303,11 @@ fn latlon(s: &[u8], t: u16) -> Result<(Grid, Scan), GridError> {
         v.reverse();
         v
     } else {
-        let dj = if nj > 1 { (north - south) / (nj - 1) as f64 } else { 0.0 };
+        let dj = if nj > 1 {
+            (north - south) / (nj - 1) as f64
+        } else {
+            0.0
+        };
         (0..nj).map(|j| south + j as f64 * dj).collect()
     };
     let horizontal = match t {
@@ -287,7 +325,11 @@ fn latlon(s: &[u8], t: u16) -> Result<(Grid, Scan), GridError> {
             Horizontal::Rotated {
                 rlat: lat,
                 rlon: lon,
-                pole: RotatedPole { south_pole_lat: sp_lat, south_pole_lon: sp_lon, angle },
+                pole: RotatedPole {
+                    south_pole_lat: sp_lat,
+                    south_pole_lon: sp_lon,
+                    angle,
+                },
             }
         }
         40 => Horizontal::LatLon {
@@ -295,15 +337,34 @@ fn latlon(s: &[u8], t: u16) -> Result<(Grid, Scan), GridError> {
             lon,
             gaussian: u32_at(s, 67).map(|n| n as usize),
         },
-        _ => Horizontal::LatLon { lat, lon, gaussian: None },
+        _ => Horizontal::LatLon {
+            lat,
+            lon,
+            gaussian: None,
+        },
     };
-    Ok((Grid { earth: e, horizontal, template: t }, scan))
+    Ok((
+        Grid {
+            earth: e,
+            horizontal,
+            template: t,
+        },
+        scan,
+    ))
 }
 
 /// Plane coordinates from the first point, spacing and scan direction.
 fn plane_axes(x0: f64, y0: f64, dx: f64, dy: f64, scan: &Scan) -> (Vec<f64>, Vec<f64>) {
-    let west = if scan.i_negative { x0 - (scan.ni - 1) as f64 * dx } else { x0 };
-    let south = if scan.j_positive { y0 } else { y0 - (scan.nj - 1) as f64 * dy };
+    let west = if scan.i_negative {
+        x0 - (scan.ni - 1) as f64 * dx
+    } else {
+        x0
+    };
+    let south = if scan.j_positive {
+        y0
+    } else {
+        y0 - (scan.nj - 1) as f64 * dy
+    };
     (
         (0..scan.ni).map(|i| west + i as f64 * dx).collect(),
         (0..scan.nj).map(|j| south + j as f64 * dy).collect(),
@@ -322,7 +383,10 @@ fn check_finite(t: u16, xs: &[f64]) -> Result<(), GridError> {
     if xs.iter().all(|v| v.is_finite()) {
         Ok(())
     } else {
-        Err(GridError::Invalid(t, "the first grid point cannot be projected".into()))
+        Err(GridError::Invalid(
+            t,
+            "the first grid point cannot be projected".into(),
+        ))
     }
 }
 
@@ -340,18 +404,31 @@ fn mercator(s: &[u8]) -> Result<(Grid, Scan), GridError> {
     let flags = u8_at(s, 59).ok_or(GridError::Short(t, s.len()))?;
     let orientation = i32_at(s, 60).ok_or(GridError::Short(t, s.len()))?;
     if orientation != 0 {
-        return Err(GridError::Invalid(t, "grid not aligned with the equator (orientation != 0)".into()));
+        return Err(GridError::Invalid(
+            t,
+            "grid not aligned with the equator (orientation != 0)".into(),
+        ));
     }
     let scan = Scan::from_flags(ni, nj, flags);
     let di = spacing(s, 64, t, "Di")?;
     let dj = spacing(s, 68, t, "Dj")?;
     // Central meridian: the first point's, so x stays small; any meridian gives the same grid.
-    let proj = Conformal::Mercator { lat_ts: lad, lon0: lo1 };
+    let proj = Conformal::Mercator {
+        lat_ts: lad,
+        lon0: lo1,
+    };
     let k = proj.scale_factor(&e, lad);
     let (x0, y0) = proj.forward(&e, la1, lo1);
     check_finite(t, &[x0, y0, k])?;
     let (x, y) = plane_axes(x0, y0, di * k, dj * k, &scan);
-    Ok((Grid { earth: e, horizontal: Horizontal::Projected { proj, x, y }, template: t }, scan))
+    Ok((
+        Grid {
+            earth: e,
+            horizontal: Horizontal::Projected { proj, x, y },
+            template: t,
+        },
+        scan,
+    ))
 }
 
 fn polar(s: &[u8]) -> Result<(Grid, Scan), GridError> {
@@ -371,14 +448,33 @@ fn polar(s: &[u8]) -> Result<(Grid, Scan), GridError> {
     let centre = u8_at(s, 63).ok_or(GridError::Short(t, s.len()))?;
     let flags = u8_at(s, 64).ok_or(GridError::Short(t, s.len()))?;
     let north = centre & 0x80 == 0;
-    let lat_ts = if lad.abs() < 1e-9 { if north { 60.0 } else { -60.0 } } else { lad };
-    let proj = Conformal::PolarStereographic { north, lat_ts, lon0: lov };
+    let lat_ts = if lad.abs() < 1e-9 {
+        if north {
+            60.0
+        } else {
+            -60.0
+        }
+    } else {
+        lad
+    };
+    let proj = Conformal::PolarStereographic {
+        north,
+        lat_ts,
+        lon0: lov,
+    };
     let k = proj.scale_factor(&e, lad);
     let scan = Scan::from_flags(ni, nj, flags);
     let (x0, y0) = proj.forward(&e, la1, lo1);
     check_finite(t, &[x0, y0, k])?;
     let (x, y) = plane_axes(x0, y0, dx * k, dy * k, &scan);
-    Ok((Grid { earth: e, horizontal: Horizontal::Projected { proj, x, y }, template: t }, scan))
+    Ok((
+        Grid {
+            earth: e,
+            horizontal: Horizontal::Projected { proj, x, y },
+            template: t,
+        },
+        scan,
+    ))
 }
 
 fn lambert(s: &[u8]) -> Result<(Grid, Scan), GridError> {
@@ -400,18 +496,36 @@ fn lambert(s: &[u8]) -> Result<(Grid, Scan), GridError> {
     let latin1 = deg(s, 65, t, 1e-6)?;
     let latin2 = deg(s, 69, t, 1e-6)?;
     if centre & 0x40 != 0 {
-        return Err(GridError::Invalid(t, "bi-polar Lambert projection is not supported".into()));
+        return Err(GridError::Invalid(
+            t,
+            "bi-polar Lambert projection is not supported".into(),
+        ));
     }
     if latin1.abs() < 1e-6 && latin2.abs() < 1e-6 {
-        return Err(GridError::Invalid(t, "standard parallels at the equator: not a cone".into()));
+        return Err(GridError::Invalid(
+            t,
+            "standard parallels at the equator: not a cone".into(),
+        ));
     }
-    let proj = Conformal::Lambert { lat1: latin1, lat2: latin2, lat0: lad, lon0: lov };
+    let proj = Conformal::Lambert {
+        lat1: latin1,
+        lat2: latin2,
+        lat0: lad,
+        lon0: lov,
+    };
     let k = proj.scale_factor(&e, lad);
     let scan = Scan::from_flags(ni, nj, flags);
     let (x0, y0) = proj.forward(&e, la1, lo1);
     check_finite(t, &[x0, y0, k])?;
     let (x, y) = plane_axes(x0, y0, dx * k, dy * k, &scan);
-    Ok((Grid { earth: e, horizontal: Horizontal::Projected { proj, x, y }, template: t }, scan))
+    Ok((
+        Grid {
+            earth: e,
+            horizontal: Horizontal::Projected { proj, x, y },
+            template: t,
+        },
+        scan,
+    ))
 }
 
 #[cfg(test)]

@@ -136,9 +136,18 @@ mod tests {
     fn wmo_numbers_from_code_table_4_2() {
         // WMO-No. 306 code table 4.2 as listed in REFERENCES.md.
         assert_eq!(Quantity::from_wmo(0, 0, 0), Some(Quantity::Temperature));
-        assert_eq!(Quantity::from_wmo(0, 3, 5), Some(Quantity::GeopotentialHeight));
-        assert_eq!(Quantity::from_wmo(0, 2, 10), Some(Quantity::AbsoluteVorticity));
-        assert_eq!(Quantity::from_wmo(0, 2, 14), Some(Quantity::PotentialVorticity));
+        assert_eq!(
+            Quantity::from_wmo(0, 3, 5),
+            Some(Quantity::GeopotentialHeight)
+        );
+        assert_eq!(
+            Quantity::from_wmo(0, 2, 10),
+            Some(Quantity::AbsoluteVorticity)
+        );
+        assert_eq!(
+            Quantity::from_wmo(0, 2, 14),
+            Some(Quantity::PotentialVorticity)
+        );
         assert_eq!(Quantity::from_wmo(0, 1, 8), None);
         assert_eq!(Quantity::from_wmo(10, 0, 3), None);
     }

@@ -86,7 +86,8 @@ pub fn centre_short_name(c: u16) -> String {
 /// Institution name for a centre (common code table C-11).
 pub fn institution(c: u16) -> String {
     match c {
-        7 => "US National Weather Service, National Centers for Environmental Prediction (NCEP)".into(),
+        7 => "US National Weather Service, National Centers for Environmental Prediction (NCEP)"
+            .into(),
         54 => "Canadian Meteorological Service, Montreal".into(),
         98 => "European Centre for Medium-Range Weather Forecasts (ECMWF)".into(),
         74 => "UK Meteorological Office, Exeter".into(),
@@ -98,7 +99,12 @@ pub fn institution(c: u16) -> String {
 }
 
 /// The file name for a step: `{centre}_{YYYYMMDD}T{HHMM}Z_{HHH}h.nc`.
-pub fn step_file_name(centre: u16, reference: NaiveDateTime, lead_hours: i64, grid_suffix: Option<usize>) -> String {
+pub fn step_file_name(
+    centre: u16,
+    reference: NaiveDateTime,
+    lead_hours: i64,
+    grid_suffix: Option<usize>,
+) -> String {
     let g = grid_suffix.map(|n| format!("_g{n}")).unwrap_or_default();
     format!(
         "{}_{}_{:03}h{}.nc",
@@ -113,7 +119,10 @@ pub fn step_file_name(centre: u16, reference: NaiveDateTime, lead_hours: i64, gr
 pub const CAUTION: &str = "These diagnostics are guidance for trained forecasters, not warnings. Local procedures and the responsible national meteorological service take precedence.";
 
 fn nc(path: &Path) -> impl Fn(netcdf::Error) -> OutputError + '_ {
-    move |source| OutputError::NetCdf { path: path.to_path_buf(), source }
+    move |source| OutputError::NetCdf {
+        path: path.to_path_buf(),
+        source,
+    }
 }
 
 fn earth_attrs(v: &mut netcdf::VariableMut<'_>, e: &Earth) -> netcdf::Result<()> {
@@ -135,10 +144,14 @@ pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, O
             let path = path.to_path_buf();
             move |source| OutputError::Io { path, source }
         };
-        fs::File::open(&tmp).and_then(|f| f.sync_all()).map_err(io(&tmp))?;
+        fs::File::open(&tmp)
+            .and_then(|f| f.sync_all())
+            .map_err(io(&tmp))?;
         fs::rename(&tmp, &final_path).map_err(io(&final_path))?;
         // Make the rename itself durable.
-        fs::File::open(dir).and_then(|d| d.sync_all()).map_err(io(dir))?;
+        fs::File::open(dir)
+            .and_then(|d| d.sync_all())
+            .map_err(io(dir))?;
         Ok(())
     });
     if result.is_err() {
@@ -155,8 +168,10 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
 
     // Global attributes.
     f.add_attribute("Conventions", "CF-1.10").map_err(&e)?;
-    f.add_attribute("title", "leeward dynamical diagnostics on isobaric levels").map_err(&e)?;
-    f.add_attribute("institution", institution(p.centre).as_str()).map_err(&e)?;
+    f.add_attribute("title", "leeward dynamical diagnostics on isobaric levels")
+        .map_err(&e)?;
+    f.add_attribute("institution", institution(p.centre).as_str())
+        .map_err(&e)?;
     f.add_attribute(
         "source",
         format!(
@@ -185,8 +200,10 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
     )
     .map_err(&e)?;
     f.add_attribute("comment", CAUTION).map_err(&e)?;
-    f.add_attribute("leeward_below_ground_masking", p.masking.as_str()).map_err(&e)?;
-    f.add_attribute("leeward_wind_components", p.winds.as_str()).map_err(&e)?;
+    f.add_attribute("leeward_below_ground_masking", p.masking.as_str())
+        .map_err(&e)?;
+    f.add_attribute("leeward_wind_components", p.winds.as_str())
+        .map_err(&e)?;
 
     // Dimensions and horizontal coordinates.
     let (ydim, xdim, aux_latlon) = match &p.grid.horizontal {
@@ -199,36 +216,49 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
     f.add_dimension(ydim, ny).map_err(&e)?;
     f.add_dimension(xdim, nx).map_err(&e)?;
 
-    let hours_since = format!("hours since {}", p.reference_time.format("%Y-%m-%d %H:%M:%S"));
+    let hours_since = format!(
+        "hours since {}",
+        p.reference_time.format("%Y-%m-%d %H:%M:%S")
+    );
     let lead_h = (p.valid_time - p.reference_time).num_seconds() as f64 / 3600.0;
     {
         let mut v = f.add_variable::<f64>("time", &["time"]).map_err(&e)?;
         v.put_attribute("standard_name", "time").map_err(&e)?;
         v.put_attribute("long_name", "valid time").map_err(&e)?;
         v.put_attribute("units", hours_since.as_str()).map_err(&e)?;
-        v.put_attribute("calendar", "proleptic_gregorian").map_err(&e)?;
+        v.put_attribute("calendar", "proleptic_gregorian")
+            .map_err(&e)?;
         v.put_attribute("axis", "T").map_err(&e)?;
         v.put_values(&[lead_h], ..).map_err(&e)?;
     }
     {
         let mut v = f.add_variable::<f64>("reference_time", &[]).map_err(&e)?;
-        v.put_attribute("standard_name", "forecast_reference_time").map_err(&e)?;
-        v.put_attribute("long_name", "reference time of the model cycle").map_err(&e)?;
+        v.put_attribute("standard_name", "forecast_reference_time")
+            .map_err(&e)?;
+        v.put_attribute("long_name", "reference time of the model cycle")
+            .map_err(&e)?;
         v.put_attribute("units", hours_since.as_str()).map_err(&e)?;
-        v.put_attribute("calendar", "proleptic_gregorian").map_err(&e)?;
+        v.put_attribute("calendar", "proleptic_gregorian")
+            .map_err(&e)?;
         v.put_value(0.0f64, ..).map_err(&e)?;
     }
     {
         let mut v = f.add_variable::<f64>("lead_time", &[]).map_err(&e)?;
-        v.put_attribute("standard_name", "forecast_period").map_err(&e)?;
-        v.put_attribute("long_name", "time since the reference time").map_err(&e)?;
+        v.put_attribute("standard_name", "forecast_period")
+            .map_err(&e)?;
+        v.put_attribute("long_name", "time since the reference time")
+            .map_err(&e)?;
         v.put_attribute("units", "hours").map_err(&e)?;
         v.put_value(lead_h, ..).map_err(&e)?;
     }
     {
-        let mut v = f.add_variable::<f64>("pressure", &["pressure"]).map_err(&e)?;
-        v.put_attribute("standard_name", "air_pressure").map_err(&e)?;
-        v.put_attribute("long_name", "pressure of the isobaric level").map_err(&e)?;
+        let mut v = f
+            .add_variable::<f64>("pressure", &["pressure"])
+            .map_err(&e)?;
+        v.put_attribute("standard_name", "air_pressure")
+            .map_err(&e)?;
+        v.put_attribute("long_name", "pressure of the isobaric level")
+            .map_err(&e)?;
         v.put_attribute("units", "Pa").map_err(&e)?;
         v.put_attribute("positive", "down").map_err(&e)?;
         v.put_attribute("axis", "Z").map_err(&e)?;
@@ -240,38 +270,63 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         let mut v = f.add_variable::<i32>("crs", &[]).map_err(&e)?;
         match &p.grid.horizontal {
             Horizontal::LatLon { .. } => {
-                v.put_attribute("grid_mapping_name", "latitude_longitude").map_err(&e)?;
+                v.put_attribute("grid_mapping_name", "latitude_longitude")
+                    .map_err(&e)?;
             }
             Horizontal::Rotated { pole, .. } => {
                 let (plat, plon, pgl) = pole.cf_north_pole();
-                v.put_attribute("grid_mapping_name", "rotated_latitude_longitude").map_err(&e)?;
-                v.put_attribute("grid_north_pole_latitude", plat).map_err(&e)?;
-                v.put_attribute("grid_north_pole_longitude", plon).map_err(&e)?;
-                v.put_attribute("north_pole_grid_longitude", pgl).map_err(&e)?;
+                v.put_attribute("grid_mapping_name", "rotated_latitude_longitude")
+                    .map_err(&e)?;
+                v.put_attribute("grid_north_pole_latitude", plat)
+                    .map_err(&e)?;
+                v.put_attribute("grid_north_pole_longitude", plon)
+                    .map_err(&e)?;
+                v.put_attribute("north_pole_grid_longitude", pgl)
+                    .map_err(&e)?;
             }
             Horizontal::Projected { proj, .. } => {
                 match *proj {
                     Conformal::Mercator { lat_ts, lon0 } => {
-                        v.put_attribute("grid_mapping_name", "mercator").map_err(&e)?;
-                        v.put_attribute("standard_parallel", lat_ts).map_err(&e)?;
-                        v.put_attribute("longitude_of_projection_origin", lon0).map_err(&e)?;
-                    }
-                    Conformal::PolarStereographic { north, lat_ts, lon0 } => {
-                        v.put_attribute("grid_mapping_name", "polar_stereographic").map_err(&e)?;
-                        v.put_attribute("straight_vertical_longitude_from_pole", lon0).map_err(&e)?;
-                        v.put_attribute("latitude_of_projection_origin", if north { 90.0 } else { -90.0 })
+                        v.put_attribute("grid_mapping_name", "mercator")
                             .map_err(&e)?;
+                        v.put_attribute("standard_parallel", lat_ts).map_err(&e)?;
+                        v.put_attribute("longitude_of_projection_origin", lon0)
+                            .map_err(&e)?;
+                    }
+                    Conformal::PolarStereographic {
+                        north,
+                        lat_ts,
+                        lon0,
+                    } => {
+                        v.put_attribute("grid_mapping_name", "polar_stereographic")
+                            .map_err(&e)?;
+                        v.put_attribute("straight_vertical_longitude_from_pole", lon0)
+                            .map_err(&e)?;
+                        v.put_attribute(
+                            "latitude_of_projection_origin",
+                            if north { 90.0 } else { -90.0 },
+                        )
+                        .map_err(&e)?;
                         // PROJ takes the hemisphere from the sign of standard_parallel.
                         let sp = if north { lat_ts.abs() } else { -lat_ts.abs() };
                         v.put_attribute("standard_parallel", sp).map_err(&e)?;
                     }
-                    Conformal::Lambert { lat1, lat2, lat0, lon0 } => {
-                        v.put_attribute("grid_mapping_name", "lambert_conformal_conic").map_err(&e)?;
+                    Conformal::Lambert {
+                        lat1,
+                        lat2,
+                        lat0,
+                        lon0,
+                    } => {
+                        v.put_attribute("grid_mapping_name", "lambert_conformal_conic")
+                            .map_err(&e)?;
                         // Always two values: with one, readers take the origin at that
                         // parallel and drop latitude_of_projection_origin.
-                        v.put_attribute("standard_parallel", vec![lat1, lat2]).map_err(&e)?;
-                        v.put_attribute("longitude_of_central_meridian", lon0).map_err(&e)?;
-                        v.put_attribute("latitude_of_projection_origin", lat0).map_err(&e)?;
+                        v.put_attribute("standard_parallel", vec![lat1, lat2])
+                            .map_err(&e)?;
+                        v.put_attribute("longitude_of_central_meridian", lon0)
+                            .map_err(&e)?;
+                        v.put_attribute("latitude_of_projection_origin", lat0)
+                            .map_err(&e)?;
                     }
                 }
                 v.put_attribute("false_easting", 0.0).map_err(&e)?;
@@ -297,28 +352,36 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         }
         Horizontal::Rotated { rlat, rlon, .. } => {
             let mut v = f.add_variable::<f64>("rlat", &["rlat"]).map_err(&e)?;
-            v.put_attribute("standard_name", "grid_latitude").map_err(&e)?;
-            v.put_attribute("long_name", "latitude in the rotated grid").map_err(&e)?;
+            v.put_attribute("standard_name", "grid_latitude")
+                .map_err(&e)?;
+            v.put_attribute("long_name", "latitude in the rotated grid")
+                .map_err(&e)?;
             v.put_attribute("units", "degrees").map_err(&e)?;
             v.put_attribute("axis", "Y").map_err(&e)?;
             v.put_values(rlat, ..).map_err(&e)?;
             let mut v = f.add_variable::<f64>("rlon", &["rlon"]).map_err(&e)?;
-            v.put_attribute("standard_name", "grid_longitude").map_err(&e)?;
-            v.put_attribute("long_name", "longitude in the rotated grid").map_err(&e)?;
+            v.put_attribute("standard_name", "grid_longitude")
+                .map_err(&e)?;
+            v.put_attribute("long_name", "longitude in the rotated grid")
+                .map_err(&e)?;
             v.put_attribute("units", "degrees").map_err(&e)?;
             v.put_attribute("axis", "X").map_err(&e)?;
             v.put_values(rlon, ..).map_err(&e)?;
         }
         Horizontal::Projected { x, y, .. } => {
             let mut v = f.add_variable::<f64>("y", &["y"]).map_err(&e)?;
-            v.put_attribute("standard_name", "projection_y_coordinate").map_err(&e)?;
-            v.put_attribute("long_name", "y coordinate of the projection").map_err(&e)?;
+            v.put_attribute("standard_name", "projection_y_coordinate")
+                .map_err(&e)?;
+            v.put_attribute("long_name", "y coordinate of the projection")
+                .map_err(&e)?;
             v.put_attribute("units", "m").map_err(&e)?;
             v.put_attribute("axis", "Y").map_err(&e)?;
             v.put_values(y, ..).map_err(&e)?;
             let mut v = f.add_variable::<f64>("x", &["x"]).map_err(&e)?;
-            v.put_attribute("standard_name", "projection_x_coordinate").map_err(&e)?;
-            v.put_attribute("long_name", "x coordinate of the projection").map_err(&e)?;
+            v.put_attribute("standard_name", "projection_x_coordinate")
+                .map_err(&e)?;
+            v.put_attribute("long_name", "x coordinate of the projection")
+                .map_err(&e)?;
             v.put_attribute("units", "m").map_err(&e)?;
             v.put_attribute("axis", "X").map_err(&e)?;
             v.put_values(x, ..).map_err(&e)?;

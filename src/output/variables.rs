@@ -43,7 +43,8 @@ pub const THETA: VarSpec = VarSpec {
     standard_name: Some("air_potential_temperature"),
     long_name: "potential temperature",
     units: "K",
-    formula: "theta = T (p0/p)^kappa, p0 = 1000 hPa, kappa = R/cp = 287.05/1004.6 (Poisson's equation)",
+    formula:
+        "theta = T (p0/p)^kappa, p0 = 1000 hPa, kappa = R/cp = 287.05/1004.6 (Poisson's equation)",
 };
 
 /// Static stability -dtheta/dp on isobaric levels.
@@ -77,6 +78,8 @@ mod tests {
         names.sort_unstable();
         names.dedup();
         assert_eq!(names.len(), ISOBARIC.len());
-        assert!(ISOBARIC.iter().all(|v| !v.units.is_empty() && !v.long_name.is_empty()));
+        assert!(ISOBARIC
+            .iter()
+            .all(|v| !v.units.is_empty() && !v.long_name.is_empty()));
     }
 }

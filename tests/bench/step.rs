@@ -1,0 +1,78 @@
+//! Benchmark of one step: decode throughput (every field, one thread and all
+//! threads), then the whole pipeline with its decode, diagnostics and write
+//! times. Prints one JSON line per measurement.
+//!
+//!     cargo bench --bench step -- FILE.grib2 [OUT_DIR]
+
+use std::time::Instant;
+
+use leeward::config::Config;
+use leeward::ingest::catalogue::catalogue;
+use leeward::ingest::decode::decode_raw;
+use leeward::pipeline::{grid_suffixes, plan, read_input, run_step};
+use rayon::prelude::*;
+
+fn main() {
+    let args: Vec<String> = std::env::args()
+        .skip(1)
+        .filter(|a| a != "--bench")
+        .collect();
+    let Some(path) = args.first() else {
+        eprintln!("usage: cargo bench --bench step -- FILE.grib2 [OUT_DIR]");
+        std::process::exit(2);
+    };
+    let out = args
+        .get(1)
+        .cloned()
+        .unwrap_or_else(|| "target/bench/out".into());
+    let bytes = std::fs::read(path).expect("read the benchmark file");
+    let t = Instant::now();
+    let cat = catalogue(&bytes);
+    let cat_s = t.elapsed().as_secs_f64();
+    let points: usize = cat.fields.iter().map(|f| f.num_points).sum();
+    println!(
+        "{{\"what\":\"catalogue\",\"fields\":{},\"seconds\":{cat_s:.4}}}",
+        cat.fields.len()
+    );
+    for threads in [1, rayon::current_num_threads()] {
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .expect("pool");
+        let mut best = f64::INFINITY;
+        for _ in 0..3 {
+            let t = Instant::now();
+            let n: usize = pool.install(|| {
+                cat.fields
+                    .par_iter()
+                    .map(|f| decode_raw(&bytes, f).map(|v| v.len()).unwrap_or(0))
+                    .sum()
+            });
+            assert_eq!(n, points);
+            best = best.min(t.elapsed().as_secs_f64());
+        }
+        println!(
+            "{{\"what\":\"decode\",\"threads\":{threads},\"points\":{points},\"seconds\":{best:.4},\"mpoints_per_s\":{:.2}}}",
+            points as f64 / best / 1e6
+        );
+    }
+    let out = std::path::PathBuf::from(out);
+    std::fs::create_dir_all(&out).expect("output dir");
+    let t = Instant::now();
+    let (file, _) = read_input(std::path::Path::new(path));
+    let files: Vec<_> = file.into_iter().collect();
+    let (steps, _) = plan(&files);
+    let suffixes = grid_suffixes(&steps);
+    let cfg = Config::default();
+    for (s, g) in steps.iter().zip(suffixes) {
+        let r = run_step(s, &files, &cfg, &out, g);
+        println!(
+            "{{\"what\":\"step\",\"fields_used\":{},\"decode_s\":{:.4},\"diagnostics_s\":{:.4},\"write_s\":{:.4},\"step_s\":{:.4}}}",
+            r.fields_used, r.decode_seconds, r.compute_seconds, r.write_seconds, r.seconds
+        );
+    }
+    println!(
+        "{{\"what\":\"pipeline\",\"seconds\":{:.4}}}",
+        t.elapsed().as_secs_f64()
+    );
+}
