@@ -445,7 +445,8 @@ fn build_field(
     let level2 = Surface::parse(sec4, 28).ok_or("section 4 cut short")?;
     let unit_s = time_unit_seconds(unit)
         .ok_or_else(|| format!("forecast time unit {unit} (code table 4.4) is not supported"))?;
-    let lead = Duration::seconds(i64::from(ftime) * unit_s);
+    let lead = Duration::try_seconds(i64::from(ftime) * unit_s)
+        .ok_or_else(|| format!("forecast time {ftime} (unit {unit}) is out of range"))?;
     let member = match product_template {
         1 | 11 => u8_at(sec4, 35),
         _ => None,
@@ -455,7 +456,12 @@ fn build_field(
         11 => date_time_at(sec4, 37),
         _ => None,
     };
-    let valid_time = end_of_period.unwrap_or(reference_time + lead);
+    let valid_time = match end_of_period {
+        Some(t) => t,
+        None => reference_time
+            .checked_add_signed(lead)
+            .ok_or_else(|| format!("reference time plus forecast time {ftime} (unit {unit}) is out of range"))?,
+    };
     Ok(FieldEntry {
         index,
         message_offset: start,
