@@ -60,10 +60,13 @@ PARAM_U = (2, 2)  # u-component of wind, m s-1
 PARAM_V = (2, 3)  # v-component of wind, m s-1
 PARAM_ABSV = (2, 10)  # absolute vorticity, s-1
 
-#: ecCodes packingType values for GRIB2 data representation templates 5.0, 5.3, 5.40, 5.42.
+#: ecCodes packingType values for GRIB2 data representation templates 5.0, 5.2, 5.3, 5.40,
+#: 5.41, 5.42.
 PACKINGS = (
     "grid_simple",
+    "grid_complex",
     "grid_complex_spatial_differencing",
+    "grid_png",
     "grid_jpeg",
     "grid_ccsds",
 )
@@ -490,9 +493,13 @@ def encode_field(
             ("scaledValueOfFirstFixedSurface", int(round(level_hpa * 100))),
             ("typeOfSecondFixedSurface", 255),
         ])
+        vals = np.ascontiguousarray(values2d, dtype=float).ravel()
+        if packing == "grid_png" and np.ptp(vals) == 0.0:
+            # ecCodes 2.50 cannot PNG-pack a constant field (v = 0 here): simple packing
+            # for that one field; u, T and Z still go through template 5.41.
+            packing = "grid_simple"
         eccodes.codes_set_string(h, "packingType", packing)
         eccodes.codes_set_long(h, "bitsPerValue", bits)
-        vals = np.ascontiguousarray(values2d, dtype=float).ravel()
         eccodes.codes_set_values(h, vals)
         return eccodes.codes_get_message(h)
     finally:
