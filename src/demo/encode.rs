@@ -275,7 +275,10 @@ mod tests {
 
         // Found by the corrupt-input property test: a forecast time that takes the
         // valid time past the calendar is a problem for that field, not a panic.
-        let far = Message { lead_hours: u32::MAX, ..m };
+        let far = Message {
+            lead_hours: u32::MAX,
+            ..m
+        };
         let cat = catalogue(&encode(&far));
         assert_eq!(cat.problems.len(), 1, "{:?}", cat.problems);
         assert!(cat.problems[0].reason.contains("out of range"));

@@ -458,9 +458,9 @@ fn build_field(
     };
     let valid_time = match end_of_period {
         Some(t) => t,
-        None => reference_time
-            .checked_add_signed(lead)
-            .ok_or_else(|| format!("reference time plus forecast time {ftime} (unit {unit}) is out of range"))?,
+        None => reference_time.checked_add_signed(lead).ok_or_else(|| {
+            format!("reference time plus forecast time {ftime} (unit {unit}) is out of range")
+        })?,
     };
     Ok(FieldEntry {
         index,

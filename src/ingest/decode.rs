@@ -86,6 +86,12 @@ pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError>
             "section ranges outside the file".into(),
         ));
     };
+    if let Err(reason) = check_packed_sizes(f.data_template, &s5, &s7, f.num_points) {
+        return Err(DecodeError::Packing {
+            template: f.data_template,
+            reason,
+        });
+    }
     let mut s6 = s6;
     // A field that reuses the previous bitmap (indicator 254) was pointed at that
     // bitmap's section by the catalogue; it is an ordinary bitmap section.
@@ -126,6 +132,56 @@ pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError>
         });
     }
     Ok(values)
+}
+
+/// Sizes stated inside the packed data are checked against the grid before a
+/// decoder allocates from them: a lying size must be an error, not an attempt
+/// to allocate terabytes (found by the corrupt-input property test).
+fn check_packed_sizes(template: u16, s5: &[u8], s7: &[u8], n: usize) -> Result<(), String> {
+    use super::bytes::u32_at;
+    let payload = s7.get(5..).unwrap_or(&[]);
+    match template {
+        // Complex packing: number of groups NG, octets 32-35 of section 5.
+        2 | 3 => {
+            let ng = u32_at(s5, 31).unwrap_or(0) as usize;
+            if ng > n {
+                return Err(format!("{ng} groups for {n} points"));
+            }
+        }
+        // JPEG 2000 code stream: SOC then SIZ (ISO/IEC 15444-1 annex A.5.1).
+        40 if !payload.is_empty() => {
+            let at = payload
+                .windows(4)
+                .take(256)
+                .position(|w| w == [0xff, 0x4f, 0xff, 0x51])
+                .ok_or("no JPEG 2000 code stream header (SOC, SIZ) in section 7")?;
+            let siz = &payload[at + 4..];
+            let get = |k: usize| u32_at(siz, 4 + 4 * k).map(|v| v as usize);
+            let (Some(xs), Some(ys), Some(xo), Some(yo), Some(xt), Some(yt)) =
+                (get(0), get(1), get(2), get(3), get(4), get(5))
+            else {
+                return Err("JPEG 2000 size marker cut short".into());
+            };
+            let (w, h) = (xs.saturating_sub(xo), ys.saturating_sub(yo));
+            if w.saturating_mul(h) > n || xt.min(xs).saturating_mul(yt.min(ys)) > n.max(1) * 4 {
+                return Err(format!(
+                    "JPEG 2000 image of {w} x {h} (tiles {xt} x {yt}) for {n} points"
+                ));
+            }
+        }
+        // PNG: IHDR width and height (ISO/IEC 15948).
+        41 if payload.len() >= 24 => {
+            let (w, h) = (
+                u32_at(payload, 16).unwrap_or(0) as usize,
+                u32_at(payload, 20).unwrap_or(0) as usize,
+            );
+            if w.saturating_mul(h) > n {
+                return Err(format!("PNG image of {w} x {h} for {n} points"));
+            }
+        }
+        _ => {}
+    }
+    Ok(())
 }
 
 /// A field packed with zero bits per value holds one value everywhere:
