@@ -1,0 +1,159 @@
+//! The `leeward process` command as an operator meets it: exit codes, messages
+//! naming the file and the reason, the run going on past bad input, and no
+//! partial file ever left in the output directory.
+
+mod common;
+
+use std::path::Path;
+use std::process::Command;
+
+fn run(args: &[&str]) -> (i32, String, String) {
+    let out = Command::new(common::leeward_bin())
+        .args(args)
+        .output()
+        .expect("run leeward");
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+fn tmp(name: &str) -> std::path::PathBuf {
+    let d = std::env::temp_dir().join(format!("leeward-cli-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+fn nc_files(dir: &Path) -> Vec<String> {
+    let mut v: Vec<String> = std::fs::read_dir(dir)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .collect();
+    v.sort();
+    v
+}
+
+#[test]
+fn good_bad_and_nothing_exit_codes() {
+    let d = tmp("codes");
+    let inputs = leeward::demo::write_inputs(&d.join("in"), &[0, 6]).unwrap();
+    let good: Vec<&str> = inputs.iter().map(|p| p.to_str().unwrap()).collect();
+    let out = d.join("out");
+    let out_s = out.to_str().unwrap();
+
+    // All good: 0, one file per step.
+    let mut args = vec!["process", "--out", out_s];
+    args.extend(&good);
+    let (code, stdout, _) = run(&args);
+    assert_eq!(code, 0, "{stdout}");
+    assert_eq!(
+        nc_files(&out),
+        vec!["c255_20260314T0000Z_000h.nc", "c255_20260314T0000Z_006h.nc"]
+    );
+    let before = std::fs::read(out.join("c255_20260314T0000Z_000h.nc")).unwrap();
+
+    // A truncated copy, an empty file and garbage beside good input: 3, each named with its reason.
+    let bytes = std::fs::read(&inputs[1]).unwrap();
+    let cut = d.join("in/cut.grib2");
+    // Not on a message boundary: the last message is cut short.
+    std::fs::write(&cut, &bytes[..bytes.len() / 3 + 1000]).unwrap();
+    let empty = d.join("in/empty.grib2");
+    std::fs::write(&empty, b"").unwrap();
+    let junk = d.join("in/junk.grib2");
+    std::fs::write(&junk, b"GRIB\x00\x00\x00\x02not really a message").unwrap();
+    let out2 = d.join("out2");
+    let (code, stdout, stderr) = run(&[
+        "process",
+        "--out",
+        out2.to_str().unwrap(),
+        good[0],
+        cut.to_str().unwrap(),
+        empty.to_str().unwrap(),
+        junk.to_str().unwrap(),
+    ]);
+    assert_eq!(code, 3, "{stdout}\n{stderr}");
+    assert!(
+        stderr.contains("cut.grib2") && stderr.contains("truncated"),
+        "{stderr}"
+    );
+    assert!(
+        stderr.contains("empty.grib2") && stderr.contains("empty file"),
+        "{stderr}"
+    );
+    assert!(stderr.contains("junk.grib2"), "{stderr}");
+    assert!(nc_files(&out2).contains(&"c255_20260314T0000Z_000h.nc".to_string()));
+
+    // Only bad input: 4, and the earlier products are untouched.
+    let (code, _, stderr) = run(&["process", "--out", out_s, empty.to_str().unwrap()]);
+    assert_eq!(code, 4, "{stderr}");
+    assert_eq!(
+        std::fs::read(out.join("c255_20260314T0000Z_000h.nc")).unwrap(),
+        before
+    );
+    for dir in [&out, &out2] {
+        assert!(
+            nc_files(dir).iter().all(|n| !n.starts_with('.')),
+            "temporary left in {}",
+            dir.display()
+        );
+    }
+    let _ = std::fs::remove_dir_all(&d);
+}
+
+#[test]
+fn invalid_config_is_a_usage_error_naming_every_key() {
+    let d = tmp("config");
+    let cfg = d.join("bad.toml");
+    std::fs::write(
+        &cfg,
+        "[products]\nvorticity = false\nstability = false\n[output]\ndeflate_level = 11\n",
+    )
+    .unwrap();
+    let inputs = leeward::demo::write_inputs(&d.join("in"), &[0]).unwrap();
+    let (code, _, stderr) = run(&[
+        "process",
+        "--config",
+        cfg.to_str().unwrap(),
+        "--out",
+        d.join("out").to_str().unwrap(),
+        inputs[0].to_str().unwrap(),
+    ]);
+    assert_eq!(code, 2);
+    assert!(
+        stderr.contains("output.deflate_level") && stderr.contains("products"),
+        "{stderr}"
+    );
+    let (code, _, stderr) = run(&["process", "--out", "x"]);
+    assert_eq!(code, 2, "{stderr}");
+    let _ = std::fs::remove_dir_all(&d);
+}
+
+#[test]
+fn help_documents_the_exit_codes() {
+    let (code, stdout, _) = run(&["process", "--help"]);
+    assert_eq!(code, 0);
+    assert!(
+        stdout.contains("3 some input was unusable") && stdout.contains("4 nothing could be done")
+    );
+}
+
+#[test]
+fn unwritable_output_directory_is_reported_not_a_crash() {
+    // A file where the output directory should be.
+    let d = tmp("unwritable");
+    let inputs = leeward::demo::write_inputs(&d.join("in"), &[0]).unwrap();
+    let blocker = d.join("out");
+    std::fs::write(&blocker, b"a file, not a directory").unwrap();
+    let (code, _, stderr) = run(&[
+        "process",
+        "--out",
+        blocker.to_str().unwrap(),
+        inputs[0].to_str().unwrap(),
+    ]);
+    assert_eq!(code, 4, "{stderr}");
+    assert!(stderr.contains("out"), "{stderr}");
+    let _ = std::fs::remove_dir_all(&d);
+}
