@@ -642,6 +642,7 @@ pub fn run_step(
         winds,
         inputs: inputs_used,
         deflate: cfg.output.deflate_level,
+        significant_bits: cfg.output.significant_bits,
     };
     let mut name = step_file_name(step.key.centre, step.key.reference_time, lead, grid_suffix);
     if let Some(m) = step.key.member {
