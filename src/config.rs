@@ -46,6 +46,32 @@ pub struct Config {
     pub products: Products,
     /// How to write them.
     pub output: Output,
+    /// Isentropic analysis: surfaces, layers, dynamic tropopause.
+    pub isentropic: Isentropic,
+}
+
+/// Isentropic analysis settings.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Isentropic {
+    /// Potential temperatures of the isentropic surfaces, K, ascending.
+    pub surfaces: Vec<f64>,
+    /// Isentropic layers [bottom, top] for layer PV, K.
+    pub layers: Vec<[f64; 2]>,
+    /// |PV| values of the dynamic tropopause surfaces, PVU, ascending (+ north, - south).
+    pub tropopause_pvu: Vec<f64>,
+}
+
+impl Default for Isentropic {
+    fn default() -> Self {
+        Isentropic {
+            // 280 to 360 K every 5 K: the troposphere and lower stratosphere of mid-latitudes
+            // in all seasons, 315-330 K for the tropopause break (common practice).
+            surfaces: (0..=16).map(|k| 280.0 + 5.0 * f64::from(k)).collect(),
+            layers: vec![[290.0, 300.0], [300.0, 310.0], [310.0, 330.0]],
+            tropopause_pvu: vec![2.0],
+        }
+    }
 }
 
 /// Product switches.
@@ -58,6 +84,14 @@ pub struct Products {
     pub stability: bool,
     /// Mask isobaric levels below the ground where surface pressure or orography is in the input.
     pub mask_below_ground: bool,
+    /// Ertel PV on isobaric levels, full form (`pv`).
+    pub isobaric_pv: bool,
+    /// Pressure, height, temperature, winds, Montgomery streamfunction and PV on isentropic surfaces (`isen_*`).
+    pub isentropic: bool,
+    /// The dynamic tropopause on the configured PV surfaces (`trop_*`).
+    pub tropopause: bool,
+    /// Layer PV in column-depth form for the configured isentropic layers (`layer_pv`, `layer_dp`).
+    pub layer_pv: bool,
 }
 
 impl Default for Products {
@@ -66,6 +100,10 @@ impl Default for Products {
             vorticity: true,
             stability: true,
             mask_below_ground: true,
+            isobaric_pv: true,
+            isentropic: true,
+            tropopause: true,
+            layer_pv: true,
         }
     }
 }
@@ -132,7 +170,53 @@ impl Config {
                 self.output.significant_bits
             ));
         }
-        if !self.products.vorticity && !self.products.stability {
+        let iso = &self.isentropic;
+        let in_range = |t: f64| (150.0..=2000.0).contains(&t);
+        if self.products.isentropic && iso.surfaces.is_empty() {
+            p.push("isentropic.surfaces: empty while products.isentropic is on".into());
+        }
+        if iso.surfaces.windows(2).any(|w| w[1] <= w[0]) {
+            p.push("isentropic.surfaces: must be strictly ascending".into());
+        }
+        if let Some(t) = iso.surfaces.iter().find(|t| !in_range(**t)) {
+            p.push(format!(
+                "isentropic.surfaces: {t} K is outside 150 to 2000 K"
+            ));
+        }
+        for (k, l) in iso.layers.iter().enumerate() {
+            if !(in_range(l[0]) && in_range(l[1]) && l[0] < l[1]) {
+                p.push(format!(
+                    "isentropic.layers[{k}]: [{}, {}] must be [bottom, top] with bottom < top, within 150 to 2000 K",
+                    l[0], l[1]
+                ));
+            }
+        }
+        if self.products.layer_pv && iso.layers.is_empty() {
+            p.push("isentropic.layers: empty while products.layer_pv is on".into());
+        }
+        if self.products.tropopause && iso.tropopause_pvu.is_empty() {
+            p.push("isentropic.tropopause_pvu: empty while products.tropopause is on".into());
+        }
+        if let Some(v) = iso
+            .tropopause_pvu
+            .iter()
+            .find(|v| !(**v > 0.0 && **v <= 20.0))
+        {
+            p.push(format!(
+                "isentropic.tropopause_pvu: {v} must be a magnitude above 0 and at most 20 PVU"
+            ));
+        }
+        if iso.tropopause_pvu.windows(2).any(|w| w[1] <= w[0]) {
+            p.push("isentropic.tropopause_pvu: must be strictly ascending".into());
+        }
+        let pr = &self.products;
+        if !(pr.vorticity
+            || pr.stability
+            || pr.isobaric_pv
+            || pr.isentropic
+            || pr.tropopause
+            || pr.layer_pv)
+        {
             p.push("products: every product is switched off; nothing would be made".into());
         }
         p
@@ -146,14 +230,27 @@ mod tests {
     #[test]
     fn defaults_and_every_problem_at_once() {
         assert_eq!(Config::from_toml("", "t").ok(), Some(Config::default()));
-        let bad =
-            "[products]\nvorticity = false\nstability = false\n[output]\ndeflate_level = 12\n";
+        let bad = "[products]\nvorticity = false\nstability = false\nisobaric_pv = false\n\
+                   isentropic = false\ntropopause = false\nlayer_pv = false\n\
+                   [output]\ndeflate_level = 12\n\
+                   [isentropic]\nsurfaces = [300.0, 290.0]\nlayers = [[310.0, 300.0]]\ntropopause_pvu = [-2.0]\n";
         match Config::from_toml(bad, "t") {
             Err(ConfigError::Invalid { problems, .. }) => {
-                assert_eq!(problems.len(), 2);
+                assert_eq!(problems.len(), 5, "{problems:?}");
                 assert!(problems[0].starts_with("output.deflate_level"));
+                for key in [
+                    "isentropic.surfaces",
+                    "isentropic.layers[0]",
+                    "isentropic.tropopause_pvu",
+                    "products",
+                ] {
+                    assert!(
+                        problems.iter().any(|p| p.starts_with(key)),
+                        "{key}: {problems:?}"
+                    );
+                }
             }
-            other => panic!("expected two problems, got {other:?}"),
+            other => panic!("expected five problems, got {other:?}"),
         }
         let unknown = "[output]\ndeflate = 3\n";
         assert!(matches!(

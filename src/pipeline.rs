@@ -12,19 +12,20 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use chrono::NaiveDateTime;
-use ndarray::{s, Array2, Array3, Axis};
+use ndarray::{Array2, Array3, ArrayView3, Axis};
 use rayon::prelude::*;
 use tracing::{info, warn};
 
 use crate::config::Config;
 use crate::diagnostics::constants::G0;
-use crate::diagnostics::{stability, vorticity};
+use crate::diagnostics::horizontal::Plane;
+use crate::diagnostics::{isentropic, pv, stability, tropopause, vorticity};
 use crate::geometry::Horizontal;
 use crate::ingest::catalogue::{catalogue, Catalogue, FieldEntry};
 use crate::ingest::decode::decode;
 use crate::ingest::grid::{parse_grid, Scan};
 use crate::ingest::params::{surface, Quantity};
-use crate::output::cf::{step_file_name, write_step, StepProducts};
+use crate::output::cf::{step_file_name, write_step, Product, StepProducts, Vertical};
 use crate::output::variables;
 
 /// A problem with the input, said so an operator can act on it.
@@ -415,16 +416,25 @@ pub fn run_step(
         rep.missing
             .push(format!("u at {} hPa (v present)", *p as f64 / 1e4));
     }
-    let want_vort = cfg.products.vorticity && !wind_levels.is_empty();
-    let want_stab = cfg.products.stability && !t_levels.is_empty();
-    if cfg.products.vorticity && wind_levels.is_empty() {
-        rep.missing.push("isobaric u and v: no vorticity".into());
-    }
-    if cfg.products.stability && t_levels.is_empty() {
+    let pr = &cfg.products;
+    let have_t = !t_levels.is_empty();
+    let have_w = !wind_levels.is_empty();
+    let want_vort = pr.vorticity && have_w;
+    let want_stab = pr.stability && have_t;
+    let want_pv = pr.isobaric_pv && have_t && have_w;
+    let want_isen = pr.isentropic && have_t;
+    let want_trop = pr.tropopause && have_t && have_w;
+    let want_layer = pr.layer_pv && have_t && have_w;
+    if (pr.vorticity || pr.isobaric_pv || pr.tropopause || pr.layer_pv) && !have_w {
         rep.missing
-            .push("isobaric temperature: no theta, stab, n2".into());
+            .push("isobaric u and v: no vorticity or PV".into());
     }
-    if !want_vort && !want_stab {
+    if (pr.stability || pr.isentropic || pr.isobaric_pv || pr.tropopause || pr.layer_pv) && !have_t
+    {
+        rep.missing
+            .push("isobaric temperature: no theta, stability, PV or isentropic products".into());
+    }
+    if !(want_vort || want_stab || want_pv || want_isen || want_trop || want_layer) {
         rep.issues = issues;
         rep.skipped = Some(format!(
             "no fields for any product ({})",
@@ -432,6 +442,14 @@ pub fn run_step(
         ));
         rep.seconds = t0.elapsed().as_secs_f64();
         return rep;
+    }
+    let need_t = want_stab || want_pv || want_isen || want_trop || want_layer;
+    let need_w = want_vort || want_pv || want_isen || want_trop || want_layer;
+    let need_z_products = want_isen || want_trop;
+    let z_levels = levels_of(Quantity::GeopotentialHeight);
+    if need_z_products && z_levels.is_empty() {
+        rep.missing
+            .push("isobaric geopotential height: no isen_z, isen_m, trop_z".into());
     }
 
     // Decode what the products need, in parallel across fields.
@@ -441,23 +459,21 @@ pub fn run_step(
         SurfacePressure,
         Orography,
     }
+    let mask_by_orography =
+        pr.mask_below_ground && inv.orography.is_some() && inv.surface_pressure.is_none();
     let mut wanted: Vec<(Want, FieldRef)> = Vec::new();
     for ((q, p), fr) in &inv.isobaric {
         let need = match q {
-            Quantity::Temperature => want_stab,
-            Quantity::WindU | Quantity::WindV => want_vort && wind_levels.contains(p),
-            Quantity::GeopotentialHeight => {
-                cfg.products.mask_below_ground
-                    && inv.orography.is_some()
-                    && inv.surface_pressure.is_none()
-            }
+            Quantity::Temperature => need_t,
+            Quantity::WindU | Quantity::WindV => need_w && wind_levels.contains(p),
+            Quantity::GeopotentialHeight => need_z_products || mask_by_orography,
             _ => false,
         };
         if need {
             wanted.push((Want::Iso(*q, *p), fr.clone()));
         }
     }
-    if cfg.products.mask_below_ground {
+    if pr.mask_below_ground {
         if let Some(fr) = &inv.surface_pressure {
             wanted.push((Want::SurfacePressure, fr.clone()));
         } else if let Some((fr, _)) = &inv.orography {
@@ -470,14 +486,23 @@ pub fn run_step(
     rep.decode_seconds = t_decode.elapsed().as_secs_f64();
     let t_compute = Instant::now();
 
-    // Below-ground mask per level, from surface pressure or from orography and heights.
+    // The isobaric levels of the products: every level with temperature or winds.
     let (ny, nx) = grid.shape();
-    let mut levels: Vec<i64> = t_levels.iter().chain(wind_levels.iter()).copied().collect();
+    let mut levels: Vec<i64> = Vec::new();
+    if need_t {
+        levels.extend(&t_levels);
+    }
+    if need_w {
+        levels.extend(&wind_levels);
+    }
     levels.sort_unstable();
     levels.dedup();
     let p_pa: Vec<f64> = levels.iter().map(|k| *k as f64 / 100.0).collect();
+    let nz = levels.len();
+
+    // Below-ground mask per level, from surface pressure or from orography and heights.
     let masking;
-    let mut below = vec![None::<Array2<bool>>; levels.len()];
+    let mut below = vec![None::<Array2<bool>>; nz];
     if let Some(ps) = dec.remove(&Want::SurfacePressure) {
         masking = "levels with pressure greater than the surface pressure are missing".to_string();
         for (k, p) in p_pa.iter().enumerate() {
@@ -507,29 +532,63 @@ pub fn run_step(
     } else {
         masking = "none: no surface pressure or orography in the input".to_string();
     }
-    let apply_mask = |k: usize, a: &mut Array2<f32>| {
-        if let Some(m) = &below[k] {
-            ndarray::Zip::from(a).and(m).for_each(|v, &b| {
-                if b {
-                    *v = f32::NAN;
+
+    // Stack each quantity on the product levels (NaN where a level lacks it), masked below ground.
+    let mut stack = |q: Quantity| -> Option<Array3<f32>> {
+        let mut out: Option<Array3<f32>> = None;
+        for (k, lk) in levels.iter().enumerate() {
+            if let Some(mut a) = dec.remove(&Want::Iso(q, *lk)) {
+                if let Some(m) = &below[k] {
+                    ndarray::Zip::from(&mut a).and(m).for_each(|v, &b| {
+                        if b {
+                            *v = f32::NAN;
+                        }
+                    });
                 }
-            });
+                out.get_or_insert_with(|| Array3::from_elem((nz, ny, nx), f32::NAN))
+                    .index_axis_mut(Axis(0), k)
+                    .assign(&a);
+            }
         }
+        out
     };
+    let t3 = if need_t {
+        stack(Quantity::Temperature)
+    } else {
+        None
+    };
+    let u3 = if need_w { stack(Quantity::WindU) } else { None };
+    let v3 = if need_w { stack(Quantity::WindV) } else { None };
+    let z3 = stack(Quantity::GeopotentialHeight);
+    drop(dec);
 
     let (lat, lon) = grid.latlon();
-    let nz = levels.len();
-    let mut fields = Vec::new();
+    let plane = Plane::new(&grid, &lat, &lon);
+    let mut fields: Vec<Product> = Vec::new();
     let mut winds = "no winds used".to_string();
+    let first_wind = wind_levels
+        .first()
+        .and_then(|p| inv.isobaric.get(&(Quantity::WindU, *p)));
+    let input_grid_relative = first_wind
+        .map(|fr| fr.entry.winds_grid_relative)
+        .unwrap_or(false);
+    let (u_spec, v_spec) = if plane.rotation.is_some() && input_grid_relative {
+        (variables::WIND_U_GRID, variables::WIND_V_GRID)
+    } else {
+        (variables::WIND_U_EARTH, variables::WIND_V_EARTH)
+    };
 
-    if want_vort {
-        let f = grid.coriolis(&lat);
-        let rotation = grid.axis_rotation(&lat, &lon);
-        let m = grid.map_factor(&lat);
-        let grid_rel: Vec<bool> = wind_levels
+    // Winds along the grid's axes, level by level, as each level's flag says.
+    let mut wind_axes: Option<(Array3<f32>, Array3<f32>)> = None;
+    if let (Some(u3), Some(v3)) = (&u3, &v3) {
+        let grid_rel: Vec<bool> = levels
             .iter()
-            .filter_map(|p| inv.isobaric.get(&(Quantity::WindU, *p)))
-            .map(|fr| fr.entry.winds_grid_relative)
+            .map(|p| {
+                inv.isobaric
+                    .get(&(Quantity::WindU, *p))
+                    .map(|fr| fr.entry.winds_grid_relative)
+                    .unwrap_or(true)
+            })
             .collect();
         let all_grid = grid_rel.iter().all(|&g| g);
         let any_grid = grid_rel.iter().any(|&g| g);
@@ -539,81 +598,303 @@ pub fn run_step(
             (_, false, false) => "relative to east and north (flag table 3.3 bit 5 clear); turned into grid axes before differencing".into(),
             _ => "mixed: each level as its flag table 3.3 bit 5 says".into(),
         };
-        let mut zeta = Array3::from_elem((nz, ny, nx), f32::NAN);
-        let mut eta = Array3::from_elem((nz, ny, nx), f32::NAN);
-        let per_level: Vec<(usize, Array2<f64>)> = levels
-            .par_iter()
-            .enumerate()
-            .filter_map(|(k, lk)| {
-                let u = dec.get(&Want::Iso(Quantity::WindU, *lk))?;
-                let v = dec.get(&Want::Iso(Quantity::WindV, *lk))?;
-                let fr = inv.isobaric.get(&(Quantity::WindU, *lk))?;
-                let mut u = u.clone();
-                let mut v = v.clone();
-                apply_mask(k, &mut u);
-                apply_mask(k, &mut v);
-                let mut u = u.mapv(f64::from);
-                let mut v = v.mapv(f64::from);
-                if let (Some(alpha), false) = (&rotation, fr.entry.winds_grid_relative) {
-                    let (ug, vg) = vorticity::earth_to_grid(u.view(), v.view(), alpha.view());
-                    u = ug;
-                    v = vg;
-                }
-                let z = match &grid.horizontal {
-                    Horizontal::LatLon { lat, lon, .. } => vorticity::relative_vorticity_sphere(
-                        u.view(),
-                        v.view(),
-                        lat,
-                        lon,
-                        grid.radius(),
-                        grid.periodic(),
-                    ),
-                    Horizontal::Rotated { rlat, rlon, .. } => vorticity::relative_vorticity_sphere(
-                        u.view(),
-                        v.view(),
-                        rlat,
-                        rlon,
-                        grid.radius(),
-                        grid.periodic(),
-                    ),
-                    Horizontal::Projected { x, y, .. } => {
-                        let dx = if x.len() > 1 { x[1] - x[0] } else { f64::NAN };
-                        let dy = if y.len() > 1 { y[1] - y[0] } else { f64::NAN };
-                        vorticity::relative_vorticity_conformal(
-                            u.view(),
-                            v.view(),
-                            m.view(),
-                            dx,
-                            dy,
-                        )
-                    }
-                };
-                Some((k, z))
+        if plane.rotation.is_some() && !all_grid {
+            let mut ug = u3.clone();
+            let mut vg = v3.clone();
+            for (k, &rel) in grid_rel.iter().enumerate() {
+                let (a, b) = plane.to_grid_axes(
+                    u3.index_axis(Axis(0), k).mapv(f64::from),
+                    v3.index_axis(Axis(0), k).mapv(f64::from),
+                    rel,
+                );
+                ug.index_axis_mut(Axis(0), k).assign(&a.mapv(|x| x as f32));
+                vg.index_axis_mut(Axis(0), k).assign(&b.mapv(|x| x as f32));
+            }
+            wind_axes = Some((ug, vg));
+        }
+    }
+    let (ug3, vg3) = match (&wind_axes, &u3, &v3) {
+        (Some((a, b)), _, _) => (Some(a), Some(b)),
+        (None, Some(a), Some(b)) => (Some(a), Some(b)),
+        _ => (None, None),
+    };
+
+    // Isobaric vorticity, level by level in parallel.
+    let mut eta3: Option<Array3<f32>> = None;
+    if let (Some(ug), Some(vg)) = (ug3, vg3) {
+        let per_level: Vec<Array2<f64>> = (0..nz)
+            .into_par_iter()
+            .map(|k| {
+                plane.vorticity(
+                    ug.index_axis(Axis(0), k).mapv(f64::from).view(),
+                    vg.index_axis(Axis(0), k).mapv(f64::from).view(),
+                )
             })
             .collect();
-        for (k, z) in per_level {
-            let e = vorticity::absolute_vorticity(z.view(), f.view());
-            zeta.slice_mut(s![k, .., ..]).assign(&z.mapv(|x| x as f32));
-            eta.slice_mut(s![k, .., ..]).assign(&e.mapv(|x| x as f32));
+        let mut zeta = Array3::from_elem((nz, ny, nx), f32::NAN);
+        let mut eta = Array3::from_elem((nz, ny, nx), f32::NAN);
+        for (k, z) in per_level.into_iter().enumerate() {
+            let e = vorticity::absolute_vorticity(z.view(), plane.f.view());
+            zeta.index_axis_mut(Axis(0), k)
+                .assign(&z.mapv(|x| x as f32));
+            eta.index_axis_mut(Axis(0), k).assign(&e.mapv(|x| x as f32));
         }
-        fields.push((variables::ZETA, zeta));
-        fields.push((variables::ETA, eta));
+        if want_vort {
+            fields.push(Product {
+                spec: variables::ZETA,
+                vertical: Vertical::Pressure,
+                data: zeta,
+            });
+            fields.push(Product {
+                spec: variables::ETA,
+                vertical: Vertical::Pressure,
+                data: eta.clone(),
+            });
+        }
+        eta3 = Some(eta);
     }
-    if want_stab {
-        let mut t = Array3::from_elem((nz, ny, nx), f32::NAN);
-        for (k, lk) in levels.iter().enumerate() {
-            if let Some(a) = dec.get(&Want::Iso(Quantity::Temperature, *lk)) {
-                let mut a = a.clone();
-                apply_mask(k, &mut a);
-                t.index_axis_mut(Axis(0), k).assign(&a);
+
+    // Potential temperature and static stability.
+    let st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
+
+    // Isobaric PV in its full form.
+    let mut pv3: Option<Array3<f32>> = None;
+    if let (Some(st), Some(eta), Some(ug), Some(vg)) = (&st, &eta3, ug3, vg3) {
+        if want_pv || want_trop {
+            let lnp: Vec<f64> = p_pa.iter().map(|p| p.ln()).collect();
+            let dudp = vertical_derivative(ug.view(), &lnp, &p_pa);
+            let dvdp = vertical_derivative(vg.view(), &lnp, &p_pa);
+            let per_level: Vec<Array2<f32>> = (0..nz)
+                .into_par_iter()
+                .map(|k| {
+                    let th = st.theta.index_axis(Axis(0), k).mapv(f64::from);
+                    let (gx, gy) = plane.gradient(th.view());
+                    Array2::from_shape_fn((ny, nx), |(j, i)| {
+                        pv::isobaric_pv(
+                            f64::from(eta[(k, j, i)]),
+                            -f64::from(st.neg_dtheta_dp[(k, j, i)]),
+                            f64::from(dudp[(k, j, i)]),
+                            f64::from(dvdp[(k, j, i)]),
+                            gx[(j, i)],
+                            gy[(j, i)],
+                        ) as f32
+                    })
+                })
+                .collect();
+            let mut pv = Array3::from_elem((nz, ny, nx), f32::NAN);
+            for (k, a) in per_level.into_iter().enumerate() {
+                pv.index_axis_mut(Axis(0), k).assign(&a);
+            }
+            pv3 = Some(pv);
+        }
+    }
+
+    // Isentropic surfaces.
+    if let (true, Some(st)) = (want_isen, &st) {
+        let targets = &cfg.isentropic.surfaces;
+        let surf = isentropic::surfaces(st.theta.view(), &p_pa, targets);
+        for (k, g) in surf.gaps.iter().enumerate() {
+            info!(cycle = %cycle, step = lead, theta = targets[k], below = g.below, above = g.above, unstable = g.unstable, "isentropic surface gaps");
+        }
+        let ns = targets.len();
+        let p_s = surf.pressure.clone();
+        let t_s = Array3::from_shape_fn((ns, ny, nx), |(s, j, i)| {
+            isentropic::temperature_on_surface(targets[s], f64::from(p_s[(s, j, i)])) as f32
+        });
+        let z_s = z3
+            .as_ref()
+            .map(|z| isentropic::on_surfaces(z.view(), &surf));
+        let mut pv_s = Array3::from_elem((ns, ny, nx), f32::NAN);
+        if let (Some(u), Some(v), Some(ug), Some(vg)) = (&u3, &v3, ug3, vg3) {
+            let ugs = isentropic::on_surfaces(ug.view(), &surf);
+            let vgs = isentropic::on_surfaces(vg.view(), &surf);
+            let per: Vec<Array2<f64>> = (0..ns)
+                .into_par_iter()
+                .map(|s| {
+                    let z = plane.vorticity(
+                        ugs.index_axis(Axis(0), s).mapv(f64::from).view(),
+                        vgs.index_axis(Axis(0), s).mapv(f64::from).view(),
+                    );
+                    isentropic::isentropic_pv(
+                        z.view(),
+                        plane.f.view(),
+                        surf.dtheta_dp.index_axis(Axis(0), s),
+                    )
+                })
+                .collect();
+            for (s, a) in per.into_iter().enumerate() {
+                pv_s.index_axis_mut(Axis(0), s)
+                    .assign(&a.mapv(|x| x as f32));
+            }
+            let us = isentropic::on_surfaces(u.view(), &surf);
+            let vs = isentropic::on_surfaces(v.view(), &surf);
+            fields.push(Product {
+                spec: variables::wind("isen_u", u_spec, "wind component on isentropic surfaces"),
+                vertical: Vertical::Theta,
+                data: us,
+            });
+            fields.push(Product {
+                spec: variables::wind("isen_v", v_spec, "wind component on isentropic surfaces"),
+                vertical: Vertical::Theta,
+                data: vs,
+            });
+        }
+        fields.push(Product {
+            spec: variables::ISEN_P,
+            vertical: Vertical::Theta,
+            data: p_s,
+        });
+        if let Some(z_s) = z_s {
+            let m = Array3::from_shape_fn((ns, ny, nx), |ix| {
+                isentropic::montgomery(f64::from(t_s[ix]), f64::from(z_s[ix])) as f32
+            });
+            fields.push(Product {
+                spec: variables::ISEN_Z,
+                vertical: Vertical::Theta,
+                data: z_s,
+            });
+            fields.push(Product {
+                spec: variables::ISEN_M,
+                vertical: Vertical::Theta,
+                data: m,
+            });
+        }
+        fields.push(Product {
+            spec: variables::ISEN_T,
+            vertical: Vertical::Theta,
+            data: t_s,
+        });
+        if have_w {
+            fields.push(Product {
+                spec: variables::ISEN_PV,
+                vertical: Vertical::Theta,
+                data: pv_s,
+            });
+        }
+    }
+
+    // Dynamic tropopause on each PV surface.
+    if let (true, Some(pv), Some(st), Some(u), Some(v)) = (want_trop, &pv3, &st, &u3, &v3) {
+        let levels_pvu = &cfg.isentropic.tropopause_pvu;
+        let np = levels_pvu.len();
+        let lnp: Vec<f64> = p_pa.iter().map(|p| p.ln()).collect();
+        let mut out: Vec<Array3<f32>> = (0..5)
+            .map(|_| Array3::from_elem((np, ny, nx), f32::NAN))
+            .collect();
+        for (s, &thr) in levels_pvu.iter().enumerate() {
+            for j in 0..ny {
+                for i in 0..nx {
+                    let col: Vec<f64> = (0..nz).map(|k| f64::from(pv[(k, j, i)])).collect();
+                    if let Some((k, w)) = tropopause::locate_pv_surface(&col, lat[(j, i)], thr) {
+                        let at = |a: &Array3<f32>| {
+                            let (fu, fl) = (f64::from(a[(k, j, i)]), f64::from(a[(k + 1, j, i)]));
+                            (fl + w * (fu - fl)) as f32
+                        };
+                        out[0][(s, j, i)] = (lnp[k + 1] + w * (lnp[k] - lnp[k + 1])).exp() as f32;
+                        out[1][(s, j, i)] = at(&st.theta);
+                        if let Some(z) = &z3 {
+                            out[2][(s, j, i)] = at(z);
+                        }
+                        out[3][(s, j, i)] = at(u);
+                        out[4][(s, j, i)] = at(v);
+                    }
+                }
             }
         }
-        let st = stability::stability(t.view(), &p_pa);
-        fields.push((variables::THETA, st.theta));
-        fields.push((variables::STAB, st.neg_dtheta_dp));
-        fields.push((variables::N2, st.n2));
+        let mut it = out.into_iter();
+        let (tp, tt, tz, tu, tv) = (it.next(), it.next(), it.next(), it.next(), it.next());
+        if let (Some(tp), Some(tt), Some(tz), Some(tu), Some(tv)) = (tp, tt, tz, tu, tv) {
+            fields.push(Product {
+                spec: variables::TROP_P,
+                vertical: Vertical::PvSurface,
+                data: tp,
+            });
+            fields.push(Product {
+                spec: variables::TROP_THETA,
+                vertical: Vertical::PvSurface,
+                data: tt,
+            });
+            if z3.is_some() {
+                fields.push(Product {
+                    spec: variables::TROP_Z,
+                    vertical: Vertical::PvSurface,
+                    data: tz,
+                });
+            }
+            fields.push(Product {
+                spec: variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
+                vertical: Vertical::PvSurface,
+                data: tu,
+            });
+            fields.push(Product {
+                spec: variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
+                vertical: Vertical::PvSurface,
+                data: tv,
+            });
+        }
     }
-    rep.products = fields.iter().map(|(s, _)| s.name.to_string()).collect();
+
+    // Layer PV in column-depth form.
+    if let (true, Some(st), Some(ug), Some(vg)) = (want_layer, &st, ug3, vg3) {
+        let layers = &cfg.isentropic.layers;
+        let mut bounds: Vec<f64> = layers.iter().flat_map(|l| [l[0], l[1]]).collect();
+        bounds.sort_by(f64::total_cmp);
+        bounds.dedup();
+        let surf = isentropic::surfaces(st.theta.view(), &p_pa, &bounds);
+        let nl = layers.len();
+        let mut lpv = Array3::from_elem((nl, ny, nx), f32::NAN);
+        let mut ldp = Array3::from_elem((nl, ny, nx), f32::NAN);
+        for (n, l) in layers.iter().enumerate() {
+            let ib = bounds.iter().position(|b| *b == l[0]).unwrap_or(0);
+            let it = bounds.iter().position(|b| *b == l[1]).unwrap_or(0);
+            let (um, vm, dp) =
+                isentropic::layer_mean_wind(ug.view(), vg.view(), &p_pa, &surf, ib, it);
+            let z = plane.vorticity(um.view(), vm.view());
+            ndarray::Zip::indexed(&z).for_each(|(j, i), &zv| {
+                let d = dp[(j, i)];
+                ldp[(n, j, i)] = d as f32;
+                lpv[(n, j, i)] = isentropic::layer_pv(zv + plane.f[(j, i)], d) as f32;
+            });
+        }
+        fields.push(Product {
+            spec: variables::LAYER_PV,
+            vertical: Vertical::ThetaLayer,
+            data: lpv,
+        });
+        fields.push(Product {
+            spec: variables::LAYER_DP,
+            vertical: Vertical::ThetaLayer,
+            data: ldp,
+        });
+    }
+
+    if let Some(st) = st {
+        if want_stab {
+            fields.push(Product {
+                spec: variables::THETA,
+                vertical: Vertical::Pressure,
+                data: st.theta,
+            });
+            fields.push(Product {
+                spec: variables::STAB,
+                vertical: Vertical::Pressure,
+                data: st.neg_dtheta_dp,
+            });
+            fields.push(Product {
+                spec: variables::N2,
+                vertical: Vertical::Pressure,
+                data: st.n2,
+            });
+        }
+    }
+    if let (true, Some(pv)) = (want_pv, pv3) {
+        fields.push(Product {
+            spec: variables::PV,
+            vertical: Vertical::Pressure,
+            data: pv,
+        });
+    }
+    rep.products = fields.iter().map(|f| f.spec.name.to_string()).collect();
     rep.compute_seconds = t_compute.elapsed().as_secs_f64();
 
     let mut inputs_used: Vec<String> = step
@@ -636,7 +917,14 @@ pub fn run_step(
         grid,
         lat,
         lon,
-        levels: p_pa,
+        levels: if fields.iter().any(|f| f.vertical == Vertical::Pressure) {
+            p_pa
+        } else {
+            Vec::new()
+        },
+        theta_levels: cfg.isentropic.surfaces.clone(),
+        pv_levels: cfg.isentropic.tropopause_pvu.clone(),
+        layers: cfg.isentropic.layers.clone(),
         fields,
         masking,
         winds,
@@ -690,4 +978,22 @@ pub fn grid_suffixes(steps: &[Step]) -> Vec<Option<usize>> {
             }
         })
         .collect()
+}
+
+/// d f / d p of every column of `f` (levels, rows, columns), from three-point
+/// differences in ln p (see `stability::column_derivative`): df/dp = (1/p) df/d ln p.
+fn vertical_derivative(f: ArrayView3<f32>, lnp: &[f64], p: &[f64]) -> Array3<f32> {
+    let mut out = Array3::from_elem(f.dim(), f32::NAN);
+    let nz = lnp.len();
+    ndarray::Zip::from(f.lanes(Axis(0)))
+        .and(out.lanes_mut(Axis(0)))
+        .par_for_each(|c, mut o| {
+            let col: Vec<f64> = c.iter().map(|&x| f64::from(x)).collect();
+            let mut d = vec![0.0; nz];
+            stability::column_derivative(&col, lnp, &mut d);
+            for k in 0..nz {
+                o[k] = (d[k] / p[k]) as f32;
+            }
+        });
+    out
 }

@@ -6,5 +6,9 @@
 //! closed-form test beside it.
 
 pub mod constants;
+pub mod horizontal;
+pub mod isentropic;
+pub mod pv;
 pub mod stability;
+pub mod tropopause;
 pub mod vorticity;

@@ -57,8 +57,14 @@ pub struct StepProducts {
     pub lon: Array2<f64>,
     /// Isobaric levels, Pa, in the order of the data's first axis.
     pub levels: Vec<f64>,
-    /// Data variables on (level, row, column); NaN where missing.
-    pub fields: Vec<(VarSpec, Array3<f32>)>,
+    /// Isentropic surfaces, K.
+    pub theta_levels: Vec<f64>,
+    /// PV surfaces of the dynamic tropopause, PVU (magnitudes).
+    pub pv_levels: Vec<f64>,
+    /// Isentropic layers (bottom, top), K.
+    pub layers: Vec<[f64; 2]>,
+    /// Data variables on (vertical, row, column); NaN where missing.
+    pub fields: Vec<Product>,
     /// How levels below the ground were masked.
     pub masking: String,
     /// Whether the input winds were grid- or earth-relative.
@@ -92,6 +98,42 @@ pub fn bit_round(x: f32, nsb: u32) -> f32 {
     } else {
         x
     }
+}
+
+/// The vertical coordinate of a product.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Vertical {
+    /// Isobaric levels (`pressure`).
+    Pressure,
+    /// Isentropic surfaces (`theta_level`).
+    Theta,
+    /// PV surfaces (`pv_level`).
+    PvSurface,
+    /// Isentropic layers (`theta_layer`, with bounds).
+    ThetaLayer,
+}
+
+impl Vertical {
+    /// Dimension name in the file.
+    pub fn dim(self) -> &'static str {
+        match self {
+            Vertical::Pressure => "pressure",
+            Vertical::Theta => "theta_level",
+            Vertical::PvSurface => "pv_level",
+            Vertical::ThetaLayer => "theta_layer",
+        }
+    }
+}
+
+/// One data variable: what it is, on which vertical coordinate, its values.
+#[derive(Debug, Clone)]
+pub struct Product {
+    /// Name, standard name, units.
+    pub spec: VarSpec,
+    /// Its vertical coordinate.
+    pub vertical: Vertical,
+    /// Values on (vertical, row, column), NaN where missing.
+    pub data: Array3<f32>,
 }
 
 /// Short name of a centre for file names (our own list; numbers from common code table C-11).
@@ -237,7 +279,10 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         Horizontal::Projected { .. } => ("y", "x", true),
     };
     f.add_dimension("time", 1).map_err(&e)?;
-    f.add_dimension("pressure", nz).map_err(&e)?;
+    let uses = |v: Vertical| p.fields.iter().any(|x| x.vertical == v);
+    if nz > 0 {
+        f.add_dimension("pressure", nz).map_err(&e)?;
+    }
     f.add_dimension(ydim, ny).map_err(&e)?;
     f.add_dimension(xdim, nx).map_err(&e)?;
 
@@ -276,7 +321,7 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         v.put_attribute("units", "hours").map_err(&e)?;
         v.put_value(lead_h, ..).map_err(&e)?;
     }
-    {
+    if nz > 0 {
         let mut v = f
             .add_variable::<f64>("pressure", &["pressure"])
             .map_err(&e)?;
@@ -288,6 +333,72 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         v.put_attribute("positive", "down").map_err(&e)?;
         v.put_attribute("axis", "Z").map_err(&e)?;
         v.put_values(&p.levels, ..).map_err(&e)?;
+    }
+    if uses(Vertical::Theta) && !p.theta_levels.is_empty() {
+        f.add_dimension("theta_level", p.theta_levels.len())
+            .map_err(&e)?;
+        let mut v = f
+            .add_variable::<f64>("theta_level", &["theta_level"])
+            .map_err(&e)?;
+        v.put_attribute("standard_name", "air_potential_temperature")
+            .map_err(&e)?;
+        v.put_attribute(
+            "long_name",
+            "potential temperature of the isentropic surface",
+        )
+        .map_err(&e)?;
+        v.put_attribute("units", "K").map_err(&e)?;
+        v.put_attribute("positive", "up").map_err(&e)?;
+        v.put_attribute("axis", "Z").map_err(&e)?;
+        v.put_values(&p.theta_levels, ..).map_err(&e)?;
+    }
+    if uses(Vertical::PvSurface) && !p.pv_levels.is_empty() {
+        f.add_dimension("pv_level", p.pv_levels.len()).map_err(&e)?;
+        let mut v = f
+            .add_variable::<f64>("pv_level", &["pv_level"])
+            .map_err(&e)?;
+        v.put_attribute("standard_name", "ertel_potential_vorticity")
+            .map_err(&e)?;
+        v.put_attribute(
+            "long_name",
+            "magnitude of Ertel potential vorticity on the surface",
+        )
+        .map_err(&e)?;
+        v.put_attribute("units", super::variables::PVU_UNITS)
+            .map_err(&e)?;
+        v.put_attribute("positive", "up").map_err(&e)?;
+        v.put_attribute(
+            "comment",
+            "the surface is PV = +value north of the equator and PV = -value south of it",
+        )
+        .map_err(&e)?;
+        v.put_values(&p.pv_levels, ..).map_err(&e)?;
+    }
+    if uses(Vertical::ThetaLayer) && !p.layers.is_empty() {
+        f.add_dimension("theta_layer", p.layers.len()).map_err(&e)?;
+        f.add_dimension("nv", 2).map_err(&e)?;
+        let mid: Vec<f64> = p.layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
+        let mut v = f
+            .add_variable::<f64>("theta_layer", &["theta_layer"])
+            .map_err(&e)?;
+        v.put_attribute("standard_name", "air_potential_temperature")
+            .map_err(&e)?;
+        v.put_attribute(
+            "long_name",
+            "potential temperature at the middle of the isentropic layer",
+        )
+        .map_err(&e)?;
+        v.put_attribute("units", "K").map_err(&e)?;
+        v.put_attribute("positive", "up").map_err(&e)?;
+        v.put_attribute("axis", "Z").map_err(&e)?;
+        v.put_attribute("bounds", "theta_layer_bounds")
+            .map_err(&e)?;
+        v.put_values(&mid, ..).map_err(&e)?;
+        let mut b = f
+            .add_variable::<f64>("theta_layer_bounds", &["theta_layer", "nv"])
+            .map_err(&e)?;
+        let flat: Vec<f64> = p.layers.iter().flat_map(|l| [l[0], l[1]]).collect();
+        b.put_values(&flat, ..).map_err(&e)?;
     }
 
     // Grid mapping and horizontal coordinates.
@@ -432,9 +543,10 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
     } else {
         "reference_time lead_time"
     };
-    for (spec, data) in &p.fields {
+    for prod in &p.fields {
+        let (spec, data) = (&prod.spec, &prod.data);
         let mut v = f
-            .add_variable::<f32>(spec.name, &["time", "pressure", ydim, xdim])
+            .add_variable::<f32>(spec.name, &["time", prod.vertical.dim(), ydim, xdim])
             .map_err(&e)?;
         v.set_fill_value(FILL_F32).map_err(&e)?;
         if p.deflate > 0 {
@@ -449,6 +561,10 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         v.put_attribute("grid_mapping", "crs").map_err(&e)?;
         v.put_attribute("coordinates", coords).map_err(&e)?;
         v.put_attribute("comment", spec.formula).map_err(&e)?;
+        if prod.vertical == Vertical::ThetaLayer && spec.name == super::variables::LAYER_PV.name {
+            v.put_attribute("cell_methods", "theta_layer: mean")
+                .map_err(&e)?;
+        }
         if p.significant_bits < 23 {
             v.put_attribute("leeward_significant_bits", p.significant_bits as i32)
                 .map_err(&e)?;

@@ -65,8 +65,135 @@ pub const N2: VarSpec = VarSpec {
     formula: "N^2 = -(g^2 p/(R T theta)) dtheta/dp (hydrostatic form; Bluestein 1992)",
 };
 
+/// Ertel PV on isobaric levels, full form.
+pub const PV: VarSpec = VarSpec {
+    name: "pv",
+    standard_name: Some("ertel_potential_vorticity"),
+    long_name: "Ertel potential vorticity on isobaric levels",
+    units: PVU_UNITS,
+    formula: "P = -g [ (zeta_p + f) dtheta/dp - (dv/dp)(dtheta/dx) + (du/dp)(dtheta/dy) ] (Bluestein 1992), in PVU",
+};
+
+/// PVU as a scaled unit string that UDUNITS accepts.
+pub const PVU_UNITS: &str = "1e-6 K m2 kg-1 s-1";
+
+/// Pressure on isentropic surfaces.
+pub const ISEN_P: VarSpec = VarSpec {
+    name: "isen_p",
+    standard_name: Some("air_pressure"),
+    long_name: "pressure on isentropic surfaces",
+    units: "Pa",
+    formula: "ln p linear in ln theta between the two isobaric levels that bracket the surface, searched from the top down (Ziv and Alpert 1994)",
+};
+
+/// Geopotential height on isentropic surfaces.
+pub const ISEN_Z: VarSpec = VarSpec {
+    name: "isen_z",
+    standard_name: Some("geopotential_height"),
+    long_name: "geopotential height on isentropic surfaces",
+    units: "m",
+    formula: "isobaric geopotential height interpolated linearly in ln p",
+};
+
+/// Temperature on isentropic surfaces.
+pub const ISEN_T: VarSpec = VarSpec {
+    name: "isen_t",
+    standard_name: Some("air_temperature"),
+    long_name: "temperature on isentropic surfaces",
+    units: "K",
+    formula: "T = theta (p/p0)^kappa at the surface's pressure (Poisson's equation)",
+};
+
+/// Montgomery streamfunction on isentropic surfaces.
+pub const ISEN_M: VarSpec = VarSpec {
+    name: "isen_m",
+    standard_name: None,
+    long_name: "Montgomery streamfunction on isentropic surfaces",
+    units: "m2 s-2",
+    formula:
+        "M = cp T + g z (Montgomery 1937); its gradient drives the geostrophic wind on the surface",
+};
+
+/// Ertel PV on isentropic surfaces.
+pub const ISEN_PV: VarSpec = VarSpec {
+    name: "isen_pv",
+    standard_name: Some("ertel_potential_vorticity"),
+    long_name: "Ertel potential vorticity on isentropic surfaces",
+    units: PVU_UNITS,
+    formula: "P = -g (zeta_theta + f) dtheta/dp, zeta_theta from the winds on the surface, dtheta/dp of the bracketing layer (Hoskins, McIntyre and Robertson 1985), in PVU",
+};
+
+/// Wind components on a surface: earth-relative and grid-relative variants.
+pub const WIND_U_EARTH: (&str, &str) = ("eastward_wind", "eastward wind");
+/// Northward component.
+pub const WIND_V_EARTH: (&str, &str) = ("northward_wind", "northward wind");
+/// Grid x component.
+pub const WIND_U_GRID: (&str, &str) = ("x_wind", "wind along the grid's x axis");
+/// Grid y component.
+pub const WIND_V_GRID: (&str, &str) = ("y_wind", "wind along the grid's y axis");
+
+/// A wind component variable on some surface: `name`, component names, what surface.
+pub const fn wind(
+    name: &'static str,
+    comp: (&'static str, &'static str),
+    long_name: &'static str,
+) -> VarSpec {
+    VarSpec {
+        name,
+        standard_name: Some(comp.0),
+        long_name,
+        units: "m s-1",
+        formula: comp.1,
+    }
+}
+
+/// Pressure of the dynamic tropopause.
+pub const TROP_P: VarSpec = VarSpec {
+    name: "trop_p",
+    standard_name: Some("air_pressure"),
+    long_name: "pressure of the dynamic tropopause",
+    units: "Pa",
+    formula: "first crossing of |PV| = value from the top of the column down (+value north, -value south), linear in PV, applied in ln p",
+};
+
+/// Potential temperature of the dynamic tropopause.
+pub const TROP_THETA: VarSpec = VarSpec {
+    name: "trop_theta",
+    standard_name: Some("dynamic_tropopause_potential_temperature"),
+    long_name: "potential temperature of the dynamic tropopause",
+    units: "K",
+    formula: "theta interpolated to the PV surface linearly in ln p",
+};
+
+/// Geopotential height of the dynamic tropopause.
+pub const TROP_Z: VarSpec = VarSpec {
+    name: "trop_z",
+    standard_name: Some("geopotential_height"),
+    long_name: "geopotential height of the dynamic tropopause",
+    units: "m",
+    formula: "isobaric geopotential height interpolated to the PV surface linearly in ln p",
+};
+
+/// Layer PV in column-depth form.
+pub const LAYER_PV: VarSpec = VarSpec {
+    name: "layer_pv",
+    standard_name: Some("potential_vorticity_of_atmosphere_layer"),
+    long_name: "potential vorticity of the isentropic layer (absolute vorticity over pressure depth)",
+    units: "Pa-1 s-1",
+    formula: "(zeta + f)/(p_bottom - p_top), zeta of the layer's mass-weighted mean wind; conserved by a column without heating or friction",
+};
+
+/// Pressure depth of an isentropic layer.
+pub const LAYER_DP: VarSpec = VarSpec {
+    name: "layer_dp",
+    standard_name: None,
+    long_name: "pressure depth of the isentropic layer",
+    units: "Pa",
+    formula: "p(bottom theta) - p(top theta), both from the isentropic interpolation",
+};
+
 /// Every data variable of the isobaric diagnostics, in the order written.
-pub const ISOBARIC: [VarSpec; 5] = [ZETA, ETA, THETA, STAB, N2];
+pub const ISOBARIC: [VarSpec; 6] = [ZETA, ETA, THETA, STAB, N2, PV];
 
 #[cfg(test)]
 mod tests {

@@ -74,10 +74,12 @@ class Run:
                 f"in {self.seconds:.1f} s; files {[p.name for p in self.nc_files]}\nstderr tail:\n{tail}")
 
 
-def run_leeward(binary: Path, inputs, out_dir: Path, name: str = "", timeout: float = RUN_TIMEOUT_S) -> Run:
-    """Run ``leeward process --out DIR INPUT...`` as a subprocess with a timeout."""
+def run_leeward(binary: Path, inputs, out_dir: Path, name: str = "", timeout: float = RUN_TIMEOUT_S,
+                config: Path | None = None) -> Run:
+    """Run ``leeward process [--config FILE] --out DIR INPUT...`` as a subprocess with a timeout."""
     out_dir.mkdir(parents=True, exist_ok=True)
-    cmd = [str(binary), "process", "--out", str(out_dir), *[str(p) for p in inputs]]
+    opts = ["--config", str(config)] if config is not None else []
+    cmd = [str(binary), "process", *opts, "--out", str(out_dir), *[str(p) for p in inputs]]
     t0 = time.monotonic()
     try:
         cp = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, cwd=REPO_ROOT)

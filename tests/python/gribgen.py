@@ -53,6 +53,11 @@ DEFAULT_LEVELS_HPA = (1000, 925, 850, 700, 600, 500, 400, 300, 250, 200)
 #: Closely spaced levels (hPa) for the column checks.
 DENSE_LEVELS_HPA = tuple(range(1000, 499, -25)) + tuple(range(480, 299, -20)) + tuple(range(290, 199, -10))
 
+#: Levels every 50 hPa from 1000 to 100 hPa for the isentropic checks: in the
+#: constant-lapse-rate column they span theta 287.4 K (1000 hPa) to 358.3 K (100 hPa), so
+#: the 290-355 K surfaces are inside the column and 280, 285 and 360 K are outside it.
+TALL_LEVELS_HPA = tuple(range(1000, 99, -50))
+
 #: WMO code table 4.2, discipline 0 (meteorological): (parameterCategory, parameterNumber).
 PARAM_T = (0, 0)  # temperature, K
 PARAM_GH = (3, 5)  # geopotential height, gpm
@@ -424,6 +429,46 @@ def coriolis(lat_deg):
     return 2.0 * OMEGA * np.sin(np.radians(lat_deg))
 
 
+#: Reference pressure of potential temperature, 1000 hPa (REFERENCES.md "Constants").
+THETA_REF_P = 1e5
+
+
+def lapse_rate_theta(p_pa, kappa):
+    """theta = T (1e5/p)^kappa (Poisson's equation) of the constant-lapse-rate column:
+    theta = theta_c (p/p0)^(c - kappa), theta_c = T0 (1e5/p0)^kappa, c = R gamma/g."""
+    p = np.asarray(p_pa, dtype=float)
+    return lapse_rate_temperature(p) * (THETA_REF_P / p) ** kappa
+
+
+def lapse_rate_pressure_of_theta(theta, kappa):
+    """Inverse of lapse_rate_theta: p(theta) = p0 (theta/theta_c)^(1/(c - kappa))."""
+    c = lapse_rate_exponent()
+    theta_c = T0 * (THETA_REF_P / P0) ** kappa
+    return P0 * (np.asarray(theta, dtype=float) / theta_c) ** (1.0 / (c - kappa))
+
+
+def lapse_rate_dtheta_dp(p_pa, kappa):
+    """d theta/dp = (c - kappa) theta / p of the same column (negative: stable)."""
+    p = np.asarray(p_pa, dtype=float)
+    return (lapse_rate_exponent() - kappa) * lapse_rate_theta(p, kappa) / p
+
+
+def lapse_rate_ertel_pv(p_pa, eta, kappa):
+    """Ertel PV of a horizontally uniform column with absolute vorticity eta (s-1), in
+    K m2 kg-1 s-1: P = -g eta d theta/dp (Hoskins et al. 1985; REFERENCES.md "Methods"); on
+    isobaric surfaces the baroclinic terms vanish because theta is horizontally uniform."""
+    return -G0 * np.asarray(eta, dtype=float) * lapse_rate_dtheta_dp(p_pa, kappa)
+
+
+def lapse_rate_pressure_of_pv(pv_abs, eta, kappa):
+    """Pressure where the column's |P| equals pv_abs (K m2 kg-1 s-1) for absolute vorticity
+    eta: |P| = g |eta| (kappa - c) theta_c p0^(kappa - c) p^(c - kappa - 1), solved for p."""
+    c = lapse_rate_exponent()
+    theta_c = T0 * (THETA_REF_P / P0) ** kappa
+    k = G0 * np.abs(np.asarray(eta, dtype=float)) * (kappa - c) * theta_c * P0 ** (kappa - c)
+    return (pv_abs / k) ** (1.0 / (c - kappa - 1.0))
+
+
 # --------------------------------------------------------------------------------------
 # Encoding
 # --------------------------------------------------------------------------------------
@@ -618,6 +663,14 @@ def closed_form_cases() -> dict[str, dict]:
     # difference in p or in ln p is then within 0.25% of the exact derivative.
     c["column_dense_levels"] = dict(grid="latlon_small_1p0", grid_relative=False, centre=98, times=t,
                                     levels=DENSE_LEVELS_HPA)
+    # Isentropic family: 1000 to 100 hPa every 50 hPa on a global lat/lon grid, a global
+    # Gaussian grid and a Lambert grid with grid-relative winds.
+    c["tall_latlon_global_2p5"] = dict(grid="latlon_global_2p5", grid_relative=False, centre=98,
+                                       times=t, levels=TALL_LEVELS_HPA)
+    c["tall_gaussian_n48"] = dict(grid="gaussian_n48", grid_relative=False, centre=98, times=t,
+                                  levels=TALL_LEVELS_HPA)
+    c["tall_lambert_tangent_25"] = dict(grid="lambert_tangent_25", grid_relative=True, centre=7,
+                                        times=t, levels=TALL_LEVELS_HPA)
     # Geometry cases carry 24-bit simple packing, so that quantisation stays far below the
     # closed-form tolerances; the packing cases use 16 bits, a common operational choice.
     for v in c.values():

@@ -117,3 +117,66 @@ def interior_mask(prod: Product, shape, edge: int = 2, global_grid: bool = False
         m[:edge, :] = m[-edge:, :] = False
         m[:, :edge] = m[:, -edge:] = False
     return m
+
+
+# ---------------------------------------------------------------------------------------
+# The isentropic family: variables on isentropic surfaces, isobaric Ertel PV, the dynamic
+# tropopause on PV surfaces and isentropic layers (output contract)
+# ---------------------------------------------------------------------------------------
+#: Variable -> its vertical dimension, as the output contract states.
+ISENTROPIC_VARIABLES = {
+    "isen_p": "theta_level", "isen_z": "theta_level", "isen_t": "theta_level",
+    "isen_u": "theta_level", "isen_v": "theta_level", "isen_m": "theta_level",
+    "isen_pv": "theta_level",
+    "pv": "pressure",
+    "trop_p": "pv_level", "trop_theta": "pv_level", "trop_z": "pv_level",
+    "trop_u": "pv_level", "trop_v": "pv_level",
+    "layer_pv": "theta_layer", "layer_dp": "theta_layer",
+}
+
+
+@dataclasses.dataclass
+class IsentropicProduct:
+    path: Path
+    kind: str
+    dims: tuple  # horizontal dimension names, (y, x)
+    lat: np.ndarray  # 2-D (y, x)
+    lon: np.ndarray
+    pressure: np.ndarray  # Pa
+    theta_level: np.ndarray  # K
+    pv_level: np.ndarray  # PVU
+    theta_layer: np.ndarray  # K, mid values
+    theta_layer_bounds: np.ndarray  # K, (n, 2): bottom, top
+    fields: dict  # name -> array (nvertical, ny, nx), NaN where missing
+    var_attrs: dict  # name -> attributes
+
+
+def read_isentropic(path, names=tuple(ISENTROPIC_VARIABLES)) -> IsentropicProduct:
+    """The isentropic family of one product file; AssertionError naming the variable if a
+    coordinate or data variable the contract promises is absent or shaped otherwise."""
+    path = Path(path)
+    base = read_product(path)
+    with netCDF4.Dataset(path) as ds:
+        for c in ("theta_level", "pv_level", "theta_layer", "theta_layer_bounds"):
+            assert c in ds.variables, (
+                f"{path.name}: no variable {c} (output contract of the isentropic family); "
+                f"variables are {sorted(ds.variables)}")
+        fields, attrs = {}, {}
+        for name in names:
+            assert name in ds.variables, f"{path.name}: no data variable {name} (output contract)"
+            v = ds[name]
+            want = ("time", ISENTROPIC_VARIABLES[name], *base.dims)
+            assert v.dimensions == want, f"{path.name}:{name} dims {v.dimensions}, contract says {want}"
+            fields[name] = _filled(v)[0]
+            attrs[name] = {k: v.getncattr(k) for k in v.ncattrs()}
+        return IsentropicProduct(
+            path, base.kind, base.dims, base.lat, base.lon, base.pressure,
+            _filled(ds["theta_level"]), _filled(ds["pv_level"]), _filled(ds["theta_layer"]),
+            _filled(ds["theta_layer_bounds"]), fields, attrs)
+
+
+def vertical_index(values, want, atol=1e-6, what="level") -> int:
+    """Index of the one coordinate value equal to want (within atol)."""
+    idx = np.flatnonzero(np.isclose(np.asarray(values, dtype=float), want, rtol=0, atol=atol))
+    assert idx.size == 1, f"{what} {want} not (once) in {list(values)}"
+    return int(idx[0])

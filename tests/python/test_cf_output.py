@@ -51,6 +51,34 @@ DATA_VARS = {
     "n2": ("s-2", "square_of_brunt_vaisala_frequency_in_air"),
 }
 
+#: The isentropic family: name -> (units, standard_name or None, vertical dimension), from the
+#: output contract; standard names and canonical units from the CF Standard Name Table
+#: (REFERENCES.md: ertel_potential_vorticity, potential_vorticity_of_atmosphere_layer,
+#: dynamic_tropopause_potential_temperature, air_pressure, geopotential_height, ...). "U"
+#: and "V" stand for the wind names, which follow the input's flag table 3.3 bit 5.
+PVU_UNITS = "1e-6 K m2 kg-1 s-1"  # 1 PVU (Hoskins et al. 1985; REFERENCES.md "Constants")
+ISEN_VARS = {
+    "isen_p": ("Pa", "air_pressure", "theta_level"),
+    "isen_z": ("m", "geopotential_height", "theta_level"),
+    "isen_t": ("K", "air_temperature", "theta_level"),
+    "isen_u": ("m s-1", "U", "theta_level"),
+    "isen_v": ("m s-1", "V", "theta_level"),
+    "isen_m": ("m2 s-2", None, "theta_level"),
+    "isen_pv": (PVU_UNITS, "ertel_potential_vorticity", "theta_level"),
+    "pv": (PVU_UNITS, "ertel_potential_vorticity", "pressure"),
+    "trop_p": ("Pa", "air_pressure", "pv_level"),
+    "trop_theta": ("K", "dynamic_tropopause_potential_temperature", "pv_level"),
+    "trop_z": ("m", "geopotential_height", "pv_level"),
+    "trop_u": ("m s-1", "U", "pv_level"),
+    "trop_v": ("m s-1", "V", "pv_level"),
+    "layer_pv": ("Pa-1 s-1", "potential_vorticity_of_atmosphere_layer", "theta_layer"),
+    "layer_dp": ("Pa", None, "theta_layer"),
+}
+#: CF standard names of wind components (CF Standard Name Table): along east/north, or
+#: along the grid's x/y axes when GRIB2 flag table 3.3 bit 5 says the input's are.
+WIND_NAMES = {False: {"U": "eastward_wind", "V": "northward_wind"},
+              True: {"U": "x_wind", "V": "y_wind"}}
+
 
 def _run_for(request, kind, name):
     runs = request.getfixturevalue("closed_form_runs" if kind == "closed" else "real_runs")
@@ -129,7 +157,7 @@ def _real_failures(path, failed_checks):
             hit = _SPURIOUS.match(m)
             if hit and hit.group(2) in defects and hit.group(1) in defects[hit.group(2)]:
                 with netCDF4.Dataset(path) as ds:
-                    gm = {ds[v].getncattr("grid_mapping") for v in DATA_VARS if v in ds.variables
+                    gm = {ds[v].getncattr("grid_mapping") for v in (*DATA_VARS, *ISEN_VARS) if v in ds.variables
                           and "grid_mapping" in ds[v].ncattrs()}
                     for g in gm:
                         assert defects[hit.group(2)] in ds[g].ncattrs(), (
@@ -289,6 +317,65 @@ def test_netcdf_structure(kind, name, request):
             raw = var[:]
             assert not np.isnan(raw).any(), f"{v}: NaN in the file (missing must be the fill value)"
 
+        _check_isentropic_structure(ds, hdims, aux, field)
+
+
+def _check_isentropic_structure(ds, hdims, aux, field):
+    """Coordinates and data variables of the isentropic family (output contract; CF 1.10
+    sections 4.3 vertical coordinates and 7.1 cell boundaries; CF Standard Name Table)."""
+    # Isentropic surfaces: air_potential_temperature in K, positive up, axis Z (CF 4.3;
+    # REFERENCES.md "CF output shape").
+    tl = ds["theta_level"]
+    ta = _attrs(tl)
+    assert tl.dtype == np.float64 and tl.dimensions == ("theta_level",)
+    assert (ta.get("units"), ta.get("standard_name"), ta.get("positive"), ta.get("axis")) == (
+        "K", "air_potential_temperature", "up", "Z"), ta
+    assert np.all(np.diff(tl[:]) > 0), f"theta_level not increasing: {tl[:]}"
+    # PV surfaces: ertel_potential_vorticity in PVU, with a comment on the hemispheric sign.
+    pl = ds["pv_level"]
+    pla = _attrs(pl)
+    assert pl.dtype == np.float64 and pl.dimensions == ("pv_level",)
+    assert (pla.get("units"), pla.get("standard_name")) == (PVU_UNITS, "ertel_potential_vorticity"), pla
+    assert isinstance(pla.get("comment"), str) and pla["comment"].strip(), f"pv_level has no comment: {pla}"
+    # Isentropic layers: mid values with bounds (CF 7.1), bounds (theta_layer, nv), nv = 2,
+    # bottom below top.
+    ly = ds["theta_layer"]
+    la = _attrs(ly)
+    assert ly.dtype == np.float64 and ly.dimensions == ("theta_layer",)
+    assert la.get("units") == "K", la
+    if "standard_name" in la:
+        assert la["standard_name"] == "air_potential_temperature", la
+    assert la.get("bounds") == "theta_layer_bounds", la
+    b = ds["theta_layer_bounds"]
+    assert b.dimensions == ("theta_layer", "nv") and ds.dimensions["nv"].size == 2, b.dimensions
+    assert np.issubdtype(b.dtype, np.floating)
+    bv = np.asarray(b[:], dtype=float)
+    assert np.all(bv[:, 0] < bv[:, 1]), f"layer bounds not bottom < top: {bv}"
+    np.testing.assert_allclose(np.asarray(ly[:], dtype=float), bv.mean(axis=1), rtol=0, atol=1e-9)
+    # Data variables: float32, dims (time, vertical, y, x), fill value, units, standard
+    # names (wind names as the input's flag table 3.3 bit 5 says), grid mapping, coordinates.
+    winds = WIND_NAMES[bool(field["uv_relative"])]
+    for v, (units, sn, vdim) in ISEN_VARS.items():
+        assert v in ds.variables, f"data variable {v} missing (isentropic family)"
+        var = ds[v]
+        va = _attrs(var)
+        assert var.dtype == np.float32, f"{v}: {var.dtype}"
+        assert var.dimensions == ("time", vdim, *hdims), f"{v}: dims {var.dimensions}"
+        assert np.float32(va.get("_FillValue")) == np.float32(NC_FILL_FLOAT), f"{v}: {va.get('_FillValue')}"
+        assert va.get("units") == units, f"{v} units {va.get('units')}, contract says {units}"
+        sn = winds.get(sn, sn)
+        if sn:
+            assert va.get("standard_name") == sn, f"{v} standard_name {va.get('standard_name')}, want {sn}"
+        else:
+            assert "standard_name" not in va and va.get("long_name"), f"{v}: {va}"
+        assert va.get("grid_mapping") == "crs", f"{v}: grid_mapping {va.get('grid_mapping')}"
+        coords = str(va.get("coordinates", "")).split()
+        for c in ("reference_time", "lead_time", *aux):
+            assert c in coords, f"{v}: coordinates {coords} lack {c}"
+        var.set_auto_mask(False)
+        raw = var[:]
+        assert not np.isnan(raw).any(), f"{v}: NaN in the file (missing must be the fill value)"
+
 
 @pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
 def test_file_name(kind, name, request):
@@ -318,8 +405,13 @@ def test_xarray_decodes_times(kind, name, request):
         want_ref = np.datetime64(dt.datetime(d // 10000, d // 100 % 100, d % 100, hm // 100, hm % 100))
         assert ref == want_ref, f"reference time {ref}, GRIB says {want_ref}"
         assert lead == np.timedelta64(f["step"], "h"), f"lead time {lead}, GRIB says {f['step']} h"
-        for v in DATA_VARS:
-            assert ds[v].dtype == np.float32  # decoded with the fill value masked as NaN
+        for v in (*DATA_VARS, *ISEN_VARS):
+            assert ds[v].dtype == np.float32, v  # decoded with the fill value masked as NaN
+        # The layer coordinate's bounds as xarray finds them (CF 7.1).
+        lay = ds["theta_layer"]
+        bname = lay.attrs.get("bounds", lay.encoding.get("bounds"))
+        assert bname == "theta_layer_bounds" and bname in ds.variables, (lay.attrs, lay.encoding)
+        assert ds[bname].shape == (lay.size, 2)
 
 
 @pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)

@@ -1,0 +1,369 @@
+//! Isentropic analysis: columns interpolated from isobaric levels to surfaces
+//! of constant potential temperature, Ertel PV on those surfaces, and the
+//! column-depth form of PV for isentropic layers.
+//!
+//! In: theta on isobaric levels of increasing pressure (NaN where missing),
+//! the level pressures, target surfaces. Out: where each surface lies in each
+//! column (pressure, bracketing level and weight), fields interpolated there,
+//! PV and layer quantities; NaN where a surface is below the lowest valid
+//! level, above the top, or crosses the column in a statically unstable layer.
+//! Pure functions: no I/O, no logging.
+
+use ndarray::{Array2, Array3, ArrayView2, ArrayView3, Axis, Zip};
+
+use super::constants::{CP_DRY, G0, KAPPA, P0, PVU};
+
+/// Why a surface is missing in a column, counted over a whole field.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Gaps {
+    /// Columns where the surface lies below the lowest valid level (warmer than the ground, or below ground).
+    pub below: usize,
+    /// Columns where the surface lies above the top level.
+    pub above: usize,
+    /// Columns where the first crossing from the top is in a statically unstable or neutral layer.
+    pub unstable: usize,
+}
+
+/// Where each isentropic surface lies in each column.
+pub struct Surfaces {
+    /// Target potential temperatures, K.
+    pub theta: Vec<f64>,
+    /// Index of the upper bracketing level (lower pressure); -1 where missing. Shape (surface, row, column).
+    pub upper: Array3<i16>,
+    /// Interpolation weight toward the upper level, in ln theta (0 at the lower level, 1 at the upper).
+    pub weight: Array3<f32>,
+    /// Pressure of the surface, Pa (NaN where missing).
+    pub pressure: Array3<f32>,
+    /// d theta / d p of the bracketing layer at the surface, K Pa-1.
+    pub dtheta_dp: Array3<f32>,
+    /// Missing columns by cause, one entry per surface.
+    pub gaps: Vec<Gaps>,
+}
+
+/// Locate surface `target` in one column `th` (levels of increasing pressure `lnp`),
+/// searching from the top down for the first layer whose bounding levels
+/// bracket it. Returns (upper index, weight) or the cause of the gap.
+///
+/// Interpolation is linear in ln p with ln theta as the variable,
+/// ln p = ln p_l + w (ln p_u - ln p_l), w = (ln theta* - ln theta_l) / (ln theta_u - ln theta_l),
+/// exact for a polytropic layer (T proportional to p^c), in the spirit of
+/// Ziv and Alpert 1994, J. Appl. Meteor. 33, 694-703 (from memory).
+pub fn locate(th: &[f64], target: f64) -> Result<(usize, f64), GapKind> {
+    let valid: Vec<usize> = (0..th.len())
+        .filter(|&k| th[k].is_finite() && th[k] > 0.0)
+        .collect();
+    let (Some(&top), Some(&bottom)) = (valid.first(), valid.last()) else {
+        return Err(GapKind::Below);
+    };
+    for pair in valid.windows(2) {
+        let (u, l) = (pair[0], pair[1]);
+        if l != u + 1 {
+            continue; // a missing level in between: no layer to interpolate in
+        }
+        let (tu, tl) = (th[u], th[l]);
+        let inside = (tl <= target && target <= tu) || (tu <= target && target <= tl);
+        if !inside {
+            continue;
+        }
+        if tu <= tl {
+            return Err(GapKind::Unstable);
+        }
+        let w = (target.ln() - tl.ln()) / (tu.ln() - tl.ln());
+        return Ok((u, w));
+    }
+    if target > th[top] {
+        Err(GapKind::Above)
+    } else if target < th[bottom] {
+        Err(GapKind::Below)
+    } else {
+        // Within the column's range but not bracketed by adjacent valid levels.
+        Err(GapKind::Unstable)
+    }
+}
+
+/// Cause of a missing surface in one column.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum GapKind {
+    /// Below the lowest valid level.
+    Below,
+    /// Above the top.
+    Above,
+    /// In a statically unstable or neutral layer, or across missing levels.
+    Unstable,
+}
+
+/// Find every surface in every column of `theta` (levels, rows, columns) on levels `p` (Pa, increasing).
+pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces {
+    let (nz, ny, nx) = theta.dim();
+    let ns = targets.len();
+    let mut upper = Array3::from_elem((ns, ny, nx), -1i16);
+    let mut weight = Array3::from_elem((ns, ny, nx), f32::NAN);
+    let mut pressure = Array3::from_elem((ns, ny, nx), f32::NAN);
+    let mut dthdp = Array3::from_elem((ns, ny, nx), f32::NAN);
+    let mut gaps = vec![Gaps::default(); ns];
+    if p.len() != nz || nz < 2 || nz > i16::MAX as usize {
+        for g in &mut gaps {
+            g.below = ny * nx;
+        }
+        return Surfaces {
+            theta: targets.to_vec(),
+            upper,
+            weight,
+            pressure,
+            dtheta_dp: dthdp,
+            gaps,
+        };
+    }
+    let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
+    let mut col = vec![0.0; nz];
+    for j in 0..ny {
+        for i in 0..nx {
+            for k in 0..nz {
+                col[k] = f64::from(theta[(k, j, i)]);
+            }
+            for (s, &target) in targets.iter().enumerate() {
+                match locate(&col, target) {
+                    Ok((u, w)) => {
+                        let l = u + 1;
+                        let lnps = lnp[l] + w * (lnp[u] - lnp[l]);
+                        let ps = lnps.exp();
+                        upper[(s, j, i)] = u as i16;
+                        weight[(s, j, i)] = w as f32;
+                        pressure[(s, j, i)] = ps as f32;
+                        // d theta/dp = (theta/p) d ln theta / d ln p of the bracketing layer.
+                        dthdp[(s, j, i)] =
+                            (target / ps * (col[u].ln() - col[l].ln()) / (lnp[u] - lnp[l])) as f32;
+                    }
+                    Err(GapKind::Below) => gaps[s].below += 1,
+                    Err(GapKind::Above) => gaps[s].above += 1,
+                    Err(GapKind::Unstable) => gaps[s].unstable += 1,
+                }
+            }
+        }
+    }
+    Surfaces {
+        theta: targets.to_vec(),
+        upper,
+        weight,
+        pressure,
+        dtheta_dp: dthdp,
+        gaps,
+    }
+}
+
+/// A field on isobaric levels (levels, rows, columns) interpolated to the
+/// surfaces, linearly in ln p with the surfaces' weights.
+pub fn on_surfaces(field: ArrayView3<f32>, s: &Surfaces) -> Array3<f32> {
+    let mut out = Array3::from_elem(s.upper.dim(), f32::NAN);
+    Zip::indexed(&mut out)
+        .and(&s.upper)
+        .and(&s.weight)
+        .for_each(|(_, j, i), o, &u, &w| {
+            if u >= 0 {
+                let u = u as usize;
+                let (fu, fl) = (f64::from(field[(u, j, i)]), f64::from(field[(u + 1, j, i)]));
+                *o = (fl + f64::from(w) * (fu - fl)) as f32;
+            }
+        });
+    out
+}
+
+/// Temperature on an isentropic surface from its pressure: T = theta (p / p0)^kappa (Poisson's equation).
+pub fn temperature_on_surface(theta: f64, p: f64) -> f64 {
+    theta * (p / P0).powf(KAPPA)
+}
+
+/// Montgomery streamfunction M = cp T + g z, m2 s-2 (Montgomery 1937; common practice).
+pub fn montgomery(t: f64, z: f64) -> f64 {
+    CP_DRY * t + G0 * z
+}
+
+/// Ertel potential vorticity on an isentropic surface, in PVU:
+/// P = -g (zeta_theta + f) d theta / dp (Hoskins, McIntyre and Robertson 1985; from memory).
+pub fn isentropic_pv(
+    zeta: ArrayView2<f64>,
+    f: ArrayView2<f64>,
+    dtheta_dp: ArrayView2<f32>,
+) -> Array2<f64> {
+    let mut out = Array2::zeros(zeta.dim());
+    Zip::from(&mut out)
+        .and(zeta)
+        .and(f)
+        .and(dtheta_dp)
+        .for_each(|o, &z, &f, &d| {
+            *o = -G0 * (z + f) * f64::from(d) / PVU;
+        });
+    out
+}
+
+/// Mass-weighted mean of a column profile between pressures `p_top` < `p_bottom`:
+/// (1/dp) integral f dp, trapezoidal over the levels inside and the two end values.
+/// `lnp`-ordered levels `p` increase downward; NaN if any point used is missing.
+pub fn layer_mean(
+    f: &[f64],
+    p: &[f64],
+    p_top: f64,
+    f_top: f64,
+    p_bottom: f64,
+    f_bottom: f64,
+) -> f64 {
+    if p_bottom.partial_cmp(&p_top) != Some(std::cmp::Ordering::Greater) {
+        return f64::NAN;
+    }
+    let mut sum = 0.0;
+    let (mut pp, mut fp) = (p_top, f_top);
+    for (k, &pk) in p.iter().enumerate() {
+        if pk > p_top && pk < p_bottom {
+            sum += 0.5 * (fp + f[k]) * (pk - pp);
+            pp = pk;
+            fp = f[k];
+        }
+    }
+    sum += 0.5 * (fp + f_bottom) * (p_bottom - pp);
+    sum / (p_bottom - p_top)
+}
+
+/// Layer-mean wind components of the layer between two surfaces (indices `bottom`,
+/// `top` into `s`), from isobaric `u`, `v` (levels, rows, columns) on levels `p`.
+pub fn layer_mean_wind(
+    u: ArrayView3<f32>,
+    v: ArrayView3<f32>,
+    p: &[f64],
+    s: &Surfaces,
+    bottom: usize,
+    top: usize,
+) -> (Array2<f64>, Array2<f64>, Array2<f64>) {
+    let (_, ny, nx) = u.dim();
+    let ub = on_surfaces(u, s);
+    let vb = on_surfaces(v, s);
+    let mut um = Array2::from_elem((ny, nx), f64::NAN);
+    let mut vm = Array2::from_elem((ny, nx), f64::NAN);
+    let mut dp = Array2::from_elem((ny, nx), f64::NAN);
+    for j in 0..ny {
+        for i in 0..nx {
+            let (pb, pt) = (
+                f64::from(s.pressure[(bottom, j, i)]),
+                f64::from(s.pressure[(top, j, i)]),
+            );
+            if !(pb.is_finite() && pt.is_finite() && pb > pt) {
+                continue;
+            }
+            let cu: Vec<f64> = u
+                .index_axis(Axis(1), j)
+                .index_axis(Axis(1), i)
+                .iter()
+                .map(|&x| f64::from(x))
+                .collect();
+            let cv: Vec<f64> = v
+                .index_axis(Axis(1), j)
+                .index_axis(Axis(1), i)
+                .iter()
+                .map(|&x| f64::from(x))
+                .collect();
+            um[(j, i)] = layer_mean(
+                &cu,
+                p,
+                pt,
+                f64::from(ub[(top, j, i)]),
+                pb,
+                f64::from(ub[(bottom, j, i)]),
+            );
+            vm[(j, i)] = layer_mean(
+                &cv,
+                p,
+                pt,
+                f64::from(vb[(top, j, i)]),
+                pb,
+                f64::from(vb[(bottom, j, i)]),
+            );
+            dp[(j, i)] = pb - pt;
+        }
+    }
+    (um, vm, dp)
+}
+
+/// Potential vorticity of an isentropic layer in its column-depth form,
+/// (zeta + f) / (p_bottom - p_top), Pa-1 s-1: conserved by a column between two
+/// isentropes without heating or friction (any dynamics text; from memory).
+pub fn layer_pv(eta: f64, dp: f64) -> f64 {
+    eta / dp
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::diagnostics::constants::R_DRY;
+
+    /// Constant-lapse-rate atmosphere (REFERENCES.md): T = T0 (p/p0)^c, c = R gamma / g.
+    fn theta_of(p: f64) -> f64 {
+        let c = R_DRY * 0.0065 / G0;
+        288.15 * (p / 101_325.0).powf(c) * (P0 / p).powf(KAPPA)
+    }
+
+    fn p_of(theta: f64) -> f64 {
+        // Inverse of theta_of: theta = A p^(c - kappa).
+        let c = R_DRY * 0.0065 / G0;
+        let a = 288.15 * 101_325f64.powf(-c) * P0.powf(KAPPA);
+        (theta / a).powf(1.0 / (c - KAPPA))
+    }
+
+    #[test]
+    fn surfaces_of_a_constant_lapse_rate_atmosphere_are_exact() {
+        let p: Vec<f64> = [100.0, 200.0, 300.0, 500.0, 700.0, 850.0, 1000.0]
+            .iter()
+            .map(|h| h * 100.0)
+            .collect();
+        let th = Array3::from_shape_fn((p.len(), 1, 2), |(k, _, _)| theta_of(p[k]) as f32);
+        let targets = [300.0, 320.0, 340.0];
+        let s = surfaces(th.view(), &p, &targets);
+        for (k, &t) in targets.iter().enumerate() {
+            let got = f64::from(s.pressure[(k, 0, 1)]);
+            assert!((got - p_of(t)).abs() < 30.0, "{t} K: {got} vs {}", p_of(t)); // 0.3 hPa: f32 theta
+            let c = R_DRY * 0.0065 / G0;
+            let exact = (c - KAPPA) * t / p_of(t);
+            assert!(((f64::from(s.dtheta_dp[(k, 0, 1)]) - exact) / exact).abs() < 1e-3);
+        }
+    }
+
+    #[test]
+    fn superadiabatic_bottom_and_out_of_range_surfaces_are_missing_and_counted() {
+        // Top down: 330 (100 hPa), 310, 300, then 303 at the bottom: superadiabatic near the
+        // ground. 301 K is found in the stable layer above, the first crossing from the top.
+        let col = [330.0, 310.0, 300.0, 303.0];
+        assert!(matches!(locate(&col, 320.0), Ok((0, _))));
+        assert!(matches!(locate(&col, 301.0), Ok((1, _))));
+        // An unstable layer met first from the top: missing.
+        assert_eq!(locate(&[320.0, 325.0, 300.0], 322.0), Err(GapKind::Unstable));
+        assert_eq!(locate(&col, 350.0), Err(GapKind::Above));
+        assert_eq!(locate(&col, 290.0), Err(GapKind::Below));
+        let nan = [330.0, f64::NAN, 300.0, 290.0];
+        assert_eq!(locate(&nan, 320.0), Err(GapKind::Unstable));
+        assert!(matches!(locate(&nan, 295.0), Ok((2, _))));
+    }
+
+    #[test]
+    fn layer_mean_of_a_linear_profile() {
+        // Closed form: the mass-weighted mean of f = p over [pt, pb] is (pt + pb) / 2.
+        let p = [200.0, 400.0, 600.0, 800.0];
+        let f = p;
+        let m = layer_mean(&f, &p, 300.0, 300.0, 700.0, 700.0);
+        assert!((m - 500.0).abs() < 1e-12);
+        assert!(layer_mean(&f, &p, 700.0, 1.0, 300.0, 1.0).is_nan());
+    }
+
+    #[test]
+    fn pv_sign_and_magnitude() {
+        // Hand check: eta = 1e-4, dtheta/dp = -1e-3 K/Pa (10 K per 100 hPa... per 10 hPa) gives
+        // P = 9.80665 * 1e-4 * 1e-3 = 9.8e-7 = 0.98 PVU.
+        let z = Array2::from_elem((1, 1), 0.0);
+        let f = Array2::from_elem((1, 1), 1e-4);
+        let d = Array2::from_elem((1, 1), -1e-3f32);
+        let pv = isentropic_pv(z.view(), f.view(), d.view());
+        assert!((pv[(0, 0)] - 0.980665).abs() < 1e-6);
+        let f = Array2::from_elem((1, 1), -1e-4);
+        assert!(
+            isentropic_pv(z.view(), f.view(), d.view())[(0, 0)] < 0.0,
+            "negative in the south"
+        );
+    }
+}
