@@ -333,7 +333,10 @@ mod tests {
         assert!(matches!(locate(&col, 320.0), Ok((0, _))));
         assert!(matches!(locate(&col, 301.0), Ok((1, _))));
         // An unstable layer met first from the top: missing.
-        assert_eq!(locate(&[320.0, 325.0, 300.0], 322.0), Err(GapKind::Unstable));
+        assert_eq!(
+            locate(&[320.0, 325.0, 300.0], 322.0),
+            Err(GapKind::Unstable)
+        );
         assert_eq!(locate(&col, 350.0), Err(GapKind::Above));
         assert_eq!(locate(&col, 290.0), Err(GapKind::Below));
         let nan = [330.0, f64::NAN, 300.0, 290.0];
