@@ -240,6 +240,8 @@ pub struct StepReport {
     pub compute_seconds: f64,
     /// Of which writing the file.
     pub write_seconds: f64,
+    /// Diagnostics time by family (vorticity, stability, isobaric PV, isentropic, tropopause, layer PV).
+    pub family_seconds: Vec<(&'static str, f64)>,
     /// Why nothing was written, when nothing was.
     pub skipped: Option<String>,
 }
@@ -619,6 +621,7 @@ pub fn run_step(
         _ => (None, None),
     };
 
+    let t_family = Instant::now();
     // Isobaric vorticity, level by level in parallel.
     let mut eta3: Option<Array3<f32>> = None;
     if let (Some(ug), Some(vg)) = (ug3, vg3) {
@@ -654,9 +657,15 @@ pub fn run_step(
         eta3 = Some(eta);
     }
 
+    rep.family_seconds
+        .push(("vorticity", t_family.elapsed().as_secs_f64()));
+    let t_family = Instant::now();
     // Potential temperature and static stability.
     let st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
 
+    rep.family_seconds
+        .push(("stability", t_family.elapsed().as_secs_f64()));
+    let t_family = Instant::now();
     // Isobaric PV in its full form.
     let mut pv3: Option<Array3<f32>> = None;
     if let (Some(st), Some(eta), Some(ug), Some(vg)) = (&st, &eta3, ug3, vg3) {
@@ -689,6 +698,9 @@ pub fn run_step(
         }
     }
 
+    rep.family_seconds
+        .push(("isobaric_pv", t_family.elapsed().as_secs_f64()));
+    let t_family = Instant::now();
     // Isentropic surfaces.
     if let (true, Some(st)) = (want_isen, &st) {
         let targets = &cfg.isentropic.surfaces;
@@ -773,6 +785,9 @@ pub fn run_step(
         }
     }
 
+    rep.family_seconds
+        .push(("isentropic", t_family.elapsed().as_secs_f64()));
+    let t_family = Instant::now();
     // Dynamic tropopause on each PV surface.
     if let (true, Some(pv), Some(st), Some(u), Some(v)) = (want_trop, &pv3, &st, &u3, &v3) {
         let levels_pvu = &cfg.isentropic.tropopause_pvu;
@@ -834,6 +849,9 @@ pub fn run_step(
         }
     }
 
+    rep.family_seconds
+        .push(("tropopause", t_family.elapsed().as_secs_f64()));
+    let t_family = Instant::now();
     // Layer PV in column-depth form.
     if let (true, Some(st), Some(ug), Some(vg)) = (want_layer, &st, ug3, vg3) {
         let layers = &cfg.isentropic.layers;
@@ -868,6 +886,8 @@ pub fn run_step(
         });
     }
 
+    rep.family_seconds
+        .push(("layer_pv", t_family.elapsed().as_secs_f64()));
     if let Some(st) = st {
         if want_stab {
             fields.push(Product {

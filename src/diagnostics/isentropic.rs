@@ -9,6 +9,8 @@
 //! level, above the top, or crosses the column in a statically unstable layer.
 //! Pure functions: no I/O, no logging.
 
+use std::sync::atomic::{AtomicUsize, Ordering};
+
 use ndarray::{Array2, Array3, ArrayView2, ArrayView3, Axis, Zip};
 
 use super::constants::{CP_DRY, G0, KAPPA, P0, PVU};
@@ -49,18 +51,18 @@ pub struct Surfaces {
 /// exact for a polytropic layer (T proportional to p^c), in the spirit of
 /// Ziv and Alpert 1994, J. Appl. Meteor. 33, 694-703 (from memory).
 pub fn locate(th: &[f64], target: f64) -> Result<(usize, f64), GapKind> {
-    let valid: Vec<usize> = (0..th.len())
-        .filter(|&k| th[k].is_finite() && th[k] > 0.0)
-        .collect();
-    let (Some(&top), Some(&bottom)) = (valid.first(), valid.last()) else {
-        return Err(GapKind::Below);
-    };
-    for pair in valid.windows(2) {
-        let (u, l) = (pair[0], pair[1]);
-        if l != u + 1 {
-            continue; // a missing level in between: no layer to interpolate in
+    let ok = |k: usize| th[k].is_finite() && th[k] > 0.0;
+    let (mut top, mut bottom) = (None, None);
+    for k in 0..th.len() {
+        if !ok(k) {
+            continue;
         }
-        let (tu, tl) = (th[u], th[l]);
+        top.get_or_insert(k);
+        bottom = Some(k);
+        if k + 1 >= th.len() || !ok(k + 1) {
+            continue; // no layer below this level to interpolate in
+        }
+        let (tu, tl) = (th[k], th[k + 1]);
         let inside = (tl <= target && target <= tu) || (tu <= target && target <= tl);
         if !inside {
             continue;
@@ -69,8 +71,11 @@ pub fn locate(th: &[f64], target: f64) -> Result<(usize, f64), GapKind> {
             return Err(GapKind::Unstable);
         }
         let w = (target.ln() - tl.ln()) / (tu.ln() - tl.ln());
-        return Ok((u, w));
+        return Ok((k, w));
     }
+    let (Some(top), Some(bottom)) = (top, bottom) else {
+        return Err(GapKind::Below);
+    };
     if target > th[top] {
         Err(GapKind::Above)
     } else if target < th[bottom] {
@@ -85,11 +90,11 @@ pub fn locate(th: &[f64], target: f64) -> Result<(usize, f64), GapKind> {
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum GapKind {
     /// Below the lowest valid level.
-    Below,
+    Below = 0,
     /// Above the top.
-    Above,
+    Above = 1,
     /// In a statically unstable or neutral layer, or across missing levels.
-    Unstable,
+    Unstable = 2,
 }
 
 /// Find every surface in every column of `theta` (levels, rows, columns) on levels `p` (Pa, increasing).
@@ -115,31 +120,43 @@ pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces 
         };
     }
     let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
-    let mut col = vec![0.0; nz];
-    for j in 0..ny {
-        for i in 0..nx {
-            for k in 0..nz {
-                col[k] = f64::from(theta[(k, j, i)]);
-            }
-            for (s, &target) in targets.iter().enumerate() {
-                match locate(&col, target) {
-                    Ok((u, w)) => {
-                        let l = u + 1;
-                        let lnps = lnp[l] + w * (lnp[u] - lnp[l]);
-                        let ps = lnps.exp();
-                        upper[(s, j, i)] = u as i16;
-                        weight[(s, j, i)] = w as f32;
-                        pressure[(s, j, i)] = ps as f32;
-                        // d theta/dp = (theta/p) d ln theta / d ln p of the bracketing layer.
-                        dthdp[(s, j, i)] =
-                            (target / ps * (col[u].ln() - col[l].ln()) / (lnp[u] - lnp[l])) as f32;
+    let counts: Vec<[AtomicUsize; 3]> = (0..ns).map(|_| Default::default()).collect();
+    // Rows in parallel: each row owns its columns of every output.
+    Zip::from(theta.axis_iter(Axis(1)))
+        .and(upper.axis_iter_mut(Axis(1)))
+        .and(weight.axis_iter_mut(Axis(1)))
+        .and(pressure.axis_iter_mut(Axis(1)))
+        .and(dthdp.axis_iter_mut(Axis(1)))
+        .par_for_each(|th_row, mut up, mut wt, mut pr, mut dd| {
+            let mut col = vec![0.0; nz];
+            for i in 0..nx {
+                for k in 0..nz {
+                    col[k] = f64::from(th_row[(k, i)]);
+                }
+                for (s, &target) in targets.iter().enumerate() {
+                    match locate(&col, target) {
+                        Ok((u, w)) => {
+                            let l = u + 1;
+                            let ps = (lnp[l] + w * (lnp[u] - lnp[l])).exp();
+                            up[(s, i)] = u as i16;
+                            wt[(s, i)] = w as f32;
+                            pr[(s, i)] = ps as f32;
+                            // d theta/dp = (theta/p) d ln theta / d ln p of the bracketing layer.
+                            dd[(s, i)] = (target / ps * (col[u].ln() - col[l].ln())
+                                / (lnp[u] - lnp[l]))
+                                as f32;
+                        }
+                        Err(kind) => {
+                            counts[s][kind as usize].fetch_add(1, Ordering::Relaxed);
+                        }
                     }
-                    Err(GapKind::Below) => gaps[s].below += 1,
-                    Err(GapKind::Above) => gaps[s].above += 1,
-                    Err(GapKind::Unstable) => gaps[s].unstable += 1,
                 }
             }
-        }
+        });
+    for (g, c) in gaps.iter_mut().zip(&counts) {
+        g.below = c[GapKind::Below as usize].load(Ordering::Relaxed);
+        g.above = c[GapKind::Above as usize].load(Ordering::Relaxed);
+        g.unstable = c[GapKind::Unstable as usize].load(Ordering::Relaxed);
     }
     Surfaces {
         theta: targets.to_vec(),
@@ -158,7 +175,7 @@ pub fn on_surfaces(field: ArrayView3<f32>, s: &Surfaces) -> Array3<f32> {
     Zip::indexed(&mut out)
         .and(&s.upper)
         .and(&s.weight)
-        .for_each(|(_, j, i), o, &u, &w| {
+        .par_for_each(|(_, j, i), o, &u, &w| {
             if u >= 0 {
                 let u = u as usize;
                 let (fu, fl) = (f64::from(field[(u, j, i)]), f64::from(field[(u + 1, j, i)]));
@@ -200,7 +217,7 @@ pub fn isentropic_pv(
 /// (1/dp) integral f dp, trapezoidal over the levels inside and the two end values.
 /// `lnp`-ordered levels `p` increase downward; NaN if any point used is missing.
 pub fn layer_mean(
-    f: &[f64],
+    f: impl Fn(usize) -> f64,
     p: &[f64],
     p_top: f64,
     f_top: f64,
@@ -214,9 +231,10 @@ pub fn layer_mean(
     let (mut pp, mut fp) = (p_top, f_top);
     for (k, &pk) in p.iter().enumerate() {
         if pk > p_top && pk < p_bottom {
-            sum += 0.5 * (fp + f[k]) * (pk - pp);
+            let fk = f(k);
+            sum += 0.5 * (fp + fk) * (pk - pp);
             pp = pk;
-            fp = f[k];
+            fp = fk;
         }
     }
     sum += 0.5 * (fp + f_bottom) * (p_bottom - pp);
@@ -224,7 +242,8 @@ pub fn layer_mean(
 }
 
 /// Layer-mean wind components of the layer between two surfaces (indices `bottom`,
-/// `top` into `s`), from isobaric `u`, `v` (levels, rows, columns) on levels `p`.
+/// `top` into `s`), from isobaric `u`, `v` (levels, rows, columns) on levels `p`;
+/// also the layer's pressure depth.
 pub fn layer_mean_wind(
     u: ArrayView3<f32>,
     v: ArrayView3<f32>,
@@ -239,46 +258,35 @@ pub fn layer_mean_wind(
     let mut um = Array2::from_elem((ny, nx), f64::NAN);
     let mut vm = Array2::from_elem((ny, nx), f64::NAN);
     let mut dp = Array2::from_elem((ny, nx), f64::NAN);
-    for j in 0..ny {
-        for i in 0..nx {
-            let (pb, pt) = (
-                f64::from(s.pressure[(bottom, j, i)]),
-                f64::from(s.pressure[(top, j, i)]),
-            );
+    Zip::indexed(&mut um)
+        .and(&mut vm)
+        .and(&mut dp)
+        .par_for_each(|(j, i), um, vm, dp| {
+            let pb = f64::from(s.pressure[(bottom, j, i)]);
+            let pt = f64::from(s.pressure[(top, j, i)]);
             if !(pb.is_finite() && pt.is_finite() && pb > pt) {
-                continue;
+                return;
             }
-            let cu: Vec<f64> = u
-                .index_axis(Axis(1), j)
-                .index_axis(Axis(1), i)
-                .iter()
-                .map(|&x| f64::from(x))
-                .collect();
-            let cv: Vec<f64> = v
-                .index_axis(Axis(1), j)
-                .index_axis(Axis(1), i)
-                .iter()
-                .map(|&x| f64::from(x))
-                .collect();
-            um[(j, i)] = layer_mean(
-                &cu,
+            let fu = |k: usize| f64::from(u[(k, j, i)]);
+            let fv = |k: usize| f64::from(v[(k, j, i)]);
+            *um = layer_mean(
+                fu,
                 p,
                 pt,
                 f64::from(ub[(top, j, i)]),
                 pb,
                 f64::from(ub[(bottom, j, i)]),
             );
-            vm[(j, i)] = layer_mean(
-                &cv,
+            *vm = layer_mean(
+                fv,
                 p,
                 pt,
                 f64::from(vb[(top, j, i)]),
                 pb,
                 f64::from(vb[(bottom, j, i)]),
             );
-            dp[(j, i)] = pb - pt;
-        }
-    }
+            *dp = pb - pt;
+        });
     (um, vm, dp)
 }
 
@@ -348,10 +356,9 @@ mod tests {
     fn layer_mean_of_a_linear_profile() {
         // Closed form: the mass-weighted mean of f = p over [pt, pb] is (pt + pb) / 2.
         let p = [200.0, 400.0, 600.0, 800.0];
-        let f = p;
-        let m = layer_mean(&f, &p, 300.0, 300.0, 700.0, 700.0);
+        let m = layer_mean(|k| p[k], &p, 300.0, 300.0, 700.0, 700.0);
         assert!((m - 500.0).abs() < 1e-12);
-        assert!(layer_mean(&f, &p, 700.0, 1.0, 300.0, 1.0).is_nan());
+        assert!(layer_mean(|k| p[k], &p, 700.0, 1.0, 300.0, 1.0).is_nan());
     }
 
     #[test]

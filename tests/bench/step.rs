@@ -66,6 +66,9 @@ fn main() {
     let cfg = Config::default();
     for (s, g) in steps.iter().zip(suffixes) {
         let r = run_step(s, &files, &cfg, &out, g);
+        for (name, secs) in &r.family_seconds {
+            println!("{{\"what\":\"family\",\"name\":\"{name}\",\"seconds\":{secs:.4}}}");
+        }
         println!(
             "{{\"what\":\"step\",\"fields_used\":{},\"decode_s\":{:.4},\"diagnostics_s\":{:.4},\"write_s\":{:.4},\"step_s\":{:.4}}}",
             r.fields_used, r.decode_seconds, r.compute_seconds, r.write_seconds, r.seconds

@@ -145,20 +145,40 @@ def test_tropopause_pressure_vs_model(hemisphere, gfs):
     assert r >= 0.95, f"correlation {r:.4f} < 0.95"
 
 
+def _model_theta(m):
+    """The model's potential temperature on its PV surface: Poisson's equation on its own
+    temperature and pressure there (REFERENCES.md "Methods")."""
+    return m["t"] * (1e5 / m["p"]) ** KAPPA
+
+
 def test_tropopause_theta_range(gfs):
-    # The 2 PVU potential temperature lies within 300-360 K over at least 90% of the
-    # extratropics (|lat| >= 25) where defined (common practice: about 300-330 K at high
-    # latitudes, up to 350-360 K on the subtropical side).
-    prod, lat, _ = gfs
+    # Common practice puts the extratropical 2 PVU potential temperature within about
+    # 300-360 K. In this sample the model's own 2 PVU theta lies in that range at only about
+    # three quarters of the 25-85 degree points (its polar 2 PVU surfaces are colder than
+    # 300 K), so a fixed 90% share would fail the model itself: the share of leeward's
+    # trop_theta within 300-360 K must instead match the model's own share in each
+    # hemisphere within 5 percentage points (judgement), every defined value counted.
+    prod, lat, ref = gfs
     k = vertical_index(prod.pv_level, 2.0, what="pv_level")
-    th = prod.fields["trop_theta"][k][np.abs(lat) >= 25.0]
-    th = th[np.isfinite(th)]
-    assert th.size > 0, "trop_theta all missing in the extratropics"
-    inside = float(np.mean((th >= 300.0) & (th <= 360.0)))
-    FIGURES.append(f"GFS 2.5 deg, 2 PVU theta within 300-360 K over {100 * inside:.1f}% of {th.size} "
-                   f"extratropical points (min {th.min():.1f}, median {np.median(th):.1f}, max {th.max():.1f} K)")
-    print(FIGURES[-1])
-    assert inside >= 0.90, f"only {100 * inside:.1f}% of trop_theta within 300-360 K"
+    bad = []
+    for hemisphere, (pvu, band) in HEMISPHERES.items():
+        if "t" not in ref[pvu]:
+            pytest.skip("the sample has no temperature on its PV surfaces")
+        sel = _band(lat, band)
+        ours = prod.fields["trop_theta"][k][sel]
+        theirs = _model_theta(ref[pvu])[sel]
+        ours, theirs = ours[np.isfinite(ours)], theirs[np.isfinite(theirs)]
+        assert ours.size > 0, f"trop_theta all missing in {band}"
+        share = float(np.mean((ours >= 300.0) & (ours <= 360.0)))
+        model_share = float(np.mean((theirs >= 300.0) & (theirs <= 360.0)))
+        FIGURES.append(f"GFS 2.5 deg, {pvu:+g} PVU theta within 300-360 K, {band[0]:g} to {band[1]:g} lat: "
+                       f"leeward {100 * share:.1f}% of {ours.size} points (min {ours.min():.1f}, median "
+                       f"{np.median(ours):.1f}, max {ours.max():.1f} K), model {100 * model_share:.1f}% "
+                       f"(min {theirs.min():.1f}, median {np.median(theirs):.1f}, max {theirs.max():.1f} K)")
+        print(FIGURES[-1])
+        if abs(share - model_share) > 0.05:
+            bad.append(f"{hemisphere}: {100 * share:.1f}% within 300-360 K, model {100 * model_share:.1f}%")
+    assert not bad, "; ".join(bad)
 
 
 @pytest.mark.parametrize("name", ["theta", "z", "u", "v"])
@@ -175,7 +195,7 @@ def test_tropopause_fields_vs_model(name, gfs):
         if name == "theta":
             if "t" not in m:
                 pytest.skip("the sample has no temperature on its PV surfaces")
-            theirs = m["t"] * (1e5 / m["p"]) ** KAPPA
+            theirs = _model_theta(m)
         else:
             if name not in m:
                 pytest.skip(f"the sample has no {name} on its PV surfaces")
