@@ -403,19 +403,19 @@ def east_north_in_grid_axes(grid: Grid, geo: Geometry):
 # --------------------------------------------------------------------------------------
 # Closed-form fields
 # --------------------------------------------------------------------------------------
-def lapse_rate_exponent() -> float:
+def lapse_rate_exponent(gamma: float = GAMMA) -> float:
     """R gamma / g of the constant-lapse-rate atmosphere (REFERENCES.md check values)."""
-    return R_DRY * GAMMA / G0
+    return R_DRY * gamma / G0
 
 
-def lapse_rate_temperature(p_pa):
+def lapse_rate_temperature(p_pa, gamma: float = GAMMA):
     """T = T0 (p/p0)^(R gamma/g) (REFERENCES.md: constant lapse rate atmosphere)."""
-    return T0 * (np.asarray(p_pa, dtype=float) / P0) ** lapse_rate_exponent()
+    return T0 * (np.asarray(p_pa, dtype=float) / P0) ** lapse_rate_exponent(gamma)
 
 
-def lapse_rate_height(p_pa):
+def lapse_rate_height(p_pa, gamma: float = GAMMA):
     """z = (T0/gamma)(1 - (p/p0)^(R gamma/g)) in geopotential metres (REFERENCES.md)."""
-    return (T0 / GAMMA) * (1.0 - (np.asarray(p_pa, dtype=float) / P0) ** lapse_rate_exponent())
+    return (T0 / gamma) * (1.0 - (np.asarray(p_pa, dtype=float) / P0) ** lapse_rate_exponent(gamma))
 
 
 def solid_body_zeta(lat_deg, u0, radius):
@@ -574,17 +574,19 @@ def solid_body(
     times: Times = Times(),
     centre: int = 98,
     bits: int = 16,
+    gamma: float = GAMMA,
 ) -> Path:
     """Write one complete step: T, Z, u, v on every level of a solid-body zonal flow over a
-    horizontally uniform constant-lapse-rate atmosphere. Returns the path."""
+    horizontally uniform constant-lapse-rate atmosphere (lapse rate gamma, K m-1). Returns
+    the path."""
     path = Path(path)
     geo = geometry(grid)
     ug, vg = solid_body_winds(grid, geo, u0, grid_relative)
     msgs = []
     for lev in levels_hpa:
         p = lev * 100.0
-        t = np.full(geo.lat.shape, float(lapse_rate_temperature(p)))
-        z = np.full(geo.lat.shape, float(lapse_rate_height(p)))
+        t = np.full(geo.lat.shape, float(lapse_rate_temperature(p, gamma)))
+        z = np.full(geo.lat.shape, float(lapse_rate_height(p, gamma)))
         kw = dict(times=times, centre=centre, grid_relative=grid_relative, packing=packing, bits=bits)
         msgs.append(encode_field(grid, geo, t, PARAM_T, lev, **kw))
         msgs.append(encode_field(grid, geo, z, PARAM_GH, lev, **kw))

@@ -443,3 +443,40 @@ def test_configured_tropopause_closed_form(configured):
 def test_configured_layers_closed_form(configured):
     s = configured
     _check_layers(s, CONFIG_CASE, s.prod.theta_layer_bounds)
+
+
+# ---------------------------------------------------------------------------------------
+# A statically unstable column
+# ---------------------------------------------------------------------------------------
+#: Lapse rate 12 K/km, above the dry adiabatic g/cp = 9.8 K/km: theta falls with height
+#: at every level (c = R gamma/g = 0.351 > kappa), so every surface inside the column's
+#: theta range is bracketed by unstable layers only (REFERENCES.md "Methods": stability).
+UNSTABLE_GAMMA = 0.012
+
+
+@pytest.fixture(scope="module")
+def unstable(leeward_bin, tmp_path_factory):
+    d = tmp_path_factory.mktemp("isentropic_unstable")
+    grid = GRIDS["latlon_small_1p0"]
+    path = gribgen.solid_body(d / "unstable.grib2", grid, levels_hpa=gribgen.TALL_LEVELS_HPA, bits=24,
+                              gamma=UNSTABLE_GAMMA)
+    run = run_leeward(leeward_bin, [path], d / "out", "unstable")
+    assert run.returncode == 0, f"exit code {run.returncode}, contract says 0\n{run.describe()}"
+    return read_isentropic(single_product(run))
+
+
+def test_unstable_column_surfaces_missing(unstable):
+    # Output contract and REFERENCES.md "Methods": a surface whose bracketing layer is
+    # statically unstable is missing. Here theta runs from 286.8 K at 1000 hPa down to
+    # 246.7 K at 100 hPa: the 280 and 285 K surfaces lie inside that range, bracketed only
+    # by unstable layers; nothing on them may be present.
+    lev = np.array(sorted(l * 100.0 for l in gribgen.TALL_LEVELS_HPA))
+    th = gribgen.lapse_rate_temperature(lev, UNSTABLE_GAMMA) * (gribgen.THETA_REF_P / lev) ** KAPPA
+    assert np.all(np.diff(th) < 0), "the test column should have theta decreasing with pressure"
+    inside = [t for t in unstable.theta_level if th.min() < t < th.max()]
+    assert inside, f"no default surface inside the unstable column's {th.min():.1f}-{th.max():.1f} K"
+    for t in inside:
+        k = vertical_index(unstable.theta_level, t, what="theta_level")
+        for name in ON_SURFACES:
+            n = int(np.count_nonzero(np.isfinite(unstable.fields[name][k])))
+            assert n == 0, f"{name} at {t:g} K present at {n} points in a statically unstable column"
