@@ -157,3 +157,11 @@ fn unwritable_output_directory_is_reported_not_a_crash() {
     assert!(stderr.contains("out"), "{stderr}");
     let _ = std::fs::remove_dir_all(&d);
 }
+
+#[test]
+fn the_example_config_lists_the_defaults() {
+    // deploy/leeward.toml documents every key with its default: it must parse to exactly them.
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("deploy/leeward.toml");
+    let cfg = leeward::config::Config::load(&path).expect("example config parses");
+    assert_eq!(cfg, leeward::config::Config::default());
+}

@@ -472,7 +472,7 @@ def test_unstable_column_surfaces_missing(unstable):
     # by unstable layers; nothing on them may be present.
     lev = np.array(sorted(l * 100.0 for l in gribgen.TALL_LEVELS_HPA))
     th = gribgen.lapse_rate_temperature(lev, UNSTABLE_GAMMA) * (gribgen.THETA_REF_P / lev) ** KAPPA
-    assert np.all(np.diff(th) < 0), "the test column should have theta decreasing with pressure"
+    assert np.all(np.diff(th) > 0), "the test column should have theta rising with pressure (falling with height)"
     inside = [t for t in unstable.theta_level if th.min() < t < th.max()]
     assert inside, f"no default surface inside the unstable column's {th.min():.1f}-{th.max():.1f} K"
     for t in inside:
