@@ -48,6 +48,29 @@ pub struct Config {
     pub output: Output,
     /// Isentropic analysis: surfaces, layers, dynamic tropopause.
     pub isentropic: Isentropic,
+    /// Isobaric layer thickness.
+    pub thickness: Thickness,
+}
+
+/// Layer thickness settings.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Thickness {
+    /// Isobaric layers [bottom, top] in hPa.
+    pub layers_hpa: Vec<[f64; 2]>,
+}
+
+impl Default for Thickness {
+    fn default() -> Self {
+        Thickness {
+            layers_hpa: vec![
+                [1000.0, 500.0],
+                [1000.0, 850.0],
+                [850.0, 700.0],
+                [700.0, 500.0],
+            ],
+        }
+    }
 }
 
 /// Isentropic analysis settings.
@@ -92,6 +115,8 @@ pub struct Products {
     pub tropopause: bool,
     /// Layer PV in column-depth form for the configured isentropic layers (`layer_pv`, `layer_dp`).
     pub layer_pv: bool,
+    /// Thickness of the configured isobaric layers (`thick`).
+    pub thickness: bool,
 }
 
 impl Default for Products {
@@ -104,6 +129,7 @@ impl Default for Products {
             isentropic: true,
             tropopause: true,
             layer_pv: true,
+            thickness: true,
         }
     }
 }
@@ -209,13 +235,25 @@ impl Config {
         if iso.tropopause_pvu.windows(2).any(|w| w[1] <= w[0]) {
             p.push("isentropic.tropopause_pvu: must be strictly ascending".into());
         }
+        for (k, l) in self.thickness.layers_hpa.iter().enumerate() {
+            if !(l[0] > l[1] && l[1] > 0.0 && l[0] <= 1100.0) {
+                p.push(format!(
+                    "thickness.layers_hpa[{k}]: [{}, {}] must be [bottom, top] in hPa with bottom > top > 0, bottom at most 1100",
+                    l[0], l[1]
+                ));
+            }
+        }
+        if self.products.thickness && self.thickness.layers_hpa.is_empty() {
+            p.push("thickness.layers_hpa: empty while products.thickness is on".into());
+        }
         let pr = &self.products;
         if !(pr.vorticity
             || pr.stability
             || pr.isobaric_pv
             || pr.isentropic
             || pr.tropopause
-            || pr.layer_pv)
+            || pr.layer_pv
+            || pr.thickness)
         {
             p.push("products: every product is switched off; nothing would be made".into());
         }

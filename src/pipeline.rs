@@ -19,7 +19,7 @@ use tracing::{info, warn};
 use crate::config::Config;
 use crate::diagnostics::constants::G0;
 use crate::diagnostics::horizontal::Plane;
-use crate::diagnostics::{isentropic, pv, stability, tropopause, vorticity};
+use crate::diagnostics::{isentropic, pv, stability, thickness, tropopause, vorticity};
 use crate::geometry::Horizontal;
 use crate::ingest::catalogue::{catalogue, Catalogue, FieldEntry};
 use crate::ingest::decode::decode;
@@ -427,6 +427,8 @@ pub fn run_step(
     let want_isen = pr.isentropic && have_t;
     let want_trop = pr.tropopause && have_t && have_w;
     let want_layer = pr.layer_pv && have_t && have_w;
+    let z_levels_all = levels_of(Quantity::GeopotentialHeight);
+    let want_thick = pr.thickness && (have_t || !z_levels_all.is_empty());
     if (pr.vorticity || pr.isobaric_pv || pr.tropopause || pr.layer_pv) && !have_w {
         rep.missing
             .push("isobaric u and v: no vorticity or PV".into());
@@ -436,7 +438,7 @@ pub fn run_step(
         rep.missing
             .push("isobaric temperature: no theta, stability, PV or isentropic products".into());
     }
-    if !(want_vort || want_stab || want_pv || want_isen || want_trop || want_layer) {
+    if !(want_vort || want_stab || want_pv || want_isen || want_trop || want_layer || want_thick) {
         rep.issues = issues;
         rep.skipped = Some(format!(
             "no fields for any product ({})",
@@ -445,9 +447,9 @@ pub fn run_step(
         rep.seconds = t0.elapsed().as_secs_f64();
         return rep;
     }
-    let need_t = want_stab || want_pv || want_isen || want_trop || want_layer;
+    let need_t = want_stab || want_pv || want_isen || want_trop || want_layer || want_thick;
     let need_w = want_vort || want_pv || want_isen || want_trop || want_layer;
-    let need_z_products = want_isen || want_trop;
+    let need_z_products = want_isen || want_trop || want_thick;
     let z_levels = levels_of(Quantity::GeopotentialHeight);
     if need_z_products && z_levels.is_empty() {
         rep.missing
@@ -469,6 +471,7 @@ pub fn run_step(
             Quantity::Temperature => need_t,
             Quantity::WindU | Quantity::WindV => need_w && wind_levels.contains(p),
             Quantity::GeopotentialHeight => need_z_products || mask_by_orography,
+            Quantity::SpecificHumidity | Quantity::RelativeHumidity => want_thick,
             _ => false,
         };
         if need {
@@ -493,6 +496,9 @@ pub fn run_step(
     let mut levels: Vec<i64> = Vec::new();
     if need_t {
         levels.extend(&t_levels);
+    }
+    if want_thick {
+        levels.extend(&z_levels_all);
     }
     if need_w {
         levels.extend(&wind_levels);
@@ -562,6 +568,16 @@ pub fn run_step(
     let u3 = if need_w { stack(Quantity::WindU) } else { None };
     let v3 = if need_w { stack(Quantity::WindV) } else { None };
     let z3 = stack(Quantity::GeopotentialHeight);
+    let q3 = if want_thick {
+        stack(Quantity::SpecificHumidity)
+    } else {
+        None
+    };
+    let rh3 = if want_thick && q3.is_none() {
+        stack(Quantity::RelativeHumidity)
+    } else {
+        None
+    };
     drop(dec);
 
     let (lat, lon) = grid.latlon();
@@ -643,16 +659,12 @@ pub fn run_step(
             eta.index_axis_mut(Axis(0), k).assign(&e.mapv(|x| x as f32));
         }
         if want_vort {
-            fields.push(Product {
-                spec: variables::ZETA,
-                vertical: Vertical::Pressure,
-                data: zeta,
-            });
-            fields.push(Product {
-                spec: variables::ETA,
-                vertical: Vertical::Pressure,
-                data: eta.clone(),
-            });
+            fields.push(Product::new(variables::ZETA, Vertical::Pressure, zeta));
+            fields.push(Product::new(
+                variables::ETA,
+                Vertical::Pressure,
+                eta.clone(),
+            ));
         }
         eta3 = Some(eta);
     }
@@ -740,48 +752,28 @@ pub fn run_step(
             }
             let us = isentropic::on_surfaces(u.view(), &surf);
             let vs = isentropic::on_surfaces(v.view(), &surf);
-            fields.push(Product {
-                spec: variables::wind("isen_u", u_spec, "wind component on isentropic surfaces"),
-                vertical: Vertical::Theta,
-                data: us,
-            });
-            fields.push(Product {
-                spec: variables::wind("isen_v", v_spec, "wind component on isentropic surfaces"),
-                vertical: Vertical::Theta,
-                data: vs,
-            });
+            fields.push(Product::new(
+                variables::wind("isen_u", u_spec, "wind component on isentropic surfaces"),
+                Vertical::Theta,
+                us,
+            ));
+            fields.push(Product::new(
+                variables::wind("isen_v", v_spec, "wind component on isentropic surfaces"),
+                Vertical::Theta,
+                vs,
+            ));
         }
-        fields.push(Product {
-            spec: variables::ISEN_P,
-            vertical: Vertical::Theta,
-            data: p_s,
-        });
+        fields.push(Product::new(variables::ISEN_P, Vertical::Theta, p_s));
         if let Some(z_s) = z_s {
             let m = Array3::from_shape_fn((ns, ny, nx), |ix| {
                 isentropic::montgomery(f64::from(t_s[ix]), f64::from(z_s[ix])) as f32
             });
-            fields.push(Product {
-                spec: variables::ISEN_Z,
-                vertical: Vertical::Theta,
-                data: z_s,
-            });
-            fields.push(Product {
-                spec: variables::ISEN_M,
-                vertical: Vertical::Theta,
-                data: m,
-            });
+            fields.push(Product::new(variables::ISEN_Z, Vertical::Theta, z_s));
+            fields.push(Product::new(variables::ISEN_M, Vertical::Theta, m));
         }
-        fields.push(Product {
-            spec: variables::ISEN_T,
-            vertical: Vertical::Theta,
-            data: t_s,
-        });
+        fields.push(Product::new(variables::ISEN_T, Vertical::Theta, t_s));
         if have_w {
-            fields.push(Product {
-                spec: variables::ISEN_PV,
-                vertical: Vertical::Theta,
-                data: pv_s,
-            });
+            fields.push(Product::new(variables::ISEN_PV, Vertical::Theta, pv_s));
         }
     }
 
@@ -819,33 +811,21 @@ pub fn run_step(
         let mut it = out.into_iter();
         let (tp, tt, tz, tu, tv) = (it.next(), it.next(), it.next(), it.next(), it.next());
         if let (Some(tp), Some(tt), Some(tz), Some(tu), Some(tv)) = (tp, tt, tz, tu, tv) {
-            fields.push(Product {
-                spec: variables::TROP_P,
-                vertical: Vertical::PvSurface,
-                data: tp,
-            });
-            fields.push(Product {
-                spec: variables::TROP_THETA,
-                vertical: Vertical::PvSurface,
-                data: tt,
-            });
+            fields.push(Product::new(variables::TROP_P, Vertical::PvSurface, tp));
+            fields.push(Product::new(variables::TROP_THETA, Vertical::PvSurface, tt));
             if z3.is_some() {
-                fields.push(Product {
-                    spec: variables::TROP_Z,
-                    vertical: Vertical::PvSurface,
-                    data: tz,
-                });
+                fields.push(Product::new(variables::TROP_Z, Vertical::PvSurface, tz));
             }
-            fields.push(Product {
-                spec: variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
-                vertical: Vertical::PvSurface,
-                data: tu,
-            });
-            fields.push(Product {
-                spec: variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
-                vertical: Vertical::PvSurface,
-                data: tv,
-            });
+            fields.push(Product::new(
+                variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
+                Vertical::PvSurface,
+                tu,
+            ));
+            fields.push(Product::new(
+                variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
+                Vertical::PvSurface,
+                tv,
+            ));
         }
     }
 
@@ -874,45 +854,112 @@ pub fn run_step(
                 lpv[(n, j, i)] = isentropic::layer_pv(zv + plane.f[(j, i)], d) as f32;
             });
         }
-        fields.push(Product {
-            spec: variables::LAYER_PV,
-            vertical: Vertical::ThetaLayer,
-            data: lpv,
-        });
-        fields.push(Product {
-            spec: variables::LAYER_DP,
-            vertical: Vertical::ThetaLayer,
-            data: ldp,
-        });
+        fields.push(Product::new(variables::LAYER_PV, Vertical::ThetaLayer, lpv));
+        fields.push(Product::new(variables::LAYER_DP, Vertical::ThetaLayer, ldp));
     }
 
     rep.family_seconds
         .push(("layer_pv", t_family.elapsed().as_secs_f64()));
+    let t_family = Instant::now();
+
+    // Isobaric layer thickness: heights where both levels have them, else hypsometric.
+    let mut p_layers: Vec<[f64; 2]> = Vec::new();
+    if want_thick {
+        let find = |hpa: f64| {
+            levels
+                .iter()
+                .position(|&k| (k as f64 / 1e4 - hpa).abs() < 1e-6)
+        };
+        let has_z = |k: usize| {
+            z3.as_ref()
+                .is_some_and(|z| z.index_axis(Axis(0), k).iter().any(|v| v.is_finite()))
+        };
+        let humidity = if q3.is_some() {
+            "virtual temperature from specific humidity"
+        } else if rh3.is_some() {
+            "virtual temperature from relative humidity"
+        } else {
+            "dry: no humidity in the input"
+        };
+        let mut data = Vec::new();
+        let mut methods = Vec::new();
+        for l in &cfg.thickness.layers_hpa {
+            let (Some(kb), Some(kt)) = (find(l[0]), find(l[1])) else {
+                rep.missing.push(format!(
+                    "thickness {}-{} hPa: a bounding level is not in the input",
+                    l[0], l[1]
+                ));
+                continue;
+            };
+            let mut a = Array2::from_elem((ny, nx), f32::NAN);
+            if has_z(kb) && has_z(kt) {
+                if let Some(z) = &z3 {
+                    ndarray::Zip::indexed(&mut a).for_each(|(j, i), o| {
+                        *o = z[(kt, j, i)] - z[(kb, j, i)];
+                    });
+                }
+                methods.push(format!(
+                    "{}-{} hPa: geopotential height difference",
+                    l[0], l[1]
+                ));
+            } else if let Some(t) = &t3 {
+                ndarray::Zip::indexed(&mut a).par_for_each(|(j, i), o| {
+                    let tv: Vec<f64> = (0..nz)
+                        .map(|k| {
+                            let tk = f64::from(t[(k, j, i)]);
+                            let q = match (&q3, &rh3) {
+                                (Some(q), _) => f64::from(q[(k, j, i)]),
+                                (None, Some(rh)) => thickness::specific_humidity_from_rh(
+                                    f64::from(rh[(k, j, i)]),
+                                    tk,
+                                    p_pa[k],
+                                ),
+                                _ => 0.0,
+                            };
+                            thickness::virtual_temperature(tk, if q.is_finite() { q } else { 0.0 })
+                        })
+                        .collect();
+                    *o = thickness::hypsometric_thickness(&tv, &p_pa, p_pa[kb], p_pa[kt]) as f32;
+                });
+                methods.push(format!(
+                    "{}-{} hPa: hypsometric equation, {humidity}",
+                    l[0], l[1]
+                ));
+            } else {
+                rep.missing.push(format!(
+                    "thickness {}-{} hPa: no heights and no temperature",
+                    l[0], l[1]
+                ));
+                continue;
+            }
+            p_layers.push([l[0] * 100.0, l[1] * 100.0]);
+            data.push(a);
+        }
+        if !data.is_empty() {
+            let mut th = Array3::from_elem((data.len(), ny, nx), f32::NAN);
+            for (k, a) in data.into_iter().enumerate() {
+                th.index_axis_mut(Axis(0), k).assign(&a);
+            }
+            let mut prod = Product::new(variables::THICK, Vertical::PressureLayer, th);
+            prod.notes.push(("leeward_method", methods.join("; ")));
+            fields.push(prod);
+        }
+    }
+    rep.family_seconds
+        .push(("thickness", t_family.elapsed().as_secs_f64()));
     if let Some(st) = st {
         if want_stab {
-            fields.push(Product {
-                spec: variables::THETA,
-                vertical: Vertical::Pressure,
-                data: st.theta,
-            });
-            fields.push(Product {
-                spec: variables::STAB,
-                vertical: Vertical::Pressure,
-                data: st.neg_dtheta_dp,
-            });
-            fields.push(Product {
-                spec: variables::N2,
-                vertical: Vertical::Pressure,
-                data: st.n2,
-            });
+            fields.push(Product::new(variables::THETA, Vertical::Pressure, st.theta));
+            fields.push(Product::new(
+                variables::STAB,
+                Vertical::Pressure,
+                st.neg_dtheta_dp,
+            ));
+            fields.push(Product::new(variables::N2, Vertical::Pressure, st.n2));
         }
     }
     if let (true, Some(pv)) = (want_pv, pv3) {
-        fields.push(Product {
-            spec: variables::PV,
-            vertical: Vertical::Pressure,
-            data: pv,
-        });
+        fields.push(Product::new(variables::PV, Vertical::Pressure, pv));
     }
     rep.products = fields.iter().map(|f| f.spec.name.to_string()).collect();
     rep.compute_seconds = t_compute.elapsed().as_secs_f64();
@@ -945,6 +992,7 @@ pub fn run_step(
         theta_levels: cfg.isentropic.surfaces.clone(),
         pv_levels: cfg.isentropic.tropopause_pvu.clone(),
         layers: cfg.isentropic.layers.clone(),
+        p_layers,
         fields,
         masking,
         winds,

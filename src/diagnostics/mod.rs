@@ -10,5 +10,6 @@ pub mod horizontal;
 pub mod isentropic;
 pub mod pv;
 pub mod stability;
+pub mod thickness;
 pub mod tropopause;
 pub mod vorticity;

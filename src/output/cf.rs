@@ -63,6 +63,8 @@ pub struct StepProducts {
     pub pv_levels: Vec<f64>,
     /// Isentropic layers (bottom, top), K.
     pub layers: Vec<[f64; 2]>,
+    /// Isobaric layers (bottom, top), Pa.
+    pub p_layers: Vec<[f64; 2]>,
     /// Data variables on (vertical, row, column); NaN where missing.
     pub fields: Vec<Product>,
     /// How levels below the ground were masked.
@@ -111,6 +113,8 @@ pub enum Vertical {
     PvSurface,
     /// Isentropic layers (`theta_layer`, with bounds).
     ThetaLayer,
+    /// Isobaric layers (`p_layer`, with bounds).
+    PressureLayer,
 }
 
 impl Vertical {
@@ -121,6 +125,7 @@ impl Vertical {
             Vertical::Theta => "theta_level",
             Vertical::PvSurface => "pv_level",
             Vertical::ThetaLayer => "theta_layer",
+            Vertical::PressureLayer => "p_layer",
         }
     }
 }
@@ -134,6 +139,20 @@ pub struct Product {
     pub vertical: Vertical,
     /// Values on (vertical, row, column), NaN where missing.
     pub data: Array3<f32>,
+    /// Further attributes of this variable (name, text).
+    pub notes: Vec<(&'static str, String)>,
+}
+
+impl Product {
+    /// A product with no further attributes.
+    pub fn new(spec: VarSpec, vertical: Vertical, data: Array3<f32>) -> Self {
+        Product {
+            spec,
+            vertical,
+            data,
+            notes: Vec::new(),
+        }
+    }
 }
 
 /// Short name of a centre for file names (our own list; numbers from common code table C-11).
@@ -374,9 +393,33 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         .map_err(&e)?;
         v.put_values(&p.pv_levels, ..).map_err(&e)?;
     }
+    if uses(Vertical::PressureLayer) && !p.p_layers.is_empty() {
+        f.add_dimension("p_layer", p.p_layers.len()).map_err(&e)?;
+        if f.dimension("nv").is_none() {
+            f.add_dimension("nv", 2).map_err(&e)?;
+        }
+        let mid: Vec<f64> = p.p_layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
+        let mut v = f.add_variable::<f64>("p_layer", &["p_layer"]).map_err(&e)?;
+        v.put_attribute("standard_name", "air_pressure")
+            .map_err(&e)?;
+        v.put_attribute("long_name", "pressure at the middle of the isobaric layer")
+            .map_err(&e)?;
+        v.put_attribute("units", "Pa").map_err(&e)?;
+        v.put_attribute("positive", "down").map_err(&e)?;
+        v.put_attribute("axis", "Z").map_err(&e)?;
+        v.put_attribute("bounds", "p_layer_bounds").map_err(&e)?;
+        v.put_values(&mid, ..).map_err(&e)?;
+        let mut b = f
+            .add_variable::<f64>("p_layer_bounds", &["p_layer", "nv"])
+            .map_err(&e)?;
+        let flat: Vec<f64> = p.p_layers.iter().flat_map(|l| [l[0], l[1]]).collect();
+        b.put_values(&flat, ..).map_err(&e)?;
+    }
     if uses(Vertical::ThetaLayer) && !p.layers.is_empty() {
         f.add_dimension("theta_layer", p.layers.len()).map_err(&e)?;
-        f.add_dimension("nv", 2).map_err(&e)?;
+        if f.dimension("nv").is_none() {
+            f.add_dimension("nv", 2).map_err(&e)?;
+        }
         let mid: Vec<f64> = p.layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
         let mut v = f
             .add_variable::<f64>("theta_layer", &["theta_layer"])
@@ -564,6 +607,9 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         if prod.vertical == Vertical::ThetaLayer && spec.name == super::variables::LAYER_PV.name {
             v.put_attribute("cell_methods", "theta_layer: mean")
                 .map_err(&e)?;
+        }
+        for (name, text) in &prod.notes {
+            v.put_attribute(name, text.as_str()).map_err(&e)?;
         }
         if p.significant_bits < 23 {
             v.put_attribute("leeward_significant_bits", p.significant_bits as i32)

@@ -192,6 +192,15 @@ pub const LAYER_DP: VarSpec = VarSpec {
     formula: "p(bottom theta) - p(top theta), both from the isentropic interpolation",
 };
 
+/// Thickness of an isobaric layer.
+pub const THICK: VarSpec = VarSpec {
+    name: "thick",
+    standard_name: Some("atmosphere_layer_thickness_expressed_as_geopotential_height_difference"),
+    long_name: "thickness of the isobaric layer",
+    units: "m",
+    formula: "z(top) - z(bottom) from geopotential height where both levels have it, else (R/g0) integral Tv dln p (hypsometric equation), ln Tv linear in ln p between levels; the method per layer is in leeward_method",
+};
+
 /// Every data variable of the isobaric diagnostics, in the order written.
 pub const ISOBARIC: [VarSpec; 6] = [ZETA, ETA, THETA, STAB, N2, PV];
 

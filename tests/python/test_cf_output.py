@@ -112,111 +112,6 @@ def _products(request, kind, name):
 
 
 # ---------------------------------------------------------------------------------------
-# IOOS compliance checker, one run over every file
-# ---------------------------------------------------------------------------------------
-@pytest.fixture(scope="session")
-def compliance(request, closed_form_runs, tmp_path_factory):
-    files = []
-    for n in CASES:
-        files += closed_form_runs.get(n).nc_files
-    try:
-        real = request.getfixturevalue("real_runs")
-        for n in REAL_SAMPLES:
-            files += real.get(n).nc_files
-    except pytest.skip.Exception:
-        pass  # the real-data products' own tests show the skip
-    exe = shutil.which("compliance-checker")
-    assert exe, "compliance-checker not installed (tests/python/requirements.txt)"
-    folder = tmp_path_factory.mktemp("compliance")
-    # --format=json_new: the checker's JSON form for several datasets in one report. Its
-    # time grows with the number of variables in a file (about 3 s a file here), so the
-    # files are shared between COMPLIANCE_PROCESSES checker runs at once, one per core.
-    jobs = []
-    for i in range(COMPLIANCE_PROCESSES):
-        part = files[i::COMPLIANCE_PROCESSES]
-        if not part:
-            continue
-        out = folder / f"report{i}.json"
-        proc = subprocess.Popen([exe, "--test=cf:1.9", "--format=json_new", "-o", str(out), *map(str, part)],
-                                stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-        jobs.append((proc, out))
-    report = {}
-    for proc, out in jobs:
-        try:
-            _, err = proc.communicate(timeout=600)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            _, err = proc.communicate()
-        assert out.is_file(), f"compliance-checker wrote no report (exit {proc.returncode}):\n{err[-3000:]}"
-        report.update(json.loads(out.read_text()))
-    return report
-
-
-def _checker_table_defects() -> dict:
-    """Grid mappings whose required attributes the checker's own Appendix F table holds as
-    a bare string instead of a tuple (compliance-checker 6.1.0 has ("longitude_of_projection_origin")
-    for mercator): it then asks for one attribute per character. Returns name -> the
-    attribute really meant."""
-    try:
-        from compliance_checker.cf.appendix_f import grid_mapping_dict17
-    except ImportError:
-        return {}
-    return {k: v[0] for k, v in grid_mapping_dict17.items() if isinstance(v[0], str)}
-
-
-_SPURIOUS = re.compile(r"^(.) is a required attribute for grid mapping (\S+)$")
-
-
-def _real_failures(path, failed_checks):
-    """Drop the checker's one-character messages that come from its table defect, after
-    checking in the file that the attribute really meant is present."""
-    defects = _checker_table_defects()
-    out = []
-    for name, msgs in failed_checks:
-        keep = []
-        for m in msgs:
-            hit = _SPURIOUS.match(m)
-            if hit and hit.group(2) in defects and hit.group(1) in defects[hit.group(2)]:
-                with netCDF4.Dataset(path) as ds:
-                    gm = {ds[v].getncattr("grid_mapping") for v in (*DATA_VARS, *ISEN_VARS) if v in ds.variables
-                          and "grid_mapping" in ds[v].ncattrs()}
-                    for g in gm:
-                        assert defects[hit.group(2)] in ds[g].ncattrs(), (
-                            f"{path.name}: grid mapping {g} lacks {defects[hit.group(2)]} (CF appendix F)")
-                note = (f"compliance-checker defect ignored: its appendix F table asks {hit.group(2)} "
-                        f"for one-character attributes; '{defects[hit.group(2)]}' checked present instead")
-                if note not in FIGURES:
-                    FIGURES.append(note)
-                continue
-            keep.append(m)
-        if keep:
-            out.append((name, keep))
-    return out
-
-
-@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
-def test_compliance_checker_cf19(kind, name, request, compliance):
-    # IOOS compliance checker, CF 1.9 suite: no failed high-priority check; medium ones
-    # are printed in the summary.
-    _, files = _products(request, kind, name)
-    for path in files:
-        rep = compliance.get(str(path))
-        assert rep is not None, f"no compliance report for {path.name}"
-        cf = rep.get("cf:1.9")
-        assert cf is not None, f"{path.name}: report has no cf:1.9 section: {list(rep)}"
-        high = [(c["name"], c["msgs"]) for c in cf["high_priorities"]
-                if c["value"][0] < c["value"][1]]
-        medium = sorted({m for c in cf["medium_priorities"] if c["value"][0] < c["value"][1]
-                         for m in c["msgs"]})
-        for m in medium:
-            note = f"compliance-checker medium: {m}"
-            if note not in FIGURES:
-                FIGURES.append(note)
-        high = _real_failures(path, high)
-        assert not high, f"{path.name}: high-priority CF failures: {high}"
-
-
-# ---------------------------------------------------------------------------------------
 # Structure as the contract states it, read with netCDF4-python
 # ---------------------------------------------------------------------------------------
 def _attrs(var):
@@ -488,3 +383,131 @@ def test_grid_mapping_reproduces_coordinates(kind, name, request):
     dx = np.nanmax(np.abs(x2 - xx)) if fwd_tol > 1 else np.nanmax(np.abs((x2 - xx + 180) % 360 - 180))
     dy = np.nanmax(np.abs(y2 - yy))
     assert dx <= fwd_tol and dy <= fwd_tol, f"{path.name}: lat/lon -> x/y off by {dx:.3g}, {dy:.3g}"
+
+
+# ---------------------------------------------------------------------------------------
+# IOOS compliance checker over every file (started first, checked last)
+# ---------------------------------------------------------------------------------------
+class _ComplianceRuns:
+    """compliance-checker runs started in the background on every product file, so that
+    the module's other checks go on meanwhile; report() waits for them and merges their
+    JSON reports (path -> results)."""
+
+    def __init__(self, exe, files, folder):
+        # --format=json_new: the checker's JSON form for several datasets in one report.
+        # Its time grows with the number of variables in a file (about 3 s a file here),
+        # so the files are shared between COMPLIANCE_PROCESSES runs at once.
+        self.jobs = []
+        for i in range(COMPLIANCE_PROCESSES):
+            part = files[i::COMPLIANCE_PROCESSES]
+            if not part:
+                continue
+            out = folder / f"report{i}.json"
+            proc = subprocess.Popen([exe, "--test=cf:1.9", "--format=json_new", "-o", str(out), *map(str, part)],
+                                    stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+            self.jobs.append((proc, out))
+        self._report = None
+
+    def report(self) -> dict:
+        if self._report is None:
+            merged = {}
+            for proc, out in self.jobs:
+                try:
+                    _, err = proc.communicate(timeout=600)
+                except subprocess.TimeoutExpired:
+                    proc.kill()
+                    _, err = proc.communicate()
+                assert out.is_file(), f"compliance-checker wrote no report (exit {proc.returncode}):\n{err[-3000:]}"
+                merged.update(json.loads(out.read_text()))
+            self._report = merged
+        return self._report
+
+    def stop(self):
+        for proc, _ in self.jobs:
+            if proc.poll() is None:
+                proc.kill()
+                proc.communicate()
+
+
+@pytest.fixture(scope="module", autouse=True)
+def compliance(request, closed_form_runs, tmp_path_factory):
+    """Started before the first check of this module (autouse); the checker's own test
+    comes last in the module and waits for it."""
+    files = []
+    for n in CASES:
+        files += closed_form_runs.get(n).nc_files
+    try:
+        real = request.getfixturevalue("real_runs")
+        for n in REAL_SAMPLES:
+            files += real.get(n).nc_files
+    except pytest.skip.Exception:
+        pass  # the real-data products' own tests show the skip
+    exe = shutil.which("compliance-checker")
+    assert exe, "compliance-checker not installed (tests/python/requirements.txt)"
+    runs = _ComplianceRuns(exe, files, tmp_path_factory.mktemp("compliance"))
+    yield runs
+    runs.stop()
+
+
+def _checker_table_defects() -> dict:
+    """Grid mappings whose required attributes the checker's own Appendix F table holds as
+    a bare string instead of a tuple (compliance-checker 6.1.0 has ("longitude_of_projection_origin")
+    for mercator): it then asks for one attribute per character. Returns name -> the
+    attribute really meant."""
+    try:
+        from compliance_checker.cf.appendix_f import grid_mapping_dict17
+    except ImportError:
+        return {}
+    return {k: v[0] for k, v in grid_mapping_dict17.items() if isinstance(v[0], str)}
+
+
+_SPURIOUS = re.compile(r"^(.) is a required attribute for grid mapping (\S+)$")
+
+
+def _real_failures(path, failed_checks):
+    """Drop the checker's one-character messages that come from its table defect, after
+    checking in the file that the attribute really meant is present."""
+    defects = _checker_table_defects()
+    out = []
+    for name, msgs in failed_checks:
+        keep = []
+        for m in msgs:
+            hit = _SPURIOUS.match(m)
+            if hit and hit.group(2) in defects and hit.group(1) in defects[hit.group(2)]:
+                with netCDF4.Dataset(path) as ds:
+                    gm = {ds[v].getncattr("grid_mapping") for v in (*DATA_VARS, *ISEN_VARS) if v in ds.variables
+                          and "grid_mapping" in ds[v].ncattrs()}
+                    for g in gm:
+                        assert defects[hit.group(2)] in ds[g].ncattrs(), (
+                            f"{path.name}: grid mapping {g} lacks {defects[hit.group(2)]} (CF appendix F)")
+                note = (f"compliance-checker defect ignored: its appendix F table asks {hit.group(2)} "
+                        f"for one-character attributes; '{defects[hit.group(2)]}' checked present instead")
+                if note not in FIGURES:
+                    FIGURES.append(note)
+                continue
+            keep.append(m)
+        if keep:
+            out.append((name, keep))
+    return out
+
+
+@pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
+def test_compliance_checker_cf19(kind, name, request, compliance):
+    # IOOS compliance checker, CF 1.9 suite: no failed high-priority check; medium ones
+    # are printed in the summary.
+    _, files = _products(request, kind, name)
+    for path in files:
+        rep = compliance.report().get(str(path))
+        assert rep is not None, f"no compliance report for {path.name}"
+        cf = rep.get("cf:1.9")
+        assert cf is not None, f"{path.name}: report has no cf:1.9 section: {list(rep)}"
+        high = [(c["name"], c["msgs"]) for c in cf["high_priorities"]
+                if c["value"][0] < c["value"][1]]
+        medium = sorted({m for c in cf["medium_priorities"] if c["value"][0] < c["value"][1]
+                         for m in c["msgs"]})
+        for m in medium:
+            note = f"compliance-checker medium: {m}"
+            if note not in FIGURES:
+                FIGURES.append(note)
+        high = _real_failures(path, high)
+        assert not high, f"{path.name}: high-priority CF failures: {high}"
