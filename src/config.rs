@@ -269,7 +269,7 @@ mod tests {
     fn defaults_and_every_problem_at_once() {
         assert_eq!(Config::from_toml("", "t").ok(), Some(Config::default()));
         let bad = "[products]\nvorticity = false\nstability = false\nisobaric_pv = false\n\
-                   isentropic = false\ntropopause = false\nlayer_pv = false\n\
+                   isentropic = false\ntropopause = false\nlayer_pv = false\nthickness = false\n\
                    [output]\ndeflate_level = 12\n\
                    [isentropic]\nsurfaces = [300.0, 290.0]\nlayers = [[310.0, 300.0]]\ntropopause_pvu = [-2.0]\n";
         match Config::from_toml(bad, "t") {

@@ -109,7 +109,7 @@ fn invalid_config_is_a_usage_error_naming_every_key() {
     let cfg = d.join("bad.toml");
     std::fs::write(
         &cfg,
-        "[products]\nvorticity = false\nstability = false\nisobaric_pv = false\nisentropic = false\ntropopause = false\nlayer_pv = false\n[output]\ndeflate_level = 11\n",
+        "[products]\nvorticity = false\nstability = false\nisobaric_pv = false\nisentropic = false\ntropopause = false\nlayer_pv = false\nthickness = false\n[output]\ndeflate_level = 11\n",
     )
     .unwrap();
     let inputs = leeward::demo::write_inputs(&d.join("in"), &[0]).unwrap();
