@@ -50,6 +50,24 @@ pub struct Config {
     pub isentropic: Isentropic,
     /// Isobaric layer thickness.
     pub thickness: Thickness,
+    /// Changes in time.
+    pub changes: Changes,
+}
+
+/// Settings of the changes in time.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Changes {
+    /// Intervals of the thickness change within a cycle, hours.
+    pub intervals_h: Vec<u32>,
+}
+
+impl Default for Changes {
+    fn default() -> Self {
+        Changes {
+            intervals_h: vec![6, 12, 24],
+        }
+    }
 }
 
 /// Layer thickness settings.
@@ -117,6 +135,10 @@ pub struct Products {
     pub layer_pv: bool,
     /// Thickness of the configured isobaric layers (`thick`).
     pub thickness: bool,
+    /// Thickness change since the step `changes.intervals_h` earlier in the same cycle (`thick_chg_NNh`).
+    pub thickness_change: bool,
+    /// This cycle minus the previous cycle at the same valid time (`thick_r2r`, `z_r2r`, `trop_p_r2r`).
+    pub run_to_run: bool,
 }
 
 impl Default for Products {
@@ -130,6 +152,8 @@ impl Default for Products {
             tropopause: true,
             layer_pv: true,
             thickness: true,
+            thickness_change: true,
+            run_to_run: true,
         }
     }
 }
@@ -245,6 +269,14 @@ impl Config {
         }
         if self.products.thickness && self.thickness.layers_hpa.is_empty() {
             p.push("thickness.layers_hpa: empty while products.thickness is on".into());
+        }
+        if let Some(h) = self
+            .changes
+            .intervals_h
+            .iter()
+            .find(|h| **h == 0 || **h > 240)
+        {
+            p.push(format!("changes.intervals_h: {h} h is outside 1 to 240 h"));
         }
         let pr = &self.products;
         if !(pr.vorticity

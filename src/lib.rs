@@ -12,10 +12,12 @@
 //! - [`geometry`]: grids, projections and derivative operators; no GRIB, no NetCDF.
 //! - [`diagnostics`]: pure functions, each written as its formula.
 //! - [`output`]: CF NetCDF files, written whole or not at all.
+//! - [`changes`]: thickness change within a cycle and run-to-run change, from published files.
 //! - [`pipeline`]: one cycle step end to end, shared by `process` and the service.
 //! - [`demo`]: an invented scenario written as GRIB2 by our own encoder.
 //! - [`cli`]: the command line, kept thin.
 
+pub mod changes;
 pub mod cli;
 pub mod config;
 pub mod demo;

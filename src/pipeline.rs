@@ -16,6 +16,7 @@ use ndarray::{Array2, Array3, ArrayView3, Axis};
 use rayon::prelude::*;
 use tracing::{info, warn};
 
+use crate::changes;
 use crate::config::Config;
 use crate::diagnostics::constants::G0;
 use crate::diagnostics::horizontal::Plane;
@@ -230,6 +231,8 @@ pub struct StepReport {
     pub products: Vec<String>,
     /// The file written, if any.
     pub output: Option<PathBuf>,
+    /// Files published earlier that this step completed (changes added to them).
+    pub updated: Vec<PathBuf>,
     /// Problems with this step's input.
     pub issues: Vec<Issue>,
     /// Wall time, seconds.
@@ -961,6 +964,60 @@ pub fn run_step(
     if let (true, Some(pv)) = (want_pv, pv3) {
         fields.push(Product::new(variables::PV, Vertical::Pressure, pv));
     }
+    if let (true, Some(z)) = (want_thick || want_isen, &z3) {
+        fields.push(Product::new(variables::Z, Vertical::Pressure, z.clone()));
+    }
+
+    // Changes in time, from the published files of earlier steps and cycles.
+    let gid = grid_id(&step.key.grid_key);
+    let run = changes::Run {
+        out_dir,
+        centre: step.key.centre,
+        grid_id: &gid,
+        member: step.key.member,
+        reference_time: step.key.reference_time,
+        valid_time: step.key.valid_time,
+    };
+    let p_layer_coords: Vec<f64> = p_layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
+    let pv_coords = cfg.isentropic.tropopause_pvu.clone();
+    let mut change_products = Vec::new();
+    // Changes are taken between values as published (bit-rounded), so that the
+    // order in which steps and cycles arrive cannot change a single bit.
+    let nsb = cfg.output.significant_bits;
+    let as_published: Vec<(&'static str, Array3<f32>)> = fields
+        .iter()
+        .filter(|f| matches!(f.spec.name, "thick" | "z" | "trop_p"))
+        .map(|f| {
+            (
+                f.spec.name,
+                f.data.mapv(|x| crate::output::cf::bit_round(x, nsb)),
+            )
+        })
+        .collect();
+    {
+        let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
+        if let (true, Some(th)) = (pr.thickness_change, find("thick")) {
+            change_products.extend(changes::within_cycle(
+                &run,
+                (&p_layer_coords, th),
+                &cfg.changes.intervals_h,
+            ));
+        }
+        if pr.run_to_run {
+            let mut cf: changes::Fields<'_> = Vec::new();
+            if let Some(a) = find("thick") {
+                cf.push(("thick", p_layer_coords.clone(), a));
+            }
+            if let Some(a) = find("z") {
+                cf.push(("z", p_pa.clone(), a));
+            }
+            if let Some(a) = find("trop_p") {
+                cf.push(("trop_p", pv_coords.clone(), a));
+            }
+            change_products.extend(changes::run_to_run(&run, &cf));
+        }
+    }
+    fields.extend(change_products);
     rep.products = fields.iter().map(|f| f.spec.name.to_string()).collect();
     rep.compute_seconds = t_compute.elapsed().as_secs_f64();
 
@@ -979,6 +1036,8 @@ pub fn run_step(
     inputs_used.dedup();
     let products = StepProducts {
         centre: step.key.centre,
+        grid_id: grid_id(&step.key.grid_key),
+        member: step.key.member,
         reference_time: step.key.reference_time,
         valid_time: step.key.valid_time,
         grid,
@@ -1009,6 +1068,33 @@ pub fn run_step(
     rep.write_seconds = t_write.elapsed().as_secs_f64();
     match written {
         Ok(path) => {
+            let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
+            let mut cf: changes::Fields<'_> = Vec::new();
+            if pr.run_to_run {
+                if let Some(a) = find("thick") {
+                    cf.push(("thick", p_layer_coords.clone(), a));
+                }
+                if let Some(a) = find("z") {
+                    cf.push(("z", products.levels.clone(), a));
+                }
+                if let Some(a) = find("trop_p") {
+                    cf.push(("trop_p", pv_coords.clone(), a));
+                }
+            }
+            let thick = if pr.thickness_change {
+                find("thick").map(|a| (p_layer_coords.as_slice(), a))
+            } else {
+                None
+            };
+            rep.updated = changes::update_later(
+                &run,
+                &path,
+                thick,
+                &cf,
+                &cfg.changes.intervals_h,
+                cfg.output.deflate_level,
+                nsb,
+            );
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");
             rep.output = Some(path);
         }
@@ -1064,4 +1150,15 @@ fn vertical_derivative(f: ArrayView3<f32>, lnp: &[f64], p: &[f64]) -> Array3<f32
             }
         });
     out
+}
+
+/// A stable fingerprint of a grid definition (FNV-1a, 64 bits, hex): the same
+/// grid gives the same value in every run and every version.
+pub fn grid_id(grid_key: &[u8]) -> String {
+    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    for &b in grid_key {
+        h ^= u64::from(b);
+        h = h.wrapping_mul(0x0100_0000_01b3);
+    }
+    format!("{h:016x}")
 }

@@ -45,6 +45,10 @@ pub enum OutputError {
 pub struct StepProducts {
     /// Originating centre (common code table C-11).
     pub centre: u16,
+    /// Fingerprint of the grid (same grid, same value), to find earlier files of the same model.
+    pub grid_id: String,
+    /// Ensemble member, if any.
+    pub member: Option<u8>,
     /// Reference time of the cycle.
     pub reference_time: NaiveDateTime,
     /// Valid time of the step.
@@ -289,6 +293,12 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
     f.add_attribute("leeward_below_ground_masking", p.masking.as_str())
         .map_err(&e)?;
     f.add_attribute("leeward_wind_components", p.winds.as_str())
+        .map_err(&e)?;
+    f.add_attribute("leeward_grid_id", p.grid_id.as_str())
+        .map_err(&e)?;
+    f.add_attribute("leeward_centre", i32::from(p.centre))
+        .map_err(&e)?;
+    f.add_attribute("leeward_member", p.member.map(i32::from).unwrap_or(-1))
         .map_err(&e)?;
 
     // Dimensions and horizontal coordinates.

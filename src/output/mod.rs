@@ -4,4 +4,5 @@
 //! Names, units and attributes of every variable come from [`variables`].
 
 pub mod cf;
+pub mod store;
 pub mod variables;

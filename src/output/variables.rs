@@ -192,6 +192,15 @@ pub const LAYER_DP: VarSpec = VarSpec {
     formula: "p(bottom theta) - p(top theta), both from the isentropic interpolation",
 };
 
+/// Geopotential height on isobaric levels (as decoded, masked below ground).
+pub const Z: VarSpec = VarSpec {
+    name: "z",
+    standard_name: Some("geopotential_height"),
+    long_name: "geopotential height of the isobaric level",
+    units: "m",
+    formula: "from the input (gpm), or geopotential / 9.80665",
+};
+
 /// Thickness of an isobaric layer.
 pub const THICK: VarSpec = VarSpec {
     name: "thick",

@@ -62,7 +62,7 @@ DEFAULT_PVU = np.array([2.0])
 P_TOL_PA = 100.0
 PV_REL_TOL = 0.02
 TROP_REL_TOL = 0.05
-#: PV checks away from the equator, where eta is small (brief of the check; common practice).
+#: PV checks away from the equator, where eta is small (common practice).
 MIN_ABS_LAT = 20.0
 #: Wind components: 24-bit packing of |u| <= 40 m s-1 quantises to 2.4e-6 m s-1 and bit
 #: rounding to 16 mantissa bits adds 7.6e-6 relative; the bound leaves a wide margin
@@ -363,9 +363,11 @@ def _check_layers(s: Setup, case, bounds):
     lo, hi = _column_theta_range(case)
     mask = _pv_mask(s)
     worst_dp, worst_pv = 0.0, 0.0
+    checked = 0
     for k, (bot, top) in enumerate(bounds):
         if not (lo + 0.01 < bot and top < hi - 0.01):
             continue
+        checked += 1
         # layer_dp = p(bottom theta) - p(top theta), closed form above, within 1 hPa at
         # every point (a column operation).
         dp = float(gribgen.lapse_rate_pressure_of_theta(bot, KAPPA) - gribgen.lapse_rate_pressure_of_theta(top, KAPPA))
@@ -379,6 +381,7 @@ def _check_layers(s: Setup, case, bounds):
         # eta is the same at every level, so its layer mean is eta; within 2% for |lat| >= 20.
         worst_pv = max(worst_pv, _compare_rel(s, f"layer_pv {bot:g}-{top:g} K", s.prod.fields["layer_pv"][k],
                                               s.eta / dp, mask, PV_REL_TOL))
+    assert checked, f"{case}: no layer of {bounds.tolist()} inside the column {lo:.2f}-{hi:.2f} K"
     return worst_dp, worst_pv
 
 

@@ -38,8 +38,8 @@ MODEL_PARAMS = {"p": (3, 0), "t": (0, 0), "z": (3, 5), "u": (2, 2), "v": (2, 3)}
 #: (docs/output.md), within the common-practice 0.2857 (REFERENCES.md).
 KAPPA = 287.05 / 1004.6
 
-#: Hemispheres compared: (PV surface in PVU, latitude band) as the brief and the samples
-#: README state them.
+#: Hemispheres compared: (PV surface in PVU, latitude band), the bands of the samples
+#: README figures.
 HEMISPHERES = {"north": (2.0, (25.0, 85.0)), "south": (-2.0, (-85.0, -25.0))}
 
 

@@ -1,0 +1,229 @@
+//! Published step files as a store: find the files of earlier steps and
+//! cycles of the same model and grid, read their fields back, and add a
+//! variable to a published file without ever exposing a partial one.
+//!
+//! In: an output directory. Out: the steps published there and their data.
+//! State needed across steps and cycles is read from these files, never kept
+//! only in memory, so it survives a restart. An update copies the file to a
+//! hidden temporary, adds to the copy, fsyncs it and renames it over the
+//! original: a reader sees the old file or the new one, never a mix.
+
+use std::path::{Path, PathBuf};
+
+use chrono::{NaiveDateTime, TimeDelta};
+use ndarray::Array3;
+
+use super::cf::{bit_round, OutputError, Product, FILL_F32};
+
+/// One published step file.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Published {
+    /// Its path.
+    pub path: PathBuf,
+    /// Cycle reference time.
+    pub reference_time: NaiveDateTime,
+    /// Valid time.
+    pub valid_time: NaiveDateTime,
+}
+
+fn text_attr(f: &netcdf::File, name: &str) -> Option<String> {
+    match f.attribute(name)?.value().ok()? {
+        netcdf::AttributeValue::Str(s) => Some(s),
+        _ => None,
+    }
+}
+
+fn int_attr(f: &netcdf::File, name: &str) -> Option<i64> {
+    match f.attribute(name)?.value().ok()? {
+        netcdf::AttributeValue::Int(v) => Some(i64::from(v)),
+        netcdf::AttributeValue::Short(v) => Some(i64::from(v)),
+        _ => None,
+    }
+}
+
+/// Reference and valid time of a file written by leeward: from its `time`
+/// units ("hours since REF") and value.
+fn times(f: &netcdf::File) -> Option<(NaiveDateTime, NaiveDateTime)> {
+    let v = f.variable("time")?;
+    let units = match v.attribute("units")?.value().ok()? {
+        netcdf::AttributeValue::Str(s) => s,
+        _ => return None,
+    };
+    let since = units.strip_prefix("hours since ")?;
+    let reference = NaiveDateTime::parse_from_str(since, "%Y-%m-%d %H:%M:%S").ok()?;
+    let hours: f64 = v.get_value(0).ok()?;
+    let valid = reference + TimeDelta::try_seconds((hours * 3600.0).round() as i64)?;
+    Some((reference, valid))
+}
+
+/// Every step published in `dir` for this centre, grid and member. Files that
+/// are not leeward's, or unreadable, are passed over.
+pub fn published(dir: &Path, centre: u16, grid_id: &str, member: Option<u8>) -> Vec<Published> {
+    let Ok(rd) = std::fs::read_dir(dir) else {
+        return Vec::new();
+    };
+    let mut out = Vec::new();
+    for e in rd.flatten() {
+        let path = e.path();
+        let name = e.file_name().to_string_lossy().into_owned();
+        if name.starts_with('.') || !name.ends_with(".nc") {
+            continue;
+        }
+        let Ok(f) = netcdf::open(&path) else { continue };
+        let same = text_attr(&f, "leeward_grid_id").as_deref() == Some(grid_id)
+            && int_attr(&f, "leeward_centre") == Some(i64::from(centre))
+            && int_attr(&f, "leeward_member") == Some(member.map(i64::from).unwrap_or(-1));
+        if !same {
+            continue;
+        }
+        if let Some((reference_time, valid_time)) = times(&f) {
+            out.push(Published {
+                path,
+                reference_time,
+                valid_time,
+            });
+        }
+    }
+    out.sort_by_key(|p| (p.reference_time, p.valid_time));
+    out
+}
+
+/// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
+/// with the values of its vertical coordinate.
+pub fn read_field(path: &Path, name: &str) -> Option<(Vec<f64>, Array3<f32>)> {
+    let f = netcdf::open(path).ok()?;
+    let v = f.variable(name)?;
+    let dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
+    let vname = v.dimensions().get(1)?.name();
+    if dims.len() != 4 {
+        return None;
+    }
+    let data: Vec<f32> = v.get_values(..).ok()?;
+    let a = Array3::from_shape_vec((dims[1], dims[2], dims[3]), data).ok()?;
+    let coord: Vec<f64> = f
+        .variable(&vname)
+        .and_then(|c| c.get_values(..).ok())
+        .unwrap_or_default();
+    Some((
+        coord,
+        a.mapv(|x| {
+            if x == FILL_F32 || !x.is_finite() {
+                f32::NAN
+            } else {
+                x
+            }
+        }),
+    ))
+}
+
+/// Add (or replace) float variables on an existing vertical dimension of a
+/// published file, atomically: copy, add to the copy, fsync, rename over.
+pub fn add_variables(
+    path: &Path,
+    vars: &[Product],
+    deflate: i32,
+    significant_bits: u32,
+) -> Result<(), OutputError> {
+    let io = |p: &Path| {
+        let p = p.to_path_buf();
+        move |source| OutputError::Io { path: p, source }
+    };
+    let dir = path.parent().unwrap_or(Path::new("."));
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let tmp = dir.join(format!(".{name}.update-{}", std::process::id()));
+    std::fs::copy(path, &tmp).map_err(io(&tmp))?;
+    let result = (|| -> Result<(), OutputError> {
+        let e = |source| OutputError::NetCdf {
+            path: tmp.clone(),
+            source,
+        };
+        let mut f = netcdf::append(&tmp).map_err(e)?;
+        let coords = ["zeta", "theta", "thick", "isen_p"]
+            .iter()
+            .find_map(|n| {
+                let v = f.variable(n)?;
+                let a = v.attribute("coordinates")?;
+                match a.value().ok()? {
+                    netcdf::AttributeValue::Str(s) => Some(s),
+                    _ => None,
+                }
+            })
+            .unwrap_or_else(|| "reference_time lead_time".to_string());
+        let (ydim, xdim) = if f.dimension("lat").is_some()
+            && f.variable("lon").is_some_and(|v| v.dimensions().len() == 1)
+        {
+            ("lat", "lon")
+        } else if f.dimension("rlat").is_some() {
+            ("rlat", "rlon")
+        } else {
+            ("y", "x")
+        };
+        for prod in vars {
+            let (spec, vertical, data, notes) =
+                (&prod.spec, prod.vertical.dim(), &prod.data, &prod.notes);
+            if f.variable(spec.name).is_some() {
+                // Already there (written earlier): values are replaced in place below.
+            } else {
+                let mut v = f
+                    .add_variable::<f32>(spec.name, &["time", vertical, ydim, xdim])
+                    .map_err(e)?;
+                v.set_fill_value(FILL_F32).map_err(e)?;
+                if deflate > 0 {
+                    v.set_compression(deflate, true).map_err(e)?;
+                }
+                let (_, ny, nx) = data.dim();
+                v.set_chunking(&[1, 1, ny, nx]).map_err(e)?;
+                if let Some(s) = spec.standard_name {
+                    v.put_attribute("standard_name", s).map_err(e)?;
+                }
+                v.put_attribute("long_name", spec.long_name).map_err(e)?;
+                v.put_attribute("units", spec.units).map_err(e)?;
+                v.put_attribute("grid_mapping", "crs").map_err(e)?;
+                v.put_attribute("coordinates", coords.as_str()).map_err(e)?;
+                v.put_attribute("comment", spec.formula).map_err(e)?;
+                for (n, t) in notes {
+                    v.put_attribute(n, t.as_str()).map_err(e)?;
+                }
+                if significant_bits < 23 {
+                    v.put_attribute("leeward_significant_bits", significant_bits as i32)
+                        .map_err(e)?;
+                }
+            }
+            let mut v = f
+                .variable_mut(spec.name)
+                .ok_or_else(|| OutputError::NetCdf {
+                    path: tmp.clone(),
+                    source: netcdf::Error::from("variable vanished"),
+                })?;
+            for (k, level) in data.outer_iter().enumerate() {
+                let buf: Vec<f32> = level
+                    .iter()
+                    .map(|&x| {
+                        if x.is_finite() {
+                            bit_round(x, significant_bits)
+                        } else {
+                            FILL_F32
+                        }
+                    })
+                    .collect();
+                v.put_values(&buf, (0, k, .., ..)).map_err(e)?;
+            }
+        }
+        f.close().map_err(e)?;
+        std::fs::File::open(&tmp)
+            .and_then(|f| f.sync_all())
+            .map_err(io(&tmp))?;
+        std::fs::rename(&tmp, path).map_err(io(path))?;
+        std::fs::File::open(dir)
+            .and_then(|d| d.sync_all())
+            .map_err(io(dir))?;
+        Ok(())
+    })();
+    if result.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    result
+}
