@@ -274,3 +274,222 @@ pub fn update_later(
     }
     updated
 }
+
+/// Budget variables on isentropic layers and surfaces.
+pub mod budget_vars {
+    use crate::output::variables::{VarSpec, PVU_UNITS};
+
+    /// Predicted relative vorticity.
+    pub const ZETA_PRED: VarSpec = VarSpec {
+        name: "bud_zeta_pred",
+        standard_name: None,
+        long_name: "relative vorticity the layer's column would have if (zeta + f)/depth were conserved since the previous step",
+        units: "s-1",
+        formula: "eta_d depth_a / depth_d - f_a, eta_d and depth_d at the departure point (semi-Lagrangian midpoint trajectories of the layer-mean wind)",
+    };
+    /// Actual relative vorticity of the layer.
+    pub const ZETA: VarSpec = VarSpec {
+        name: "bud_zeta",
+        standard_name: None,
+        long_name: "relative vorticity of the layer-mean wind",
+        units: "s-1",
+        formula: "layer_pv * layer_dp - f",
+    };
+    /// Actual minus predicted.
+    pub const ZETA_DIFF: VarSpec = VarSpec {
+        name: "bud_zeta_diff",
+        standard_name: None,
+        long_name: "actual minus conserved-PV prediction of the layer's relative vorticity",
+        units: "s-1",
+        formula: "bud_zeta - bud_zeta_pred; non-zero where heating, radiation or friction changes the column's PV (or the trajectory is unreliable)",
+    };
+    /// Fractional depth change.
+    pub const STRETCH: VarSpec = VarSpec {
+        name: "bud_stretch",
+        standard_name: None,
+        long_name:
+            "fractional change of the layer's pressure depth along the trajectory (stretching > 0)",
+        units: "1",
+        formula: "(depth_a - depth_d)/depth_d",
+    };
+    /// Lagrangian rate of change of PV on isentropic surfaces.
+    pub const DPVDT: VarSpec = VarSpec {
+        name: "bud_dpvdt",
+        standard_name: None,
+        long_name:
+            "Lagrangian rate of change of Ertel potential vorticity on the isentropic surface",
+        units: "1e-6 K m2 kg-1 s-1 h-1",
+        formula:
+            "(P_a - P_d)/dt in PVU per hour, P_d at the departure point of the surface's own winds",
+    };
+    /// The unit of PV, for reference.
+    pub const _PVU: &str = PVU_UNITS;
+}
+
+/// Grid geometry for the budget's trajectories.
+pub struct Geometry<'a> {
+    /// Trajectory layout of the grid.
+    pub layout: crate::diagnostics::budget::Layout<'a>,
+    /// Coriolis parameter at every point.
+    pub f: &'a ndarray::Array2<f64>,
+    /// Angle from east to grid x (None when axes are east and north).
+    pub rotation: Option<&'a ndarray::Array2<f64>>,
+    /// Whether the files' isentropic winds are along the grid's axes already
+    /// (layer-mean winds always are).
+    pub winds_grid_relative: bool,
+    /// Periodic in x.
+    pub periodic: bool,
+}
+
+fn to_grid(
+    g: &Geometry<'_>,
+    u: &ndarray::Array2<f64>,
+    v: &ndarray::Array2<f64>,
+) -> (ndarray::Array2<f64>, ndarray::Array2<f64>) {
+    match (g.rotation, g.winds_grid_relative) {
+        (Some(alpha), false) => {
+            crate::diagnostics::vorticity::earth_to_grid(u.view(), v.view(), alpha.view())
+        }
+        _ => (u.clone(), v.clone()),
+    }
+}
+
+/// The PV budget of the later step `new` against the earlier `old`, both read from
+/// their published files, `dt_h` hours apart.
+pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Product> {
+    use crate::diagnostics::budget::{
+        at_departure, departure_points, predicted_absolute_vorticity, stretching,
+    };
+    use ndarray::Axis;
+    let read = |p: &Path, n: &str| read_field(p, n).map(|(_, a)| a.mapv(f64::from));
+    let dt = dt_h * 3600.0;
+    let mut out = Vec::new();
+    // Layers: trajectories of the layer-mean wind.
+    if let (Some(uo), Some(vo), Some(un), Some(vn), Some(pvo), Some(dpo), Some(pvn), Some(dpn)) = (
+        read(old, "layer_u"),
+        read(old, "layer_v"),
+        read(new, "layer_u"),
+        read(new, "layer_v"),
+        read(old, "layer_pv"),
+        read(old, "layer_dp"),
+        read(new, "layer_pv"),
+        read(new, "layer_dp"),
+    ) {
+        let (nl, ny, nx) = un.dim();
+        let mut pred = Array3::from_elem((nl, ny, nx), f32::NAN);
+        let mut act = pred.clone();
+        let mut diff = pred.clone();
+        let mut str_ = pred.clone();
+        for l in 0..nl.min(uo.dim().0) {
+            // Layer-mean winds are written along the grid's axes.
+            let (uo, vo) = (uo.index_axis(Axis(0), l), vo.index_axis(Axis(0), l));
+            let (un, vn) = (un.index_axis(Axis(0), l), vn.index_axis(Axis(0), l));
+            let (dj, di) = departure_points(&g.layout, uo, vo, un, vn, dt, 4);
+            let eta_old = &pvo.index_axis(Axis(0), l) * &dpo.index_axis(Axis(0), l);
+            let eta_d = at_departure(eta_old.view(), dj.view(), di.view(), g.periodic);
+            let dp_d = at_departure(dpo.index_axis(Axis(0), l), dj.view(), di.view(), g.periodic);
+            for j in 0..ny {
+                for i in 0..nx {
+                    let dpa = dpn[(l, j, i)];
+                    let fa = g.f[(j, i)];
+                    let zp = predicted_absolute_vorticity(eta_d[(j, i)], dp_d[(j, i)], dpa) - fa;
+                    let za = pvn[(l, j, i)] * dpa - fa;
+                    pred[(l, j, i)] = zp as f32;
+                    act[(l, j, i)] = za as f32;
+                    diff[(l, j, i)] = (za - zp) as f32;
+                    str_[(l, j, i)] = stretching(dp_d[(j, i)], dpa) as f32;
+                }
+            }
+        }
+        let note = ("leeward_budget_interval_h", format!("{dt_h}"));
+        for (spec, data) in [
+            (budget_vars::ZETA_PRED, pred),
+            (budget_vars::ZETA, act),
+            (budget_vars::ZETA_DIFF, diff),
+            (budget_vars::STRETCH, str_),
+        ] {
+            let mut p = Product::new(spec, Vertical::ThetaLayer, data);
+            p.notes.push(note.clone());
+            out.push(p);
+        }
+    }
+    // Surfaces: trajectories of each surface's own wind.
+    if let (Some(uo), Some(vo), Some(un), Some(vn), Some(pvo), Some(pvn)) = (
+        read(old, "isen_u"),
+        read(old, "isen_v"),
+        read(new, "isen_u"),
+        read(new, "isen_v"),
+        read(old, "isen_pv"),
+        read(new, "isen_pv"),
+    ) {
+        let (ns, ny, nx) = un.dim();
+        let mut rate = Array3::from_elem((ns, ny, nx), f32::NAN);
+        for s in 0..ns.min(uo.dim().0) {
+            let (uo, vo) = to_grid(
+                g,
+                &uo.index_axis(Axis(0), s).to_owned(),
+                &vo.index_axis(Axis(0), s).to_owned(),
+            );
+            let (un, vn) = to_grid(
+                g,
+                &un.index_axis(Axis(0), s).to_owned(),
+                &vn.index_axis(Axis(0), s).to_owned(),
+            );
+            let (dj, di) =
+                departure_points(&g.layout, uo.view(), vo.view(), un.view(), vn.view(), dt, 4);
+            let pv_d = at_departure(pvo.index_axis(Axis(0), s), dj.view(), di.view(), g.periodic);
+            for j in 0..ny {
+                for i in 0..nx {
+                    rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / dt_h) as f32;
+                }
+            }
+        }
+        let mut p = Product::new(budget_vars::DPVDT, Vertical::Theta, rate);
+        p.notes
+            .push(("leeward_budget_interval_h", format!("{dt_h}")));
+        out.push(p);
+    }
+    out
+}
+
+/// After this step is published: its budget against the previous step of the
+/// cycle, and the next step's budget against this one (steps in any order).
+pub fn update_budgets(
+    run: &Run<'_>,
+    this_file: &Path,
+    g: &Geometry<'_>,
+    max_interval_h: u32,
+    deflate: i32,
+    nsb: u32,
+) -> Vec<PathBuf> {
+    let files = published(run.out_dir, run.centre, run.grid_id, run.member);
+    let same_cycle: Vec<&Published> = files
+        .iter()
+        .filter(|p| p.reference_time == run.reference_time)
+        .collect();
+    let max = TimeDelta::try_hours(i64::from(max_interval_h)).unwrap_or_default();
+    let mut updated = Vec::new();
+    let prev = same_cycle
+        .iter()
+        .filter(|p| p.valid_time < run.valid_time)
+        .max_by_key(|p| p.valid_time);
+    if let Some(prev) = prev {
+        let dt = run.valid_time - prev.valid_time;
+        if dt <= max {
+            let prods = pv_budget(g, &prev.path, this_file, dt.num_seconds() as f64 / 3600.0);
+            updated.extend(update(this_file, prods, deflate, nsb));
+        }
+    }
+    let next = same_cycle
+        .iter()
+        .filter(|p| p.valid_time > run.valid_time)
+        .min_by_key(|p| p.valid_time);
+    if let Some(next) = next {
+        let dt = next.valid_time - run.valid_time;
+        if dt <= max {
+            let prods = pv_budget(g, this_file, &next.path, dt.num_seconds() as f64 / 3600.0);
+            updated.extend(update(&next.path, prods, deflate, nsb));
+        }
+    }
+    updated
+}

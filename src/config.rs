@@ -60,12 +60,15 @@ pub struct Config {
 pub struct Changes {
     /// Intervals of the thickness change within a cycle, hours.
     pub intervals_h: Vec<u32>,
+    /// Longest interval between consecutive steps for which the PV budget is made, hours.
+    pub budget_max_interval_h: u32,
 }
 
 impl Default for Changes {
     fn default() -> Self {
         Changes {
             intervals_h: vec![6, 12, 24],
+            budget_max_interval_h: 12,
         }
     }
 }
@@ -139,6 +142,8 @@ pub struct Products {
     pub thickness_change: bool,
     /// This cycle minus the previous cycle at the same valid time (`thick_r2r`, `z_r2r`, `trop_p_r2r`).
     pub run_to_run: bool,
+    /// PV budget along isentropic trajectories between consecutive steps (`bud_*`).
+    pub pv_budget: bool,
 }
 
 impl Default for Products {
@@ -154,6 +159,7 @@ impl Default for Products {
             thickness: true,
             thickness_change: true,
             run_to_run: true,
+            pv_budget: true,
         }
     }
 }
@@ -241,6 +247,13 @@ impl Config {
                 ));
             }
         }
+        let mids: Vec<f64> = iso.layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
+        if mids.windows(2).any(|w| w[1] <= w[0]) {
+            p.push(
+                "isentropic.layers: the layers' middles must be strictly ascending (bottom to top)"
+                    .into(),
+            );
+        }
         if self.products.layer_pv && iso.layers.is_empty() {
             p.push("isentropic.layers: empty while products.layer_pv is on".into());
         }
@@ -269,6 +282,12 @@ impl Config {
         }
         if self.products.thickness && self.thickness.layers_hpa.is_empty() {
             p.push("thickness.layers_hpa: empty while products.thickness is on".into());
+        }
+        if !(1..=48).contains(&self.changes.budget_max_interval_h) {
+            p.push(format!(
+                "changes.budget_max_interval_h: {} h is outside 1 to 48 h",
+                self.changes.budget_max_interval_h
+            ));
         }
         if let Some(h) = self
             .changes

@@ -20,7 +20,7 @@ use crate::changes;
 use crate::config::Config;
 use crate::diagnostics::constants::G0;
 use crate::diagnostics::horizontal::Plane;
-use crate::diagnostics::{isentropic, pv, stability, thickness, tropopause, vorticity};
+use crate::diagnostics::{budget, isentropic, pv, stability, thickness, tropopause, vorticity};
 use crate::geometry::Horizontal;
 use crate::ingest::catalogue::{catalogue, Catalogue, FieldEntry};
 use crate::ingest::decode::decode;
@@ -845,12 +845,16 @@ pub fn run_step(
         let nl = layers.len();
         let mut lpv = Array3::from_elem((nl, ny, nx), f32::NAN);
         let mut ldp = Array3::from_elem((nl, ny, nx), f32::NAN);
+        let mut lu = Array3::from_elem((nl, ny, nx), f32::NAN);
+        let mut lv = Array3::from_elem((nl, ny, nx), f32::NAN);
         for (n, l) in layers.iter().enumerate() {
             let ib = bounds.iter().position(|b| *b == l[0]).unwrap_or(0);
             let it = bounds.iter().position(|b| *b == l[1]).unwrap_or(0);
             let (um, vm, dp) =
                 isentropic::layer_mean_wind(ug.view(), vg.view(), &p_pa, &surf, ib, it);
             let z = plane.vorticity(um.view(), vm.view());
+            lu.index_axis_mut(Axis(0), n).assign(&um.mapv(|x| x as f32));
+            lv.index_axis_mut(Axis(0), n).assign(&vm.mapv(|x| x as f32));
             ndarray::Zip::indexed(&z).for_each(|(j, i), &zv| {
                 let d = dp[(j, i)];
                 ldp[(n, j, i)] = d as f32;
@@ -859,6 +863,29 @@ pub fn run_step(
         }
         fields.push(Product::new(variables::LAYER_PV, Vertical::ThetaLayer, lpv));
         fields.push(Product::new(variables::LAYER_DP, Vertical::ThetaLayer, ldp));
+        let (lu_spec, lv_spec) = if plane.rotation.is_some() {
+            (variables::WIND_U_GRID, variables::WIND_V_GRID)
+        } else {
+            (variables::WIND_U_EARTH, variables::WIND_V_EARTH)
+        };
+        fields.push(Product::new(
+            variables::wind(
+                "layer_u",
+                lu_spec,
+                "layer-mean wind along the grid's x axis",
+            ),
+            Vertical::ThetaLayer,
+            lu,
+        ));
+        fields.push(Product::new(
+            variables::wind(
+                "layer_v",
+                lv_spec,
+                "layer-mean wind along the grid's y axis",
+            ),
+            Vertical::ThetaLayer,
+            lv,
+        ));
     }
 
     rep.family_seconds
@@ -1034,6 +1061,9 @@ pub fn run_step(
         .collect();
     inputs_used.sort();
     inputs_used.dedup();
+    let budget_f = plane.f.clone();
+    let budget_rotation = plane.rotation.clone();
+    drop(plane);
     let products = StepProducts {
         centre: step.key.centre,
         grid_id: grid_id(&step.key.grid_key),
@@ -1095,6 +1125,45 @@ pub fn run_step(
                 cfg.output.deflate_level,
                 nsb,
             );
+            if pr.pv_budget && want_layer {
+                let layout = match &products.grid.horizontal {
+                    Horizontal::LatLon { lat, lon, .. } => budget::Layout::Sphere {
+                        lat,
+                        lon,
+                        radius: products.grid.radius(),
+                        periodic: products.grid.periodic(),
+                    },
+                    Horizontal::Rotated { rlat, rlon, .. } => budget::Layout::Sphere {
+                        lat: rlat,
+                        lon: rlon,
+                        radius: products.grid.radius(),
+                        periodic: products.grid.periodic(),
+                    },
+                    Horizontal::Projected { proj, x, y } => budget::Layout::Projected {
+                        proj: *proj,
+                        earth: products.grid.earth,
+                        x0: x[0],
+                        y0: y[0],
+                        dx: if x.len() > 1 { x[1] - x[0] } else { f64::NAN },
+                        dy: if y.len() > 1 { y[1] - y[0] } else { f64::NAN },
+                    },
+                };
+                let geom = changes::Geometry {
+                    layout,
+                    f: &budget_f,
+                    rotation: budget_rotation.as_ref(),
+                    winds_grid_relative: input_grid_relative,
+                    periodic: products.grid.periodic(),
+                };
+                rep.updated.extend(changes::update_budgets(
+                    &run,
+                    &path,
+                    &geom,
+                    cfg.changes.budget_max_interval_h,
+                    cfg.output.deflate_level,
+                    nsb,
+                ));
+            }
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");
             rep.output = Some(path);
         }

@@ -5,6 +5,7 @@
 //! function carries its equation and source in its doc comment and a
 //! closed-form test beside it.
 
+pub mod budget;
 pub mod constants;
 pub mod horizontal;
 pub mod isentropic;

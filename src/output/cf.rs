@@ -409,14 +409,17 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
             f.add_dimension("nv", 2).map_err(&e)?;
         }
         let mid: Vec<f64> = p.p_layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
-        let mut v = f.add_variable::<f64>("p_layer", &["p_layer"]).map_err(&e)?;
+        // Layers may overlap (1000-500 and 1000-850 hPa): their middles need not be
+        // monotonic, so they form an auxiliary coordinate, not a coordinate variable.
+        let mut v = f
+            .add_variable::<f64>("p_layer_mid", &["p_layer"])
+            .map_err(&e)?;
         v.put_attribute("standard_name", "air_pressure")
             .map_err(&e)?;
         v.put_attribute("long_name", "pressure at the middle of the isobaric layer")
             .map_err(&e)?;
         v.put_attribute("units", "Pa").map_err(&e)?;
         v.put_attribute("positive", "down").map_err(&e)?;
-        v.put_attribute("axis", "Z").map_err(&e)?;
         v.put_attribute("bounds", "p_layer_bounds").map_err(&e)?;
         v.put_values(&mid, ..).map_err(&e)?;
         let mut b = f
@@ -612,7 +615,12 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
         v.put_attribute("long_name", spec.long_name).map_err(&e)?;
         v.put_attribute("units", spec.units).map_err(&e)?;
         v.put_attribute("grid_mapping", "crs").map_err(&e)?;
-        v.put_attribute("coordinates", coords).map_err(&e)?;
+        if prod.vertical == Vertical::PressureLayer {
+            v.put_attribute("coordinates", format!("{coords} p_layer_mid").as_str())
+                .map_err(&e)?;
+        } else {
+            v.put_attribute("coordinates", coords).map_err(&e)?;
+        }
         v.put_attribute("comment", spec.formula).map_err(&e)?;
         if prod.vertical == Vertical::ThetaLayer && spec.name == super::variables::LAYER_PV.name {
             v.put_attribute("cell_methods", "theta_layer: mean")

@@ -102,6 +102,7 @@ pub fn read_field(path: &Path, name: &str) -> Option<(Vec<f64>, Array3<f32>)> {
     let a = Array3::from_shape_vec((dims[1], dims[2], dims[3]), data).ok()?;
     let coord: Vec<f64> = f
         .variable(&vname)
+        .or_else(|| f.variable(&format!("{vname}_mid")))
         .and_then(|c| c.get_values(..).ok())
         .unwrap_or_default();
     Some((
@@ -182,7 +183,12 @@ pub fn add_variables(
                 v.put_attribute("long_name", spec.long_name).map_err(e)?;
                 v.put_attribute("units", spec.units).map_err(e)?;
                 v.put_attribute("grid_mapping", "crs").map_err(e)?;
-                v.put_attribute("coordinates", coords.as_str()).map_err(e)?;
+                if vertical == "p_layer" {
+                    v.put_attribute("coordinates", format!("{coords} p_layer_mid").as_str())
+                        .map_err(e)?;
+                } else {
+                    v.put_attribute("coordinates", coords.as_str()).map_err(e)?;
+                }
                 v.put_attribute("comment", spec.formula).map_err(e)?;
                 for (n, t) in notes {
                     v.put_attribute(n, t.as_str()).map_err(e)?;

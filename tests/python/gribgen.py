@@ -732,6 +732,26 @@ def _describe(h):
     return d
 
 
+def first_field(path, wanted):
+    """The first field (as read_fields describes it) for which wanted(handle) is true,
+    reading no further than that message; None if there is none. Multi-field messages are
+    split (codes_grib_multi_support_on)."""
+    eccodes.codes_grib_multi_support_on()
+    try:
+        with open(path, "rb") as f:
+            while True:
+                h = eccodes.codes_grib_new_from_file(f)
+                if h is None:
+                    return None
+                try:
+                    if wanted(h):
+                        return _describe(h)
+                finally:
+                    eccodes.codes_release(h)
+    finally:
+        eccodes.codes_grib_multi_support_off()
+
+
 def read_grid_latlons(path):
     """(lat, lon, j_positive, i_negative) of the first field of a file, from ecCodes'
     own geometry (its iterator), file order, shape (Nj, Ni)."""

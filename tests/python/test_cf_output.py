@@ -9,12 +9,14 @@ ecCodes for the geography of the GRIB input.
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import json
 import re
 import shutil
 import subprocess
 
 import pyproj  # first: PROJ before ecCodes in this process
+import eccodes
 import netCDF4
 import numpy as np
 import pytest
@@ -95,12 +97,20 @@ def _input_for(request, kind, name):
     return request.getfixturevalue("samples_dir") / REAL_SAMPLES[name]
 
 
+def _is_isobaric_u(h):
+    return (eccodes.codes_get_long(h, "discipline") == 0
+            and eccodes.codes_get_long(h, "typeOfFirstFixedSurface") == 100
+            and (eccodes.codes_get_long(h, "parameterCategory"),
+                 eccodes.codes_get_long(h, "parameterNumber")) == gribgen.PARAM_U)
+
+
+@functools.lru_cache(maxsize=None)
 def _first_field(path):
-    """The first isobaric u field of an input: its grid and times describe the product."""
-    for f in gribgen.read_fields(path):
-        if f["level_type"] == 100 and (f["category"], f["number"]) == gribgen.PARAM_U:
-            return f
-    raise AssertionError(f"{path}: no isobaric u field")
+    """The first isobaric u field of an input: its grid and times describe the product
+    (read once per input)."""
+    f = gribgen.first_field(path, _is_isobaric_u)
+    assert f is not None, f"{path}: no isobaric u field"
+    return f
 
 
 def _products(request, kind, name):
