@@ -191,6 +191,12 @@ impl Config {
             path: origin.to_string(),
             reason: e.to_string(),
         })?;
+        let mut cfg = cfg;
+        // Layers are kept in order of their middle potential temperature, so that the
+        // layer coordinate in the files is monotonic as CF requires.
+        cfg.isentropic
+            .layers
+            .sort_by(|a, b| (a[0] + a[1]).total_cmp(&(b[0] + b[1])));
         let problems = cfg.problems();
         if problems.is_empty() {
             Ok(cfg)
@@ -247,12 +253,10 @@ impl Config {
                 ));
             }
         }
-        let mids: Vec<f64> = iso.layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
-        if mids.windows(2).any(|w| w[1] <= w[0]) {
-            p.push(
-                "isentropic.layers: the layers' middles must be strictly ascending (bottom to top)"
-                    .into(),
-            );
+        let mut mids: Vec<f64> = iso.layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
+        mids.sort_by(f64::total_cmp);
+        if let Some(w) = mids.windows(2).find(|w| w[1] == w[0]) {
+            p.push(format!("isentropic.layers: two layers share the middle {} K; the layer coordinate needs distinct middles", w[0]));
         }
         if self.products.layer_pv && iso.layers.is_empty() {
             p.push("isentropic.layers: empty while products.layer_pv is on".into());

@@ -420,8 +420,11 @@ def test_configured_coordinates(configured):
     s = configured
     np.testing.assert_allclose(s.prod.theta_level, CONFIG_SURFACES, rtol=0, atol=1e-9)
     np.testing.assert_allclose(s.prod.pv_level, CONFIG_PVU, rtol=0, atol=1e-9)
-    np.testing.assert_allclose(s.prod.theta_layer_bounds, CONFIG_LAYERS, rtol=0, atol=1e-9)
-    np.testing.assert_allclose(s.prod.theta_layer, np.mean(CONFIG_LAYERS, axis=1), rtol=0, atol=1e-9)
+    # docs/configuration.md: layers are written in order of their middle potential
+    # temperature (a CF coordinate variable must be monotonic).
+    layers = sorted(CONFIG_LAYERS, key=lambda l: l[0] + l[1])
+    np.testing.assert_allclose(s.prod.theta_layer_bounds, layers, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(s.prod.theta_layer, np.mean(layers, axis=1), rtol=0, atol=1e-9)
 
 
 def test_configured_surfaces_closed_form(configured):
