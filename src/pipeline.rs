@@ -243,6 +243,9 @@ pub struct StepReport {
     pub compute_seconds: f64,
     /// Of which writing the file.
     pub write_seconds: f64,
+    /// Of which changes in time and the PV budget after publishing (reading earlier
+    /// files, updating later ones).
+    pub changes_seconds: f64,
     /// Diagnostics time by family (vorticity, stability, isobaric PV, isentropic, tropopause, layer PV).
     pub family_seconds: Vec<(&'static str, f64)>,
     /// Why nothing was written, when nothing was.
@@ -1116,6 +1119,7 @@ pub fn run_step(
             } else {
                 None
             };
+            let t_changes = Instant::now();
             rep.updated = changes::update_later(
                 &run,
                 &path,
@@ -1164,6 +1168,7 @@ pub fn run_step(
                     nsb,
                 ));
             }
+            rep.changes_seconds = t_changes.elapsed().as_secs_f64();
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");
             rep.output = Some(path);
         }

@@ -2,7 +2,10 @@
 //! threads), then the whole pipeline with its decode, diagnostics and write
 //! times. Prints one JSON line per measurement.
 //!
-//!     cargo bench --bench step -- FILE.grib2 [OUT_DIR]
+//!     cargo bench --bench step -- FILE.grib2 [OUT_DIR [NEXT_STEP.grib2]]
+//!
+//! With a next step, it is processed into the same directory afterwards, which
+//! times the changes in time and the PV budget against the first.
 
 use std::time::Instant;
 
@@ -70,8 +73,8 @@ fn main() {
             println!("{{\"what\":\"family\",\"name\":\"{name}\",\"seconds\":{secs:.4}}}");
         }
         println!(
-            "{{\"what\":\"step\",\"fields_used\":{},\"decode_s\":{:.4},\"diagnostics_s\":{:.4},\"write_s\":{:.4},\"step_s\":{:.4}}}",
-            r.fields_used, r.decode_seconds, r.compute_seconds, r.write_seconds, r.seconds
+            "{{\"what\":\"step\",\"fields_used\":{},\"decode_s\":{:.4},\"diagnostics_s\":{:.4},\"write_s\":{:.4},\"changes_s\":{:.4},\"step_s\":{:.4}}}",
+            r.fields_used, r.decode_seconds, r.compute_seconds, r.write_seconds, r.changes_seconds, r.seconds
         );
     }
     println!(

@@ -13,6 +13,8 @@ import functools
 import json
 import re
 import shutil
+from pathlib import Path
+import sys
 import subprocess
 
 import pyproj  # first: PROJ before ecCodes in this process
@@ -452,7 +454,9 @@ def compliance(request, closed_form_runs, tmp_path_factory):
             files += real.get(n).nc_files
     except pytest.skip.Exception:
         pass  # the real-data products' own tests show the skip
-    exe = shutil.which("compliance-checker")
+    # The checker installed with this interpreter (the test venv), before any on PATH.
+    beside = Path(sys.executable).parent / "compliance-checker"
+    exe = str(beside) if beside.is_file() else shutil.which("compliance-checker")
     assert exe, "compliance-checker not installed (tests/python/requirements.txt)"
     runs = _ComplianceRuns(exe, files, tmp_path_factory.mktemp("compliance"))
     yield runs
