@@ -14,7 +14,7 @@
 //! for projected grids, whose winds are turned from grid axes to east and north
 //! at each midpoint and whose departure points are projected back to the plane.
 
-use ndarray::{Array2, ArrayView2};
+use ndarray::{Array2, ArrayView2, Zip};
 
 use crate::geometry::{Conformal, Earth};
 
@@ -142,8 +142,9 @@ pub fn departure_points(
                 };
                 (frac_index(lat, la), fi)
             };
-            for j in 0..ny {
-                for i in 0..nx {
+            Zip::indexed(&mut dj)
+                .and(&mut di)
+                .par_for_each(|(j, i), dj_out, di_out| {
                     let xa = unit(lat[j], lon[i]);
                     let mut xd = xa;
                     let mut ok = true;
@@ -170,11 +171,10 @@ pub fn departure_points(
                     if ok {
                         let (la, lo) = latlon(xd);
                         let (fj, fi) = to_index(la, lo);
-                        dj[(j, i)] = fj;
-                        di[(j, i)] = fi;
+                        *dj_out = fj;
+                        *di_out = fi;
                     }
-                }
-            }
+                });
         }
         Layout::Projected {
             proj,
@@ -189,8 +189,9 @@ pub fn departure_points(
                 let (x, y) = proj.forward(earth, la, lo);
                 ((y - y0) / dy, (x - x0) / dx)
             };
-            for j in 0..ny {
-                for i in 0..nx {
+            Zip::indexed(&mut dj)
+                .and(&mut di)
+                .par_for_each(|(j, i), dj_out, di_out| {
                     let (la0, lo0) = proj.inverse(earth, x0 + i as f64 * dx, y0 + j as f64 * dy);
                     let xa = unit(la0, lo0);
                     let mut xd = xa;
@@ -223,12 +224,11 @@ pub fn departure_points(
                         let (fj, fi) = to_index(la, lo);
                         if fj >= 0.0 && fj <= (ny - 1) as f64 && fi >= 0.0 && fi <= (nx - 1) as f64
                         {
-                            dj[(j, i)] = fj;
-                            di[(j, i)] = fi;
+                            *dj_out = fj;
+                            *di_out = fi;
                         }
                     }
-                }
-            }
+                });
         }
     }
     (dj, di)

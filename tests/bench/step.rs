@@ -81,4 +81,24 @@ fn main() {
         "{{\"what\":\"pipeline\",\"seconds\":{:.4}}}",
         t.elapsed().as_secs_f64()
     );
+    if let Some(next) = args.get(2) {
+        let t = Instant::now();
+        let (file, _) = read_input(std::path::Path::new(next));
+        let files: Vec<_> = file.into_iter().collect();
+        let (steps, _) = plan(&files);
+        let suffixes = grid_suffixes(&steps);
+        for (s, g) in steps.iter().zip(suffixes) {
+            let r = run_step(s, &files, &cfg, &out, g);
+            println!(
+                "{{\"what\":\"next_step\",\"changes_and_budget_s\":{:.4},\"step_s\":{:.4},\"updated\":{}}}",
+                r.changes_seconds,
+                r.seconds,
+                r.updated.len()
+            );
+        }
+        println!(
+            "{{\"what\":\"next_pipeline\",\"seconds\":{:.4}}}",
+            t.elapsed().as_secs_f64()
+        );
+    }
 }
