@@ -100,6 +100,19 @@ fn normalise(x: [f64; 3]) -> [f64; 3] {
     [x[0] / n, x[1] / n, x[2] / n]
 }
 
+/// One midpoint-rule step back along the sphere: x_d = normalise(x_a - s (u e + v n)),
+/// e and n the local east and north unit vectors at the midpoint (la, lo), s = dt / a.
+fn step_back(xa: [f64; 3], la: f64, lo: f64, u: f64, v: f64, s: f64) -> [f64; 3] {
+    let (p, l) = (la.to_radians(), lo.to_radians());
+    let east = [-l.sin(), l.cos(), 0.0];
+    let north = [-p.sin() * l.cos(), -p.sin() * l.sin(), p.cos()];
+    normalise([
+        xa[0] - s * (u * east[0] + v * north[0]),
+        xa[1] - s * (u * east[1] + v * north[1]),
+        xa[2] - s * (u * east[2] + v * north[2]),
+    ])
+}
+
 /// Departure points of the columns arriving at every grid point, as fractional
 /// (row, column) indices, from winds (u, v along the grid's axes, m/s) at the
 /// earlier and later steps, `dt` seconds apart. NaN where the trajectory leaves
@@ -157,16 +170,7 @@ pub fn departure_points(
                             ok = false;
                             break;
                         }
-                        // Local east and north unit vectors at the midpoint.
-                        let (p, l) = (la.to_radians(), lo.to_radians());
-                        let east = [-l.sin(), l.cos(), 0.0];
-                        let north = [-p.sin() * l.cos(), -p.sin() * l.sin(), p.cos()];
-                        let s = dt / radius;
-                        xd = normalise([
-                            xa[0] - s * (u * east[0] + v * north[0]),
-                            xa[1] - s * (u * east[1] + v * north[1]),
-                            xa[2] - s * (u * east[2] + v * north[2]),
-                        ]);
+                        xd = step_back(xa, la, lo, u, v, dt / radius);
                     }
                     if ok {
                         let (la, lo) = latlon(xd);
@@ -209,15 +213,7 @@ pub fn departure_points(
                         let alpha = proj.grid_rotation(earth, la, lo);
                         let (sa, ca) = alpha.sin_cos();
                         let (u, v) = (ug * ca - vg * sa, ug * sa + vg * ca);
-                        let (p, l) = (la.to_radians(), lo.to_radians());
-                        let east = [-l.sin(), l.cos(), 0.0];
-                        let north = [-p.sin() * l.cos(), -p.sin() * l.sin(), p.cos()];
-                        let s = dt / radius;
-                        xd = normalise([
-                            xa[0] - s * (u * east[0] + v * north[0]),
-                            xa[1] - s * (u * east[1] + v * north[1]),
-                            xa[2] - s * (u * east[2] + v * north[2]),
-                        ]);
+                        xd = step_back(xa, la, lo, u, v, dt / radius);
                     }
                     if ok {
                         let (la, lo) = latlon(xd);
