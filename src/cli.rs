@@ -258,7 +258,7 @@ pub fn demo(dir: Option<PathBuf>) -> u8 {
     let code = process(None, products.clone(), inputs);
     println!("leeward demo: products are in {}", products.display());
     println!(
-        "    open them with any CF-aware reader, e.g. ncdump -h {}/*.nc",
+        "    open them with any CF-aware reader, e.g. ncdump -h {}/*.nc (ncdump is in Debian's netcdf-bin)",
         products.display()
     );
     code
