@@ -15,6 +15,7 @@
 //! - [`changes`]: thickness change within a cycle and run-to-run change, from published files.
 //! - [`pipeline`]: one cycle step end to end, shared by `process` and the service.
 //! - [`demo`]: an invented scenario written as GRIB2 by our own encoder.
+//! - [`service`]: the watcher of the incoming directory and the ledger of the daemon.
 //! - [`cli`]: the command line, kept thin.
 
 pub mod changes;
@@ -26,3 +27,4 @@ pub mod geometry;
 pub mod ingest;
 pub mod output;
 pub mod pipeline;
+pub mod service;

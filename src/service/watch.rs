@@ -1,0 +1,235 @@
+//! Watching the incoming directory: which files are finished.
+//!
+//! In: a directory, a settle time, a scan interval. Out: a stream of paths of
+//! files that are finished, each once per (size, mtime). A file counts when it
+//! was closed after writing or renamed into place (inotify through `notify`),
+//! or when its size and mtime have not changed for the settle time; a periodic
+//! scan of the directory is the fallback for missed events and for network
+//! file systems, and the first scan catches up with files that arrived while
+//! the service was down. Hidden files and temporary names never count.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::mpsc::{channel, Receiver, RecvTimeoutError, Sender};
+use std::thread::JoinHandle;
+use std::time::{Duration, Instant, SystemTime};
+
+use notify::event::{AccessKind, AccessMode, ModifyKind, RenameMode};
+use notify::{EventKind, RecursiveMode, Watcher as _};
+use thiserror::Error;
+use tracing::warn;
+
+/// Why watching could not start.
+#[derive(Debug, Error)]
+pub enum WatchError {
+    /// inotify (or the platform's watcher) refused.
+    #[error("cannot watch {path}: {source}")]
+    Notify {
+        /// The directory.
+        path: PathBuf,
+        /// The watcher's error.
+        source: notify::Error,
+    },
+}
+
+/// True for names that are never inputs: hidden files and temporary names.
+pub fn ignored(name: &str) -> bool {
+    name.starts_with('.')
+        || name.ends_with('~')
+        || [
+            ".tmp",
+            ".part",
+            ".partial",
+            ".swp",
+            ".filepart",
+            ".crdownload",
+        ]
+        .iter()
+        .any(|s| name.ends_with(s))
+}
+
+/// Finished files, as they come.
+pub struct FinishedFiles {
+    rx: Receiver<PathBuf>,
+    stop: Sender<()>,
+    thread: Option<JoinHandle<()>>,
+}
+
+impl FinishedFiles {
+    /// The next finished file, waiting at most `timeout`.
+    pub fn next(&self, timeout: Duration) -> Option<PathBuf> {
+        self.rx.recv_timeout(timeout).ok()
+    }
+}
+
+impl Drop for FinishedFiles {
+    fn drop(&mut self) {
+        let _ = self.stop.send(());
+        if let Some(t) = self.thread.take() {
+            let _ = t.join();
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Candidate {
+    size: u64,
+    mtime: Option<SystemTime>,
+    since: Instant,
+    closed: bool,
+}
+
+fn stat(p: &Path) -> Option<(u64, Option<SystemTime>)> {
+    let m = std::fs::metadata(p).ok()?;
+    m.is_file().then(|| (m.len(), m.modified().ok()))
+}
+
+/// Start watching `dir`.
+pub fn watch(
+    dir: &Path,
+    settle: Duration,
+    scan_every: Duration,
+) -> Result<FinishedFiles, WatchError> {
+    let dir = dir.to_path_buf();
+    let (ev_tx, ev_rx) = channel::<notify::Result<notify::Event>>();
+    let mut watcher = notify::recommended_watcher(ev_tx).map_err(|source| WatchError::Notify {
+        path: dir.clone(),
+        source,
+    })?;
+    watcher
+        .watch(&dir, RecursiveMode::NonRecursive)
+        .map_err(|source| WatchError::Notify {
+            path: dir.clone(),
+            source,
+        })?;
+    let (out_tx, out_rx) = channel();
+    let (stop_tx, stop_rx) = channel();
+    let thread = std::thread::spawn(move || {
+        let _watcher = watcher; // lives as long as the thread
+        let mut cands: HashMap<PathBuf, Candidate> = HashMap::new();
+        let mut emitted: HashMap<PathBuf, (u64, Option<SystemTime>)> = HashMap::new();
+        let mut last_scan: Option<Instant> = None;
+        let consider = |p: &Path| {
+            p.file_name()
+                .and_then(|n| n.to_str())
+                .is_some_and(|n| !ignored(n))
+        };
+        loop {
+            if stop_rx.try_recv().is_ok() {
+                return;
+            }
+            if last_scan.is_none_or(|t| t.elapsed() >= scan_every) {
+                last_scan = Some(Instant::now());
+                match std::fs::read_dir(&dir) {
+                    Ok(rd) => {
+                        for e in rd.flatten() {
+                            let p = e.path();
+                            if consider(&p) && !cands.contains_key(&p) {
+                                if let Some((size, mtime)) = stat(&p) {
+                                    if emitted.get(&p) != Some(&(size, mtime)) {
+                                        cands.insert(
+                                            p,
+                                            Candidate {
+                                                size,
+                                                mtime,
+                                                since: Instant::now(),
+                                                closed: false,
+                                            },
+                                        );
+                                    }
+                                }
+                            }
+                        }
+                    }
+                    Err(e) => {
+                        warn!(dir = %dir.display(), error = %e, "cannot scan the incoming directory")
+                    }
+                }
+            }
+            match ev_rx.recv_timeout(Duration::from_millis(50)) {
+                Ok(Ok(ev)) => {
+                    let finished = matches!(
+                        ev.kind,
+                        EventKind::Access(AccessKind::Close(AccessMode::Write))
+                            | EventKind::Modify(ModifyKind::Name(RenameMode::To))
+                            | EventKind::Modify(ModifyKind::Name(RenameMode::Both))
+                    );
+                    for p in ev.paths {
+                        if !consider(&p) {
+                            continue;
+                        }
+                        if let Some((size, mtime)) = stat(&p) {
+                            let c = cands.entry(p).or_insert(Candidate {
+                                size,
+                                mtime,
+                                since: Instant::now(),
+                                closed: false,
+                            });
+                            if (c.size, c.mtime) != (size, mtime) {
+                                *c = Candidate {
+                                    size,
+                                    mtime,
+                                    since: Instant::now(),
+                                    closed: false,
+                                };
+                            }
+                            c.closed |= finished;
+                        }
+                    }
+                }
+                Ok(Err(e)) => {
+                    warn!(dir = %dir.display(), error = %e, "watch event error; the periodic scan goes on")
+                }
+                Err(RecvTimeoutError::Timeout) => {}
+                Err(RecvTimeoutError::Disconnected) => return,
+            }
+            let mut done = Vec::new();
+            for (p, c) in cands.iter_mut() {
+                match stat(p) {
+                    None => done.push((p.clone(), None)),
+                    Some((size, mtime)) => {
+                        if (size, mtime) != (c.size, c.mtime) {
+                            *c = Candidate {
+                                size,
+                                mtime,
+                                since: Instant::now(),
+                                closed: false,
+                            };
+                        } else if c.closed || c.since.elapsed() >= settle {
+                            done.push((p.clone(), Some((size, mtime))));
+                        }
+                    }
+                }
+            }
+            for (p, st) in done {
+                cands.remove(&p);
+                if let Some(st) = st {
+                    if emitted.get(&p) != Some(&st) {
+                        emitted.insert(p.clone(), st);
+                        if out_tx.send(p).is_err() {
+                            return;
+                        }
+                    }
+                }
+            }
+        }
+    });
+    Ok(FinishedFiles {
+        rx: out_rx,
+        stop: stop_tx,
+        thread: Some(thread),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn temporary_and_hidden_names_never_count() {
+        for n in [".x.grib2", "x.grib2.tmp", "x.part", "x~", "x.partial"] {
+            assert!(ignored(n), "{n}");
+        }
+        assert!(!ignored("gfs.t00z.f006.grib2"));
+    }
+}
