@@ -402,12 +402,8 @@ fn build_field(
     let sec3 = &b[s3.clone()];
     let num_points = u32_at(sec3, 6).ok_or("section 3 cut short")? as usize;
     let grid_template = u16_at(sec3, 12).ok_or("section 3 cut short")?;
-    // Flag table 3.3 sits at a template-dependent octet; bit 5 (0x08) means grid-relative winds.
-    let flags_at = match grid_template {
-        0..=3 | 40..=43 => Some(54),
-        10 | 20 | 30 | 31 => Some(46),
-        _ => None,
-    };
+    // Flag table 3.3 bit 5 (0x08): winds relative to the grid.
+    let flags_at = super::grid::flags_octet(grid_template);
     let winds_grid_relative = flags_at
         .and_then(|o| u8_at(sec3, o))
         .map(|f| f & 0x08 != 0)

@@ -31,6 +31,17 @@ pub enum GridError {
     Invalid(u16, String),
 }
 
+/// Octet (0-based in section 3) of the resolution and component flags (flag
+/// table 3.3) for the templates leeward reads: 55 in 3.0-3.3 and 3.40-3.43, 47
+/// in 3.10, 3.20, 3.30 and 3.31 (WMO-No. 306 template layouts).
+pub fn flags_octet(template: u16) -> Option<usize> {
+    match template {
+        0..=3 | 40..=43 => Some(54),
+        10 | 20 | 30 | 31 => Some(46),
+        _ => None,
+    }
+}
+
 /// How values are ordered in the file (flag table 3.4), for reordering.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Scan {
@@ -417,10 +428,57 @@ fn mercator(s: &[u8]) -> Result<(Grid, Scan), GridError> {
         lat_ts: lad,
         lon0: lo1,
     };
+    projected(t, e, proj, (la1, lo1), lad, (di, dj), scan)
+}
+
+/// What polar stereographic (3.20) and Lambert conformal (3.30) share in octets 15-65.
+struct ConeHeader {
+    e: Earth,
+    la1: f64,
+    lo1: f64,
+    lad: f64,
+    lov: f64,
+    dx: f64,
+    dy: f64,
+    centre: u8,
+    scan: Scan,
+}
+
+fn cone_header(s: &[u8], t: u16, min_len: usize) -> Result<ConeHeader, GridError> {
+    if s.len() < min_len {
+        return Err(GridError::Short(t, s.len()));
+    }
+    let ni = count(s, 30, t, "Nx")?;
+    let nj = count(s, 34, t, "Ny")?;
+    let flags = u8_at(s, 64).ok_or(GridError::Short(t, s.len()))?;
+    Ok(ConeHeader {
+        e: earth(s, t)?,
+        la1: deg(s, 38, t, 1e-6)?,
+        lo1: deg(s, 42, t, 1e-6)?,
+        lad: deg(s, 47, t, 1e-6)?,
+        lov: deg(s, 51, t, 1e-6)?,
+        dx: spacing(s, 55, t, "Dx")?,
+        dy: spacing(s, 59, t, "Dy")?,
+        centre: u8_at(s, 63).ok_or(GridError::Short(t, s.len()))?,
+        scan: Scan::from_flags(ni, nj, flags),
+    })
+}
+
+/// A projected grid from its first point and its spacings, true at latitude `lad`:
+/// plane spacing = spacing x k(lad).
+fn projected(
+    t: u16,
+    e: Earth,
+    proj: Conformal,
+    first: (f64, f64),
+    lad: f64,
+    spacings: (f64, f64),
+    scan: Scan,
+) -> Result<(Grid, Scan), GridError> {
     let k = proj.scale_factor(&e, lad);
-    let (x0, y0) = proj.forward(&e, la1, lo1);
+    let (x0, y0) = proj.forward(&e, first.0, first.1);
     check_finite(t, &[x0, y0, k])?;
-    let (x, y) = plane_axes(x0, y0, di * k, dj * k, &scan);
+    let (x, y) = plane_axes(x0, y0, spacings.0 * k, spacings.1 * k, &scan);
     Ok((
         Grid {
             earth: e,
@@ -433,69 +491,31 @@ fn mercator(s: &[u8]) -> Result<(Grid, Scan), GridError> {
 
 fn polar(s: &[u8]) -> Result<(Grid, Scan), GridError> {
     let t = 20;
-    if s.len() < 65 {
-        return Err(GridError::Short(t, s.len()));
-    }
-    let e = earth(s, t)?;
-    let ni = count(s, 30, t, "Nx")?;
-    let nj = count(s, 34, t, "Ny")?;
-    let la1 = deg(s, 38, t, 1e-6)?;
-    let lo1 = deg(s, 42, t, 1e-6)?;
-    let lad = deg(s, 47, t, 1e-6)?;
-    let lov = deg(s, 51, t, 1e-6)?;
-    let dx = spacing(s, 55, t, "Dx")?;
-    let dy = spacing(s, 59, t, "Dy")?;
-    let centre = u8_at(s, 63).ok_or(GridError::Short(t, s.len()))?;
-    let flags = u8_at(s, 64).ok_or(GridError::Short(t, s.len()))?;
-    let north = centre & 0x80 == 0;
-    let lat_ts = if lad.abs() < 1e-9 {
+    let h = cone_header(s, t, 65)?;
+    let north = h.centre & 0x80 == 0;
+    let lat_ts = if h.lad.abs() < 1e-9 {
         if north {
             60.0
         } else {
             -60.0
         }
     } else {
-        lad
+        h.lad
     };
     let proj = Conformal::PolarStereographic {
         north,
         lat_ts,
-        lon0: lov,
+        lon0: h.lov,
     };
-    let k = proj.scale_factor(&e, lad);
-    let scan = Scan::from_flags(ni, nj, flags);
-    let (x0, y0) = proj.forward(&e, la1, lo1);
-    check_finite(t, &[x0, y0, k])?;
-    let (x, y) = plane_axes(x0, y0, dx * k, dy * k, &scan);
-    Ok((
-        Grid {
-            earth: e,
-            horizontal: Horizontal::Projected { proj, x, y },
-            template: t,
-        },
-        scan,
-    ))
+    projected(t, h.e, proj, (h.la1, h.lo1), h.lad, (h.dx, h.dy), h.scan)
 }
 
 fn lambert(s: &[u8]) -> Result<(Grid, Scan), GridError> {
     let t = 30;
-    if s.len() < 81 {
-        return Err(GridError::Short(t, s.len()));
-    }
-    let e = earth(s, t)?;
-    let ni = count(s, 30, t, "Nx")?;
-    let nj = count(s, 34, t, "Ny")?;
-    let la1 = deg(s, 38, t, 1e-6)?;
-    let lo1 = deg(s, 42, t, 1e-6)?;
-    let lad = deg(s, 47, t, 1e-6)?;
-    let lov = deg(s, 51, t, 1e-6)?;
-    let dx = spacing(s, 55, t, "Dx")?;
-    let dy = spacing(s, 59, t, "Dy")?;
-    let centre = u8_at(s, 63).ok_or(GridError::Short(t, s.len()))?;
-    let flags = u8_at(s, 64).ok_or(GridError::Short(t, s.len()))?;
+    let h = cone_header(s, t, 81)?;
     let latin1 = deg(s, 65, t, 1e-6)?;
     let latin2 = deg(s, 69, t, 1e-6)?;
-    if centre & 0x40 != 0 {
+    if h.centre & 0x40 != 0 {
         return Err(GridError::Invalid(
             t,
             "bi-polar Lambert projection is not supported".into(),
@@ -510,22 +530,10 @@ fn lambert(s: &[u8]) -> Result<(Grid, Scan), GridError> {
     let proj = Conformal::Lambert {
         lat1: latin1,
         lat2: latin2,
-        lat0: lad,
-        lon0: lov,
+        lat0: h.lad,
+        lon0: h.lov,
     };
-    let k = proj.scale_factor(&e, lad);
-    let scan = Scan::from_flags(ni, nj, flags);
-    let (x0, y0) = proj.forward(&e, la1, lo1);
-    check_finite(t, &[x0, y0, k])?;
-    let (x, y) = plane_axes(x0, y0, dx * k, dy * k, &scan);
-    Ok((
-        Grid {
-            earth: e,
-            horizontal: Horizontal::Projected { proj, x, y },
-            template: t,
-        },
-        scan,
-    ))
+    projected(t, h.e, proj, (h.la1, h.lo1), h.lad, (h.dx, h.dy), h.scan)
 }
 
 #[cfg(test)]
