@@ -158,14 +158,21 @@ pub fn run_to_run(run: &Run<'_>, fields: &Fields<'_>) -> Vec<Product> {
     r2r_products(&prev.path, fields)
 }
 
+/// The run-to-run variable and its vertical coordinate for a compared field.
+fn r2r_spec(name: &str) -> Option<(VarSpec, Vertical)> {
+    match name {
+        "thick" => Some((THICK_R2R, Vertical::PressureLayer)),
+        "z" => Some((Z_R2R, Vertical::Pressure)),
+        "trop_p" => Some((TROP_P_R2R, Vertical::PvSurface)),
+        _ => None,
+    }
+}
+
 fn r2r_products(earlier: &Path, fields: &Fields<'_>) -> Vec<Product> {
     let mut out = Vec::new();
     for (name, coords, data) in fields {
-        let (spec, vertical) = match *name {
-            "thick" => (THICK_R2R, Vertical::PressureLayer),
-            "z" => (Z_R2R, Vertical::Pressure),
-            "trop_p" => (TROP_P_R2R, Vertical::PvSurface),
-            _ => continue,
+        let Some((spec, vertical)) = r2r_spec(name) else {
+            continue;
         };
         if let Some(d) = earlier_value(earlier, name, coords).and_then(|e| difference(data, &e)) {
             let mut p = Product::new(spec, vertical, d);
@@ -251,11 +258,8 @@ pub fn update_later(
         if !between {
             let mut prods = Vec::new();
             for (name, coords, this) in fields {
-                let (spec, vertical) = match *name {
-                    "thick" => (THICK_R2R, Vertical::PressureLayer),
-                    "z" => (Z_R2R, Vertical::Pressure),
-                    "trop_p" => (TROP_P_R2R, Vertical::PvSurface),
-                    _ => continue,
+                let Some((spec, vertical)) = r2r_spec(name) else {
+                    continue;
                 };
                 if let Some(d) =
                     earlier_value(&next.path, name, coords).and_then(|l| difference(&l, this))

@@ -145,11 +145,7 @@ fn grid_key(bytes: &[u8], f: &FieldEntry) -> Vec<u8> {
         .get(f.sect3.clone())
         .map(<[u8]>::to_vec)
         .unwrap_or_default();
-    let flags_at = match f.grid_template {
-        0..=3 | 40..=43 => Some(54),
-        10 | 20 | 30 | 31 => Some(46),
-        _ => None,
-    };
+    let flags_at = crate::ingest::grid::flags_octet(f.grid_template);
     if let Some(o) = flags_at {
         if let Some(b) = k.get_mut(o) {
             *b = 0;
@@ -1024,28 +1020,31 @@ pub fn run_step(
             )
         })
         .collect();
-    {
-        let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
-        if let (true, Some(th)) = (pr.thickness_change, find("thick")) {
-            change_products.extend(changes::within_cycle(
-                &run,
-                (&p_layer_coords, th),
-                &cfg.changes.intervals_h,
-            ));
+    let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
+    // The fields of this step that run-to-run changes compare, with their coordinates:
+    // used against the previous cycle now, and against a next cycle after publishing.
+    let mut r2r_fields: changes::Fields<'_> = Vec::new();
+    if pr.run_to_run {
+        for (name, coords) in [
+            ("thick", &p_layer_coords),
+            ("z", &p_pa),
+            ("trop_p", &pv_coords),
+        ] {
+            if let Some(a) = find(name) {
+                r2r_fields.push((name, coords.clone(), a));
+            }
         }
-        if pr.run_to_run {
-            let mut cf: changes::Fields<'_> = Vec::new();
-            if let Some(a) = find("thick") {
-                cf.push(("thick", p_layer_coords.clone(), a));
-            }
-            if let Some(a) = find("z") {
-                cf.push(("z", p_pa.clone(), a));
-            }
-            if let Some(a) = find("trop_p") {
-                cf.push(("trop_p", pv_coords.clone(), a));
-            }
-            change_products.extend(changes::run_to_run(&run, &cf));
-        }
+    }
+    let thick_now = if pr.thickness_change {
+        find("thick").map(|a| (p_layer_coords.as_slice(), a))
+    } else {
+        None
+    };
+    if let Some(th) = thick_now {
+        change_products.extend(changes::within_cycle(&run, th, &cfg.changes.intervals_h));
+    }
+    if pr.run_to_run {
+        change_products.extend(changes::run_to_run(&run, &r2r_fields));
     }
     fields.extend(change_products);
     rep.products = fields.iter().map(|f| f.spec.name.to_string()).collect();
@@ -1101,30 +1100,12 @@ pub fn run_step(
     rep.write_seconds = t_write.elapsed().as_secs_f64();
     match written {
         Ok(path) => {
-            let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
-            let mut cf: changes::Fields<'_> = Vec::new();
-            if pr.run_to_run {
-                if let Some(a) = find("thick") {
-                    cf.push(("thick", p_layer_coords.clone(), a));
-                }
-                if let Some(a) = find("z") {
-                    cf.push(("z", products.levels.clone(), a));
-                }
-                if let Some(a) = find("trop_p") {
-                    cf.push(("trop_p", pv_coords.clone(), a));
-                }
-            }
-            let thick = if pr.thickness_change {
-                find("thick").map(|a| (p_layer_coords.as_slice(), a))
-            } else {
-                None
-            };
             let t_changes = Instant::now();
             rep.updated = changes::update_later(
                 &run,
                 &path,
-                thick,
-                &cf,
+                thick_now,
+                &r2r_fields,
                 &cfg.changes.intervals_h,
                 cfg.output.deflate_level,
                 nsb,
@@ -1229,10 +1210,5 @@ fn vertical_derivative(f: ArrayView3<f32>, lnp: &[f64], p: &[f64]) -> Array3<f32
 /// A stable fingerprint of a grid definition (FNV-1a, 64 bits, hex): the same
 /// grid gives the same value in every run and every version.
 pub fn grid_id(grid_key: &[u8]) -> String {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    for &b in grid_key {
-        h ^= u64::from(b);
-        h = h.wrapping_mul(0x0100_0000_01b3);
-    }
-    format!("{h:016x}")
+    crate::ingest::bytes::fnv1a_hex(grid_key)
 }

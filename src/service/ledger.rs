@@ -190,14 +190,9 @@ impl Ledger {
     }
 }
 
-/// FNV-1a 64-bit checksum of a byte stream, hex (a fingerprint, not a security hash).
+/// Checksum of an input file's bytes (FNV-1a 64, hex; a fingerprint, not a security hash).
 pub fn checksum(bytes: &[u8]) -> String {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    for &b in bytes {
-        h ^= u64::from(b);
-        h = h.wrapping_mul(0x0100_0000_01b3);
-    }
-    format!("{h:016x}")
+    crate::ingest::bytes::fnv1a_hex(bytes)
 }
 
 #[cfg(test)]
