@@ -118,7 +118,13 @@ pub fn within_cycle(
     thick: (&[f64], &Array3<f32>),
     intervals: &[u32],
 ) -> Vec<Product> {
-    let files = published(run.out_dir, run.centre, run.grid_id, run.member);
+    let files = published(
+        run.out_dir,
+        run.centre,
+        run.grid_id,
+        run.member,
+        run.reference_time,
+    );
     let mut out = Vec::new();
     for &h in intervals {
         let Some(dt) = TimeDelta::try_hours(i64::from(h)) else {
@@ -147,7 +153,13 @@ pub fn within_cycle(
 
 /// Run-to-run changes for this step from the previous cycle's published file at the same valid time.
 pub fn run_to_run(run: &Run<'_>, fields: &Fields<'_>) -> Vec<Product> {
-    let files = published(run.out_dir, run.centre, run.grid_id, run.member);
+    let files = published(
+        run.out_dir,
+        run.centre,
+        run.grid_id,
+        run.member,
+        run.reference_time,
+    );
     let Some(prev) = files
         .iter()
         .filter(|p| p.valid_time == run.valid_time && p.reference_time < run.reference_time)
@@ -214,7 +226,13 @@ pub fn update_later(
     deflate: i32,
     nsb: u32,
 ) -> Vec<PathBuf> {
-    let files = published(run.out_dir, run.centre, run.grid_id, run.member);
+    let files = published(
+        run.out_dir,
+        run.centre,
+        run.grid_id,
+        run.member,
+        run.reference_time,
+    );
     let mut updated = Vec::new();
     if let Some((coords, this)) = thick {
         for &h in intervals {
@@ -466,7 +484,13 @@ pub fn update_budgets(
     deflate: i32,
     nsb: u32,
 ) -> Vec<PathBuf> {
-    let files = published(run.out_dir, run.centre, run.grid_id, run.member);
+    let files = published(
+        run.out_dir,
+        run.centre,
+        run.grid_id,
+        run.member,
+        run.reference_time,
+    );
     let same_cycle: Vec<&Published> = files
         .iter()
         .filter(|p| p.reference_time == run.reference_time)

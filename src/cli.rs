@@ -13,7 +13,7 @@ use indicatif::{ProgressBar, ProgressStyle};
 use tracing_subscriber::EnvFilter;
 
 use crate::config::Config;
-use crate::pipeline::{grid_suffixes, plan, read_input, run_step, Issue, StepReport};
+use crate::pipeline::{grid_suffixes, plan, read_input, run_step, Destination, Issue, StepReport};
 
 /// Exit codes of every command.
 pub mod exit {
@@ -66,16 +66,80 @@ pub enum Command {
         /// Directory for the demo's input and products (default: a new one under the system temporary directory).
         #[arg(long)]
         dir: Option<PathBuf>,
+        /// Only write the GRIB2 input (into DIR/incoming), do not process it.
+        #[arg(long)]
+        inputs_only: bool,
+        /// Cycle of the invented scenario, e.g. 2026031400.
+        #[arg(long, default_value = "2026031400")]
+        cycle: String,
+        /// Lead times to write, hours, comma-separated.
+        #[arg(long, value_delimiter = ',', default_value = "0,6,12,18,24")]
+        leads: Vec<u32>,
+    },
+    /// Run as a service: watch the feeds' incoming directories and publish each step as it completes.
+    ///
+    /// Stops on SIGTERM or SIGINT (steps in hand are finished within
+    /// service.shutdown_grace_s), reloads the configuration on SIGHUP.
+    /// Exit codes: 0 stopped on request; 2 configuration or state directory unusable.
+    Serve {
+        /// Configuration file (TOML) with [service] and [[feed]] tables.
+        #[arg(long)]
+        config: PathBuf,
+        /// Base of the incoming directories (overrides service.watch_dir).
+        #[arg(long)]
+        watch_dir: Option<PathBuf>,
+        /// Root of the output tree (overrides service.out_dir).
+        #[arg(long)]
+        out_dir: Option<PathBuf>,
+        /// State directory: ledger, requests, quarantine (overrides service.state_dir).
+        #[arg(long)]
+        state_dir: Option<PathBuf>,
+    },
+    /// Show the recent cycles of each feed and where their steps stand, from the ledger.
+    Status {
+        /// The service's state directory.
+        #[arg(long)]
+        state_dir: PathBuf,
+        /// Cycles to show per feed, newest first.
+        #[arg(long, default_value_t = 4)]
+        cycles: usize,
+        /// Print JSON instead of text.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Ask the running service to make a cycle (or one step of it) again, e.g. after fixing the configuration.
+    ///
+    /// The request waits in the state directory until the service takes it
+    /// (within a second when it runs). The cycle's input must still be in the
+    /// feed's incoming directory.
+    Reprocess {
+        /// The service's state directory.
+        #[arg(long)]
+        state_dir: PathBuf,
+        /// The feed's name.
+        #[arg(long)]
+        feed: String,
+        /// The cycle: 2026031400, 20260314T0000Z or 2026-03-14T00:00Z.
+        #[arg(long)]
+        cycle: String,
+        /// One lead time only, hours.
+        #[arg(long)]
+        lead: Option<i64>,
     },
 }
 
-fn init_logging(format: &str) {
-    let filter = EnvFilter::try_from_env("LEEWARD_LOG").unwrap_or_else(|_| EnvFilter::new("warn"));
+fn init_logging(format: &str, default_level: &str) {
+    let filter =
+        EnvFilter::try_from_env("LEEWARD_LOG").unwrap_or_else(|_| EnvFilter::new(default_level));
     let b = tracing_subscriber::fmt()
         .with_env_filter(filter)
         .with_writer(std::io::stderr);
+    // Under systemd the journal stamps each line itself.
+    let journald = std::env::var_os("JOURNAL_STREAM").is_some();
     if format == "json" {
         b.json().init();
+    } else if journald {
+        b.with_ansi(false).without_time().init();
     } else {
         b.with_ansi(std::io::stderr().is_terminal()).init();
     }
@@ -94,14 +158,48 @@ pub fn main() -> ExitCode {
             });
         }
     };
-    init_logging(&cli.log_format);
+    let level = if matches!(cli.command, Command::Serve { .. }) {
+        "info"
+    } else {
+        "warn"
+    };
+    init_logging(&cli.log_format, level);
     match cli.command {
         Command::Process {
             config,
             out,
             inputs,
         } => ExitCode::from(process(config, out, inputs)),
-        Command::Demo { dir } => ExitCode::from(demo(dir)),
+        Command::Demo {
+            dir,
+            inputs_only,
+            cycle,
+            leads,
+        } => ExitCode::from(demo(dir, inputs_only, &cycle, &leads)),
+        Command::Serve {
+            config,
+            watch_dir,
+            out_dir,
+            state_dir,
+        } => ExitCode::from(crate::service::daemon::serve(
+            crate::service::daemon::ServeOptions {
+                config,
+                watch_dir,
+                out_dir,
+                state_dir,
+            },
+        )),
+        Command::Status {
+            state_dir,
+            cycles,
+            json,
+        } => ExitCode::from(status(&state_dir, cycles, json)),
+        Command::Reprocess {
+            state_dir,
+            feed,
+            cycle,
+            lead,
+        } => ExitCode::from(reprocess(&state_dir, feed, &cycle, lead)),
     }
 }
 
@@ -186,7 +284,7 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     let mut written = 0usize;
     let mut reports = Vec::new();
     for (step, suffix) in steps.iter().zip(suffixes) {
-        let r = run_step(step, &files, &cfg, &out, suffix);
+        let r = run_step(step, &files, &cfg, &Destination::flat(&out), suffix);
         if r.output.is_some() {
             written += 1;
         }
@@ -205,15 +303,7 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     for i in &issues {
         print_issue(i);
     }
-    let failed_writes = reports
-        .iter()
-        .filter(|r| {
-            r.output.is_none()
-                && r.skipped
-                    .as_deref()
-                    .is_some_and(|s| s.starts_with("netCDF") || s.starts_with("cannot write"))
-        })
-        .count();
+    let failed_writes = reports.iter().filter(|r| r.output_failed).count();
     println!(
         "{} step file(s) written to {} in {:.2} s; {} input problem(s)",
         written,
@@ -231,8 +321,77 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     }
 }
 
+/// `leeward status`: returns the exit code.
+pub fn status(state_dir: &std::path::Path, cycles: usize, json: bool) -> u8 {
+    match crate::service::status::report(state_dir, cycles) {
+        Ok(r) => {
+            if json {
+                match serde_json::to_string_pretty(&r) {
+                    Ok(t) => println!("{t}"),
+                    Err(e) => {
+                        eprintln!("leeward: {e}");
+                        return exit::NOTHING;
+                    }
+                }
+            } else {
+                print!("{}", crate::service::status::render(state_dir, &r));
+            }
+            exit::OK
+        }
+        Err(e) => {
+            eprintln!("leeward: no ledger to read: {e}");
+            exit::NOTHING
+        }
+    }
+}
+
+/// `leeward reprocess`: returns the exit code.
+pub fn reprocess(state_dir: &std::path::Path, feed: String, cycle: &str, lead: Option<i64>) -> u8 {
+    use crate::service::daemon::{parse_cycle, request_reprocess, ReprocessRequest};
+    let Some(t) = parse_cycle(cycle) else {
+        eprintln!(
+            "leeward: --cycle {cycle:?} is not a cycle such as 2026031400 or 2026-03-14T00:00Z"
+        );
+        return exit::USAGE;
+    };
+    let req = ReprocessRequest {
+        feed,
+        cycle: crate::output::store::cycle_dir_name(t),
+        lead,
+    };
+    match request_reprocess(state_dir, &req) {
+        Ok(p) => {
+            let running = crate::service::status::service_running(state_dir).is_some();
+            println!(
+                "reprocess of {} {}{} requested ({}){}",
+                req.feed,
+                req.cycle,
+                lead.map(|l| format!(" +{l}h")).unwrap_or_default(),
+                p.display(),
+                if running {
+                    ""
+                } else {
+                    "; no service holds this state directory now: it is taken at the next start"
+                }
+            );
+            exit::OK
+        }
+        Err(e) => {
+            eprintln!(
+                "leeward: cannot write the request in {}: {e}",
+                state_dir.display()
+            );
+            exit::NOTHING
+        }
+    }
+}
+
 /// `leeward demo`: returns the exit code.
-pub fn demo(dir: Option<PathBuf>) -> u8 {
+pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32]) -> u8 {
+    let Some(reference) = crate::service::daemon::parse_cycle(cycle) else {
+        eprintln!("leeward: --cycle {cycle:?} is not a cycle such as 2026031400");
+        return exit::USAGE;
+    };
     let dir = dir.unwrap_or_else(|| {
         std::env::temp_dir().join(format!(
             "leeward-demo-{}",
@@ -245,7 +404,7 @@ pub fn demo(dir: Option<PathBuf>) -> u8 {
         "leeward demo: writing the invented scenario as GRIB2 into {}",
         incoming.display()
     );
-    let inputs = match crate::demo::write_inputs(&incoming, &[0, 6, 12, 18, 24]) {
+    let inputs = match crate::demo::write_inputs(&incoming, reference, leads) {
         Ok(v) => v,
         Err(e) => {
             eprintln!(
@@ -255,6 +414,10 @@ pub fn demo(dir: Option<PathBuf>) -> u8 {
             return exit::NOTHING;
         }
     };
+    if inputs_only {
+        println!("leeward demo: {} input file(s) written", inputs.len());
+        return exit::OK;
+    }
     let code = process(None, products.clone(), inputs);
     println!("leeward demo: products are in {}", products.display());
     println!(

@@ -52,6 +52,10 @@ pub struct Config {
     pub thickness: Thickness,
     /// Changes in time.
     pub changes: Changes,
+    /// The service (`leeward serve`): directories, workers, timeouts.
+    pub service: crate::service::settings::Service,
+    /// The model feeds the service serves.
+    pub feed: Vec<crate::service::settings::Feed>,
 }
 
 /// Settings of the changes in time.
@@ -301,6 +305,10 @@ impl Config {
         {
             p.push(format!("changes.intervals_h: {h} h is outside 1 to 240 h"));
         }
+        p.extend(crate::service::settings::problems(
+            &self.service,
+            &self.feed,
+        ));
         let pr = &self.products;
         if !(pr.vorticity
             || pr.stability

@@ -8,7 +8,7 @@
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 use chrono::NaiveDateTime;
@@ -246,6 +246,9 @@ pub struct StepReport {
     pub family_seconds: Vec<(&'static str, f64)>,
     /// Why nothing was written, when nothing was.
     pub skipped: Option<String>,
+    /// True when the products were made but could not be written (disk full,
+    /// permission denied): worth trying again, unlike a problem with the input.
+    pub output_failed: bool,
 }
 
 /// Fields of a step sorted by what they are.
@@ -345,14 +348,47 @@ fn decode_all<K: Ord + Clone + Send + Sync>(
     out
 }
 
-/// Run every step of `inputs` and write its products into `out_dir`.
+/// Where a step's products go.
+#[derive(Clone, Copy)]
+pub struct Destination<'a> {
+    /// Directory whose published files (and cycle subdirectories) are the
+    /// memory across steps and cycles: changes in time are looked up there.
+    pub store: &'a Path,
+    /// Directory the step file is written into (`store` itself or below it).
+    pub dir: &'a Path,
+    /// Held while earlier files are read, this one written and later ones
+    /// updated, so that steps processed at the same time see each other.
+    pub lock: Option<&'a Mutex<()>>,
+    /// Called once the file is in place and later files are updated, still
+    /// holding `lock` (the service writes manifests here). An error means the
+    /// step is not published and is worth trying again.
+    pub on_published: Option<&'a PublishHook<'a>>,
+}
+
+/// What [`Destination::on_published`] is.
+pub type PublishHook<'a> = dyn Fn(&StepReport) -> Result<(), String> + Sync + 'a;
+
+impl<'a> Destination<'a> {
+    /// Everything in one directory, one step at a time (`leeward process`).
+    pub fn flat(dir: &'a Path) -> Self {
+        Destination {
+            store: dir,
+            dir,
+            lock: None,
+            on_published: None,
+        }
+    }
+}
+
+/// Run one step of `inputs` and write its products to `out`.
 pub fn run_step(
     step: &Step,
     inputs: &[InputFile],
     cfg: &Config,
-    out_dir: &Path,
+    out: &Destination<'_>,
     grid_suffix: Option<usize>,
 ) -> StepReport {
+    let out_dir = out.store;
     let t0 = Instant::now();
     let cycle = step
         .key
@@ -995,6 +1031,10 @@ pub fn run_step(
     }
 
     // Changes in time, from the published files of earlier steps and cycles.
+    // Steps processed side by side take turns from here to the end.
+    let _publishing = out
+        .lock
+        .map(|m| m.lock().unwrap_or_else(std::sync::PoisonError::into_inner));
     let gid = grid_id(&step.key.grid_key);
     let run = changes::Run {
         out_dir,
@@ -1091,12 +1131,9 @@ pub fn run_step(
         deflate: cfg.output.deflate_level,
         significant_bits: cfg.output.significant_bits,
     };
-    let mut name = step_file_name(step.key.centre, step.key.reference_time, lead, grid_suffix);
-    if let Some(m) = step.key.member {
-        name = name.replace(".nc", &format!("_m{m:02}.nc"));
-    }
+    let name = output_name(&step.key, grid_suffix);
     let t_write = Instant::now();
-    let written = write_step(out_dir, &name, &products);
+    let written = write_step(out.dir, &name, &products);
     rep.write_seconds = t_write.elapsed().as_secs_f64();
     match written {
         Ok(path) => {
@@ -1152,15 +1189,36 @@ pub fn run_step(
             rep.changes_seconds = t_changes.elapsed().as_secs_f64();
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");
             rep.output = Some(path);
+            if let Some(hook) = out.on_published {
+                rep.issues = std::mem::take(&mut issues);
+                rep.seconds = t0.elapsed().as_secs_f64();
+                if let Err(e) = hook(&rep) {
+                    warn!(cycle = %cycle, step = lead, error = %e, "step written but not published");
+                    rep.output_failed = true;
+                    rep.skipped = Some(e);
+                }
+            }
         }
         Err(e) => {
             warn!(cycle = %cycle, step = lead, error = %e, "step not written");
+            rep.output_failed = true;
             rep.skipped = Some(e.to_string());
         }
     }
-    rep.issues = issues;
+    rep.issues.extend(issues);
     rep.seconds = t0.elapsed().as_secs_f64();
     rep
+}
+
+/// The file name of a step's products: centre, cycle, lead, grid number
+/// (when one step comes on several grids), member.
+pub fn output_name(key: &StepKey, grid_suffix: Option<usize>) -> String {
+    let lead = (key.valid_time - key.reference_time).num_hours();
+    let mut name = step_file_name(key.centre, key.reference_time, lead, grid_suffix);
+    if let Some(m) = key.member {
+        name = name.replace(".nc", &format!("_m{m:02}.nc"));
+    }
+    name
 }
 
 /// Suffixes `_g2`, `_g3`, ... for steps that share centre, cycle, lead and member

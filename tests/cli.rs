@@ -39,7 +39,9 @@ fn nc_files(dir: &Path) -> Vec<String> {
 #[test]
 fn good_bad_and_nothing_exit_codes() {
     let d = tmp("codes");
-    let inputs = leeward::demo::write_inputs(&d.join("in"), &[0, 6]).unwrap();
+    let inputs =
+        leeward::demo::write_inputs(&d.join("in"), leeward::demo::default_cycle(), &[0, 6])
+            .unwrap();
     let good: Vec<&str> = inputs.iter().map(|p| p.to_str().unwrap()).collect();
     let out = d.join("out");
     let out_s = out.to_str().unwrap();
@@ -112,7 +114,8 @@ fn invalid_config_is_a_usage_error_naming_every_key() {
         "[products]\nvorticity = false\nstability = false\nisobaric_pv = false\nisentropic = false\ntropopause = false\nlayer_pv = false\nthickness = false\n[output]\ndeflate_level = 11\n",
     )
     .unwrap();
-    let inputs = leeward::demo::write_inputs(&d.join("in"), &[0]).unwrap();
+    let inputs =
+        leeward::demo::write_inputs(&d.join("in"), leeward::demo::default_cycle(), &[0]).unwrap();
     let (code, _, stderr) = run(&[
         "process",
         "--config",
@@ -144,7 +147,8 @@ fn help_documents_the_exit_codes() {
 fn unwritable_output_directory_is_reported_not_a_crash() {
     // A file where the output directory should be.
     let d = tmp("unwritable");
-    let inputs = leeward::demo::write_inputs(&d.join("in"), &[0]).unwrap();
+    let inputs =
+        leeward::demo::write_inputs(&d.join("in"), leeward::demo::default_cycle(), &[0]).unwrap();
     let blocker = d.join("out");
     std::fs::write(&blocker, b"a file, not a directory").unwrap();
     let (code, _, stderr) = run(&[

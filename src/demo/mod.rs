@@ -9,7 +9,7 @@ pub mod scenario;
 
 use std::path::{Path, PathBuf};
 
-use chrono::NaiveDate;
+use chrono::{NaiveDate, NaiveDateTime};
 
 use encode::{encode, Message};
 
@@ -17,15 +17,27 @@ use encode::{encode, Message};
 /// since the demo model belongs to no centre.
 pub const DEMO_CENTRE: u16 = 255;
 
-/// Write the scenario's steps (lead hours) as one GRIB2 file per step into `dir`.
-pub fn write_inputs(dir: &Path, leads: &[u32]) -> std::io::Result<Vec<PathBuf>> {
-    std::fs::create_dir_all(dir)?;
-    let reference = NaiveDate::from_ymd_opt(2026, 3, 14)
+/// The demo's usual cycle: 2026-03-14 00 UTC.
+pub fn default_cycle() -> NaiveDateTime {
+    NaiveDate::from_ymd_opt(2026, 3, 14)
         .and_then(|d| d.and_hms_opt(0, 0, 0))
-        .ok_or_else(|| std::io::Error::other("bad demo date"))?;
+        .unwrap_or_default()
+}
+
+/// Write the scenario's steps (lead hours) of the cycle `reference` as one
+/// GRIB2 file per step into `dir`. The scenario evolves with the valid time,
+/// so two cycles agree where their valid times meet.
+pub fn write_inputs(
+    dir: &Path,
+    reference: NaiveDateTime,
+    leads: &[u32],
+) -> std::io::Result<Vec<PathBuf>> {
+    std::fs::create_dir_all(dir)?;
     let mut out = Vec::new();
     for &lead in leads {
-        let s = scenario::step(f64::from(lead));
+        // The invented weather depends on the valid time only.
+        let valid_h = (reference - default_cycle()).num_minutes() as f64 / 60.0 + f64::from(lead);
+        let s = scenario::step(valid_h);
         let mut bytes = Vec::new();
         for (p, t, z, u, v) in &s.levels {
             for (param, vals, dscale) in [

@@ -56,19 +56,53 @@ fn times(f: &netcdf::File) -> Option<(NaiveDateTime, NaiveDateTime)> {
     Some((reference, valid))
 }
 
-/// Every step published in `dir` for this centre, grid and member. Files that
-/// are not leeward's, or unreadable, are passed over.
-pub fn published(dir: &Path, centre: u16, grid_id: &str, member: Option<u8>) -> Vec<Published> {
+/// How far from a step's cycle the cycle subdirectories of a store are
+/// searched for earlier and later files: changes in time look at most a few
+/// cycles back, and a store kept for months must not be opened file by file.
+pub const LOOKUP_DAYS: i64 = 4;
+
+/// Name of the subdirectory of a store that holds one cycle's files.
+pub fn cycle_dir_name(reference_time: NaiveDateTime) -> String {
+    reference_time.format("%Y%m%dT%H%MZ").to_string()
+}
+
+/// Every step published in `dir` for this centre, grid and member: files in
+/// `dir` itself and in its cycle subdirectories within [`LOOKUP_DAYS`] of
+/// `near`. Files that are not leeward's, or unreadable, are passed over.
+pub fn published(
+    dir: &Path,
+    centre: u16,
+    grid_id: &str,
+    member: Option<u8>,
+    near: NaiveDateTime,
+) -> Vec<Published> {
+    let mut candidates = Vec::new();
+    let window = TimeDelta::try_days(LOOKUP_DAYS).unwrap_or_default();
     let Ok(rd) = std::fs::read_dir(dir) else {
         return Vec::new();
     };
-    let mut out = Vec::new();
     for e in rd.flatten() {
         let path = e.path();
         let name = e.file_name().to_string_lossy().into_owned();
-        if name.starts_with('.') || !name.ends_with(".nc") {
+        if name.starts_with('.') {
             continue;
         }
+        if name.ends_with(".nc") {
+            candidates.push(path);
+        } else if let Ok(t) = NaiveDateTime::parse_from_str(&name, "%Y%m%dT%H%MZ") {
+            if (t - near).abs() <= window && path.is_dir() {
+                if let Ok(sub) = std::fs::read_dir(&path) {
+                    candidates.extend(sub.flatten().map(|e| e.path()).filter(|p| {
+                        p.file_name()
+                            .and_then(|n| n.to_str())
+                            .is_some_and(|n| !n.starts_with('.') && n.ends_with(".nc"))
+                    }));
+                }
+            }
+        }
+    }
+    let mut out = Vec::new();
+    for path in candidates {
         let Ok(f) = netcdf::open(&path) else { continue };
         let same = text_attr(&f, "leeward_grid_id").as_deref() == Some(grid_id)
             && int_attr(&f, "leeward_centre") == Some(i64::from(centre))

@@ -31,88 +31,384 @@ pub enum LedgerError {
     },
 }
 
-/// One event in the journal.
+/// Why a step produced nothing.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum FailKind {
+    /// Still incomplete at the timeout, and too little for any product.
+    Missing,
+    /// The input could not be used (grid refused, fields broken).
+    Input,
+    /// The products could not be written; retried with back-off.
+    Output,
+    /// A defect in leeward itself (a caught panic); reported, not retried.
+    Internal,
+}
+
+/// One event in the journal. Times are Unix seconds.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "event", rename_all = "snake_case")]
 pub enum Record {
-    /// An input file was found finished.
+    /// The service started.
+    Started {
+        /// leeward's version.
+        version: String,
+        /// Its process id.
+        pid: u32,
+        /// When.
+        at: i64,
+    },
+    /// The service stopped cleanly.
+    Stopped {
+        /// Why.
+        reason: String,
+        /// When.
+        at: i64,
+    },
+    /// An input file was found finished and catalogued.
     Seen {
+        /// The feed it belongs to.
+        feed: String,
         /// Its path.
         file: String,
         /// Its size in bytes.
         size: u64,
+        /// Its modification time, nanoseconds since the Unix epoch.
+        mtime_ns: i64,
         /// Its checksum (FNV-1a 64, hex).
         checksum: String,
-    },
-    /// A step's product was published.
-    Published {
-        /// Step key: model, cycle, step.
-        step: String,
-        /// The published file.
-        path: String,
-        /// Unix time of publication.
+        /// The steps it holds fields of.
+        steps: Vec<StepTag>,
+        /// When.
         at: i64,
     },
-    /// A step failed, with the reason.
+    /// A step was published: its file and manifest are in place.
+    Published {
+        /// The step.
+        step: StepTag,
+        /// The product file.
+        path: String,
+        /// The manifest.
+        manifest: String,
+        /// Made with what was there at the timeout, not complete.
+        partial: bool,
+        /// When.
+        at: i64,
+    },
+    /// A step produced nothing, with the reason.
     Failed {
-        /// Step key.
-        step: String,
+        /// The step.
+        step: StepTag,
+        /// What kind of failure.
+        kind: FailKind,
         /// What went wrong.
         reason: String,
+        /// When.
+        at: i64,
     },
     /// An input file was set aside.
     Quarantined {
+        /// The feed.
+        feed: String,
         /// Its path.
         file: String,
         /// Why.
         reason: String,
+        /// Where it was moved, if it was.
+        moved_to: Option<String>,
+        /// When.
+        at: i64,
     },
-    /// An operator asked for a step to be made again.
+    /// An operator asked for a cycle (or one step of it) to be made again.
     Reprocess {
-        /// Step key.
-        step: String,
+        /// The feed.
+        feed: String,
+        /// The cycle, `YYYYMMDDTHHMMZ`.
+        cycle: String,
+        /// One lead time only, hours.
+        lead: Option<i64>,
+        /// When.
+        at: i64,
     },
+}
+
+/// What identifies a step in the ledger.
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
+pub struct StepTag {
+    /// The feed.
+    pub feed: String,
+    /// The cycle, `YYYYMMDDTHHMMZ`.
+    pub cycle: String,
+    /// Lead time, hours.
+    pub lead: i64,
+    /// Ensemble member.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub member: Option<u8>,
+    /// Grid fingerprint.
+    pub grid: String,
+}
+
+impl std::fmt::Display for StepTag {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{}/{}/{:03}h", self.feed, self.cycle, self.lead)?;
+        if let Some(m) = self.member {
+            write!(f, "/m{m:02}")?;
+        }
+        Ok(())
+    }
+}
+
+/// An input file as last seen.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SeenFile {
+    /// The feed.
+    pub feed: String,
+    /// Size, bytes.
+    pub size: u64,
+    /// Modification time, ns.
+    pub mtime_ns: i64,
+    /// Checksum.
+    pub checksum: String,
+    /// Steps it holds fields of.
+    pub steps: Vec<StepTag>,
+    /// When it was seen.
+    pub at: i64,
+}
+
+/// Where a step stands.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Outcome {
+    /// Inputs seen, not yet published.
+    Waiting,
+    /// Published.
+    Published {
+        /// Product file.
+        path: String,
+        /// Manifest.
+        manifest: String,
+        /// Made at the timeout with what was there.
+        partial: bool,
+        /// When.
+        at: i64,
+    },
+    /// Produced nothing (last attempt).
+    Failed {
+        /// Kind.
+        kind: FailKind,
+        /// Reason.
+        reason: String,
+        /// When.
+        at: i64,
+    },
+}
+
+/// A step's history.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StepState {
+    /// When its first input was seen.
+    pub first_seen: i64,
+    /// Where it stands.
+    pub outcome: Outcome,
+}
+
+/// A quarantined file.
+#[derive(Debug, Clone, PartialEq)]
+pub struct QuarantinedFile {
+    /// The feed.
+    pub feed: String,
+    /// Why.
+    pub reason: String,
+    /// Where it went.
+    pub moved_to: Option<String>,
+    /// When.
+    pub at: i64,
 }
 
 /// The state replayed from the journal.
 #[derive(Debug, Default, Clone, PartialEq)]
 pub struct State {
-    /// Input files seen: path -> (size, checksum).
-    pub seen: BTreeMap<String, (u64, String)>,
-    /// Steps published: step -> path.
-    pub published: BTreeMap<String, String>,
-    /// Steps failed: step -> last reason.
-    pub failed: BTreeMap<String, String>,
-    /// Files quarantined: path -> reason.
-    pub quarantined: BTreeMap<String, String>,
+    /// Input files seen: path -> last sighting.
+    pub seen: BTreeMap<String, SeenFile>,
+    /// Steps.
+    pub steps: BTreeMap<StepTag, StepState>,
+    /// Files quarantined: path -> why.
+    pub quarantined: BTreeMap<String, QuarantinedFile>,
+    /// Grid fingerprints per feed, in order of first sight (they number the
+    /// file names of a feed with more than one grid).
+    pub grids: BTreeMap<String, Vec<String>>,
+    /// Last start: (version, pid, at).
+    pub started: Option<(String, u32, i64)>,
+    /// Last clean stop after the last start.
+    pub stopped: Option<(String, i64)>,
 }
 
 impl State {
     fn apply(&mut self, r: &Record) {
         match r {
+            Record::Started { version, pid, at } => {
+                self.started = Some((version.clone(), *pid, *at));
+                self.stopped = None;
+            }
+            Record::Stopped { reason, at } => self.stopped = Some((reason.clone(), *at)),
             Record::Seen {
+                feed,
                 file,
                 size,
+                mtime_ns,
                 checksum,
+                steps,
+                at,
             } => {
-                self.seen.insert(file.clone(), (*size, checksum.clone()));
+                for s in steps {
+                    self.steps.entry(s.clone()).or_insert(StepState {
+                        first_seen: *at,
+                        outcome: Outcome::Waiting,
+                    });
+                    let g = self.grids.entry(feed.clone()).or_default();
+                    if !g.contains(&s.grid) {
+                        g.push(s.grid.clone());
+                    }
+                }
+                self.seen.insert(
+                    file.clone(),
+                    SeenFile {
+                        feed: feed.clone(),
+                        size: *size,
+                        mtime_ns: *mtime_ns,
+                        checksum: checksum.clone(),
+                        steps: steps.clone(),
+                        at: *at,
+                    },
+                );
             }
-            Record::Published { step, path, .. } => {
-                self.failed.remove(step);
-                self.published.insert(step.clone(), path.clone());
+            Record::Published {
+                step,
+                path,
+                manifest,
+                partial,
+                at,
+            } => {
+                let s = self.steps.entry(step.clone()).or_insert(StepState {
+                    first_seen: *at,
+                    outcome: Outcome::Waiting,
+                });
+                s.outcome = Outcome::Published {
+                    path: path.clone(),
+                    manifest: manifest.clone(),
+                    partial: *partial,
+                    at: *at,
+                };
             }
-            Record::Failed { step, reason } => {
-                self.failed.insert(step.clone(), reason.clone());
+            Record::Failed {
+                step,
+                kind,
+                reason,
+                at,
+            } => {
+                let s = self.steps.entry(step.clone()).or_insert(StepState {
+                    first_seen: *at,
+                    outcome: Outcome::Waiting,
+                });
+                s.outcome = Outcome::Failed {
+                    kind: *kind,
+                    reason: reason.clone(),
+                    at: *at,
+                };
             }
-            Record::Quarantined { file, reason } => {
-                self.quarantined.insert(file.clone(), reason.clone());
+            Record::Quarantined {
+                feed,
+                file,
+                reason,
+                moved_to,
+                at,
+            } => {
+                self.quarantined.insert(
+                    file.clone(),
+                    QuarantinedFile {
+                        feed: feed.clone(),
+                        reason: reason.clone(),
+                        moved_to: moved_to.clone(),
+                        at: *at,
+                    },
+                );
             }
-            Record::Reprocess { step } => {
-                self.published.remove(step);
-                self.failed.remove(step);
+            Record::Reprocess {
+                feed,
+                cycle,
+                lead,
+                at,
+            } => {
+                for (tag, st) in self.steps.iter_mut() {
+                    if &tag.feed == feed
+                        && &tag.cycle == cycle
+                        && lead.is_none_or(|l| l == tag.lead)
+                    {
+                        st.outcome = Outcome::Waiting;
+                        st.first_seen = *at;
+                    }
+                }
+                // Files of the cycle are looked at again.
+                self.seen.retain(|_, f| {
+                    !(f.feed == *feed
+                        && f.steps
+                            .iter()
+                            .any(|t| &t.cycle == cycle && lead.is_none_or(|l| l == t.lead)))
+                });
             }
         }
     }
+
+    /// True if the step is published or has failed for good (not an output
+    /// failure, which is retried).
+    pub fn settled(&self, step: &StepTag) -> bool {
+        match self.steps.get(step).map(|s| &s.outcome) {
+            Some(Outcome::Published { .. }) => true,
+            Some(Outcome::Failed { kind, .. }) => *kind != FailKind::Output,
+            _ => false,
+        }
+    }
+}
+
+fn replay(file: &File, state: &mut State) -> std::io::Result<u64> {
+    let mut good_len = 0u64;
+    let mut reader = BufReader::new(file);
+    let mut line = String::new();
+    loop {
+        line.clear();
+        let n = reader.read_line(&mut line)?;
+        if n == 0 {
+            break;
+        }
+        // Only a whole line that parses counts: a crash mid-write leaves a torn tail.
+        match (
+            line.ends_with('\n'),
+            serde_json::from_str::<Record>(line.trim_end()),
+        ) {
+            (true, Ok(r)) => {
+                state.apply(&r);
+                good_len += n as u64;
+            }
+            _ => break,
+        }
+    }
+    Ok(good_len)
+}
+
+/// The journal's file name in the state directory.
+pub const FILE_NAME: &str = "ledger.jsonl";
+
+/// Read the state of a journal without changing it (for `leeward status`,
+/// which may run beside the service).
+pub fn read_state(state_dir: &Path) -> Result<State, LedgerError> {
+    let path = state_dir.join(FILE_NAME);
+    let io = |source| LedgerError::Io {
+        path: path.clone(),
+        source,
+    };
+    let file = File::open(&path).map_err(io)?;
+    let mut state = State::default();
+    replay(&file, &mut state).map_err(io)?;
+    Ok(state)
 }
 
 /// An open journal.
@@ -126,7 +422,7 @@ pub struct Ledger {
 impl Ledger {
     /// Open (or create) the journal in `state_dir`, replay it, and cut a torn last line.
     pub fn open(state_dir: &Path) -> Result<Ledger, LedgerError> {
-        let path = state_dir.join("ledger.jsonl");
+        let path = state_dir.join(FILE_NAME);
         let io = |source| LedgerError::Io {
             path: path.clone(),
             source,
@@ -139,29 +435,7 @@ impl Ledger {
             .open(&path)
             .map_err(io)?;
         let mut state = State::default();
-        let mut good_len = 0u64;
-        {
-            let mut reader = BufReader::new(&file);
-            let mut line = String::new();
-            loop {
-                line.clear();
-                let n = reader.read_line(&mut line).map_err(io)?;
-                if n == 0 {
-                    break;
-                }
-                // Only a whole line that parses counts: a crash mid-write leaves a torn tail.
-                match (
-                    line.ends_with('\n'),
-                    serde_json::from_str::<Record>(line.trim_end()),
-                ) {
-                    (true, Ok(r)) => {
-                        state.apply(&r);
-                        good_len += n as u64;
-                    }
-                    _ => break,
-                }
-            }
-        }
+        let good_len = replay(&file, &mut state).map_err(io)?;
         let len = file.seek(SeekFrom::End(0)).map_err(io)?;
         if len != good_len {
             file.set_len(good_len).map_err(io)?;
@@ -205,42 +479,80 @@ mod tests {
         d
     }
 
+    fn tag(lead: i64) -> StepTag {
+        StepTag {
+            feed: "m".into(),
+            cycle: "20260314T0000Z".into(),
+            lead,
+            member: None,
+            grid: "abc".into(),
+        }
+    }
+
     #[test]
     fn replay_gives_back_the_state() {
         let d = dir("replay");
         {
             let mut l = Ledger::open(&d).unwrap();
             l.append(Record::Seen {
+                feed: "m".into(),
                 file: "a.grib2".into(),
                 size: 10,
+                mtime_ns: 5,
                 checksum: checksum(b"x"),
+                steps: vec![tag(6), tag(12)],
+                at: 100,
             })
             .unwrap();
             l.append(Record::Failed {
-                step: "m/2026031400/006".into(),
+                step: tag(6),
+                kind: FailKind::Output,
                 reason: "disk full".into(),
+                at: 110,
             })
             .unwrap();
+            assert!(!l.state.settled(&tag(6)), "an output failure is retried");
             l.append(Record::Published {
-                step: "m/2026031400/006".into(),
+                step: tag(6),
                 path: "out/x.nc".into(),
-                at: 1,
+                manifest: "out/x.json".into(),
+                partial: false,
+                at: 120,
             })
             .unwrap();
         }
         let l = Ledger::open(&d).unwrap();
-        assert_eq!(
-            l.state
-                .published
-                .get("m/2026031400/006")
-                .map(String::as_str),
-            Some("out/x.nc")
-        );
-        assert!(
-            l.state.failed.is_empty(),
-            "a later publication clears the failure"
-        );
-        assert_eq!(l.state.seen["a.grib2"].0, 10);
+        assert!(l.state.settled(&tag(6)));
+        assert!(!l.state.settled(&tag(12)));
+        assert_eq!(l.state.steps[&tag(12)].first_seen, 100);
+        assert_eq!(l.state.seen["a.grib2"].size, 10);
+        assert_eq!(l.state.grids["m"], vec!["abc".to_string()]);
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn reprocess_reopens_the_cycle() {
+        let d = dir("reprocess");
+        let mut l = Ledger::open(&d).unwrap();
+        for lead in [6, 12] {
+            l.append(Record::Published {
+                step: tag(lead),
+                path: "p".into(),
+                manifest: "m".into(),
+                partial: false,
+                at: 1,
+            })
+            .unwrap();
+        }
+        l.append(Record::Reprocess {
+            feed: "m".into(),
+            cycle: "20260314T0000Z".into(),
+            lead: Some(12),
+            at: 2,
+        })
+        .unwrap();
+        assert!(l.state.settled(&tag(6)));
+        assert!(!l.state.settled(&tag(12)));
         let _ = std::fs::remove_dir_all(&d);
     }
 
@@ -249,9 +561,13 @@ mod tests {
         let d = dir("torn");
         {
             let mut l = Ledger::open(&d).unwrap();
-            l.append(Record::Reprocess { step: "s".into() }).unwrap();
+            l.append(Record::Stopped {
+                reason: "s".into(),
+                at: 1,
+            })
+            .unwrap();
         }
-        let path = d.join("ledger.jsonl");
+        let path = d.join(FILE_NAME);
         let good = std::fs::metadata(&path).unwrap().len();
         // What a kill -9 in the middle of a write leaves behind.
         std::fs::OpenOptions::new()
@@ -260,15 +576,19 @@ mod tests {
             .unwrap()
             .write_all(b"{\"event\":\"publ")
             .unwrap();
+        assert!(read_state(&d).is_ok(), "a reader passes over the torn tail");
         let mut l = Ledger::open(&d).unwrap();
         assert_eq!(std::fs::metadata(&path).unwrap().len(), good);
         l.append(Record::Quarantined {
+            feed: "m".into(),
             file: "bad".into(),
             reason: "garbage".into(),
+            moved_to: None,
+            at: 2,
         })
         .unwrap();
         let l = Ledger::open(&d).unwrap();
-        assert_eq!(l.state.quarantined["bad"], "garbage");
+        assert_eq!(l.state.quarantined["bad"].reason, "garbage");
         let _ = std::fs::remove_dir_all(&d);
     }
 

@@ -1,5 +1,24 @@
-//! The service's parts: the incoming-directory watcher and the ledger. The
-//! daemon that joins them to the pipeline comes on top of these.
+//! The service (`leeward serve`): watch the incoming directories, assemble
+//! cycle steps from the files as they land, process each step as soon as it
+//! is complete, publish products with a manifest, and keep a ledger so that
+//! a restart resumes where it stopped.
+//!
+//! - [`settings`]: the `[service]` and `[[feed]]` tables.
+//! - [`watch`]: which files in an incoming directory are finished.
+//! - [`assemble`]: fields grouped into steps; completeness; order.
+//! - [`daemon`]: the main loop, workers, signals, reprocess requests.
+//! - [`publish`]: output tree, manifests, temporaries, retention, quarantine.
+//! - [`ledger`]: the durable journal of what happened.
+//! - [`metrics`]: the health and metrics endpoint.
+//! - [`systemd`]: readiness, watchdog and status notifications.
+//! - [`status`]: `leeward status`, from the ledger.
 
+pub mod assemble;
+pub mod daemon;
 pub mod ledger;
+pub mod metrics;
+pub mod publish;
+pub mod settings;
+pub mod status;
+pub mod systemd;
 pub mod watch;

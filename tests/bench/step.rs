@@ -12,7 +12,7 @@ use std::time::Instant;
 use leeward::config::Config;
 use leeward::ingest::catalogue::catalogue;
 use leeward::ingest::decode::decode_raw;
-use leeward::pipeline::{grid_suffixes, plan, read_input, run_step};
+use leeward::pipeline::{grid_suffixes, plan, read_input, run_step, Destination};
 use rayon::prelude::*;
 
 fn main() {
@@ -68,7 +68,7 @@ fn main() {
     let suffixes = grid_suffixes(&steps);
     let cfg = Config::default();
     for (s, g) in steps.iter().zip(suffixes) {
-        let r = run_step(s, &files, &cfg, &out, g);
+        let r = run_step(s, &files, &cfg, &Destination::flat(&out), g);
         for (name, secs) in &r.family_seconds {
             println!("{{\"what\":\"family\",\"name\":\"{name}\",\"seconds\":{secs:.4}}}");
         }
@@ -88,7 +88,7 @@ fn main() {
         let (steps, _) = plan(&files);
         let suffixes = grid_suffixes(&steps);
         for (s, g) in steps.iter().zip(suffixes) {
-            let r = run_step(s, &files, &cfg, &out, g);
+            let r = run_step(s, &files, &cfg, &Destination::flat(&out), g);
             println!(
                 "{{\"what\":\"next_step\",\"changes_and_budget_s\":{:.4},\"step_s\":{:.4},\"updated\":{}}}",
                 r.changes_seconds,

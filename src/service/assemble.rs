@@ -1,0 +1,423 @@
+//! Cycle assembly: fields from many files grouped into steps, each step's
+//! completeness judged by its feed's rule, and the order in which ready
+//! steps go to the workers.
+//!
+//! In: catalogued input files (which fields, at which byte ranges), marker
+//! files, the clock. Out: steps that are ready (complete, or timed out and
+//! to be made with what is there) and the next one to run. No I/O here: the
+//! daemon reads files and runs steps; this keeps the bookkeeping.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::PathBuf;
+use std::time::Instant;
+
+use chrono::NaiveDateTime;
+
+use super::ledger::StepTag;
+use super::settings::{Completeness, FeedRule, Order};
+use crate::ingest::catalogue::FieldEntry;
+use crate::ingest::params::{surface, Quantity};
+use crate::pipeline::StepKey;
+
+/// What one input file gives to one step.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Contribution {
+    /// The file.
+    pub path: PathBuf,
+    /// Its size when catalogued.
+    pub size: u64,
+    /// Its checksum when catalogued.
+    pub checksum: String,
+    /// Byte ranges (offset, length) of the GRIB2 messages holding the step's fields.
+    pub messages: Vec<(u64, u64)>,
+    /// Unix time the file was found finished.
+    pub seen_at: f64,
+}
+
+/// Where a pending step stands.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Phase {
+    /// Waiting for more input.
+    Waiting,
+    /// Ready to run; `partial` when made at the timeout with what is there.
+    Ready {
+        /// Incomplete at the timeout.
+        partial: bool,
+    },
+    /// A worker has it.
+    Running {
+        /// Incomplete at the timeout.
+        partial: bool,
+    },
+    /// Waiting to be tried again after a failure to write or read.
+    Retry {
+        /// Not before.
+        at: Instant,
+        /// Incomplete at the timeout.
+        partial: bool,
+    },
+}
+
+/// A step being assembled.
+#[derive(Debug, Clone)]
+pub struct Pending {
+    /// Its identity in the ledger.
+    pub tag: StepTag,
+    /// Its identity in the pipeline.
+    pub key: StepKey,
+    /// Files that hold its fields.
+    pub files: BTreeMap<PathBuf, Contribution>,
+    /// (quantity, isobaric level in 0.01 Pa) present.
+    pub have: BTreeSet<(Quantity, i64)>,
+    /// Unix time its first input was seen (kept across restarts by the ledger).
+    pub first_seen: f64,
+    /// Phase.
+    pub phase: Phase,
+    /// Failed attempts so far.
+    pub attempts: u32,
+    /// Made again on an operator's request: never adopted from an existing manifest.
+    pub forced: bool,
+}
+
+impl Pending {
+    /// Unix time the last of its inputs was found finished.
+    pub fn last_input(&self) -> f64 {
+        self.files
+            .values()
+            .map(|c| c.seen_at)
+            .fold(self.first_seen, f64::max)
+    }
+}
+
+/// The key used for an isobaric level (0.01 Pa), as in the pipeline.
+pub fn level_key(pa: f64) -> i64 {
+    (pa * 100.0).round() as i64
+}
+
+/// The isobaric (quantity, level) of a field, if it is one leeward knows.
+pub fn isobaric(e: &FieldEntry) -> Option<(Quantity, i64)> {
+    let q = Quantity::from_wmo(e.discipline, e.category, e.number)?;
+    match (e.level.kind, e.level.value) {
+        (surface::ISOBARIC, Some(p)) if p > 0.0 => Some((q, level_key(p))),
+        _ => None,
+    }
+}
+
+/// All pending steps and the markers seen.
+#[derive(Debug, Default)]
+pub struct Assembly {
+    /// Steps not yet settled.
+    pub steps: BTreeMap<StepTag, Pending>,
+    /// Markers: (feed, cycle `YYYYMMDDTHHMMZ`, lead if the marker names one).
+    pub markers: BTreeSet<(String, String, Option<i64>)>,
+}
+
+impl Assembly {
+    /// Add a file's fields to a step (created if new). Returns false if this
+    /// very file (same path and checksum) was already there.
+    #[allow(clippy::too_many_arguments)]
+    pub fn add(
+        &mut self,
+        tag: StepTag,
+        key: StepKey,
+        c: Contribution,
+        fields: &[(Quantity, i64)],
+        first_seen: f64,
+        forced: bool,
+    ) -> bool {
+        let p = self.steps.entry(tag.clone()).or_insert_with(|| Pending {
+            tag,
+            key,
+            files: BTreeMap::new(),
+            have: BTreeSet::new(),
+            first_seen,
+            phase: Phase::Waiting,
+            attempts: 0,
+            forced,
+        });
+        p.forced |= forced;
+        p.first_seen = p.first_seen.min(first_seen);
+        if p.files
+            .get(&c.path)
+            .is_some_and(|o| o.checksum == c.checksum)
+        {
+            return false;
+        }
+        p.have.extend(fields.iter().copied());
+        p.files.insert(c.path.clone(), c);
+        true
+    }
+
+    /// Is the step complete by its feed's rule?
+    pub fn complete(&self, p: &Pending, rule: &FeedRule) -> bool {
+        match rule.feed.complete {
+            Completeness::Fields => rule.levels_pa().iter().all(|&pa| {
+                rule.required
+                    .iter()
+                    .all(|q| p.have.contains(&(*q, level_key(pa))))
+            }),
+            Completeness::Files => p.files.len() >= rule.feed.files_per_step as usize,
+            Completeness::Marker => {
+                self.markers
+                    .contains(&(p.tag.feed.clone(), p.tag.cycle.clone(), None))
+                    || self.markers.contains(&(
+                        p.tag.feed.clone(),
+                        p.tag.cycle.clone(),
+                        Some(p.tag.lead),
+                    ))
+            }
+        }
+    }
+
+    /// Move waiting steps that are complete, or past the timeout, to ready;
+    /// retries whose time has come too. Returns the steps made ready.
+    pub fn promote(
+        &mut self,
+        rules: &[FeedRule],
+        now_unix: f64,
+        now: Instant,
+        timeout_s: f64,
+    ) -> Vec<StepTag> {
+        let mut out = Vec::new();
+        let tags: Vec<StepTag> = self.steps.keys().cloned().collect();
+        for tag in tags {
+            let Some(p) = self.steps.get(&tag) else {
+                continue;
+            };
+            let Some(rule) = rules.iter().find(|r| r.feed.name == tag.feed) else {
+                continue;
+            };
+            let next = match p.phase {
+                Phase::Waiting => {
+                    if self.complete(p, rule) {
+                        Some(Phase::Ready { partial: false })
+                    } else if now_unix - p.first_seen >= timeout_s {
+                        Some(Phase::Ready { partial: true })
+                    } else {
+                        None
+                    }
+                }
+                Phase::Retry { at, partial } if at <= now => Some(Phase::Ready { partial }),
+                _ => None,
+            };
+            if let (Some(n), Some(p)) = (next, self.steps.get_mut(&tag)) {
+                p.phase = n;
+                out.push(tag);
+            }
+        }
+        out
+    }
+
+    /// The ready step to run next. `newest-first`: the newest cycle, lowest
+    /// lead. `oldest-first`: the oldest cycle, lowest lead, except that when
+    /// no running step belongs to the newest cycle with ready work (or a newer
+    /// one), that cycle goes first, so a backlog never starves a new cycle.
+    pub fn next(&self, order: Order, running: &[StepTag]) -> Option<StepTag> {
+        let ready: Vec<&Pending> = self
+            .steps
+            .values()
+            .filter(|p| matches!(p.phase, Phase::Ready { .. }))
+            .collect();
+        let cycle = |p: &Pending| -> NaiveDateTime { p.key.reference_time };
+        let newest = ready.iter().map(|p| cycle(p)).max()?;
+        let by_lead = |a: &&&Pending, b: &&&Pending| {
+            (a.key.valid_time, &a.tag).cmp(&(b.key.valid_time, &b.tag))
+        };
+        let pick_cycle = match order {
+            Order::NewestFirst => newest,
+            Order::OldestFirst => {
+                // A running step of this cycle or a newer one already serves the newest work.
+                let newest_running = running
+                    .iter()
+                    .filter_map(|t| self.steps.get(t).map(|p| p.key.reference_time))
+                    .max()
+                    .is_some_and(|c| c >= newest);
+                if newest_running {
+                    ready.iter().map(|p| cycle(p)).min()?
+                } else {
+                    newest
+                }
+            }
+        };
+        ready
+            .iter()
+            .filter(|p| cycle(p) == pick_cycle)
+            .min_by(by_lead)
+            .map(|p| p.tag.clone())
+    }
+
+    /// Count of steps in each phase: (waiting, ready, running, retrying), for one feed.
+    pub fn counts(&self, feed: &str) -> (usize, usize, usize, usize) {
+        let mut c = (0, 0, 0, 0);
+        for p in self.steps.values().filter(|p| p.tag.feed == feed) {
+            match p.phase {
+                Phase::Waiting => c.0 += 1,
+                Phase::Ready { .. } => c.1 += 1,
+                Phase::Running { .. } => c.2 += 1,
+                Phase::Retry { .. } => c.3 += 1,
+            }
+        }
+        c
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::Products;
+    use crate::service::settings::{Feed, Service};
+
+    fn t(h: u32) -> NaiveDateTime {
+        chrono::NaiveDate::from_ymd_opt(2026, 3, 14)
+            .unwrap()
+            .and_hms_opt(0, 0, 0)
+            .unwrap()
+            + chrono::TimeDelta::hours(i64::from(h))
+    }
+
+    fn step(cycle_h: u32, lead: u32) -> (StepTag, StepKey) {
+        (
+            StepTag {
+                feed: "m".into(),
+                cycle: t(cycle_h).format("%Y%m%dT%H%MZ").to_string(),
+                lead: i64::from(lead),
+                member: None,
+                grid: "g".into(),
+            },
+            StepKey {
+                centre: 1,
+                reference_time: t(cycle_h),
+                valid_time: t(cycle_h + lead),
+                member: None,
+                grid_key: vec![],
+            },
+        )
+    }
+
+    fn contribution(name: &str) -> Contribution {
+        Contribution {
+            path: PathBuf::from(name),
+            size: 1,
+            checksum: name.into(),
+            messages: vec![(0, 1)],
+            seen_at: 0.0,
+        }
+    }
+
+    fn rule(toml_feed: &str) -> FeedRule {
+        let f: Feed = toml::from_str(toml_feed).unwrap();
+        FeedRule::new(&f, &Service::default(), &Products::default()).unwrap()
+    }
+
+    #[test]
+    fn a_step_split_over_files_is_complete_when_the_last_field_comes() {
+        let r = rule("name = \"m\"\nlevels_hpa = [500.0, 300.0]\n");
+        let mut a = Assembly::default();
+        let (tag, key) = step(0, 6);
+        let lv = |p: f64| level_key(p * 100.0);
+        let first = [Quantity::Temperature, Quantity::WindU, Quantity::WindV]
+            .iter()
+            .flat_map(|q| [(*q, lv(500.0)), (*q, lv(300.0))])
+            .collect::<Vec<_>>();
+        assert!(a.add(
+            tag.clone(),
+            key.clone(),
+            contribution("a"),
+            &first,
+            0.0,
+            false
+        ));
+        assert!(!a.add(
+            tag.clone(),
+            key.clone(),
+            contribution("a"),
+            &first,
+            0.0,
+            false
+        ));
+        let now = Instant::now();
+        assert!(a
+            .promote(std::slice::from_ref(&r), 10.0, now, 100.0)
+            .is_empty());
+        let gh = [
+            (Quantity::GeopotentialHeight, lv(500.0)),
+            (Quantity::GeopotentialHeight, lv(300.0)),
+        ];
+        a.add(tag.clone(), key, contribution("b"), &gh, 5.0, false);
+        assert_eq!(a.promote(&[r], 10.0, now, 100.0), vec![tag.clone()]);
+        assert_eq!(a.steps[&tag].phase, Phase::Ready { partial: false });
+    }
+
+    #[test]
+    fn timeout_makes_a_partial_step_and_markers_and_counts_complete_others() {
+        let now = Instant::now();
+        let r = rule("name = \"m\"\nlevels_hpa = [500.0]\n");
+        let mut a = Assembly::default();
+        let (tag, key) = step(0, 6);
+        a.add(tag.clone(), key, contribution("a"), &[], 0.0, false);
+        assert!(a
+            .promote(std::slice::from_ref(&r), 99.0, now, 100.0)
+            .is_empty());
+        assert_eq!(a.promote(&[r], 100.0, now, 100.0), vec![tag.clone()]);
+        assert_eq!(a.steps[&tag].phase, Phase::Ready { partial: true });
+
+        let m = rule(
+            "name = \"m\"\ncomplete = \"marker\"\nmarker_pattern = '^(?P<cycle>\\d{10})\\.done$'\n",
+        );
+        let mut a = Assembly::default();
+        let (tag, key) = step(0, 6);
+        a.add(tag.clone(), key, contribution("a"), &[], 0.0, false);
+        assert!(a
+            .promote(std::slice::from_ref(&m), 1.0, now, 100.0)
+            .is_empty());
+        a.markers.insert(("m".into(), tag.cycle.clone(), None));
+        assert_eq!(a.promote(&[m], 1.0, now, 100.0), vec![tag]);
+
+        let f = rule("name = \"m\"\ncomplete = \"files\"\nfiles_per_step = 2\n");
+        let mut a = Assembly::default();
+        let (tag, key) = step(0, 6);
+        a.add(tag.clone(), key.clone(), contribution("a"), &[], 0.0, false);
+        assert!(a
+            .promote(std::slice::from_ref(&f), 1.0, now, 100.0)
+            .is_empty());
+        a.add(tag.clone(), key, contribution("b"), &[], 0.0, false);
+        assert_eq!(a.promote(&[f], 1.0, now, 100.0), vec![tag]);
+    }
+
+    #[test]
+    fn newest_first_and_no_starvation_oldest_first() {
+        let mut a = Assembly::default();
+        for (c, l) in [(0, 6), (0, 0), (6, 12), (6, 0), (12, 6)] {
+            let (tag, key) = step(c, l);
+            a.add(tag.clone(), key, contribution("x"), &[], 0.0, false);
+            if let Some(p) = a.steps.get_mut(&tag) {
+                p.phase = Phase::Ready { partial: false };
+            }
+        }
+        let pick = |a: &Assembly, o, running: &[StepTag]| {
+            let t = a.next(o, running).unwrap();
+            (t.cycle.clone(), t.lead)
+        };
+        assert_eq!(
+            pick(&a, Order::NewestFirst, &[]),
+            ("20260314T1200Z".to_string(), 6)
+        );
+        // Oldest first still gives the newest cycle a worker when none has it.
+        assert_eq!(
+            pick(&a, Order::OldestFirst, &[]),
+            ("20260314T1200Z".to_string(), 6)
+        );
+        let (running, _) = step(12, 6);
+        if let Some(p) = a.steps.get_mut(&running) {
+            p.phase = Phase::Running { partial: false };
+        }
+        assert_eq!(
+            pick(&a, Order::OldestFirst, std::slice::from_ref(&running)),
+            ("20260314T0000Z".to_string(), 0)
+        );
+        assert_eq!(
+            pick(&a, Order::NewestFirst, std::slice::from_ref(&running)),
+            ("20260314T0600Z".to_string(), 0)
+        );
+    }
+}

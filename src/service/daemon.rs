@@ -1,0 +1,1308 @@
+//! The daemon: the main loop of `leeward serve`.
+//!
+//! In: the configuration file (and command-line overrides of its
+//! directories), files landing in the feeds' incoming directories, signals,
+//! reprocess requests in the state directory. Out: published steps, the
+//! ledger, logs, notifications to systemd, the metrics endpoint. The main
+//! thread owns the state; workers run one step each and report back.
+
+use std::collections::{BTreeSet, HashMap};
+use std::io::{Read, Seek, SeekFrom};
+use std::path::{Path, PathBuf};
+use std::sync::mpsc::{channel, Receiver, Sender};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use chrono::{NaiveDateTime, TimeDelta, Utc};
+use serde::{Deserialize, Serialize};
+use tracing::{debug, error, info, warn};
+
+use super::assemble::{isobaric, Assembly, Contribution, Phase};
+use super::ledger::{FailKind, Ledger, Outcome, Record, StepTag};
+use super::metrics::Metrics;
+use super::publish::{self, ManifestInput, StepFacts};
+use super::settings::{FeedRule, FileRole, QuarantineMode};
+use super::systemd::{status_line, Notifier};
+use super::watch::{watch, FinishedFiles};
+use crate::config::Config;
+use crate::ingest::catalogue::catalogue;
+use crate::ingest::grid::parse_grid;
+use crate::output::store::cycle_dir_name;
+use crate::pipeline::{
+    grid_id, output_name, plan, run_step, Destination, InputFile, StepKey, StepReport,
+};
+
+/// Where `leeward serve` takes its settings from.
+#[derive(Debug, Clone)]
+pub struct ServeOptions {
+    /// The configuration file.
+    pub config: PathBuf,
+    /// Overrides `service.watch_dir`.
+    pub watch_dir: Option<PathBuf>,
+    /// Overrides `service.out_dir`.
+    pub out_dir: Option<PathBuf>,
+    /// Overrides `service.state_dir`.
+    pub state_dir: Option<PathBuf>,
+}
+
+/// Exit codes of `serve`.
+pub mod code {
+    /// Stopped on request.
+    pub const OK: u8 = 0;
+    /// Configuration or state directory unusable: do not restart until fixed.
+    pub const CONFIG: u8 = 2;
+}
+
+/// A request, dropped into `<state_dir>/requests/` by `leeward reprocess`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ReprocessRequest {
+    /// The feed.
+    pub feed: String,
+    /// The cycle, `YYYYMMDDTHHMMZ`.
+    pub cycle: String,
+    /// One lead only, hours.
+    pub lead: Option<i64>,
+}
+
+/// The requests directory of a state directory.
+pub fn requests_dir(state_dir: &Path) -> PathBuf {
+    state_dir.join("requests")
+}
+
+/// The lock file that keeps two services off one state directory.
+pub fn lock_path(state_dir: &Path) -> PathBuf {
+    state_dir.join("leeward.lock")
+}
+
+/// Load the configuration and apply the command-line overrides.
+pub fn load(opts: &ServeOptions) -> Result<Config, String> {
+    let mut cfg = Config::load(&opts.config).map_err(|e| e.to_string())?;
+    if let Some(d) = &opts.watch_dir {
+        cfg.service.watch_dir = d.clone();
+    }
+    if let Some(d) = &opts.out_dir {
+        cfg.service.out_dir = d.clone();
+    }
+    if let Some(d) = &opts.state_dir {
+        cfg.service.state_dir = d.clone();
+    }
+    if cfg.feed.is_empty() {
+        return Err(format!(
+            "config {}: no [[feed]] table; the service needs at least one feed",
+            opts.config.display()
+        ));
+    }
+    Ok(cfg)
+}
+
+/// Feed rules and the configuration each feed runs with.
+type Rules = (Vec<FeedRule>, HashMap<String, Arc<Config>>);
+
+fn rules_of(cfg: &Config) -> Result<Rules, String> {
+    let mut rules = Vec::new();
+    let mut cfgs = HashMap::new();
+    for f in &cfg.feed {
+        let r = FeedRule::new(f, &cfg.service, &cfg.products)
+            .map_err(|e| format!("feed {}: {e}", f.name))?;
+        let mut c = cfg.clone();
+        if let Some(p) = &f.products {
+            c.products = p.clone();
+        }
+        c.feed.clear();
+        cfgs.insert(f.name.clone(), Arc::new(c));
+        rules.push(r);
+    }
+    Ok((rules, cfgs))
+}
+
+fn unix_now() -> f64 {
+    Utc::now().timestamp_millis() as f64 / 1000.0
+}
+
+fn mtime_ns(m: &std::fs::Metadata) -> i64 {
+    m.modified()
+        .ok()
+        .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+        .map(|d| d.as_nanos() as i64)
+        .unwrap_or(0)
+}
+
+/// A step handed to a worker.
+struct Job {
+    tag: StepTag,
+    key: StepKey,
+    files: Vec<Contribution>,
+    cfg: Arc<Config>,
+    store: PathBuf,
+    dir: PathBuf,
+    lock: Arc<Mutex<()>>,
+    suffix: Option<usize>,
+    partial: bool,
+    last_input: f64,
+}
+
+/// What a worker reports.
+enum JobOutcome {
+    Published {
+        path: PathBuf,
+        manifest: PathBuf,
+        latency: f64,
+        report: Box<StepReport>,
+    },
+    OutputFailed(String),
+    Vanished(PathBuf, String),
+    InputFailed(String),
+    Internal(String),
+}
+
+struct JobDone {
+    tag: StepTag,
+    outcome: JobOutcome,
+}
+
+fn read_ranges(path: &Path, expect_size: u64, ranges: &[(u64, u64)]) -> std::io::Result<Vec<u8>> {
+    let mut f = std::fs::File::open(path)?;
+    let size = f.metadata()?.len();
+    if size != expect_size {
+        return Err(std::io::Error::other(format!(
+            "changed since it was catalogued ({expect_size} bytes then, {size} now)"
+        )));
+    }
+    let mut out = Vec::new();
+    for &(off, len) in ranges {
+        f.seek(SeekFrom::Start(off))?;
+        let start = out.len();
+        out.resize(start + len as usize, 0);
+        f.read_exact(&mut out[start..])?;
+    }
+    Ok(out)
+}
+
+fn run_job(job: &Job) -> JobOutcome {
+    let mut inputs = Vec::new();
+    for c in &job.files {
+        match read_ranges(&c.path, c.size, &c.messages) {
+            Ok(bytes) => {
+                let cat = catalogue(&bytes);
+                inputs.push(InputFile {
+                    path: c.path.clone(),
+                    bytes: Arc::new(bytes),
+                    catalogue: cat,
+                });
+            }
+            Err(e) => return JobOutcome::Vanished(c.path.clone(), e.to_string()),
+        }
+    }
+    let (steps, _) = plan(&inputs);
+    let Some(step) = steps.into_iter().find(|s| s.key == job.key) else {
+        return JobOutcome::InputFailed("the step's fields are no longer in its files".into());
+    };
+    if let Err(e) = std::fs::create_dir_all(&job.dir) {
+        return JobOutcome::OutputFailed(format!("cannot create {}: {e}", job.dir.display()));
+    }
+    let facts = StepFacts {
+        feed: &job.tag.feed,
+        reference_time: job.key.reference_time,
+        valid_time: job.key.valid_time,
+        member: job.key.member,
+        partial: job.partial,
+        inputs: job
+            .files
+            .iter()
+            .map(|c| ManifestInput {
+                file: c.path.display().to_string(),
+                bytes: c.size,
+                checksum: c.checksum.clone(),
+            })
+            .collect(),
+        last_input: job.last_input,
+    };
+    let written: Mutex<Option<(PathBuf, f64)>> = Mutex::new(None);
+    let hook = |rep: &StepReport| -> Result<(), String> {
+        let Some(product) = &rep.output else {
+            return Err("no product file".into());
+        };
+        let m = publish::write_manifest(product, rep, &facts).map_err(|e| {
+            format!(
+                "cannot write the manifest {}: {e}",
+                publish::manifest_path(product).display()
+            )
+        })?;
+        for u in &rep.updated {
+            if let Err(e) = publish::revise_manifest(u) {
+                warn!(file = %u.display(), error = %e, "manifest of an updated product not revised");
+            }
+        }
+        let latency = (unix_now() - facts.last_input).max(0.0);
+        *written
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner) = Some((m, latency));
+        Ok(())
+    };
+    let dest = Destination {
+        store: &job.store,
+        dir: &job.dir,
+        lock: Some(&job.lock),
+        on_published: Some(&hook),
+    };
+    let rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
+    let manifest = written
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .take();
+    if rep.output_failed {
+        JobOutcome::OutputFailed(rep.skipped.clone().unwrap_or_else(|| "write failed".into()))
+    } else if let (Some(path), Some((manifest, latency))) = (rep.output.clone(), manifest) {
+        JobOutcome::Published {
+            path,
+            manifest,
+            latency,
+            report: Box::new(rep),
+        }
+    } else {
+        JobOutcome::InputFailed(
+            rep.skipped
+                .clone()
+                .unwrap_or_else(|| "nothing could be made from the input".into()),
+        )
+    }
+}
+
+enum Event {
+    Signal(i32),
+}
+
+struct Daemon {
+    opts: ServeOptions,
+    cfg: Config,
+    rules: Vec<FeedRule>,
+    feed_cfgs: HashMap<String, Arc<Config>>,
+    ledger: Ledger,
+    asm: Assembly,
+    watchers: Vec<(String, FinishedFiles)>,
+    metrics: Arc<Mutex<Metrics>>,
+    notifier: Notifier,
+    done_tx: Sender<JobDone>,
+    done_rx: Receiver<JobDone>,
+    running: HashMap<StepTag, Instant>,
+    locks: HashMap<String, Arc<Mutex<()>>>,
+    too_old: BTreeSet<(String, String)>,
+    last_status: String,
+    last_published: Option<String>,
+}
+
+impl Daemon {
+    fn metrics(&self) -> std::sync::MutexGuard<'_, Metrics> {
+        self.metrics
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+    }
+
+    fn record(&mut self, r: Record) {
+        if let Err(e) = self.ledger.append(r) {
+            error!(error = %e, "ledger not written; the state directory needs attention");
+            self.metrics().ledger_errors += 1;
+        }
+    }
+
+    fn start_watchers(&mut self) {
+        self.watchers.clear();
+        let settle = Duration::from_secs_f64(self.cfg.service.settle_s);
+        let scan = Duration::from_secs_f64(self.cfg.service.scan_interval_s);
+        let mut dirs: Vec<PathBuf> = Vec::new();
+        for r in &self.rules {
+            if let Err(e) = std::fs::create_dir_all(&r.dir) {
+                warn!(feed = %r.feed.name, dir = %r.dir.display(), error = %e, "cannot create the incoming directory");
+            }
+            if dirs.contains(&r.dir) {
+                continue;
+            }
+            dirs.push(r.dir.clone());
+            match watch(&r.dir, settle, scan) {
+                Ok(w) => {
+                    info!(feed = %r.feed.name, dir = %r.dir.display(), "watching");
+                    self.watchers.push((r.feed.name.clone(), w));
+                }
+                Err(e) => {
+                    error!(feed = %r.feed.name, dir = %r.dir.display(), error = %e, "cannot watch; the directory is retried at the next reload or restart")
+                }
+            }
+        }
+    }
+
+    /// A finished file in some feed's directory.
+    fn ingest(&mut self, path: &Path, force: bool) {
+        let Some(name) = path
+            .file_name()
+            .and_then(|n| n.to_str())
+            .map(str::to_string)
+        else {
+            return;
+        };
+        let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
+        let found = self
+            .rules
+            .iter()
+            .filter(|r| r.dir == dir)
+            .find_map(|r| r.role(&name).map(|role| (r.feed.name.clone(), role)));
+        let Some((feed, role)) = found else {
+            debug!(file = %path.display(), "not a file of any feed");
+            return;
+        };
+        match role {
+            FileRole::Marker(parts) => {
+                if let Some(c) = parts.cycle {
+                    info!(feed = %feed, file = %path.display(), cycle = %cycle_dir_name(c), step = ?parts.step, "marker");
+                    self.asm
+                        .markers
+                        .insert((feed, cycle_dir_name(c), parts.step));
+                } else {
+                    warn!(feed = %feed, file = %path.display(), "marker file without a readable cycle in its name");
+                }
+            }
+            FileRole::Data(parts) => self.ingest_data(&feed, path, parts, force),
+        }
+    }
+
+    fn quarantine(
+        &mut self,
+        feed: &str,
+        path: &Path,
+        reason: &str,
+        size: u64,
+        mtime: i64,
+        checksum: String,
+    ) {
+        let moved_to = match self.cfg.service.quarantine {
+            QuarantineMode::Move => {
+                match publish::quarantine(path, &self.cfg.service.quarantine_dir(), feed, reason) {
+                    Ok(d) => Some(d.display().to_string()),
+                    Err(e) => {
+                        warn!(feed, file = %path.display(), error = %e, "cannot move the file to quarantine; recorded only");
+                        None
+                    }
+                }
+            }
+            QuarantineMode::Record => None,
+        };
+        error!(feed, file = %path.display(), reason, moved_to = ?moved_to, "input file quarantined");
+        self.metrics().feed(feed).quarantined += 1;
+        self.record(Record::Seen {
+            feed: feed.into(),
+            file: path.display().to_string(),
+            size,
+            mtime_ns: mtime,
+            checksum,
+            steps: Vec::new(),
+            at: Utc::now().timestamp(),
+        });
+        self.record(Record::Quarantined {
+            feed: feed.into(),
+            file: path.display().to_string(),
+            reason: reason.into(),
+            moved_to,
+            at: Utc::now().timestamp(),
+        });
+    }
+
+    fn ingest_data(
+        &mut self,
+        feed: &str,
+        path: &Path,
+        parts: super::settings::NameParts,
+        force: bool,
+    ) {
+        let meta = match std::fs::metadata(path) {
+            Ok(m) => m,
+            Err(e) => {
+                warn!(feed, file = %path.display(), error = %e, "input vanished before it could be read");
+                return;
+            }
+        };
+        let (size, mtime) = (meta.len(), mtime_ns(&meta));
+        let key = path.display().to_string();
+        if !force {
+            if let Some(s) = self.ledger.state.seen.get(&key) {
+                if s.size == size
+                    && s.mtime_ns == mtime
+                    && s.steps.iter().all(|t| self.ledger.state.settled(t))
+                {
+                    debug!(feed, file = %path.display(), "already done");
+                    return;
+                }
+            }
+        }
+        let bytes = match std::fs::read(path) {
+            Ok(b) => b,
+            Err(e) => {
+                warn!(feed, file = %path.display(), error = %e, "input could not be read; it is taken again if it changes");
+                return;
+            }
+        };
+        let checksum = super::ledger::checksum(&bytes);
+        let cat = catalogue(&bytes);
+        for p in &cat.problems {
+            warn!(feed, file = %path.display(), field = ?p.field, offset = p.offset, reason = %p.reason, "input problem");
+        }
+        let usable: Vec<_> = cat.fields.iter().filter(|f| f.unusable.is_none()).collect();
+        if usable.is_empty() {
+            let reason = cat
+                .problems
+                .first()
+                .map(|p| format!("{} (at byte {})", p.reason, p.offset))
+                .or_else(|| cat.fields.iter().find_map(|f| f.unusable.clone()))
+                .unwrap_or_else(|| "no GRIB2 message in the file".into());
+            self.quarantine(feed, path, &reason, size, mtime, checksum);
+            return;
+        }
+        // Grids leeward cannot use make a file unusable only if every field is on one.
+        let mut grid_ok: HashMap<std::ops::Range<usize>, Result<(), String>> = HashMap::new();
+        for f in &usable {
+            grid_ok.entry(f.sect3.clone()).or_insert_with(|| {
+                bytes
+                    .get(f.sect3.clone())
+                    .ok_or_else(|| "section 3 outside the file".to_string())
+                    .and_then(|s| parse_grid(s).map(|_| ()).map_err(|e| e.to_string()))
+            });
+        }
+        let good: Vec<_> = usable
+            .into_iter()
+            .filter(|f| matches!(grid_ok.get(&f.sect3), Some(Ok(()))))
+            .collect();
+        if good.is_empty() {
+            let reason = grid_ok
+                .values()
+                .find_map(|r| r.clone().err())
+                .unwrap_or_else(|| "grid not usable".into());
+            self.quarantine(
+                feed,
+                path,
+                &format!("unsupported grid: {reason}"),
+                size,
+                mtime,
+                checksum,
+            );
+            return;
+        }
+        self.metrics().feed(feed).files_seen += 1;
+        // Group the fields into steps.
+        type Gathered = (Vec<(u64, u64)>, Vec<(crate::ingest::params::Quantity, i64)>);
+        let mut by_step: std::collections::BTreeMap<StepKey, Gathered> =
+            std::collections::BTreeMap::new();
+        for f in &good {
+            let mut gk = bytes
+                .get(f.sect3.clone())
+                .map(<[u8]>::to_vec)
+                .unwrap_or_default();
+            if let Some(o) = crate::ingest::grid::flags_octet(f.grid_template) {
+                if let Some(b) = gk.get_mut(o) {
+                    *b = 0;
+                }
+            }
+            let k = StepKey {
+                centre: f.centre,
+                reference_time: f.reference_time,
+                valid_time: f.valid_time,
+                member: f.member,
+                grid_key: gk,
+            };
+            let msg_len = bytes
+                .get(f.message_offset + 8..f.message_offset + 16)
+                .and_then(|b| <[u8; 8]>::try_from(b).ok())
+                .map(u64::from_be_bytes)
+                .unwrap_or(0);
+            let e = by_step.entry(k).or_default();
+            let range = (f.message_offset as u64, msg_len);
+            if !e.0.contains(&range) {
+                e.0.push(range);
+            }
+            if let Some(q) = isobaric(f) {
+                e.1.push(q);
+            }
+        }
+        let now = unix_now();
+        let mut tags = Vec::new();
+        let catch_up = self.cfg.service.catch_up_hours;
+        for (k, (messages, fields)) in by_step {
+            let cycle = cycle_dir_name(k.reference_time);
+            if let Some(c) = parts.cycle {
+                if c != k.reference_time {
+                    warn!(feed, file = %path.display(), name_cycle = %cycle_dir_name(c), cycle = %cycle, "the file name and the contents disagree on the cycle; the contents are used");
+                }
+            }
+            let tag = StepTag {
+                feed: feed.to_string(),
+                cycle: cycle.clone(),
+                lead: (k.valid_time - k.reference_time).num_hours(),
+                member: k.member,
+                grid: grid_id(&k.grid_key),
+            };
+            tags.push(tag.clone());
+            if self.ledger.state.settled(&tag) {
+                let used = self
+                    .ledger
+                    .state
+                    .seen
+                    .get(&key)
+                    .is_some_and(|s| s.checksum == checksum);
+                if !used {
+                    warn!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, "input arrived after its step was published; not used (reprocess the cycle to use it)");
+                    self.metrics().feed(feed).late_files += 1;
+                }
+                continue;
+            }
+            let too_old = catch_up > 0
+                && TimeDelta::try_hours(i64::from(catch_up))
+                    .is_some_and(|h| k.reference_time < Utc::now().naive_utc() - h);
+            if too_old && !force {
+                if self.too_old.insert((feed.to_string(), cycle.clone())) {
+                    warn!(feed, cycle = %cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
+                }
+                continue;
+            }
+            let first_seen = self
+                .ledger
+                .state
+                .steps
+                .get(&tag)
+                .map(|s| s.first_seen as f64)
+                .unwrap_or(now);
+            let c = Contribution {
+                path: path.to_path_buf(),
+                size,
+                checksum: checksum.clone(),
+                messages,
+                seen_at: now,
+            };
+            if self.asm.add(tag.clone(), k, c, &fields, first_seen, force) {
+                info!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, fields = fields.len(), "input for step");
+            }
+        }
+        let known = self
+            .ledger
+            .state
+            .seen
+            .get(&key)
+            .is_some_and(|s| s.size == size && s.mtime_ns == mtime && s.checksum == checksum);
+        if !known {
+            self.record(Record::Seen {
+                feed: feed.into(),
+                file: key,
+                size,
+                mtime_ns: mtime,
+                checksum,
+                steps: tags,
+                at: now as i64,
+            });
+        }
+    }
+
+    fn suffix(&self, tag: &StepTag) -> Option<usize> {
+        let k = self
+            .ledger
+            .state
+            .grids
+            .get(&tag.feed)
+            .and_then(|g| g.iter().position(|x| *x == tag.grid))
+            .unwrap_or(0);
+        (k > 0).then_some(k + 1)
+    }
+
+    /// A product already published whose manifest matches the step's inputs
+    /// (a crash after the manifest and before the ledger): adopt it.
+    fn adopt(&mut self, tag: &StepTag) -> bool {
+        let Some(p) = self.asm.steps.get(tag) else {
+            return false;
+        };
+        if p.forced {
+            return false;
+        }
+        let dir = publish::cycle_dir(&self.cfg.service.out_dir, &tag.feed, p.key.reference_time);
+        let product = dir.join(output_name(&p.key, self.suffix(tag)));
+        let manifest = publish::manifest_path(&product);
+        let Some(m) = publish::read_manifest(&manifest) else {
+            return false;
+        };
+        let have: BTreeSet<(String, String)> = p
+            .files
+            .values()
+            .map(|c| (c.path.display().to_string(), c.checksum.clone()))
+            .collect();
+        let had: BTreeSet<(String, String)> = m
+            .inputs
+            .iter()
+            .map(|i| (i.file.clone(), i.checksum.clone()))
+            .collect();
+        if have != had || !product.exists() {
+            return false;
+        }
+        info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, manifest = %manifest.display(), "already published before a restart; adopted");
+        self.record(Record::Published {
+            step: tag.clone(),
+            path: product.display().to_string(),
+            manifest: manifest.display().to_string(),
+            partial: m.state == "partial",
+            at: Utc::now().timestamp(),
+        });
+        self.asm.steps.remove(tag);
+        true
+    }
+
+    fn dispatch(&mut self) {
+        let workers = self.cfg.service.workers as usize;
+        while self.running.len() < workers {
+            let running: Vec<StepTag> = self.running.keys().cloned().collect();
+            let Some(tag) = self.asm.next(self.cfg.service.order, &running) else {
+                break;
+            };
+            if self.adopt(&tag) {
+                continue;
+            }
+            let suffix = self.suffix(&tag);
+            let Some(p) = self.asm.steps.get_mut(&tag) else {
+                break;
+            };
+            let partial = matches!(p.phase, Phase::Ready { partial: true });
+            p.phase = Phase::Running { partial };
+            let Some(cfg) = self.feed_cfgs.get(&tag.feed).cloned() else {
+                continue;
+            };
+            let store = self.cfg.service.out_dir.join(&tag.feed);
+            let job = Job {
+                tag: tag.clone(),
+                key: p.key.clone(),
+                files: p.files.values().cloned().collect(),
+                cfg,
+                dir: publish::cycle_dir(&self.cfg.service.out_dir, &tag.feed, p.key.reference_time),
+                store,
+                lock: self
+                    .locks
+                    .entry(tag.feed.clone())
+                    .or_insert_with(|| Arc::new(Mutex::new(())))
+                    .clone(),
+                suffix,
+                partial,
+                last_input: p.last_input(),
+            };
+            info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, partial, files = job.files.len(), "processing");
+            self.running.insert(tag.clone(), Instant::now());
+            let tx = self.done_tx.clone();
+            std::thread::spawn(move || {
+                crate::output::quiet_hdf5_errors();
+                let outcome =
+                    std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_job(&job)))
+                        .unwrap_or_else(|p| {
+                            let what = p
+                                .downcast_ref::<&str>()
+                                .map(|s| s.to_string())
+                                .or_else(|| p.downcast_ref::<String>().cloned())
+                                .unwrap_or_else(|| "unknown".into());
+                            JobOutcome::Internal(format!(
+                                "internal error (a defect in leeward): {what}"
+                            ))
+                        });
+                let _ = tx.send(JobDone {
+                    tag: job.tag.clone(),
+                    outcome,
+                });
+            });
+        }
+    }
+
+    fn backoff(&self, attempts: u32) -> Duration {
+        let s = &self.cfg.service;
+        let secs = (s.retry_first_s * 2f64.powi(attempts.saturating_sub(1).min(30) as i32))
+            .min(s.retry_max_s);
+        Duration::from_secs_f64(secs)
+    }
+
+    fn finished(&mut self, d: JobDone) {
+        self.running.remove(&d.tag);
+        let tag = d.tag;
+        let now = Utc::now().timestamp();
+        let was_partial = self
+            .asm
+            .steps
+            .get(&tag)
+            .is_some_and(|p| matches!(p.phase, Phase::Running { partial: true }));
+        match d.outcome {
+            JobOutcome::Published {
+                path,
+                manifest,
+                latency,
+                report,
+            } => {
+                let partial =
+                    publish::read_manifest(&manifest).is_some_and(|m| m.state == "partial");
+                info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %path.display(), manifest = %manifest.display(), partial, latency_s = latency, seconds = report.seconds, "published");
+                for i in &report.issues {
+                    warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %i.file.display(), field = ?i.field, what = %i.what, reason = %i.reason, "input problem");
+                }
+                self.record(Record::Published {
+                    step: tag.clone(),
+                    path: path.display().to_string(),
+                    manifest: manifest.display().to_string(),
+                    partial,
+                    at: now,
+                });
+                self.metrics()
+                    .feed(&tag.feed)
+                    .published(partial, latency, unix_now());
+                self.last_published = Some(format!("{tag}"));
+                self.asm.steps.remove(&tag);
+            }
+            JobOutcome::OutputFailed(reason) => {
+                let attempts = self.asm.steps.get(&tag).map_or(1, |p| p.attempts + 1);
+                let wait = self.backoff(attempts);
+                error!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, attempt = attempts, retry_in_s = wait.as_secs_f64(), reason = %reason, "products not written; retrying");
+                self.record(Record::Failed {
+                    step: tag.clone(),
+                    kind: FailKind::Output,
+                    reason,
+                    at: now,
+                });
+                {
+                    let mut m = self.metrics();
+                    let f = m.feed(&tag.feed);
+                    *f.failed.entry("output").or_default() += 1;
+                    f.retries += 1;
+                }
+                if let Some(p) = self.asm.steps.get_mut(&tag) {
+                    p.attempts = attempts;
+                    p.phase = Phase::Retry {
+                        at: Instant::now() + wait,
+                        partial: was_partial,
+                    };
+                }
+            }
+            JobOutcome::Vanished(file, reason) => {
+                let attempts = self.asm.steps.get(&tag).map_or(1, |p| p.attempts + 1);
+                let wait = self.backoff(attempts);
+                self.metrics().feed(&tag.feed).retries += 1;
+                if let Some(p) = self.asm.steps.get_mut(&tag) {
+                    p.attempts = attempts;
+                    if attempts >= 3 {
+                        warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %file.display(), reason = %reason, "input gone; the step goes on without it");
+                        p.files.remove(&file);
+                    } else {
+                        warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %file.display(), reason = %reason, retry_in_s = wait.as_secs_f64(), "input cannot be read; retrying");
+                    }
+                    p.phase = Phase::Retry {
+                        at: Instant::now() + wait,
+                        partial: was_partial || attempts >= 3,
+                    };
+                    if p.files.is_empty() {
+                        self.asm.steps.remove(&tag);
+                        self.fail(
+                            &tag,
+                            FailKind::Missing,
+                            format!("every input is gone ({reason})"),
+                        );
+                    }
+                }
+            }
+            JobOutcome::InputFailed(reason) => {
+                self.asm.steps.remove(&tag);
+                let kind = if was_partial {
+                    FailKind::Missing
+                } else {
+                    FailKind::Input
+                };
+                self.fail(&tag, kind, reason);
+            }
+            JobOutcome::Internal(reason) => {
+                self.asm.steps.remove(&tag);
+                self.fail(&tag, FailKind::Internal, reason);
+            }
+        }
+    }
+
+    fn fail(&mut self, tag: &StepTag, kind: FailKind, reason: String) {
+        error!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, kind = ?kind, reason = %reason, "step produced nothing");
+        let name = match kind {
+            FailKind::Missing => "missing",
+            FailKind::Input => "input",
+            FailKind::Output => "output",
+            FailKind::Internal => "internal",
+        };
+        *self
+            .metrics()
+            .feed(&tag.feed)
+            .failed
+            .entry(name)
+            .or_default() += 1;
+        self.record(Record::Failed {
+            step: tag.clone(),
+            kind,
+            reason,
+            at: Utc::now().timestamp(),
+        });
+    }
+
+    fn timeouts(&mut self) {
+        let ready = self.asm.promote(
+            &self.rules,
+            unix_now(),
+            Instant::now(),
+            self.cfg.service.step_timeout_s,
+        );
+        for tag in ready {
+            if let Some(p) = self.asm.steps.get(&tag) {
+                if matches!(p.phase, Phase::Ready { partial: true }) && p.attempts == 0 {
+                    warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, files = p.files.len(), "step still incomplete at the timeout; made with what is there");
+                }
+            }
+        }
+    }
+
+    fn requests(&mut self) {
+        let dir = requests_dir(&self.cfg.service.state_dir);
+        let Ok(rd) = std::fs::read_dir(&dir) else {
+            return;
+        };
+        let mut files: Vec<PathBuf> = rd
+            .flatten()
+            .map(|e| e.path())
+            .filter(|p| p.extension().is_some_and(|x| x == "json"))
+            .collect();
+        files.sort();
+        for f in files {
+            let req: Option<ReprocessRequest> = std::fs::read(&f)
+                .ok()
+                .and_then(|b| serde_json::from_slice(&b).ok());
+            let _ = std::fs::remove_file(&f);
+            let Some(req) = req else {
+                warn!(file = %f.display(), "unreadable reprocess request removed");
+                continue;
+            };
+            let Some(rule) = self.rules.iter().find(|r| r.feed.name == req.feed).cloned() else {
+                warn!(feed = %req.feed, "reprocess request for an unknown feed ignored");
+                continue;
+            };
+            info!(feed = %req.feed, cycle = %req.cycle, step = ?req.lead, "reprocess requested");
+            self.record(Record::Reprocess {
+                feed: req.feed.clone(),
+                cycle: req.cycle.clone(),
+                lead: req.lead,
+                at: Utc::now().timestamp(),
+            });
+            self.too_old.remove(&(req.feed.clone(), req.cycle.clone()));
+            // Look at every file of the feed again; only the asked steps are reopened.
+            let Ok(rd) = std::fs::read_dir(&rule.dir) else {
+                warn!(feed = %req.feed, dir = %rule.dir.display(), "incoming directory unreadable; nothing to reprocess from");
+                continue;
+            };
+            let mut paths: Vec<PathBuf> = rd
+                .flatten()
+                .map(|e| e.path())
+                .filter(|p| p.is_file())
+                .collect();
+            paths.sort();
+            let before: BTreeSet<StepTag> = self.asm.steps.keys().cloned().collect();
+            for p in paths {
+                if p.file_name()
+                    .and_then(|n| n.to_str())
+                    .is_some_and(|n| !super::watch::ignored(n))
+                {
+                    self.ingest(&p, true);
+                }
+            }
+            // Steps not asked for that the forced look reopened are left to their normal course.
+            let reopened: Vec<StepTag> = self
+                .asm
+                .steps
+                .keys()
+                .filter(|t| !before.contains(t))
+                .cloned()
+                .collect();
+            let mut n = 0;
+            for t in reopened {
+                let asked = t.cycle == req.cycle && req.lead.is_none_or(|l| l == t.lead);
+                if !asked {
+                    if let Some(p) = self.asm.steps.get_mut(&t) {
+                        p.forced = false;
+                    }
+                } else {
+                    n += 1;
+                }
+            }
+            if n == 0 {
+                warn!(feed = %req.feed, cycle = %req.cycle, "reprocess: no input of the cycle is in the incoming directory");
+            }
+        }
+    }
+
+    fn retention(&mut self) {
+        let days = self.cfg.service.retention_days;
+        if days == 0 {
+            return;
+        }
+        let now = Utc::now().naive_utc();
+        for r in &self.rules {
+            publish::apply_retention(&self.cfg.service.out_dir.join(&r.feed.name), days, now);
+        }
+    }
+
+    fn update_status(&mut self) {
+        let mut tot = (0, 0, 0, 0);
+        {
+            let names: Vec<String> = self.rules.iter().map(|r| r.feed.name.clone()).collect();
+            let counts: Vec<(String, (usize, usize, usize, usize))> = names
+                .iter()
+                .map(|n| (n.clone(), self.asm.counts(n)))
+                .collect();
+            let mut m = self.metrics();
+            m.heartbeat = Some(Instant::now());
+            for (n, c) in counts {
+                m.feed(&n).queue = c;
+                tot = (tot.0 + c.0, tot.1 + c.1, tot.2 + c.2, tot.3 + c.3);
+            }
+        }
+        let mut s = format!(
+            "{} feed(s): {} running, {} ready, {} waiting for input, {} retrying",
+            self.rules.len(),
+            tot.2,
+            tot.1,
+            tot.0,
+            tot.3
+        );
+        if let Some(l) = &self.last_published {
+            s.push_str(&format!("; last published {l}"));
+        }
+        if s != self.last_status {
+            self.notifier.send(&status_line(&s));
+            self.last_status = s;
+        }
+    }
+
+    fn reload(&mut self) {
+        match load(&self.opts).and_then(|c| rules_of(&c).map(|r| (c, r))) {
+            Ok((cfg, (rules, cfgs))) => {
+                if cfg.service.state_dir != self.cfg.service.state_dir {
+                    warn!(old = %self.cfg.service.state_dir.display(), new = %cfg.service.state_dir.display(), "service.state_dir changes only at a restart; the old one is kept");
+                }
+                let state_dir = self.cfg.service.state_dir.clone();
+                self.cfg = cfg;
+                self.cfg.service.state_dir = state_dir;
+                self.rules = rules;
+                self.feed_cfgs = cfgs;
+                let names: Vec<String> = self.rules.iter().map(|r| r.feed.name.clone()).collect();
+                self.asm.steps.retain(|t, p| {
+                    names.contains(&t.feed) || matches!(p.phase, Phase::Running { .. })
+                });
+                self.start_watchers();
+                self.metrics().reloads.0 += 1;
+                info!(config = %self.opts.config.display(), feeds = %super::settings::describe_dirs(&self.rules), "configuration reloaded");
+            }
+            Err(e) => {
+                self.metrics().reloads.1 += 1;
+                error!(config = %self.opts.config.display(), error = %e, "configuration not reloaded: the running one is kept");
+            }
+        }
+    }
+}
+
+/// Run the service until SIGTERM or SIGINT. Returns the exit code.
+pub fn serve(opts: ServeOptions) -> u8 {
+    let cfg = match load(&opts) {
+        Ok(c) => c,
+        Err(e) => {
+            error!(error = %e, "cannot start");
+            eprintln!("leeward: {e}");
+            return code::CONFIG;
+        }
+    };
+    let (rules, feed_cfgs) = match rules_of(&cfg) {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("leeward: {e}");
+            return code::CONFIG;
+        }
+    };
+    let sdir = cfg.service.state_dir.clone();
+    if let Err(e) = std::fs::create_dir_all(requests_dir(&sdir)) {
+        eprintln!(
+            "leeward: cannot use the state directory {}: {e}",
+            sdir.display()
+        );
+        return code::CONFIG;
+    }
+    // One service per state directory.
+    let lock = match std::fs::OpenOptions::new()
+        .create(true)
+        .truncate(false)
+        .read(true)
+        .write(true)
+        .open(lock_path(&sdir))
+    {
+        Ok(f) => f,
+        Err(e) => {
+            eprintln!("leeward: cannot open {}: {e}", lock_path(&sdir).display());
+            return code::CONFIG;
+        }
+    };
+    if lock.try_lock().is_err() {
+        eprintln!(
+            "leeward: another leeward serve is using the state directory {}",
+            sdir.display()
+        );
+        return code::CONFIG;
+    }
+    let _ = lock.set_len(0);
+    let _ = std::fs::write(lock_path(&sdir), format!("{}\n", std::process::id()));
+    let ledger = match Ledger::open(&sdir) {
+        Ok(l) => l,
+        Err(e) => {
+            eprintln!("leeward: {e}");
+            return code::CONFIG;
+        }
+    };
+    if cfg.service.quarantine == QuarantineMode::Move {
+        if let Err(e) = std::fs::create_dir_all(cfg.service.quarantine_dir()) {
+            warn!(dir = %cfg.service.quarantine_dir().display(), error = %e, "cannot create the quarantine directory; bad files are recorded only");
+        }
+    }
+    if let Err(e) = std::fs::create_dir_all(&cfg.service.out_dir) {
+        // Not fatal: the output may come back (a mount); steps are retried.
+        error!(dir = %cfg.service.out_dir.display(), error = %e, "output directory unusable; steps will be retried");
+    }
+    let removed = publish::clean_temporaries(&cfg.service.out_dir);
+    let metrics = Arc::new(Mutex::new(Metrics {
+        started: unix_now(),
+        heartbeat: Some(Instant::now()),
+        ..Metrics::default()
+    }));
+    for r in &rules {
+        metrics
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .feed(&r.feed.name);
+    }
+    if !cfg.service.metrics_listen.is_empty() {
+        if let Err(e) = super::metrics::serve(&cfg.service.metrics_listen, metrics.clone()) {
+            error!(address = %cfg.service.metrics_listen, error = %e, "metrics endpoint not started");
+        }
+    }
+    let (sig_tx, sig_rx) = channel::<Event>();
+    match signal_hook::iterator::Signals::new([
+        signal_hook::consts::SIGTERM,
+        signal_hook::consts::SIGINT,
+        signal_hook::consts::SIGHUP,
+    ]) {
+        Ok(mut signals) => {
+            std::thread::spawn(move || {
+                for s in signals.forever() {
+                    if sig_tx.send(Event::Signal(s)).is_err() {
+                        return;
+                    }
+                }
+            });
+        }
+        Err(e) => {
+            eprintln!("leeward: cannot handle signals: {e}");
+            return code::CONFIG;
+        }
+    }
+    let (done_tx, done_rx) = channel();
+    let mut d = Daemon {
+        opts,
+        cfg,
+        rules,
+        feed_cfgs,
+        ledger,
+        asm: Assembly::default(),
+        watchers: Vec::new(),
+        metrics,
+        notifier: Notifier::from_env(),
+        done_tx,
+        done_rx,
+        running: HashMap::new(),
+        locks: HashMap::new(),
+        too_old: BTreeSet::new(),
+        last_status: String::new(),
+        last_published: None,
+    };
+    d.record(Record::Started {
+        version: env!("CARGO_PKG_VERSION").into(),
+        pid: std::process::id(),
+        at: Utc::now().timestamp(),
+    });
+    // Steps the ledger knows as waiting keep their first-seen time; their
+    // files come back through the watchers' first scan (the catch-up).
+    let waiting = d
+        .ledger
+        .state
+        .steps
+        .values()
+        .filter(|s| matches!(s.outcome, Outcome::Waiting))
+        .count();
+    d.start_watchers();
+    d.retention();
+    info!(
+        version = env!("CARGO_PKG_VERSION"),
+        feeds = %super::settings::describe_dirs(&d.rules),
+        out_dir = %d.cfg.service.out_dir.display(),
+        state_dir = %d.cfg.service.state_dir.display(),
+        workers = d.cfg.service.workers,
+        stale_temporaries_removed = removed,
+        steps_waiting_from_before = waiting,
+        "leeward serve started"
+    );
+    d.notifier.send("READY=1");
+    d.update_status();
+
+    let tick = Duration::from_millis(100);
+    let mut last_second = Instant::now();
+    let mut last_retention = Instant::now();
+    let mut last_ping = Instant::now();
+    let ping_every = d.notifier.watchdog.map(|w| w / 2);
+    let mut stopping: Option<Instant> = None;
+    if let Some(w) = ping_every {
+        d.notifier.send("WATCHDOG=1");
+        debug!(every_s = w.as_secs_f64(), "watchdog pings");
+    }
+    loop {
+        while let Ok(Event::Signal(s)) = sig_rx.try_recv() {
+            match s {
+                signal_hook::consts::SIGHUP => d.reload(),
+                _ => {
+                    if stopping.is_none() {
+                        info!(
+                            signal = s,
+                            running = d.running.len(),
+                            grace_s = d.cfg.service.shutdown_grace_s,
+                            "stopping: no new work; finishing the steps in hand"
+                        );
+                        d.notifier.send(&format!(
+                            "STOPPING=1\n{}",
+                            status_line(&format!(
+                                "stopping: finishing {} step(s) in hand",
+                                d.running.len()
+                            ))
+                        ));
+                        d.watchers.clear();
+                        stopping = Some(Instant::now());
+                    }
+                }
+            }
+        }
+        if stopping.is_none() {
+            let mut files = Vec::new();
+            for (_, w) in &d.watchers {
+                while let Some(p) = w.next(Duration::ZERO) {
+                    files.push(p);
+                }
+            }
+            for p in files {
+                d.ingest(&p, false);
+            }
+        }
+        while let Ok(done) = d.done_rx.try_recv() {
+            d.finished(done);
+        }
+        if last_second.elapsed() >= Duration::from_secs(1) {
+            last_second = Instant::now();
+            if stopping.is_none() {
+                d.requests();
+            }
+            d.timeouts();
+        }
+        if last_retention.elapsed() >= Duration::from_secs(600) {
+            last_retention = Instant::now();
+            d.retention();
+        }
+        match stopping {
+            None => {
+                d.timeouts();
+                d.dispatch();
+            }
+            Some(t0) => {
+                if d.running.is_empty() {
+                    info!("stopped cleanly");
+                    d.record(Record::Stopped {
+                        reason: "signal".into(),
+                        at: Utc::now().timestamp(),
+                    });
+                    return code::OK;
+                }
+                if t0.elapsed().as_secs_f64() >= d.cfg.service.shutdown_grace_s {
+                    let left: Vec<String> = d.running.keys().map(ToString::to_string).collect();
+                    warn!(steps = ?left, "grace time over: abandoning the steps in hand; they are made again at the next start");
+                    d.record(Record::Stopped {
+                        reason: format!("signal; abandoned {}", left.join(", ")),
+                        at: Utc::now().timestamp(),
+                    });
+                    // Workers cannot be interrupted safely; their hidden
+                    // temporaries are removed at the next start.
+                    std::process::exit(i32::from(code::OK));
+                }
+            }
+        }
+        if let Some(every) = ping_every {
+            if last_ping.elapsed() >= every {
+                last_ping = Instant::now();
+                d.notifier.send("WATCHDOG=1");
+            }
+        }
+        d.update_status();
+        if let Ok(done) = d.done_rx.recv_timeout(tick) {
+            d.finished(done);
+        }
+    }
+}
+
+/// Parse a cycle as an operator types it: `2026031400`, `20260314T0000Z`,
+/// `2026-03-14T00`, `2026-03-14T00:00Z`.
+pub fn parse_cycle(s: &str) -> Option<NaiveDateTime> {
+    let s = s.trim();
+    for (f, add) in [
+        ("%Y%m%d%H%M", ""),
+        ("%Y%m%d%H%M", "00"),
+        ("%Y%m%dT%H%MZ", ""),
+        ("%Y-%m-%dT%H:%MZ", ""),
+        ("%Y-%m-%dT%H:%M", ""),
+        ("%Y-%m-%dT%H:%M", ":00"),
+        ("%Y-%m-%dT%H:%M:%SZ", ""),
+    ] {
+        if let Ok(t) = NaiveDateTime::parse_from_str(&format!("{s}{add}"), f) {
+            return Some(t);
+        }
+    }
+    None
+}
+
+/// Drop a reprocess request for the service to pick up.
+pub fn request_reprocess(state_dir: &Path, req: &ReprocessRequest) -> std::io::Result<PathBuf> {
+    let dir = requests_dir(state_dir);
+    std::fs::create_dir_all(&dir)?;
+    let path = dir.join(format!(
+        "{}-{}.json",
+        Utc::now().format("%Y%m%dT%H%M%S%.6f"),
+        std::process::id()
+    ));
+    let text = serde_json::to_vec(req).map_err(std::io::Error::other)?;
+    publish::write_atomic(&path, &text)?;
+    Ok(path)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn cycles_as_operators_type_them() {
+        let want = chrono::NaiveDate::from_ymd_opt(2026, 3, 14)
+            .unwrap()
+            .and_hms_opt(6, 0, 0)
+            .unwrap();
+        for s in [
+            "2026031406",
+            "20260314T0600Z",
+            "2026-03-14T06",
+            "2026-03-14T06:00Z",
+        ] {
+            assert_eq!(parse_cycle(s), Some(want), "{s}");
+        }
+        assert_eq!(parse_cycle("yesterday"), None);
+    }
+}

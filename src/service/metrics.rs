@@ -1,0 +1,388 @@
+//! Health and metrics: counters kept by the daemon and served over HTTP on
+//! a local address in the Prometheus text exposition format.
+//!
+//! In: events from the daemon (a step published, failed, retried; a file
+//! quarantined; queue depths). Out: `GET /metrics` (text format 0.0.4) and
+//! `GET /health` (200 while the main loop turns, 503 when it has stalled).
+//! Source of the format: the Prometheus exposition format documentation
+//! (from memory: `# HELP`, `# TYPE`, one `name{labels} value` per line;
+//! histograms as cumulative `_bucket{le=...}`, `_sum`, `_count`).
+
+use std::collections::BTreeMap;
+use std::io::{Read, Write};
+use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use tracing::{info, warn};
+
+/// Upper bounds of the latency histogram, seconds.
+pub const LATENCY_BUCKETS: [f64; 9] = [5.0, 10.0, 20.0, 30.0, 60.0, 120.0, 300.0, 600.0, 1800.0];
+
+/// Counters of one feed.
+#[derive(Debug, Default, Clone)]
+pub struct FeedCounters {
+    /// Steps published complete.
+    pub published_complete: u64,
+    /// Steps published partial.
+    pub published_partial: u64,
+    /// Steps failed, by kind.
+    pub failed: BTreeMap<&'static str, u64>,
+    /// Retries scheduled after output or read failures.
+    pub retries: u64,
+    /// Files quarantined.
+    pub quarantined: u64,
+    /// Input files catalogued.
+    pub files_seen: u64,
+    /// Input files that came after their step was published.
+    pub late_files: u64,
+    /// Unix time of the last publication.
+    pub last_success: Option<f64>,
+    /// Latency histogram counts (per bucket, not cumulative), +Inf last.
+    pub latency_counts: [u64; LATENCY_BUCKETS.len() + 1],
+    /// Sum of latencies.
+    pub latency_sum: f64,
+    /// Last latency.
+    pub last_latency: Option<f64>,
+    /// Steps waiting for input, ready, running, waiting to retry.
+    pub queue: (usize, usize, usize, usize),
+}
+
+impl FeedCounters {
+    /// Count a publication with its latency.
+    pub fn published(&mut self, partial: bool, latency: f64, at: f64) {
+        if partial {
+            self.published_partial += 1;
+        } else {
+            self.published_complete += 1;
+        }
+        let k = LATENCY_BUCKETS
+            .iter()
+            .position(|b| latency <= *b)
+            .unwrap_or(LATENCY_BUCKETS.len());
+        self.latency_counts[k] += 1;
+        self.latency_sum += latency;
+        self.last_latency = Some(latency);
+        self.last_success = Some(at);
+    }
+}
+
+/// Everything the endpoint serves.
+#[derive(Debug, Default)]
+pub struct Metrics {
+    /// Per feed.
+    pub feeds: BTreeMap<String, FeedCounters>,
+    /// Ledger or state-directory write failures.
+    pub ledger_errors: u64,
+    /// Config reloads: (accepted, refused).
+    pub reloads: (u64, u64),
+    /// When the main loop last turned.
+    pub heartbeat: Option<Instant>,
+    /// Unix time of start.
+    pub started: f64,
+}
+
+fn esc(s: &str) -> String {
+    s.replace('\\', "\\\\")
+        .replace('"', "\\\"")
+        .replace('\n', "\\n")
+}
+
+impl Metrics {
+    /// Counters of a feed, created on first use.
+    pub fn feed(&mut self, name: &str) -> &mut FeedCounters {
+        self.feeds.entry(name.to_string()).or_default()
+    }
+
+    /// The Prometheus text exposition.
+    pub fn render(&self) -> String {
+        let mut o = String::new();
+        let mut family = |name: &str, kind: &str, help: &str, rows: Vec<(String, String)>| {
+            o.push_str(&format!("# HELP {name} {help}\n# TYPE {name} {kind}\n"));
+            for (labels, v) in rows {
+                o.push_str(&format!("{name}{labels} {v}\n"));
+            }
+        };
+        family(
+            "leeward_build_info",
+            "gauge",
+            "leeward version.",
+            vec![(
+                format!("{{version=\"{}\"}}", env!("CARGO_PKG_VERSION")),
+                "1".into(),
+            )],
+        );
+        family(
+            "leeward_start_time_seconds",
+            "gauge",
+            "Unix time the service started.",
+            vec![(String::new(), format!("{:.3}", self.started))],
+        );
+        let per = |f: &dyn Fn(&FeedCounters) -> Vec<(String, String)>| -> Vec<(String, String)> {
+            self.feeds
+                .iter()
+                .flat_map(|(n, c)| {
+                    f(c).into_iter()
+                        .map(move |(extra, v)| (format!("{{feed=\"{}\"{extra}}}", esc(n)), v))
+                })
+                .collect()
+        };
+        family(
+            "leeward_steps_published_total",
+            "counter",
+            "Steps published, complete or partial (made at the timeout with what was there).",
+            per(&|c| {
+                vec![
+                    (
+                        ",state=\"complete\"".into(),
+                        c.published_complete.to_string(),
+                    ),
+                    (",state=\"partial\"".into(), c.published_partial.to_string()),
+                ]
+            }),
+        );
+        family(
+            "leeward_steps_failed_total",
+            "counter",
+            "Steps that produced nothing, by reason: missing (incomplete at the timeout), input, output (retried), internal.",
+            per(&|c| {
+                ["missing", "input", "output", "internal"]
+                    .iter()
+                    .map(|k| {
+                        (
+                            format!(",reason=\"{k}\""),
+                            c.failed.get(k).copied().unwrap_or(0).to_string(),
+                        )
+                    })
+                    .collect()
+            }),
+        );
+        family(
+            "leeward_step_retries_total",
+            "counter",
+            "Retries scheduled after a step could not be written or its input read.",
+            per(&|c| vec![(String::new(), c.retries.to_string())]),
+        );
+        family(
+            "leeward_files_quarantined_total",
+            "counter",
+            "Input files set aside as corrupt or unsupported.",
+            per(&|c| vec![(String::new(), c.quarantined.to_string())]),
+        );
+        family(
+            "leeward_files_seen_total",
+            "counter",
+            "Input files found finished and catalogued.",
+            per(&|c| vec![(String::new(), c.files_seen.to_string())]),
+        );
+        family(
+            "leeward_late_files_total",
+            "counter",
+            "Input files that arrived after their step was published (not used; reprocess to use them).",
+            per(&|c| vec![(String::new(), c.late_files.to_string())]),
+        );
+        family(
+            "leeward_queue_steps",
+            "gauge",
+            "Steps by phase: waiting for input, ready, running, waiting to retry.",
+            per(&|c| {
+                vec![
+                    (",phase=\"waiting\"".into(), c.queue.0.to_string()),
+                    (",phase=\"ready\"".into(), c.queue.1.to_string()),
+                    (",phase=\"running\"".into(), c.queue.2.to_string()),
+                    (",phase=\"retry\"".into(), c.queue.3.to_string()),
+                ]
+            }),
+        );
+        family(
+            "leeward_last_success_timestamp_seconds",
+            "gauge",
+            "Unix time of the feed's last publication (0: none yet).",
+            per(&|c| {
+                vec![(
+                    String::new(),
+                    format!("{:.3}", c.last_success.unwrap_or(0.0)),
+                )]
+            }),
+        );
+        family(
+            "leeward_last_publish_latency_seconds",
+            "gauge",
+            "Seconds from the last input file of the last published step to its publication.",
+            per(&|c| {
+                vec![(
+                    String::new(),
+                    format!("{:.3}", c.last_latency.unwrap_or(0.0)),
+                )]
+            }),
+        );
+        let mut hist = String::new();
+        hist.push_str("# HELP leeward_publish_latency_seconds Seconds from a step's last input file to its publication.\n# TYPE leeward_publish_latency_seconds histogram\n");
+        for (n, c) in &self.feeds {
+            let mut cum = 0;
+            for (k, b) in LATENCY_BUCKETS.iter().enumerate() {
+                cum += c.latency_counts[k];
+                hist.push_str(&format!(
+                    "leeward_publish_latency_seconds_bucket{{feed=\"{}\",le=\"{b}\"}} {cum}\n",
+                    esc(n)
+                ));
+            }
+            cum += c.latency_counts[LATENCY_BUCKETS.len()];
+            hist.push_str(&format!(
+                "leeward_publish_latency_seconds_bucket{{feed=\"{0}\",le=\"+Inf\"}} {cum}\nleeward_publish_latency_seconds_sum{{feed=\"{0}\"}} {1:.3}\nleeward_publish_latency_seconds_count{{feed=\"{0}\"}} {cum}\n",
+                esc(n),
+                c.latency_sum
+            ));
+        }
+        o.push_str(&hist);
+        let mut family = |name: &str, kind: &str, help: &str, v: String| {
+            o.push_str(&format!(
+                "# HELP {name} {help}\n# TYPE {name} {kind}\n{name} {v}\n"
+            ));
+        };
+        family(
+            "leeward_ledger_errors_total",
+            "counter",
+            "Failures to write the ledger in the state directory.",
+            self.ledger_errors.to_string(),
+        );
+        family(
+            "leeward_config_reloads_total",
+            "counter",
+            "Configuration reloads accepted (SIGHUP).",
+            self.reloads.0.to_string(),
+        );
+        family(
+            "leeward_config_reloads_refused_total",
+            "counter",
+            "Configuration reloads refused because the new file was invalid.",
+            self.reloads.1.to_string(),
+        );
+        o
+    }
+}
+
+/// How long the main loop may be silent before /health says 503.
+pub const STALL: Duration = Duration::from_secs(30);
+
+fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
+    let _ = s.set_read_timeout(Some(Duration::from_secs(2)));
+    let _ = s.set_write_timeout(Some(Duration::from_secs(2)));
+    let mut buf = [0u8; 2048];
+    let mut n = 0;
+    while n < buf.len() {
+        match s.read(&mut buf[n..]) {
+            Ok(0) => break,
+            Ok(k) => {
+                n += k;
+                if buf[..n].windows(4).any(|w| w == b"\r\n\r\n")
+                    || buf[..n].windows(2).any(|w| w == b"\n\n")
+                {
+                    break;
+                }
+            }
+            Err(_) => break,
+        }
+    }
+    let req = String::from_utf8_lossy(&buf[..n]);
+    let mut words = req.split_whitespace();
+    let (method, target) = (words.next().unwrap_or(""), words.next().unwrap_or(""));
+    let m = metrics
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner);
+    let (code, ctype, body) = match (method, target) {
+        ("GET", "/metrics") => (
+            "200 OK",
+            "text/plain; version=0.0.4; charset=utf-8",
+            m.render(),
+        ),
+        ("GET", "/health") | ("GET", "/healthz") => {
+            let alive = m.heartbeat.is_some_and(|h| h.elapsed() < STALL);
+            if alive {
+                ("200 OK", "text/plain; charset=utf-8", "ok\n".to_string())
+            } else {
+                (
+                    "503 Service Unavailable",
+                    "text/plain; charset=utf-8",
+                    "stalled: the main loop has not turned for 30 s\n".to_string(),
+                )
+            }
+        }
+        ("GET", _) => (
+            "404 Not Found",
+            "text/plain; charset=utf-8",
+            "try /metrics or /health\n".into(),
+        ),
+        _ => (
+            "405 Method Not Allowed",
+            "text/plain; charset=utf-8",
+            "GET only\n".into(),
+        ),
+    };
+    drop(m);
+    let head = format!(
+        "HTTP/1.1 {code}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n",
+        body.len()
+    );
+    let _ = s.write_all(head.as_bytes());
+    let _ = s.write_all(body.as_bytes());
+}
+
+/// Serve `/metrics` and `/health` on `addr` in a thread of its own. Returns the bound address.
+pub fn serve(addr: &str, metrics: Arc<Mutex<Metrics>>) -> std::io::Result<SocketAddr> {
+    let listener = TcpListener::bind(addr)?;
+    let bound = listener.local_addr()?;
+    if !bound.ip().is_loopback() {
+        warn!(address = %bound, "metrics endpoint listens beyond localhost");
+    }
+    info!(address = %bound, "metrics and health endpoint listening");
+    std::thread::spawn(move || {
+        for s in listener.incoming() {
+            match s {
+                Ok(s) => respond(s, &metrics),
+                Err(e) => warn!(error = %e, "metrics endpoint: connection refused"),
+            }
+        }
+    });
+    Ok(bound)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn exposition_has_the_families_and_a_cumulative_histogram() {
+        let mut m = Metrics::default();
+        m.feed("m").published(false, 3.0, 100.0);
+        m.feed("m").published(true, 45.0, 200.0);
+        *m.feed("m").failed.entry("output").or_default() += 1;
+        let t = m.render();
+        assert!(
+            t.contains("leeward_steps_published_total{feed=\"m\",state=\"complete\"} 1"),
+            "{t}"
+        );
+        assert!(t.contains("leeward_steps_published_total{feed=\"m\",state=\"partial\"} 1"));
+        assert!(t.contains("leeward_steps_failed_total{feed=\"m\",reason=\"output\"} 1"));
+        assert!(t.contains("leeward_publish_latency_seconds_bucket{feed=\"m\",le=\"5\"} 1"));
+        assert!(t.contains("leeward_publish_latency_seconds_bucket{feed=\"m\",le=\"60\"} 2"));
+        assert!(t.contains("leeward_publish_latency_seconds_count{feed=\"m\"} 2"));
+        assert!(t.contains("leeward_last_success_timestamp_seconds{feed=\"m\"} 200.000"));
+        // Every sample line belongs to a declared family.
+        let declared: Vec<&str> = t
+            .lines()
+            .filter_map(|l| l.strip_prefix("# TYPE "))
+            .filter_map(|l| l.split_whitespace().next())
+            .collect();
+        for l in t.lines().filter(|l| !l.starts_with('#')) {
+            let name = l.split(['{', ' ']).next().unwrap();
+            assert!(
+                declared.iter().any(|d| name == *d
+                    || name
+                        .strip_prefix(d)
+                        .is_some_and(|s| ["_bucket", "_sum", "_count"].contains(&s))),
+                "{name}"
+            );
+        }
+    }
+}

@@ -1,0 +1,410 @@
+//! Publishing: the output tree, the per-step manifest, clean-up of stale
+//! temporaries, retention, and the quarantine of bad input files.
+//!
+//! In: a step's report and product file. Out: files in the tree
+//! `<out_dir>/<feed>/<cycle YYYYMMDDTHHMMZ>/`: the product `<name>.nc` and,
+//! written last, its manifest `<name>.json`, which downstream systems
+//! trigger on. Every file is written under a hidden temporary name, fsynced
+//! and renamed into place, so a reader never sees a partial file.
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use chrono::{NaiveDateTime, TimeDelta, Utc};
+use serde::{Deserialize, Serialize};
+use tracing::{info, warn};
+
+use crate::ingest::bytes::fnv1a_hex;
+use crate::output::store::cycle_dir_name;
+use crate::pipeline::StepReport;
+
+/// The directory of one cycle of one feed.
+pub fn cycle_dir(out_dir: &Path, feed: &str, reference_time: NaiveDateTime) -> PathBuf {
+    out_dir.join(feed).join(cycle_dir_name(reference_time))
+}
+
+/// The manifest's path for a product file.
+pub fn manifest_path(product: &Path) -> PathBuf {
+    product.with_extension("json")
+}
+
+/// One input file in a manifest.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ManifestInput {
+    /// Its path.
+    pub file: String,
+    /// Its size, bytes.
+    pub bytes: u64,
+    /// Its checksum (FNV-1a 64, hex).
+    pub checksum: String,
+}
+
+/// Timings of a step, seconds.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct Timings {
+    /// Decoding the fields.
+    pub decode: f64,
+    /// Computing the diagnostics.
+    pub diagnostics: f64,
+    /// Writing the file.
+    pub write: f64,
+    /// Changes in time and PV budget.
+    pub changes: f64,
+    /// The whole step in the worker.
+    pub total: f64,
+    /// From the last input file found finished to publication.
+    pub latency: f64,
+}
+
+/// The per-step manifest (JSON).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Manifest {
+    /// Format version of this manifest.
+    pub manifest_version: u32,
+    /// The feed.
+    pub feed: String,
+    /// Cycle (reference time), ISO 8601.
+    pub cycle: String,
+    /// Lead time, hours.
+    pub lead_hours: i64,
+    /// Valid time, ISO 8601.
+    pub valid_time: String,
+    /// Ensemble member, if any.
+    pub member: Option<u8>,
+    /// `complete`, or `partial` (made at the timeout with what was there).
+    pub state: String,
+    /// The product file, name only (it sits beside the manifest).
+    pub product: String,
+    /// Its size, bytes.
+    pub product_bytes: u64,
+    /// Its checksum (FNV-1a 64, hex).
+    pub product_checksum: String,
+    /// Variables in the product file.
+    pub variables: Vec<String>,
+    /// The grid.
+    pub grid: String,
+    /// Inputs used.
+    pub inputs: Vec<ManifestInput>,
+    /// What was looked for and not found.
+    pub missing: Vec<String>,
+    /// Problems met with the input.
+    pub issues: Vec<String>,
+    /// leeward's version.
+    pub software: String,
+    /// Timings.
+    pub timings_s: Timings,
+    /// When first published, ISO 8601.
+    pub published_at: String,
+    /// 1 at publication, +1 each time a later step or cycle adds changes to the file.
+    pub revision: u32,
+    /// When last revised, ISO 8601.
+    pub revised_at: String,
+}
+
+fn now_iso() -> String {
+    Utc::now().format("%Y-%m-%dT%H:%M:%S%.3fZ").to_string()
+}
+
+/// Write `bytes` to `path` atomically: hidden temporary beside it, fsync, rename, fsync of the directory.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    let dir = path.parent().unwrap_or(Path::new("."));
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let tmp = dir.join(format!(".{name}.manifest-{}", std::process::id()));
+    let r = (|| {
+        let mut f = std::fs::File::create(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+        std::fs::rename(&tmp, path)?;
+        std::fs::File::open(dir)?.sync_all()
+    })();
+    if r.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    r
+}
+
+fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
+    let b = std::fs::read(path)?;
+    Ok((b.len() as u64, fnv1a_hex(&b)))
+}
+
+fn variables_of(path: &Path) -> Vec<String> {
+    netcdf::open(path)
+        .map(|f| f.variables().map(|v| v.name()).collect())
+        .unwrap_or_default()
+}
+
+/// What the service knows of a step beyond the pipeline's report.
+pub struct StepFacts<'a> {
+    /// The feed.
+    pub feed: &'a str,
+    /// Cycle.
+    pub reference_time: NaiveDateTime,
+    /// Valid time.
+    pub valid_time: NaiveDateTime,
+    /// Member.
+    pub member: Option<u8>,
+    /// Made at the timeout.
+    pub partial: bool,
+    /// Inputs.
+    pub inputs: Vec<ManifestInput>,
+    /// Unix time of the last input.
+    pub last_input: f64,
+}
+
+/// Write the manifest of a freshly published product.
+pub fn write_manifest(
+    product: &Path,
+    rep: &StepReport,
+    facts: &StepFacts<'_>,
+) -> std::io::Result<PathBuf> {
+    let (bytes, checksum) = file_checksum(product)?;
+    let now = now_iso();
+    let latency = (Utc::now().timestamp_millis() as f64 / 1000.0 - facts.last_input).max(0.0);
+    let m = Manifest {
+        manifest_version: 1,
+        feed: facts.feed.to_string(),
+        cycle: facts
+            .reference_time
+            .format("%Y-%m-%dT%H:%M:%SZ")
+            .to_string(),
+        lead_hours: (facts.valid_time - facts.reference_time).num_hours(),
+        valid_time: facts.valid_time.format("%Y-%m-%dT%H:%M:%SZ").to_string(),
+        member: facts.member,
+        state: if facts.partial { "partial" } else { "complete" }.into(),
+        product: product
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default(),
+        product_bytes: bytes,
+        product_checksum: checksum,
+        variables: variables_of(product),
+        grid: rep.grid.clone(),
+        inputs: facts.inputs.clone(),
+        missing: rep.missing.clone(),
+        issues: rep.issues.iter().map(ToString::to_string).collect(),
+        software: format!("leeward {}", env!("CARGO_PKG_VERSION")),
+        timings_s: Timings {
+            decode: rep.decode_seconds,
+            diagnostics: rep.compute_seconds,
+            write: rep.write_seconds,
+            changes: rep.changes_seconds,
+            total: rep.seconds,
+            latency,
+        },
+        published_at: now.clone(),
+        revision: 1,
+        revised_at: now,
+    };
+    let path = manifest_path(product);
+    let text = serde_json::to_vec_pretty(&m).map_err(std::io::Error::other)?;
+    write_atomic(&path, &text)?;
+    Ok(path)
+}
+
+/// Bring the manifest of an earlier product up to date after a later step
+/// added changes to it. A product without a manifest yet is left alone: its
+/// own step writes the manifest, from the file as it is then.
+pub fn revise_manifest(product: &Path) -> std::io::Result<()> {
+    let path = manifest_path(product);
+    let text = match std::fs::read(&path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()),
+        Err(e) => return Err(e),
+    };
+    let mut m: Manifest = serde_json::from_slice(&text).map_err(std::io::Error::other)?;
+    let (bytes, checksum) = file_checksum(product)?;
+    m.product_bytes = bytes;
+    m.product_checksum = checksum;
+    m.variables = variables_of(product);
+    m.revision += 1;
+    m.revised_at = now_iso();
+    let text = serde_json::to_vec_pretty(&m).map_err(std::io::Error::other)?;
+    write_atomic(&path, &text)
+}
+
+/// Read a manifest.
+pub fn read_manifest(path: &Path) -> Option<Manifest> {
+    serde_json::from_slice(&std::fs::read(path).ok()?).ok()
+}
+
+/// True for the hidden temporaries leeward writes (product, update, manifest).
+pub fn is_temporary(name: &str) -> bool {
+    name.starts_with('.')
+        && (name.contains(".partial-") || name.contains(".update-") || name.contains(".manifest-"))
+}
+
+/// Remove temporaries left by a crash anywhere in the output tree
+/// (`<out>/<feed>/<cycle>/`). Returns how many were removed.
+pub fn clean_temporaries(out_dir: &Path) -> usize {
+    let mut n = 0;
+    let mut dirs = vec![(out_dir.to_path_buf(), 0)];
+    while let Some((d, depth)) = dirs.pop() {
+        let Ok(rd) = std::fs::read_dir(&d) else {
+            continue;
+        };
+        for e in rd.flatten() {
+            let p = e.path();
+            let name = e.file_name().to_string_lossy().into_owned();
+            let Ok(ft) = e.file_type() else { continue };
+            if ft.is_dir() && depth < 2 && !name.starts_with('.') {
+                dirs.push((p, depth + 1));
+            } else if ft.is_file() && is_temporary(&name) {
+                match std::fs::remove_file(&p) {
+                    Ok(()) => {
+                        info!(file = %p.display(), "stale temporary removed");
+                        n += 1;
+                    }
+                    Err(e) => {
+                        warn!(file = %p.display(), error = %e, "cannot remove a stale temporary")
+                    }
+                }
+            }
+        }
+    }
+    n
+}
+
+/// Delete the cycle directories of `feed_dir` whose cycle is older than `days`
+/// days before `now`. Returns the directories removed.
+pub fn apply_retention(feed_dir: &Path, days: u32, now: NaiveDateTime) -> Vec<PathBuf> {
+    let mut removed = Vec::new();
+    if days == 0 {
+        return removed;
+    }
+    let Some(limit) = TimeDelta::try_days(i64::from(days)).map(|d| now - d) else {
+        return removed;
+    };
+    let Ok(rd) = std::fs::read_dir(feed_dir) else {
+        return removed;
+    };
+    for e in rd.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        let Ok(t) = NaiveDateTime::parse_from_str(&name, "%Y%m%dT%H%MZ") else {
+            continue;
+        };
+        if t < limit && e.path().is_dir() {
+            // Manifests first, so that nothing downstream is pointed at a file being deleted.
+            if let Ok(files) = std::fs::read_dir(e.path()) {
+                for f in files.flatten() {
+                    if f.path().extension().is_some_and(|x| x == "json") {
+                        let _ = std::fs::remove_file(f.path());
+                    }
+                }
+            }
+            match std::fs::remove_dir_all(e.path()) {
+                Ok(()) => {
+                    info!(dir = %e.path().display(), cycle = %name, days, "output cycle removed by retention");
+                    removed.push(e.path());
+                }
+                Err(err) => {
+                    warn!(dir = %e.path().display(), error = %err, "cannot remove an old output cycle")
+                }
+            }
+        }
+    }
+    removed
+}
+
+/// Move a bad input file into `qdir/<feed>/` with a note of the reason beside
+/// it. Returns where it went.
+pub fn quarantine(path: &Path, qdir: &Path, feed: &str, reason: &str) -> std::io::Result<PathBuf> {
+    let dir = qdir.join(feed);
+    std::fs::create_dir_all(&dir)?;
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "unnamed".into());
+    let mut dest = dir.join(&name);
+    let mut k = 1;
+    while dest.exists() {
+        dest = dir.join(format!("{name}.{k}"));
+        k += 1;
+    }
+    if std::fs::rename(path, &dest).is_err() {
+        // Another file system: copy, then remove the original.
+        std::fs::copy(path, &dest)?;
+        std::fs::remove_file(path)?;
+    }
+    let note = format!(
+        "{}\nfrom: {}\nfeed: {feed}\nat: {}\nreason: {reason}\n",
+        dest.display(),
+        path.display(),
+        now_iso()
+    );
+    let mut note_path = dest.clone().into_os_string();
+    note_path.push(".reason.txt");
+    write_atomic(Path::new(&note_path), note.as_bytes())?;
+    Ok(dest)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn dir(name: &str) -> PathBuf {
+        let d = std::env::temp_dir().join(format!("leeward-publish-{name}-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&d);
+        std::fs::create_dir_all(&d).unwrap();
+        d
+    }
+
+    #[test]
+    fn temporaries_are_cleaned_and_nothing_else() {
+        let d = dir("clean");
+        let c = d.join("m").join("20260314T0000Z");
+        std::fs::create_dir_all(&c).unwrap();
+        for n in [
+            ".a.nc.partial-12",
+            ".a.nc.update-3",
+            ".a.json.manifest-9",
+            "a.nc",
+            ".keep",
+        ] {
+            std::fs::write(c.join(n), b"x").unwrap();
+        }
+        assert_eq!(clean_temporaries(&d), 3);
+        let left: Vec<String> = std::fs::read_dir(&c)
+            .unwrap()
+            .flatten()
+            .map(|e| e.file_name().to_string_lossy().into_owned())
+            .collect();
+        assert_eq!(left.len(), 2, "{left:?}");
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn retention_removes_old_cycles_only() {
+        let d = dir("retention");
+        for c in ["20260301T0000Z", "20260313T1200Z", "notacycle"] {
+            std::fs::create_dir_all(d.join(c)).unwrap();
+            std::fs::write(d.join(c).join("x.json"), b"{}").unwrap();
+        }
+        let now = NaiveDateTime::parse_from_str("20260314T0000Z", "%Y%m%dT%H%MZ").unwrap();
+        let removed = apply_retention(&d, 2, now);
+        assert_eq!(removed, vec![d.join("20260301T0000Z")]);
+        assert!(d.join("20260313T1200Z").exists() && d.join("notacycle").exists());
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn quarantine_moves_and_notes_the_reason() {
+        let d = dir("quarantine");
+        let f = d.join("bad.grib2");
+        std::fs::write(&f, b"junk").unwrap();
+        let q = quarantine(&f, &d.join("q"), "m", "no GRIB2 message").unwrap();
+        assert!(!f.exists() && q.exists());
+        let note = std::fs::read_to_string(format!("{}.reason.txt", q.display())).unwrap();
+        assert!(note.contains("no GRIB2 message"), "{note}");
+        std::fs::write(&f, b"junk").unwrap();
+        let q2 = quarantine(&f, &d.join("q"), "m", "again").unwrap();
+        assert_ne!(
+            q, q2,
+            "a second file of the same name does not overwrite the first"
+        );
+        let _ = std::fs::remove_dir_all(&d);
+    }
+}

@@ -1,0 +1,537 @@
+//! The service's part of the configuration file: where it watches, writes
+//! and keeps its state, and the model feeds it serves.
+//!
+//! In: the `[service]` table and the `[[feed]]` tables of the TOML file.
+//! Out: validated settings; every problem named by its key. A feed says
+//! which files are its own (a file-name pattern with named parts, or every
+//! file of its directory, whose GRIB2 contents then say cycle and step), and
+//! when a step is complete (the fields the products need, a file count, or
+//! a marker file).
+
+use std::path::{Path, PathBuf};
+
+use chrono::NaiveDateTime;
+use regex::Regex;
+use serde::{Deserialize, Serialize};
+
+use crate::config::Products;
+use crate::ingest::params::Quantity;
+
+/// The `[service]` table.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Service {
+    /// Base of the feeds' incoming directories (a feed's relative `incoming` is under it).
+    pub watch_dir: PathBuf,
+    /// Root of the output tree: `<out_dir>/<feed>/<cycle>/`.
+    pub out_dir: PathBuf,
+    /// Where the ledger, requests and quarantine live.
+    pub state_dir: PathBuf,
+    /// `move` bad input files to the quarantine directory, or only `record` them.
+    pub quarantine: QuarantineMode,
+    /// Quarantine directory; empty: `<state_dir>/quarantine`.
+    pub quarantine_dir: PathBuf,
+    /// Steps processed at the same time.
+    pub workers: u32,
+    /// Which ready step goes first: `newest-first` (newest cycle, then lowest
+    /// lead) or `oldest-first` (in cycle order; the newest cycle still keeps a
+    /// worker, so an old backlog never starves it).
+    pub order: Order,
+    /// Seconds between scans of the incoming directories (safety net for
+    /// missed events, and the only way on network file systems).
+    pub scan_interval_s: f64,
+    /// Seconds a file's size and mtime must stay unchanged for it to count
+    /// when no close or rename event is seen.
+    pub settle_s: f64,
+    /// Seconds after a step's first input after which it is made with what is
+    /// there (partial) or reported missing.
+    pub step_timeout_s: f64,
+    /// Delete output cycles older than this many days; 0 keeps everything.
+    pub retention_days: u32,
+    /// Address of the health and metrics endpoint; empty: none.
+    pub metrics_listen: String,
+    /// Seconds to finish the steps in hand after SIGTERM before abandoning them.
+    pub shutdown_grace_s: f64,
+    /// First wait before retrying a step whose products could not be written, seconds.
+    pub retry_first_s: f64,
+    /// Longest wait between retries, seconds (the wait doubles up to it).
+    pub retry_max_s: f64,
+    /// Cycles older than this many hours are not caught up at start (0: all are).
+    pub catch_up_hours: u32,
+}
+
+impl Default for Service {
+    fn default() -> Self {
+        Service {
+            watch_dir: PathBuf::from("/srv/leeward/incoming"),
+            out_dir: PathBuf::from("/srv/leeward/products"),
+            state_dir: PathBuf::from("/var/lib/leeward"),
+            quarantine: QuarantineMode::Move,
+            quarantine_dir: PathBuf::new(),
+            workers: 2,
+            order: Order::NewestFirst,
+            scan_interval_s: 30.0,
+            settle_s: 10.0,
+            step_timeout_s: 2700.0,
+            retention_days: 0,
+            metrics_listen: "127.0.0.1:9478".into(),
+            shutdown_grace_s: 60.0,
+            retry_first_s: 5.0,
+            retry_max_s: 300.0,
+            catch_up_hours: 72,
+        }
+    }
+}
+
+impl Service {
+    /// The quarantine directory in effect.
+    pub fn quarantine_dir(&self) -> PathBuf {
+        if self.quarantine_dir.as_os_str().is_empty() {
+            self.state_dir.join("quarantine")
+        } else {
+            self.quarantine_dir.clone()
+        }
+    }
+}
+
+/// What to do with a bad input file.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum QuarantineMode {
+    /// Move it to the quarantine directory with a note of the reason.
+    Move,
+    /// Leave it, and record it in the ledger and the log.
+    Record,
+}
+
+/// Order of ready steps.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Order {
+    /// Newest cycle first, lowest lead first within it.
+    NewestFirst,
+    /// Oldest cycle first; the newest cycle keeps a worker.
+    OldestFirst,
+}
+
+/// When a step counts as complete.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Completeness {
+    /// Every quantity the products need on every level of `levels_hpa`.
+    Fields,
+    /// `files_per_step` files hold fields of the step.
+    Files,
+    /// A file matching `marker_pattern` for the cycle (and step) has arrived.
+    Marker,
+}
+
+/// One `[[feed]]` table: a model's files.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Feed {
+    /// The feed's name: letters, digits, `-` and `_`; names its output directory.
+    pub name: String,
+    /// Its incoming directory; relative paths are under `service.watch_dir`,
+    /// empty is `service.watch_dir` itself.
+    pub incoming: PathBuf,
+    /// Regular expression a file name must match to belong to the feed, with
+    /// optional named parts `cycle` (read with `cycle_format`), or `date`
+    /// (`%Y%m%d`) and `hour`, and `step` (lead hours). Empty: every file.
+    pub file_pattern: String,
+    /// chrono format of the `cycle` part.
+    pub cycle_format: String,
+    /// When a step is complete.
+    pub complete: Completeness,
+    /// Isobaric levels, hPa, a complete step has (for `complete = "fields"`).
+    pub levels_hpa: Vec<f64>,
+    /// Quantities a complete step has on those levels; empty: those the
+    /// products need. Names: t, u, v, gh, q, r.
+    pub require: Vec<String>,
+    /// Files per step (for `complete = "files"`).
+    pub files_per_step: u32,
+    /// Regular expression of the marker file name, with a `cycle` (or `date`
+    /// and `hour`) part and optionally `step` (for `complete = "marker"`).
+    pub marker_pattern: String,
+    /// Products for this feed; absent: the file's `[products]`.
+    pub products: Option<Products>,
+}
+
+impl Default for Feed {
+    fn default() -> Self {
+        Feed {
+            name: String::new(),
+            incoming: PathBuf::new(),
+            file_pattern: String::new(),
+            cycle_format: "%Y%m%d%H".into(),
+            complete: Completeness::Fields,
+            levels_hpa: Vec::new(),
+            require: Vec::new(),
+            files_per_step: 1,
+            marker_pattern: String::new(),
+            products: None,
+        }
+    }
+}
+
+/// What a file name says.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct NameParts {
+    /// The cycle, if the pattern has it.
+    pub cycle: Option<NaiveDateTime>,
+    /// The lead, hours, if the pattern has it.
+    pub step: Option<i64>,
+}
+
+fn compile(pattern: &str) -> Result<Regex, String> {
+    Regex::new(pattern).map_err(|e| e.to_string())
+}
+
+fn parts(re: &Regex, name: &str, cycle_format: &str) -> Option<NameParts> {
+    let c = re.captures(name)?;
+    let cycle = if let Some(m) = c.name("cycle") {
+        let s = m.as_str();
+        // Formats without minutes parse as a date and hour: add them.
+        NaiveDateTime::parse_from_str(s, cycle_format)
+            .or_else(|_| {
+                NaiveDateTime::parse_from_str(&format!("{s}00"), &format!("{cycle_format}%M"))
+            })
+            .ok()
+    } else if let (Some(d), Some(h)) = (c.name("date"), c.name("hour")) {
+        NaiveDateTime::parse_from_str(&format!("{}{:0>2}00", d.as_str(), h.as_str()), "%Y%m%d%H%M")
+            .ok()
+    } else {
+        None
+    };
+    let step = c.name("step").and_then(|m| m.as_str().parse().ok());
+    Some(NameParts { cycle, step })
+}
+
+/// A feed ready for use: patterns compiled, directory resolved.
+#[derive(Debug, Clone)]
+pub struct FeedRule {
+    /// The settings.
+    pub feed: Feed,
+    /// The incoming directory.
+    pub dir: PathBuf,
+    file_re: Option<Regex>,
+    marker_re: Option<Regex>,
+    /// Quantities a complete step needs (for `complete = "fields"`).
+    pub required: Vec<Quantity>,
+}
+
+/// What a file in a feed's directory is.
+#[derive(Debug, Clone, PartialEq)]
+pub enum FileRole {
+    /// Input data, with what its name says.
+    Data(NameParts),
+    /// A marker saying a cycle (or step) is complete.
+    Marker(NameParts),
+}
+
+impl FeedRule {
+    /// Resolve a validated feed against the service settings.
+    pub fn new(feed: &Feed, service: &Service, products: &Products) -> Result<FeedRule, String> {
+        let file_re = (!feed.file_pattern.is_empty())
+            .then(|| compile(&feed.file_pattern))
+            .transpose()?;
+        let marker_re = (!feed.marker_pattern.is_empty())
+            .then(|| compile(&feed.marker_pattern))
+            .transpose()?;
+        let dir = if feed.incoming.as_os_str().is_empty() {
+            service.watch_dir.clone()
+        } else if feed.incoming.is_absolute() {
+            feed.incoming.clone()
+        } else {
+            service.watch_dir.join(&feed.incoming)
+        };
+        let products = feed.products.as_ref().unwrap_or(products);
+        let required = if feed.require.is_empty() {
+            needed_quantities(products)
+        } else {
+            feed.require
+                .iter()
+                .map(|n| quantity_by_name(n).ok_or_else(|| format!("unknown quantity {n}")))
+                .collect::<Result<_, _>>()?
+        };
+        Ok(FeedRule {
+            feed: feed.clone(),
+            dir,
+            file_re,
+            marker_re,
+            required,
+        })
+    }
+
+    /// What the file `name` in this feed's directory is, or `None` if it is not the feed's.
+    pub fn role(&self, name: &str) -> Option<FileRole> {
+        if let Some(m) = &self.marker_re {
+            if let Some(p) = parts(m, name, &self.feed.cycle_format) {
+                return Some(FileRole::Marker(p));
+            }
+        }
+        match &self.file_re {
+            Some(re) => parts(re, name, &self.feed.cycle_format).map(FileRole::Data),
+            None => Some(FileRole::Data(NameParts::default())),
+        }
+    }
+
+    /// The isobaric levels a complete step has, Pa.
+    pub fn levels_pa(&self) -> Vec<f64> {
+        self.feed.levels_hpa.iter().map(|p| p * 100.0).collect()
+    }
+}
+
+/// The quantities on isobaric levels the switched-on products need.
+pub fn needed_quantities(p: &Products) -> Vec<Quantity> {
+    let mut q = Vec::new();
+    let winds = p.vorticity || p.isobaric_pv || p.isentropic || p.tropopause || p.layer_pv;
+    let temperature = p.stability || p.isobaric_pv || p.isentropic || p.tropopause || p.layer_pv;
+    if temperature {
+        q.push(Quantity::Temperature);
+    }
+    if winds {
+        q.push(Quantity::WindU);
+        q.push(Quantity::WindV);
+    }
+    if p.thickness || p.isentropic || p.tropopause {
+        q.push(Quantity::GeopotentialHeight);
+    }
+    q
+}
+
+/// Quantity by the short names of the `require` key.
+pub fn quantity_by_name(n: &str) -> Option<Quantity> {
+    Some(match n {
+        "t" => Quantity::Temperature,
+        "u" => Quantity::WindU,
+        "v" => Quantity::WindV,
+        "gh" => Quantity::GeopotentialHeight,
+        "q" => Quantity::SpecificHumidity,
+        "r" => Quantity::RelativeHumidity,
+        _ => return None,
+    })
+}
+
+fn has_cycle_part(pattern: &str) -> bool {
+    compile(pattern).is_ok_and(|re| {
+        let names: Vec<&str> = re.capture_names().flatten().collect();
+        names.contains(&"cycle") || (names.contains(&"date") && names.contains(&"hour"))
+    })
+}
+
+/// Every problem of the service settings and feeds, as "key: reason".
+pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
+    let mut p = Vec::new();
+    let s = service;
+    if !(1..=64).contains(&s.workers) {
+        p.push(format!("service.workers: {} is outside 1 to 64", s.workers));
+    }
+    for (key, v, lo, hi) in [
+        ("scan_interval_s", s.scan_interval_s, 0.1, 86400.0),
+        ("settle_s", s.settle_s, 0.0, 3600.0),
+        ("step_timeout_s", s.step_timeout_s, 1.0, 7.0 * 86400.0),
+        ("shutdown_grace_s", s.shutdown_grace_s, 0.0, 3600.0),
+        ("retry_first_s", s.retry_first_s, 0.1, 3600.0),
+        ("retry_max_s", s.retry_max_s, 0.1, 86400.0),
+    ] {
+        if !(lo..=hi).contains(&v) {
+            p.push(format!("service.{key}: {v} is outside {lo} to {hi}"));
+        }
+    }
+    if s.retry_max_s < s.retry_first_s {
+        p.push("service.retry_max_s: smaller than service.retry_first_s".into());
+    }
+    if !s.metrics_listen.is_empty() && s.metrics_listen.parse::<std::net::SocketAddr>().is_err() {
+        p.push(format!(
+            "service.metrics_listen: {:?} is not an address and port such as 127.0.0.1:9478",
+            s.metrics_listen
+        ));
+    }
+    for (key, path) in [
+        ("watch_dir", &s.watch_dir),
+        ("out_dir", &s.out_dir),
+        ("state_dir", &s.state_dir),
+    ] {
+        if path.as_os_str().is_empty() {
+            p.push(format!("service.{key}: empty"));
+        }
+    }
+    let mut names: Vec<&str> = Vec::new();
+    for (k, f) in feeds.iter().enumerate() {
+        let key = |k2: &str| format!("feed[{k}].{k2}");
+        if f.name.is_empty()
+            || !f
+                .name
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+        {
+            p.push(format!(
+                "{}: {:?} must be letters, digits, - and _ only",
+                key("name"),
+                f.name
+            ));
+        }
+        if names.contains(&f.name.as_str()) {
+            p.push(format!(
+                "{}: {:?} is used by two feeds",
+                key("name"),
+                f.name
+            ));
+        }
+        names.push(&f.name);
+        for (k2, pat) in [
+            ("file_pattern", &f.file_pattern),
+            ("marker_pattern", &f.marker_pattern),
+        ] {
+            if let Err(e) = (!pat.is_empty()).then(|| compile(pat)).transpose() {
+                p.push(format!("{}: not a regular expression: {e}", key(k2)));
+            }
+        }
+        match f.complete {
+            Completeness::Fields => {
+                if f.levels_hpa.is_empty() {
+                    p.push(format!(
+                        "{}: needed when complete = \"fields\" (the isobaric levels a complete step has)",
+                        key("levels_hpa")
+                    ));
+                }
+                if let Some(l) = f.levels_hpa.iter().find(|l| !(**l > 0.0 && **l <= 1100.0)) {
+                    p.push(format!(
+                        "{}: {l} hPa is outside 0 to 1100",
+                        key("levels_hpa")
+                    ));
+                }
+            }
+            Completeness::Files => {
+                if f.files_per_step == 0 {
+                    p.push(format!("{}: must be at least 1", key("files_per_step")));
+                }
+            }
+            Completeness::Marker => {
+                if f.marker_pattern.is_empty() {
+                    p.push(format!(
+                        "{}: needed when complete = \"marker\"",
+                        key("marker_pattern")
+                    ));
+                } else if !has_cycle_part(&f.marker_pattern) {
+                    p.push(format!(
+                        "{}: needs a named part (?P<cycle>...), or (?P<date>...) and (?P<hour>...)",
+                        key("marker_pattern")
+                    ));
+                }
+            }
+        }
+        if let Some(n) = f.require.iter().find(|n| quantity_by_name(n).is_none()) {
+            p.push(format!(
+                "{}: unknown quantity {n:?} (known: t, u, v, gh, q, r)",
+                key("require")
+            ));
+        }
+        let bad_format = f.cycle_format.is_empty()
+            || chrono::format::StrftimeItems::new(&f.cycle_format)
+                .any(|i| matches!(i, chrono::format::Item::Error));
+        if bad_format {
+            p.push(format!("{}: not a usable time format", key("cycle_format")));
+        }
+    }
+    p
+}
+
+/// The directories a feed list watches, for messages.
+pub fn describe_dirs(rules: &[FeedRule]) -> String {
+    rules
+        .iter()
+        .map(|r| format!("{} <- {}", r.feed.name, r.dir.display()))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+/// True if `p` is the directory `dir` or directly in it.
+pub fn in_dir(p: &Path, dir: &Path) -> bool {
+    p.parent().is_some_and(|d| d == dir)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn rule(toml_feed: &str) -> FeedRule {
+        let f: Feed = toml::from_str(toml_feed).unwrap();
+        FeedRule::new(&f, &Service::default(), &Products::default()).unwrap()
+    }
+
+    #[test]
+    fn names_say_cycle_and_step() {
+        let r = rule(
+            "name = \"m\"\nlevels_hpa = [500.0]\nfile_pattern = '^m_(?P<cycle>\\d{10})_(?P<step>\\d{3})\\.grib2$'\nmarker_pattern = '^m_(?P<cycle>\\d{10})\\.done$'\n",
+        );
+        let want = chrono::NaiveDate::from_ymd_opt(2026, 3, 14)
+            .unwrap()
+            .and_hms_opt(6, 0, 0);
+        match r.role("m_2026031406_012.grib2") {
+            Some(FileRole::Data(p)) => {
+                assert_eq!(p.cycle, want);
+                assert_eq!(p.step, Some(12));
+            }
+            other => panic!("{other:?}"),
+        }
+        match r.role("m_2026031406.done") {
+            Some(FileRole::Marker(p)) => assert_eq!((p.cycle, p.step), (want, None)),
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(r.role("other.grib2"), None);
+        let r = rule("name = \"d\"\nlevels_hpa = [500.0]\nfile_pattern = '^x(?P<date>\\d{8})(?P<hour>\\d\\d)$'\n");
+        match r.role("x2026031406") {
+            Some(FileRole::Data(p)) => assert_eq!(p.cycle, want),
+            other => panic!("{other:?}"),
+        }
+    }
+
+    #[test]
+    fn products_decide_the_required_quantities() {
+        let all = needed_quantities(&Products::default());
+        assert_eq!(all.len(), 4);
+        let only_thickness = Products {
+            vorticity: false,
+            stability: false,
+            isobaric_pv: false,
+            isentropic: false,
+            tropopause: false,
+            layer_pv: false,
+            ..Products::default()
+        };
+        assert_eq!(
+            needed_quantities(&only_thickness),
+            vec![Quantity::GeopotentialHeight]
+        );
+    }
+
+    #[test]
+    fn every_feed_problem_is_named() {
+        let feeds: Vec<Feed> = vec![
+            toml::from_str("name = \"a b\"\nfile_pattern = '('\n").unwrap(),
+            toml::from_str(
+                "name = \"c\"\ncomplete = \"marker\"\nmarker_pattern = 'done'\nrequire = [\"w\"]\n",
+            )
+            .unwrap(),
+        ];
+        let p = problems(
+            &Service {
+                workers: 0,
+                ..Service::default()
+            },
+            &feeds,
+        );
+        for key in [
+            "service.workers",
+            "feed[0].name",
+            "feed[0].file_pattern",
+            "feed[0].levels_hpa",
+            "feed[1].marker_pattern",
+            "feed[1].require",
+        ] {
+            assert!(p.iter().any(|x| x.starts_with(key)), "{key}: {p:?}");
+        }
+    }
+}

@@ -1,0 +1,216 @@
+//! `leeward status`: the recent cycles of each feed and where their steps
+//! stand, read from the ledger (without changing it, so it can run beside
+//! the service).
+//!
+//! In: a state directory. Out: a report for people, or JSON for scripts.
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use chrono::DateTime;
+use serde::Serialize;
+
+use super::daemon::lock_path;
+use super::ledger::{read_state, FailKind, LedgerError, Outcome, State};
+
+/// One cycle of one feed.
+#[derive(Debug, Default, Clone, Serialize, PartialEq)]
+pub struct CycleSummary {
+    /// Feed.
+    pub feed: String,
+    /// Cycle, `YYYYMMDDTHHMMZ`.
+    pub cycle: String,
+    /// Steps published complete.
+    pub complete: usize,
+    /// Steps published partial.
+    pub partial: usize,
+    /// Steps waiting for input (or in hand).
+    pub waiting: usize,
+    /// Steps that produced nothing, with lead and reason.
+    pub failed: Vec<(i64, String, String)>,
+    /// Leads published, ascending.
+    pub leads: Vec<i64>,
+    /// Unix time of the last event.
+    pub last: i64,
+}
+
+/// The whole report.
+#[derive(Debug, Default, Clone, Serialize, PartialEq)]
+pub struct Report {
+    /// Whether a service holds the state directory, and its pid.
+    pub running: Option<u32>,
+    /// Last start: version and time.
+    pub started: Option<(String, i64)>,
+    /// Cycles, newest first within each feed.
+    pub cycles: Vec<CycleSummary>,
+    /// Quarantined files: (file, reason, moved to, time), newest first.
+    pub quarantined: Vec<(String, String, Option<String>, i64)>,
+}
+
+/// Is a service holding the state directory? Its pid if so.
+pub fn service_running(state_dir: &Path) -> Option<u32> {
+    let f = std::fs::File::open(lock_path(state_dir)).ok()?;
+    match f.try_lock_shared() {
+        Ok(()) => None,
+        Err(_) => std::fs::read_to_string(lock_path(state_dir))
+            .ok()
+            .and_then(|s| s.trim().parse().ok())
+            .or(Some(0)),
+    }
+}
+
+/// Summarise a state, the `cycles` newest cycles of each feed.
+pub fn summarise(state: &State, cycles: usize) -> Vec<CycleSummary> {
+    let mut by: BTreeMap<(String, String), CycleSummary> = BTreeMap::new();
+    for (tag, st) in &state.steps {
+        let c = by
+            .entry((tag.feed.clone(), tag.cycle.clone()))
+            .or_insert_with(|| CycleSummary {
+                feed: tag.feed.clone(),
+                cycle: tag.cycle.clone(),
+                ..CycleSummary::default()
+            });
+        let at = match &st.outcome {
+            Outcome::Waiting => {
+                c.waiting += 1;
+                st.first_seen
+            }
+            Outcome::Published { partial, at, .. } => {
+                if *partial {
+                    c.partial += 1;
+                } else {
+                    c.complete += 1;
+                }
+                c.leads.push(tag.lead);
+                *at
+            }
+            Outcome::Failed { kind, reason, at } => {
+                let k = match kind {
+                    FailKind::Missing => "missing",
+                    FailKind::Input => "input",
+                    FailKind::Output => "output (retrying)",
+                    FailKind::Internal => "internal",
+                };
+                c.failed.push((tag.lead, k.to_string(), reason.clone()));
+                *at
+            }
+        };
+        c.last = c.last.max(at);
+    }
+    let mut out: Vec<CycleSummary> = Vec::new();
+    let mut per_feed: BTreeMap<String, Vec<CycleSummary>> = BTreeMap::new();
+    for ((feed, _), mut c) in by {
+        c.leads.sort_unstable();
+        per_feed.entry(feed).or_default().push(c);
+    }
+    for (_, mut v) in per_feed {
+        v.sort_by(|a, b| b.cycle.cmp(&a.cycle));
+        out.extend(v.into_iter().take(cycles));
+    }
+    out
+}
+
+/// Build the report of a state directory.
+pub fn report(state_dir: &Path, cycles: usize) -> Result<Report, LedgerError> {
+    let state = read_state(state_dir)?;
+    let mut q: Vec<(String, String, Option<String>, i64)> = state
+        .quarantined
+        .iter()
+        .map(|(f, q)| (f.clone(), q.reason.clone(), q.moved_to.clone(), q.at))
+        .collect();
+    q.sort_by_key(|x| std::cmp::Reverse(x.3));
+    q.truncate(20);
+    Ok(Report {
+        running: service_running(state_dir),
+        started: state.started.as_ref().map(|(v, _, at)| (v.clone(), *at)),
+        cycles: summarise(&state, cycles),
+        quarantined: q,
+    })
+}
+
+fn when(t: i64) -> String {
+    DateTime::from_timestamp(t, 0)
+        .map(|d| d.format("%Y-%m-%d %H:%M:%SZ").to_string())
+        .unwrap_or_else(|| t.to_string())
+}
+
+fn leads(v: &[i64]) -> String {
+    // Runs of evenly spaced leads as first-last/step.
+    let mut parts = Vec::new();
+    let mut i = 0;
+    while i < v.len() {
+        let mut j = i;
+        let step = if i + 1 < v.len() { v[i + 1] - v[i] } else { 0 };
+        while j + 1 < v.len() && v[j + 1] - v[j] == step && step > 0 {
+            j += 1;
+        }
+        if j >= i + 2 {
+            parts.push(format!("+{}..+{}h every {}h", v[i], v[j], step));
+            i = j + 1;
+        } else {
+            parts.push(format!("+{}h", v[i]));
+            i += 1;
+        }
+    }
+    parts.join(", ")
+}
+
+/// The report as text.
+pub fn render(state_dir: &Path, r: &Report) -> String {
+    let mut o = format!("leeward state in {}\n", state_dir.display());
+    match r.running {
+        Some(0) => o.push_str("service: running\n"),
+        Some(pid) => o.push_str(&format!("service: running (pid {pid})\n")),
+        None => o.push_str("service: not running\n"),
+    }
+    if let Some((v, at)) = &r.started {
+        o.push_str(&format!("last start: {} (leeward {v})\n", when(*at)));
+    }
+    if r.cycles.is_empty() {
+        o.push_str("no cycles yet\n");
+    }
+    let mut feed = "";
+    for c in &r.cycles {
+        if c.feed != feed {
+            feed = &c.feed;
+            o.push_str(&format!("\nfeed {feed}\n"));
+        }
+        o.push_str(&format!(
+            "  {}  {} complete, {} partial, {} waiting, {} failed  (last event {})\n",
+            c.cycle,
+            c.complete,
+            c.partial,
+            c.waiting,
+            c.failed.len(),
+            when(c.last)
+        ));
+        if !c.leads.is_empty() {
+            o.push_str(&format!("      published {}\n", leads(&c.leads)));
+        }
+        for (lead, kind, reason) in &c.failed {
+            o.push_str(&format!("      +{lead}h failed ({kind}): {reason}\n"));
+        }
+    }
+    if !r.quarantined.is_empty() {
+        o.push_str("\nquarantined files (newest first)\n");
+        for (f, reason, moved, at) in &r.quarantined {
+            o.push_str(&format!("  {} {f}: {reason}", when(*at)));
+            if let Some(m) = moved {
+                o.push_str(&format!(" (now {m})"));
+            }
+            o.push('\n');
+        }
+    }
+    o
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn leads_are_shown_as_runs() {
+        assert_eq!(leads(&[0, 6, 12, 18, 30]), "+0..+18h every 6h, +30h");
+        assert_eq!(leads(&[3]), "+3h");
+    }
+}
