@@ -166,6 +166,15 @@ fn unwritable_output_directory_is_reported_not_a_crash() {
 fn the_example_config_lists_the_defaults() {
     // deploy/leeward.toml documents every key with its default: it must parse to exactly them.
     let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("deploy/leeward.toml");
-    let cfg = leeward::config::Config::load(&path).expect("example config parses");
+    let mut cfg = leeward::config::Config::load(&path).expect("example config parses");
+    // Its one feed is an example, not a default; the service's settings are defaults.
+    assert_eq!(cfg.feed.len(), 1);
+    let rule = leeward::service::settings::FeedRule::new(&cfg.feed[0], &cfg.service, &cfg.products)
+        .expect("the example feed is usable");
+    assert!(matches!(
+        rule.role("regional_2026031400_f006.grib2"),
+        Some(leeward::service::settings::FileRole::Data(_))
+    ));
+    cfg.feed.clear();
     assert_eq!(cfg, leeward::config::Config::default());
 }
