@@ -228,7 +228,20 @@ fn earth_attrs(v: &mut netcdf::VariableMut<'_>, e: &Earth) -> netcdf::Result<()>
 /// Write `p` to `dir/name` atomically (temporary, fsync, rename).
 pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, OutputError> {
     let final_path = dir.join(name);
-    let tmp = dir.join(format!(".{name}.partial-{}", std::process::id()));
+    let tmp = dir.join(format!(".{name}.partial-{}", super::temporary_suffix()));
+    let (ny, nx) = p.grid.shape();
+    let points = (ny * nx) as u64;
+    let raw: u64 = p
+        .fields
+        .iter()
+        .map(|f| f.data.len() as u64 * 4)
+        .sum::<u64>()
+        + points * 16
+        + (1 << 20);
+    super::ensure_space(dir, raw).map_err(|source| OutputError::Io {
+        path: final_path.clone(),
+        source,
+    })?;
     let result = write_file(&tmp, p).and_then(|()| {
         let io = |path: &Path| {
             let path = path.to_path_buf();
@@ -247,7 +260,30 @@ pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, O
     if result.is_err() {
         let _ = fs::remove_file(&tmp);
     }
-    result.map(|()| final_path)
+    result.map(|()| final_path).map_err(|e| explain(dir, e))
+}
+
+/// libnetcdf reports most system errors as an HDF error or "Permission
+/// denied": when the directory itself refuses a small file, say the
+/// system's own reason (read-only file system, no space, permissions).
+pub fn explain(dir: &Path, e: OutputError) -> OutputError {
+    if !matches!(e, OutputError::NetCdf { .. }) {
+        return e;
+    }
+    let probe = dir.join(format!(".probe-{}", super::temporary_suffix()));
+    let r = fs::File::create(&probe).and_then(|mut f| {
+        use std::io::Write;
+        f.write_all(&[0u8; 4096])?;
+        f.sync_all()
+    });
+    let _ = fs::remove_file(&probe);
+    match r {
+        Err(source) => OutputError::Io {
+            path: dir.to_path_buf(),
+            source,
+        },
+        Ok(()) => e,
+    }
 }
 
 fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {

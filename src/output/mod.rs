@@ -28,3 +28,55 @@ pub fn quiet_hdf5_errors() {
         );
     }
 }
+
+/// Make sure `dir` has room for `bytes` more before libnetcdf starts a file.
+///
+/// libnetcdf (through libhdf5) does not release a file whose writing failed
+/// for lack of space: the half-written temporary stays open, deleted but
+/// holding its blocks, and the disk stays full. So leeward asks for room for
+/// the uncompressed size first (an upper bound: compression only shrinks it)
+/// and refuses cleanly, naming the figures, when it is not there.
+pub fn ensure_space(dir: &std::path::Path, bytes: u64) -> std::io::Result<()> {
+    let st = rustix::fs::statvfs(dir).map_err(std::io::Error::from)?;
+    let free = st.f_bavail.saturating_mul(st.f_frsize);
+    if free < bytes {
+        return Err(std::io::Error::new(
+            std::io::ErrorKind::StorageFull,
+            format!(
+                "No space left on device: {:.1} MB needed (uncompressed upper bound), {:.1} MB free",
+                bytes as f64 / 1e6,
+                free as f64 / 1e6
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// Temporaries of this process whose writing failed and that libnetcdf
+/// still holds open (deleted, so their blocks are not freed): paths seen in
+/// `/proc/self/fd` under `root`.
+pub fn held_temporaries(root: &std::path::Path) -> Vec<std::path::PathBuf> {
+    let Ok(rd) = std::fs::read_dir("/proc/self/fd") else {
+        return Vec::new();
+    };
+    rd.flatten()
+        .filter_map(|e| std::fs::read_link(e.path()).ok())
+        .filter(|t| {
+            let s = t.to_string_lossy();
+            t.starts_with(root)
+                && s.ends_with(" (deleted)")
+                && (s.contains(".partial-") || s.contains(".update-"))
+        })
+        .collect()
+}
+
+/// `<pid>-<n>`: a temporary name used once, so that a retry never meets the
+/// temporary of an earlier, failed attempt.
+pub fn temporary_suffix() -> String {
+    static N: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
+    format!(
+        "{}-{}",
+        std::process::id(),
+        N.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
+    )
+}

@@ -168,7 +168,10 @@ pub fn add_variables(
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let tmp = dir.join(format!(".{name}.update-{}", std::process::id()));
+    let tmp = dir.join(format!(".{name}.update-{}", super::temporary_suffix()));
+    let existing = std::fs::metadata(path).map(|m| m.len()).unwrap_or(0);
+    let added: u64 = vars.iter().map(|v| v.data.len() as u64 * 4).sum();
+    super::ensure_space(dir, existing + added + (1 << 20)).map_err(io(path))?;
     std::fs::copy(path, &tmp).map_err(io(&tmp))?;
     let result = (|| -> Result<(), OutputError> {
         let e = |source| OutputError::NetCdf {

@@ -51,6 +51,9 @@ pub mod code {
     pub const OK: u8 = 0;
     /// Configuration or state directory unusable: do not restart until fixed.
     pub const CONFIG: u8 = 2;
+    /// libnetcdf holds a failed temporary open (its blocks are not freed):
+    /// stopped so that the service manager starts a fresh process.
+    pub const RESTART: u8 = 3;
 }
 
 /// A request, dropped into `<state_dir>/requests/` by `leeward reprocess`.
@@ -289,6 +292,7 @@ struct Daemon {
     too_old: BTreeSet<(String, String)>,
     last_status: String,
     last_published: Option<String>,
+    restart_needed: bool,
 }
 
 impl Daemon {
@@ -774,6 +778,11 @@ impl Daemon {
                         partial: was_partial,
                     };
                 }
+                let held = crate::output::held_temporaries(&self.cfg.service.out_dir);
+                if !held.is_empty() {
+                    error!(files = ?held, "libnetcdf keeps failed temporaries open and their space is not freed; stopping for a fresh start");
+                    self.restart_needed = true;
+                }
             }
             JobOutcome::Vanished(file, reason) => {
                 let attempts = self.asm.steps.get(&tag).map_or(1, |p| p.attempts + 1);
@@ -1121,6 +1130,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         too_old: BTreeSet::new(),
         last_status: String::new(),
         last_published: None,
+        restart_needed: false,
     };
     d.record(Record::Started {
         version: env!("CARGO_PKG_VERSION").into(),
@@ -1157,6 +1167,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
     let mut last_ping = Instant::now();
     let ping_every = d.notifier.watchdog.map(|w| w / 2);
     let mut stopping: Option<Instant> = None;
+    let mut exit_code = code::OK;
     if let Some(w) = ping_every {
         d.notifier.send("WATCHDOG=1");
         debug!(every_s = w.as_secs_f64(), "watchdog pings");
@@ -1185,6 +1196,15 @@ pub fn serve(opts: ServeOptions) -> u8 {
                     }
                 }
             }
+        }
+        if d.restart_needed && stopping.is_none() {
+            d.notifier.send(&format!(
+                "STOPPING=1\n{}",
+                status_line("stopping for a fresh start: a failed write holds disk space")
+            ));
+            d.watchers.clear();
+            stopping = Some(Instant::now());
+            exit_code = code::RESTART;
         }
         if stopping.is_none() {
             let mut files = Vec::new();
@@ -1220,10 +1240,14 @@ pub fn serve(opts: ServeOptions) -> u8 {
                 if d.running.is_empty() {
                     info!("stopped cleanly");
                     d.record(Record::Stopped {
-                        reason: "signal".into(),
+                        reason: if exit_code == code::OK {
+                            "signal".into()
+                        } else {
+                            "fresh start needed".into()
+                        },
                         at: Utc::now().timestamp(),
                     });
-                    return code::OK;
+                    return exit_code;
                 }
                 if t0.elapsed().as_secs_f64() >= d.cfg.service.shutdown_grace_s {
                     let left: Vec<String> = d.running.keys().map(ToString::to_string).collect();
@@ -1234,7 +1258,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
                     });
                     // Workers cannot be interrupted safely; their hidden
                     // temporaries are removed at the next start.
-                    std::process::exit(i32::from(code::OK));
+                    std::process::exit(i32::from(exit_code));
                 }
             }
         }

@@ -234,7 +234,10 @@ pub fn read_manifest(path: &Path) -> Option<Manifest> {
 /// True for the hidden temporaries leeward writes (product, update, manifest).
 pub fn is_temporary(name: &str) -> bool {
     name.starts_with('.')
-        && (name.contains(".partial-") || name.contains(".update-") || name.contains(".manifest-"))
+        && (name.contains(".partial-")
+            || name.contains(".update-")
+            || name.contains(".manifest-")
+            || name.starts_with(".probe-"))
 }
 
 /// Remove temporaries left by a crash anywhere in the output tree
