@@ -756,7 +756,7 @@ pub fn run_step(
         let targets = &cfg.isentropic.surfaces;
         let surf = isentropic::surfaces(st.theta.view(), &p_pa, targets);
         for (k, g) in surf.gaps.iter().enumerate() {
-            info!(cycle = %cycle, step = lead, theta = targets[k], below = g.below, above = g.above, unstable = g.unstable, "isentropic surface gaps");
+            tracing::debug!(cycle = %cycle, step = lead, theta = targets[k], below = g.below, above = g.above, unstable = g.unstable, "isentropic surface gaps");
         }
         let ns = targets.len();
         let p_s = surf.pressure.clone();

@@ -110,6 +110,8 @@ pub struct Assembly {
     pub steps: BTreeMap<StepTag, Pending>,
     /// Markers: (feed, cycle `YYYYMMDDTHHMMZ`, lead if the marker names one).
     pub markers: BTreeSet<(String, String, Option<i64>)>,
+    /// Cycle of the step last handed to a worker.
+    pub last_dispatched: Option<NaiveDateTime>,
 }
 
 impl Assembly {
@@ -169,6 +171,39 @@ impl Assembly {
         }
     }
 
+    /// What the feed's rule expected of a step and did not get.
+    pub fn not_arrived(&self, p: &Pending, rule: &FeedRule) -> Vec<String> {
+        match rule.feed.complete {
+            Completeness::Fields => {
+                let mut out = Vec::new();
+                for pa in rule.levels_pa() {
+                    for q in &rule.required {
+                        if !p.have.contains(&(*q, level_key(pa))) {
+                            out.push(format!("{} at {} hPa (not arrived)", q.name(), pa / 100.0));
+                        }
+                    }
+                }
+                out
+            }
+            Completeness::Files => {
+                let n = p.files.len();
+                let want = rule.feed.files_per_step as usize;
+                if n < want {
+                    vec![format!("{} of {want} files (not arrived)", want - n)]
+                } else {
+                    Vec::new()
+                }
+            }
+            Completeness::Marker => {
+                if self.complete(p, rule) {
+                    Vec::new()
+                } else {
+                    vec!["the marker file (not arrived)".into()]
+                }
+            }
+        }
+    }
+
     /// Move waiting steps that are complete, or past the timeout, to ready;
     /// retries whose time has come too. Returns the steps made ready.
     pub fn promote(
@@ -210,8 +245,9 @@ impl Assembly {
 
     /// The ready step to run next. `newest-first`: the newest cycle, lowest
     /// lead. `oldest-first`: the oldest cycle, lowest lead, except that when
-    /// no running step belongs to the newest cycle with ready work (or a newer
-    /// one), that cycle goes first, so a backlog never starves a new cycle.
+    /// neither a running step nor the step last handed out belongs to the
+    /// newest cycle with ready work (or a newer one), that cycle goes first,
+    /// so a backlog never starves a new cycle, even with one worker.
     pub fn next(&self, order: Order, running: &[StepTag]) -> Option<StepTag> {
         let ready: Vec<&Pending> = self
             .steps
@@ -226,10 +262,12 @@ impl Assembly {
         let pick_cycle = match order {
             Order::NewestFirst => newest,
             Order::OldestFirst => {
-                // A running step of this cycle or a newer one already serves the newest work.
+                // A running step of this cycle or a newer one already serves the
+                // newest work; with one worker, the turns alternate.
                 let newest_running = running
                     .iter()
                     .filter_map(|t| self.steps.get(t).map(|p| p.key.reference_time))
+                    .chain(self.last_dispatched)
                     .max()
                     .is_some_and(|c| c >= newest);
                 if newest_running {
@@ -417,6 +455,18 @@ mod tests {
         );
         assert_eq!(
             pick(&a, Order::NewestFirst, std::slice::from_ref(&running)),
+            ("20260314T0600Z".to_string(), 0)
+        );
+        // One worker, nothing running: turns alternate between the newest and the oldest.
+        a.steps.remove(&running);
+        a.last_dispatched = Some(t(12));
+        assert_eq!(
+            pick(&a, Order::OldestFirst, &[]),
+            ("20260314T0000Z".to_string(), 0)
+        );
+        a.last_dispatched = Some(t(0));
+        assert_eq!(
+            pick(&a, Order::OldestFirst, &[]),
             ("20260314T0600Z".to_string(), 0)
         );
     }

@@ -142,6 +142,7 @@ struct Job {
     suffix: Option<usize>,
     partial: bool,
     last_input: f64,
+    not_arrived: Vec<String>,
 }
 
 /// What a worker reports.
@@ -219,6 +220,7 @@ fn run_job(job: &Job) -> JobOutcome {
             })
             .collect(),
         last_input: job.last_input,
+        not_arrived: job.not_arrived.clone(),
     };
     let written: Mutex<Option<(PathBuf, f64)>> = Mutex::new(None);
     let hook = |rep: &StepReport| -> Result<(), String> {
@@ -231,7 +233,9 @@ fn run_job(job: &Job) -> JobOutcome {
                 publish::manifest_path(product).display()
             )
         })?;
-        for u in &rep.updated {
+        // The step's own file is among the updated ones (its budget against the
+        // step before): its manifest was just written from the file as it is.
+        for u in rep.updated.iter().filter(|u| *u != product) {
             if let Err(e) = publish::revise_manifest(u) {
                 warn!(file = %u.display(), error = %e, "manifest of an updated product not revised");
             }
@@ -293,9 +297,54 @@ struct Daemon {
     last_status: String,
     last_published: Option<String>,
     restart_needed: bool,
+    last_ping: Instant,
 }
 
 impl Daemon {
+    /// The main loop is alive: heartbeat for /health, and the watchdog ping
+    /// when due. Called between files of a long batch too, so that a large
+    /// catch-up never looks like a hang.
+    fn keepalive(&mut self) {
+        self.metrics().heartbeat = Some(Instant::now());
+        if let Some(w) = self.notifier.watchdog {
+            if self.last_ping.elapsed() >= w / 2 {
+                self.last_ping = Instant::now();
+                self.notifier.send("WATCHDOG=1");
+            }
+        }
+    }
+
+    /// Steps the ledger knows as waiting whose inputs are no longer in any
+    /// incoming directory (deleted while the service was down): reported
+    /// missing once they are older than the timeout, so they do not wait for ever.
+    fn expire_orphans(&mut self) {
+        let limit = Utc::now().timestamp() as f64
+            - self.cfg.service.step_timeout_s
+            - 2.0 * self.cfg.service.scan_interval_s
+            - self.cfg.service.settle_s
+            - 60.0;
+        let orphans: Vec<StepTag> = self
+            .ledger
+            .state
+            .steps
+            .iter()
+            .filter(|(t, s)| {
+                matches!(s.outcome, Outcome::Waiting)
+                    && (s.first_seen as f64) < limit
+                    && !self.asm.steps.contains_key(*t)
+                    && self.rules.iter().any(|r| r.feed.name == t.feed)
+            })
+            .map(|(t, _)| t.clone())
+            .collect();
+        for t in orphans {
+            self.fail(
+                &t,
+                FailKind::Missing,
+                "its inputs are no longer in the incoming directory".into(),
+            );
+        }
+    }
+
     fn metrics(&self) -> std::sync::MutexGuard<'_, Metrics> {
         self.metrics
             .lock()
@@ -315,8 +364,16 @@ impl Daemon {
         let scan = Duration::from_secs_f64(self.cfg.service.scan_interval_s);
         let mut dirs: Vec<PathBuf> = Vec::new();
         for r in &self.rules {
-            if let Err(e) = std::fs::create_dir_all(&r.dir) {
-                warn!(feed = %r.feed.name, dir = %r.dir.display(), error = %e, "cannot create the incoming directory");
+            if !r.dir.exists() {
+                // Group-writable and set-group-id, like the base directory of the
+                // tmpfiles configuration: the feed's own user delivers into it.
+                use std::os::unix::fs::PermissionsExt;
+                let made = std::fs::create_dir_all(&r.dir).and_then(|()| {
+                    std::fs::set_permissions(&r.dir, std::fs::Permissions::from_mode(0o2775))
+                });
+                if let Err(e) = made {
+                    warn!(feed = %r.feed.name, dir = %r.dir.display(), error = %e, "cannot create the incoming directory");
+                }
             }
             if dirs.contains(&r.dir) {
                 continue;
@@ -335,7 +392,7 @@ impl Daemon {
     }
 
     /// A finished file in some feed's directory.
-    fn ingest(&mut self, path: &Path, force: bool) {
+    fn ingest(&mut self, path: &Path, force: Option<&ReprocessRequest>) {
         let Some(name) = path
             .file_name()
             .and_then(|n| n.to_str())
@@ -414,8 +471,13 @@ impl Daemon {
         feed: &str,
         path: &Path,
         parts: super::settings::NameParts,
-        force: bool,
+        force: Option<&ReprocessRequest>,
     ) {
+        let asked = |t: &StepTag| {
+            force.is_some_and(|r| {
+                r.feed == t.feed && r.cycle == t.cycle && r.lead.is_none_or(|l| l == t.lead)
+            })
+        };
         let meta = match std::fs::metadata(path) {
             Ok(m) => m,
             Err(e) => {
@@ -425,7 +487,7 @@ impl Daemon {
         };
         let (size, mtime) = (meta.len(), mtime_ns(&meta));
         let key = path.display().to_string();
-        if !force {
+        if force.is_none() {
             if let Some(s) = self.ledger.state.seen.get(&key) {
                 if s.size == size
                     && s.mtime_ns == mtime
@@ -526,7 +588,17 @@ impl Daemon {
         }
         let now = unix_now();
         let mut tags = Vec::new();
+        let mut skipped = Vec::new();
         let catch_up = self.cfg.service.catch_up_hours;
+        if let Some(s) = parts.step {
+            let leads: Vec<i64> = by_step
+                .keys()
+                .map(|k| (k.valid_time - k.reference_time).num_hours())
+                .collect();
+            if !leads.contains(&s) {
+                warn!(feed, file = %path.display(), name_step = s, leads = ?leads, "the file name and the contents disagree on the step; the contents are used");
+            }
+        }
         for (k, (messages, fields)) in by_step {
             let cycle = cycle_dir_name(k.reference_time);
             if let Some(c) = parts.cycle {
@@ -542,6 +614,13 @@ impl Daemon {
                 grid: grid_id(&k.grid_key),
             };
             tags.push(tag.clone());
+            if force.is_some() && !asked(&tag) {
+                // A reprocess looks at every file of the feed: the steps not asked
+                // for go their normal way, quietly.
+                if self.ledger.state.settled(&tag) || self.asm.steps.contains_key(&tag) {
+                    continue;
+                }
+            }
             if self.ledger.state.settled(&tag) {
                 let used = self
                     .ledger
@@ -558,10 +637,11 @@ impl Daemon {
             let too_old = catch_up > 0
                 && TimeDelta::try_hours(i64::from(catch_up))
                     .is_some_and(|h| k.reference_time < Utc::now().naive_utc() - h);
-            if too_old && !force {
+            if too_old && !asked(&tag) {
                 if self.too_old.insert((feed.to_string(), cycle.clone())) {
                     warn!(feed, cycle = %cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
                 }
+                skipped.push(tag);
                 continue;
             }
             let first_seen = self
@@ -578,7 +658,10 @@ impl Daemon {
                 messages,
                 seen_at: now,
             };
-            if self.asm.add(tag.clone(), k, c, &fields, first_seen, force) {
+            if self
+                .asm
+                .add(tag.clone(), k, c, &fields, first_seen, asked(&tag))
+            {
                 info!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, fields = fields.len(), "input for step");
             }
         }
@@ -596,6 +679,22 @@ impl Daemon {
                 mtime_ns: mtime,
                 checksum,
                 steps: tags,
+                at: now as i64,
+            });
+        }
+        for tag in skipped {
+            *self
+                .metrics()
+                .feed(feed)
+                .failed
+                .entry("skipped")
+                .or_default() += 1;
+            self.record(Record::Failed {
+                step: tag,
+                kind: FailKind::Skipped,
+                reason: format!(
+                    "cycle older than service.catch_up_hours ({catch_up} h) when its input came"
+                ),
                 at: now as i64,
             });
         }
@@ -663,10 +762,23 @@ impl Daemon {
                 continue;
             }
             let suffix = self.suffix(&tag);
-            let Some(p) = self.asm.steps.get_mut(&tag) else {
+            let Some(p) = self.asm.steps.get(&tag) else {
                 break;
             };
             let partial = matches!(p.phase, Phase::Ready { partial: true });
+            let not_arrived = if partial {
+                self.rules
+                    .iter()
+                    .find(|r| r.feed.name == tag.feed)
+                    .map(|r| self.asm.not_arrived(p, r))
+                    .unwrap_or_default()
+            } else {
+                Vec::new()
+            };
+            self.asm.last_dispatched = Some(p.key.reference_time);
+            let Some(p) = self.asm.steps.get_mut(&tag) else {
+                break;
+            };
             p.phase = Phase::Running { partial };
             let Some(cfg) = self.feed_cfgs.get(&tag.feed).cloned() else {
                 continue;
@@ -687,6 +799,7 @@ impl Daemon {
                 suffix,
                 partial,
                 last_input: p.last_input(),
+                not_arrived,
             };
             info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, partial, files = job.files.len(), "processing");
             self.running.insert(tag.clone(), Instant::now());
@@ -833,6 +946,7 @@ impl Daemon {
             FailKind::Input => "input",
             FailKind::Output => "output",
             FailKind::Internal => "internal",
+            FailKind::Skipped => "skipped",
         };
         *self
             .metrics()
@@ -907,34 +1021,27 @@ impl Daemon {
                 .filter(|p| p.is_file())
                 .collect();
             paths.sort();
-            let before: BTreeSet<StepTag> = self.asm.steps.keys().cloned().collect();
             for p in paths {
                 if p.file_name()
                     .and_then(|n| n.to_str())
                     .is_some_and(|n| !super::watch::ignored(n))
                 {
-                    self.ingest(&p, true);
+                    self.ingest(&p, Some(&req));
+                    self.keepalive();
                 }
             }
-            // Steps not asked for that the forced look reopened are left to their normal course.
-            let reopened: Vec<StepTag> = self
+            let n = self
                 .asm
                 .steps
-                .keys()
-                .filter(|t| !before.contains(t))
-                .cloned()
-                .collect();
-            let mut n = 0;
-            for t in reopened {
-                let asked = t.cycle == req.cycle && req.lead.is_none_or(|l| l == t.lead);
-                if !asked {
-                    if let Some(p) = self.asm.steps.get_mut(&t) {
-                        p.forced = false;
-                    }
-                } else {
-                    n += 1;
-                }
-            }
+                .values()
+                .filter(|p| {
+                    p.forced
+                        && p.tag.feed == req.feed
+                        && p.tag.cycle == req.cycle
+                        && req.lead.is_none_or(|l| l == p.tag.lead)
+                })
+                .count();
+            info!(feed = %req.feed, cycle = %req.cycle, steps = n, "reprocess: steps to make again");
             if n == 0 {
                 warn!(feed = %req.feed, cycle = %req.cycle, "reprocess: no input of the cycle is in the incoming directory");
             }
@@ -1131,7 +1238,15 @@ pub fn serve(opts: ServeOptions) -> u8 {
         last_status: String::new(),
         last_published: None,
         restart_needed: false,
+        last_ping: Instant::now(),
     };
+    for (tag, st) in &d.ledger.state.steps {
+        if let Outcome::Published { at, .. } = st.outcome {
+            let mut m = d.metrics();
+            let f = m.feed(&tag.feed);
+            f.last_success = Some(f.last_success.unwrap_or(0.0).max(at as f64));
+        }
+    }
     d.record(Record::Started {
         version: env!("CARGO_PKG_VERSION").into(),
         pid: std::process::id(),
@@ -1164,7 +1279,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
     let tick = Duration::from_millis(100);
     let mut last_second = Instant::now();
     let mut last_retention = Instant::now();
-    let mut last_ping = Instant::now();
+    let mut last_orphans = Instant::now();
     let ping_every = d.notifier.watchdog.map(|w| w / 2);
     let mut stopping: Option<Instant> = None;
     let mut exit_code = code::OK;
@@ -1214,7 +1329,8 @@ pub fn serve(opts: ServeOptions) -> u8 {
                 }
             }
             for p in files {
-                d.ingest(&p, false);
+                d.ingest(&p, None);
+                d.keepalive();
             }
         }
         while let Ok(done) = d.done_rx.try_recv() {
@@ -1230,6 +1346,10 @@ pub fn serve(opts: ServeOptions) -> u8 {
         if last_retention.elapsed() >= Duration::from_secs(600) {
             last_retention = Instant::now();
             d.retention();
+        }
+        if last_orphans.elapsed() >= Duration::from_secs(60) {
+            last_orphans = Instant::now();
+            d.expire_orphans();
         }
         match stopping {
             None => {
@@ -1262,12 +1382,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
                 }
             }
         }
-        if let Some(every) = ping_every {
-            if last_ping.elapsed() >= every {
-                last_ping = Instant::now();
-                d.notifier.send("WATCHDOG=1");
-            }
-        }
+        d.keepalive();
         d.update_status();
         if let Ok(done) = d.done_rx.recv_timeout(tick) {
             d.finished(done);

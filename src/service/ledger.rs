@@ -43,6 +43,8 @@ pub enum FailKind {
     Output,
     /// A defect in leeward itself (a caught panic); reported, not retried.
     Internal,
+    /// Not made: its cycle is older than `service.catch_up_hours` (reprocess makes it).
+    Skipped,
 }
 
 /// One event in the journal. Times are Unix seconds.
@@ -369,29 +371,29 @@ impl State {
     }
 }
 
-fn replay(file: &File, state: &mut State) -> std::io::Result<u64> {
+/// Replay a journal into `state`. Returns the length of its whole lines (a
+/// crash mid-write leaves a last line without its newline: the torn tail) and
+/// the number of whole lines passed over because they do not parse (damage,
+/// or a record of a newer version): those are skipped, not a reason to drop
+/// the records after them.
+fn replay(file: &File, state: &mut State) -> std::io::Result<(u64, usize)> {
     let mut good_len = 0u64;
+    let mut skipped = 0;
     let mut reader = BufReader::new(file);
-    let mut line = String::new();
+    let mut line = Vec::new();
     loop {
         line.clear();
-        let n = reader.read_line(&mut line)?;
-        if n == 0 {
+        let n = reader.read_until(b'\n', &mut line)?;
+        if n == 0 || !line.ends_with(b"\n") {
             break;
         }
-        // Only a whole line that parses counts: a crash mid-write leaves a torn tail.
-        match (
-            line.ends_with('\n'),
-            serde_json::from_str::<Record>(line.trim_end()),
-        ) {
-            (true, Ok(r)) => {
-                state.apply(&r);
-                good_len += n as u64;
-            }
-            _ => break,
+        good_len += n as u64;
+        match serde_json::from_slice::<Record>(line.trim_ascii_end()) {
+            Ok(r) => state.apply(&r),
+            Err(_) => skipped += 1,
         }
     }
-    Ok(good_len)
+    Ok((good_len, skipped))
 }
 
 /// The journal's file name in the state directory.
@@ -435,7 +437,10 @@ impl Ledger {
             .open(&path)
             .map_err(io)?;
         let mut state = State::default();
-        let good_len = replay(&file, &mut state).map_err(io)?;
+        let (good_len, skipped) = replay(&file, &mut state).map_err(io)?;
+        if skipped > 0 {
+            tracing::warn!(ledger = %path.display(), lines = skipped, "ledger lines that do not parse were passed over");
+        }
         let len = file.seek(SeekFrom::End(0)).map_err(io)?;
         if len != good_len {
             file.set_len(good_len).map_err(io)?;
@@ -577,6 +582,30 @@ mod tests {
             .write_all(b"{\"event\":\"publ")
             .unwrap();
         assert!(read_state(&d).is_ok(), "a reader passes over the torn tail");
+        // A damaged line in the middle is passed over; the records after it count.
+        {
+            let mut f = std::fs::OpenOptions::new().write(true).open(&path).unwrap();
+            f.set_len(good).unwrap();
+            f.seek(SeekFrom::End(0)).unwrap();
+            f.write_all(b"{\"event\":\"from_a_newer_version\"}\n")
+                .unwrap();
+        }
+        {
+            let mut l = Ledger::open(&d).unwrap();
+            l.append(Record::Stopped {
+                reason: "after".into(),
+                at: 3,
+            })
+            .unwrap();
+        }
+        assert_eq!(read_state(&d).unwrap().stopped, Some(("after".into(), 3)));
+        let good = std::fs::metadata(&path).unwrap().len();
+        std::fs::OpenOptions::new()
+            .append(true)
+            .open(&path)
+            .unwrap()
+            .write_all(b"{\"event\":\"publ")
+            .unwrap();
         let mut l = Ledger::open(&d).unwrap();
         assert_eq!(std::fs::metadata(&path).unwrap().len(), good);
         l.append(Record::Quarantined {

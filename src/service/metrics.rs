@@ -144,9 +144,9 @@ impl Metrics {
         family(
             "leeward_steps_failed_total",
             "counter",
-            "Steps that produced nothing, by reason: missing (incomplete at the timeout), input, output (retried), internal.",
+            "Steps that produced nothing, by reason: missing (incomplete at the timeout), input, output (retried), internal, skipped (older than catch_up_hours).",
             per(&|c| {
-                ["missing", "input", "output", "internal"]
+                ["missing", "input", "output", "internal", "skipped"]
                     .iter()
                     .map(|k| {
                         (

@@ -93,7 +93,7 @@ pub struct Manifest {
     pub software: String,
     /// Timings.
     pub timings_s: Timings,
-    /// When first published, ISO 8601.
+    /// When this publication was made, ISO 8601.
     pub published_at: String,
     /// 1 at publication, +1 each time a later step or cycle adds changes to the file.
     pub revision: u32,
@@ -153,6 +153,8 @@ pub struct StepFacts<'a> {
     pub inputs: Vec<ManifestInput>,
     /// Unix time of the last input.
     pub last_input: f64,
+    /// What the feed's completeness rule expected and did not get (a partial step).
+    pub not_arrived: Vec<String>,
 }
 
 /// Write the manifest of a freshly published product.
@@ -184,7 +186,12 @@ pub fn write_manifest(
         variables: variables_of(product),
         grid: rep.grid.clone(),
         inputs: facts.inputs.clone(),
-        missing: rep.missing.clone(),
+        missing: rep
+            .missing
+            .iter()
+            .cloned()
+            .chain(facts.not_arrived.iter().cloned())
+            .collect(),
         issues: rep.issues.iter().map(ToString::to_string).collect(),
         software: format!("leeward {}", env!("CARGO_PKG_VERSION")),
         timings_s: Timings {
@@ -196,7 +203,8 @@ pub fn write_manifest(
             latency,
         },
         published_at: now.clone(),
-        revision: 1,
+        // A step made again (reprocess) goes on from the revision it had.
+        revision: read_manifest(&manifest_path(product)).map_or(1, |m| m.revision + 1),
         revised_at: now,
     };
     let path = manifest_path(product);

@@ -153,7 +153,9 @@ pub struct Feed {
     /// Regular expression of the marker file name, with a `cycle` (or `date`
     /// and `hour`) part and optionally `step` (for `complete = "marker"`).
     pub marker_pattern: String,
-    /// Products for this feed; absent: the file's `[products]`.
+    /// Products for this feed; absent: the file's `[products]`. A key left out
+    /// of a feed's own table takes its built-in default, not the value of
+    /// the file's `[products]`.
     pub products: Option<Products>,
 }
 
@@ -342,7 +344,8 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
     if s.retry_max_s < s.retry_first_s {
         p.push("service.retry_max_s: smaller than service.retry_first_s".into());
     }
-    if !s.metrics_listen.is_empty() && s.metrics_listen.parse::<std::net::SocketAddr>().is_err() {
+    use std::net::ToSocketAddrs;
+    if !s.metrics_listen.is_empty() && s.metrics_listen.to_socket_addrs().is_err() {
         p.push(format!(
             "service.metrics_listen: {:?} is not an address and port such as 127.0.0.1:9478",
             s.metrics_listen
@@ -420,6 +423,21 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
                         key("marker_pattern")
                     ));
                 }
+            }
+        }
+        if let Some(pr) = &f.products {
+            if !(pr.vorticity
+                || pr.stability
+                || pr.isobaric_pv
+                || pr.isentropic
+                || pr.tropopause
+                || pr.layer_pv
+                || pr.thickness)
+            {
+                p.push(format!(
+                    "{}: every product is switched off; nothing would be made",
+                    key("products")
+                ));
             }
         }
         if let Some(n) = f.require.iter().find(|n| quantity_by_name(n).is_none()) {

@@ -90,6 +90,7 @@ pub fn summarise(state: &State, cycles: usize) -> Vec<CycleSummary> {
                     FailKind::Input => "input",
                     FailKind::Output => "output (retrying)",
                     FailKind::Internal => "internal",
+                    FailKind::Skipped => "skipped (older than catch_up_hours)",
                 };
                 c.failed.push((tag.lead, k.to_string(), reason.clone()));
                 *at

@@ -333,6 +333,8 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
     assert [r["step"]["lead"] for r in again] == [6]
     new = json.loads((cycle_dir / "c255_20260314T0000Z_006h.json").read_text())
     assert new["published_at"] > old["published_at"]
+    assert new["revision"] > old["revision"], "a step made again goes on from its revision"
+    assert svc.metric("leeward_late_files_total", feed="demo") == 0, "no false late files"
     assert_same_products(svc.out_files(), ref)
     assert svc.stop() == 0
     # Structured logs: JSON lines with feed, cycle, step and file as fields.
@@ -640,4 +642,26 @@ def test_an_input_that_vanishes_is_retried_then_the_step_goes_on_without_it(tmp_
     m = json.loads(Path(r["manifest"]).read_text())
     assert [Path(i["file"]).name for i in m["inputs"]] == ["lwdemo_2026031400_000_part2.grib2"]
     assert svc.metric("leeward_step_retries_total", feed="demo") >= 3
+    assert svc.stop() == 0
+
+
+def test_old_cycles_are_skipped_not_left_waiting_and_reprocess_makes_them(tmp_path):
+    svc = Service(tmp_path)
+    svc.cfg.write_text(svc.cfg.read_text().replace("catch_up_hours = 0", "catch_up_hours = 24"))
+    svc.start()
+    f = demo_inputs(tmp_path / "gen", "2026031400", [0, 6])
+    for x in f:
+        deliver_renamed(x.read_bytes(), tmp_path / "in" / x.name)
+    wait_for(lambda: svc.metric("leeward_steps_failed_total", feed="demo", reason="skipped") == 2,
+             30, "old cycle skipped")
+    st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(tmp_path / "state")],
+                        capture_output=True, text=True, timeout=30).stdout
+    assert "0 waiting, 2 failed" in st and "skipped (older than catch_up_hours)" in st, st
+    rp = subprocess.run([str(leeward_bin_path()), "reprocess", "--state-dir", str(tmp_path / "state"),
+                         "--feed", "demo", "--cycle", "2026-03-14T00:00Z", "--lead", "6"],
+                        capture_output=True, text=True, timeout=30)
+    assert rp.returncode == 0, rp.stderr
+    wait_for(lambda: len(svc.published()) == 1, DEADLINE_S, "the asked step made")
+    time.sleep(1.5)
+    assert [r["step"]["lead"] for r in svc.published()] == [6], "only the asked step"
     assert svc.stop() == 0
