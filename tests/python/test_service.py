@@ -108,8 +108,10 @@ levels_hpa = {LEVELS_HPA}
 class Service:
     """One `leeward serve` process on a temporary tree."""
 
-    def __init__(self, root: Path, extra_service: str = "", extra: str = "", args=(), env=None):
+    def __init__(self, root: Path, extra_service: str = "", extra: str = "", args=(), env=None,
+                 prefix=()):
         self.root = root
+        self.prefix = list(prefix)
         self.port = free_port()
         (root / "in").mkdir(parents=True, exist_ok=True)
         self.cfg = root / "leeward.toml"
@@ -123,7 +125,7 @@ class Service:
     def start(self):
         self.logf = open(self.log, "ab")
         self.proc = subprocess.Popen(
-            [str(leeward_bin_path()), *self.args, "serve", "--config", str(self.cfg)],
+            [*self.prefix, str(leeward_bin_path()), *self.args, "serve", "--config", str(self.cfg)],
             stdout=self.logf, stderr=subprocess.STDOUT, env=self.env)
         wait_for(lambda: self.health() is not None or self.proc.poll() is not None, 30,
                  "service up")
@@ -665,3 +667,36 @@ def test_old_cycles_are_skipped_not_left_waiting_and_reprocess_makes_them(tmp_pa
     time.sleep(1.5)
     assert [r["step"]["lead"] for r in svc.published()] == [6], "only the asked step"
     assert svc.stop() == 0
+
+
+def test_permission_denied_on_the_output_is_retried_until_it_is_fixed():
+    """As an unprivileged user (root ignores permissions), an output tree it may
+    not write: retried with back-off, then published once the owner is fixed."""
+    if os.geteuid() != 0 or subprocess.run(["which", "setpriv"], capture_output=True).returncode:
+        pytest.skip("needs root and setpriv to run the service as another user")
+    import shutil
+    import tempfile
+    root = Path(tempfile.mkdtemp(prefix="leeward-perm-"))
+    try:
+        os.chmod(root, 0o755)
+        for d in ("in", "state", "out"):
+            (root / d).mkdir()
+        nobody = 65534
+        os.chown(root / "in", nobody, nobody)
+        os.chown(root / "state", nobody, nobody)
+        svc = Service(root, prefix=["setpriv", f"--reuid={nobody}", f"--regid={nobody}",
+                                    "--clear-groups"])
+        os.chmod(svc.cfg, 0o644)
+        svc.start()
+        f = demo_inputs(root / "gen", "2026031400", [0])[0]
+        deliver_renamed(f.read_bytes(), root / "in" / f.name)
+        wait_for(lambda: svc.metric("leeward_step_retries_total", feed="demo") >= 2, 60,
+                 "retries on a directory it may not write")
+        log = svc.log.read_text()
+        assert "Permission denied" in log and str(root / "out") in log, log[-2000:]
+        assert svc.proc.poll() is None and svc.health() == 200
+        os.chown(root / "out", nobody, nobody)
+        wait_for(lambda: len(svc.published()) == 1, 60, "published once it may write")
+        assert svc.stop() == 0
+    finally:
+        shutil.rmtree(root, ignore_errors=True)
