@@ -365,14 +365,27 @@ impl Daemon {
         let mut dirs: Vec<PathBuf> = Vec::new();
         for r in &self.rules {
             if !r.dir.exists() {
-                // Group-writable and set-group-id, like the base directory of the
-                // tmpfiles configuration: the feed's own user delivers into it.
+                // Group-writable, so that the feed's own user (in leeward's group)
+                // can deliver into it; the set-group-id bit comes from the parent
+                // (the unit forbids setting it by chmod, and its UMask=0002 keeps
+                // group write, so no chmod is needed there).
                 use std::os::unix::fs::PermissionsExt;
                 let made = std::fs::create_dir_all(&r.dir).and_then(|()| {
-                    std::fs::set_permissions(&r.dir, std::fs::Permissions::from_mode(0o2775))
+                    let mode = std::fs::metadata(&r.dir)?.permissions().mode();
+                    if mode & 0o020 == 0 && mode & 0o6000 == 0 {
+                        std::fs::set_permissions(
+                            &r.dir,
+                            std::fs::Permissions::from_mode((mode & 0o777) | 0o070),
+                        )?;
+                    }
+                    Ok(())
                 });
                 if let Err(e) = made {
                     warn!(feed = %r.feed.name, dir = %r.dir.display(), error = %e, "cannot create the incoming directory");
+                } else if std::fs::metadata(&r.dir)
+                    .is_ok_and(|m| m.permissions().mode() & 0o020 == 0)
+                {
+                    warn!(feed = %r.feed.name, dir = %r.dir.display(), "incoming directory made without group write: the feed's user may not deliver into it (see docs/operations.md)");
                 }
             }
             if dirs.contains(&r.dir) {
@@ -620,6 +633,16 @@ impl Daemon {
                 if self.ledger.state.settled(&tag) || self.asm.steps.contains_key(&tag) {
                     continue;
                 }
+            }
+            let skipped_before = matches!(
+                self.ledger.state.steps.get(&tag).map(|s| &s.outcome),
+                Some(Outcome::Failed {
+                    kind: FailKind::Skipped,
+                    ..
+                })
+            );
+            if skipped_before && !asked(&tag) {
+                continue;
             }
             if self.ledger.state.settled(&tag) {
                 let used = self
