@@ -107,6 +107,40 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// List what is in GRIB2 files: per field the quantity, level, times, grid, packing and value range.
+    Inspect {
+        /// GRIB2 files.
+        #[arg(required = true)]
+        files: Vec<PathBuf>,
+        /// Print JSON (one object per file, in an array) instead of text.
+        #[arg(long)]
+        json: bool,
+        /// Do not decode the values (faster; no ranges).
+        #[arg(long)]
+        no_values: bool,
+    },
+    /// Check a configuration file: every problem at once, each naming its key; then the
+    /// configuration as it will be used, with every default filled in.
+    ///
+    /// Exit codes: 0 valid; 2 invalid.
+    CheckConfig {
+        /// The configuration file (TOML).
+        file: PathBuf,
+        /// Print only the problems (or nothing if valid).
+        #[arg(long)]
+        quiet: bool,
+    },
+    /// Print a shell completion script (bash, zsh, fish, elvish, powershell).
+    Completions {
+        /// The shell.
+        shell: clap_complete::Shell,
+    },
+    /// Write the manual pages (roff) of leeward and its commands into a directory.
+    Man {
+        /// Directory for the pages (created if missing).
+        #[arg(long, default_value = ".")]
+        out: PathBuf,
+    },
     /// Ask the running service to make a cycle (or one step of it) again, e.g. after fixing the configuration.
     ///
     /// The request waits in the state directory until the service takes it
@@ -200,6 +234,23 @@ pub fn main() -> ExitCode {
             cycle,
             lead,
         } => ExitCode::from(reprocess(&state_dir, feed, &cycle, lead)),
+        Command::Inspect {
+            files,
+            json,
+            no_values,
+        } => ExitCode::from(inspect(&files, json, !no_values)),
+        Command::CheckConfig { file, quiet } => ExitCode::from(check_config(&file, quiet)),
+        Command::Completions { shell } => {
+            use clap::CommandFactory;
+            clap_complete::generate(
+                shell,
+                &mut Cli::command(),
+                "leeward",
+                &mut std::io::stdout(),
+            );
+            ExitCode::from(exit::OK)
+        }
+        Command::Man { out } => ExitCode::from(man(&out)),
     }
 }
 
@@ -318,6 +369,115 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
         exit::PARTIAL
     } else {
         exit::OK
+    }
+}
+
+/// `leeward inspect`: returns the exit code.
+pub fn inspect(files: &[PathBuf], json: bool, with_values: bool) -> u8 {
+    let mut listings = Vec::new();
+    let mut failed = 0;
+    for f in files {
+        match std::fs::read(f) {
+            Ok(b) => listings.push(crate::ingest::inspect::inspect(
+                &f.display().to_string(),
+                &b,
+                with_values,
+            )),
+            Err(e) => {
+                eprintln!("leeward: {}: cannot read: {e}", f.display());
+                failed += 1;
+            }
+        }
+    }
+    if json {
+        match serde_json::to_string_pretty(&listings) {
+            Ok(t) => println!("{t}"),
+            Err(e) => {
+                eprintln!("leeward: {e}");
+                return exit::NOTHING;
+            }
+        }
+    } else {
+        for l in &listings {
+            print!("{}", crate::ingest::inspect::render(l));
+        }
+    }
+    let unusable = listings
+        .iter()
+        .any(|l| !l.problems.is_empty() || l.fields.iter().any(|f| f.unusable.is_some()));
+    if listings.is_empty() {
+        exit::NOTHING
+    } else if failed > 0 || unusable {
+        exit::PARTIAL
+    } else {
+        exit::OK
+    }
+}
+
+/// `leeward check-config`: returns the exit code.
+pub fn check_config(file: &std::path::Path, quiet: bool) -> u8 {
+    let text = match std::fs::read_to_string(file) {
+        Ok(t) => t,
+        Err(e) => {
+            eprintln!("leeward: cannot read config {}: {e}", file.display());
+            return exit::USAGE;
+        }
+    };
+    match crate::config::check(&text, &file.display().to_string()) {
+        Ok(cfg) => {
+            if !quiet {
+                println!(
+                    "# {}: valid; the configuration as leeward uses it, every default filled in",
+                    file.display()
+                );
+                match toml::to_string_pretty(&cfg) {
+                    Ok(t) => print!("{t}"),
+                    Err(e) => eprintln!("leeward: {e}"),
+                }
+            }
+            exit::OK
+        }
+        Err(problems) => {
+            eprintln!("leeward: {}: {} problem(s)", file.display(), problems.len());
+            for p in &problems {
+                eprintln!("  {p}");
+            }
+            exit::USAGE
+        }
+    }
+}
+
+/// `leeward man`: returns the exit code.
+pub fn man(out: &std::path::Path) -> u8 {
+    use clap::CommandFactory;
+    let cmd = Cli::command();
+    let write = |name: &str, c: clap::Command| -> std::io::Result<()> {
+        let mut buf = Vec::new();
+        clap_mangen::Man::new(c).render(&mut buf)?;
+        std::fs::write(out.join(format!("{name}.1")), buf)
+    };
+    let r = std::fs::create_dir_all(out).and_then(|()| {
+        write("leeward", cmd.clone())?;
+        for sub in cmd.get_subcommands() {
+            // clap names commands with 'static strings; this runs once and exits.
+            let name: &'static str =
+                Box::leak(format!("leeward-{}", sub.get_name()).into_boxed_str());
+            write(name, sub.clone().name(name))?;
+        }
+        Ok(())
+    });
+    match r {
+        Ok(()) => {
+            println!("manual pages written to {}", out.display());
+            exit::OK
+        }
+        Err(e) => {
+            eprintln!(
+                "leeward: cannot write manual pages in {}: {e}",
+                out.display()
+            );
+            exit::NOTHING
+        }
     }
 }
 

@@ -54,8 +54,36 @@ pub struct Config {
     pub changes: Changes,
     /// The service (`leeward serve`): directories, workers, timeouts.
     pub service: crate::service::settings::Service,
+    /// Quicklook images beside each product file.
+    pub quicklook: Quicklooks,
     /// The model feeds the service serves.
     pub feed: Vec<crate::service::settings::Feed>,
+}
+
+/// Quicklook images (PNG) beside each product file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Quicklooks {
+    /// Write them.
+    pub enabled: bool,
+    /// Images, each `variable` or `variable@level`: the level in the variable's
+    /// vertical coordinate (hPa, K, PVU), `bottom-top` for a layer.
+    pub images: Vec<String>,
+}
+
+impl Default for Quicklooks {
+    fn default() -> Self {
+        Quicklooks {
+            enabled: false,
+            images: vec![
+                "trop_p@2".into(),
+                "isen_pv@320".into(),
+                "eta@500".into(),
+                "thick@1000-500".into(),
+                "thick_chg_06h@1000-500".into(),
+            ],
+        }
+    }
 }
 
 /// Settings of the changes in time.
@@ -305,6 +333,11 @@ impl Config {
         {
             p.push(format!("changes.intervals_h: {h} h is outside 1 to 240 h"));
         }
+        for (k, s) in self.quicklook.images.iter().enumerate() {
+            if let Err(e) = crate::output::images::parse(s) {
+                p.push(format!("quicklook.images[{k}]: {e}"));
+            }
+        }
         p.extend(crate::service::settings::problems(
             &self.service,
             &self.feed,
@@ -324,9 +357,216 @@ impl Config {
     }
 }
 
+/// Check a configuration text and report every problem at once: unknown
+/// keys anywhere, values of the wrong type in each table, and values that
+/// parse but do not make sense, each named by its key. Only a TOML syntax
+/// error stops the check early (the rest cannot be read).
+pub fn check(text: &str, origin: &str) -> Result<Config, Vec<String>> {
+    let value: toml::Value = toml::from_str(text).map_err(|e| vec![format!("{origin}: {e}")])?;
+    let mut problems = Vec::new();
+    let as_value =
+        |v: Result<toml::Value, toml::ser::Error>| v.unwrap_or(toml::Value::Boolean(false));
+    let known = as_value(toml::Value::try_from(Config::default()));
+    let feed_known = as_value(toml::Value::try_from(
+        crate::service::settings::Feed::default(),
+    ));
+    let products_known = as_value(toml::Value::try_from(Products::default()));
+    fn unknown(v: &toml::Value, k: &toml::Value, path: &str, out: &mut Vec<String>) {
+        if let (Some(t), Some(kt)) = (v.as_table(), k.as_table()) {
+            for (key, sub) in t {
+                let p = if path.is_empty() {
+                    key.clone()
+                } else {
+                    format!("{path}.{key}")
+                };
+                match kt.get(key) {
+                    None => out.push(format!("{p}: unknown key")),
+                    Some(ks) if ks.is_table() => unknown(sub, ks, &p, out),
+                    _ => {}
+                }
+            }
+        }
+    }
+    if let Some(t) = value.as_table() {
+        for (key, sub) in t {
+            match (key.as_str(), known.get(key)) {
+                ("feed", _) => match sub.as_array() {
+                    Some(feeds) => {
+                        for (k, f) in feeds.iter().enumerate() {
+                            let path = format!("feed[{k}]");
+                            for (fk, fv) in f.as_table().into_iter().flatten() {
+                                if fk == "products" {
+                                    let p = format!("{path}.products");
+                                    unknown(fv, &products_known, &p, &mut problems);
+                                } else if feed_known.get(fk).is_none() {
+                                    problems.push(format!("{path}.{fk}: unknown key"));
+                                }
+                            }
+                        }
+                    }
+                    None => {
+                        problems.push("feed: must be an array of tables, written [[feed]]".into())
+                    }
+                },
+                (_, None) => problems.push(format!("{key}: unknown table or key")),
+                (_, Some(k)) => unknown(sub, k, key, &mut problems),
+            }
+        }
+    }
+    let mut cleaned = value.clone();
+    prune(&mut cleaned, &known, &feed_known, &products_known);
+    // Wrong types, table by table, so that one bad table does not hide the others.
+    fn typed<T: serde::de::DeserializeOwned>(
+        v: Option<&toml::Value>,
+        name: &str,
+        out: &mut Vec<String>,
+    ) {
+        if let Some(v) = v {
+            if let Err(e) = v.clone().try_into::<T>() {
+                out.push(format!("{name}: {}", e.to_string().trim()));
+            }
+        }
+    }
+    typed::<Products>(cleaned.get("products"), "products", &mut problems);
+    typed::<Output>(cleaned.get("output"), "output", &mut problems);
+    typed::<Isentropic>(cleaned.get("isentropic"), "isentropic", &mut problems);
+    typed::<Thickness>(cleaned.get("thickness"), "thickness", &mut problems);
+    typed::<Changes>(cleaned.get("changes"), "changes", &mut problems);
+    typed::<Quicklooks>(cleaned.get("quicklook"), "quicklook", &mut problems);
+    typed::<crate::service::settings::Service>(cleaned.get("service"), "service", &mut problems);
+    if let Some(feeds) = cleaned.get("feed").and_then(|f| f.as_array()) {
+        for (k, f) in feeds.iter().enumerate() {
+            typed::<crate::service::settings::Feed>(Some(f), &format!("feed[{k}]"), &mut problems);
+        }
+    }
+    if problems.is_empty() {
+        return match Config::from_toml(text, origin) {
+            Ok(c) => Ok(c),
+            Err(ConfigError::Invalid { problems, .. }) => Err(problems),
+            Err(e) => Err(vec![e.to_string()]),
+        };
+    }
+    // Check the values too, in one run: without the unknown keys, and with
+    // each table of the wrong type left at its defaults.
+    if let Some(t) = cleaned.as_table_mut() {
+        let bad: Vec<String> = t
+            .iter()
+            .filter(|(k, v)| {
+                k.as_str() != "feed" && {
+                    let mut one = toml::map::Map::new();
+                    one.insert((*k).clone(), (*v).clone());
+                    toml::Value::Table(one).try_into::<Config>().is_err()
+                }
+            })
+            .map(|(k, _)| k.clone())
+            .collect();
+        for k in bad {
+            t.remove(&k);
+        }
+        if let Some(feeds) = t.get_mut("feed").and_then(|f| f.as_array_mut()) {
+            feeds.retain(|f| {
+                f.clone()
+                    .try_into::<crate::service::settings::Feed>()
+                    .is_ok()
+            });
+        }
+    }
+    if let Ok(cfg) = cleaned.try_into::<Config>() {
+        problems.extend(cfg.problems());
+    }
+    Err(problems)
+}
+
+/// Remove the keys `known` does not have, at every depth, and in each feed.
+fn prune(v: &mut toml::Value, known: &toml::Value, feed: &toml::Value, products: &toml::Value) {
+    fn walk(v: &mut toml::Value, k: &toml::Value) {
+        if let (Some(t), Some(kt)) = (v.as_table_mut(), k.as_table()) {
+            t.retain(|key, _| kt.contains_key(key));
+            for (key, sub) in t.iter_mut() {
+                if let Some(ks) = kt.get(key).filter(|x| x.is_table()) {
+                    walk(sub, ks);
+                }
+            }
+        }
+    }
+    let feeds = v.as_table_mut().and_then(|t| t.remove("feed"));
+    walk(v, known);
+    if let (Some(t), Some(toml::Value::Array(mut fs))) = (v.as_table_mut(), feeds) {
+        for f in fs.iter_mut() {
+            let p = f.as_table_mut().and_then(|t| t.remove("products"));
+            walk(f, feed);
+            if let (Some(ft), Some(mut p)) = (f.as_table_mut(), p) {
+                walk(&mut p, products);
+                ft.insert("products".into(), p);
+            }
+        }
+        t.insert("feed".into(), toml::Value::Array(fs));
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn check_reports_every_planted_error_in_one_run() {
+        let text = r#"
+[products]
+vorticity = "yes"
+colour = true
+[output]
+deflate_level = 12
+[isentropic]
+surfaces = [300.0, 290.0]
+[thickness]
+layers_hpa = [[500.0, 1000.0]]
+[service]
+workers = 0
+metrics_listen = "not an address"
+[[feed]]
+name = "bad name"
+file_pattern = "("
+complete = "marker"
+[[feed]]
+name = "ok"
+levels_hpa = [500.0]
+shelf = 3
+[[feed]]
+name = "off"
+levels_hpa = [500.0]
+[feed.products]
+vorticity = false
+stability = false
+isobaric_pv = false
+isentropic = false
+tropopause = false
+layer_pv = false
+thickness = false
+[extras]
+x = 1
+"#;
+        // Unknown keys, wrong types and bad values, all in one run.
+        let p = check(text, "t").unwrap_err();
+        for want in [
+            "products.colour: unknown key",
+            "feed[1].shelf: unknown key",
+            "extras: unknown",
+            "products: ",
+            "output.deflate_level",
+            "isentropic.surfaces",
+            "thickness.layers_hpa[0]",
+            "service.workers",
+            "service.metrics_listen",
+            "feed[0].name",
+            "feed[0].file_pattern",
+            "feed[0].marker_pattern",
+            "feed[2].products",
+        ] {
+            assert!(p.iter().any(|x| x.starts_with(want)), "{want}: {p:?}");
+        }
+        assert!(check("", "t").is_ok());
+        assert!(check("[output\n", "t").is_err());
+    }
 
     #[test]
     fn defaults_and_every_problem_at_once() {

@@ -246,6 +246,8 @@ pub struct StepReport {
     pub family_seconds: Vec<(&'static str, f64)>,
     /// Why nothing was written, when nothing was.
     pub skipped: Option<String>,
+    /// Quicklook images written beside the product.
+    pub images: Vec<PathBuf>,
     /// True when the products were made but could not be written (disk full,
     /// permission denied): worth trying again, unlike a problem with the input.
     pub output_failed: bool,
@@ -1188,6 +1190,15 @@ pub fn run_step(
             }
             rep.changes_seconds = t_changes.elapsed().as_secs_f64();
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");
+            if cfg.quicklook.enabled {
+                let wanted: Vec<_> = cfg
+                    .quicklook
+                    .images
+                    .iter()
+                    .filter_map(|s| crate::output::images::parse(s).ok())
+                    .collect();
+                rep.images = crate::output::images::write_images(&path, &products, &wanted);
+            }
             rep.output = Some(path);
             if let Some(hook) = out.on_published {
                 rep.issues = std::mem::take(&mut issues);

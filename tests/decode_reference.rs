@@ -11,33 +11,6 @@ use leeward::ingest::decode::decode_raw;
 use leeward::ingest::grid::parse_grid;
 use serde_json::Value;
 
-/// Largest difference the packing allows between two correct decoders: half a
-/// step of the packed integers, 2^E / 10^D / 2 (WMO-No. 306, template 5.0
-/// regulation Y = (R + X 2^E) / 10^D), plus f32 rounding of the values.
-fn tolerance(sect5: &[u8], value: f64) -> f64 {
-    let e = leeward::ingest::bytes::u16_at(sect5, 15).map(|v| {
-        let mag = i32::from(v & 0x7fff);
-        if v & 0x8000 != 0 {
-            -mag
-        } else {
-            mag
-        }
-    });
-    let d = leeward::ingest::bytes::u16_at(sect5, 17).map(|v| {
-        let mag = i32::from(v & 0x7fff);
-        if v & 0x8000 != 0 {
-            -mag
-        } else {
-            mag
-        }
-    });
-    let step = match (e, d) {
-        (Some(e), Some(d)) => 2f64.powi(e) / 10f64.powi(d),
-        _ => 0.0,
-    };
-    0.5 * step + 2e-6 * value.abs() + 1e-9
-}
-
 #[test]
 fn every_sample_field_matches_the_ecodes_reference() {
     let Some(dir) = common::samples_dir("every_sample_field_matches_the_ecodes_reference") else {
@@ -134,7 +107,7 @@ fn every_sample_field_matches_the_ecodes_reference() {
                 ] {
                     let want = want.as_f64().unwrap();
                     assert!(
-                        (got - want).abs() <= tolerance(sect5, want),
+                        (got - want).abs() <= common::tolerance(sect5, want),
                         "{ctx}: {what} {got} vs ecCodes {want}"
                     );
                 }
@@ -145,7 +118,7 @@ fn every_sample_field_matches_the_ecodes_reference() {
                     Some(w) => {
                         let g = f64::from(values[k]);
                         assert!(
-                            (g - w).abs() <= tolerance(sect5, w),
+                            (g - w).abs() <= common::tolerance(sect5, w),
                             "{ctx}: value {k} {g} vs ecCodes {w}"
                         );
                     }

@@ -8,4 +8,5 @@ pub mod bytes;
 pub mod catalogue;
 pub mod decode;
 pub mod grid;
+pub mod inspect;
 pub mod params;

@@ -4,6 +4,8 @@
 //! Names, units and attributes of every variable come from [`variables`].
 
 pub mod cf;
+pub mod images;
+pub mod quicklook;
 pub mod store;
 pub mod variables;
 
@@ -79,4 +81,27 @@ pub fn temporary_suffix() -> String {
         std::process::id(),
         N.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
     )
+}
+
+/// Write `bytes` to `path` atomically: a hidden temporary beside it, fsync,
+/// rename, fsync of the directory. A reader sees the old file or the new one.
+pub fn write_file_atomic(path: &std::path::Path, bytes: &[u8]) -> std::io::Result<()> {
+    use std::io::Write;
+    let dir = path.parent().unwrap_or(std::path::Path::new("."));
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let tmp = dir.join(format!(".{name}.partial-{}", temporary_suffix()));
+    let r = (|| {
+        let mut f = std::fs::File::create(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+        std::fs::rename(&tmp, path)?;
+        std::fs::File::open(dir)?.sync_all()
+    })();
+    if r.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    r
 }

@@ -7,7 +7,6 @@
 //! trigger on. Every file is written under a hidden temporary name, fsynced
 //! and renamed into place, so a reader never sees a partial file.
 
-use std::io::Write;
 use std::path::{Path, PathBuf};
 
 use chrono::{NaiveDateTime, TimeDelta, Utc};
@@ -81,6 +80,9 @@ pub struct Manifest {
     pub product_checksum: String,
     /// Variables in the product file.
     pub variables: Vec<String>,
+    /// Quicklook images beside it (file names).
+    #[serde(default)]
+    pub images: Vec<String>,
     /// The grid.
     pub grid: String,
     /// Inputs used.
@@ -105,26 +107,8 @@ fn now_iso() -> String {
     Utc::now().format("%Y-%m-%dT%H:%M:%S%.3fZ").to_string()
 }
 
-/// Write `bytes` to `path` atomically: hidden temporary beside it, fsync, rename, fsync of the directory.
-pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    let dir = path.parent().unwrap_or(Path::new("."));
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
-    let tmp = dir.join(format!(".{name}.manifest-{}", std::process::id()));
-    let r = (|| {
-        let mut f = std::fs::File::create(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-        std::fs::rename(&tmp, path)?;
-        std::fs::File::open(dir)?.sync_all()
-    })();
-    if r.is_err() {
-        let _ = std::fs::remove_file(&tmp);
-    }
-    r
-}
+/// Write `bytes` to `path` atomically (see [`crate::output::write_file_atomic`]).
+pub use crate::output::write_file_atomic as write_atomic;
 
 fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
     let b = std::fs::read(path)?;
@@ -184,6 +168,11 @@ pub fn write_manifest(
         product_bytes: bytes,
         product_checksum: checksum,
         variables: variables_of(product),
+        images: rep
+            .images
+            .iter()
+            .filter_map(|p| p.file_name().map(|n| n.to_string_lossy().into_owned()))
+            .collect(),
         grid: rep.grid.clone(),
         inputs: facts.inputs.clone(),
         missing: rep

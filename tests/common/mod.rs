@@ -42,3 +42,30 @@ pub fn correlation(a: &[f64], b: &[f64]) -> f64 {
 pub fn rms_diff(a: &[f64], b: &[f64]) -> f64 {
     (a.iter().zip(b).map(|(x, y)| (x - y) * (x - y)).sum::<f64>() / a.len() as f64).sqrt()
 }
+
+/// Largest difference the packing allows between two correct decoders: half a
+/// step of the packed integers, 2^E / 10^D / 2 (WMO-No. 306, template 5.0
+/// regulation Y = (R + X 2^E) / 10^D), plus f32 rounding of the values.
+pub fn tolerance(sect5: &[u8], value: f64) -> f64 {
+    let e = leeward::ingest::bytes::u16_at(sect5, 15).map(|v| {
+        let mag = i32::from(v & 0x7fff);
+        if v & 0x8000 != 0 {
+            -mag
+        } else {
+            mag
+        }
+    });
+    let d = leeward::ingest::bytes::u16_at(sect5, 17).map(|v| {
+        let mag = i32::from(v & 0x7fff);
+        if v & 0x8000 != 0 {
+            -mag
+        } else {
+            mag
+        }
+    });
+    let step = match (e, d) {
+        (Some(e), Some(d)) => 2f64.powi(e) / 10f64.powi(d),
+        _ => 0.0,
+    };
+    0.5 * step + 2e-6 * value.abs() + 1e-9
+}

@@ -1,0 +1,313 @@
+//! What is in a GRIB2 file, for people and scripts (`leeward inspect`).
+//!
+//! In: a file's bytes. Out: one [`FieldListing`] per field: the quantity (our
+//! name and its WMO discipline/category/number), the level with its units,
+//! reference and valid time, the grid (template, size, spacing), the packing
+//! (template, bits per value) and the range of the decoded values; fields
+//! leeward cannot use carry the reason. Built on the same catalogue, grid
+//! parser and decoder as the pipeline, so what it shows is what leeward sees.
+
+use serde::Serialize;
+
+use super::catalogue::{catalogue, FieldEntry};
+use super::decode::decode_raw;
+use super::grid::parse_grid;
+use super::params::{surface, Quantity};
+use crate::geometry::Horizontal;
+
+/// One field as listed.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct FieldListing {
+    /// Field number in the file, from 0.
+    pub index: usize,
+    /// Byte offset of its message.
+    pub offset: usize,
+    /// leeward's name of the quantity, if leeward knows it.
+    pub quantity: Option<String>,
+    /// WMO discipline (code table 0.0), parameter category (4.1) and number (4.2).
+    pub wmo: [u8; 3],
+    /// Level for people, e.g. "500 hPa", "ground surface".
+    pub level: String,
+    /// Type of the first fixed surface (code table 4.5) and its value in SI units.
+    pub level_type: u8,
+    /// Value of the first fixed surface (Pa for isobaric levels), if any.
+    pub level_value: Option<f64>,
+    /// Reference time, ISO 8601.
+    pub reference_time: String,
+    /// Valid time, ISO 8601.
+    pub valid_time: String,
+    /// Lead time, hours.
+    pub lead_hours: f64,
+    /// Ensemble member, if any.
+    pub member: Option<u8>,
+    /// Originating centre (common code table C-11).
+    pub centre: u16,
+    /// Product definition template (4.x).
+    pub product_template: u16,
+    /// Grid definition template (3.x).
+    pub grid_template: u16,
+    /// The grid, when leeward can read it.
+    pub grid: Option<String>,
+    /// Columns and rows.
+    pub size: Option<[usize; 2]>,
+    /// Spacing for people, e.g. "0.25 x 0.25 deg", "32.46 x 32.46 km".
+    pub spacing: Option<String>,
+    /// Why the grid cannot be used, if it cannot.
+    pub grid_problem: Option<String>,
+    /// Data representation template (5.x).
+    pub packing_template: u16,
+    /// Bits per packed value, where the template has them.
+    pub bits_per_value: Option<u8>,
+    /// Points in the grid.
+    pub points: usize,
+    /// Missing points (bitmap), when decoded.
+    pub missing: Option<usize>,
+    /// Smallest decoded value.
+    pub min: Option<f64>,
+    /// Largest decoded value.
+    pub max: Option<f64>,
+    /// Mean of the decoded values.
+    pub mean: Option<f64>,
+    /// Why the field cannot be used, if it cannot.
+    pub unusable: Option<String>,
+}
+
+/// A whole file as listed.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct FileListing {
+    /// The path as given.
+    pub file: String,
+    /// Its size, bytes.
+    pub bytes: usize,
+    /// Its fields.
+    pub fields: Vec<FieldListing>,
+    /// Problems of the file's structure (lengths, markers), with the byte offset.
+    pub problems: Vec<String>,
+}
+
+fn level_text(e: &FieldEntry) -> String {
+    match (e.level.kind, e.level.value) {
+        (surface::ISOBARIC, Some(p)) => format!("{} hPa", p / 100.0),
+        (surface::ISENTROPIC, Some(t)) => format!("{t} K"),
+        (surface::POTENTIAL_VORTICITY, Some(v)) => format!("{} PVU", v * 1e6),
+        (103, Some(h)) => format!("{h} m above ground"),
+        (k, Some(v)) => format!("{} {v}", surface::describe(k)),
+        (k, None) => surface::describe(k).to_string(),
+    }
+}
+
+fn spacing(h: &Horizontal) -> Option<String> {
+    let step = |v: &[f64]| (v.len() > 1).then(|| (v[v.len() - 1] - v[0]) / (v.len() - 1) as f64);
+    match h {
+        Horizontal::LatLon { lat, lon, .. } => Some(format!(
+            "{:.4} x {:.4} deg",
+            step(lon)?.abs(),
+            step(lat)?.abs()
+        )),
+        Horizontal::Rotated { rlat, rlon, .. } => Some(format!(
+            "{:.4} x {:.4} deg (rotated)",
+            step(rlon)?.abs(),
+            step(rlat)?.abs()
+        )),
+        Horizontal::Projected { x, y, .. } => Some(format!(
+            "{:.3} x {:.3} km",
+            step(x)?.abs() / 1000.0,
+            step(y)?.abs() / 1000.0
+        )),
+    }
+}
+
+fn bits_per_value(template: u16, sect5: &[u8]) -> Option<u8> {
+    // Octet 20 of section 5 in templates 5.0, 5.2, 5.3, 5.40, 5.41, 5.42 (WMO-No. 306).
+    matches!(template, 0 | 2 | 3 | 40 | 41 | 42)
+        .then(|| sect5.get(19).copied())
+        .flatten()
+}
+
+/// List every field of a file.
+pub fn inspect(file: &str, bytes: &[u8], with_values: bool) -> FileListing {
+    let cat = catalogue(bytes);
+    let mut fields = Vec::new();
+    for e in &cat.fields {
+        let (grid, size, sp, grid_problem) = match bytes
+            .get(e.sect3.clone())
+            .ok_or_else(|| "section 3 outside the file".to_string())
+            .and_then(|s| parse_grid(s).map_err(|x| x.to_string()))
+        {
+            Ok((g, _)) => (
+                Some(g.describe()),
+                Some([g.nx(), g.ny()]),
+                spacing(&g.horizontal),
+                None,
+            ),
+            Err(r) => (None, None, None, Some(r)),
+        };
+        let (mut missing, mut min, mut max, mut mean) = (None, None, None, None);
+        let mut unusable = e.unusable.clone();
+        if with_values && unusable.is_none() {
+            match decode_raw(bytes, e) {
+                Ok(v) => {
+                    let valid: Vec<f64> = v
+                        .iter()
+                        .filter(|x| x.is_finite())
+                        .map(|&x| f64::from(x))
+                        .collect();
+                    missing = Some(v.len() - valid.len());
+                    if !valid.is_empty() {
+                        min = Some(valid.iter().copied().fold(f64::INFINITY, f64::min));
+                        max = Some(valid.iter().copied().fold(f64::NEG_INFINITY, f64::max));
+                        mean = Some(valid.iter().sum::<f64>() / valid.len() as f64);
+                    }
+                }
+                Err(x) => unusable = Some(x.to_string()),
+            }
+        }
+        fields.push(FieldListing {
+            index: e.index,
+            offset: e.message_offset,
+            quantity: Quantity::from_wmo(e.discipline, e.category, e.number)
+                .map(|q| q.name().to_string()),
+            wmo: [e.discipline, e.category, e.number],
+            level: level_text(e),
+            level_type: e.level.kind,
+            level_value: e.level.value,
+            reference_time: e.reference_time.format("%Y-%m-%dT%H:%M:%SZ").to_string(),
+            valid_time: e.valid_time.format("%Y-%m-%dT%H:%M:%SZ").to_string(),
+            lead_hours: e.lead.num_seconds() as f64 / 3600.0,
+            member: e.member,
+            centre: e.centre,
+            product_template: e.product_template,
+            grid_template: e.grid_template,
+            grid,
+            size,
+            spacing: sp,
+            grid_problem,
+            packing_template: e.data_template,
+            bits_per_value: bytes
+                .get(e.sect5.clone())
+                .and_then(|s| bits_per_value(e.data_template, s)),
+            points: e.num_points,
+            missing,
+            min,
+            max,
+            mean,
+            unusable,
+        });
+    }
+    FileListing {
+        file: file.to_string(),
+        bytes: bytes.len(),
+        fields,
+        problems: cat
+            .problems
+            .iter()
+            .map(|p| format!("at byte {}: {}", p.offset, p.reason))
+            .collect(),
+    }
+}
+
+fn short(x: f64) -> String {
+    let a = x.abs();
+    if a != 0.0 && !(1e-3..1e6).contains(&a) {
+        format!("{x:.4e}")
+    } else {
+        format!("{x:.4}")
+    }
+}
+
+/// The listing as text: one header line per file, one line per field.
+pub fn render(l: &FileListing) -> String {
+    let mut o = format!(
+        "{}: {} bytes, {} field(s)\n",
+        l.file,
+        l.bytes,
+        l.fields.len()
+    );
+    if !l.fields.is_empty() {
+        o.push_str(&format!(
+            "  {:>4}  {:<28} {:<14} {:<24} {:<44} {:<10} {}\n",
+            "#", "quantity (WMO d/c/n)", "level", "valid (lead)", "grid", "packing", "values"
+        ));
+    }
+    for f in &l.fields {
+        let q = format!(
+            "{} ({}/{}/{})",
+            f.quantity.as_deref().unwrap_or("-"),
+            f.wmo[0],
+            f.wmo[1],
+            f.wmo[2]
+        );
+        let valid = format!(
+            "{} (+{}h)",
+            f.valid_time
+                .get(..16)
+                .unwrap_or(&f.valid_time)
+                .replace('T', " "),
+            short(f.lead_hours)
+        );
+        let grid = match (&f.grid, &f.spacing) {
+            (Some(g), Some(s)) => format!("{g}, {s}"),
+            (Some(g), None) => g.clone(),
+            _ => format!("template 3.{}", f.grid_template),
+        };
+        let packing = match f.bits_per_value {
+            Some(b) => format!("5.{} {b} bit", f.packing_template),
+            None => format!("5.{}", f.packing_template),
+        };
+        let values = match (f.min, f.max, f.mean) {
+            (Some(a), Some(b), Some(m)) => {
+                let mut s = format!("{} to {}, mean {}", short(a), short(b), short(m));
+                if let Some(n) = f.missing.filter(|n| *n > 0) {
+                    s.push_str(&format!(", {n} missing"));
+                }
+                s
+            }
+            _ => String::new(),
+        };
+        o.push_str(&format!(
+            "  {:>4}  {:<28} {:<14} {:<24} {:<44} {:<10} {}\n",
+            f.index, q, f.level, valid, grid, packing, values
+        ));
+        if let Some(r) = f.unusable.as_ref().or(f.grid_problem.as_ref()) {
+            o.push_str(&format!("        not usable: {r}\n"));
+        }
+    }
+    for p in &l.problems {
+        o.push_str(&format!("  problem {p}\n"));
+    }
+    o
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_demo_file_lists_every_field_with_level_grid_and_range() {
+        let dir = std::env::temp_dir().join(format!("leeward-inspect-{}", std::process::id()));
+        let files = crate::demo::write_inputs(&dir, crate::demo::default_cycle(), &[6]).unwrap();
+        let bytes = std::fs::read(&files[0]).unwrap();
+        let l = inspect("demo", &bytes, true);
+        assert_eq!(l.fields.len() % 21, 0, "whole levels");
+        let t500 = l
+            .fields
+            .iter()
+            .find(|f| f.wmo == [0, 0, 0] && f.level == "500 hPa")
+            .expect("temperature at 500 hPa");
+        assert_eq!(t500.quantity.as_deref(), Some("temperature"));
+        assert_eq!(t500.lead_hours, 6.0);
+        assert_eq!(t500.grid_template, 30);
+        assert!(t500.spacing.as_deref().is_some_and(|s| s.ends_with("km")));
+        let (lo, hi) = (t500.min.unwrap(), t500.max.unwrap());
+        assert!(200.0 < lo && lo < hi && hi < 300.0, "{lo} {hi}");
+        let text = render(&l);
+        assert!(
+            text.contains("temperature (0/0/0)") && text.contains("500 hPa"),
+            "{text}"
+        );
+        // A truncated file: what is left is listed, the problem said.
+        let cut = inspect("cut", &bytes[..bytes.len() / 3], true);
+        assert!(!cut.problems.is_empty());
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+}
