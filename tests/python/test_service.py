@@ -105,6 +105,20 @@ levels_hpa = {LEVELS_HPA}
 """
 
 
+_STARTED: list = []
+
+
+@pytest.fixture(autouse=True)
+def _no_service_outlives_its_test():
+    """A test that fails half-way must not leave its service running."""
+    yield
+    while _STARTED:
+        p = _STARTED.pop()
+        if p.poll() is None:
+            p.kill()
+            p.wait(timeout=30)
+
+
 class Service:
     """One `leeward serve` process on a temporary tree."""
 
@@ -127,6 +141,7 @@ class Service:
         self.proc = subprocess.Popen(
             [*self.prefix, str(leeward_bin_path()), *self.args, "serve", "--config", str(self.cfg)],
             stdout=self.logf, stderr=subprocess.STDOUT, env=self.env)
+        _STARTED.append(self.proc)
         wait_for(lambda: self.health() is not None or self.proc.poll() is not None, 30,
                  "service up")
         assert self.proc.poll() is None, self.log.read_text()[-3000:]
