@@ -61,7 +61,9 @@ pub enum Command {
         #[arg(required = true)]
         inputs: Vec<PathBuf>,
     },
-    /// Write the invented demo scenario as GRIB2 and process it: shows leeward at work.
+    /// Play the invented demo cycle through the real service: its GRIB2 files are delivered
+    /// one step at a time into a directory `leeward serve` watches, and a table says per step
+    /// what arrived, what was published and how long it took.
     Demo {
         /// Directory for the demo's input and products (default: a new one under the system temporary directory).
         #[arg(long)]
@@ -72,9 +74,16 @@ pub enum Command {
         /// Cycle of the invented scenario, e.g. 2026031400.
         #[arg(long, default_value = "2026031400")]
         cycle: String,
-        /// Lead times to write, hours, comma-separated.
-        #[arg(long, value_delimiter = ',', default_value = "0,6,12,18,24")]
+        /// Lead times, hours, comma-separated.
+        #[arg(
+            long,
+            value_delimiter = ',',
+            default_value = "0,6,12,18,24,30,36,42,48"
+        )]
         leads: Vec<u32>,
+        /// Seconds between the steps' deliveries.
+        #[arg(long, default_value_t = 1.0)]
+        pause: f64,
     },
     /// Run as a service: watch the feeds' incoming directories and publish each step as it completes.
     ///
@@ -209,7 +218,8 @@ pub fn main() -> ExitCode {
             inputs_only,
             cycle,
             leads,
-        } => ExitCode::from(demo(dir, inputs_only, &cycle, &leads)),
+            pause,
+        } => ExitCode::from(demo(dir, inputs_only, &cycle, &leads, pause)),
         Command::Serve {
             config,
             watch_dir,
@@ -547,42 +557,99 @@ pub fn reprocess(state_dir: &std::path::Path, feed: String, cycle: &str, lead: O
 }
 
 /// `leeward demo`: returns the exit code.
-pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32]) -> u8 {
+pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32], pause: f64) -> u8 {
     let Some(reference) = crate::service::daemon::parse_cycle(cycle) else {
         eprintln!("leeward: --cycle {cycle:?} is not a cycle such as 2026031400");
         return exit::USAGE;
     };
+    if !(0.0..=60.0).contains(&pause) {
+        eprintln!("leeward: --pause {pause} is outside 0 to 60 s");
+        return exit::USAGE;
+    }
     let dir = dir.unwrap_or_else(|| {
         std::env::temp_dir().join(format!(
             "leeward-demo-{}",
             chrono::Utc::now().format("%Y%m%dT%H%M%S")
         ))
     });
-    let incoming = dir.join("incoming");
-    let products = dir.join("products");
-    println!(
-        "leeward demo: writing the invented scenario as GRIB2 into {}",
-        incoming.display()
-    );
-    let inputs = match crate::demo::write_inputs(&incoming, reference, leads) {
-        Ok(v) => v,
-        Err(e) => {
-            eprintln!(
-                "leeward: cannot write the demo input in {}: {e}",
-                incoming.display()
-            );
-            return exit::NOTHING;
-        }
-    };
     if inputs_only {
-        println!("leeward demo: {} input file(s) written", inputs.len());
-        return exit::OK;
+        let incoming = dir.join("incoming");
+        return match crate::demo::write_inputs(&incoming, reference, leads) {
+            Ok(v) => {
+                println!(
+                    "leeward demo: {} input file(s) written to {}",
+                    v.len(),
+                    incoming.display()
+                );
+                exit::OK
+            }
+            Err(e) => {
+                eprintln!(
+                    "leeward: cannot write the demo input in {}: {e}",
+                    incoming.display()
+                );
+                exit::NOTHING
+            }
+        };
     }
-    let code = process(None, products.clone(), inputs);
-    println!("leeward demo: products are in {}", products.display());
+    if let Err(e) = std::fs::create_dir_all(&dir) {
+        eprintln!("leeward: cannot create {}: {e}", dir.display());
+        return exit::NOTHING;
+    }
+    let dir = dir.canonicalize().unwrap_or(dir);
     println!(
-        "    open them with any CF-aware reader, e.g. ncdump -h {}/*.nc (ncdump is in Debian's netcdf-bin)",
-        products.display()
+        "leeward demo: an invented cycle ({} steps) played through `leeward serve` in {}",
+        leads.len(),
+        dir.display()
     );
-    code
+    println!(
+        "  The data are invented; the products are guidance for trained forecasters, not warnings."
+    );
+    let play = crate::demo::play::Play {
+        dir: dir.clone(),
+        reference,
+        leads: leads.to_vec(),
+        pause: std::time::Duration::from_secs_f64(pause),
+    };
+    let t0 = Instant::now();
+    match crate::demo::play::run(&play) {
+        Ok(rows) => {
+            println!();
+            print!("{}", crate::demo::play::render(&rows, &dir));
+            let published = rows.iter().filter(|r| r.published.is_some()).count();
+            println!(
+                "\n{published} of {} step(s) published in {:.1} s.",
+                rows.len(),
+                t0.elapsed().as_secs_f64()
+            );
+            println!("Where to look:");
+            println!(
+                "  products and manifests  {}/products/regional/<cycle>/",
+                dir.display()
+            );
+            println!("  quicklook images        the .png files beside each product");
+            println!(
+                "  the service's state     leeward status --state-dir {}/state",
+                dir.display()
+            );
+            println!("  the service's log       {}/service.log", dir.display());
+            println!(
+                "  the input it was fed    leeward inspect {}/incoming/regional/*.grib2",
+                dir.display()
+            );
+            println!(
+                "  its configuration       leeward check-config {}/leeward.toml",
+                dir.display()
+            );
+            if published == rows.len() {
+                exit::OK
+            } else {
+                exit::PARTIAL
+            }
+        }
+        Err(e) => {
+            eprintln!("leeward demo: {e}");
+            exit::NOTHING
+        }
+    }
 }

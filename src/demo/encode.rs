@@ -89,8 +89,102 @@ fn section(num: u8, body: &[u8]) -> Vec<u8> {
     s
 }
 
-/// Encode one message.
+/// Encode one message: simple packing with 16 bits per value, the binary scale
+/// chosen to span the field's range.
 pub fn encode(m: &Message<'_>) -> Vec<u8> {
+    encode_packed(m, Bits::Fixed16)
+}
+
+/// Encode one message with as few bits per value as its decimal scale factor
+/// needs: the values are rounded to 10^-D and packed with E = 0 when that takes at
+/// most `max_bits` bits, otherwise with `max_bits` bits and the smallest binary
+/// scale E that spans the range.
+pub fn encode_compact(m: &Message<'_>, max_bits: u32) -> Vec<u8> {
+    encode_packed(m, Bits::AtMost(max_bits))
+}
+
+/// How many bits a packed value takes.
+#[derive(Debug, Clone, Copy)]
+enum Bits {
+    Fixed16,
+    AtMost(u32),
+}
+
+fn section5(n: usize, r: f32, e: i32, d: i16, nbits: u32) -> Vec<u8> {
+    let mut s5 = Vec::new();
+    s5.extend_from_slice(&(n as u32).to_be_bytes());
+    s5.extend_from_slice(&0u16.to_be_bytes());
+    s5.extend_from_slice(&r.to_bits().to_be_bytes());
+    s5.extend_from_slice(&sm16(e));
+    s5.extend_from_slice(&sm16(i32::from(d)));
+    s5.extend_from_slice(&[nbits as u8, 0]);
+    s5
+}
+
+fn pack_fixed16(m: &Message<'_>) -> (Vec<u8>, Vec<u8>) {
+    let scale = 10f64.powi(i32::from(m.decimal_scale));
+    let scaled: Vec<f64> = m.values.iter().map(|v| v * scale).collect();
+    let min = scaled.iter().copied().fold(f64::INFINITY, f64::min);
+    let max = scaled.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let range = (max - min).max(0.0);
+    let nbits = 16u32;
+    let e = if range > 0.0 {
+        (range / f64::from((1u32 << nbits) - 1)).log2().ceil() as i32
+    } else {
+        0
+    };
+    let r = min as f32;
+    let step = 2f64.powi(e);
+    let s5 = section5(m.values.len(), r, e, m.decimal_scale, nbits);
+    let mut s7 = Vec::with_capacity(m.values.len() * 2);
+    for v in &scaled {
+        let x = ((v - f64::from(r)) / step).round().clamp(0.0, 65535.0) as u16;
+        s7.extend_from_slice(&x.to_be_bytes());
+    }
+    (s5, s7)
+}
+
+fn pack_at_most(m: &Message<'_>, max_bits: u32) -> (Vec<u8>, Vec<u8>) {
+    let scale = 10f64.powi(i32::from(m.decimal_scale));
+    let scaled: Vec<f64> = m.values.iter().map(|v| v * scale).collect();
+    let min = scaled.iter().copied().fold(f64::INFINITY, f64::min);
+    let max = scaled.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    // A whole-number reference value is exact in the f32 of section 5 (below 2^24).
+    let r = if min.abs() < 16_777_216.0 {
+        min.floor()
+    } else {
+        min
+    } as f32;
+    let span = (max - f64::from(r)).max(0.0).round();
+    let limit = (1u64 << max_bits) - 1;
+    let (e, nbits) = if span as u64 <= limit {
+        let n = (64 - (span as u64).leading_zeros()).max(1);
+        (0, n)
+    } else {
+        ((span / limit as f64).log2().ceil() as i32, max_bits)
+    };
+    let step = 2f64.powi(e);
+    let top = ((1u64 << nbits) - 1) as f64;
+    let s5 = section5(m.values.len(), r, e, m.decimal_scale, nbits);
+    let mut s7 = Vec::with_capacity((m.values.len() * nbits as usize).div_ceil(8));
+    let (mut acc, mut held) = (0u64, 0u32);
+    for v in &scaled {
+        let x = ((v - f64::from(r)) / step).round().clamp(0.0, top) as u64;
+        acc = (acc << nbits) | x;
+        held += nbits;
+        while held >= 8 {
+            held -= 8;
+            s7.push((acc >> held) as u8);
+        }
+        acc &= (1u64 << held) - 1;
+    }
+    if held > 0 {
+        s7.push((acc << (8 - held)) as u8);
+    }
+    (s5, s7)
+}
+
+fn encode_packed(m: &Message<'_>, bits: Bits) -> Vec<u8> {
     // Section 1: identification.
     let mut s1 = Vec::new();
     s1.extend_from_slice(&m.centre.to_be_bytes());
@@ -183,33 +277,11 @@ pub fn encode(m: &Message<'_>) -> Vec<u8> {
     s4.extend_from_slice(&(m.surface.1.round() as u32).to_be_bytes());
     s4.extend_from_slice(&[255, 255, 255, 255, 255, 255]);
 
-    // Sections 5 and 7: simple packing, 16 bits, Y = (R + X 2^E) / 10^D.
-    let scale = 10f64.powi(i32::from(m.decimal_scale));
-    let scaled: Vec<f64> = m.values.iter().map(|v| v * scale).collect();
-    let min = scaled.iter().copied().fold(f64::INFINITY, f64::min);
-    let max = scaled.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-    let range = (max - min).max(0.0);
-    let nbits = 16u32;
-    let e = if range > 0.0 {
-        (range / f64::from((1u32 << nbits) - 1)).log2().ceil() as i32
-    } else {
-        0
+    // Sections 5 and 7: simple packing, Y = (R + X 2^E) / 10^D.
+    let (s5, s7) = match bits {
+        Bits::Fixed16 => pack_fixed16(m),
+        Bits::AtMost(n) => pack_at_most(m, n.clamp(1, 32)),
     };
-    let r = min as f32;
-    let step = 2f64.powi(e);
-    let mut s5 = Vec::new();
-    s5.extend_from_slice(&(m.values.len() as u32).to_be_bytes());
-    s5.extend_from_slice(&0u16.to_be_bytes());
-    s5.extend_from_slice(&r.to_bits().to_be_bytes());
-    s5.extend_from_slice(&sm16(e));
-    s5.extend_from_slice(&sm16(i32::from(m.decimal_scale)));
-    s5.extend_from_slice(&[nbits as u8, 0]);
-    let mut s7 = Vec::with_capacity(m.values.len() * 2);
-    for v in &scaled {
-        let x = ((v - f64::from(r)) / step).round().clamp(0.0, 65535.0) as u16;
-        s7.extend_from_slice(&x.to_be_bytes());
-    }
-
     let mut body = Vec::new();
     body.extend(section(1, &s1));
     body.extend(section(3, &s3));
@@ -282,5 +354,49 @@ mod tests {
         let cat = catalogue(&encode(&far));
         assert_eq!(cat.problems.len(), 1, "{:?}", cat.problems);
         assert!(cat.problems[0].reason.contains("out of range"));
+    }
+
+    #[test]
+    fn compact_packing_keeps_the_decimal_precision_in_as_few_bits_as_it_needs() {
+        let grid = GridSpec::LatLon {
+            ni: 7,
+            nj: 3,
+            lat0: 40.0,
+            lon0: -10.0,
+            dlat: 1.0,
+            dlon: 2.0,
+        };
+        let reference = chrono::NaiveDate::from_ymd_opt(2026, 3, 14)
+            .and_then(|d| d.and_hms_opt(0, 0, 0))
+            .unwrap();
+        // (values, D, bits expected): 0.01 K over 12 K takes 11 bits; specific
+        // humidity at 1e-8 over 0.01 needs 20 bits, so 16 with a binary scale.
+        let t: Vec<f64> = (0..21).map(|k| 250.0 + 0.6 * k as f64 + 0.004).collect();
+        let q: Vec<f64> = (0..21).map(|k| 0.0005 * k as f64 + 1e-6).collect();
+        for (values, d, bits, tol) in [(&t, 2, 11, 0.005), (&q, 8, 16, 1e-7)] {
+            let m = Message {
+                centre: 255,
+                reference,
+                lead_hours: 0,
+                param: (0, 0, 0),
+                surface: (100, 50_000.0),
+                grid,
+                grid_relative_winds: false,
+                values,
+                decimal_scale: d,
+            };
+            let bytes = encode_compact(&m, 16);
+            let cat = catalogue(&bytes);
+            assert!(cat.problems.is_empty(), "{:?}", cat.problems);
+            let f = &cat.fields[0];
+            assert_eq!(bytes[f.sect5.clone()][19], bits);
+            let v = decode_raw(&bytes, f).unwrap();
+            for (a, b) in v.iter().zip(values.iter()) {
+                assert!(
+                    (f64::from(*a) - b).abs() <= tol * 1.01 + 1e-5 * b.abs(),
+                    "{a} {b}"
+                );
+            }
+        }
     }
 }

@@ -288,7 +288,12 @@ mod tests {
         let files = crate::demo::write_inputs(&dir, crate::demo::default_cycle(), &[6]).unwrap();
         let bytes = std::fs::read(&files[0]).unwrap();
         let l = inspect("demo", &bytes, true);
-        assert_eq!(l.fields.len() % 21, 0, "whole levels");
+        let temperatures = l
+            .fields
+            .iter()
+            .filter(|f| f.wmo == [0, 0, 0] && f.level.ends_with(" hPa"))
+            .count();
+        assert_eq!(temperatures, crate::demo::scenario::LEVELS_HPA.len(), "every level");
         let t500 = l
             .fields
             .iter()

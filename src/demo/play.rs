@@ -1,0 +1,268 @@
+//! The demo played through the real service: `leeward demo` writes the
+//! invented cycle as GRIB2, starts `leeward serve` on a directory of its own,
+//! delivers the files one step at a time as a model would (written under a
+//! hidden name, renamed into place), and reports per step what arrived, what
+//! was published and how long it took.
+//!
+//! In: a directory, a cycle, lead times, a pause between steps. Out: the
+//! service's output tree, its ledger and log in that directory, and a table.
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use chrono::{NaiveDateTime, Utc};
+
+use crate::service::ledger::{read_state, Outcome};
+use crate::service::publish::read_manifest;
+
+/// What to play.
+pub struct Play {
+    /// Directory for everything (created).
+    pub dir: PathBuf,
+    /// Cycle.
+    pub reference: NaiveDateTime,
+    /// Lead times, hours.
+    pub leads: Vec<u32>,
+    /// Pause between steps.
+    pub pause: Duration,
+}
+
+/// One published step, as the table shows it.
+#[derive(Debug, Clone)]
+pub struct Row {
+    /// Feed.
+    pub feed: String,
+    /// Lead, hours.
+    pub lead: i64,
+    /// When its file was delivered (Unix seconds).
+    pub arrived: f64,
+    /// When it was published (Unix seconds).
+    pub published: Option<i64>,
+    /// Latency from the manifest, seconds.
+    pub latency: Option<f64>,
+    /// Variables in the product.
+    pub variables: usize,
+    /// Quicklook images beside it.
+    pub images: usize,
+    /// Partial, or failed with a reason.
+    pub note: String,
+    /// The product file.
+    pub product: Option<PathBuf>,
+}
+
+/// The demo's service configuration.
+pub fn config_text(dir: &Path) -> String {
+    let levels: Vec<String> = super::scenario::LEVELS_HPA
+        .iter()
+        .map(|l| format!("{l:.1}"))
+        .collect();
+    format!(
+        r#"# The demo's own configuration, written by `leeward demo`.
+[service]
+watch_dir = "{d}/incoming"
+out_dir = "{d}/products"
+state_dir = "{d}/state"
+settle_s = 0.5
+scan_interval_s = 2.0
+step_timeout_s = 120.0
+catch_up_hours = 0
+metrics_listen = ""
+workers = 2
+
+[quicklook]
+enabled = true
+
+[[feed]]
+name = "regional"
+incoming = "regional"
+file_pattern = '^lwdemo_(?P<cycle>\d{{10}})_(?P<step>\d{{3}})\.grib2$'
+complete = "fields"
+levels_hpa = [{levels}]
+"#,
+        d = dir.display(),
+        levels = levels.join(", ")
+    )
+}
+
+fn unix_now() -> f64 {
+    Utc::now().timestamp_millis() as f64 / 1000.0
+}
+
+fn stop(child: &mut Child) {
+    let pid = rustix::process::Pid::from_child(child);
+    let _ = rustix::process::kill_process(pid, rustix::process::Signal::TERM);
+    let t0 = Instant::now();
+    while t0.elapsed() < Duration::from_secs(60) {
+        if let Ok(Some(_)) = child.try_wait() {
+            return;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+}
+
+fn deliver(src: &Path, dest_dir: &Path) -> std::io::Result<()> {
+    std::fs::create_dir_all(dest_dir)?;
+    let name = src
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let tmp = dest_dir.join(format!(".{name}.tmp"));
+    std::fs::copy(src, &tmp)?;
+    std::fs::rename(&tmp, dest_dir.join(name))
+}
+
+fn rows(state_dir: &Path, arrived: &[(String, i64, f64)]) -> Vec<Row> {
+    let state = read_state(state_dir).unwrap_or_default();
+    arrived
+        .iter()
+        .map(|(feed, lead, at)| {
+            let st = state
+                .steps
+                .iter()
+                .find(|(t, _)| &t.feed == feed && t.lead == *lead)
+                .map(|(_, s)| s.outcome.clone());
+            let mut row = Row {
+                feed: feed.clone(),
+                lead: *lead,
+                arrived: *at,
+                published: None,
+                latency: None,
+                variables: 0,
+                images: 0,
+                note: String::new(),
+                product: None,
+            };
+            match st {
+                Some(Outcome::Published {
+                    path,
+                    manifest,
+                    partial,
+                    at,
+                }) => {
+                    row.published = Some(at);
+                    if let Some(m) = read_manifest(Path::new(&manifest)) {
+                        row.latency = Some(m.timings_s.latency);
+                        row.variables = m.variables.len();
+                        row.images = m.images.len();
+                    }
+                    if partial {
+                        row.note = "partial".into();
+                    }
+                    row.product = Some(PathBuf::from(path));
+                }
+                Some(Outcome::Failed { reason, .. }) => row.note = format!("failed: {reason}"),
+                _ => {}
+            }
+            row
+        })
+        .collect()
+}
+
+fn clock(t: f64) -> String {
+    chrono::DateTime::from_timestamp(t as i64, 0)
+        .map(|d| d.format("%H:%M:%S").to_string())
+        .unwrap_or_default()
+}
+
+/// Print the table.
+pub fn render(rows: &[Row], dir: &Path) -> String {
+    let mut o = format!(
+        "{:<9} {:>6}  {:<8}  {:<9}  {:>8}  {:>9}  {:>6}  {}\n",
+        "feed", "step", "arrived", "published", "latency", "variables", "images", "product"
+    );
+    for r in rows {
+        let product = r
+            .product
+            .as_ref()
+            .map(|p| p.strip_prefix(dir).unwrap_or(p).display().to_string())
+            .unwrap_or_default();
+        o.push_str(&format!(
+            "{:<9} {:>6}  {:<8}  {:<9}  {:>8}  {:>9}  {:>6}  {} {}\n",
+            r.feed,
+            format!("+{:03}h", r.lead),
+            clock(r.arrived),
+            r.published
+                .map(|t| clock(t as f64))
+                .unwrap_or_else(|| "-".into()),
+            r.latency
+                .map(|l| format!("{l:.1} s"))
+                .unwrap_or_else(|| "-".into()),
+            r.variables,
+            r.images,
+            product,
+            r.note
+        ));
+    }
+    o
+}
+
+/// Play the demo. Returns the rows, or why it could not run.
+pub fn run(p: &Play) -> Result<Vec<Row>, String> {
+    let generated = p.dir.join("generated");
+    let files =
+        super::write_inputs(&generated.join("regional"), p.reference, &p.leads).map_err(|e| {
+            format!(
+                "cannot write the demo input in {}: {e}",
+                generated.display()
+            )
+        })?;
+    let cfg = p.dir.join("leeward.toml");
+    std::fs::write(&cfg, config_text(&p.dir))
+        .map_err(|e| format!("cannot write {}: {e}", cfg.display()))?;
+    let log = std::fs::File::create(p.dir.join("service.log"))
+        .map_err(|e| format!("cannot write the service log: {e}"))?;
+    let exe = std::env::current_exe().map_err(|e| format!("cannot find leeward itself: {e}"))?;
+    let mut child = Command::new(exe)
+        .args(["serve", "--config"])
+        .arg(&cfg)
+        .env("LEEWARD_LOG", "info")
+        .stdout(Stdio::null())
+        .stderr(log)
+        .spawn()
+        .map_err(|e| format!("cannot start leeward serve: {e}"))?;
+    let state_dir = p.dir.join("state");
+    let t0 = Instant::now();
+    while read_state(&state_dir).map_or(true, |s| s.started.is_none()) {
+        if t0.elapsed() > Duration::from_secs(30) || matches!(child.try_wait(), Ok(Some(_))) {
+            stop(&mut child);
+            return Err(format!(
+                "the service did not start; see {}",
+                p.dir.join("service.log").display()
+            ));
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    let mut arrived = Vec::new();
+    let incoming = p.dir.join("incoming").join("regional");
+    for (f, lead) in files.iter().zip(&p.leads) {
+        if let Err(e) = deliver(f, &incoming) {
+            stop(&mut child);
+            return Err(format!("cannot deliver {}: {e}", f.display()));
+        }
+        arrived.push(("regional".to_string(), i64::from(*lead), unix_now()));
+        println!(
+            "  delivered {} ",
+            f.file_name()
+                .map(|n| n.to_string_lossy())
+                .unwrap_or_default()
+        );
+        std::thread::sleep(p.pause);
+    }
+    let t0 = Instant::now();
+    loop {
+        let r = rows(&state_dir, &arrived);
+        let settled = r
+            .iter()
+            .all(|r| r.published.is_some() || !r.note.is_empty());
+        if settled || t0.elapsed() > Duration::from_secs(180) {
+            // Later steps add changes to earlier files: let the last one finish.
+            std::thread::sleep(Duration::from_millis(300));
+            stop(&mut child);
+            return Ok(rows(&state_dir, &arrived));
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
