@@ -252,12 +252,10 @@ pub fn main() -> ExitCode {
         Command::CheckConfig { file, quiet } => ExitCode::from(check_config(&file, quiet)),
         Command::Completions { shell } => {
             use clap::CommandFactory;
-            clap_complete::generate(
-                shell,
-                &mut Cli::command(),
-                "leeward",
-                &mut std::io::stdout(),
-            );
+            // Into memory first: a closed pipe (`| head`) is not an error worth a panic.
+            let mut buf = Vec::new();
+            clap_complete::generate(shell, &mut Cli::command(), "leeward", &mut buf);
+            let _ = std::io::Write::write_all(&mut std::io::stdout(), &buf);
             ExitCode::from(exit::OK)
         }
         Command::Man { out } => ExitCode::from(man(&out)),

@@ -91,6 +91,7 @@ fn level_text(e: &FieldEntry) -> String {
         (surface::ISENTROPIC, Some(t)) => format!("{t} K"),
         (surface::POTENTIAL_VORTICITY, Some(v)) => format!("{} PVU", v * 1e6),
         (103, Some(h)) => format!("{h} m above ground"),
+        (surface::GROUND, _) => surface::describe(surface::GROUND).to_string(),
         (k, Some(v)) => format!("{} {v}", surface::describe(k)),
         (k, None) => surface::describe(k).to_string(),
     }
@@ -237,13 +238,17 @@ pub fn render(l: &FileListing) -> String {
             f.wmo[1],
             f.wmo[2]
         );
+        let lead = if f.lead_hours.fract() == 0.0 {
+            format!("{}", f.lead_hours as i64)
+        } else {
+            format!("{:.2}", f.lead_hours)
+        };
         let valid = format!(
-            "{} (+{}h)",
+            "{} (+{lead}h)",
             f.valid_time
                 .get(..16)
                 .unwrap_or(&f.valid_time)
-                .replace('T', " "),
-            short(f.lead_hours)
+                .replace('T', " ")
         );
         let grid = match (&f.grid, &f.spacing) {
             (Some(g), Some(s)) => format!("{g}, {s}"),
@@ -293,7 +298,11 @@ mod tests {
             .iter()
             .filter(|f| f.wmo == [0, 0, 0] && f.level.ends_with(" hPa"))
             .count();
-        assert_eq!(temperatures, crate::demo::scenario::LEVELS_HPA.len(), "every level");
+        assert_eq!(
+            temperatures,
+            crate::demo::scenario::LEVELS_HPA.len(),
+            "every level"
+        );
         let t500 = l
             .fields
             .iter()
