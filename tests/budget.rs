@@ -69,6 +69,7 @@ fn process(out: &Path, input: &Path) {
 }
 
 fn values(path: &Path, name: &str) -> Vec<f32> {
+    leeward::output::quiet_hdf5_errors();
     let f = netcdf::open(path).unwrap();
     let v = f.variable(name).unwrap_or_else(|| panic!("{name} missing"));
     let fill = leeward::output::cf::FILL_F32;

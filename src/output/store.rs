@@ -103,6 +103,7 @@ pub fn published(
     }
     let mut out = Vec::new();
     for path in candidates {
+        super::quiet_hdf5_errors();
         let Ok(f) = netcdf::open(&path) else { continue };
         let same = text_attr(&f, "leeward_grid_id").as_deref() == Some(grid_id)
             && int_attr(&f, "leeward_centre") == Some(i64::from(centre))
@@ -125,6 +126,7 @@ pub fn published(
 /// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
 /// with the values of its vertical coordinate.
 pub fn read_field(path: &Path, name: &str) -> Option<(Vec<f64>, Array3<f32>)> {
+    super::quiet_hdf5_errors();
     let f = netcdf::open(path).ok()?;
     let v = f.variable(name)?;
     let dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
@@ -178,6 +180,7 @@ pub fn add_variables(
             path: tmp.clone(),
             source,
         };
+        super::quiet_hdf5_errors();
         let mut f = netcdf::append(&tmp).map_err(e)?;
         let coords = ["zeta", "theta", "thick", "isen_p"]
             .iter()

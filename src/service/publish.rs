@@ -116,6 +116,7 @@ fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
 }
 
 fn variables_of(path: &Path) -> Vec<String> {
+    crate::output::quiet_hdf5_errors();
     netcdf::open(path)
         .map(|f| f.variables().map(|v| v.name()).collect())
         .unwrap_or_default()
