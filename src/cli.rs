@@ -572,12 +572,17 @@ pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32],
     });
     if inputs_only {
         let incoming = dir.join("incoming");
-        return match crate::demo::write_inputs(&incoming, reference, leads) {
-            Ok(v) => {
+        let global = dir.join("incoming-global");
+        return match crate::demo::write_inputs(&incoming, reference, leads).and_then(|r| {
+            crate::demo::write_global_inputs(&global, reference, leads).map(|g| (r, g))
+        }) {
+            Ok((r, g)) => {
                 println!(
-                    "leeward demo: {} input file(s) written to {}",
-                    v.len(),
-                    incoming.display()
+                    "leeward demo: {} regional input file(s) written to {}, {} global to {}",
+                    r.len(),
+                    incoming.display(),
+                    g.len(),
+                    global.display()
                 );
                 exit::OK
             }
@@ -609,6 +614,9 @@ pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32],
         leads: leads.to_vec(),
         pause: std::time::Duration::from_secs_f64(pause),
     };
+    let me = std::env::current_exe()
+        .map(|p| p.display().to_string())
+        .unwrap_or_else(|_| "leeward".into());
     let t0 = Instant::now();
     match crate::demo::play::run(&play) {
         Ok(rows) => {
@@ -622,21 +630,21 @@ pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32],
             );
             println!("Where to look:");
             println!(
-                "  products and manifests  {}/products/regional/<cycle>/",
+                "  products and manifests  {}/products/<feed>/<cycle>/",
                 dir.display()
             );
             println!("  quicklook images        the .png files beside each product");
             println!(
-                "  the service's state     leeward status --state-dir {}/state",
+                "  the service's state     {me} status --state-dir {}/state",
                 dir.display()
             );
             println!("  the service's log       {}/service.log", dir.display());
             println!(
-                "  the input it was fed    leeward inspect {}/incoming/regional/*.grib2",
+                "  the input it was fed    {me} inspect {}/incoming/regional/*.grib2",
                 dir.display()
             );
             println!(
-                "  its configuration       leeward check-config {}/leeward.toml",
+                "  its configuration       {me} check-config {}/leeward.toml",
                 dir.display()
             );
             if published == rows.len() {

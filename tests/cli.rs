@@ -178,3 +178,47 @@ fn the_example_config_lists_the_defaults() {
     cfg.feed.clear();
     assert_eq!(cfg, leeward::config::Config::default());
 }
+
+#[test]
+fn the_committed_demo_sample_is_what_the_generator_writes() {
+    // demo-data/grib2 holds one step of each invented model, as written by
+    // `leeward demo --inputs-only --leads 24`: the generator must still write the
+    // same fields (compared decoded, within the packing's precision, so that a
+    // last-bit difference of a maths library elsewhere does not matter).
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/grib2");
+    let d = std::env::temp_dir().join(format!("leeward-sample-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    let cycle = leeward::demo::default_cycle();
+    let fresh = [
+        leeward::demo::write_inputs(&d.join("r"), cycle, &[24]).unwrap(),
+        leeward::demo::write_global_inputs(&d.join("g"), cycle, &[24]).unwrap(),
+    ];
+    for f in fresh.iter().flatten() {
+        let name = f.file_name().unwrap();
+        let committed = std::fs::read(root.join(name)).expect("committed sample");
+        let now = std::fs::read(f).unwrap();
+        let (a, b) = (
+            leeward::ingest::catalogue::catalogue(&committed),
+            leeward::ingest::catalogue::catalogue(&now),
+        );
+        assert_eq!(a.fields.len(), b.fields.len(), "{name:?}");
+        assert!(a.fields.len() > 100, "{name:?}: {} fields", a.fields.len());
+        for (x, y) in a.fields.iter().zip(&b.fields) {
+            assert_eq!(
+                (x.discipline, x.category, x.number),
+                (y.discipline, y.category, y.number)
+            );
+            assert_eq!(x.level, y.level);
+            let va = leeward::ingest::decode::decode_raw(&committed, x).unwrap();
+            let vb = leeward::ingest::decode::decode_raw(&now, y).unwrap();
+            let range = va.iter().fold(0f32, |m, v| m.max(v.abs())).max(1.0);
+            let worst = va
+                .iter()
+                .zip(&vb)
+                .map(|(p, q)| (p - q).abs())
+                .fold(0f32, f32::max);
+            assert!(worst <= 1e-3 * range, "{name:?} field {}: {worst}", x.index);
+        }
+    }
+    let _ = std::fs::remove_dir_all(&d);
+}

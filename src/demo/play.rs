@@ -79,6 +79,13 @@ incoming = "regional"
 file_pattern = '^lwdemo_(?P<cycle>\d{{10}})_(?P<step>\d{{3}})\.grib2$'
 complete = "fields"
 levels_hpa = [{levels}]
+
+[[feed]]
+name = "global"
+incoming = "global"
+file_pattern = '^lwglobal_(?P<cycle>\d{{10}})_(?P<step>\d{{3}})\.grib2$'
+complete = "fields"
+levels_hpa = [{levels}]
 "#,
         d = dir.display(),
         levels = levels.join(", ")
@@ -202,13 +209,16 @@ pub fn render(rows: &[Row], dir: &Path) -> String {
 /// Play the demo. Returns the rows, or why it could not run.
 pub fn run(p: &Play) -> Result<Vec<Row>, String> {
     let generated = p.dir.join("generated");
-    let files =
-        super::write_inputs(&generated.join("regional"), p.reference, &p.leads).map_err(|e| {
-            format!(
-                "cannot write the demo input in {}: {e}",
-                generated.display()
-            )
-        })?;
+    let write_err = |e: std::io::Error| {
+        format!(
+            "cannot write the demo input in {}: {e}",
+            generated.display()
+        )
+    };
+    let regional = super::write_inputs(&generated.join("regional"), p.reference, &p.leads)
+        .map_err(write_err)?;
+    let global = super::write_global_inputs(&generated.join("global"), p.reference, &p.leads)
+        .map_err(write_err)?;
     let cfg = p.dir.join("leeward.toml");
     std::fs::write(&cfg, config_text(&p.dir))
         .map_err(|e| format!("cannot write {}: {e}", cfg.display()))?;
@@ -236,19 +246,21 @@ pub fn run(p: &Play) -> Result<Vec<Row>, String> {
         std::thread::sleep(Duration::from_millis(50));
     }
     let mut arrived = Vec::new();
-    let incoming = p.dir.join("incoming").join("regional");
-    for (f, lead) in files.iter().zip(&p.leads) {
-        if let Err(e) = deliver(f, &incoming) {
-            stop(&mut child);
-            return Err(format!("cannot deliver {}: {e}", f.display()));
+    for (k, lead) in p.leads.iter().enumerate() {
+        for (feed, files) in [("regional", &regional), ("global", &global)] {
+            let Some(f) = files.get(k) else { continue };
+            if let Err(e) = deliver(f, &p.dir.join("incoming").join(feed)) {
+                stop(&mut child);
+                return Err(format!("cannot deliver {}: {e}", f.display()));
+            }
+            arrived.push((feed.to_string(), i64::from(*lead), unix_now()));
+            println!(
+                "  delivered {}",
+                f.file_name()
+                    .map(|n| n.to_string_lossy())
+                    .unwrap_or_default()
+            );
         }
-        arrived.push(("regional".to_string(), i64::from(*lead), unix_now()));
-        println!(
-            "  delivered {} ",
-            f.file_name()
-                .map(|n| n.to_string_lossy())
-                .unwrap_or_default()
-        );
         std::thread::sleep(p.pause);
     }
     let t0 = Instant::now();

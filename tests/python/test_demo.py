@@ -26,9 +26,11 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
                         "--pause", "0.3"], capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stdout + r.stderr
     out = r.stdout
-    for lead in ("+000h", "+006h", "+012h"):
-        row = [x for x in out.splitlines() if x.startswith("regional") and lead in x]
-        assert row and " - " not in row[0].split(lead)[1][:30], f"{lead} not published:\n{out}"
+    for feed in ("regional", "global"):
+        for lead in ("+000h", "+006h", "+012h"):
+            row = [x for x in out.splitlines() if x.startswith(feed) and lead in x]
+            assert row and " - " not in row[0].split(lead)[1][:30], f"{feed} {lead} not published:\n{out}"
+    assert len(list((d / "products" / "global" / "20260314T0000Z").glob("*.nc"))) == 3
     assert "leeward status --state-dir" in out, out
     cycle = d / "products" / "regional" / "20260314T0000Z"
     ncs = sorted(cycle.glob("*.nc"))

@@ -1,4 +1,4 @@
-"""Every command shown in README.md, DEVELOPERS.md and docs/*.md, read as a
+"""Every command shown in README.md, DEVELOPERS.md, demo-data/README.md and docs/*.md, read as a
 newcomer would: each shell line of each fenced sh/bash block is collected and
 checked according to what it is.
 
@@ -27,7 +27,8 @@ import pytest
 
 from conftest import REPO_ROOT, leeward_bin_path
 
-DOCS = [REPO_ROOT / "README.md", REPO_ROOT / "DEVELOPERS.md", *sorted((REPO_ROOT / "docs").glob("*.md"))]
+DOCS = [REPO_ROOT / "README.md", REPO_ROOT / "DEVELOPERS.md", REPO_ROOT / "demo-data" / "README.md",
+        *sorted((REPO_ROOT / "docs").glob("*.md"))]
 FENCE = re.compile(r"^```(sh|bash|shell|console)\s*$")
 HOST = {"systemctl", "journalctl", "systemd-analyze", "systemd-tmpfiles", "systemd-sysusers",
         "install", "useradd", "usermod", "runuser", "sudo", "cp", "chmod", "chown", "mkdir",
