@@ -222,3 +222,48 @@ fn the_committed_demo_sample_is_what_the_generator_writes() {
     }
     let _ = std::fs::remove_dir_all(&d);
 }
+
+#[test]
+fn check_config_names_every_planted_error_and_completions_and_man_pages_come_out() {
+    let d = std::env::temp_dir().join(format!("leeward-check-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    let bad = d.join("bad.toml");
+    std::fs::write(
+        &bad,
+        "[output]\ndeflate_level = 12\nspeed = 3\n[isentropic]\nsurfaces = [300.0, 290.0]\n\
+         [service]\nworkers = 0\n[quicklook]\nimages = [\"no good\"]\n\
+         [[feed]]\nname = \"x y\"\ncomplete = \"files\"\nfiles_per_step = 0\n",
+    )
+    .unwrap();
+    let (code, _, stderr) = run(&["check-config", bad.to_str().unwrap()]);
+    assert_eq!(code, 2, "{stderr}");
+    for key in [
+        "output.speed",
+        "output.deflate_level",
+        "isentropic.surfaces",
+        "service.workers",
+        "quicklook.images[0]",
+        "feed[0].name",
+        "feed[0].files_per_step",
+    ] {
+        assert!(stderr.contains(key), "{key} not named:\n{stderr}");
+    }
+    let (code, stdout, _) = run(&["check-config", "deploy/leeward.toml"]);
+    assert_eq!(code, 0);
+    assert!(
+        stdout.contains("[service]") && stdout.contains("step_timeout_s = 2700.0"),
+        "{stdout}"
+    );
+    let (code, stdout, _) = run(&["completions", "bash"]);
+    assert_eq!(code, 0);
+    assert!(stdout.contains("serve") && stdout.contains("check-config"));
+    let (code, _, _) = run(&["man", "--out", d.join("man").to_str().unwrap()]);
+    assert_eq!(code, 0);
+    let page = std::fs::read_to_string(d.join("man/leeward-serve.1")).unwrap();
+    assert!(
+        page.contains(".TH") && page.contains("state\\-dir"),
+        "{page}"
+    );
+    let _ = std::fs::remove_dir_all(&d);
+}
