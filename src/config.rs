@@ -178,6 +178,20 @@ pub struct Products {
     pub pv_budget: bool,
 }
 
+impl Products {
+    /// True if at least one product that makes a file is switched on (the
+    /// changes in time and the budget only add to those).
+    pub fn any(&self) -> bool {
+        self.vorticity
+            || self.stability
+            || self.isobaric_pv
+            || self.isentropic
+            || self.tropopause
+            || self.layer_pv
+            || self.thickness
+    }
+}
+
 impl Default for Products {
     fn default() -> Self {
         Products {
@@ -342,15 +356,7 @@ impl Config {
             &self.service,
             &self.feed,
         ));
-        let pr = &self.products;
-        if !(pr.vorticity
-            || pr.stability
-            || pr.isobaric_pv
-            || pr.isentropic
-            || pr.tropopause
-            || pr.layer_pv
-            || pr.thickness)
-        {
+        if !self.products.any() {
             p.push("products: every product is switched off; nothing would be made".into());
         }
         p

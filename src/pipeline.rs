@@ -140,6 +140,18 @@ impl Step {
     }
 }
 
+/// The step a field belongs to: centre, cycle, valid time, member, and its
+/// grid definition with the resolution-and-component flags left out.
+pub fn step_key(bytes: &[u8], f: &FieldEntry) -> StepKey {
+    StepKey {
+        centre: f.centre,
+        reference_time: f.reference_time,
+        valid_time: f.valid_time,
+        member: f.member,
+        grid_key: grid_key(bytes, f),
+    }
+}
+
 fn grid_key(bytes: &[u8], f: &FieldEntry) -> Vec<u8> {
     let mut k = bytes
         .get(f.sect3.clone())
@@ -190,13 +202,7 @@ pub fn plan(inputs: &[InputFile]) -> (Vec<Step>, Vec<Issue>) {
                 }
                 continue;
             }
-            let key = StepKey {
-                centre: e.centre,
-                reference_time: e.reference_time,
-                valid_time: e.valid_time,
-                member: e.member,
-                grid_key: grid_key(&input.bytes, e),
-            };
+            let key = step_key(&input.bytes, e);
             groups.entry(key).or_default().push(FieldRef {
                 file: fi,
                 entry: e.clone(),

@@ -569,22 +569,7 @@ impl Daemon {
         let mut by_step: std::collections::BTreeMap<StepKey, Gathered> =
             std::collections::BTreeMap::new();
         for f in &good {
-            let mut gk = bytes
-                .get(f.sect3.clone())
-                .map(<[u8]>::to_vec)
-                .unwrap_or_default();
-            if let Some(o) = crate::ingest::grid::flags_octet(f.grid_template) {
-                if let Some(b) = gk.get_mut(o) {
-                    *b = 0;
-                }
-            }
-            let k = StepKey {
-                centre: f.centre,
-                reference_time: f.reference_time,
-                valid_time: f.valid_time,
-                member: f.member,
-                grid_key: gk,
-            };
+            let k = crate::pipeline::step_key(&bytes, f);
             let msg_len = bytes
                 .get(f.message_offset + 8..f.message_offset + 16)
                 .and_then(|b| <[u8; 8]>::try_from(b).ok())
@@ -710,7 +695,7 @@ impl Daemon {
                 .metrics()
                 .feed(feed)
                 .failed
-                .entry("skipped")
+                .entry(FailKind::Skipped.name())
                 .or_default() += 1;
             self.record(Record::Failed {
                 step: tag,
@@ -904,7 +889,7 @@ impl Daemon {
                 {
                     let mut m = self.metrics();
                     let f = m.feed(&tag.feed);
-                    *f.failed.entry("output").or_default() += 1;
+                    *f.failed.entry(FailKind::Output.name()).or_default() += 1;
                     f.retries += 1;
                 }
                 if let Some(p) = self.asm.steps.get_mut(&tag) {
@@ -964,13 +949,7 @@ impl Daemon {
 
     fn fail(&mut self, tag: &StepTag, kind: FailKind, reason: String) {
         error!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, kind = ?kind, reason = %reason, "step produced nothing");
-        let name = match kind {
-            FailKind::Missing => "missing",
-            FailKind::Input => "input",
-            FailKind::Output => "output",
-            FailKind::Internal => "internal",
-            FailKind::Skipped => "skipped",
-        };
+        let name = kind.name();
         *self
             .metrics()
             .feed(&tag.feed)

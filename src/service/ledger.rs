@@ -47,6 +47,28 @@ pub enum FailKind {
     Skipped,
 }
 
+impl FailKind {
+    /// Every kind, in the order the metrics list them.
+    pub const ALL: [FailKind; 5] = [
+        FailKind::Missing,
+        FailKind::Input,
+        FailKind::Output,
+        FailKind::Internal,
+        FailKind::Skipped,
+    ];
+
+    /// Its name in the journal and in the metrics' `reason` label.
+    pub fn name(self) -> &'static str {
+        match self {
+            FailKind::Missing => "missing",
+            FailKind::Input => "input",
+            FailKind::Output => "output",
+            FailKind::Internal => "internal",
+            FailKind::Skipped => "skipped",
+        }
+    }
+}
+
 /// One event in the journal. Times are Unix seconds.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "event", rename_all = "snake_case")]

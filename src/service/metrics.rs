@@ -146,8 +146,9 @@ impl Metrics {
             "counter",
             "Steps that produced nothing, by reason: missing (incomplete at the timeout), input, output (retried), internal, skipped (older than catch_up_hours).",
             per(&|c| {
-                ["missing", "input", "output", "internal", "skipped"]
+                crate::service::ledger::FailKind::ALL
                     .iter()
+                    .map(|k| k.name())
                     .map(|k| {
                         (
                             format!(",reason=\"{k}\""),

@@ -8,7 +8,7 @@
 //! when a step is complete (the fields the products need, a file count, or
 //! a marker file).
 
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
 use chrono::NaiveDateTime;
 use regex::Regex;
@@ -426,14 +426,7 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
             }
         }
         if let Some(pr) = &f.products {
-            if !(pr.vorticity
-                || pr.stability
-                || pr.isobaric_pv
-                || pr.isentropic
-                || pr.tropopause
-                || pr.layer_pv
-                || pr.thickness)
-            {
+            if !pr.any() {
                 p.push(format!(
                     "{}: every product is switched off; nothing would be made",
                     key("products")
@@ -463,11 +456,6 @@ pub fn describe_dirs(rules: &[FeedRule]) -> String {
         .map(|r| format!("{} <- {}", r.feed.name, r.dir.display()))
         .collect::<Vec<_>>()
         .join(", ")
-}
-
-/// True if `p` is the directory `dir` or directly in it.
-pub fn in_dir(p: &Path, dir: &Path) -> bool {
-    p.parent().is_some_and(|d| d == dir)
 }
 
 #[cfg(test)]
