@@ -12,7 +12,7 @@ use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 use chrono::NaiveDateTime;
-use ndarray::{Array2, Array3, ArrayView3, Axis};
+use ndarray::{Array2, Array3, Axis};
 use rayon::prelude::*;
 use tracing::{info, warn};
 
@@ -388,6 +388,31 @@ impl<'a> Destination<'a> {
     }
 }
 
+/// Pack every product not yet packed, as the file will store it (bit
+/// rounding, shuffle, deflate; [`crate::output::pack`]), on every core, so that
+/// only the compressed bytes are held until the file is written. Returns the
+/// seconds it took.
+fn seal(fields: &mut [Product], out: &crate::config::Output) -> f64 {
+    let t = Instant::now();
+    for f in fields.iter_mut() {
+        f.pack(out.significant_bits, out.deflate_level);
+    }
+    t.elapsed().as_secs_f64()
+}
+
+/// Add a product to the step, packed at once (see [`seal`]).
+fn push_sealed(
+    fields: &mut Vec<Product>,
+    out: &crate::config::Output,
+    packing: &std::cell::Cell<f64>,
+    mut p: Product,
+) {
+    let t = Instant::now();
+    p.pack(out.significant_bits, out.deflate_level);
+    packing.set(packing.get() + t.elapsed().as_secs_f64());
+    fields.push(p);
+}
+
 /// Run one step of `inputs` and write its products to `out`.
 pub fn run_step(
     step: &Step,
@@ -683,148 +708,113 @@ pub fn run_step(
         _ => (None, None),
     };
 
+    let mut pack_seconds = 0.0;
+    // Seconds spent packing products as they are made (part of writing).
+    let packing = std::cell::Cell::new(0.0);
+    rep.family_seconds
+        .push(("prepare", t_compute.elapsed().as_secs_f64()));
     let t_family = Instant::now();
     // Isobaric vorticity, level by level in parallel.
     let mut eta3: Option<Array3<f32>> = None;
     if let (Some(ug), Some(vg)) = (ug3, vg3) {
-        let per_level: Vec<Array2<f64>> = (0..nz)
-            .into_par_iter()
-            .map(|k| {
-                plane.vorticity(
-                    ug.index_axis(Axis(0), k).mapv(f64::from).view(),
-                    vg.index_axis(Axis(0), k).mapv(f64::from).view(),
-                )
-            })
-            .collect();
         let mut zeta = Array3::from_elem((nz, ny, nx), f32::NAN);
         let mut eta = Array3::from_elem((nz, ny, nx), f32::NAN);
-        for (k, z) in per_level.into_iter().enumerate() {
-            let e = vorticity::absolute_vorticity(z.view(), plane.f.view());
-            zeta.index_axis_mut(Axis(0), k)
-                .assign(&z.mapv(|x| x as f32));
-            eta.index_axis_mut(Axis(0), k).assign(&e.mapv(|x| x as f32));
-        }
+        zeta.axis_iter_mut(Axis(0))
+            .into_par_iter()
+            .zip(eta.axis_iter_mut(Axis(0)))
+            .enumerate()
+            .for_each(|(k, (mut zl, mut el))| {
+                let z = plane.vorticity(
+                    ug.index_axis(Axis(0), k).mapv(f64::from).view(),
+                    vg.index_axis(Axis(0), k).mapv(f64::from).view(),
+                );
+                ndarray::Zip::from(&mut zl)
+                    .and(&mut el)
+                    .and(&z)
+                    .and(&plane.f)
+                    .for_each(|zo, eo, &zv, &f| {
+                        *zo = zv as f32;
+                        *eo = vorticity::absolute_vorticity_at(zv, f) as f32;
+                    });
+            });
         if want_vort {
-            fields.push(Product::new(variables::ZETA, Vertical::Pressure, zeta));
-            fields.push(Product::new(
-                variables::ETA,
-                Vertical::Pressure,
-                eta.clone(),
-            ));
+            push_sealed(
+                &mut fields,
+                &cfg.output,
+                &packing,
+                Product::new(variables::ZETA, Vertical::Pressure, zeta),
+            );
+            push_sealed(
+                &mut fields,
+                &cfg.output,
+                &packing,
+                Product::packed_copy(variables::ETA, Vertical::Pressure, &eta, &cfg.output),
+            );
         }
         eta3 = Some(eta);
     }
 
     rep.family_seconds
         .push(("vorticity", t_family.elapsed().as_secs_f64()));
+    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Potential temperature and static stability.
-    let st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
+    let mut st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
+    // Each product leaves the working set, packed, once nothing else needs it.
+    let sealed = |spec, vertical, data: Array3<f32>| {
+        let t = Instant::now();
+        let mut p = Product::new(spec, vertical, data);
+        p.pack(cfg.output.significant_bits, cfg.output.deflate_level);
+        packing.set(packing.get() + t.elapsed().as_secs_f64());
+        p
+    };
+    let n2_prod = st
+        .as_mut()
+        .map(|st| std::mem::take(&mut st.n2))
+        .filter(|_| want_stab)
+        .map(|n2| sealed(variables::N2, Vertical::Pressure, n2));
 
     rep.family_seconds
         .push(("stability", t_family.elapsed().as_secs_f64()));
+    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Isobaric PV in its full form.
     let mut pv3: Option<Array3<f32>> = None;
     if let (Some(st), Some(eta), Some(ug), Some(vg)) = (&st, &eta3, ug3, vg3) {
         if want_pv || want_trop {
             let lnp: Vec<f64> = p_pa.iter().map(|p| p.ln()).collect();
-            let dudp = vertical_derivative(ug.view(), &lnp, &p_pa);
-            let dvdp = vertical_derivative(vg.view(), &lnp, &p_pa);
-            let per_level: Vec<Array2<f32>> = (0..nz)
+            let mut pv = Array3::from_elem((nz, ny, nx), f32::NAN);
+            pv.axis_iter_mut(Axis(0))
                 .into_par_iter()
-                .map(|k| {
+                .enumerate()
+                .for_each(|(k, mut out)| {
                     let th = st.theta.index_axis(Axis(0), k).mapv(f64::from);
                     let (gx, gy) = plane.gradient(th.view());
-                    Array2::from_shape_fn((ny, nx), |(j, i)| {
-                        pv::isobaric_pv(
+                    ndarray::Zip::indexed(&mut out).for_each(|(j, i), o| {
+                        *o = pv::isobaric_pv(
                             f64::from(eta[(k, j, i)]),
                             -f64::from(st.neg_dtheta_dp[(k, j, i)]),
-                            f64::from(dudp[(k, j, i)]),
-                            f64::from(dvdp[(k, j, i)]),
+                            vertical_derivative_at(ug, k, j, i, &lnp, &p_pa),
+                            vertical_derivative_at(vg, k, j, i, &lnp, &p_pa),
                             gx[(j, i)],
                             gy[(j, i)],
-                        ) as f32
-                    })
-                })
-                .collect();
-            let mut pv = Array3::from_elem((nz, ny, nx), f32::NAN);
-            for (k, a) in per_level.into_iter().enumerate() {
-                pv.index_axis_mut(Axis(0), k).assign(&a);
-            }
+                        ) as f32;
+                    });
+                });
             pv3 = Some(pv);
         }
     }
+    // Absolute vorticity is needed by PV only.
+    drop(eta3);
 
+    let stab_prod = st
+        .as_mut()
+        .map(|st| std::mem::take(&mut st.neg_dtheta_dp))
+        .filter(|_| want_stab)
+        .map(|stab| sealed(variables::STAB, Vertical::Pressure, stab));
     rep.family_seconds
         .push(("isobaric_pv", t_family.elapsed().as_secs_f64()));
-    let t_family = Instant::now();
-    // Isentropic surfaces.
-    if let (true, Some(st)) = (want_isen, &st) {
-        let targets = &cfg.isentropic.surfaces;
-        let surf = isentropic::surfaces(st.theta.view(), &p_pa, targets);
-        for (k, g) in surf.gaps.iter().enumerate() {
-            tracing::debug!(cycle = %cycle, step = lead, theta = targets[k], below = g.below, above = g.above, unstable = g.unstable, "isentropic surface gaps");
-        }
-        let ns = targets.len();
-        let p_s = surf.pressure.clone();
-        let t_s = Array3::from_shape_fn((ns, ny, nx), |(s, j, i)| {
-            isentropic::temperature_on_surface(targets[s], f64::from(p_s[(s, j, i)])) as f32
-        });
-        let z_s = z3
-            .as_ref()
-            .map(|z| isentropic::on_surfaces(z.view(), &surf));
-        let mut pv_s = Array3::from_elem((ns, ny, nx), f32::NAN);
-        if let (Some(u), Some(v), Some(ug), Some(vg)) = (&u3, &v3, ug3, vg3) {
-            let ugs = isentropic::on_surfaces(ug.view(), &surf);
-            let vgs = isentropic::on_surfaces(vg.view(), &surf);
-            let per: Vec<Array2<f64>> = (0..ns)
-                .into_par_iter()
-                .map(|s| {
-                    let z = plane.vorticity(
-                        ugs.index_axis(Axis(0), s).mapv(f64::from).view(),
-                        vgs.index_axis(Axis(0), s).mapv(f64::from).view(),
-                    );
-                    isentropic::isentropic_pv(
-                        z.view(),
-                        plane.f.view(),
-                        surf.dtheta_dp.index_axis(Axis(0), s),
-                    )
-                })
-                .collect();
-            for (s, a) in per.into_iter().enumerate() {
-                pv_s.index_axis_mut(Axis(0), s)
-                    .assign(&a.mapv(|x| x as f32));
-            }
-            let us = isentropic::on_surfaces(u.view(), &surf);
-            let vs = isentropic::on_surfaces(v.view(), &surf);
-            fields.push(Product::new(
-                variables::wind("isen_u", u_spec, "wind component on isentropic surfaces"),
-                Vertical::Theta,
-                us,
-            ));
-            fields.push(Product::new(
-                variables::wind("isen_v", v_spec, "wind component on isentropic surfaces"),
-                Vertical::Theta,
-                vs,
-            ));
-        }
-        fields.push(Product::new(variables::ISEN_P, Vertical::Theta, p_s));
-        if let Some(z_s) = z_s {
-            let m = Array3::from_shape_fn((ns, ny, nx), |ix| {
-                isentropic::montgomery(f64::from(t_s[ix]), f64::from(z_s[ix])) as f32
-            });
-            fields.push(Product::new(variables::ISEN_Z, Vertical::Theta, z_s));
-            fields.push(Product::new(variables::ISEN_M, Vertical::Theta, m));
-        }
-        fields.push(Product::new(variables::ISEN_T, Vertical::Theta, t_s));
-        if have_w {
-            fields.push(Product::new(variables::ISEN_PV, Vertical::Theta, pv_s));
-        }
-    }
-
-    rep.family_seconds
-        .push(("isentropic", t_family.elapsed().as_secs_f64()));
+    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Dynamic tropopause on each PV surface.
     if let (true, Some(pv), Some(st), Some(u), Some(v)) = (want_trop, &pv3, &st, &u3, &v3) {
@@ -857,26 +847,134 @@ pub fn run_step(
         let mut it = out.into_iter();
         let (tp, tt, tz, tu, tv) = (it.next(), it.next(), it.next(), it.next(), it.next());
         if let (Some(tp), Some(tt), Some(tz), Some(tu), Some(tv)) = (tp, tt, tz, tu, tv) {
-            fields.push(Product::new(variables::TROP_P, Vertical::PvSurface, tp));
-            fields.push(Product::new(variables::TROP_THETA, Vertical::PvSurface, tt));
+            push_sealed(
+                &mut fields,
+                &cfg.output,
+                &packing,
+                Product::new(variables::TROP_P, Vertical::PvSurface, tp),
+            );
+            push_sealed(
+                &mut fields,
+                &cfg.output,
+                &packing,
+                Product::new(variables::TROP_THETA, Vertical::PvSurface, tt),
+            );
             if z3.is_some() {
-                fields.push(Product::new(variables::TROP_Z, Vertical::PvSurface, tz));
+                push_sealed(
+                    &mut fields,
+                    &cfg.output,
+                    &packing,
+                    Product::new(variables::TROP_Z, Vertical::PvSurface, tz),
+                );
             }
-            fields.push(Product::new(
-                variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
-                Vertical::PvSurface,
-                tu,
-            ));
-            fields.push(Product::new(
-                variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
-                Vertical::PvSurface,
-                tv,
-            ));
+            push_sealed(
+                &mut fields,
+                &cfg.output,
+                &packing,
+                Product::new(
+                    variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
+                    Vertical::PvSurface,
+                    tu,
+                ),
+            );
+            push_sealed(
+                &mut fields,
+                &cfg.output,
+                &packing,
+                Product::new(
+                    variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
+                    Vertical::PvSurface,
+                    tv,
+                ),
+            );
         }
     }
 
+    let pv_prod = pv3
+        .take()
+        .filter(|_| want_pv)
+        .map(|pv| sealed(variables::PV, Vertical::Pressure, pv));
     rep.family_seconds
         .push(("tropopause", t_family.elapsed().as_secs_f64()));
+    pack_seconds += seal(&mut fields, &cfg.output);
+    let t_family = Instant::now();
+    // Isentropic surfaces.
+    if let (true, Some(st)) = (want_isen, &st) {
+        let targets = &cfg.isentropic.surfaces;
+        let mut surf = isentropic::surfaces(st.theta.view(), &p_pa, targets);
+        for (k, g) in surf.gaps.iter().enumerate() {
+            tracing::debug!(cycle = %cycle, step = lead, theta = targets[k], below = g.below, above = g.above, unstable = g.unstable, "isentropic surface gaps");
+        }
+        let ns = targets.len();
+        // Winds and PV first; each product is packed as soon as it is made.
+        let mut made: Vec<Product> = Vec::new();
+        let mut pv_prod = None;
+        if let (Some(u), Some(v), Some(ug), Some(vg)) = (&u3, &v3, ug3, vg3) {
+            let ugs = isentropic::on_surfaces(ug.view(), &surf);
+            let vgs = isentropic::on_surfaces(vg.view(), &surf);
+            let mut pv_s = Array3::from_elem((ns, ny, nx), f32::NAN);
+            pv_s.axis_iter_mut(Axis(0))
+                .into_par_iter()
+                .enumerate()
+                .for_each(|(s, mut out)| {
+                    let z = plane.vorticity(
+                        ugs.index_axis(Axis(0), s).mapv(f64::from).view(),
+                        vgs.index_axis(Axis(0), s).mapv(f64::from).view(),
+                    );
+                    let pv = isentropic::isentropic_pv(
+                        z.view(),
+                        plane.f.view(),
+                        surf.dtheta_dp.index_axis(Axis(0), s),
+                    );
+                    out.zip_mut_with(&pv, |o, &x| *o = x as f32);
+                });
+            // Winds as the input gives them: the same arrays when no turning was needed.
+            let (us, vs) = if wind_axes.is_none() {
+                (ugs, vgs)
+            } else {
+                (
+                    isentropic::on_surfaces(u.view(), &surf),
+                    isentropic::on_surfaces(v.view(), &surf),
+                )
+            };
+            made.push(sealed(
+                variables::wind("isen_u", u_spec, "wind component on isentropic surfaces"),
+                Vertical::Theta,
+                us,
+            ));
+            made.push(sealed(
+                variables::wind("isen_v", v_spec, "wind component on isentropic surfaces"),
+                Vertical::Theta,
+                vs,
+            ));
+            pv_prod = Some(sealed(variables::ISEN_PV, Vertical::Theta, pv_s));
+        }
+        let z_s = z3
+            .as_ref()
+            .map(|z| isentropic::on_surfaces(z.view(), &surf));
+        let p_s = std::mem::take(&mut surf.pressure);
+        drop(surf);
+        let t_s = Array3::from_shape_fn((ns, ny, nx), |(s, j, i)| {
+            isentropic::temperature_on_surface(targets[s], f64::from(p_s[(s, j, i)])) as f32
+        });
+        made.push(sealed(variables::ISEN_P, Vertical::Theta, p_s));
+        if let Some(z_s) = z_s {
+            let m = Array3::from_shape_fn((ns, ny, nx), |ix| {
+                isentropic::montgomery(f64::from(t_s[ix]), f64::from(z_s[ix])) as f32
+            });
+            made.push(sealed(variables::ISEN_Z, Vertical::Theta, z_s));
+            made.push(sealed(variables::ISEN_M, Vertical::Theta, m));
+        }
+        made.push(sealed(variables::ISEN_T, Vertical::Theta, t_s));
+        if have_w {
+            made.extend(pv_prod);
+        }
+        fields.extend(made);
+    }
+
+    rep.family_seconds
+        .push(("isentropic", t_family.elapsed().as_secs_f64()));
+    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Layer PV in column-depth form.
     if let (true, Some(st), Some(ug), Some(vg)) = (want_layer, &st, ug3, vg3) {
@@ -904,35 +1002,56 @@ pub fn run_step(
                 lpv[(n, j, i)] = isentropic::layer_pv(zv + plane.f[(j, i)], d) as f32;
             });
         }
-        fields.push(Product::new(variables::LAYER_PV, Vertical::ThetaLayer, lpv));
-        fields.push(Product::new(variables::LAYER_DP, Vertical::ThetaLayer, ldp));
+        push_sealed(
+            &mut fields,
+            &cfg.output,
+            &packing,
+            Product::new(variables::LAYER_PV, Vertical::ThetaLayer, lpv),
+        );
+        push_sealed(
+            &mut fields,
+            &cfg.output,
+            &packing,
+            Product::new(variables::LAYER_DP, Vertical::ThetaLayer, ldp),
+        );
         let (lu_spec, lv_spec) = if plane.rotation.is_some() {
             (variables::WIND_U_GRID, variables::WIND_V_GRID)
         } else {
             (variables::WIND_U_EARTH, variables::WIND_V_EARTH)
         };
-        fields.push(Product::new(
-            variables::wind(
-                "layer_u",
-                lu_spec,
-                "layer-mean wind along the grid's x axis",
+        push_sealed(
+            &mut fields,
+            &cfg.output,
+            &packing,
+            Product::new(
+                variables::wind(
+                    "layer_u",
+                    lu_spec,
+                    "layer-mean wind along the grid's x axis",
+                ),
+                Vertical::ThetaLayer,
+                lu,
             ),
-            Vertical::ThetaLayer,
-            lu,
-        ));
-        fields.push(Product::new(
-            variables::wind(
-                "layer_v",
-                lv_spec,
-                "layer-mean wind along the grid's y axis",
+        );
+        push_sealed(
+            &mut fields,
+            &cfg.output,
+            &packing,
+            Product::new(
+                variables::wind(
+                    "layer_v",
+                    lv_spec,
+                    "layer-mean wind along the grid's y axis",
+                ),
+                Vertical::ThetaLayer,
+                lv,
             ),
-            Vertical::ThetaLayer,
-            lv,
-        ));
+        );
     }
 
     rep.family_seconds
         .push(("layer_pv", t_family.elapsed().as_secs_f64()));
+    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
 
     // Isobaric layer thickness: heights where both levels have them, else hypsometric.
@@ -1015,27 +1134,31 @@ pub fn run_step(
             }
             let mut prod = Product::new(variables::THICK, Vertical::PressureLayer, th);
             prod.notes.push(("leeward_method", methods.join("; ")));
-            fields.push(prod);
+            push_sealed(&mut fields, &cfg.output, &packing, prod);
         }
     }
     rep.family_seconds
         .push(("thickness", t_family.elapsed().as_secs_f64()));
-    if let Some(st) = st {
-        if want_stab {
-            fields.push(Product::new(variables::THETA, Vertical::Pressure, st.theta));
-            fields.push(Product::new(
-                variables::STAB,
-                Vertical::Pressure,
-                st.neg_dtheta_dp,
-            ));
-            fields.push(Product::new(variables::N2, Vertical::Pressure, st.n2));
-        }
+    pack_seconds += seal(&mut fields, &cfg.output);
+    let t_family = Instant::now();
+    if let (true, Some(st)) = (want_stab, st) {
+        push_sealed(
+            &mut fields,
+            &cfg.output,
+            &packing,
+            Product::new(variables::THETA, Vertical::Pressure, st.theta),
+        );
     }
-    if let (true, Some(pv)) = (want_pv, pv3) {
-        fields.push(Product::new(variables::PV, Vertical::Pressure, pv));
-    }
+    fields.extend(stab_prod);
+    fields.extend(n2_prod);
+    fields.extend(pv_prod);
     if let (true, Some(z)) = (want_thick || want_isen, &z3) {
-        fields.push(Product::new(variables::Z, Vertical::Pressure, z.clone()));
+        push_sealed(
+            &mut fields,
+            &cfg.output,
+            &packing,
+            Product::packed_copy(variables::Z, Vertical::Pressure, z, &cfg.output),
+        );
     }
 
     // Changes in time, from the published files of earlier steps and cycles.
@@ -1061,12 +1184,7 @@ pub fn run_step(
     let as_published: Vec<(&'static str, Array3<f32>)> = fields
         .iter()
         .filter(|f| matches!(f.spec.name, "thick" | "z" | "trop_p"))
-        .map(|f| {
-            (
-                f.spec.name,
-                f.data.mapv(|x| crate::output::cf::bit_round(x, nsb)),
-            )
-        })
+        .map(|f| (f.spec.name, f.published(nsb)))
         .collect();
     let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
     // The fields of this step that run-to-run changes compare, with their coordinates:
@@ -1095,8 +1213,15 @@ pub fn run_step(
         change_products.extend(changes::run_to_run(&run, &r2r_fields));
     }
     fields.extend(change_products);
+    rep.family_seconds
+        .push(("changes_read", t_family.elapsed().as_secs_f64()));
+    pack_seconds += seal(&mut fields, &cfg.output) + packing.get();
+    rep.family_seconds.push(("packing", pack_seconds));
+    for (family, seconds) in &rep.family_seconds {
+        tracing::debug!(cycle = %cycle, step = lead, family, seconds, "diagnostic family timing");
+    }
     rep.products = fields.iter().map(|f| f.spec.name.to_string()).collect();
-    rep.compute_seconds = t_compute.elapsed().as_secs_f64();
+    rep.compute_seconds = t_compute.elapsed().as_secs_f64() - pack_seconds;
 
     let mut inputs_used: Vec<String> = step
         .fields
@@ -1142,7 +1267,7 @@ pub fn run_step(
     let name = output_name(&step.key, grid_suffix);
     let t_write = Instant::now();
     let written = write_step(out.dir, &name, &products);
-    rep.write_seconds = t_write.elapsed().as_secs_f64();
+    rep.write_seconds = t_write.elapsed().as_secs_f64() + pack_seconds;
     match written {
         Ok(path) => {
             let t_changes = Instant::now();
@@ -1266,20 +1391,26 @@ pub fn grid_suffixes(steps: &[Step]) -> Vec<Option<usize>> {
 
 /// d f / d p of every column of `f` (levels, rows, columns), from three-point
 /// differences in ln p (see `stability::column_derivative`): df/dp = (1/p) df/d ln p.
-fn vertical_derivative(f: ArrayView3<f32>, lnp: &[f64], p: &[f64]) -> Array3<f32> {
-    let mut out = Array3::from_elem(f.dim(), f32::NAN);
+fn vertical_derivative_at(
+    f: &Array3<f32>,
+    k: usize,
+    j: usize,
+    i: usize,
+    lnp: &[f64],
+    p: &[f64],
+) -> f64 {
+    // The derivative at k looks at most two levels either side: the same
+    // column rule on a window of the column gives the same value.
     let nz = lnp.len();
-    ndarray::Zip::from(f.lanes(Axis(0)))
-        .and(out.lanes_mut(Axis(0)))
-        .par_for_each(|c, mut o| {
-            let col: Vec<f64> = c.iter().map(|&x| f64::from(x)).collect();
-            let mut d = vec![0.0; nz];
-            stability::column_derivative(&col, lnp, &mut d);
-            for k in 0..nz {
-                o[k] = (d[k] / p[k]) as f32;
-            }
-        });
-    out
+    let (lo, hi) = (k.saturating_sub(2), (k + 3).min(nz));
+    let mut col = [0.0f64; 5];
+    let mut d = [0.0f64; 5];
+    for (n, kk) in (lo..hi).enumerate() {
+        col[n] = f64::from(f[(kk, j, i)]);
+    }
+    let w = hi - lo;
+    stability::column_derivative(&col[..w], &lnp[lo..hi], &mut d[..w]);
+    d[k - lo] / p[k]
 }
 
 /// A stable fingerprint of a grid definition (FNV-1a, 64 bits, hex): the same

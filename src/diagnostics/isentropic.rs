@@ -51,6 +51,18 @@ pub struct Surfaces {
 /// exact for a polytropic layer (T proportional to p^c), in the spirit of
 /// Ziv and Alpert 1994, J. Appl. Meteor. 33, 694-703 (from memory).
 pub fn locate(th: &[f64], target: f64) -> Result<(usize, f64), GapKind> {
+    let ln_th: Vec<f64> = th.iter().map(|t| t.ln()).collect();
+    locate_ln(th, &ln_th, target, target.ln())
+}
+
+/// [`locate`] with the logarithms of the column (`ln_th`) and of the target
+/// taken once by the caller: the same search, the same weight.
+pub fn locate_ln(
+    th: &[f64],
+    ln_th: &[f64],
+    target: f64,
+    ln_target: f64,
+) -> Result<(usize, f64), GapKind> {
     let ok = |k: usize| th[k].is_finite() && th[k] > 0.0;
     let (mut top, mut bottom) = (None, None);
     for k in 0..th.len() {
@@ -70,7 +82,7 @@ pub fn locate(th: &[f64], target: f64) -> Result<(usize, f64), GapKind> {
         if tu <= tl {
             return Err(GapKind::Unstable);
         }
-        let w = (target.ln() - tl.ln()) / (tu.ln() - tl.ln());
+        let w = (ln_target - ln_th[k + 1]) / (ln_th[k] - ln_th[k + 1]);
         return Ok((k, w));
     }
     let (Some(top), Some(bottom)) = (top, bottom) else {
@@ -121,6 +133,7 @@ pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces 
     }
     let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
     let counts: Vec<[AtomicUsize; 3]> = (0..ns).map(|_| Default::default()).collect();
+    let ln_targets: Vec<f64> = targets.iter().map(|t| t.ln()).collect();
     // Rows in parallel: each row owns its columns of every output.
     Zip::from(theta.axis_iter(Axis(1)))
         .and(upper.axis_iter_mut(Axis(1)))
@@ -129,12 +142,14 @@ pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces 
         .and(dthdp.axis_iter_mut(Axis(1)))
         .par_for_each(|th_row, mut up, mut wt, mut pr, mut dd| {
             let mut col = vec![0.0; nz];
+            let mut ln_col = vec![0.0; nz];
             for i in 0..nx {
                 for k in 0..nz {
                     col[k] = f64::from(th_row[(k, i)]);
+                    ln_col[k] = col[k].ln();
                 }
                 for (s, &target) in targets.iter().enumerate() {
-                    match locate(&col, target) {
+                    match locate_ln(&col, &ln_col, target, ln_targets[s]) {
                         Ok((u, w)) => {
                             let l = u + 1;
                             let ps = (lnp[l] + w * (lnp[u] - lnp[l])).exp();
@@ -142,9 +157,8 @@ pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces 
                             wt[(s, i)] = w as f32;
                             pr[(s, i)] = ps as f32;
                             // d theta/dp = (theta/p) d ln theta / d ln p of the bracketing layer.
-                            dd[(s, i)] = (target / ps * (col[u].ln() - col[l].ln())
-                                / (lnp[u] - lnp[l]))
-                                as f32;
+                            dd[(s, i)] =
+                                (target / ps * (ln_col[u] - ln_col[l]) / (lnp[u] - lnp[l])) as f32;
                         }
                         Err(kind) => {
                             counts[s][kind as usize].fetch_add(1, Ordering::Relaxed);

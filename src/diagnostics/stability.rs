@@ -85,24 +85,29 @@ pub fn stability(t: ArrayView3<f32>, p: &[f64]) -> Stability {
         };
     }
     let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
-    Zip::from(t.lanes(Axis(0)))
-        .and(theta.lanes_mut(Axis(0)))
-        .and(neg.lanes_mut(Axis(0)))
-        .and(n2.lanes_mut(Axis(0)))
-        .par_for_each(|tc, mut thc, mut ndc, mut n2c| {
-            let tk: Vec<f64> = tc.iter().map(|&x| f64::from(x)).collect();
-            let th: Vec<f64> = tk
-                .iter()
-                .zip(p)
-                .map(|(&t, &pk)| potential_temperature(t, pk))
-                .collect();
+    // (p0 / p)^kappa once per level: theta = T * factor.
+    let factor: Vec<f64> = p.iter().map(|&pk| potential_temperature(1.0, pk)).collect();
+    // Row by row (each level's row is contiguous), a column at a time within the row.
+    Zip::from(t.axis_iter(Axis(1)))
+        .and(theta.axis_iter_mut(Axis(1)))
+        .and(neg.axis_iter_mut(Axis(1)))
+        .and(n2.axis_iter_mut(Axis(1)))
+        .par_for_each(|tr, mut thr, mut ndr, mut n2r| {
+            let mut tk = vec![0.0; nz];
+            let mut th = vec![0.0; nz];
             let mut der = vec![0.0; nz];
-            column_derivative(&th, &lnp, &mut der);
-            for k in 0..nz {
-                let dthdp = der[k] / p[k];
-                thc[k] = th[k] as f32;
-                ndc[k] = (-dthdp) as f32;
-                n2c[k] = (-(G0 * G0 * p[k] / (R_DRY * tk[k] * th[k])) * dthdp) as f32;
+            for i in 0..nx {
+                for k in 0..nz {
+                    tk[k] = f64::from(tr[(k, i)]);
+                    th[k] = tk[k] * factor[k];
+                }
+                column_derivative(&th, &lnp, &mut der);
+                for k in 0..nz {
+                    let dthdp = der[k] / p[k];
+                    thr[(k, i)] = th[k] as f32;
+                    ndr[(k, i)] = (-dthdp) as f32;
+                    n2r[(k, i)] = (-(G0 * G0 * p[k] / (R_DRY * tk[k] * th[k])) * dthdp) as f32;
+                }
             }
         });
     Stability {

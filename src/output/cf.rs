@@ -142,9 +142,18 @@ pub struct Product {
     /// Its vertical coordinate.
     pub vertical: Vertical,
     /// Values on (vertical, row, column), NaN where missing.
-    pub data: Array3<f32>,
+    pub values: Values,
     /// Further attributes of this variable (name, text).
     pub notes: Vec<(&'static str, String)>,
+}
+
+/// A product's values: as computed, or already packed as the file stores them.
+#[derive(Debug, Clone)]
+pub enum Values {
+    /// As computed, NaN where missing.
+    Plain(Array3<f32>),
+    /// Bit-rounded, shuffled and deflated per level ([`super::pack`]).
+    Packed(super::pack::Packed),
 }
 
 impl Product {
@@ -153,8 +162,69 @@ impl Product {
         Product {
             spec,
             vertical,
-            data,
+            values: Values::Plain(data),
             notes: Vec::new(),
+        }
+    }
+
+    /// A product of values that stay in use elsewhere: packed at once from
+    /// a borrow when `out` deflates (no copy of the plain values), else copied.
+    pub fn packed_copy(
+        spec: VarSpec,
+        vertical: Vertical,
+        data: &Array3<f32>,
+        out: &crate::config::Output,
+    ) -> Self {
+        let values = if out.deflate_level > 0 {
+            Values::Packed(super::pack::Packed::new(
+                data,
+                out.significant_bits,
+                out.deflate_level as u32,
+            ))
+        } else {
+            Values::Plain(data.clone())
+        };
+        Product {
+            spec,
+            vertical,
+            values,
+            notes: Vec::new(),
+        }
+    }
+
+    /// (levels, rows, columns).
+    pub fn dim(&self) -> (usize, usize, usize) {
+        match &self.values {
+            Values::Plain(a) => a.dim(),
+            Values::Packed(p) => p.shape,
+        }
+    }
+
+    /// Level `k`, NaN where missing.
+    pub fn level(&self, k: usize) -> Array2<f32> {
+        match &self.values {
+            Values::Plain(a) => a.index_axis(ndarray::Axis(0), k).to_owned(),
+            Values::Packed(p) => p.level(k),
+        }
+    }
+
+    /// Every level as a reader of the file gets it: bit-rounded to `nsb`
+    /// significant bits, NaN where missing.
+    pub fn published(&self, nsb: u32) -> Array3<f32> {
+        match &self.values {
+            Values::Plain(a) => a.mapv(|x| bit_round(x, nsb)),
+            Values::Packed(p) => p.unpack(),
+        }
+    }
+
+    /// Pack the values as the file will store them (deflate `level` > 0),
+    /// on every core, and free the plain array.
+    pub fn pack(&mut self, nsb: u32, level: i32) {
+        if level <= 0 {
+            return;
+        }
+        if let Values::Plain(a) = &self.values {
+            self.values = Values::Packed(super::pack::Packed::new(a, nsb, level as u32));
         }
     }
 }
@@ -234,7 +304,10 @@ pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, O
     let raw: u64 = p
         .fields
         .iter()
-        .map(|f| f.data.len() as u64 * 4)
+        .map(|f| {
+            let (a, b, c) = f.dim();
+            (a * b * c) as u64 * 4
+        })
         .sum::<u64>()
         + points * 16
         + (1 << 20);
@@ -635,8 +708,9 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
     } else {
         "reference_time lead_time"
     };
+    let mut direct = Vec::new();
     for prod in &p.fields {
-        let (spec, data) = (&prod.spec, &prod.data);
+        let spec = &prod.spec;
         let mut v = f
             .add_variable::<f32>(spec.name, &["time", prod.vertical.dim(), ydim, xdim])
             .map_err(&e)?;
@@ -669,21 +743,33 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
             v.put_attribute("leeward_significant_bits", p.significant_bits as i32)
                 .map_err(&e)?;
         }
-        for (k, level) in data.outer_iter().enumerate() {
-            let buf: Vec<f32> = level
-                .iter()
-                .map(|&x| {
-                    if x.is_finite() {
-                        bit_round(x, p.significant_bits)
-                    } else {
-                        FILL_F32
-                    }
-                })
-                .collect();
-            v.put_values(&buf, (0, k, .., ..)).map_err(&e)?;
+        match &prod.values {
+            Values::Plain(data) => {
+                for (k, level) in data.outer_iter().enumerate() {
+                    let buf: Vec<f32> = level
+                        .iter()
+                        .map(|&x| {
+                            if x.is_finite() {
+                                bit_round(x, p.significant_bits)
+                            } else {
+                                FILL_F32
+                            }
+                        })
+                        .collect();
+                    v.put_values(&buf, (0, k, .., ..)).map_err(&e)?;
+                }
+            }
+            // Packed with the filters declared above: stored after the file is closed.
+            Values::Packed(packed) => direct.push((spec.name, packed)),
         }
     }
     f.close().map_err(&e)?;
+    if !direct.is_empty() {
+        super::pack::write_chunks(path, &direct).map_err(|m| OutputError::NetCdf {
+            path: path.to_path_buf(),
+            source: netcdf::Error::from(m.as_str()),
+        })?;
+    }
     Ok(())
 }
 

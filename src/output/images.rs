@@ -61,7 +61,7 @@ fn level_index(
     level: Option<(f64, Option<f64>)>,
 ) -> Option<(usize, String)> {
     let close = |a: f64, b: f64| (a - b).abs() <= 1e-6 * a.abs().max(1.0);
-    let n = f.data.dim().0;
+    let n = f.dim().0;
     match level {
         None => (n == 1).then(|| (0, String::new())),
         Some((v, None)) => match f.vertical {
@@ -135,12 +135,9 @@ pub fn write_images(product: &Path, p: &StepProducts, wanted: &[Wanted]) -> Vec<
         };
         // Forecasters read pressure in hPa and PV in PVU.
         let (values, units) = match f.spec.units {
-            "Pa" => (
-                f.data.index_axis(ndarray::Axis(0), k).mapv(|x| x / 100.0),
-                "hPa",
-            ),
-            "1e-6 K m2 kg-1 s-1" => (f.data.index_axis(ndarray::Axis(0), k).to_owned(), "PVU"),
-            u => (f.data.index_axis(ndarray::Axis(0), k).to_owned(), u),
+            "Pa" => (f.level(k).mapv(|x| x / 100.0), "hPa"),
+            "1e-6 K m2 kg-1 s-1" => (f.level(k), "PVU"),
+            u => (f.level(k), u),
         };
         let title = if level_text.is_empty() {
             f.spec.long_name.to_string()

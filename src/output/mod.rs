@@ -5,6 +5,7 @@
 
 pub mod cf;
 pub mod images;
+pub mod pack;
 pub mod quicklook;
 pub mod store;
 pub mod variables;

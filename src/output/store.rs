@@ -172,7 +172,13 @@ pub fn add_variables(
         .unwrap_or_default();
     let tmp = dir.join(format!(".{name}.update-{}", super::temporary_suffix()));
     let existing = std::fs::metadata(path).map(|m| m.len()).unwrap_or(0);
-    let added: u64 = vars.iter().map(|v| v.data.len() as u64 * 4).sum();
+    let added: u64 = vars
+        .iter()
+        .map(|v| {
+            let (a, b, c) = v.dim();
+            (a * b * c) as u64 * 4
+        })
+        .sum();
     super::ensure_space(dir, existing + added + (1 << 20)).map_err(io(path))?;
     std::fs::copy(path, &tmp).map_err(io(&tmp))?;
     let result = (|| -> Result<(), OutputError> {
@@ -203,8 +209,7 @@ pub fn add_variables(
             ("y", "x")
         };
         for prod in vars {
-            let (spec, vertical, data, notes) =
-                (&prod.spec, prod.vertical.dim(), &prod.data, &prod.notes);
+            let (spec, vertical, notes) = (&prod.spec, prod.vertical.dim(), &prod.notes);
             if f.variable(spec.name).is_some() {
                 // Already there (written earlier): values are replaced in place below.
             } else {
@@ -215,7 +220,7 @@ pub fn add_variables(
                 if deflate > 0 {
                     v.set_compression(deflate, true).map_err(e)?;
                 }
-                let (_, ny, nx) = data.dim();
+                let (_, ny, nx) = prod.dim();
                 v.set_chunking(&[1, 1, ny, nx]).map_err(e)?;
                 if let Some(s) = spec.standard_name {
                     v.put_attribute("standard_name", s).map_err(e)?;
@@ -244,8 +249,9 @@ pub fn add_variables(
                     path: tmp.clone(),
                     source: netcdf::Error::from("variable vanished"),
                 })?;
-            for (k, level) in data.outer_iter().enumerate() {
-                let buf: Vec<f32> = level
+            for k in 0..prod.dim().0 {
+                let buf: Vec<f32> = prod
+                    .level(k)
                     .iter()
                     .map(|&x| {
                         if x.is_finite() {

@@ -13,7 +13,6 @@ use chrono::{NaiveDateTime, TimeDelta, Utc};
 use serde::{Deserialize, Serialize};
 use tracing::{info, warn};
 
-use crate::ingest::bytes::fnv1a_hex;
 use crate::output::store::cycle_dir_name;
 use crate::pipeline::StepReport;
 
@@ -76,7 +75,7 @@ pub struct Manifest {
     pub product: String,
     /// Its size, bytes.
     pub product_bytes: u64,
-    /// Its checksum (FNV-1a 64, hex).
+    /// Its SHA-256, hex (what `sha256sum` prints).
     pub product_checksum: String,
     /// Variables in the product file.
     pub variables: Vec<String>,
@@ -110,9 +109,26 @@ fn now_iso() -> String {
 /// Write `bytes` to `path` atomically (see [`crate::output::write_file_atomic`]).
 pub use crate::output::write_file_atomic as write_atomic;
 
+/// Size and SHA-256 (FIPS 180-4), hex, of a published file, read in blocks
+/// so that a file of any size costs one block of memory; `sha256sum` gives
+/// the same digest.
 fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
-    let b = std::fs::read(path)?;
-    Ok((b.len() as u64, fnv1a_hex(&b)))
+    use sha2::Digest;
+    use std::io::Read;
+    let mut f = std::fs::File::open(path)?;
+    let mut h = sha2::Sha256::new();
+    let mut buf = vec![0u8; 1 << 20];
+    let mut n = 0u64;
+    loop {
+        let k = f.read(&mut buf)?;
+        if k == 0 {
+            break;
+        }
+        h.update(&buf[..k]);
+        n += k as u64;
+    }
+    let digest = h.finalize();
+    Ok((n, digest.iter().map(|b| format!("{b:02x}")).collect()))
 }
 
 fn variables_of(path: &Path) -> Vec<String> {

@@ -13,6 +13,7 @@ Everything is bounded in time; no test measures speed.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import random
@@ -28,6 +29,13 @@ import numpy as np
 import pytest
 
 from conftest import REPO_ROOT, leeward_bin_path
+
+
+def fnv1a64_hex(data: bytes) -> str:
+    h = 0xCBF29CE484222325
+    for b in data:
+        h = ((h ^ b) * 0x100000001B3) & 0xFFFFFFFFFFFFFFFF
+    return f"{h:016x}"
 
 netCDF4 = pytest.importorskip("netCDF4")
 
@@ -320,6 +328,13 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
             assert inputs == {"lwdemo_2026031400_006_part1.grib2", "lwdemo_2026031400_006_part2.grib2"}
         for i in m["inputs"]:
             assert i["bytes"] == Path(i["file"]).stat().st_size
+            # FNV-1a 64 (offset basis 0xcbf29ce484222325, prime 0x100000001b3; the
+            # published FNV parameters), computed here independently.
+            assert i["checksum"] == fnv1a64_hex(Path(i["file"]).read_bytes()), i
+        # The product's SHA-256 (FIPS 180-4) as Python's hashlib computes it.
+        product = Path(r["manifest"]).parent / m["product"]
+        assert m["product_bytes"] == product.stat().st_size
+        assert m["product_checksum"] == hashlib.sha256(product.read_bytes()).hexdigest()
     # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side.
     cycle_dir = tmp_path / "out" / "demo" / "20260314T0000Z"
     assert sorted(p.name for p in cycle_dir.iterdir()) == sorted(
