@@ -207,6 +207,23 @@ pub fn main() -> ExitCode {
         "warn"
     };
     init_logging(&cli.log_format, level);
+    if matches!(
+        cli.command,
+        Command::Inspect { .. }
+            | Command::Status { .. }
+            | Command::CheckConfig { .. }
+            | Command::Completions { .. }
+            | Command::Man { .. }
+    ) {
+        // Commands that print a listing end quietly when the reader of their
+        // output goes away (`leeward inspect FILE | head`), as Unix tools do.
+        // SAFETY: signal(2) with SIG_DFL installs no handler of ours (no code
+        // runs in signal context), and it is called here on the main thread
+        // before the command starts any other thread.
+        unsafe {
+            libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+        }
+    }
     match cli.command {
         Command::Process {
             config,

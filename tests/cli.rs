@@ -267,3 +267,40 @@ fn check_config_names_every_planted_error_and_completions_and_man_pages_come_out
     );
     let _ = std::fs::remove_dir_all(&d);
 }
+
+#[test]
+fn a_listing_into_a_closed_pipe_ends_quietly() {
+    // `leeward inspect FILE | head -1`: the reader leaves after one line; leeward
+    // must end as Unix tools do (SIGPIPE), never with a panic message.
+    use std::io::Read;
+    use std::process::Stdio;
+    let demo = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/demo-data/grib2/lwdemo_2026031400_024.grib2"
+    );
+    let mut child = Command::new(env!("CARGO_BIN_EXE_leeward"))
+        .args(["inspect", "--json", demo])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start leeward");
+    let mut first = [0u8; 16];
+    let mut out = child.stdout.take().expect("stdout");
+    out.read_exact(&mut first).expect("some output");
+    drop(out);
+    let mut err = String::new();
+    child
+        .stderr
+        .take()
+        .expect("stderr")
+        .read_to_string(&mut err)
+        .expect("stderr");
+    let status = child.wait().expect("wait");
+    assert!(!err.contains("panicked"), "{err}");
+    assert!(err.is_empty(), "nothing on stderr: {err}");
+    use std::os::unix::process::ExitStatusExt;
+    assert!(
+        status.success() || status.signal() == Some(13),
+        "{status:?}"
+    );
+}

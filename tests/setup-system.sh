@@ -12,6 +12,8 @@ command -v cargo >/dev/null 2>&1 || {
 command -v pkg-config >/dev/null 2>&1 || need+=(pkg-config)
 [ -e /usr/include/netcdf.h ] || need+=(libnetcdf-dev)
 command -v cc >/dev/null 2>&1 || need+=(build-essential)
+# ncdump: the README's first look at a product's header (the docs test runs it).
+command -v ncdump >/dev/null 2>&1 || need+=(netcdf-bin)
 
 if [ ${#need[@]} -gt 0 ]; then
   if [ "$(id -u)" = 0 ]; then

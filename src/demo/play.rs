@@ -206,8 +206,64 @@ pub fn render(rows: &[Row], dir: &Path) -> String {
     o
 }
 
+/// A file in every directory `leeward demo` plays into: how a later run knows
+/// the directory holds an earlier demo (and nothing of the user's).
+pub const MARKER: &str = ".leeward-demo";
+/// What a demo run writes in its directory.
+const OWN: [&str; 6] = [
+    "generated",
+    "incoming",
+    "products",
+    "state",
+    "leeward.toml",
+    "service.log",
+];
+
+/// Make `dir` ready for a fresh run: a new or empty directory is taken; one
+/// that holds an earlier demo run (it has [`MARKER`]) has that run's files
+/// removed, so the table shows this run and not the ledger of the last; any
+/// other non-empty directory is refused, never touched. Returns whether an
+/// earlier run was cleared.
+pub fn prepare_dir(dir: &Path) -> Result<bool, String> {
+    let used = match std::fs::read_dir(dir) {
+        Ok(mut rd) => rd.next().is_some(),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => false,
+        Err(e) => return Err(format!("cannot read {}: {e}", dir.display())),
+    };
+    let marker = dir.join(MARKER);
+    if used && !marker.is_file() {
+        return Err(format!(
+            "{} is not empty and holds no earlier demo run: give a new or empty directory \
+             (nothing in it was touched)",
+            dir.display()
+        ));
+    }
+    let cleared = used;
+    for name in OWN {
+        let path = dir.join(name);
+        let r = if path.is_dir() {
+            std::fs::remove_dir_all(&path)
+        } else if path.exists() {
+            std::fs::remove_file(&path)
+        } else {
+            Ok(())
+        };
+        r.map_err(|e| format!("cannot clear the earlier demo run's {}: {e}", path.display()))?;
+    }
+    std::fs::create_dir_all(dir).map_err(|e| format!("cannot create {}: {e}", dir.display()))?;
+    std::fs::write(&marker, "a directory of `leeward demo`: a later demo run here starts afresh\n")
+        .map_err(|e| format!("cannot write {}: {e}", marker.display()))?;
+    Ok(cleared)
+}
+
 /// Play the demo. Returns the rows, or why it could not run.
 pub fn run(p: &Play) -> Result<Vec<Row>, String> {
+    if prepare_dir(&p.dir)? {
+        eprintln!(
+            "leeward demo: {} held an earlier demo run; its files were removed and the demo starts afresh",
+            p.dir.display()
+        );
+    }
     let generated = p.dir.join("generated");
     let write_err = |e: std::io::Error| {
         format!(

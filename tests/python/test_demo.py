@@ -61,3 +61,29 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
         cf = rep[str(nc)]["cf:1.9"]
         high = [(c["name"], c["msgs"]) for c in cf["high_priorities"] if c["value"][0] < c["value"][1]]
         assert cfo._real_failures(nc, high) == [], f"{nc.name}: {high}"
+
+
+def test_a_second_demo_run_in_the_same_directory_starts_afresh_and_a_foreign_one_is_refused(tmp_path):
+    d = tmp_path / "again"
+    args = [str(leeward_bin_path()), "demo", "--dir", str(d), "--leads", "0", "--pause", "0.2"]
+    first = subprocess.run(args, capture_output=True, text=True, timeout=300)
+    assert first.returncode == 0, first.stdout + first.stderr
+    stamp = (d / "state").stat().st_mtime_ns
+    second = subprocess.run(args, capture_output=True, text=True, timeout=300)
+    assert second.returncode == 0, second.stdout + second.stderr
+    assert "starts afresh" in second.stderr, second.stderr
+    # A fresh ledger, and this run's steps in it: each published once.
+    assert (d / "state").stat().st_mtime_ns != stamp
+    st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(d / "state")],
+                        capture_output=True, text=True, timeout=30)
+    assert "1 complete" in st.stdout, st.stdout
+    assert len(list((d / "products" / "regional" / "20260314T0000Z").glob("*.nc"))) == 1
+    # A directory that holds someone else's files is refused and left as it was.
+    foreign = tmp_path / "mine"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("keep me")
+    r = subprocess.run([str(leeward_bin_path()), "demo", "--dir", str(foreign), "--leads", "0"],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode != 0
+    assert "not empty" in r.stderr and str(foreign) in r.stderr, r.stderr
+    assert sorted(p.name for p in foreign.iterdir()) == ["notes.txt"]
