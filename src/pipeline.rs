@@ -824,22 +824,43 @@ pub fn run_step(
         let mut out: Vec<Array3<f32>> = (0..5)
             .map(|_| Array3::from_elem((np, ny, nx), f32::NAN))
             .collect();
-        for (s, &thr) in levels_pvu.iter().enumerate() {
-            for j in 0..ny {
+        // Rows in parallel; each row writes its own row of every output.
+        let rows: Vec<Vec<[f32; 5]>> = (0..ny)
+            .into_par_iter()
+            .map(|j| {
+                let mut col = vec![0.0f64; nz];
+                let mut row = vec![[f32::NAN; 5]; np * nx];
                 for i in 0..nx {
-                    let col: Vec<f64> = (0..nz).map(|k| f64::from(pv[(k, j, i)])).collect();
-                    if let Some((k, w)) = tropopause::locate_pv_surface(&col, lat[(j, i)], thr) {
-                        let at = |a: &Array3<f32>| {
-                            let (fu, fl) = (f64::from(a[(k, j, i)]), f64::from(a[(k + 1, j, i)]));
-                            (fl + w * (fu - fl)) as f32
-                        };
-                        out[0][(s, j, i)] = (lnp[k + 1] + w * (lnp[k] - lnp[k + 1])).exp() as f32;
-                        out[1][(s, j, i)] = at(&st.theta);
-                        if let Some(z) = &z3 {
-                            out[2][(s, j, i)] = at(z);
+                    for (k, c) in col.iter_mut().enumerate() {
+                        *c = f64::from(pv[(k, j, i)]);
+                    }
+                    for (s, &thr) in levels_pvu.iter().enumerate() {
+                        if let Some((k, w)) = tropopause::locate_pv_surface(&col, lat[(j, i)], thr)
+                        {
+                            let at = |a: &Array3<f32>| {
+                                let (fu, fl) =
+                                    (f64::from(a[(k, j, i)]), f64::from(a[(k + 1, j, i)]));
+                                (fl + w * (fu - fl)) as f32
+                            };
+                            let o = &mut row[s * nx + i];
+                            o[0] = (lnp[k + 1] + w * (lnp[k] - lnp[k + 1])).exp() as f32;
+                            o[1] = at(&st.theta);
+                            if let Some(z) = &z3 {
+                                o[2] = at(z);
+                            }
+                            o[3] = at(u);
+                            o[4] = at(v);
                         }
-                        out[3][(s, j, i)] = at(u);
-                        out[4][(s, j, i)] = at(v);
+                    }
+                }
+                row
+            })
+            .collect();
+        for (j, row) in rows.iter().enumerate() {
+            for s in 0..np {
+                for i in 0..nx {
+                    for (q, o) in out.iter_mut().enumerate() {
+                        o[(s, j, i)] = row[s * nx + i][q];
                     }
                 }
             }
@@ -954,14 +975,21 @@ pub fn run_step(
             .map(|z| isentropic::on_surfaces(z.view(), &surf));
         let p_s = std::mem::take(&mut surf.pressure);
         drop(surf);
-        let t_s = Array3::from_shape_fn((ns, ny, nx), |(s, j, i)| {
-            isentropic::temperature_on_surface(targets[s], f64::from(p_s[(s, j, i)])) as f32
-        });
+        let mut t_s = Array3::from_elem((ns, ny, nx), f32::NAN);
+        ndarray::Zip::indexed(&mut t_s)
+            .and(&p_s)
+            .par_for_each(|(s, _, _), t, &p| {
+                *t = isentropic::temperature_on_surface(targets[s], f64::from(p)) as f32;
+            });
         made.push(sealed(variables::ISEN_P, Vertical::Theta, p_s));
         if let Some(z_s) = z_s {
-            let m = Array3::from_shape_fn((ns, ny, nx), |ix| {
-                isentropic::montgomery(f64::from(t_s[ix]), f64::from(z_s[ix])) as f32
-            });
+            let mut m = Array3::from_elem((ns, ny, nx), f32::NAN);
+            ndarray::Zip::from(&mut m)
+                .and(&t_s)
+                .and(&z_s)
+                .par_for_each(|m, &t, &z| {
+                    *m = isentropic::montgomery(f64::from(t), f64::from(z)) as f32;
+                });
             made.push(sealed(variables::ISEN_Z, Vertical::Theta, z_s));
             made.push(sealed(variables::ISEN_M, Vertical::Theta, m));
         }
@@ -988,19 +1016,32 @@ pub fn run_step(
         let mut ldp = Array3::from_elem((nl, ny, nx), f32::NAN);
         let mut lu = Array3::from_elem((nl, ny, nx), f32::NAN);
         let mut lv = Array3::from_elem((nl, ny, nx), f32::NAN);
+        let ub = isentropic::on_surfaces(ug.view(), &surf);
+        let vb = isentropic::on_surfaces(vg.view(), &surf);
         for (n, l) in layers.iter().enumerate() {
             let ib = bounds.iter().position(|b| *b == l[0]).unwrap_or(0);
             let it = bounds.iter().position(|b| *b == l[1]).unwrap_or(0);
-            let (um, vm, dp) =
-                isentropic::layer_mean_wind(ug.view(), vg.view(), &p_pa, &surf, ib, it);
+            let (um, vm, dp) = isentropic::layer_mean_wind_with(
+                ug.view(),
+                vg.view(),
+                &p_pa,
+                &surf,
+                (&ub, &vb),
+                ib,
+                it,
+            );
             let z = plane.vorticity(um.view(), vm.view());
             lu.index_axis_mut(Axis(0), n).assign(&um.mapv(|x| x as f32));
             lv.index_axis_mut(Axis(0), n).assign(&vm.mapv(|x| x as f32));
-            ndarray::Zip::indexed(&z).for_each(|(j, i), &zv| {
-                let d = dp[(j, i)];
-                ldp[(n, j, i)] = d as f32;
-                lpv[(n, j, i)] = isentropic::layer_pv(zv + plane.f[(j, i)], d) as f32;
-            });
+            ndarray::Zip::from(ldp.index_axis_mut(Axis(0), n))
+                .and(lpv.index_axis_mut(Axis(0), n))
+                .and(&z)
+                .and(&dp)
+                .and(&plane.f)
+                .par_for_each(|ld, lp, &zv, &d, &f| {
+                    *ld = d as f32;
+                    *lp = isentropic::layer_pv(zv + f, d) as f32;
+                });
         }
         push_sealed(
             &mut fields,

@@ -248,11 +248,19 @@ pub fn prepare_dir(dir: &Path) -> Result<bool, String> {
         } else {
             Ok(())
         };
-        r.map_err(|e| format!("cannot clear the earlier demo run's {}: {e}", path.display()))?;
+        r.map_err(|e| {
+            format!(
+                "cannot clear the earlier demo run's {}: {e}",
+                path.display()
+            )
+        })?;
     }
     std::fs::create_dir_all(dir).map_err(|e| format!("cannot create {}: {e}", dir.display()))?;
-    std::fs::write(&marker, "a directory of `leeward demo`: a later demo run here starts afresh\n")
-        .map_err(|e| format!("cannot write {}: {e}", marker.display()))?;
+    std::fs::write(
+        &marker,
+        "a directory of `leeward demo`: a later demo run here starts afresh\n",
+    )
+    .map_err(|e| format!("cannot write {}: {e}", marker.display()))?;
     Ok(cleared)
 }
 

@@ -266,9 +266,23 @@ pub fn layer_mean_wind(
     bottom: usize,
     top: usize,
 ) -> (Array2<f64>, Array2<f64>, Array2<f64>) {
-    let (_, ny, nx) = u.dim();
     let ub = on_surfaces(u, s);
     let vb = on_surfaces(v, s);
+    layer_mean_wind_with(u, v, p, s, (&ub, &vb), bottom, top)
+}
+
+/// [`layer_mean_wind`] given the winds already on the bounding surfaces
+/// (`on_surfaces` of `u` and `v`), so that layers sharing surfaces share them.
+pub fn layer_mean_wind_with(
+    u: ArrayView3<f32>,
+    v: ArrayView3<f32>,
+    p: &[f64],
+    s: &Surfaces,
+    (ub, vb): (&Array3<f32>, &Array3<f32>),
+    bottom: usize,
+    top: usize,
+) -> (Array2<f64>, Array2<f64>, Array2<f64>) {
+    let (_, ny, nx) = u.dim();
     let mut um = Array2::from_elem((ny, nx), f64::NAN);
     let mut vm = Array2::from_elem((ny, nx), f64::NAN);
     let mut dp = Array2::from_elem((ny, nx), f64::NAN);
