@@ -1,38 +1,122 @@
 #!/usr/bin/env bash
-# The step benchmark: a 0.25-degree global step of 26 levels x (T, Z, u, v), complex
-# packing with spatial differencing, written by ecCodes; decoded by ecCodes alone and
-# processed by leeward in the same run. Prints the figures and their ratios.
-#   bash tests/bench/run.sh [--res 0.25|0.5|1.0]
+# leeward's benchmark, every figure in one run, with the ratios the performance
+# targets are stated in:
+#   1. ecCodes decoding the 0.25-degree benchmark step alone (the reference);
+#   2. leeward on the same step: decode on 1 and all threads, the whole step
+#      (every product) and the next step 6 h later (changes in time, PV budget),
+#      through `cargo bench --bench step`;
+#   3. scaling: `leeward process` at 1, 0.5 and 0.25 degree on all cores and on
+#      one thread, peak resident memory, fitted exponent of cost in grid points;
+#   4. the yardstick: the same products from a Python pipeline of general-purpose
+#      libraries (ecCodes, MetPy, netCDF4), timed, and checked against leeward's;
+#   5. latency in the service: last byte of the input to the published file.
+#
+#   bash tests/bench/run.sh [--res 0.25|0.5|1.0] [--skip-yardstick] [--skip-latency] [--skip-scaling]
+#
+# The machine is shared: read the ratios within one run, not the seconds across runs.
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 res=0.25
-[ "${1:-}" = "--res" ] && res="$2"
+skip_yard=0
+skip_lat=0
+skip_scal=0
+while [ $# -gt 0 ]; do
+  case "$1" in
+    --res) res="$2"; shift 2 ;;
+    --skip-yardstick) skip_yard=1; shift ;;
+    --skip-latency) skip_lat=1; shift ;;
+    --skip-scaling) skip_scal=1; shift ;;
+    *) echo "usage: bash tests/bench/run.sh [--res R] [--skip-yardstick] [--skip-latency] [--skip-scaling]" >&2; exit 2 ;;
+  esac
+done
 bash tests/setup-system.sh
 py="$(bash tests/setup-python.sh)"
 mkdir -p target/bench
+out=target/bench/results
+rm -rf "$out"
+mkdir -p "$out"
 input="target/bench/step-${res}deg.grib2"
 "$py" tests/bench/make_input.py "$input" --res "$res" >&2
 next="target/bench/step-${res}deg-next.grib2"
 "$py" tests/bench/shift_step.py "$input" "$next" --hours 6
-echo "machine: $(nproc) cores, $(free -g | awk '/Mem:/{print $2}') GiB, $(uname -sr); commit $(git rev-parse --short HEAD 2>/dev/null || echo none); $(date -u +%Y-%m-%dT%H:%MZ)"
-ecc="$("$py" tests/bench/eccodes_decode.py "$input" --runs 3)"
-echo "$ecc"
+cargo build --release --quiet
+bin="$(pwd)/target/release/leeward"
+echo "machine: $(nproc) cores, $(free -g | awk '/Mem:/{print $2}') GiB, $(uname -sr); commit $(git rev-parse --short HEAD 2>/dev/null || echo none); $(date -u +%Y-%m-%dT%H:%MZ); load $(cut -d' ' -f1-3 /proc/loadavg)"
+
+echo "== 1. ecCodes decode alone"
+"$py" tests/bench/eccodes_decode.py "$input" --runs 3 | tee "$out/eccodes.jsonl"
+
+echo "== 2. leeward: decode, whole step, next step"
 rm -rf target/bench/out
-cargo bench --quiet --bench step -- "$input" target/bench/out "$next" | tee target/bench/leeward.jsonl
+cargo bench --quiet --bench step -- "$input" target/bench/out "$next" | tee "$out/leeward.jsonl"
 rm -rf target/bench/out
-"$py" - "$ecc" target/bench/leeward.jsonl <<'PY'
+
+if [ "$skip_scal" = 0 ]; then
+  echo "== 3. scaling in grid points and threads, peak memory"
+  "$py" tests/bench/scaling.py --leeward "$bin" --work target/bench/scaling --json | tee "$out/scaling.txt"
+  grep '^{' "$out/scaling.txt" > "$out/scaling.jsonl" || true
+fi
+
+if [ "$skip_yard" = 0 ]; then
+  echo "== 4. the yardstick: ecCodes + MetPy + netCDF4 on the same step and products"
+  rm -rf target/bench/yard && mkdir -p target/bench/yard
+  "$bin" process --out target/bench/yard/leeward "$input" >&2
+  "$py" tests/bench/yardstick.py "$input" target/bench/yard/python \
+    --leeward-file "$(ls target/bench/yard/leeward/*.nc | head -1)" --json | tee "$out/yardstick.txt"
+  grep '^{' "$out/yardstick.txt" > "$out/yardstick.jsonl" || true
+  rm -rf target/bench/yard
+fi
+
+if [ "$skip_lat" = 0 ]; then
+  echo "== 5. latency in the service, default settings"
+  "$py" tests/bench/latency.py --leeward "$bin" --input "$input" --work target/bench/latency --json | tee "$out/latency.txt"
+  grep '^{' "$out/latency.txt" > "$out/latency.jsonl" || true
+fi
+
+echo "== summary"
+"$py" - "$out" <<'PY'
 import json, sys
-ecc = json.loads(sys.argv[1])
-rows = [json.loads(l) for l in open(sys.argv[2]) if l.startswith("{")]
+from pathlib import Path
+out = Path(sys.argv[1])
+def lines(name):
+    p = out / name
+    return [json.loads(l) for l in p.read_text().splitlines() if l.startswith("{")] if p.exists() else []
+ecc = lines("eccodes.jsonl")[0]
+rows = lines("leeward.jsonl")
 dec = {r["threads"]: r for r in rows if r["what"] == "decode"}
 step = [r for r in rows if r["what"] == "step"][0]
 pipe = [r for r in rows if r["what"] == "pipeline"][0]
-one = dec[1]
-many = dec[max(dec)]
-print(f"decode, 1 thread: leeward {one['mpoints_per_s']} M points/s vs ecCodes {ecc['mpoints_per_s']} M points/s: ratio {one['mpoints_per_s']/ecc['mpoints_per_s']:.2f}")
-print(f"decode, {max(dec)} threads: leeward {many['seconds']:.2f} s vs ecCodes {ecc['seconds']:.2f} s: ratio {ecc['seconds']/many['seconds']:.2f}x faster")
+one, many = dec[1], dec[max(dec)]
+e = ecc["seconds"]
+def verdict(ok):
+    return "met" if ok else "NOT met"
+print(f"decode, 1 thread: leeward {one['mpoints_per_s']} vs ecCodes {ecc['mpoints_per_s']} M points/s: {one['mpoints_per_s']/ecc['mpoints_per_s']:.2f}")
+print(f"decode, {max(dec)} threads: leeward {many['seconds']:.2f} s vs ecCodes {e:.2f} s: {e/many['seconds']:.2f} x faster")
+print(f"[1] whole step, every product: leeward {pipe['seconds']:.2f} s (decode {step['decode_s']:.2f}, diagnostics {step['diagnostics_s']:.2f}, write {step['write_s']:.2f}) "
+      f"vs ecCodes decode alone {e:.2f} s: ratio {pipe['seconds']/e:.2f} (target <= 1, stretch 0.5): {verdict(pipe['seconds'] <= e)}")
 nxt = [r for r in rows if r["what"] == "next_step"]
 if nxt:
-    print(f"next step 6 h later: {nxt[0]['step_s']:.2f} s, of which changes in time and PV budget {nxt[0]['changes_and_budget_s']:.2f} s")
-print(f"whole step: leeward {pipe['seconds']:.2f} s (decode {step['decode_s']:.2f}, diagnostics {step['diagnostics_s']:.2f}, write {step['write_s']:.2f}) vs ecCodes decode alone {ecc['seconds']:.2f} s: ratio {pipe['seconds']/ecc['seconds']:.2f}")
+    print(f"    next step 6 h later: {nxt[0]['step_s']:.2f} s, of which changes in time and PV budget {nxt[0]['changes_and_budget_s']:.2f} s")
+y = lines("yardstick.jsonl")
+if y:
+    y = y[0]
+    ok = all(v.get("pass", True) for v in y.get("agreement", {}).values() if isinstance(v, dict))
+    print(f"[2] yardstick (ecCodes + MetPy + netCDF4): {y['total_s']:.1f} s vs leeward {pipe['seconds']:.2f} s: "
+          f"{y['total_s']/pipe['seconds']:.1f} x (target >= 20): {verdict(y['total_s']/pipe['seconds'] >= 20)}; products agree: {ok}")
+s = lines("scaling.jsonl")
+if s:
+    s = s[0]
+    top = max(s["rows"], key=lambda r: r["points"])
+    rss = top["all_cores"]["peak_rss_mib"]
+    print(f"[3] peak resident memory at {top['res']} degree: {rss:.0f} MiB (target <= 1536): {verdict(rss <= 1536)}")
+    b = s["exponents"]["all_cores"]["b"]
+    print(f"[4] cost ~ points^{b:.3f} on all cores, ^{s['exponents']['one_thread']['b']:.3f} on one thread (target ~1)")
+    for r in s["rows"]:
+        print(f"    {r['res']} degree: all cores {r['all_cores']['wall_s']:.2f} s, one thread {r['one_thread']['wall_s']:.2f} s: "
+              f"speed-up {r['speedup']:.2f} on {s['cores']} cores; {r['wall_over_eccodes']:.2f} x ecCodes' decode")
+l = lines("latency.jsonl")
+if l:
+    l = l[0]
+    m = l["median_overhead_s"]
+    print(f"[5] service overhead beyond processing (last byte in -> file published), median of {len(l['repeats'])}: {m:.2f} s (target <= 1): {verdict(m <= 1.0)}")
 PY
