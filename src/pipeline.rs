@@ -760,6 +760,19 @@ pub fn run_step(
     let t_family = Instant::now();
     // Potential temperature and static stability.
     let mut st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
+    // Temperature itself is needed later only for a thickness layer without heights.
+    let has_z_at = |hpa: f64| {
+        z_levels_all
+            .iter()
+            .any(|&k| (k as f64 / 1e4 - hpa).abs() < 1e-6)
+    };
+    let thick_needs_t = want_thick
+        && cfg
+            .thickness
+            .layers_hpa
+            .iter()
+            .any(|l| !(has_z_at(l[0]) && has_z_at(l[1])));
+    let t3 = t3.filter(|_| thick_needs_t);
     // Each product leaves the working set, packed, once nothing else needs it.
     let sealed = |spec, vertical, data: Array3<f32>| {
         let t = Instant::now();
@@ -1440,9 +1453,27 @@ fn vertical_derivative_at(
     lnp: &[f64],
     p: &[f64],
 ) -> f64 {
-    // The derivative at k looks at most two levels either side: the same
-    // column rule on a window of the column gives the same value.
     let nz = lnp.len();
+    // Both neighbours valid (nearly every point): the centred difference the
+    // column rule takes there.
+    if k >= 1 && k + 1 < nz {
+        let (fm, f0, fp) = (
+            f64::from(f[(k - 1, j, i)]),
+            f64::from(f[(k, j, i)]),
+            f64::from(f[(k + 1, j, i)]),
+        );
+        if fm.is_finite() && f0.is_finite() && fp.is_finite() {
+            return crate::geometry::ops::nonuniform_centred(
+                fm,
+                f0,
+                fp,
+                lnp[k] - lnp[k - 1],
+                lnp[k + 1] - lnp[k],
+            ) / p[k];
+        }
+    }
+    // Otherwise the derivative at k looks at most two levels either side: the
+    // same column rule on a window of the column gives the same value.
     let (lo, hi) = (k.saturating_sub(2), (k + 3).min(nz));
     let mut col = [0.0f64; 5];
     let mut d = [0.0f64; 5];

@@ -4,7 +4,7 @@
 //! file; on a large grid that is most of a step's time. leeward instead packs
 //! each level (one chunk of `[1, 1, ny, nx]`) as the HDF5 filter pipeline the
 //! file declares would (bit rounding, then the HDF5 shuffle filter, then
-//! zlib-format deflate; HDF5 User's Guide, "Filters", and RFC 1950/1951),
+//! zlib-format deflate by libdeflate; HDF5 User's Guide, "Filters", and RFC 1950/1951),
 //! on every core, as soon as a product is made, and keeps only the packed
 //! bytes. The writer then stores the chunks as they are with `H5Dwrite_chunk`
 //! (HDF5 1.10.3+, "direct chunk write"). A reader cannot tell the difference:
@@ -73,13 +73,31 @@ pub fn pack_level(values: ArrayView2<'_, f32>, nsb: u32, level: u32) -> Vec<u8> 
     }
     let shuffled = shuffle4(&raw);
     drop(raw);
-    let mut z = flate2::write::ZlibEncoder::new(
-        Vec::with_capacity(shuffled.len() / 3),
-        flate2::Compression::new(level.min(9)),
-    );
-    // Writing into a Vec cannot fail.
-    let _ = z.write_all(&shuffled);
-    z.finish().unwrap_or_default()
+    deflate_zlib(&shuffled, level)
+}
+
+/// A zlib-format (RFC 1950) deflate stream of `data` at `level` (1-9), the
+/// format of HDF5's deflate filter. libdeflate: at level 1 as fast as zlib's
+/// fastest mode here and about a quarter smaller on shuffled bit-rounded floats
+/// (measured: 161 MB/s and ratio 3.91, against 162 MB/s and 2.97; docs/performance.md).
+fn deflate_zlib(data: &[u8], level: u32) -> Vec<u8> {
+    let lvl = libdeflater::CompressionLvl::new(level.clamp(1, 9) as i32)
+        .unwrap_or_else(|_| libdeflater::CompressionLvl::fastest());
+    let mut c = libdeflater::Compressor::new(lvl);
+    let mut out = vec![0u8; c.zlib_compress_bound(data.len())];
+    match c.zlib_compress(data, &mut out) {
+        Ok(n) => {
+            out.truncate(n);
+            out
+        }
+        // The bound makes this unreachable; a stored-by-zlib stream is still correct.
+        Err(_) => {
+            let mut z =
+                flate2::write::ZlibEncoder::new(Vec::new(), flate2::Compression::new(level));
+            let _ = z.write_all(data);
+            z.finish().unwrap_or_default()
+        }
+    }
 }
 
 impl Packed {
