@@ -110,6 +110,31 @@ pub fn decode_raw(bytes: &[u8], f: &FieldEntry) -> Result<Vec<f32>, DecodeError>
     if let Some(v) = constant_field(template, &s5, &s6, n) {
         return Ok(v);
     }
+    // Simple and complex packing are read directly, bit for bit as the crate
+    // would; forms the direct path does not read go on to the crate.
+    if matches!(template, 0 | 2 | 3) {
+        // It is written never to panic (and property-tested so); were it to,
+        // the field is refused like one the crate stops on.
+        let direct = catch_unwind(AssertUnwindSafe(|| {
+            super::unpack::unpack(template, &s5, &s6, &s7, n)
+        }))
+        .unwrap_or_else(|_| {
+            Some(Err(
+                "the packed data are inconsistent (decoder stopped)".into()
+            ))
+        });
+        match direct {
+            Some(Ok(v)) if v.len() == n => return Ok(v),
+            Some(Ok(v)) => {
+                return Err(DecodeError::Count {
+                    got: v.len(),
+                    want: n,
+                })
+            }
+            Some(Err(reason)) => return Err(DecodeError::Packing { template, reason }),
+            None => {}
+        }
+    }
     let run = || -> Result<Vec<f32>, String> {
         let dec = grib::Grib2SubmessageDecoder::new(n, s5, s6, s7).map_err(|e| e.to_string())?;
         let vals = dec.dispatch().map_err(|e| e.to_string())?;

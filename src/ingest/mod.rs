@@ -10,3 +10,4 @@ pub mod decode;
 pub mod grid;
 pub mod inspect;
 pub mod params;
+pub mod unpack;
