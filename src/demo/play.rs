@@ -72,6 +72,7 @@ workers = 2
 
 [quicklook]
 enabled = true
+images = ["trop_p@2", "isen_pv@320", "eta@500", "thick@1000-500", "thick_chg_06h@1000-500", "bud_stretch@290-300", "bud_dpvdt@300"]
 
 [[feed]]
 name = "regional"

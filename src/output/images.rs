@@ -79,7 +79,7 @@ fn level_index(
                 .pv_levels
                 .iter()
                 .position(|x| close(*x, v.abs()))
-                .map(|k| (k, format!("{v} PVU"))),
+                .map(|k| (k, format!("{} PVU", v.abs()))),
             _ => None,
         },
         Some((b, Some(t))) => match f.vertical {
@@ -96,6 +96,22 @@ fn level_index(
             _ => None,
         },
     }
+}
+
+/// A budget variable that the PV budget added to the published file after
+/// the step's own products were written, read back as a product.
+fn added_later(product: &Path, name: &str) -> Option<Product> {
+    use crate::changes::budget_vars as b;
+    let (spec, vertical) = match name {
+        "bud_zeta_pred" => (b::ZETA_PRED, Vertical::ThetaLayer),
+        "bud_zeta" => (b::ZETA, Vertical::ThetaLayer),
+        "bud_zeta_diff" => (b::ZETA_DIFF, Vertical::ThetaLayer),
+        "bud_stretch" => (b::STRETCH, Vertical::ThetaLayer),
+        "bud_dpvdt" => (b::DPVDT, Vertical::Theta),
+        _ => return None,
+    };
+    let (_, data) = super::store::read_field(product, name)?;
+    Some(Product::new(spec, vertical, data))
 }
 
 /// Colour scale of a variable: changes and signed quantities diverge about zero.
@@ -125,9 +141,21 @@ pub fn write_images(product: &Path, p: &StepProducts, wanted: &[Wanted]) -> Vec<
     let dir = product.parent().unwrap_or(Path::new("."));
     let lead = (p.valid_time - p.reference_time).num_hours();
     for w in wanted {
-        let Some(f) = p.fields.iter().find(|f| f.spec.name == w.variable) else {
-            debug!(variable = %w.variable, "quicklook: not in this step");
-            continue;
+        // The step's own products, or one added to the file after it was
+        // written (the PV budget), read back from the file.
+        let from_file;
+        let f = match p.fields.iter().find(|f| f.spec.name == w.variable) {
+            Some(f) => f,
+            None => match added_later(product, &w.variable) {
+                Some(f) => {
+                    from_file = f;
+                    &from_file
+                }
+                None => {
+                    debug!(variable = %w.variable, "quicklook: not in this step");
+                    continue;
+                }
+            },
         };
         let Some((k, level_text)) = level_index(p, f, w.level) else {
             debug!(variable = %w.variable, level = ?w.level, "quicklook: no such level in this step");
@@ -137,12 +165,20 @@ pub fn write_images(product: &Path, p: &StepProducts, wanted: &[Wanted]) -> Vec<
         let (values, units) = match f.spec.units {
             "Pa" => (f.level(k).mapv(|x| x / 100.0), "hPa"),
             "1e-6 K m2 kg-1 s-1" => (f.level(k), "PVU"),
+            "1e-6 K m2 kg-1 s-1 h-1" => (f.level(k), "PVU h-1"),
             u => (f.level(k), u),
         };
-        let title = if level_text.is_empty() {
-            f.spec.long_name.to_string()
+        // The variable and level first: a long name may be cut at the image's edge.
+        // A PV surface is one per magnitude: +v in the north, -v in the south.
+        let shown = if f.vertical == Vertical::PvSurface {
+            format!("+/-{level_text}")
         } else {
-            format!("{}, {level_text}", f.spec.long_name)
+            level_text.clone()
+        };
+        let title = if level_text.is_empty() {
+            format!("{}: {}", f.spec.name, f.spec.long_name)
+        } else {
+            format!("{} {shown}: {}", f.spec.name, f.spec.long_name)
         };
         let subtitle = format!(
             "valid {} UTC  (cycle {} UTC +{lead} h)",

@@ -39,6 +39,13 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
         m = json.loads(nc.with_suffix(".json").read_text())
         assert m["state"] == "complete"
         assert m["images"], "quicklooks listed in the manifest"
+        # Every configured image of the demo (src/demo/play.rs) is there; the PV
+        # budget's, read back from the file, from the second step on.
+        want = ["trop_p_2", "isen_pv_320", "eta_500", "thick_1000-500"]
+        if m["lead_hours"] > 0:
+            want += ["thick_chg_06h_1000-500", "bud_stretch_290-300", "bud_dpvdt_300"]
+        for w in want:
+            assert f"{nc.stem}_{w}.png" in m["images"], (w, m["images"])
         for name in m["images"]:
             img = png.open(cycle / name)
             assert img.size[0] >= 600 and img.size[1] >= 400
