@@ -182,6 +182,19 @@ def test_netcdf_structure(kind, name, request):
         assert (pa.get("units"), pa.get("standard_name"), pa.get("positive"), pa.get("axis")) == (
             "Pa", "air_pressure", "down", "Z")
 
+        # Storage: every data variable is declared as leeward packs its chunks (one
+        # level per chunk, shuffle then deflate at the configured level 1), and libnetcdf
+        # reads every level back (the chunks are written directly, not by libnetcdf).
+        data_vars = [v for v in ds.variables.values() if v.ndim == 4]
+        assert data_vars
+        for v in data_vars:
+            f = v.filters()
+            assert f["zlib"] and f["shuffle"] and f["complevel"] == 1, (v.name, f)
+            assert v.chunking() == [1, 1, *v.shape[2:]], (v.name, v.chunking())
+            vals = v[:]
+            assert vals.shape == v.shape
+            assert np.isfinite(np.ma.compressed(vals)).all(), v.name
+
         # Horizontal: CF 1.10 sections 4.1, 4.2 (latitude/longitude), 5.2 (2-D auxiliary
         # coordinates), 5.6 and appendix F (projection and rotated-pole coordinates).
         gt = field["grid_type"]
