@@ -208,9 +208,15 @@ pub fn add_variables(
         } else {
             ("y", "x")
         };
+        // New variables are declared here with leeward's chunks and filters, so
+        // their levels are packed on every core and stored directly after the
+        // file is closed; a variable already in the file keeps its own
+        // declaration and is rewritten through libnetcdf.
+        let mut direct: Vec<(&str, super::pack::Packed)> = Vec::new();
         for prod in vars {
             let (spec, vertical, notes) = (&prod.spec, prod.vertical.dim(), &prod.notes);
-            if f.variable(spec.name).is_some() {
+            let is_new = f.variable(spec.name).is_none();
+            if !is_new {
                 // Already there (written earlier): values are replaced in place below.
             } else {
                 let mut v = f
@@ -243,6 +249,16 @@ pub fn add_variables(
                         .map_err(e)?;
                 }
             }
+            if is_new && deflate > 0 {
+                let packed = match &prod.values {
+                    super::cf::Values::Plain(a) => {
+                        super::pack::Packed::new(a, significant_bits, deflate as u32)
+                    }
+                    super::cf::Values::Packed(p) => p.clone(),
+                };
+                direct.push((spec.name, packed));
+                continue;
+            }
             let mut v = f
                 .variable_mut(spec.name)
                 .ok_or_else(|| OutputError::NetCdf {
@@ -265,6 +281,14 @@ pub fn add_variables(
             }
         }
         f.close().map_err(e)?;
+        if !direct.is_empty() {
+            let refs: Vec<(&str, &super::pack::Packed)> =
+                direct.iter().map(|(n, p)| (*n, p)).collect();
+            super::pack::write_chunks(&tmp, &refs).map_err(|m| OutputError::NetCdf {
+                path: tmp.clone(),
+                source: netcdf::Error::from(m.as_str()),
+            })?;
+        }
         std::fs::File::open(&tmp)
             .and_then(|f| f.sync_all())
             .map_err(io(&tmp))?;
