@@ -1,6 +1,6 @@
 //! Benchmark of one step: decode throughput (every field, one thread and all
 //! threads), then the whole pipeline with its decode, diagnostics and write
-//! times. Prints one JSON line per measurement.
+//! times (the whole step twice, best kept). Prints one JSON line per measurement.
 //!
 //!     cargo bench --bench step -- FILE.grib2 [OUT_DIR [NEXT_STEP.grib2]]
 //!
@@ -60,27 +60,33 @@ fn main() {
         );
     }
     let out = std::path::PathBuf::from(out);
-    std::fs::create_dir_all(&out).expect("output dir");
-    let t = Instant::now();
-    let (file, _) = read_input(std::path::Path::new(path));
-    let files: Vec<_> = file.into_iter().collect();
-    let (steps, _) = plan(&files);
-    let suffixes = grid_suffixes(&steps);
     let cfg = Config::default();
-    for (s, g) in steps.iter().zip(suffixes) {
-        let r = run_step(s, &files, &cfg, &Destination::flat(&out), g);
-        for (name, secs) in &r.family_seconds {
-            println!("{{\"what\":\"family\",\"name\":\"{name}\",\"seconds\":{secs:.4}}}");
+    // The whole step twice, each into an empty directory (so no earlier file
+    // is found for changes in time), best kept: the machine is shared.
+    let mut best = f64::INFINITY;
+    for round in 0..2 {
+        let _ = std::fs::remove_dir_all(&out);
+        std::fs::create_dir_all(&out).expect("output dir");
+        let t = Instant::now();
+        let (file, _) = read_input(std::path::Path::new(path));
+        let files: Vec<_> = file.into_iter().collect();
+        let (steps, _) = plan(&files);
+        let suffixes = grid_suffixes(&steps);
+        for (s, g) in steps.iter().zip(suffixes) {
+            let r = run_step(s, &files, &cfg, &Destination::flat(&out), g);
+            if round == 1 {
+                for (name, secs) in &r.family_seconds {
+                    println!("{{\"what\":\"family\",\"name\":\"{name}\",\"seconds\":{secs:.4}}}");
+                }
+            }
+            println!(
+                "{{\"what\":\"step\",\"round\":{round},\"fields_used\":{},\"decode_s\":{:.4},\"diagnostics_s\":{:.4},\"write_s\":{:.4},\"changes_s\":{:.4},\"step_s\":{:.4}}}",
+                r.fields_used, r.decode_seconds, r.compute_seconds, r.write_seconds, r.changes_seconds, r.seconds
+            );
         }
-        println!(
-            "{{\"what\":\"step\",\"fields_used\":{},\"decode_s\":{:.4},\"diagnostics_s\":{:.4},\"write_s\":{:.4},\"changes_s\":{:.4},\"step_s\":{:.4}}}",
-            r.fields_used, r.decode_seconds, r.compute_seconds, r.write_seconds, r.changes_seconds, r.seconds
-        );
+        best = best.min(t.elapsed().as_secs_f64());
     }
-    println!(
-        "{{\"what\":\"pipeline\",\"seconds\":{:.4}}}",
-        t.elapsed().as_secs_f64()
-    );
+    println!("{{\"what\":\"pipeline\",\"seconds\":{best:.4},\"runs\":2}}");
     if let Some(next) = args.get(2) {
         let t = Instant::now();
         let (file, _) = read_input(std::path::Path::new(next));
