@@ -388,31 +388,6 @@ impl<'a> Destination<'a> {
     }
 }
 
-/// Pack every product not yet packed, as the file will store it (bit
-/// rounding, shuffle, deflate; [`crate::output::pack`]), on every core, so that
-/// only the compressed bytes are held until the file is written. Returns the
-/// seconds it took.
-fn seal(fields: &mut [Product], out: &crate::config::Output) -> f64 {
-    let t = Instant::now();
-    for f in fields.iter_mut() {
-        f.pack(out.significant_bits, out.deflate_level);
-    }
-    t.elapsed().as_secs_f64()
-}
-
-/// Add a product to the step, packed at once (see [`seal`]).
-fn push_sealed(
-    fields: &mut Vec<Product>,
-    out: &crate::config::Output,
-    packing: &std::cell::Cell<f64>,
-    mut p: Product,
-) {
-    let t = Instant::now();
-    p.pack(out.significant_bits, out.deflate_level);
-    packing.set(packing.get() + t.elapsed().as_secs_f64());
-    fields.push(p);
-}
-
 /// Run one step of `inputs` and write its products to `out`.
 pub fn run_step(
     step: &Step,
@@ -708,9 +683,25 @@ pub fn run_step(
         _ => (None, None),
     };
 
-    let mut pack_seconds = 0.0;
-    // Seconds spent packing products as they are made (part of writing).
+    // Each product leaves the working set packed as the file will store it
+    // (bit rounding, shuffle, deflate; [`crate::output::pack`], on every core)
+    // as soon as it is made, or once nothing else needs its plain values; only
+    // compressed bytes wait for the writer. The seconds count as writing.
     let packing = std::cell::Cell::new(0.0);
+    let seal = |mut p: Product| {
+        let t = Instant::now();
+        p.pack(cfg.output.significant_bits, cfg.output.deflate_level);
+        packing.set(packing.get() + t.elapsed().as_secs_f64());
+        p
+    };
+    let sealed = |spec, vertical, data: Array3<f32>| seal(Product::new(spec, vertical, data));
+    // Values still in use elsewhere: packed from a borrow, without a copy.
+    let sealed_copy = |spec, vertical, data: &Array3<f32>| {
+        let t = Instant::now();
+        let p = Product::packed_copy(spec, vertical, data, &cfg.output);
+        packing.set(packing.get() + t.elapsed().as_secs_f64());
+        p
+    };
     rep.family_seconds
         .push(("prepare", t_compute.elapsed().as_secs_f64()));
     let t_family = Instant::now();
@@ -738,25 +729,14 @@ pub fn run_step(
                     });
             });
         if want_vort {
-            push_sealed(
-                &mut fields,
-                &cfg.output,
-                &packing,
-                Product::new(variables::ZETA, Vertical::Pressure, zeta),
-            );
-            push_sealed(
-                &mut fields,
-                &cfg.output,
-                &packing,
-                Product::packed_copy(variables::ETA, Vertical::Pressure, &eta, &cfg.output),
-            );
+            fields.push(sealed(variables::ZETA, Vertical::Pressure, zeta));
+            fields.push(sealed_copy(variables::ETA, Vertical::Pressure, &eta));
         }
         eta3 = Some(eta);
     }
 
     rep.family_seconds
         .push(("vorticity", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Potential temperature and static stability.
     let mut st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
@@ -773,14 +753,6 @@ pub fn run_step(
             .iter()
             .any(|l| !(has_z_at(l[0]) && has_z_at(l[1])));
     let t3 = t3.filter(|_| thick_needs_t);
-    // Each product leaves the working set, packed, once nothing else needs it.
-    let sealed = |spec, vertical, data: Array3<f32>| {
-        let t = Instant::now();
-        let mut p = Product::new(spec, vertical, data);
-        p.pack(cfg.output.significant_bits, cfg.output.deflate_level);
-        packing.set(packing.get() + t.elapsed().as_secs_f64());
-        p
-    };
     let n2_prod = st
         .as_mut()
         .map(|st| std::mem::take(&mut st.n2))
@@ -789,7 +761,6 @@ pub fn run_step(
 
     rep.family_seconds
         .push(("stability", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Isobaric PV in its full form.
     let mut pv3: Option<Array3<f32>> = None;
@@ -827,7 +798,6 @@ pub fn run_step(
         .map(|stab| sealed(variables::STAB, Vertical::Pressure, stab));
     rep.family_seconds
         .push(("isobaric_pv", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Dynamic tropopause on each PV surface.
     if let (true, Some(pv), Some(st), Some(u), Some(v)) = (want_trop, &pv3, &st, &u3, &v3) {
@@ -881,46 +851,21 @@ pub fn run_step(
         let mut it = out.into_iter();
         let (tp, tt, tz, tu, tv) = (it.next(), it.next(), it.next(), it.next(), it.next());
         if let (Some(tp), Some(tt), Some(tz), Some(tu), Some(tv)) = (tp, tt, tz, tu, tv) {
-            push_sealed(
-                &mut fields,
-                &cfg.output,
-                &packing,
-                Product::new(variables::TROP_P, Vertical::PvSurface, tp),
-            );
-            push_sealed(
-                &mut fields,
-                &cfg.output,
-                &packing,
-                Product::new(variables::TROP_THETA, Vertical::PvSurface, tt),
-            );
+            fields.push(sealed(variables::TROP_P, Vertical::PvSurface, tp));
+            fields.push(sealed(variables::TROP_THETA, Vertical::PvSurface, tt));
             if z3.is_some() {
-                push_sealed(
-                    &mut fields,
-                    &cfg.output,
-                    &packing,
-                    Product::new(variables::TROP_Z, Vertical::PvSurface, tz),
-                );
+                fields.push(sealed(variables::TROP_Z, Vertical::PvSurface, tz));
             }
-            push_sealed(
-                &mut fields,
-                &cfg.output,
-                &packing,
-                Product::new(
-                    variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
-                    Vertical::PvSurface,
-                    tu,
-                ),
-            );
-            push_sealed(
-                &mut fields,
-                &cfg.output,
-                &packing,
-                Product::new(
-                    variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
-                    Vertical::PvSurface,
-                    tv,
-                ),
-            );
+            fields.push(sealed(
+                variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
+                Vertical::PvSurface,
+                tu,
+            ));
+            fields.push(sealed(
+                variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
+                Vertical::PvSurface,
+                tv,
+            ));
         }
     }
 
@@ -930,7 +875,6 @@ pub fn run_step(
         .map(|pv| sealed(variables::PV, Vertical::Pressure, pv));
     rep.family_seconds
         .push(("tropopause", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Isentropic surfaces.
     if let (true, Some(st)) = (want_isen, &st) {
@@ -1015,7 +959,6 @@ pub fn run_step(
 
     rep.family_seconds
         .push(("isentropic", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     // Layer PV in column-depth form.
     if let (true, Some(st), Some(ug), Some(vg)) = (want_layer, &st, ug3, vg3) {
@@ -1056,56 +999,35 @@ pub fn run_step(
                     *lp = isentropic::layer_pv(zv + f, d) as f32;
                 });
         }
-        push_sealed(
-            &mut fields,
-            &cfg.output,
-            &packing,
-            Product::new(variables::LAYER_PV, Vertical::ThetaLayer, lpv),
-        );
-        push_sealed(
-            &mut fields,
-            &cfg.output,
-            &packing,
-            Product::new(variables::LAYER_DP, Vertical::ThetaLayer, ldp),
-        );
+        fields.push(sealed(variables::LAYER_PV, Vertical::ThetaLayer, lpv));
+        fields.push(sealed(variables::LAYER_DP, Vertical::ThetaLayer, ldp));
         let (lu_spec, lv_spec) = if plane.rotation.is_some() {
             (variables::WIND_U_GRID, variables::WIND_V_GRID)
         } else {
             (variables::WIND_U_EARTH, variables::WIND_V_EARTH)
         };
-        push_sealed(
-            &mut fields,
-            &cfg.output,
-            &packing,
-            Product::new(
-                variables::wind(
-                    "layer_u",
-                    lu_spec,
-                    "layer-mean wind along the grid's x axis",
-                ),
-                Vertical::ThetaLayer,
-                lu,
+        fields.push(sealed(
+            variables::wind(
+                "layer_u",
+                lu_spec,
+                "layer-mean wind along the grid's x axis",
             ),
-        );
-        push_sealed(
-            &mut fields,
-            &cfg.output,
-            &packing,
-            Product::new(
-                variables::wind(
-                    "layer_v",
-                    lv_spec,
-                    "layer-mean wind along the grid's y axis",
-                ),
-                Vertical::ThetaLayer,
-                lv,
+            Vertical::ThetaLayer,
+            lu,
+        ));
+        fields.push(sealed(
+            variables::wind(
+                "layer_v",
+                lv_spec,
+                "layer-mean wind along the grid's y axis",
             ),
-        );
+            Vertical::ThetaLayer,
+            lv,
+        ));
     }
 
     rep.family_seconds
         .push(("layer_pv", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
 
     // Isobaric layer thickness: heights where both levels have them, else hypsometric.
@@ -1188,31 +1110,20 @@ pub fn run_step(
             }
             let mut prod = Product::new(variables::THICK, Vertical::PressureLayer, th);
             prod.notes.push(("leeward_method", methods.join("; ")));
-            push_sealed(&mut fields, &cfg.output, &packing, prod);
+            fields.push(seal(prod));
         }
     }
     rep.family_seconds
         .push(("thickness", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output);
     let t_family = Instant::now();
     if let (true, Some(st)) = (want_stab, st) {
-        push_sealed(
-            &mut fields,
-            &cfg.output,
-            &packing,
-            Product::new(variables::THETA, Vertical::Pressure, st.theta),
-        );
+        fields.push(sealed(variables::THETA, Vertical::Pressure, st.theta));
     }
     fields.extend(stab_prod);
     fields.extend(n2_prod);
     fields.extend(pv_prod);
     if let (true, Some(z)) = (want_thick || want_isen, &z3) {
-        push_sealed(
-            &mut fields,
-            &cfg.output,
-            &packing,
-            Product::packed_copy(variables::Z, Vertical::Pressure, z, &cfg.output),
-        );
+        fields.push(sealed_copy(variables::Z, Vertical::Pressure, z));
     }
 
     // Changes in time, from the published files of earlier steps and cycles.
@@ -1266,10 +1177,10 @@ pub fn run_step(
     if pr.run_to_run {
         change_products.extend(changes::run_to_run(&run, &r2r_fields));
     }
-    fields.extend(change_products);
+    fields.extend(change_products.into_iter().map(seal));
     rep.family_seconds
         .push(("changes_read", t_family.elapsed().as_secs_f64()));
-    pack_seconds += seal(&mut fields, &cfg.output) + packing.get();
+    let pack_seconds = packing.get();
     rep.family_seconds.push(("packing", pack_seconds));
     for (family, seconds) in &rep.family_seconds {
         tracing::debug!(cycle = %cycle, step = lead, family, seconds, "diagnostic family timing");
