@@ -299,6 +299,7 @@ pub fn update_later(
 
 /// Budget variables on isentropic layers and surfaces.
 pub mod budget_vars {
+    use crate::output::cf::Vertical;
     use crate::output::variables::{VarSpec, PVU_UNITS};
 
     /// Predicted relative vorticity.
@@ -346,6 +347,21 @@ pub mod budget_vars {
     };
     /// The unit of PV, for reference.
     pub const _PVU: &str = PVU_UNITS;
+
+    /// Every budget variable with its vertical coordinate (layers for the
+    /// column budget, surfaces for the PV change), as the budget writes them.
+    pub const ALL: [(VarSpec, Vertical); 5] = [
+        (ZETA_PRED, Vertical::ThetaLayer),
+        (ZETA, Vertical::ThetaLayer),
+        (ZETA_DIFF, Vertical::ThetaLayer),
+        (STRETCH, Vertical::ThetaLayer),
+        (DPVDT, Vertical::Theta),
+    ];
+
+    /// The budget variable called `name`.
+    pub fn find(name: &str) -> Option<(VarSpec, Vertical)> {
+        ALL.into_iter().find(|(v, _)| v.name == name)
+    }
 }
 
 /// Grid geometry for the budget's trajectories.

@@ -101,15 +101,7 @@ fn level_index(
 /// A budget variable that the PV budget added to the published file after
 /// the step's own products were written, read back as a product.
 fn added_later(product: &Path, name: &str) -> Option<Product> {
-    use crate::changes::budget_vars as b;
-    let (spec, vertical) = match name {
-        "bud_zeta_pred" => (b::ZETA_PRED, Vertical::ThetaLayer),
-        "bud_zeta" => (b::ZETA, Vertical::ThetaLayer),
-        "bud_zeta_diff" => (b::ZETA_DIFF, Vertical::ThetaLayer),
-        "bud_stretch" => (b::STRETCH, Vertical::ThetaLayer),
-        "bud_dpvdt" => (b::DPVDT, Vertical::Theta),
-        _ => return None,
-    };
+    let (spec, vertical) = crate::changes::budget_vars::find(name)?;
     let (_, data) = super::store::read_field(product, name)?;
     Some(Product::new(spec, vertical, data))
 }
