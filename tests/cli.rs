@@ -271,7 +271,7 @@ fn check_config_names_every_planted_error_and_completions_and_man_pages_come_out
 #[test]
 fn a_listing_into_a_closed_pipe_ends_quietly() {
     // `leeward inspect FILE | head -1`: the reader leaves after one line; leeward
-    // must end as Unix tools do (SIGPIPE), never with a panic message.
+    // must end as Unix tools do (SIGPIPE; common practice), never with a panic message.
     use std::io::Read;
     use std::process::Stdio;
     let demo = concat!(

@@ -64,6 +64,17 @@ struct Tally {
     both_refused: usize,
 }
 
+impl Tally {
+    /// What was compared, for the test's output.
+    fn report(&self, what: &str) {
+        eprintln!(
+            "{what}: fields compared bit for bit with the grib crate: 5.0 {}, 5.2 {}, 5.3 {}; \
+             left to the crate {}; refused by both {}",
+            self.compared[0], self.compared[2], self.compared[3], self.fell_back, self.both_refused
+        );
+    }
+}
+
 /// Compare every template 5.0/5.2/5.3 field of one file, panicking on the
 /// first difference; returns the tally.
 fn compare_file(path: &Path, tally: &mut Tally) {
@@ -123,15 +134,7 @@ fn every_sample_field_is_bit_for_bit_the_grib_crates() {
     for p in &files {
         compare_file(p, &mut tally);
     }
-    eprintln!(
-        "real samples: fields compared bit for bit with the grib crate: 5.0 {}, 5.2 {}, 5.3 {}; \
-         left to the crate {}; refused by both {}",
-        tally.compared[0],
-        tally.compared[2],
-        tally.compared[3],
-        tally.fell_back,
-        tally.both_refused
-    );
+    tally.report("real samples");
     assert_eq!(
         tally.fell_back, 0,
         "every sample field of 5.0/5.2/5.3 read directly"
@@ -153,15 +156,7 @@ fn benchmark_files_are_bit_for_bit_the_grib_crates() {
         }
         let mut tally = Tally::default();
         compare_file(&path, &mut tally);
-        eprintln!(
-            "{name}: fields compared bit for bit with the grib crate: 5.0 {}, 5.2 {}, 5.3 {}; \
-             left to the crate {}; refused by both {}",
-            tally.compared[0],
-            tally.compared[2],
-            tally.compared[3],
-            tally.fell_back,
-            tally.both_refused
-        );
+        tally.report(name);
         assert_eq!(tally.fell_back + tally.both_refused, 0, "{name}");
     }
 }
