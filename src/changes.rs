@@ -18,7 +18,7 @@ use ndarray::Array3;
 use tracing::{info, warn};
 
 use crate::output::cf::{Product, Vertical};
-use crate::output::store::{add_variables, published, read_field, Published};
+use crate::output::store::{add_variables, add_variables_to, published, read_field, Published};
 use crate::output::variables::VarSpec;
 
 /// What identifies the model run a step belongs to.
@@ -36,6 +36,28 @@ pub struct Run<'a> {
     pub reference_time: NaiveDateTime,
     /// Valid time of this step.
     pub valid_time: NaiveDateTime,
+    /// Where additions to files already published go instead of into the
+    /// files themselves (a batch job's staging directory), if anywhere.
+    pub stage: Option<&'a Path>,
+}
+
+impl Run<'_> {
+    /// Where an addition to `path` is written: `path` itself, or its staged
+    /// copy `<stage>/updates/<cycle directory>/<name>` when this run stages.
+    /// A file inside the staging directory (the step's own) is written in place.
+    pub fn staged(&self, path: &Path) -> PathBuf {
+        match self.stage {
+            Some(stage) if !path.starts_with(stage) => {
+                let name = path.file_name().unwrap_or_default();
+                let parent = path
+                    .parent()
+                    .and_then(|p| p.file_name())
+                    .unwrap_or_default();
+                stage.join("updates").join(parent).join(name)
+            }
+            _ => path.to_path_buf(),
+        }
+    }
 }
 
 /// Change of a field between two times: later minus earlier, per point (NaN where either is missing).
@@ -201,12 +223,36 @@ fn r2r_products(earlier: &Path, fields: &Fields<'_>) -> Vec<Product> {
     out
 }
 
-fn update(path: &Path, products: Vec<Product>, deflate: i32, nsb: u32) -> Option<PathBuf> {
+/// Add `products` to the published `path` (or to its staged copy, see
+/// [`Run::staged`]); returns the file written.
+fn update(
+    run: &Run<'_>,
+    path: &Path,
+    products: Vec<Product>,
+    deflate: i32,
+    nsb: u32,
+) -> Option<PathBuf> {
     if products.is_empty() {
         return None;
     }
-    match add_variables(path, &products, deflate, nsb) {
-        Ok(()) => Some(path.to_path_buf()),
+    let target = run.staged(path);
+    let written = if target == path {
+        add_variables(path, &products, deflate, nsb)
+    } else {
+        let from = if target.exists() {
+            target.clone()
+        } else {
+            path.to_path_buf()
+        };
+        std::fs::create_dir_all(target.parent().unwrap_or(Path::new(".")))
+            .map_err(|source| crate::output::cf::OutputError::Io {
+                path: target.clone(),
+                source,
+            })
+            .and_then(|()| add_variables_to(&from, &target, &products, deflate, nsb))
+    };
+    match written {
+        Ok(()) => Some(target),
         Err(e) => {
             warn!(file = %path.display(), error = %e, "could not add changes to a published step");
             None
@@ -250,6 +296,7 @@ pub fn update_later(
                 earlier_value(&later.path, "thick", coords).and_then(|l| difference(&l, this))
             {
                 updated.extend(update(
+                    run,
                     &later.path,
                     vec![Product::new(
                         thickness_change_spec(h),
@@ -291,7 +338,7 @@ pub fn update_later(
                     prods.push(p);
                 }
             }
-            updated.extend(update(&next.path, prods, deflate, nsb));
+            updated.extend(update(run, &next.path, prods, deflate, nsb));
         }
     }
     updated
@@ -521,7 +568,7 @@ pub fn update_budgets(
         let dt = run.valid_time - prev.valid_time;
         if dt <= max {
             let prods = pv_budget(g, &prev.path, this_file, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(this_file, prods, deflate, nsb));
+            updated.extend(update(run, this_file, prods, deflate, nsb));
         }
     }
     let next = same_cycle
@@ -532,7 +579,7 @@ pub fn update_budgets(
         let dt = next.valid_time - run.valid_time;
         if dt <= max {
             let prods = pv_budget(g, this_file, &next.path, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(&next.path, prods, deflate, nsb));
+            updated.extend(update(run, &next.path, prods, deflate, nsb));
         }
     }
     updated

@@ -55,11 +55,17 @@ pub enum Command {
         #[arg(long)]
         config: Option<PathBuf>,
         /// Output directory (created if missing).
-        #[arg(long)]
-        out: PathBuf,
+        #[arg(long, required_unless_present = "job")]
+        out: Option<PathBuf>,
         /// GRIB2 files, any number, in any order.
-        #[arg(required = true)]
+        #[arg(required_unless_present = "job")]
         inputs: Vec<PathBuf>,
+        /// Run one step as a batch job of `leeward serve`: the staging
+        /// directory the service prepared (its spec says inputs, step and
+        /// configuration; products and a result record are left there for
+        /// the service to publish).
+        #[arg(long, value_name = "DIR", conflicts_with_all = ["config", "out", "inputs"])]
+        job: Option<PathBuf>,
     },
     /// Play the invented demo cycle through the real service: its GRIB2 files are delivered
     /// one step at a time into a directory `leeward serve` watches, and a table says per step
@@ -229,7 +235,12 @@ pub fn main() -> ExitCode {
             config,
             out,
             inputs,
-        } => ExitCode::from(process(config, out, inputs)),
+            job,
+        } => match (job, out) {
+            (Some(dir), _) => ExitCode::from(crate::service::batch::run_in_job(&dir)),
+            (None, Some(out)) => ExitCode::from(process(config, out, inputs)),
+            (None, None) => ExitCode::from(exit::USAGE),
+        },
         Command::Demo {
             dir,
             inputs_only,

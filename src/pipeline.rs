@@ -30,7 +30,7 @@ use crate::output::cf::{step_file_name, write_step, Product, StepProducts, Verti
 use crate::output::variables;
 
 /// A problem with the input, said so an operator can act on it.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Issue {
     /// The input file.
     pub file: PathBuf,
@@ -371,6 +371,11 @@ pub struct Destination<'a> {
     /// holding `lock` (the service writes manifests here). An error means the
     /// step is not published and is worth trying again.
     pub on_published: Option<&'a PublishHook<'a>>,
+    /// A batch job's staging directory: the step's file and images are
+    /// written there instead of `dir`, and additions to files already
+    /// published go to staged copies there (see [`changes::Run::staged`]);
+    /// the service moves them into place. Nothing published is touched.
+    pub stage: Option<&'a Path>,
 }
 
 /// What [`Destination::on_published`] is.
@@ -384,6 +389,7 @@ impl<'a> Destination<'a> {
             dir,
             lock: None,
             on_published: None,
+            stage: None,
         }
     }
 }
@@ -1139,6 +1145,7 @@ pub fn run_step(
         member: step.key.member,
         reference_time: step.key.reference_time,
         valid_time: step.key.valid_time,
+        stage: out.stage,
     };
     let p_layer_coords: Vec<f64> = p_layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
     let pv_coords = cfg.isentropic.tropopause_pvu.clone();
@@ -1231,7 +1238,7 @@ pub fn run_step(
     };
     let name = output_name(&step.key, grid_suffix);
     let t_write = Instant::now();
-    let written = write_step(out.dir, &name, &products);
+    let written = write_step(out.stage.unwrap_or(out.dir), &name, &products);
     rep.write_seconds = t_write.elapsed().as_secs_f64() + pack_seconds;
     match written {
         Ok(path) => {

@@ -161,6 +161,19 @@ pub fn add_variables(
     deflate: i32,
     significant_bits: u32,
 ) -> Result<(), OutputError> {
+    add_variables_to(path, path, vars, deflate, significant_bits)
+}
+
+/// [`add_variables`] with the result at `path` and the file it starts from at
+/// `from` (a batch job stages its additions to published files beside its own
+/// product instead of touching them): copy `from`, add, fsync, rename to `path`.
+pub fn add_variables_to(
+    from: &Path,
+    path: &Path,
+    vars: &[Product],
+    deflate: i32,
+    significant_bits: u32,
+) -> Result<(), OutputError> {
     let io = |p: &Path| {
         let p = p.to_path_buf();
         move |source| OutputError::Io { path: p, source }
@@ -171,7 +184,7 @@ pub fn add_variables(
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
     let tmp = dir.join(format!(".{name}.update-{}", super::temporary_suffix()));
-    let existing = std::fs::metadata(path).map(|m| m.len()).unwrap_or(0);
+    let existing = std::fs::metadata(from).map(|m| m.len()).unwrap_or(0);
     let added: u64 = vars
         .iter()
         .map(|v| {
@@ -180,7 +193,7 @@ pub fn add_variables(
         })
         .sum();
     super::ensure_space(dir, existing + added + (1 << 20)).map_err(io(path))?;
-    std::fs::copy(path, &tmp).map_err(io(&tmp))?;
+    std::fs::copy(from, &tmp).map_err(io(&tmp))?;
     let result = (|| -> Result<(), OutputError> {
         let e = |source| OutputError::NetCdf {
             path: tmp.clone(),

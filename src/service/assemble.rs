@@ -249,10 +249,23 @@ impl Assembly {
     /// newest cycle with ready work (or a newer one), that cycle goes first,
     /// so a backlog never starves a new cycle, even with one worker.
     pub fn next(&self, order: Order, running: &[StepTag]) -> Option<StepTag> {
+        self.next_where(order, running, |_| true)
+    }
+
+    /// [`Assembly::next`] among the ready steps that `may` allows (a free
+    /// worker or job slot for their feed, no other step of their run in hand).
+    pub fn next_where(
+        &self,
+        order: Order,
+        running: &[StepTag],
+        may: impl Fn(&Pending) -> bool,
+    ) -> Option<StepTag> {
         let ready: Vec<&Pending> = self
             .steps
             .values()
-            .filter(|p| matches!(p.phase, Phase::Ready { .. }))
+            .filter(|p| {
+                matches!(p.phase, Phase::Ready { .. }) && !running.contains(&p.tag) && may(p)
+            })
             .collect();
         let cycle = |p: &Pending| -> NaiveDateTime { p.key.reference_time };
         let newest = ready.iter().map(|p| cycle(p)).max()?;

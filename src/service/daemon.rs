@@ -18,10 +18,11 @@ use serde::{Deserialize, Serialize};
 use tracing::{debug, error, info, warn};
 
 use super::assemble::{isobaric, Assembly, Contribution, Phase};
+use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
 use super::ledger::{FailKind, Ledger, Outcome, Record, StepTag};
 use super::metrics::Metrics;
 use super::publish::{self, ManifestInput, StepFacts};
-use super::settings::{FeedRule, FileRole, QuarantineMode};
+use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::systemd::{status_line, Notifier};
 use super::watch::{watch, FinishedFiles};
 use crate::config::Config;
@@ -29,7 +30,7 @@ use crate::ingest::catalogue::catalogue;
 use crate::ingest::grid::parse_grid;
 use crate::output::store::cycle_dir_name;
 use crate::pipeline::{
-    grid_id, output_name, plan, run_step, Destination, InputFile, StepKey, StepReport,
+    grid_id, output_name, plan, run_step, Destination, InputFile, Step, StepKey, StepReport,
 };
 
 /// Where `leeward serve` takes its settings from.
@@ -157,6 +158,38 @@ enum JobOutcome {
     Vanished(PathBuf, String),
     InputFailed(String),
     Internal(String),
+    /// A batch job ended without a usable result (failed, cancelled, timed
+    /// out, lost, or its staged files did not check): run it again or give up.
+    BatchRetry {
+        state: String,
+        reason: String,
+    },
+}
+
+/// Where a step's batch job stands.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum JobPhase {
+    /// Submitted; `gone` polls without the job in the queue and without a result.
+    Queued { gone: u32 },
+    /// Its result is being taken (checked, moved, manifest written).
+    Taking,
+    /// Ended without a result; submitted again at `at`.
+    Resubmit { at: Instant },
+}
+
+/// A step handed to the batch scheduler.
+struct InFlight {
+    job: String,
+    stage: PathBuf,
+    attempt: u32,
+    spec: Arc<JobSpec>,
+    phase: JobPhase,
+}
+
+/// Steps of one run (feed, member, grid) read and complete each other's files:
+/// on the scheduler they go one at a time, so each sees the ones before it.
+fn chain(t: &StepTag) -> (&str, Option<u8>, &str) {
+    (&t.feed, t.member, &t.grid)
 }
 
 struct JobDone {
@@ -182,9 +215,16 @@ fn read_ranges(path: &Path, expect_size: u64, ranges: &[(u64, u64)]) -> std::io:
     Ok(out)
 }
 
-fn run_job(job: &Job) -> JobOutcome {
+/// Read a step's messages from its files as they were catalogued, and find
+/// the step among them: the inputs and the step, or the file that cannot be
+/// read (with why), or `Ok(None)` when the step's fields are no longer there.
+#[allow(clippy::type_complexity)]
+pub(super) fn load_step(
+    files: &[Contribution],
+    key: &StepKey,
+) -> Result<Option<(Step, Vec<InputFile>)>, (PathBuf, String)> {
     let mut inputs = Vec::new();
-    for c in &job.files {
+    for c in files {
         match read_ranges(&c.path, c.size, &c.messages) {
             Ok(bytes) => {
                 let cat = catalogue(&bytes);
@@ -194,12 +234,23 @@ fn run_job(job: &Job) -> JobOutcome {
                     catalogue: cat,
                 });
             }
-            Err(e) => return JobOutcome::Vanished(c.path.clone(), e.to_string()),
+            Err(e) => return Err((c.path.clone(), e.to_string())),
         }
     }
     let (steps, _) = plan(&inputs);
-    let Some(step) = steps.into_iter().find(|s| s.key == job.key) else {
-        return JobOutcome::InputFailed("the step's fields are no longer in its files".into());
+    Ok(steps
+        .into_iter()
+        .find(|s| s.key == *key)
+        .map(|s| (s, inputs)))
+}
+
+fn run_job(job: &Job) -> JobOutcome {
+    let (step, inputs) = match load_step(&job.files, &job.key) {
+        Ok(Some(x)) => x,
+        Ok(None) => {
+            return JobOutcome::InputFailed("the step's fields are no longer in its files".into())
+        }
+        Err((file, e)) => return JobOutcome::Vanished(file, e),
     };
     if let Err(e) = std::fs::create_dir_all(&job.dir) {
         return JobOutcome::OutputFailed(format!("cannot create {}: {e}", job.dir.display()));
@@ -251,6 +302,7 @@ fn run_job(job: &Job) -> JobOutcome {
         dir: &job.dir,
         lock: Some(&job.lock),
         on_published: Some(&hook),
+        stage: None,
     };
     let rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
     let manifest = written
@@ -275,6 +327,53 @@ fn run_job(job: &Job) -> JobOutcome {
     }
 }
 
+/// What a taken batch result means for the step.
+fn taken_outcome(t: Taken) -> JobOutcome {
+    match t {
+        Taken::Published {
+            path,
+            manifest,
+            latency,
+            report,
+            result,
+        } => {
+            info!(feed = %result.tag.feed, cycle = %result.tag.cycle, step = result.tag.lead, job = ?result.job_id, host = %result.host, restarts = result.restarts, attempt = result.attempt, "step job's result taken");
+            JobOutcome::Published {
+                path,
+                manifest,
+                latency,
+                report,
+            }
+        }
+        Taken::Ended(r) => match r.ended {
+            batch::Ended::InputFailed { reason } => JobOutcome::InputFailed(reason),
+            batch::Ended::Internal { reason } => JobOutcome::Internal(reason),
+            batch::Ended::OutputFailed { reason } => JobOutcome::BatchRetry {
+                state: "OUTPUT_FAILED".into(),
+                reason: format!(
+                    "the job on {} could not write the products: {reason}",
+                    r.host
+                ),
+            },
+            batch::Ended::Vanished { file, reason } => JobOutcome::BatchRetry {
+                state: "INPUT_UNREADABLE".into(),
+                reason: format!(
+                    "the job on {} could not read {}: {reason}",
+                    r.host,
+                    file.display()
+                ),
+            },
+            batch::Ended::Made { .. } => {
+                JobOutcome::Internal("a made result was not taken (a defect in leeward)".into())
+            }
+        },
+        Taken::Unusable(reason) => JobOutcome::BatchRetry {
+            state: "RESULT_UNUSABLE".into(),
+            reason,
+        },
+    }
+}
+
 enum Event {
     Signal(i32),
 }
@@ -292,6 +391,13 @@ struct Daemon {
     done_tx: Sender<JobDone>,
     done_rx: Receiver<JobDone>,
     running: HashMap<StepTag, Instant>,
+    /// Steps on the batch scheduler.
+    jobs: HashMap<StepTag, InFlight>,
+    /// Since when (Unix time) and why the scheduler cannot be used.
+    sched_down: Option<(f64, String)>,
+    /// When to try the scheduler again for new steps while it is down.
+    sched_retry: Instant,
+    last_poll: Instant,
     locks: HashMap<String, Arc<Mutex<()>>>,
     too_old: BTreeSet<(String, String)>,
     last_status: String,
@@ -759,11 +865,88 @@ impl Daemon {
         true
     }
 
+    fn executor(&self, feed: &str) -> Executor {
+        self.rules
+            .iter()
+            .find(|r| r.feed.name == feed)
+            .map_or(Executor::Local, |r| r.feed.executor)
+    }
+
+    fn scheduler(&self) -> Scheduler {
+        Scheduler {
+            cfg: self.cfg.service.slurm.clone(),
+        }
+    }
+
+    /// The scheduler may take new steps now: it answered last time, or it is
+    /// time to try it again.
+    fn scheduler_usable(&self) -> bool {
+        self.sched_down.is_none() || Instant::now() >= self.sched_retry
+    }
+
+    fn scheduler_up(&mut self) {
+        if let Some((since, why)) = self.sched_down.take() {
+            info!(down_s = unix_now() - since, was = %why, "scheduler reachable again");
+        }
+        let mut m = self.metrics();
+        m.scheduler.reachable = true;
+        m.scheduler.problem.clear();
+    }
+
+    fn scheduler_down(&mut self, e: &SchedulerError) {
+        let now = unix_now();
+        let first = self.sched_down.is_none();
+        let since = self.sched_down.as_ref().map_or(now, |d| d.0);
+        self.sched_down = Some((since, e.to_string()));
+        // Try again for new steps after a pause that grows with the outage.
+        let wait = ((now - since) / 2.0).clamp(10.0, 300.0);
+        self.sched_retry = Instant::now() + Duration::from_secs_f64(wait);
+        let local = self.cfg.service.slurm.when_unreachable == Unreachable::Local;
+        if first {
+            error!(error = %e, new_steps = if local { "run locally" } else { "wait" }, "scheduler cannot be used");
+        }
+        let mut m = self.metrics();
+        m.scheduler.reachable = false;
+        m.scheduler.problem = e.to_string();
+        m.scheduler.down_since = Some(since);
+        m.scheduler.fallback = local;
+    }
+
     fn dispatch(&mut self) {
         let workers = self.cfg.service.workers as usize;
-        while self.running.len() < workers {
-            let running: Vec<StepTag> = self.running.keys().cloned().collect();
-            let Some(tag) = self.asm.next(self.cfg.service.order, &running) else {
+        let max_jobs = self.cfg.service.slurm.max_jobs as usize;
+        let fallback = self.cfg.service.slurm.when_unreachable == Unreachable::Local;
+        loop {
+            let busy: Vec<StepTag> = self
+                .running
+                .keys()
+                .chain(self.jobs.keys())
+                .cloned()
+                .collect();
+            let busy_chains: BTreeSet<(&str, Option<u8>, &str)> = busy.iter().map(chain).collect();
+            let local_free = self.running.len() < workers;
+            let sched_ok = self.scheduler_usable();
+            let jobs_free = self.jobs.len() < max_jobs;
+            let on_batch: BTreeSet<&str> = self
+                .rules
+                .iter()
+                .filter(|r| r.feed.executor == Executor::Slurm)
+                .map(|r| r.feed.name.as_str())
+                .collect();
+            let pick = self.asm.next_where(self.cfg.service.order, &busy, |p| {
+                if !on_batch.contains(p.tag.feed.as_str()) {
+                    return local_free;
+                }
+                if busy_chains.contains(&chain(&p.tag)) {
+                    return false;
+                }
+                if sched_ok {
+                    jobs_free
+                } else {
+                    fallback && local_free
+                }
+            });
+            let Some(tag) = pick else {
                 break;
             };
             if self.adopt(&tag) {
@@ -784,6 +967,7 @@ impl Daemon {
                 Vec::new()
             };
             self.asm.last_dispatched = Some(p.key.reference_time);
+            let lock = self.lock_of(&tag.feed);
             let Some(p) = self.asm.steps.get_mut(&tag) else {
                 break;
             };
@@ -799,39 +983,422 @@ impl Daemon {
                 cfg,
                 dir: publish::cycle_dir(&self.cfg.service.out_dir, &tag.feed, p.key.reference_time),
                 store,
-                lock: self
-                    .locks
-                    .entry(tag.feed.clone())
-                    .or_insert_with(|| Arc::new(Mutex::new(())))
-                    .clone(),
+                lock,
                 suffix,
                 partial,
                 last_input: p.last_input(),
                 not_arrived,
             };
-            info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, partial, files = job.files.len(), "processing");
-            self.running.insert(tag.clone(), Instant::now());
-            let tx = self.done_tx.clone();
-            std::thread::spawn(move || {
-                crate::output::quiet_hdf5_errors();
-                let outcome =
-                    std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_job(&job)))
-                        .unwrap_or_else(|p| {
-                            let what = p
-                                .downcast_ref::<&str>()
-                                .map(|s| s.to_string())
-                                .or_else(|| p.downcast_ref::<String>().cloned())
-                                .unwrap_or_else(|| "unknown".into());
-                            JobOutcome::Internal(format!(
-                                "internal error (a defect in leeward): {what}"
-                            ))
-                        });
-                let _ = tx.send(JobDone {
-                    tag: job.tag.clone(),
-                    outcome,
-                });
-            });
+            if self.executor(&tag.feed) == Executor::Slurm && sched_ok {
+                let attempt = self
+                    .ledger
+                    .state
+                    .steps
+                    .get(&tag)
+                    .map_or(0, |s| s.job_attempts)
+                    + 1;
+                let spec = JobSpec::new(
+                    &job.tag,
+                    attempt,
+                    &job.key,
+                    &job.files,
+                    &job.store,
+                    &job.dir,
+                    job.suffix,
+                    job.partial,
+                    job.last_input,
+                    job.not_arrived.clone(),
+                    self.cfg.service.slurm.cpus_per_step,
+                    (*job.cfg).clone(),
+                );
+                match self.submit(spec) {
+                    Ok(()) => continue,
+                    Err(e) => {
+                        self.scheduler_down(&e);
+                        if !fallback || self.running.len() >= workers {
+                            if let Some(p) = self.asm.steps.get_mut(&tag) {
+                                p.phase = Phase::Ready { partial };
+                            }
+                            continue;
+                        }
+                        warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, error = %e, "scheduler unusable: running the step on this machine");
+                        self.metrics().scheduler.local_fallback += 1;
+                    }
+                }
+            } else if self.executor(&tag.feed) == Executor::Slurm {
+                info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, "scheduler unusable: running the step on this machine");
+                self.metrics().scheduler.local_fallback += 1;
+            }
+            self.spawn_local(job);
         }
+    }
+
+    fn lock_of(&mut self, feed: &str) -> Arc<Mutex<()>> {
+        self.locks
+            .entry(feed.to_string())
+            .or_insert_with(|| Arc::new(Mutex::new(())))
+            .clone()
+    }
+
+    fn spawn_local(&mut self, job: Job) {
+        let tag = job.tag.clone();
+        info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, partial = job.partial, files = job.files.len(), "processing");
+        self.running.insert(tag.clone(), Instant::now());
+        let tx = self.done_tx.clone();
+        std::thread::spawn(move || {
+            crate::output::quiet_hdf5_errors();
+            let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_job(&job)))
+                .unwrap_or_else(|p| {
+                    let what = p
+                        .downcast_ref::<&str>()
+                        .map(|s| s.to_string())
+                        .or_else(|| p.downcast_ref::<String>().cloned())
+                        .unwrap_or_else(|| "unknown".into());
+                    JobOutcome::Internal(format!("internal error (a defect in leeward): {what}"))
+                });
+            let _ = tx.send(JobDone {
+                tag: job.tag.clone(),
+                outcome,
+            });
+        });
+    }
+
+    /// Prepare a staging directory for `spec`, submit it, and record the job.
+    fn submit(&mut self, spec: JobSpec) -> Result<(), SchedulerError> {
+        let tag = spec.tag.clone();
+        let stage = batch::staging_dir(&self.cfg.service.out_dir, &tag, spec.attempt);
+        let program = if self.cfg.service.slurm.program.as_os_str().is_empty() {
+            std::env::current_exe().unwrap_or_else(|_| PathBuf::from("leeward"))
+        } else {
+            self.cfg.service.slurm.program.clone()
+        };
+        if let Err(e) = batch::prepare(&stage, &spec, &program, &self.cfg.service.slurm.setup) {
+            batch::remove_stage(&stage);
+            return Err(SchedulerError::Refused(format!(
+                "cannot prepare the staging directory {}: {e}",
+                stage.display()
+            )));
+        }
+        let job = match self.scheduler().submit(&tag, &stage) {
+            Ok(j) => j,
+            Err(e) => {
+                batch::remove_stage(&stage);
+                return Err(e);
+            }
+        };
+        self.scheduler_up();
+        info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %job, attempt = spec.attempt, name = %batch::job_name(&tag), stage = %stage.display(), "submitted to the scheduler");
+        self.record(Record::Submitted {
+            step: tag.clone(),
+            job: job.clone(),
+            staging: stage.display().to_string(),
+            attempt: spec.attempt,
+            at: Utc::now().timestamp(),
+        });
+        self.metrics().scheduler.submitted += 1;
+        self.jobs.insert(
+            tag,
+            InFlight {
+                job,
+                stage,
+                attempt: spec.attempt,
+                spec: Arc::new(spec),
+                phase: JobPhase::Queued { gone: 0 },
+            },
+        );
+        Ok(())
+    }
+
+    /// Look at the jobs in flight: take finished results, notice jobs that
+    /// ended without one, submit again those whose wait is over.
+    fn poll_jobs(&mut self) {
+        if self.jobs.is_empty() {
+            return;
+        }
+        let now = Instant::now();
+        let due: Vec<StepTag> = self
+            .jobs
+            .iter()
+            .filter(|(_, j)| matches!(j.phase, JobPhase::Resubmit { at } if at <= now))
+            .map(|(t, _)| t.clone())
+            .collect();
+        for tag in due {
+            self.resubmit(&tag);
+        }
+        let queued = self.scheduler().queued();
+        match &queued {
+            Ok(_) => self.scheduler_up(),
+            Err(e) => self.scheduler_down(e),
+        }
+        let tags: Vec<StepTag> = self
+            .jobs
+            .iter()
+            .filter(|(_, j)| matches!(j.phase, JobPhase::Queued { .. }))
+            .map(|(t, _)| t.clone())
+            .collect();
+        for tag in tags {
+            let Some(j) = self.jobs.get_mut(&tag) else {
+                continue;
+            };
+            let listed = queued.as_ref().ok().and_then(|q| q.get(&j.job)).cloned();
+            let active = listed.as_ref().is_some_and(|(st, _)| batch::is_active(st));
+            let has_result = j.stage.join(batch::RESULT).exists();
+            if has_result && !active {
+                j.phase = JobPhase::Taking;
+                let (spec, stage) = (j.spec.clone(), j.stage.clone());
+                let lock = self.lock_of(&tag.feed);
+                let tx = self.done_tx.clone();
+                std::thread::spawn(move || {
+                    crate::output::quiet_hdf5_errors();
+                    let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                        taken_outcome(batch::take(&spec, &stage, &lock))
+                    }))
+                    .unwrap_or_else(|_| JobOutcome::BatchRetry {
+                        state: "TAKE_FAILED".into(),
+                        reason: "internal error while taking the result".into(),
+                    });
+                    let _ = tx.send(JobDone {
+                        tag: spec.tag.clone(),
+                        outcome,
+                    });
+                });
+                continue;
+            }
+            if has_result || active || queued.is_err() {
+                j.phase = JobPhase::Queued { gone: 0 };
+                continue;
+            }
+            // Not in the queue and no result. A shared file system may show the
+            // result a moment late: look twice before calling the job lost.
+            let gone = match j.phase {
+                JobPhase::Queued { gone } => gone + 1,
+                _ => 1,
+            };
+            j.phase = JobPhase::Queued { gone };
+            if gone < 2 {
+                continue;
+            }
+            let job = j.job.clone();
+            let facts = self.scheduler().facts(&job).or_else(|| {
+                listed.map(|(state, reason)| batch::JobFacts {
+                    state,
+                    reason,
+                    exit_code: String::new(),
+                })
+            });
+            let (state, reason) = match facts {
+                Some(f) => (
+                    f.state.clone(),
+                    format!(
+                        "Slurm job {job} ended {} (reason {}, exit code {}) without a result",
+                        f.state,
+                        if f.reason.is_empty() {
+                            "none"
+                        } else {
+                            &f.reason
+                        },
+                        if f.exit_code.is_empty() {
+                            "unknown"
+                        } else {
+                            &f.exit_code
+                        },
+                    ),
+                ),
+                None => (
+                    "UNKNOWN".into(),
+                    format!(
+                        "Slurm job {job} is no longer known to the scheduler and left no result"
+                    ),
+                ),
+            };
+            self.job_failed(&tag, state, reason);
+        }
+    }
+
+    /// A run of a step on the scheduler ended without publishing: keep its
+    /// log, record it, and submit again after a back-off, or give up at the limit.
+    fn job_failed(&mut self, tag: &StepTag, state: String, reason: String) {
+        let Some(mut j) = self.jobs.remove(tag) else {
+            return;
+        };
+        let log = batch::keep_log(&j.stage, &self.cfg.service.state_dir, tag, &j.job);
+        batch::remove_stage(&j.stage);
+        let log_text = log
+            .as_ref()
+            .map_or_else(|| "no log".to_string(), |l| format!("log {}", l.display()));
+        self.record(Record::JobEnded {
+            step: tag.clone(),
+            job: j.job.clone(),
+            state: state.clone(),
+            reason: reason.clone(),
+            log: log.as_ref().map(|l| l.display().to_string()),
+            at: Utc::now().timestamp(),
+        });
+        *self
+            .metrics()
+            .scheduler
+            .ended
+            .entry(state.clone())
+            .or_default() += 1;
+        let max = self.cfg.service.slurm.max_attempts;
+        if j.attempt < max {
+            let wait = self.backoff(j.attempt);
+            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, attempt = j.attempt, max_attempts = max, retry_in_s = wait.as_secs_f64(), reason = %reason, log = %log_text, "step job ended without a result; submitting again");
+            self.metrics().scheduler.retries += 1;
+            j.phase = JobPhase::Resubmit {
+                at: Instant::now() + wait,
+            };
+            self.jobs.insert(tag.clone(), j);
+        } else {
+            self.asm.steps.remove(tag);
+            self.fail(
+                tag,
+                FailKind::Job,
+                format!("{reason}; {} of {max} attempts used; {log_text}", j.attempt),
+            );
+        }
+    }
+
+    /// Submit a step again from its spec (a new staging directory, the next
+    /// attempt); while the scheduler is unusable, run it here if so configured.
+    fn resubmit(&mut self, tag: &StepTag) {
+        let Some(j) = self.jobs.get(tag) else {
+            return;
+        };
+        let mut spec = (*j.spec).clone();
+        spec.attempt = j.attempt + 1;
+        let fallback = self.cfg.service.slurm.when_unreachable == Unreachable::Local;
+        if self.scheduler_usable() {
+            self.jobs.remove(tag);
+            match self.submit(spec.clone()) {
+                Ok(()) => return,
+                Err(e) => {
+                    self.scheduler_down(&e);
+                    let attempt = spec.attempt - 1;
+                    self.jobs.insert(
+                        tag.clone(),
+                        InFlight {
+                            job: String::new(),
+                            stage: PathBuf::new(),
+                            attempt,
+                            spec: Arc::new(spec.clone()),
+                            phase: JobPhase::Resubmit {
+                                at: self.sched_retry,
+                            },
+                        },
+                    );
+                }
+            }
+        }
+        if fallback && self.running.len() < self.cfg.service.workers as usize {
+            let Some(j) = self.jobs.remove(tag) else {
+                return;
+            };
+            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, "scheduler unusable: running the step on this machine");
+            self.metrics().scheduler.local_fallback += 1;
+            let job = self.job_from_spec(&j.spec);
+            self.spawn_local(job);
+        } else if let Some(j) = self.jobs.get_mut(tag) {
+            j.phase = JobPhase::Resubmit {
+                at: self
+                    .sched_retry
+                    .max(Instant::now() + Duration::from_secs(1)),
+            };
+        }
+    }
+
+    fn job_from_spec(&mut self, spec: &JobSpec) -> Job {
+        let cfg = self
+            .feed_cfgs
+            .get(&spec.tag.feed)
+            .cloned()
+            .unwrap_or_else(|| Arc::new(spec.config.clone()));
+        Job {
+            tag: spec.tag.clone(),
+            key: spec.key().unwrap_or(StepKey {
+                centre: spec.centre,
+                reference_time: NaiveDateTime::default(),
+                valid_time: NaiveDateTime::default(),
+                member: spec.member,
+                grid_key: Vec::new(),
+            }),
+            files: spec.contributions(),
+            cfg,
+            store: spec.store.clone(),
+            dir: spec.dir.clone(),
+            lock: self.lock_of(&spec.tag.feed),
+            suffix: spec.suffix,
+            partial: spec.partial,
+            last_input: spec.last_input,
+            not_arrived: spec.not_arrived.clone(),
+        }
+    }
+
+    /// After a restart: the jobs the ledger has in flight, from their staging
+    /// directories; a staging directory that is gone ends its job's record.
+    fn recover_jobs(&mut self) {
+        let inflight: Vec<(StepTag, super::ledger::JobRef)> = self
+            .ledger
+            .state
+            .steps
+            .iter()
+            .filter(|(_, s)| !matches!(s.outcome, Outcome::Published { .. }))
+            .filter_map(|(t, s)| s.job.clone().map(|j| (t.clone(), j)))
+            .collect();
+        for (tag, r) in inflight {
+            let stage = PathBuf::from(&r.staging);
+            let spec: Option<JobSpec> = [batch::SPEC, batch::CLAIMED]
+                .iter()
+                .find_map(|n| serde_json::from_slice(&std::fs::read(stage.join(n)).ok()?).ok());
+            match spec {
+                Some(spec) => {
+                    info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %r.job, attempt = r.attempt, "step job from before the restart followed again");
+                    self.jobs.insert(
+                        tag,
+                        InFlight {
+                            job: r.job,
+                            stage,
+                            attempt: r.attempt,
+                            spec: Arc::new(spec),
+                            phase: JobPhase::Queued { gone: 0 },
+                        },
+                    );
+                }
+                None => {
+                    warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %r.job, stage = %stage.display(), "staging directory of a job from before the restart is gone; the step is made again");
+                    self.record(Record::JobEnded {
+                        step: tag,
+                        job: r.job,
+                        state: "LOST".into(),
+                        reason: format!("staging directory {} gone", stage.display()),
+                        log: None,
+                        at: Utc::now().timestamp(),
+                    });
+                }
+            }
+        }
+        // Staging directories no job in flight owns (a crash between sbatch and
+        // the ledger, or an old failure) are removed.
+        let owned: BTreeSet<PathBuf> = self.jobs.values().map(|j| j.stage.clone()).collect();
+        for r in &self.rules {
+            let jobs_dir = self
+                .cfg
+                .service
+                .out_dir
+                .join(&r.feed.name)
+                .join(batch::JOBS_DIR);
+            let Ok(rd) = std::fs::read_dir(&jobs_dir) else {
+                continue;
+            };
+            for e in rd.flatten() {
+                let p = e.path();
+                if p.is_dir() && !owned.contains(&p) {
+                    info!(dir = %p.display(), "staging directory of no job in flight removed");
+                    batch::remove_stage(&p);
+                }
+            }
+        }
+        self.metrics().scheduler.in_flight = self.jobs.len();
     }
 
     fn backoff(&self, attempts: u32) -> Duration {
@@ -842,7 +1409,24 @@ impl Daemon {
     }
 
     fn finished(&mut self, d: JobDone) {
+        if let JobOutcome::BatchRetry { state, reason } = &d.outcome {
+            self.job_failed(&d.tag, state.clone(), reason.clone());
+            return;
+        }
         self.running.remove(&d.tag);
+        let batch_job = self.jobs.remove(&d.tag);
+        if let Some(j) = &batch_job {
+            if !matches!(d.outcome, JobOutcome::Published { .. }) {
+                batch::keep_log(&j.stage, &self.cfg.service.state_dir, &d.tag, &j.job);
+            }
+        }
+        self.finish_step(d);
+        if let Some(j) = batch_job {
+            batch::remove_stage(&j.stage);
+        }
+    }
+
+    fn finish_step(&mut self, d: JobDone) {
         let tag = d.tag;
         let now = Utc::now().timestamp();
         let was_partial = self
@@ -943,6 +1527,11 @@ impl Daemon {
             JobOutcome::Internal(reason) => {
                 self.asm.steps.remove(&tag);
                 self.fail(&tag, FailKind::Internal, reason);
+            }
+            JobOutcome::BatchRetry { state, reason } => {
+                // Handled in `finished`; a local run never ends this way.
+                self.asm.steps.remove(&tag);
+                self.fail(&tag, FailKind::Job, format!("{state}: {reason}"));
             }
         }
     }
@@ -1069,8 +1658,10 @@ impl Daemon {
                 .iter()
                 .map(|n| (n.clone(), self.asm.counts(n)))
                 .collect();
+            let in_flight = self.jobs.len();
             let mut m = self.metrics();
             m.heartbeat = Some(Instant::now());
+            m.scheduler.in_flight = in_flight;
             for (n, c) in counts {
                 m.feed(&n).queue = c;
                 tot = (tot.0 + c.0, tot.1 + c.1, tot.2 + c.2, tot.3 + c.3);
@@ -1084,6 +1675,12 @@ impl Daemon {
             tot.0,
             tot.3
         );
+        if !self.jobs.is_empty() {
+            s.push_str(&format!("; {} on the scheduler", self.jobs.len()));
+        }
+        if let Some((_, why)) = &self.sched_down {
+            s.push_str(&format!("; {why}"));
+        }
         if let Some(l) = &self.last_published {
             s.push_str(&format!("; last published {l}"));
         }
@@ -1191,10 +1788,14 @@ pub fn serve(opts: ServeOptions) -> u8 {
         ..Metrics::default()
     }));
     for r in &rules {
-        metrics
+        let mut m = metrics
             .lock()
-            .unwrap_or_else(std::sync::PoisonError::into_inner)
-            .feed(&r.feed.name);
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        m.feed(&r.feed.name);
+        if r.feed.executor == Executor::Slurm {
+            m.scheduler.used = true;
+            m.scheduler.reachable = true;
+        }
     }
     if !cfg.service.metrics_listen.is_empty() {
         if let Err(e) = super::metrics::serve(&cfg.service.metrics_listen, metrics.clone()) {
@@ -1235,6 +1836,10 @@ pub fn serve(opts: ServeOptions) -> u8 {
         done_tx,
         done_rx,
         running: HashMap::new(),
+        jobs: HashMap::new(),
+        sched_down: None,
+        sched_retry: Instant::now(),
+        last_poll: Instant::now(),
         locks: HashMap::new(),
         too_old: BTreeSet::new(),
         last_status: String::new(),
@@ -1263,6 +1868,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         .values()
         .filter(|s| matches!(s.outcome, Outcome::Waiting))
         .count();
+    d.recover_jobs();
     d.start_watchers();
     d.retention();
     info!(
@@ -1338,6 +1944,10 @@ pub fn serve(opts: ServeOptions) -> u8 {
         while let Ok(done) = d.done_rx.try_recv() {
             d.finished(done);
         }
+        if stopping.is_none() && d.last_poll.elapsed().as_secs_f64() >= d.cfg.service.slurm.poll_s {
+            d.last_poll = Instant::now();
+            d.poll_jobs();
+        }
         if last_second.elapsed() >= Duration::from_secs(1) {
             last_second = Instant::now();
             if stopping.is_none() {
@@ -1359,7 +1969,11 @@ pub fn serve(opts: ServeOptions) -> u8 {
                 d.dispatch();
             }
             Some(t0) => {
-                if d.running.is_empty() {
+                // Jobs on the scheduler go on without the service and are
+                // followed again after its restart; a result being taken is
+                // finished first.
+                let taking = d.jobs.values().any(|j| j.phase == JobPhase::Taking);
+                if d.running.is_empty() && !taking {
                     info!("stopped cleanly");
                     d.record(Record::Stopped {
                         reason: if exit_code == code::OK {

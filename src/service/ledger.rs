@@ -45,16 +45,19 @@ pub enum FailKind {
     Internal,
     /// Not made: its cycle is older than `service.catch_up_hours` (reprocess makes it).
     Skipped,
+    /// Its batch jobs failed, were cancelled or timed out `max_attempts` times.
+    Job,
 }
 
 impl FailKind {
     /// Every kind, in the order the metrics list them.
-    pub const ALL: [FailKind; 5] = [
+    pub const ALL: [FailKind; 6] = [
         FailKind::Missing,
         FailKind::Input,
         FailKind::Output,
         FailKind::Internal,
         FailKind::Skipped,
+        FailKind::Job,
     ];
 
     /// Its name in the journal and in the metrics' `reason` label.
@@ -65,6 +68,7 @@ impl FailKind {
             FailKind::Output => "output",
             FailKind::Internal => "internal",
             FailKind::Skipped => "skipped",
+            FailKind::Job => "job",
         }
     }
 }
@@ -140,6 +144,35 @@ pub enum Record {
         reason: String,
         /// Where it was moved, if it was.
         moved_to: Option<String>,
+        /// When.
+        at: i64,
+    },
+    /// A step was handed to the batch scheduler.
+    Submitted {
+        /// The step.
+        step: StepTag,
+        /// The scheduler's job id.
+        job: String,
+        /// The job's staging directory (its spec, products and result record).
+        staging: String,
+        /// Which run of the step on the scheduler this is, from 1.
+        attempt: u32,
+        /// When.
+        at: i64,
+    },
+    /// A step's batch job ended without its products being published (failed,
+    /// cancelled, timed out, lost): retried or, at the limit, failed.
+    JobEnded {
+        /// The step.
+        step: StepTag,
+        /// The job id.
+        job: String,
+        /// The scheduler's state of the job (`FAILED`, `CANCELLED`, `TIMEOUT`, ...).
+        state: String,
+        /// What the scheduler or the job said.
+        reason: String,
+        /// The job's log, kept in the state directory.
+        log: Option<String>,
         /// When.
         at: i64,
     },
@@ -226,6 +259,19 @@ pub enum Outcome {
     },
 }
 
+/// A batch job of a step, submitted and not yet ended.
+#[derive(Debug, Clone, PartialEq)]
+pub struct JobRef {
+    /// The scheduler's job id.
+    pub job: String,
+    /// Its staging directory.
+    pub staging: String,
+    /// Which run of the step on the scheduler, from 1.
+    pub attempt: u32,
+    /// When it was submitted.
+    pub at: i64,
+}
+
 /// A step's history.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StepState {
@@ -233,6 +279,21 @@ pub struct StepState {
     pub first_seen: i64,
     /// Where it stands.
     pub outcome: Outcome,
+    /// Its batch job in flight, if one is.
+    pub job: Option<JobRef>,
+    /// Runs of it on the scheduler so far.
+    pub job_attempts: u32,
+}
+
+impl StepState {
+    fn new(first_seen: i64) -> StepState {
+        StepState {
+            first_seen,
+            outcome: Outcome::Waiting,
+            job: None,
+            job_attempts: 0,
+        }
+    }
 }
 
 /// A quarantined file.
@@ -284,10 +345,9 @@ impl State {
                 at,
             } => {
                 for s in steps {
-                    self.steps.entry(s.clone()).or_insert(StepState {
-                        first_seen: *at,
-                        outcome: Outcome::Waiting,
-                    });
+                    self.steps
+                        .entry(s.clone())
+                        .or_insert_with(|| StepState::new(*at));
                     let g = self.grids.entry(feed.clone()).or_default();
                     if !g.contains(&s.grid) {
                         g.push(s.grid.clone());
@@ -312,10 +372,11 @@ impl State {
                 partial,
                 at,
             } => {
-                let s = self.steps.entry(step.clone()).or_insert(StepState {
-                    first_seen: *at,
-                    outcome: Outcome::Waiting,
-                });
+                let s = self
+                    .steps
+                    .entry(step.clone())
+                    .or_insert_with(|| StepState::new(*at));
+                s.job = None;
                 s.outcome = Outcome::Published {
                     path: path.clone(),
                     manifest: manifest.clone(),
@@ -329,10 +390,11 @@ impl State {
                 reason,
                 at,
             } => {
-                let s = self.steps.entry(step.clone()).or_insert(StepState {
-                    first_seen: *at,
-                    outcome: Outcome::Waiting,
-                });
+                let s = self
+                    .steps
+                    .entry(step.clone())
+                    .or_insert_with(|| StepState::new(*at));
+                s.job = None;
                 s.outcome = Outcome::Failed {
                     kind: *kind,
                     reason: reason.clone(),
@@ -356,6 +418,32 @@ impl State {
                     },
                 );
             }
+            Record::Submitted {
+                step,
+                job,
+                staging,
+                attempt,
+                at,
+            } => {
+                let s = self
+                    .steps
+                    .entry(step.clone())
+                    .or_insert_with(|| StepState::new(*at));
+                s.job = Some(JobRef {
+                    job: job.clone(),
+                    staging: staging.clone(),
+                    attempt: *attempt,
+                    at: *at,
+                });
+                s.job_attempts = s.job_attempts.max(*attempt);
+            }
+            Record::JobEnded { step, job, .. } => {
+                if let Some(s) = self.steps.get_mut(step) {
+                    if s.job.as_ref().is_some_and(|j| &j.job == job) {
+                        s.job = None;
+                    }
+                }
+            }
             Record::Reprocess {
                 feed,
                 cycle,
@@ -369,6 +457,7 @@ impl State {
                     {
                         st.outcome = Outcome::Waiting;
                         st.first_seen = *at;
+                        st.job_attempts = 0;
                     }
                 }
                 // Files of the cycle are looked at again.

@@ -67,9 +67,36 @@ impl FeedCounters {
     }
 }
 
+/// The batch scheduler, for feeds that use one.
+#[derive(Debug, Default, Clone)]
+pub struct SchedulerCounters {
+    /// A feed uses the scheduler.
+    pub used: bool,
+    /// Its commands answered last time.
+    pub reachable: bool,
+    /// Why not, when not.
+    pub problem: String,
+    /// Unix time it became unusable.
+    pub down_since: Option<f64>,
+    /// New steps run on this machine while it is unusable.
+    pub fallback: bool,
+    /// Step jobs submitted and not yet ended.
+    pub in_flight: usize,
+    /// Step jobs submitted.
+    pub submitted: u64,
+    /// Step jobs that ended without a result, by the scheduler's state.
+    pub ended: BTreeMap<String, u64>,
+    /// Step jobs submitted again after one ended without a result.
+    pub retries: u64,
+    /// Steps of scheduler feeds run on this machine instead.
+    pub local_fallback: u64,
+}
+
 /// Everything the endpoint serves.
 #[derive(Debug, Default)]
 pub struct Metrics {
+    /// The batch scheduler.
+    pub scheduler: SchedulerCounters,
     /// Per feed.
     pub feeds: BTreeMap<String, FeedCounters>,
     /// Ledger or state-directory write failures.
@@ -241,6 +268,39 @@ impl Metrics {
                 "# HELP {name} {help}\n# TYPE {name} {kind}\n{name} {v}\n"
             ));
         };
+        if self.scheduler.used {
+            let c = &self.scheduler;
+            family(
+                "leeward_scheduler_up",
+                "gauge",
+                "1 when the batch scheduler's commands answered at the last try.",
+                u8::from(c.reachable).to_string(),
+            );
+            family(
+                "leeward_scheduler_jobs_in_flight",
+                "gauge",
+                "Step jobs submitted and not yet published or ended.",
+                c.in_flight.to_string(),
+            );
+            family(
+                "leeward_scheduler_jobs_submitted_total",
+                "counter",
+                "Step jobs submitted to the scheduler.",
+                c.submitted.to_string(),
+            );
+            family(
+                "leeward_scheduler_job_retries_total",
+                "counter",
+                "Step jobs submitted again after a run ended without a result.",
+                c.retries.to_string(),
+            );
+            family(
+                "leeward_scheduler_local_fallback_total",
+                "counter",
+                "Steps of scheduler feeds run on this machine because the scheduler was unusable.",
+                c.local_fallback.to_string(),
+            );
+        }
         family(
             "leeward_ledger_errors_total",
             "counter",
@@ -259,6 +319,15 @@ impl Metrics {
             "Configuration reloads refused because the new file was invalid.",
             self.reloads.1.to_string(),
         );
+        if self.scheduler.used {
+            o.push_str("# HELP leeward_scheduler_jobs_ended_total Step jobs that ended without a result, by scheduler state.\n# TYPE leeward_scheduler_jobs_ended_total counter\n");
+            for (state, n) in &self.scheduler.ended {
+                o.push_str(&format!(
+                    "leeward_scheduler_jobs_ended_total{{state=\"{}\"}} {n}\n",
+                    esc(state)
+                ));
+            }
+        }
         o
     }
 }
@@ -300,7 +369,29 @@ fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
         ("GET", "/health") | ("GET", "/healthz") => {
             let alive = m.heartbeat.is_some_and(|h| h.elapsed() < STALL);
             if alive {
-                ("200 OK", "text/plain; charset=utf-8", "ok\n".to_string())
+                let c = &m.scheduler;
+                let body = if c.used && !c.reachable {
+                    format!(
+                        "ok\nscheduler: unusable for {:.0} s ({}); new steps {}\n",
+                        c.down_since.map_or(0.0, |t| {
+                            chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - t
+                        }),
+                        c.problem,
+                        if c.fallback {
+                            "run on this machine"
+                        } else {
+                            "wait"
+                        }
+                    )
+                } else if c.used {
+                    format!(
+                        "ok\nscheduler: reachable; {} job(s) in flight\n",
+                        c.in_flight
+                    )
+                } else {
+                    "ok\n".to_string()
+                };
+                ("200 OK", "text/plain; charset=utf-8", body)
             } else {
                 (
                     "503 Service Unavailable",

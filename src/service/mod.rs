@@ -7,6 +7,7 @@
 //! - [`watch`]: which files in an incoming directory are finished.
 //! - [`assemble`]: fields grouped into steps; completeness; order.
 //! - [`daemon`]: the main loop, workers, signals, reprocess requests.
+//! - [`batch`]: step jobs on a batch scheduler (Slurm): spec, result, taking it.
 //! - [`publish`]: output tree, manifests, temporaries, retention, quarantine.
 //! - [`ledger`]: the durable journal of what happened.
 //! - [`metrics`]: the health and metrics endpoint.
@@ -14,6 +15,7 @@
 //! - [`status`]: `leeward status`, from the ledger.
 
 pub mod assemble;
+pub mod batch;
 pub mod daemon;
 pub mod ledger;
 pub mod metrics;

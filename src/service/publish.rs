@@ -112,7 +112,7 @@ pub use crate::output::write_file_atomic as write_atomic;
 /// Size and SHA-256 (FIPS 180-4), hex, of a published file, read in blocks
 /// so that a file of any size costs one block of memory; `sha256sum` gives
 /// the same digest.
-fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
+pub fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
     use sha2::Digest;
     use std::io::Read;
     let mut f = std::fs::File::open(path)?;

@@ -58,6 +58,81 @@ pub struct Service {
     pub retry_max_s: f64,
     /// Cycles older than this many hours are not caught up at start (0: all are).
     pub catch_up_hours: u32,
+    /// The batch scheduler for feeds with `executor = "slurm"`.
+    pub slurm: Slurm,
+}
+
+/// Where a feed's steps run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Executor {
+    /// The service's own worker threads on this machine.
+    Local,
+    /// One Slurm batch job per step (`[service.slurm]`), on nodes that see the
+    /// same output tree; the service stays the only one that publishes.
+    Slurm,
+}
+
+/// What to do with new steps while the scheduler cannot be reached.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Unreachable {
+    /// Run them on this machine's workers until the scheduler answers again.
+    Local,
+    /// Keep them waiting and try the scheduler again.
+    Wait,
+}
+
+/// The `[service.slurm]` table: how step jobs are submitted.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Slurm {
+    /// `--partition`; empty: the cluster's default.
+    pub partition: String,
+    /// `--account`; empty: the user's default.
+    pub account: String,
+    /// `--time` of each step job, `[D-]HH:MM:SS` or minutes.
+    pub time_limit: String,
+    /// `--mem` of each step job (`4G`, `1500M`).
+    pub memory: String,
+    /// `--cpus-per-task` of each step job; also its thread count.
+    pub cpus_per_step: u32,
+    /// Step jobs submitted and not yet published at most.
+    pub max_jobs: u32,
+    /// Runs of a step on the scheduler before it is reported failed.
+    pub max_attempts: u32,
+    /// While `sbatch`/`squeue` cannot reach the controller: `local` or `wait`.
+    pub when_unreachable: Unreachable,
+    /// Seconds between looks at the jobs in flight.
+    pub poll_s: f64,
+    /// Seconds a scheduler command may take before it counts as unreachable.
+    pub command_timeout_s: f64,
+    /// The leeward program the nodes run; empty: the service's own.
+    pub program: PathBuf,
+    /// Shell lines run in the job before leeward (environment modules, paths).
+    pub setup: Vec<String>,
+    /// Further `sbatch` options, each one argument (`--qos=high`).
+    pub sbatch_args: Vec<String>,
+}
+
+impl Default for Slurm {
+    fn default() -> Self {
+        Slurm {
+            partition: String::new(),
+            account: String::new(),
+            time_limit: "00:30:00".into(),
+            memory: "4G".into(),
+            cpus_per_step: 2,
+            max_jobs: 64,
+            max_attempts: 3,
+            when_unreachable: Unreachable::Local,
+            poll_s: 2.0,
+            command_timeout_s: 30.0,
+            program: PathBuf::new(),
+            setup: Vec::new(),
+            sbatch_args: Vec::new(),
+        }
+    }
 }
 
 impl Default for Service {
@@ -79,6 +154,7 @@ impl Default for Service {
             retry_first_s: 5.0,
             retry_max_s: 300.0,
             catch_up_hours: 72,
+            slurm: Slurm::default(),
         }
     }
 }
@@ -157,6 +233,8 @@ pub struct Feed {
     /// of a feed's own table takes its built-in default, not the value of
     /// the file's `[products]`.
     pub products: Option<Products>,
+    /// Where its steps run: `local` (the service's workers) or `slurm`.
+    pub executor: Executor,
 }
 
 impl Default for Feed {
@@ -172,6 +250,7 @@ impl Default for Feed {
             files_per_step: 1,
             marker_pattern: String::new(),
             products: None,
+            executor: Executor::Local,
         }
     }
 }
@@ -340,6 +419,56 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
         if !(lo..=hi).contains(&v) {
             p.push(format!("service.{key}: {v} is outside {lo} to {hi}"));
         }
+    }
+    let b = &s.slurm;
+    for (key, v, lo, hi) in [
+        ("poll_s", b.poll_s, 0.1, 600.0),
+        ("command_timeout_s", b.command_timeout_s, 1.0, 600.0),
+    ] {
+        if !(lo..=hi).contains(&v) {
+            p.push(format!("service.slurm.{key}: {v} is outside {lo} to {hi}"));
+        }
+    }
+    for (key, v, lo, hi) in [
+        ("cpus_per_step", b.cpus_per_step, 1, 1024),
+        ("max_jobs", b.max_jobs, 1, 100_000),
+        ("max_attempts", b.max_attempts, 1, 100),
+    ] {
+        if !(lo..=hi).contains(&v) {
+            p.push(format!("service.slurm.{key}: {v} is outside {lo} to {hi}"));
+        }
+    }
+    let duration = Regex::new(r"^(\d+-)?\d+(:\d{1,2}){0,2}$").ok();
+    if !duration.is_some_and(|re| re.is_match(&b.time_limit)) {
+        p.push(format!(
+            "service.slurm.time_limit: {:?} is not a Slurm time such as 00:30:00, 1-00:00:00 or 45",
+            b.time_limit
+        ));
+    }
+    let memory = Regex::new(r"^\d+[KMGT]?$").ok();
+    if !memory.is_some_and(|re| re.is_match(&b.memory)) {
+        p.push(format!(
+            "service.slurm.memory: {:?} is not a Slurm size such as 4G or 1500M",
+            b.memory
+        ));
+    }
+    for (key, v) in [("partition", &b.partition), ("account", &b.account)] {
+        if v.chars()
+            .any(|c| c.is_whitespace() || c == '\'' || c == '"')
+        {
+            p.push(format!("service.slurm.{key}: {v:?} has spaces or quotes"));
+        }
+    }
+    if let Some(a) = b.sbatch_args.iter().find(|a| !a.starts_with('-')) {
+        p.push(format!(
+            "service.slurm.sbatch_args: {a:?} is not an option (each entry is one option such as --qos=high)"
+        ));
+    }
+    if !b.program.as_os_str().is_empty() && !b.program.is_absolute() {
+        p.push(format!(
+            "service.slurm.program: {} must be an absolute path (the nodes run it)",
+            b.program.display()
+        ));
     }
     if s.retry_max_s < s.retry_first_s {
         p.push("service.retry_max_s: smaller than service.retry_first_s".into());

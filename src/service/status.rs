@@ -91,6 +91,7 @@ pub fn summarise(state: &State, cycles: usize) -> Vec<CycleSummary> {
                     FailKind::Output => "output (retrying)",
                     FailKind::Internal => "internal",
                     FailKind::Skipped => "skipped (older than catch_up_hours)",
+                    FailKind::Job => "batch job (attempts used up)",
                 };
                 c.failed.push((tag.lead, k.to_string(), reason.clone()));
                 *at

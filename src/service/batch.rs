@@ -1,0 +1,1171 @@
+//! Step work on a batch scheduler (Slurm).
+//!
+//! The service stays the only coordinator: it watches, assembles, decides and
+//! publishes. For a feed with `executor = "slurm"` it writes a job's spec into
+//! a staging directory inside the feed's output tree (`<out>/<feed>/.jobs/`,
+//! hidden, on the same file system so that a rename publishes), submits a
+//! job script with `sbatch`, and looks at the jobs with `squeue`. The job runs
+//! `leeward process --job DIR` on a node: it makes the step's products into
+//! the staging directory (its additions to files already published go to
+//! staged copies there), then writes a result record as its last act. The
+//! service checks every staged file against the record (size, SHA-256),
+//! renames them into place, writes the manifest and the ledger record, and
+//! removes the staging directory. A job that is requeued or runs twice can
+//! only write into its staging directory; the service takes a result once.
+//!
+//! In: complete steps from the daemon. Out: published steps, or a job's end
+//! with the scheduler's own state and reason and the job's log.
+
+use std::collections::HashMap;
+use std::io::Read;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::sync::Mutex;
+use std::time::{Duration, Instant};
+
+use chrono::NaiveDateTime;
+use serde::{Deserialize, Serialize};
+use tracing::{info, warn};
+
+use super::assemble::Contribution;
+use super::ledger::StepTag;
+use super::publish::{self, file_checksum, ManifestInput, StepFacts};
+use super::settings::Slurm;
+use crate::config::Config;
+use crate::pipeline::{run_step, Destination, Issue, StepKey, StepReport};
+
+/// The job's spec, written by the service.
+pub const SPEC: &str = "spec.json";
+/// The spec once the service has taken the job's result: a job that starts
+/// again (requeued) finds no spec and does nothing.
+pub const CLAIMED: &str = "spec.taken.json";
+/// The job's result record, written by the job as its last act.
+pub const RESULT: &str = "result.json";
+/// The job script handed to `sbatch`.
+pub const SCRIPT: &str = "job.sh";
+/// The job's standard output and error.
+pub const LOG: &str = "job.log";
+/// Directory of a feed's output tree that holds the staging directories.
+pub const JOBS_DIR: &str = ".jobs";
+
+const TIME_FORMAT: &str = "%Y-%m-%dT%H:%M:%S";
+
+/// An input of the step, as the service catalogued it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SpecInput {
+    /// The file.
+    pub path: PathBuf,
+    /// Its size then.
+    pub size: u64,
+    /// Its checksum then (FNV-1a 64, hex).
+    pub checksum: String,
+    /// Byte ranges (offset, length) of the step's messages.
+    pub messages: Vec<(u64, u64)>,
+    /// Unix time it was found finished.
+    pub seen_at: f64,
+}
+
+/// Everything a job needs to make one step, and the service to publish it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct JobSpec {
+    /// Format of this record.
+    pub spec_version: u32,
+    /// The step.
+    pub tag: StepTag,
+    /// Which run of the step on the scheduler, from 1.
+    pub attempt: u32,
+    /// Originating centre.
+    pub centre: u16,
+    /// Cycle, `YYYY-MM-DDTHH:MM:SS`.
+    pub reference_time: String,
+    /// Valid time, `YYYY-MM-DDTHH:MM:SS`.
+    pub valid_time: String,
+    /// Ensemble member.
+    pub member: Option<u8>,
+    /// The grid's section-3 key, hex.
+    pub grid_key: String,
+    /// The step's inputs.
+    pub inputs: Vec<SpecInput>,
+    /// The feed's output tree (earlier steps are read from it).
+    pub store: PathBuf,
+    /// The cycle directory the product goes into.
+    pub dir: PathBuf,
+    /// Grid number in the file name, when the feed has several grids.
+    pub suffix: Option<usize>,
+    /// Made at the timeout with what was there.
+    pub partial: bool,
+    /// Unix time of the last input.
+    pub last_input: f64,
+    /// What the completeness rule expected and did not get.
+    pub not_arrived: Vec<String>,
+    /// Threads the job uses.
+    pub threads: u32,
+    /// The feed's configuration as the service uses it.
+    pub config: Config,
+}
+
+fn hex(b: &[u8]) -> String {
+    b.iter().map(|x| format!("{x:02x}")).collect()
+}
+
+fn unhex(s: &str) -> Option<Vec<u8>> {
+    if !s.len().is_multiple_of(2) {
+        return None;
+    }
+    (0..s.len())
+        .step_by(2)
+        .map(|i| u8::from_str_radix(s.get(i..i + 2)?, 16).ok())
+        .collect()
+}
+
+impl JobSpec {
+    /// The spec of a step.
+    #[allow(clippy::too_many_arguments)]
+    pub fn new(
+        tag: &StepTag,
+        attempt: u32,
+        key: &StepKey,
+        files: &[Contribution],
+        store: &Path,
+        dir: &Path,
+        suffix: Option<usize>,
+        partial: bool,
+        last_input: f64,
+        not_arrived: Vec<String>,
+        threads: u32,
+        config: Config,
+    ) -> JobSpec {
+        JobSpec {
+            spec_version: 1,
+            tag: tag.clone(),
+            attempt,
+            centre: key.centre,
+            reference_time: key.reference_time.format(TIME_FORMAT).to_string(),
+            valid_time: key.valid_time.format(TIME_FORMAT).to_string(),
+            member: key.member,
+            grid_key: hex(&key.grid_key),
+            inputs: files
+                .iter()
+                .map(|c| SpecInput {
+                    path: c.path.clone(),
+                    size: c.size,
+                    checksum: c.checksum.clone(),
+                    messages: c.messages.clone(),
+                    seen_at: c.seen_at,
+                })
+                .collect(),
+            store: store.to_path_buf(),
+            dir: dir.to_path_buf(),
+            suffix,
+            partial,
+            last_input,
+            not_arrived,
+            threads,
+            config,
+        }
+    }
+
+    /// The step's key.
+    pub fn key(&self) -> Option<StepKey> {
+        Some(StepKey {
+            centre: self.centre,
+            reference_time: NaiveDateTime::parse_from_str(&self.reference_time, TIME_FORMAT)
+                .ok()?,
+            valid_time: NaiveDateTime::parse_from_str(&self.valid_time, TIME_FORMAT).ok()?,
+            member: self.member,
+            grid_key: unhex(&self.grid_key)?,
+        })
+    }
+
+    /// The step's inputs as the assembly knows them.
+    pub fn contributions(&self) -> Vec<Contribution> {
+        self.inputs
+            .iter()
+            .map(|i| Contribution {
+                path: i.path.clone(),
+                size: i.size,
+                checksum: i.checksum.clone(),
+                messages: i.messages.clone(),
+                seen_at: i.seen_at,
+            })
+            .collect()
+    }
+
+    /// The product's final path.
+    pub fn product_path(&self) -> Option<PathBuf> {
+        Some(
+            self.dir
+                .join(crate::pipeline::output_name(&self.key()?, self.suffix)),
+        )
+    }
+
+    /// What the manifest needs beyond the report.
+    pub fn facts(&self) -> Option<StepFacts<'_>> {
+        let key = self.key()?;
+        Some(StepFacts {
+            feed: &self.tag.feed,
+            reference_time: key.reference_time,
+            valid_time: key.valid_time,
+            member: key.member,
+            partial: self.partial,
+            inputs: self
+                .inputs
+                .iter()
+                .map(|i| ManifestInput {
+                    file: i.path.display().to_string(),
+                    bytes: i.size,
+                    checksum: i.checksum.clone(),
+                })
+                .collect(),
+            last_input: self.last_input,
+            not_arrived: self.not_arrived.clone(),
+        })
+    }
+}
+
+/// The scheduler's name for a step's job: `lw_<feed>_<cycle>_<lead>h[_m<member>]`.
+pub fn job_name(tag: &StepTag) -> String {
+    let mut n = format!("lw_{}_{}_{:03}h", tag.feed, tag.cycle, tag.lead);
+    if let Some(m) = tag.member {
+        n.push_str(&format!("_m{m:02}"));
+    }
+    n
+}
+
+/// A new staging directory for a run of a step: `<out>/<feed>/.jobs/<name>_a<attempt>_<ms>`.
+pub fn staging_dir(out_dir: &Path, tag: &StepTag, attempt: u32) -> PathBuf {
+    let ms = chrono::Utc::now().timestamp_millis();
+    let grid: String = tag.grid.chars().take(8).collect();
+    out_dir
+        .join(&tag.feed)
+        .join(JOBS_DIR)
+        .join(format!("{}_{grid}_a{attempt}_{ms}", job_name(tag)))
+}
+
+fn shell_quote(s: &str) -> String {
+    format!("'{}'", s.replace('\'', r"'\''"))
+}
+
+/// Write a job's spec and script into its staging directory.
+pub fn prepare(
+    dir: &Path,
+    spec: &JobSpec,
+    program: &Path,
+    setup: &[String],
+) -> std::io::Result<()> {
+    std::fs::create_dir_all(dir)?;
+    let text = serde_json::to_vec_pretty(spec).map_err(std::io::Error::other)?;
+    publish::write_atomic(&dir.join(SPEC), &text)?;
+    let mut script = String::from("#!/bin/sh\n");
+    script.push_str(&format!(
+        "# leeward step job: feed {}, cycle {}, lead {} h, attempt {}.\n",
+        spec.tag.feed, spec.tag.cycle, spec.tag.lead, spec.attempt
+    ));
+    script.push_str("# Written by leeward serve; the service publishes what it leaves here.\n");
+    for line in setup {
+        script.push_str(line);
+        script.push('\n');
+    }
+    script.push_str(&format!(
+        "exec {} process --job {}\n",
+        shell_quote(&program.display().to_string()),
+        shell_quote(&dir.display().to_string())
+    ));
+    publish::write_atomic(&dir.join(SCRIPT), script.as_bytes())?;
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(dir.join(SCRIPT), std::fs::Permissions::from_mode(0o755))
+}
+
+/// A file the job left in its staging directory, and where it goes.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StagedFile {
+    /// In the staging directory.
+    pub staged: PathBuf,
+    /// Its place in the output tree.
+    pub target: PathBuf,
+    /// Size, bytes.
+    pub bytes: u64,
+    /// SHA-256, hex.
+    pub sha256: String,
+}
+
+/// How the job ended.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "outcome", rename_all = "snake_case")]
+pub enum Ended {
+    /// Products made and staged.
+    Made {
+        /// The step's product file.
+        product: StagedFile,
+        /// Its quicklook images.
+        images: Vec<StagedFile>,
+        /// Copies of files already published with this step's additions.
+        updated: Vec<StagedFile>,
+    },
+    /// Nothing could be made from the input (not retried).
+    InputFailed {
+        /// Why.
+        reason: String,
+    },
+    /// The products could not be written (retried).
+    OutputFailed {
+        /// Why.
+        reason: String,
+    },
+    /// An input could not be read as catalogued (retried).
+    Vanished {
+        /// The file.
+        file: PathBuf,
+        /// Why.
+        reason: String,
+    },
+    /// A defect in leeward (a caught panic; not retried).
+    Internal {
+        /// What.
+        reason: String,
+    },
+}
+
+/// The pipeline's report, as far as the manifest and the log need it.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct JobReport {
+    /// Grid description.
+    pub grid: String,
+    /// What was missing.
+    pub missing: Vec<String>,
+    /// Variables written.
+    pub products: Vec<String>,
+    /// Input problems.
+    pub issues: Vec<Issue>,
+    /// Seconds: total, decode, diagnostics, write, changes.
+    pub seconds: [f64; 5],
+}
+
+impl JobReport {
+    fn of(rep: &StepReport) -> JobReport {
+        JobReport {
+            grid: rep.grid.clone(),
+            missing: rep.missing.clone(),
+            products: rep.products.clone(),
+            issues: rep.issues.clone(),
+            seconds: [
+                rep.seconds,
+                rep.decode_seconds,
+                rep.compute_seconds,
+                rep.write_seconds,
+                rep.changes_seconds,
+            ],
+        }
+    }
+
+    /// Back into a report for the manifest, with the published paths.
+    pub fn report(&self, output: &Path, images: Vec<PathBuf>, updated: Vec<PathBuf>) -> StepReport {
+        StepReport {
+            grid: self.grid.clone(),
+            missing: self.missing.clone(),
+            products: self.products.clone(),
+            issues: self.issues.clone(),
+            seconds: self.seconds[0],
+            decode_seconds: self.seconds[1],
+            compute_seconds: self.seconds[2],
+            write_seconds: self.seconds[3],
+            changes_seconds: self.seconds[4],
+            output: Some(output.to_path_buf()),
+            images,
+            updated,
+            ..StepReport::default()
+        }
+    }
+}
+
+/// The result record.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct JobResult {
+    /// Format of this record.
+    pub result_version: u32,
+    /// The step.
+    pub tag: StepTag,
+    /// The run of the step on the scheduler (from the spec).
+    pub attempt: u32,
+    /// `SLURM_JOB_ID`, when run by Slurm.
+    pub job_id: Option<String>,
+    /// `SLURM_RESTART_COUNT`: how often the scheduler requeued this job.
+    pub restarts: u32,
+    /// The node.
+    pub host: String,
+    /// When the job finished, UTC.
+    pub finished_at: String,
+    /// How it ended.
+    #[serde(flatten)]
+    pub ended: Ended,
+    /// The pipeline's report.
+    pub report: JobReport,
+}
+
+fn host_name() -> String {
+    std::fs::read_to_string("/proc/sys/kernel/hostname")
+        .map(|s| s.trim().to_string())
+        .unwrap_or_default()
+}
+
+fn staged_file(staged: &Path, target: PathBuf) -> std::io::Result<StagedFile> {
+    let (bytes, sha256) = file_checksum(staged)?;
+    Ok(StagedFile {
+        staged: staged.to_path_buf(),
+        target,
+        bytes,
+        sha256,
+    })
+}
+
+/// Where a staged update of a published file goes back to: the staging
+/// layout is `<stage>/updates/<cycle directory>/<name>` (see [`crate::changes::Run::staged`]).
+fn update_target(stage: &Path, store: &Path, staged: &Path) -> Option<PathBuf> {
+    let rel = staged.strip_prefix(stage.join("updates")).ok()?;
+    let mut parts = rel.components();
+    let cycle = parts.next()?.as_os_str();
+    let name = parts.next()?.as_os_str();
+    if parts.next().is_some() {
+        return None;
+    }
+    Some(store.join(cycle).join(name))
+}
+
+/// The job's side: `leeward process --job DIR`. Returns the exit code: 0 when
+/// a result record was written (whatever it says) or there was nothing to do.
+pub fn run_in_job(dir: &Path) -> u8 {
+    let spec_path = dir.join(SPEC);
+    let text = match std::fs::read(&spec_path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            if dir.join(CLAIMED).exists() {
+                eprintln!(
+                    "leeward: {}: the service has already taken this step's result; nothing to do",
+                    dir.display()
+                );
+                return 0;
+            }
+            eprintln!("leeward: {}: no job spec here", spec_path.display());
+            return 2;
+        }
+        Err(e) => {
+            eprintln!("leeward: {}: cannot read: {e}", spec_path.display());
+            return 2;
+        }
+    };
+    let spec: JobSpec = match serde_json::from_slice(&text) {
+        Ok(s) => s,
+        Err(e) => {
+            eprintln!("leeward: {}: not a job spec: {e}", spec_path.display());
+            return 2;
+        }
+    };
+    // A requeued job starts from a clean directory: what an earlier run left
+    // (a partial temporary, an old result) goes.
+    if let Ok(rd) = std::fs::read_dir(dir) {
+        for e in rd.flatten() {
+            let name = e.file_name().to_string_lossy().into_owned();
+            if [SPEC, SCRIPT, LOG].contains(&name.as_str()) {
+                continue;
+            }
+            let p = e.path();
+            let _ = if p.is_dir() {
+                std::fs::remove_dir_all(&p)
+            } else {
+                std::fs::remove_file(&p)
+            };
+        }
+    }
+    let threads = std::env::var("SLURM_CPUS_PER_TASK")
+        .ok()
+        .and_then(|s| s.parse::<usize>().ok())
+        .unwrap_or(spec.threads as usize)
+        .max(1);
+    let _ = rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .build_global();
+    let job_id = std::env::var("SLURM_JOB_ID").ok();
+    let restarts = std::env::var("SLURM_RESTART_COUNT")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(0);
+    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, job = ?job_id, restarts, threads, dir = %dir.display(), "step job started");
+    crate::output::quiet_hdf5_errors();
+    let made = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| make(&spec, dir)))
+        .unwrap_or_else(|p| {
+            let what = p
+                .downcast_ref::<&str>()
+                .map(|s| s.to_string())
+                .or_else(|| p.downcast_ref::<String>().cloned())
+                .unwrap_or_else(|| "unknown".into());
+            (
+                Ended::Internal {
+                    reason: format!("internal error (a defect in leeward): {what}"),
+                },
+                JobReport::default(),
+            )
+        });
+    let result = JobResult {
+        result_version: 1,
+        tag: spec.tag.clone(),
+        attempt: spec.attempt,
+        job_id,
+        restarts,
+        host: host_name(),
+        finished_at: chrono::Utc::now()
+            .format("%Y-%m-%dT%H:%M:%S%.3fZ")
+            .to_string(),
+        ended: made.0,
+        report: made.1,
+    };
+    let text = match serde_json::to_vec_pretty(&result) {
+        Ok(t) => t,
+        Err(e) => {
+            eprintln!("leeward: cannot encode the result record: {e}");
+            return 1;
+        }
+    };
+    if let Err(e) = publish::write_atomic(&dir.join(RESULT), &text) {
+        eprintln!(
+            "leeward: cannot write the result record {}: {e}",
+            dir.join(RESULT).display()
+        );
+        return 1;
+    }
+    let what = match &result.ended {
+        Ended::Made { .. } => "made",
+        Ended::InputFailed { .. } => "input failed",
+        Ended::OutputFailed { .. } => "output failed",
+        Ended::Vanished { .. } => "input vanished",
+        Ended::Internal { .. } => "internal error",
+    };
+    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, outcome = what, seconds = result.report.seconds[0], "step job finished");
+    0
+}
+
+fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
+    let Some(key) = spec.key() else {
+        return (
+            Ended::Internal {
+                reason: "the job spec's times or grid key do not parse".into(),
+            },
+            JobReport::default(),
+        );
+    };
+    let (step, inputs) = match super::daemon::load_step(&spec.contributions(), &key) {
+        Ok(Some(x)) => x,
+        Ok(None) => {
+            return (
+                Ended::InputFailed {
+                    reason: "the step's fields are no longer in its files".into(),
+                },
+                JobReport::default(),
+            )
+        }
+        Err((file, reason)) => return (Ended::Vanished { file, reason }, JobReport::default()),
+    };
+    let dest = Destination {
+        store: &spec.store,
+        dir: &spec.dir,
+        lock: None,
+        on_published: None,
+        stage: Some(stage),
+    };
+    let rep = run_step(&step, &inputs, &spec.config, &dest, spec.suffix);
+    let report = JobReport::of(&rep);
+    if rep.output_failed {
+        let reason = rep.skipped.clone().unwrap_or_else(|| "write failed".into());
+        return (Ended::OutputFailed { reason }, report);
+    }
+    let Some(own) = rep.output.clone() else {
+        let reason = rep
+            .skipped
+            .clone()
+            .unwrap_or_else(|| "nothing could be made from the input".into());
+        return (Ended::InputFailed { reason }, report);
+    };
+    let staged = || -> std::io::Result<Ended> {
+        let name = own.file_name().unwrap_or_default();
+        let product = staged_file(&own, spec.dir.join(name))?;
+        let mut images = Vec::new();
+        for i in &rep.images {
+            images.push(staged_file(
+                i,
+                spec.dir.join(i.file_name().unwrap_or_default()),
+            )?);
+        }
+        let mut updated = Vec::new();
+        for u in rep.updated.iter().filter(|u| **u != own) {
+            let Some(target) = update_target(stage, &spec.store, u) else {
+                return Err(std::io::Error::other(format!(
+                    "{}: an update outside the staging layout",
+                    u.display()
+                )));
+            };
+            updated.push(staged_file(u, target)?);
+        }
+        Ok(Ended::Made {
+            product,
+            images,
+            updated,
+        })
+    };
+    match staged() {
+        Ok(e) => (e, report),
+        Err(e) => (
+            Ended::OutputFailed {
+                reason: format!("staged files cannot be read back: {e}"),
+            },
+            report,
+        ),
+    }
+}
+
+/// What became of a job's result when the service took it.
+pub enum Taken {
+    /// Published: the product, its manifest and the report.
+    Published {
+        /// Product.
+        path: PathBuf,
+        /// Manifest.
+        manifest: PathBuf,
+        /// Seconds from the last input to now.
+        latency: f64,
+        /// The report.
+        report: Box<StepReport>,
+        /// The job's own account.
+        result: Box<JobResult>,
+    },
+    /// The job said it could not make the step.
+    Ended(Box<JobResult>),
+    /// The result is unusable (unreadable, a staged file missing or changed):
+    /// the step runs again.
+    Unusable(String),
+}
+
+/// Take a job's result: check each staged file against the record, rename
+/// them into place, write the manifest, and remove the staging directory.
+/// Runs again safely after a crash part of the way through (a file already
+/// moved is recognised at its target by its checksum).
+pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>) -> Taken {
+    let result: JobResult = match std::fs::read(stage.join(RESULT))
+        .map_err(|e| e.to_string())
+        .and_then(|b| serde_json::from_slice(&b).map_err(|e| e.to_string()))
+    {
+        Ok(r) => r,
+        Err(e) => {
+            return Taken::Unusable(format!(
+                "{}: unreadable result record: {e}",
+                stage.join(RESULT).display()
+            ))
+        }
+    };
+    if result.tag != spec.tag {
+        return Taken::Unusable(format!(
+            "{}: the result is for {}, not {}",
+            stage.join(RESULT).display(),
+            result.tag,
+            spec.tag
+        ));
+    }
+    let Ended::Made {
+        product,
+        images,
+        updated,
+    } = &result.ended
+    else {
+        return Taken::Ended(Box::new(result));
+    };
+    // From here on a job that starts again finds no spec and does nothing.
+    if stage.join(SPEC).exists() {
+        if let Err(e) = std::fs::rename(stage.join(SPEC), stage.join(CLAIMED)) {
+            return Taken::Unusable(format!("{}: cannot take the spec: {e}", stage.display()));
+        }
+    }
+    let expected = spec.product_path();
+    if expected.as_deref() != Some(product.target.as_path()) {
+        return Taken::Unusable(format!(
+            "the job's product {} is not the step's file {}",
+            product.target.display(),
+            expected
+                .map(|p| p.display().to_string())
+                .unwrap_or_default()
+        ));
+    }
+    let all: Vec<&StagedFile> = std::iter::once(product)
+        .chain(images.iter())
+        .chain(updated.iter())
+        .collect();
+    let _publishing = lock
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner);
+    let mut to_move = Vec::new();
+    for f in &all {
+        if !f.staged.starts_with(stage) || !f.target.starts_with(&spec.store) {
+            return Taken::Unusable(format!(
+                "{} -> {}: outside the staging directory or the feed's output tree",
+                f.staged.display(),
+                f.target.display()
+            ));
+        }
+        let check = |p: &Path| file_checksum(p).map(|(n, h)| n == f.bytes && h == f.sha256);
+        match check(&f.staged) {
+            Ok(true) => to_move.push(*f),
+            Ok(false) => {
+                return Taken::Unusable(format!(
+                    "{}: size or SHA-256 differs from the result record",
+                    f.staged.display()
+                ))
+            }
+            Err(_) if check(&f.target).unwrap_or(false) => {} // moved before a restart
+            Err(e) => {
+                return Taken::Unusable(format!("{}: {e}", f.staged.display()));
+            }
+        }
+    }
+    for f in to_move {
+        let dir = f.target.parent().unwrap_or(Path::new("."));
+        let moved = std::fs::create_dir_all(dir)
+            .and_then(|()| std::fs::rename(&f.staged, &f.target))
+            .and_then(|()| std::fs::File::open(dir).and_then(|d| d.sync_all()));
+        if let Err(e) = moved {
+            return Taken::Unusable(format!(
+                "cannot move {} to {}: {e}",
+                f.staged.display(),
+                f.target.display()
+            ));
+        }
+    }
+    let image_paths: Vec<PathBuf> = images.iter().map(|f| f.target.clone()).collect();
+    let updated_paths: Vec<PathBuf> = updated.iter().map(|f| f.target.clone()).collect();
+    let report = result
+        .report
+        .report(&product.target, image_paths, updated_paths.clone());
+    let Some(facts) = spec.facts() else {
+        return Taken::Unusable("the job spec's times do not parse".into());
+    };
+    let manifest = match publish::write_manifest(&product.target, &report, &facts) {
+        Ok(m) => m,
+        Err(e) => {
+            return Taken::Unusable(format!(
+                "cannot write the manifest of {}: {e}",
+                product.target.display()
+            ))
+        }
+    };
+    for u in &updated_paths {
+        if let Err(e) = publish::revise_manifest(u) {
+            warn!(file = %u.display(), error = %e, "manifest of an updated product not revised");
+        }
+    }
+    let latency =
+        (chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - spec.last_input).max(0.0);
+    Taken::Published {
+        path: product.target.clone(),
+        manifest,
+        latency,
+        report: Box::new(report),
+        result: Box::new(result),
+    }
+}
+
+/// Keep a job's log in the state directory (`<state>/job-logs/`) before its
+/// staging directory goes; returns where it is.
+pub fn keep_log(stage: &Path, state_dir: &Path, tag: &StepTag, job: &str) -> Option<PathBuf> {
+    let from = stage.join(LOG);
+    if !from.exists() {
+        return None;
+    }
+    let dir = state_dir.join("job-logs");
+    std::fs::create_dir_all(&dir).ok()?;
+    let to = dir.join(format!("{}.{job}.log", job_name(tag)));
+    std::fs::copy(&from, &to).ok()?;
+    Some(to)
+}
+
+/// Remove a staging directory, but only one inside a feed's `.jobs`.
+pub fn remove_stage(stage: &Path) {
+    let inside = stage
+        .parent()
+        .and_then(|p| p.file_name())
+        .is_some_and(|n| n == JOBS_DIR);
+    if inside {
+        if let Err(e) = std::fs::remove_dir_all(stage) {
+            if e.kind() != std::io::ErrorKind::NotFound {
+                warn!(dir = %stage.display(), error = %e, "staging directory not removed");
+            }
+        }
+    }
+}
+
+/// A scheduler command that did not do its work.
+#[derive(Debug, Clone, PartialEq)]
+pub enum SchedulerError {
+    /// The command is missing, timed out, or cannot reach the controller.
+    Unreachable(String),
+    /// The controller answered and refused (bad partition, account, limits).
+    Refused(String),
+}
+
+impl std::fmt::Display for SchedulerError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            SchedulerError::Unreachable(s) => write!(f, "scheduler unreachable: {s}"),
+            SchedulerError::Refused(s) => write!(f, "scheduler refused: {s}"),
+        }
+    }
+}
+
+/// What the scheduler says of a job that is no longer queued.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct JobFacts {
+    /// `JobState` (`COMPLETED`, `FAILED`, `CANCELLED`, `TIMEOUT`, `NODE_FAIL`, ...).
+    pub state: String,
+    /// `Reason`.
+    pub reason: String,
+    /// `ExitCode` (`code:signal`).
+    pub exit_code: String,
+}
+
+/// Job states in which the job may still write its staging directory.
+pub fn is_active(state: &str) -> bool {
+    matches!(
+        state,
+        "PENDING"
+            | "RUNNING"
+            | "CONFIGURING"
+            | "REQUEUED"
+            | "REQUEUE_HOLD"
+            | "REQUEUE_FED"
+            | "RESIZING"
+            | "SUSPENDED"
+            | "STOPPED"
+            | "SIGNALING"
+            | "STAGE_OUT"
+    )
+}
+
+/// The Slurm commands, as `[service.slurm]` configures them.
+#[derive(Debug, Clone)]
+pub struct Scheduler {
+    /// The settings.
+    pub cfg: Slurm,
+}
+
+fn run_command(cmd: &str, args: &[String], timeout: Duration) -> Result<String, SchedulerError> {
+    let mut child = Command::new(cmd)
+        .args(args)
+        .stdin(Stdio::null())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .map_err(|e| SchedulerError::Unreachable(format!("cannot run {cmd}: {e}")))?;
+    let t0 = Instant::now();
+    let status = loop {
+        match child.try_wait() {
+            Ok(Some(s)) => break s,
+            Ok(None) if t0.elapsed() < timeout => std::thread::sleep(Duration::from_millis(10)),
+            Ok(None) => {
+                let _ = child.kill();
+                let _ = child.wait();
+                return Err(SchedulerError::Unreachable(format!(
+                    "{cmd} did not answer within {} s",
+                    timeout.as_secs_f64()
+                )));
+            }
+            Err(e) => return Err(SchedulerError::Unreachable(format!("{cmd}: {e}"))),
+        }
+    };
+    let mut out = String::new();
+    let mut err = String::new();
+    if let Some(mut o) = child.stdout.take() {
+        let _ = o.read_to_string(&mut out);
+    }
+    if let Some(mut e) = child.stderr.take() {
+        let _ = e.read_to_string(&mut err);
+    }
+    if status.success() {
+        return Ok(out);
+    }
+    let msg = format!("{cmd} exited with {status}: {}", err.trim());
+    let lower = err.to_ascii_lowercase();
+    let unreachable = [
+        "unable to contact slurm controller",
+        "socket timed out",
+        "connection refused",
+        "communication connection failure",
+        "slurm_load_jobs error",
+        "munge",
+        "zero bytes were transmitted",
+    ]
+    .iter()
+    .any(|k| lower.contains(k));
+    Err(if unreachable {
+        SchedulerError::Unreachable(msg)
+    } else {
+        SchedulerError::Refused(msg)
+    })
+}
+
+impl Scheduler {
+    fn timeout(&self) -> Duration {
+        Duration::from_secs_f64(self.cfg.command_timeout_s)
+    }
+
+    /// The `sbatch` arguments of a step's job.
+    pub fn sbatch_args(&self, tag: &StepTag, stage: &Path) -> Vec<String> {
+        let c = &self.cfg;
+        let mut a = vec![
+            "--parsable".to_string(),
+            format!("--job-name={}", job_name(tag)),
+            format!("--output={}", stage.join(LOG).display()),
+            "--open-mode=append".into(),
+            format!("--chdir={}", stage.display()),
+            "--requeue".into(),
+            "--nodes=1".into(),
+            "--ntasks=1".into(),
+            format!("--cpus-per-task={}", c.cpus_per_step),
+            format!("--mem={}", c.memory),
+            format!("--time={}", c.time_limit),
+        ];
+        if !c.partition.is_empty() {
+            a.push(format!("--partition={}", c.partition));
+        }
+        if !c.account.is_empty() {
+            a.push(format!("--account={}", c.account));
+        }
+        a.extend(c.sbatch_args.iter().cloned());
+        a.push(stage.join(SCRIPT).display().to_string());
+        a
+    }
+
+    /// Submit a prepared staging directory; the job id.
+    pub fn submit(&self, tag: &StepTag, stage: &Path) -> Result<String, SchedulerError> {
+        let out = run_command("sbatch", &self.sbatch_args(tag, stage), self.timeout())?;
+        let id = out
+            .trim()
+            .split(';')
+            .next()
+            .unwrap_or("")
+            .trim()
+            .to_string();
+        if id.is_empty() || !id.chars().all(|c| c.is_ascii_digit() || c == '_') {
+            return Err(SchedulerError::Refused(format!(
+                "sbatch gave no job id (it printed {:?})",
+                out.trim()
+            )));
+        }
+        Ok(id)
+    }
+
+    /// The service user's jobs the scheduler still holds: id -> (state, reason).
+    pub fn queued(&self) -> Result<HashMap<String, (String, String)>, SchedulerError> {
+        let args: Vec<String> = ["--me", "--noheader", "--states=all", "--format=%i|%T|%r"]
+            .iter()
+            .map(|s| s.to_string())
+            .collect();
+        let out = run_command("squeue", &args, self.timeout())?;
+        Ok(out
+            .lines()
+            .filter_map(|l| {
+                let mut p = l.trim().splitn(3, '|');
+                Some((
+                    p.next()?.to_string(),
+                    (p.next()?.to_string(), p.next().unwrap_or("").to_string()),
+                ))
+            })
+            .collect())
+    }
+
+    /// What the scheduler says of a job that has ended (`scontrol show job`,
+    /// then `sacct`): its state, reason and exit code; `None` if neither knows it.
+    pub fn facts(&self, job: &str) -> Option<JobFacts> {
+        let args = vec![
+            "show".to_string(),
+            "job".into(),
+            "--oneliner".into(),
+            job.into(),
+        ];
+        if let Ok(out) = run_command("scontrol", &args, self.timeout()) {
+            let get = |k: &str| {
+                out.split_whitespace()
+                    .find_map(|w| w.strip_prefix(&format!("{k}=")).map(str::to_string))
+                    .unwrap_or_default()
+            };
+            let state = get("JobState");
+            if !state.is_empty() {
+                return Some(JobFacts {
+                    state,
+                    reason: get("Reason"),
+                    exit_code: get("ExitCode"),
+                });
+            }
+        }
+        let args: Vec<String> = ["-n", "-P", "-X", "-o", "State,ExitCode", "-j", job]
+            .iter()
+            .map(|s| s.to_string())
+            .collect();
+        let out = run_command("sacct", &args, self.timeout()).ok()?;
+        let line = out.lines().rev().find(|l| !l.trim().is_empty())?;
+        let mut p = line.split('|');
+        Some(JobFacts {
+            state: p.next()?.split_whitespace().next()?.to_string(),
+            reason: String::new(),
+            exit_code: p.next().unwrap_or("").to_string(),
+        })
+    }
+
+    /// Cancel a job (best effort).
+    pub fn cancel(&self, job: &str) {
+        let _ = run_command("scancel", &[job.to_string()], self.timeout());
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn tag() -> StepTag {
+        StepTag {
+            feed: "alps".into(),
+            cycle: "20260314T0000Z".into(),
+            lead: 24,
+            member: Some(3),
+            grid: "0123456789abcdef".into(),
+        }
+    }
+
+    #[test]
+    fn names_carry_feed_cycle_step_and_member() {
+        assert_eq!(job_name(&tag()), "lw_alps_20260314T0000Z_024h_m03");
+        let d = staging_dir(Path::new("/out"), &tag(), 2);
+        let n = d.file_name().unwrap().to_string_lossy().into_owned();
+        assert!(
+            n.starts_with("lw_alps_20260314T0000Z_024h_m03_01234567_a2_"),
+            "{n}"
+        );
+        assert_eq!(d.parent().unwrap(), Path::new("/out/alps/.jobs"));
+    }
+
+    #[test]
+    fn staged_updates_map_back_to_their_cycle_directory() {
+        let stage = Path::new("/out/alps/.jobs/x");
+        let run = crate::changes::Run {
+            out_dir: Path::new("/out/alps"),
+            centre: 98,
+            grid_id: "g",
+            member: None,
+            reference_time: NaiveDateTime::default(),
+            valid_time: NaiveDateTime::default(),
+            stage: Some(stage),
+        };
+        let published = Path::new("/out/alps/20260314T0000Z/a_030h.nc");
+        let staged = run.staged(published);
+        assert_eq!(
+            staged,
+            Path::new("/out/alps/.jobs/x/updates/20260314T0000Z/a_030h.nc")
+        );
+        assert_eq!(
+            update_target(stage, Path::new("/out/alps"), &staged).as_deref(),
+            Some(published)
+        );
+        // The step's own file, in the staging directory, is written in place.
+        let own = stage.join("a_024h.nc");
+        assert_eq!(run.staged(&own), own);
+    }
+
+    #[test]
+    fn the_job_script_quotes_paths_and_runs_the_setup_first() {
+        let dir = std::env::temp_dir().join(format!("leeward-batch-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        let spec = JobSpec::new(
+            &tag(),
+            1,
+            &StepKey {
+                centre: 98,
+                reference_time: NaiveDateTime::default(),
+                valid_time: NaiveDateTime::default(),
+                member: Some(3),
+                grid_key: vec![1, 2, 255],
+            },
+            &[],
+            Path::new("/out/alps"),
+            Path::new("/out/alps/19700101T0000Z"),
+            None,
+            false,
+            0.0,
+            Vec::new(),
+            2,
+            Config::default(),
+        );
+        prepare(
+            &dir,
+            &spec,
+            Path::new("/opt/it's/leeward"),
+            &["module load netcdf".into()],
+        )
+        .unwrap();
+        let script = std::fs::read_to_string(dir.join(SCRIPT)).unwrap();
+        let lines: Vec<&str> = script.lines().collect();
+        assert_eq!(lines[0], "#!/bin/sh");
+        assert_eq!(lines[3], "module load netcdf");
+        assert_eq!(
+            lines[4],
+            format!(
+                "exec '/opt/it'\\''s/leeward' process --job '{}'",
+                dir.display()
+            )
+        );
+        let back: JobSpec =
+            serde_json::from_slice(&std::fs::read(dir.join(SPEC)).unwrap()).unwrap();
+        assert_eq!(back, spec);
+        assert_eq!(back.key().unwrap().grid_key, vec![1, 2, 255]);
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    #[test]
+    fn sbatch_gets_the_configured_resources() {
+        let s = Scheduler {
+            cfg: Slurm {
+                partition: "post".into(),
+                account: "nwp".into(),
+                sbatch_args: vec!["--qos=high".into()],
+                ..Slurm::default()
+            },
+        };
+        let a = s.sbatch_args(&tag(), Path::new("/st"));
+        for want in [
+            "--parsable",
+            "--job-name=lw_alps_20260314T0000Z_024h_m03",
+            "--output=/st/job.log",
+            "--cpus-per-task=2",
+            "--mem=4G",
+            "--time=00:30:00",
+            "--partition=post",
+            "--account=nwp",
+            "--qos=high",
+        ] {
+            assert!(a.iter().any(|x| x == want), "{want} not in {a:?}");
+        }
+        assert_eq!(a.last().unwrap(), "/st/job.sh");
+    }
+
+    #[test]
+    fn a_missing_command_is_unreachable_and_a_refusal_is_not() {
+        let t = Duration::from_secs(5);
+        let e = run_command("leeward-no-such-command", &[], t).unwrap_err();
+        assert!(matches!(e, SchedulerError::Unreachable(_)), "{e:?}");
+        let args = vec![
+            "-c".to_string(),
+            "echo 'sbatch: error: Invalid partition name specified' >&2; exit 1".into(),
+        ];
+        let e = run_command("sh", &args, t).unwrap_err();
+        assert!(matches!(e, SchedulerError::Refused(_)), "{e:?}");
+        let args = vec!["-c".to_string(), "echo 'sbatch: error: Batch job submission failed: Unable to contact slurm controller (connect failure)' >&2; exit 1".into()];
+        let e = run_command("sh", &args, t).unwrap_err();
+        assert!(matches!(e, SchedulerError::Unreachable(_)), "{e:?}");
+        let args = vec!["-c".to_string(), "sleep 5".into()];
+        let e = run_command("sh", &args, Duration::from_millis(200)).unwrap_err();
+        assert!(matches!(e, SchedulerError::Unreachable(_)), "{e:?}");
+    }
+}
