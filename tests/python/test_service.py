@@ -235,7 +235,11 @@ class Reader(threading.Thread):
     def run(self):
         while not self.stop_flag:
             for p in list(self.out.rglob("*")) if self.out.exists() else []:
-                if p.name.startswith(".") or not p.is_file():
+                # Hidden names and hidden directories (a batch job's staging
+                # directory) are leeward's work in progress, not products.
+                if any(part.startswith(".") for part in p.relative_to(self.out).parts):
+                    continue
+                if not p.is_file():
                     continue
                 try:
                     if p.suffix == ".nc":
