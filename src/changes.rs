@@ -18,7 +18,7 @@ use ndarray::Array3;
 use tracing::{info, warn};
 
 use crate::output::cf::{Product, Vertical};
-use crate::output::store::{add_variables, add_variables_to, published, read_field, Published};
+use crate::output::store::{add_variables, add_variables_to, published_where, read_field, Published};
 use crate::output::variables::VarSpec;
 
 /// What identifies the model run a step belongs to.
@@ -140,12 +140,13 @@ pub fn within_cycle(
     thick: (&[f64], &Array3<f32>),
     intervals: &[u32],
 ) -> Vec<Product> {
-    let files = published(
+    let files = published_where(
         run.out_dir,
         run.centre,
         run.grid_id,
         run.member,
         run.reference_time,
+        |r, v| r == run.reference_time && v < run.valid_time,
     );
     let mut out = Vec::new();
     for &h in intervals {
@@ -175,12 +176,13 @@ pub fn within_cycle(
 
 /// Run-to-run changes for this step from the previous cycle's published file at the same valid time.
 pub fn run_to_run(run: &Run<'_>, fields: &Fields<'_>) -> Vec<Product> {
-    let files = published(
+    let files = published_where(
         run.out_dir,
         run.centre,
         run.grid_id,
         run.member,
         run.reference_time,
+        |r, v| v == run.valid_time && r < run.reference_time,
     );
     let Some(prev) = files
         .iter()
@@ -272,12 +274,16 @@ pub fn update_later(
     deflate: i32,
     nsb: u32,
 ) -> Vec<PathBuf> {
-    let files = published(
+    let files = published_where(
         run.out_dir,
         run.centre,
         run.grid_id,
         run.member,
         run.reference_time,
+        |r, v| {
+            (r == run.reference_time && v > run.valid_time)
+                || (v == run.valid_time && r > run.reference_time)
+        },
     );
     let mut updated = Vec::new();
     if let Some((coords, this)) = thick {
@@ -547,12 +553,13 @@ pub fn update_budgets(
     deflate: i32,
     nsb: u32,
 ) -> Vec<PathBuf> {
-    let files = published(
+    let files = published_where(
         run.out_dir,
         run.centre,
         run.grid_id,
         run.member,
         run.reference_time,
+        |r, _| r == run.reference_time,
     );
     let same_cycle: Vec<&Published> = files
         .iter()

@@ -76,6 +76,47 @@ pub fn published(
     member: Option<u8>,
     near: NaiveDateTime,
 ) -> Vec<Published> {
+    published_where(dir, centre, grid_id, member, near, |_, _| true)
+}
+
+/// What a product's file name says: cycle, valid time and member (see
+/// [`super::cf::step_file_name`]: `<centre>_<cycle>_<lead>h[_g<n>][_m<member>].nc`),
+/// if it is a name leeward gives and its centre is `centre`.
+fn name_says(name: &str, centre: u16) -> Option<(NaiveDateTime, NaiveDateTime, Option<u8>)> {
+    let stem = name.strip_suffix(".nc")?;
+    let mut parts: Vec<&str> = stem.split('_').collect();
+    let mut member = None;
+    if let Some(m) = parts.last().and_then(|p| p.strip_prefix('m')) {
+        if m.len() == 2 && m.bytes().all(|b| b.is_ascii_digit()) {
+            member = m.parse().ok();
+            parts.pop();
+        }
+    }
+    if let Some(g) = parts.last().and_then(|p| p.strip_prefix('g')) {
+        if !g.is_empty() && g.bytes().all(|b| b.is_ascii_digit()) {
+            parts.pop();
+        }
+    }
+    let lead: i64 = parts.pop()?.strip_suffix('h')?.parse().ok()?;
+    let cycle = NaiveDateTime::parse_from_str(parts.pop()?, "%Y%m%dT%H%MZ").ok()?;
+    if parts.join("_") != super::cf::centre_short_name(centre) {
+        return None;
+    }
+    Some((cycle, cycle + TimeDelta::try_hours(lead)?, member))
+}
+
+/// [`published`], opening only the files whose names say a cycle and valid
+/// time that `want` accepts (and the member asked for): a store of many
+/// cycles and members is looked through by name, not file by file. A file
+/// whose name says nothing is opened and judged by its attributes.
+pub fn published_where(
+    dir: &Path,
+    centre: u16,
+    grid_id: &str,
+    member: Option<u8>,
+    near: NaiveDateTime,
+    want: impl Fn(NaiveDateTime, NaiveDateTime) -> bool,
+) -> Vec<Published> {
     let mut candidates = Vec::new();
     let window = TimeDelta::try_days(LOOKUP_DAYS).unwrap_or_default();
     let Ok(rd) = std::fs::read_dir(dir) else {
@@ -103,6 +144,15 @@ pub fn published(
     }
     let mut out = Vec::new();
     for path in candidates {
+        let name = path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        match name_says(&name, centre) {
+            Some((r, v, m)) if m != member || !want(r, v) => continue,
+            None if is_leeward_name(&name) => continue, // another centre's
+            _ => {}
+        }
         super::quiet_hdf5_errors();
         let Ok(f) = netcdf::open(&path) else { continue };
         let same = text_attr(&f, "leeward_grid_id").as_deref() == Some(grid_id)
@@ -111,7 +161,7 @@ pub fn published(
         if !same {
             continue;
         }
-        if let Some((reference_time, valid_time)) = times(&f) {
+        if let Some((reference_time, valid_time)) = times(&f).filter(|(r, v)| want(*r, *v)) {
             out.push(Published {
                 path,
                 reference_time,
@@ -121,6 +171,16 @@ pub fn published(
     }
     out.sort_by_key(|p| (p.reference_time, p.valid_time));
     out
+}
+
+/// A name of leeward's shape for some centre.
+fn is_leeward_name(name: &str) -> bool {
+    static RE: std::sync::OnceLock<Option<regex::Regex>> = std::sync::OnceLock::new();
+    RE.get_or_init(|| {
+        regex::Regex::new(r"^[A-Za-z0-9]+_\d{8}T\d{4}Z_\d{3,}h(_g\d+)?(_m\d{2})?\.nc$").ok()
+    })
+    .as_ref()
+    .is_some_and(|re| re.is_match(name))
 }
 
 /// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
@@ -315,4 +375,26 @@ pub fn add_variables_to(
         let _ = std::fs::remove_file(&tmp);
     }
     result
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn names_say_cycle_valid_time_and_member() {
+        let t = |s: &str| NaiveDateTime::parse_from_str(s, "%Y%m%dT%H%M").unwrap();
+        assert_eq!(
+            name_says("c255_20260314T0000Z_024h.nc", 255),
+            Some((t("20260314T0000"), t("20260315T0000"), None))
+        );
+        assert_eq!(
+            name_says("ecmwf_20260314T1200Z_240h_g2_m07.nc", 98),
+            Some((t("20260314T1200"), t("20260324T1200"), Some(7)))
+        );
+        assert_eq!(name_says("ecmwf_20260314T1200Z_240h.nc", 7), None);
+        assert!(is_leeward_name("ecmwf_20260314T1200Z_240h.nc"));
+        assert_eq!(name_says("analysis.nc", 255), None);
+        assert!(!is_leeward_name("analysis.nc"));
+    }
 }

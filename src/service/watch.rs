@@ -17,7 +17,7 @@ use std::time::{Duration, Instant, SystemTime};
 use notify::event::{AccessKind, AccessMode, ModifyKind, RenameMode};
 use notify::{EventKind, RecursiveMode, Watcher as _};
 use thiserror::Error;
-use tracing::warn;
+use tracing::{debug, warn};
 
 /// Why watching could not start.
 #[derive(Debug, Error)]
@@ -119,11 +119,14 @@ pub fn watch(
                 return;
             }
             if last_scan.is_none_or(|t| t.elapsed() >= scan_every) {
-                last_scan = Some(Instant::now());
+                let t_scan = Instant::now();
+                last_scan = Some(t_scan);
                 match std::fs::read_dir(&dir) {
                     Ok(rd) => {
+                        let mut present = std::collections::HashSet::new();
                         for e in rd.flatten() {
                             let p = e.path();
+                            present.insert(p.clone());
                             if consider(&p) && !cands.contains_key(&p) {
                                 if let Some((size, mtime)) = stat(&p) {
                                     if emitted.get(&p) != Some(&(size, mtime)) {
@@ -140,6 +143,10 @@ pub fn watch(
                                 }
                             }
                         }
+                        // Files gone from the directory are forgotten, so that
+                        // months of deliveries do not accumulate here.
+                        emitted.retain(|p, _| present.contains(p));
+                        debug!(dir = %dir.display(), files = present.len(), pending = cands.len(), seconds = t_scan.elapsed().as_secs_f64(), "incoming directory scanned");
                     }
                     Err(e) => {
                         warn!(dir = %dir.display(), error = %e, "cannot scan the incoming directory")
