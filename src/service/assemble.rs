@@ -213,12 +213,11 @@ impl Assembly {
         now: Instant,
         timeout_s: f64,
     ) -> Vec<StepTag> {
-        let mut out = Vec::new();
-        let tags: Vec<StepTag> = self.steps.keys().cloned().collect();
-        for tag in tags {
-            let Some(p) = self.steps.get(&tag) else {
-                continue;
-            };
+        // One pass over the steps without copying them; only the few that
+        // change phase are named (this runs every turn of the main loop, with
+        // thousands of steps in hand during a backlog).
+        let mut changes: Vec<(StepTag, Phase)> = Vec::new();
+        for (tag, p) in &self.steps {
             let Some(rule) = rules.iter().find(|r| r.feed.name == tag.feed) else {
                 continue;
             };
@@ -235,7 +234,13 @@ impl Assembly {
                 Phase::Retry { at, partial } if at <= now => Some(Phase::Ready { partial }),
                 _ => None,
             };
-            if let (Some(n), Some(p)) = (next, self.steps.get_mut(&tag)) {
+            if let Some(n) = next {
+                changes.push((tag.clone(), n));
+            }
+        }
+        let mut out = Vec::with_capacity(changes.len());
+        for (tag, n) in changes {
+            if let Some(p) = self.steps.get_mut(&tag) {
                 p.phase = n;
                 out.push(tag);
             }
@@ -264,7 +269,7 @@ impl Assembly {
             .steps
             .values()
             .filter(|p| {
-                matches!(p.phase, Phase::Ready { .. }) && !running.contains(&p.tag) && may(p)
+                matches!(p.phase, Phase::Ready { .. }) && may(p) && !running.contains(&p.tag)
             })
             .collect();
         let cycle = |p: &Pending| -> NaiveDateTime { p.key.reference_time };

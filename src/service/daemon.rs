@@ -917,6 +917,10 @@ impl Daemon {
         let max_jobs = self.cfg.service.slurm.max_jobs as usize;
         let fallback = self.cfg.service.slurm.when_unreachable == Unreachable::Local;
         loop {
+            let any_slurm = self.rules.iter().any(|r| r.feed.executor == Executor::Slurm);
+            if self.running.len() >= workers && (!any_slurm || self.jobs.len() >= max_jobs) {
+                break; // no slot anywhere: do not look through the steps in hand
+            }
             let busy: Vec<StepTag> = self
                 .running
                 .keys()

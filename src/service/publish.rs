@@ -164,7 +164,22 @@ pub fn write_manifest(
     rep: &StepReport,
     facts: &StepFacts<'_>,
 ) -> std::io::Result<PathBuf> {
-    let (bytes, checksum) = file_checksum(product)?;
+    write_manifest_with(product, rep, facts, None)
+}
+
+/// [`write_manifest`] with the product's size and SHA-256 already known (a
+/// batch job computed them on its node after closing the file), so that the
+/// service does not read the whole file again.
+pub fn write_manifest_with(
+    product: &Path,
+    rep: &StepReport,
+    facts: &StepFacts<'_>,
+    known: Option<(u64, String)>,
+) -> std::io::Result<PathBuf> {
+    let (bytes, checksum) = match known {
+        Some(k) => k,
+        None => file_checksum(product)?,
+    };
     let now = now_iso();
     let latency = (Utc::now().timestamp_millis() as f64 / 1000.0 - facts.last_input).max(0.0);
     let m = Manifest {
@@ -223,6 +238,11 @@ pub fn write_manifest(
 /// added changes to it. A product without a manifest yet is left alone: its
 /// own step writes the manifest, from the file as it is then.
 pub fn revise_manifest(product: &Path) -> std::io::Result<()> {
+    revise_manifest_with(product, None)
+}
+
+/// [`revise_manifest`] with the product's size and SHA-256 already known.
+pub fn revise_manifest_with(product: &Path, known: Option<(u64, String)>) -> std::io::Result<()> {
     let path = manifest_path(product);
     let text = match std::fs::read(&path) {
         Ok(t) => t,
@@ -230,7 +250,10 @@ pub fn revise_manifest(product: &Path) -> std::io::Result<()> {
         Err(e) => return Err(e),
     };
     let mut m: Manifest = serde_json::from_slice(&text).map_err(std::io::Error::other)?;
-    let (bytes, checksum) = file_checksum(product)?;
+    let (bytes, checksum) = match known {
+        Some(k) => k,
+        None => file_checksum(product)?,
+    };
     m.product_bytes = bytes;
     m.product_checksum = checksum;
     m.variables = variables_of(product);

@@ -109,6 +109,7 @@ pub fn watch(
         let mut cands: HashMap<PathBuf, Candidate> = HashMap::new();
         let mut emitted: HashMap<PathBuf, (u64, Option<SystemTime>)> = HashMap::new();
         let mut last_scan: Option<Instant> = None;
+        let mut last_pass = Instant::now();
         let consider = |p: &Path| {
             p.file_name()
                 .and_then(|n| n.to_str())
@@ -153,8 +154,10 @@ pub fn watch(
                     }
                 }
             }
+            let mut evented = false;
             match ev_rx.recv_timeout(Duration::from_millis(50)) {
                 Ok(Ok(ev)) => {
+                    evented = true;
                     let finished = matches!(
                         ev.kind,
                         EventKind::Access(AccessKind::Close(AccessMode::Write))
@@ -190,6 +193,12 @@ pub fn watch(
                 Err(RecvTimeoutError::Timeout) => {}
                 Err(RecvTimeoutError::Disconnected) => return,
             }
+            // Candidates are looked at again after an event, or every 200 ms:
+            // a backlog of thousands found by a scan is not stat-ed 20 times a second.
+            if !evented && last_pass.elapsed() < Duration::from_millis(200) {
+                continue;
+            }
+            last_pass = Instant::now();
             let mut done = Vec::new();
             for (p, c) in cands.iter_mut() {
                 match stat(p) {

@@ -22,6 +22,7 @@ What is checked, with the reference beside each check:
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import subprocess
@@ -151,6 +152,11 @@ def test_steps_run_as_slurm_jobs_are_published_once_and_identical_to_local(tmp_p
     for r in pubs:
         m = json.loads(Path(r["manifest"]).read_text())
         assert m["state"] == "complete" and m["lead_hours"] == r["step"]["lead"]
+        # The SHA-256 the job computed on its node, as Python's hashlib (FIPS 180-4)
+        # computes it from the published file (later files revised after additions).
+        product = Path(r["manifest"]).parent / m["product"]
+        assert m["product_bytes"] == product.stat().st_size
+        assert m["product_checksum"] == hashlib.sha256(product.read_bytes()).hexdigest()
     assert_same_products(svc.out_files(),
                          {p.name: p for p in local.out_files() if p.suffix == ".nc"})
     # The +12 h step came last: the +18 h file had its 6-hour thickness change
