@@ -18,7 +18,9 @@ use ndarray::Array3;
 use tracing::{info, warn};
 
 use crate::output::cf::{Product, Vertical};
-use crate::output::store::{add_variables, add_variables_to, published_where, read_field, Published};
+use crate::output::store::{
+    add_variables, add_variables_to, published_where, read_field, Published,
+};
 use crate::output::variables::VarSpec;
 
 /// What identifies the model run a step belongs to.

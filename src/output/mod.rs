@@ -32,6 +32,45 @@ pub fn quiet_hdf5_errors() {
     }
 }
 
+/// Cap the memory libhdf5 keeps in its own free lists, for a process that
+/// runs for months: without a cap, blocks freed by every file opened and
+/// written stay on those lists (about 50 KB per step was measured with
+/// heaptrack on a long backlog, growing without bound). Limits in bytes:
+/// 4 MiB over all lists of each kind, 256 KiB per list.
+pub fn limit_hdf5_free_lists() {
+    // SAFETY: H5set_free_list_limits takes six integers and keeps no pointer;
+    // the thread-safe libhdf5 takes its own lock.
+    unsafe {
+        hdf5_metno_sys::h5::H5set_free_list_limits(
+            4 << 20,
+            256 << 10,
+            4 << 20,
+            256 << 10,
+            4 << 20,
+            256 << 10,
+        );
+    }
+}
+
+/// Give the memory on libhdf5's free lists back (after each step of a
+/// long-running service).
+pub fn release_hdf5_free_lists() {
+    // SAFETY: H5garbage_collect takes no argument and keeps no pointer; it
+    // frees only blocks on the free lists, none in use; the thread-safe
+    // libhdf5 takes its own lock.
+    unsafe {
+        hdf5_metno_sys::h5::H5garbage_collect();
+    }
+    // glibc keeps freed pages in the middle of its heaps mapped; a service
+    // that writes and reads thousands of files grows by tens of KB per step
+    // without this (measured on a 10,000-step backlog).
+    // SAFETY: malloc_trim takes a byte count to keep, touches only memory
+    // that is free, and is thread-safe in glibc.
+    unsafe {
+        libc::malloc_trim(0);
+    }
+}
+
 /// Make sure `dir` has room for `bytes` more before libnetcdf starts a file.
 ///
 /// libnetcdf (through libhdf5) does not release a file whose writing failed

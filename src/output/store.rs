@@ -8,6 +8,7 @@
 //! hidden temporary, adds to the copy, fsyncs it and renames it over the
 //! original: a reader sees the old file or the new one, never a mix.
 
+use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 use chrono::{NaiveDateTime, TimeDelta};
@@ -153,15 +154,14 @@ pub fn published_where(
             None if is_leeward_name(&name) => continue, // another centre's
             _ => {}
         }
-        super::quiet_hdf5_errors();
-        let Ok(f) = netcdf::open(&path) else { continue };
-        let same = text_attr(&f, "leeward_grid_id").as_deref() == Some(grid_id)
-            && int_attr(&f, "leeward_centre") == Some(i64::from(centre))
-            && int_attr(&f, "leeward_member") == Some(member.map(i64::from).unwrap_or(-1));
+        let Some(id) = identity(&path) else { continue };
+        let same = id.grid_id.as_deref() == Some(grid_id)
+            && id.centre == Some(i64::from(centre))
+            && id.member == Some(member.map(i64::from).unwrap_or(-1));
         if !same {
             continue;
         }
-        if let Some((reference_time, valid_time)) = times(&f).filter(|(r, v)| want(*r, *v)) {
+        if let Some((reference_time, valid_time)) = id.times.filter(|(r, v)| want(*r, *v)) {
             out.push(Published {
                 path,
                 reference_time,
@@ -171,6 +171,53 @@ pub fn published_where(
     }
     out.sort_by_key(|p| (p.reference_time, p.valid_time));
     out
+}
+
+/// What a published file says it is (its global attributes and times).
+#[derive(Debug, Clone, PartialEq)]
+struct Identity {
+    grid_id: Option<String>,
+    centre: Option<i64>,
+    member: Option<i64>,
+    times: Option<(NaiveDateTime, NaiveDateTime)>,
+}
+
+/// A file's identity, read once per (path, size, mtime) in this process: a
+/// service looking up earlier steps for every new one would otherwise open
+/// the same files again and again (each open costs libhdf5 memory it keeps).
+/// `None` when the file cannot be opened.
+fn identity(path: &Path) -> Option<Identity> {
+    type Cache = HashMap<PathBuf, (u64, Option<std::time::SystemTime>, Identity)>;
+    static CACHE: std::sync::OnceLock<std::sync::Mutex<Cache>> = std::sync::OnceLock::new();
+    let meta = std::fs::metadata(path).ok()?;
+    let (size, mtime) = (meta.len(), meta.modified().ok());
+    let cache = CACHE.get_or_init(Default::default);
+    if let Some((s, m, id)) = cache
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .get(path)
+    {
+        if *s == size && *m == mtime {
+            return Some(id.clone());
+        }
+    }
+    super::quiet_hdf5_errors();
+    let f = netcdf::open(path).ok()?;
+    let id = Identity {
+        grid_id: text_attr(&f, "leeward_grid_id"),
+        centre: int_attr(&f, "leeward_centre"),
+        member: int_attr(&f, "leeward_member"),
+        times: times(&f),
+    };
+    drop(f);
+    let mut c = cache
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner);
+    if c.len() >= 200_000 {
+        c.clear(); // files of months ago; the next lookups fill it again
+    }
+    c.insert(path.to_path_buf(), (size, mtime, id.clone()));
+    Some(id)
 }
 
 /// A name of leeward's shape for some centre.

@@ -735,8 +735,8 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>) -> Taken {
                 ))
             }
             // Moved before a restart: the target must be that very file.
-            Err(_) if file_checksum(&f.target)
-                .is_ok_and(|(n, h)| n == f.bytes && h == f.sha256) => {}
+            Err(_)
+                if file_checksum(&f.target).is_ok_and(|(n, h)| n == f.bytes && h == f.sha256) => {}
             Err(e) => {
                 return Taken::Unusable(format!("{}: {e}", f.staged.display()));
             }

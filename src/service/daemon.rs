@@ -917,7 +917,10 @@ impl Daemon {
         let max_jobs = self.cfg.service.slurm.max_jobs as usize;
         let fallback = self.cfg.service.slurm.when_unreachable == Unreachable::Local;
         loop {
-            let any_slurm = self.rules.iter().any(|r| r.feed.executor == Executor::Slurm);
+            let any_slurm = self
+                .rules
+                .iter()
+                .any(|r| r.feed.executor == Executor::Slurm);
             if self.running.len() >= workers && (!any_slurm || self.jobs.len() >= max_jobs) {
                 break; // no slot anywhere: do not look through the steps in hand
             }
@@ -1060,6 +1063,7 @@ impl Daemon {
                         .unwrap_or_else(|| "unknown".into());
                     JobOutcome::Internal(format!("internal error (a defect in leeward): {what}"))
                 });
+            crate::output::release_hdf5_free_lists();
             let _ = tx.send(JobDone {
                 tag: job.tag.clone(),
                 outcome,
@@ -1155,7 +1159,9 @@ impl Daemon {
                 std::thread::spawn(move || {
                     crate::output::quiet_hdf5_errors();
                     let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                        taken_outcome(batch::take(&spec, &stage, &lock))
+                        let t = taken_outcome(batch::take(&spec, &stage, &lock));
+                        crate::output::release_hdf5_free_lists();
+                        t
                     }))
                     .unwrap_or_else(|_| JobOutcome::BatchRetry {
                         state: "TAKE_FAILED".into(),
@@ -1785,6 +1791,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         // Not fatal: the output may come back (a mount); steps are retried.
         error!(dir = %cfg.service.out_dir.display(), error = %e, "output directory unusable; steps will be retried");
     }
+    crate::output::limit_hdf5_free_lists();
     let removed = publish::clean_temporaries(&cfg.service.out_dir);
     let metrics = Arc::new(Mutex::new(Metrics {
         started: unix_now(),

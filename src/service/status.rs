@@ -26,6 +26,8 @@ pub struct CycleSummary {
     pub partial: usize,
     /// Steps waiting for input (or in hand).
     pub waiting: usize,
+    /// Of the waiting steps, those with a batch job in flight: (lead, job id, attempt).
+    pub on_scheduler: Vec<(i64, String, u32)>,
     /// Steps that produced nothing, with lead and reason.
     pub failed: Vec<(i64, String, String)>,
     /// Leads published, ascending.
@@ -73,6 +75,9 @@ pub fn summarise(state: &State, cycles: usize) -> Vec<CycleSummary> {
         let at = match &st.outcome {
             Outcome::Waiting => {
                 c.waiting += 1;
+                if let Some(j) = &st.job {
+                    c.on_scheduler.push((tag.lead, j.job.clone(), j.attempt));
+                }
                 st.first_seen
             }
             Outcome::Published { partial, at, .. } => {
@@ -188,6 +193,11 @@ pub fn render(state_dir: &Path, r: &Report) -> String {
         ));
         if !c.leads.is_empty() {
             o.push_str(&format!("      published {}\n", leads(&c.leads)));
+        }
+        for (lead, job, attempt) in &c.on_scheduler {
+            o.push_str(&format!(
+                "      +{lead}h on the scheduler: job {job}, attempt {attempt}\n"
+            ));
         }
         for (lead, kind, reason) in &c.failed {
             o.push_str(&format!("      +{lead}h failed ({kind}): {reason}\n"));

@@ -90,6 +90,8 @@ HOST = {
     "cargo": "builds leeward; the test runs the binary already built ($LEEWARD_BIN)",
     "git": "clones or tags the repository",
     "cd": "moves into the fresh clone that `git clone` makes",
+    "squeue": "asks the site's Slurm cluster; test_slurm.py runs the service on a real one",
+    "sacct": "asks the site's Slurm cluster; test_slurm.py runs the service on a real one",
 }
 #: leeward lines of the docs that are not run for real: "doc:line" -> reason. Keep it short.
 NOT_RUN: dict[str, str] = {}

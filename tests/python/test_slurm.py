@@ -32,7 +32,7 @@ from pathlib import Path
 
 import pytest
 
-from conftest import REPO_ROOT
+from conftest import REPO_ROOT, leeward_bin_path
 from test_service import (  # noqa: F401  (the fixture keeps services from outliving a test)
     Reader,
     Service,
@@ -228,6 +228,9 @@ def test_a_coordinator_killed_while_jobs_run_follows_them_again(tmp_path, slurm)
     svc.kill9()
     before = records(svc, "submitted")
     assert [r["step"]["lead"] for r in before] == [0]
+    st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(tmp_path / "state")],
+                        capture_output=True, text=True, timeout=30)
+    assert f"+0h on the scheduler: job {before[0]['job']}, attempt 1" in st.stdout, st.stdout
     svc.start()
     wait_for(lambda: len(svc.published()) == 3, DEADLINE_S, "three steps published")
     time.sleep(1.0)
