@@ -647,6 +647,50 @@ mod tests {
     }
 
     #[test]
+    fn batch_jobs_are_in_flight_from_submission_to_their_end() {
+        let d = dir("jobs");
+        let mut l = Ledger::open(&d).unwrap();
+        let sub = |job: &str, attempt| Record::Submitted {
+            step: tag(6),
+            job: job.into(),
+            staging: format!("/out/m/.jobs/{job}"),
+            attempt,
+            at: 5,
+        };
+        l.append(sub("11", 1)).unwrap();
+        assert_eq!(l.state.steps[&tag(6)].job.as_ref().unwrap().job, "11");
+        l.append(Record::JobEnded {
+            step: tag(6),
+            job: "11".into(),
+            state: "CANCELLED".into(),
+            reason: "scancel".into(),
+            log: None,
+            at: 6,
+        })
+        .unwrap();
+        assert_eq!(l.state.steps[&tag(6)].job, None);
+        l.append(sub("12", 2)).unwrap();
+        drop(l);
+        // After a restart the job in flight and the attempts so far come back.
+        let l = Ledger::open(&d).unwrap();
+        let st = &l.state.steps[&tag(6)];
+        assert_eq!(st.job.as_ref().map(|j| (j.job.as_str(), j.attempt)), Some(("12", 2)));
+        assert_eq!(st.job_attempts, 2);
+        assert_eq!(st.outcome, Outcome::Waiting);
+        let mut l = l;
+        l.append(Record::Published {
+            step: tag(6),
+            path: "p".into(),
+            manifest: "m".into(),
+            partial: false,
+            at: 7,
+        })
+        .unwrap();
+        assert_eq!(l.state.steps[&tag(6)].job, None);
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
     fn reprocess_reopens_the_cycle() {
         let d = dir("reprocess");
         let mut l = Ledger::open(&d).unwrap();
