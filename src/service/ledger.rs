@@ -674,7 +674,10 @@ mod tests {
         // After a restart the job in flight and the attempts so far come back.
         let l = Ledger::open(&d).unwrap();
         let st = &l.state.steps[&tag(6)];
-        assert_eq!(st.job.as_ref().map(|j| (j.job.as_str(), j.attempt)), Some(("12", 2)));
+        assert_eq!(
+            st.job.as_ref().map(|j| (j.job.as_str(), j.attempt)),
+            Some(("12", 2))
+        );
         assert_eq!(st.job_attempts, 2);
         assert_eq!(st.outcome, Outcome::Waiting);
         let mut l = l;
