@@ -29,7 +29,7 @@ use tracing::{info, warn};
 
 use super::assemble::Contribution;
 use super::ledger::StepTag;
-use super::publish::{self, file_checksum, ManifestInput, StepFacts};
+use super::publish::{self, file_checksum, StepFacts};
 use super::settings::Slurm;
 use crate::config::Config;
 use crate::pipeline::{run_step, Destination, Issue, StepKey, StepReport};
@@ -202,24 +202,14 @@ impl JobSpec {
     /// What the manifest needs beyond the report.
     pub fn facts(&self) -> Option<StepFacts<'_>> {
         let key = self.key()?;
-        Some(StepFacts {
-            feed: &self.tag.feed,
-            reference_time: key.reference_time,
-            valid_time: key.valid_time,
-            member: key.member,
-            partial: self.partial,
-            inputs: self
-                .inputs
-                .iter()
-                .map(|i| ManifestInput {
-                    file: i.path.display().to_string(),
-                    bytes: i.size,
-                    checksum: i.checksum.clone(),
-                })
-                .collect(),
-            last_input: self.last_input,
-            not_arrived: self.not_arrived.clone(),
-        })
+        Some(StepFacts::of(
+            &self.tag.feed,
+            &key,
+            self.partial,
+            &self.contributions(),
+            self.last_input,
+            self.not_arrived.clone(),
+        ))
     }
 }
 
@@ -493,14 +483,12 @@ pub fn run_in_job(dir: &Path) -> u8 {
     crate::output::quiet_hdf5_errors();
     let made = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| make(&spec, dir)))
         .unwrap_or_else(|p| {
-            let what = p
-                .downcast_ref::<&str>()
-                .map(|s| s.to_string())
-                .or_else(|| p.downcast_ref::<String>().cloned())
-                .unwrap_or_else(|| "unknown".into());
             (
                 Ended::Internal {
-                    reason: format!("internal error (a defect in leeward): {what}"),
+                    reason: format!(
+                        "internal error (a defect in leeward): {}",
+                        super::daemon::panic_text(&*p)
+                    ),
                 },
                 JobReport::default(),
             )

@@ -21,7 +21,7 @@ use super::assemble::{isobaric, Assembly, Contribution, Phase};
 use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
 use super::ledger::{FailKind, Ledger, Outcome, Record, StepTag};
 use super::metrics::Metrics;
-use super::publish::{self, ManifestInput, StepFacts};
+use super::publish::{self, StepFacts};
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::systemd::{status_line, Notifier};
 use super::watch::{watch, FinishedFiles};
@@ -255,24 +255,14 @@ fn run_job(job: &Job) -> JobOutcome {
     if let Err(e) = std::fs::create_dir_all(&job.dir) {
         return JobOutcome::OutputFailed(format!("cannot create {}: {e}", job.dir.display()));
     }
-    let facts = StepFacts {
-        feed: &job.tag.feed,
-        reference_time: job.key.reference_time,
-        valid_time: job.key.valid_time,
-        member: job.key.member,
-        partial: job.partial,
-        inputs: job
-            .files
-            .iter()
-            .map(|c| ManifestInput {
-                file: c.path.display().to_string(),
-                bytes: c.size,
-                checksum: c.checksum.clone(),
-            })
-            .collect(),
-        last_input: job.last_input,
-        not_arrived: job.not_arrived.clone(),
-    };
+    let facts = StepFacts::of(
+        &job.tag.feed,
+        &job.key,
+        job.partial,
+        &job.files,
+        job.last_input,
+        job.not_arrived.clone(),
+    );
     let written: Mutex<Option<(PathBuf, f64)>> = Mutex::new(None);
     let hook = |rep: &StepReport| -> Result<(), String> {
         let Some(product) = &rep.output else {
@@ -325,6 +315,14 @@ fn run_job(job: &Job) -> JobOutcome {
                 .unwrap_or_else(|| "nothing could be made from the input".into()),
         )
     }
+}
+
+/// What a caught panic said.
+pub(super) fn panic_text(p: &(dyn std::any::Any + Send)) -> String {
+    p.downcast_ref::<&str>()
+        .map(|s| s.to_string())
+        .or_else(|| p.downcast_ref::<String>().cloned())
+        .unwrap_or_else(|| "unknown".into())
 }
 
 /// What a taken batch result means for the step.
@@ -1056,12 +1054,10 @@ impl Daemon {
             crate::output::quiet_hdf5_errors();
             let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_job(&job)))
                 .unwrap_or_else(|p| {
-                    let what = p
-                        .downcast_ref::<&str>()
-                        .map(|s| s.to_string())
-                        .or_else(|| p.downcast_ref::<String>().cloned())
-                        .unwrap_or_else(|| "unknown".into());
-                    JobOutcome::Internal(format!("internal error (a defect in leeward): {what}"))
+                    JobOutcome::Internal(format!(
+                        "internal error (a defect in leeward): {}",
+                        panic_text(&*p)
+                    ))
                 });
             crate::output::release_hdf5_free_lists();
             let _ = tx.send(JobDone {

@@ -158,6 +158,36 @@ pub struct StepFacts<'a> {
     pub not_arrived: Vec<String>,
 }
 
+impl<'a> StepFacts<'a> {
+    /// The facts of a step of `feed` made from `files`.
+    pub fn of(
+        feed: &'a str,
+        key: &crate::pipeline::StepKey,
+        partial: bool,
+        files: &[super::assemble::Contribution],
+        last_input: f64,
+        not_arrived: Vec<String>,
+    ) -> StepFacts<'a> {
+        StepFacts {
+            feed,
+            reference_time: key.reference_time,
+            valid_time: key.valid_time,
+            member: key.member,
+            partial,
+            inputs: files
+                .iter()
+                .map(|c| ManifestInput {
+                    file: c.path.display().to_string(),
+                    bytes: c.size,
+                    checksum: c.checksum.clone(),
+                })
+                .collect(),
+            last_input,
+            not_arrived,
+        }
+    }
+}
+
 /// Write the manifest of a freshly published product.
 pub fn write_manifest(
     product: &Path,
