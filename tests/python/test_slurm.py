@@ -14,6 +14,8 @@ What is checked, with the reference beside each check:
   of the local executor (a second service on the same delivery);
 - `scontrol requeue` and `scancel` of a running job: still published once,
   the cancelled run recorded with Slurm's own state and its log kept;
+- a step whose every run fails: reported failed (kind `job`) with Slurm's
+  state and the kept log, nothing published;
 - kill -9 of the coordinator while a job runs: after the restart the job is
   followed again, nothing is submitted twice and nothing lost;
 - a scheduler that cannot be reached: steps run on the coordinator's own
@@ -214,6 +216,28 @@ def test_a_requeued_and_a_cancelled_job_still_publish_each_step_once(tmp_path, s
     assert any(run[2].startswith("CANCELLED") for run in sacct(slurm, job6))
     assert svc.metric("leeward_scheduler_job_retries_total") == 1
     assert svc.metric("leeward_scheduler_jobs_ended_total", state="CANCELLED") == 1
+    no_stray_files(tmp_path)
+    assert svc.stop() == 0
+
+
+def test_a_step_whose_jobs_all_fail_is_reported_with_slurms_reason_and_the_log(tmp_path, slurm):
+    files = demo_inputs(tmp_path / "gen", "2026031400", [0])
+    svc = slurm_service(tmp_path, slurm,
+                        slurm_extra='max_attempts = 1\nsetup = ["echo job-started", "sleep 4"]').start()
+    deliver_renamed(files[0].read_bytes(), tmp_path / "in" / files[0].name)
+    job = wait_running(slurm, "lw_demo_20260314T0000Z_000h", 60)
+    slurm_cmd(slurm, "scancel", job)
+    wait_for(lambda: records(svc, "failed"), 60, "the step reported failed")
+    failed = records(svc, "failed")
+    assert len(failed) == 1 and failed[0]["kind"] == "job", failed
+    reason = failed[0]["reason"]
+    assert f"Slurm job {job} ended CANCELLED" in reason and "1 of 1 attempts used" in reason, reason
+    log = Path(reason.split("log ", 1)[1])
+    assert log.parent == tmp_path / "state" / "job-logs" and "job-started" in log.read_text()
+    assert svc.published() == [] and not any(p.suffix == ".nc" for p in svc.out_files())
+    st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(tmp_path / "state")],
+                        capture_output=True, text=True, timeout=30)
+    assert "+0h failed (batch job (attempts used up))" in st.stdout, st.stdout
     no_stray_files(tmp_path)
     assert svc.stop() == 0
 
