@@ -531,7 +531,9 @@ files_per_step = 1
     wait_for(lambda: any(r["step"]["feed"] == "second" for r in svc.published()), DEADLINE_S,
              "a step of the new feed published")
     assert (tmp_path / "out" / "second" / "20260314T0000Z" / "c255_20260314T0000Z_000h.json").exists()
-    assert any(m.startswith("STATUS=") and "last published second/" in m for _, m in got)
+    # The status line follows the ledger record on the main loop's next turn.
+    wait_for(lambda: any(m.startswith("STATUS=") and "last published second/" in m for _, m in got),
+             10, "STATUS naming the new feed's step")
 
     # SIGTERM while a step is in hand: finished or cleanly left, exit 0, bounded.
     deliver_renamed(f[1].read_bytes(), tmp_path / "in" / f[1].name)
