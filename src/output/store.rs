@@ -80,30 +80,34 @@ pub fn published(
     published_where(dir, centre, grid_id, member, near, |_, _| true)
 }
 
-/// What a product's file name says: cycle, valid time and member (see
-/// [`super::cf::step_file_name`]: `<centre>_<cycle>_<lead>h[_g<n>][_m<member>].nc`),
-/// if it is a name leeward gives and its centre is `centre`.
-fn name_says(name: &str, centre: u16) -> Option<(NaiveDateTime, NaiveDateTime, Option<u8>)> {
+/// What a product's file name says: the centre's short name, cycle, valid
+/// time and member (see [`super::cf::step_file_name`]:
+/// `<centre>_<cycle>_<lead>h[_g<n>][_m<member>].nc`), if it is a name leeward gives.
+fn name_says(name: &str) -> Option<(&str, NaiveDateTime, NaiveDateTime, Option<u8>)> {
     let stem = name.strip_suffix(".nc")?;
     let mut parts: Vec<&str> = stem.split('_').collect();
+    let digits = |s: &str| !s.is_empty() && s.bytes().all(|b| b.is_ascii_digit());
     let mut member = None;
     if let Some(m) = parts.last().and_then(|p| p.strip_prefix('m')) {
-        if m.len() == 2 && m.bytes().all(|b| b.is_ascii_digit()) {
+        if m.len() == 2 && digits(m) {
             member = m.parse().ok();
             parts.pop();
         }
     }
-    if let Some(g) = parts.last().and_then(|p| p.strip_prefix('g')) {
-        if !g.is_empty() && g.bytes().all(|b| b.is_ascii_digit()) {
-            parts.pop();
-        }
+    if parts
+        .last()
+        .and_then(|p| p.strip_prefix('g'))
+        .is_some_and(digits)
+    {
+        parts.pop();
     }
     let lead: i64 = parts.pop()?.strip_suffix('h')?.parse().ok()?;
     let cycle = NaiveDateTime::parse_from_str(parts.pop()?, "%Y%m%dT%H%MZ").ok()?;
-    if parts.join("_") != super::cf::centre_short_name(centre) {
+    let [centre] = parts[..] else { return None };
+    if !centre.bytes().all(|b| b.is_ascii_alphanumeric()) {
         return None;
     }
-    Some((cycle, cycle + TimeDelta::try_hours(lead)?, member))
+    Some((centre, cycle, cycle + TimeDelta::try_hours(lead)?, member))
 }
 
 /// [`published`], opening only the files whose names say a cycle and valid
@@ -143,16 +147,17 @@ pub fn published_where(
             }
         }
     }
+    let centre_name = super::cf::centre_short_name(centre);
     let mut out = Vec::new();
     for path in candidates {
         let name = path
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        match name_says(&name, centre) {
-            Some((r, v, m)) if m != member || !want(r, v) => continue,
-            None if is_leeward_name(&name) => continue, // another centre's
-            _ => {}
+        if let Some((c, r, v, m)) = name_says(&name) {
+            if c != centre_name || m != member || !want(r, v) {
+                continue;
+            }
         }
         let Some(id) = identity(&path) else { continue };
         let same = id.grid_id.as_deref() == Some(grid_id)
@@ -218,16 +223,6 @@ fn identity(path: &Path) -> Option<Identity> {
     }
     c.insert(path.to_path_buf(), (size, mtime, id.clone()));
     Some(id)
-}
-
-/// A name of leeward's shape for some centre.
-fn is_leeward_name(name: &str) -> bool {
-    static RE: std::sync::OnceLock<Option<regex::Regex>> = std::sync::OnceLock::new();
-    RE.get_or_init(|| {
-        regex::Regex::new(r"^[A-Za-z0-9]+_\d{8}T\d{4}Z_\d{3,}h(_g\d+)?(_m\d{2})?\.nc$").ok()
-    })
-    .as_ref()
-    .is_some_and(|re| re.is_match(name))
 }
 
 /// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
@@ -432,16 +427,14 @@ mod tests {
     fn names_say_cycle_valid_time_and_member() {
         let t = |s: &str| NaiveDateTime::parse_from_str(s, "%Y%m%dT%H%M").unwrap();
         assert_eq!(
-            name_says("c255_20260314T0000Z_024h.nc", 255),
-            Some((t("20260314T0000"), t("20260315T0000"), None))
+            name_says("c255_20260314T0000Z_024h.nc"),
+            Some(("c255", t("20260314T0000"), t("20260315T0000"), None))
         );
         assert_eq!(
-            name_says("ecmwf_20260314T1200Z_240h_g2_m07.nc", 98),
-            Some((t("20260314T1200"), t("20260324T1200"), Some(7)))
+            name_says("ecmwf_20260314T1200Z_240h_g2_m07.nc"),
+            Some(("ecmwf", t("20260314T1200"), t("20260324T1200"), Some(7)))
         );
-        assert_eq!(name_says("ecmwf_20260314T1200Z_240h.nc", 7), None);
-        assert!(is_leeward_name("ecmwf_20260314T1200Z_240h.nc"));
-        assert_eq!(name_says("analysis.nc", 255), None);
-        assert!(!is_leeward_name("analysis.nc"));
+        assert_eq!(name_says("analysis.nc"), None);
+        assert_eq!(name_says("my_c255_20260314T0000Z_024h.nc"), None);
     }
 }

@@ -29,7 +29,7 @@ use tracing::{info, warn};
 
 use super::assemble::Contribution;
 use super::ledger::StepTag;
-use super::publish::{self, file_checksum, StepFacts};
+use super::publish::{self, file_checksum, StepFacts, Timings};
 use super::settings::Slurm;
 use crate::config::Config;
 use crate::pipeline::{run_step, Destination, Issue, StepKey, StepReport};
@@ -327,8 +327,8 @@ pub struct JobReport {
     pub products: Vec<String>,
     /// Input problems.
     pub issues: Vec<Issue>,
-    /// Seconds: total, decode, diagnostics, write, changes.
-    pub seconds: [f64; 5],
+    /// Seconds of the step on the node (no latency: the service measures that).
+    pub timings: Timings,
 }
 
 impl JobReport {
@@ -338,13 +338,14 @@ impl JobReport {
             missing: rep.missing.clone(),
             products: rep.products.clone(),
             issues: rep.issues.clone(),
-            seconds: [
-                rep.seconds,
-                rep.decode_seconds,
-                rep.compute_seconds,
-                rep.write_seconds,
-                rep.changes_seconds,
-            ],
+            timings: Timings {
+                decode: rep.decode_seconds,
+                diagnostics: rep.compute_seconds,
+                write: rep.write_seconds,
+                changes: rep.changes_seconds,
+                total: rep.seconds,
+                latency: 0.0,
+            },
         }
     }
 
@@ -355,11 +356,11 @@ impl JobReport {
             missing: self.missing.clone(),
             products: self.products.clone(),
             issues: self.issues.clone(),
-            seconds: self.seconds[0],
-            decode_seconds: self.seconds[1],
-            compute_seconds: self.seconds[2],
-            write_seconds: self.seconds[3],
-            changes_seconds: self.seconds[4],
+            seconds: self.timings.total,
+            decode_seconds: self.timings.decode,
+            compute_seconds: self.timings.diagnostics,
+            write_seconds: self.timings.write,
+            changes_seconds: self.timings.changes,
             output: Some(output.to_path_buf()),
             images,
             updated,
@@ -527,7 +528,7 @@ pub fn run_in_job(dir: &Path) -> u8 {
         Ended::Vanished { .. } => "input vanished",
         Ended::Internal { .. } => "internal error",
     };
-    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, outcome = what, seconds = result.report.seconds[0], "step job finished");
+    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, outcome = what, seconds = result.report.timings.total, "step job finished");
     0
 }
 

@@ -181,7 +181,7 @@ enum JobPhase {
 struct InFlight {
     job: String,
     stage: PathBuf,
-    attempt: u32,
+    /// Its spec; `spec.attempt` is which run of the step this job is.
     spec: Arc<JobSpec>,
     phase: JobPhase,
 }
@@ -932,14 +932,8 @@ impl Daemon {
             let local_free = self.running.len() < workers;
             let sched_ok = self.scheduler_usable();
             let jobs_free = self.jobs.len() < max_jobs;
-            let on_batch: BTreeSet<&str> = self
-                .rules
-                .iter()
-                .filter(|r| r.feed.executor == Executor::Slurm)
-                .map(|r| r.feed.name.as_str())
-                .collect();
             let pick = self.asm.next_where(self.cfg.service.order, &busy, |p| {
-                if !on_batch.contains(p.tag.feed.as_str()) {
+                if self.executor(&p.tag.feed) == Executor::Local {
                     return local_free;
                 }
                 if busy_chains.contains(&chain(&p.tag)) {
@@ -1105,7 +1099,6 @@ impl Daemon {
             InFlight {
                 job,
                 stage,
-                attempt: spec.attempt,
                 spec: Arc::new(spec),
                 phase: JobPhase::Queued { gone: 0 },
             },
@@ -1247,9 +1240,10 @@ impl Daemon {
             .entry(state.clone())
             .or_default() += 1;
         let max = self.cfg.service.slurm.max_attempts;
-        if j.attempt < max {
-            let wait = self.backoff(j.attempt);
-            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, attempt = j.attempt, max_attempts = max, retry_in_s = wait.as_secs_f64(), reason = %reason, log = %log_text, "step job ended without a result; submitting again");
+        let attempt = j.spec.attempt;
+        if attempt < max {
+            let wait = self.backoff(attempt);
+            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, attempt, max_attempts = max, retry_in_s = wait.as_secs_f64(), reason = %reason, log = %log_text, "step job ended without a result; submitting again");
             self.metrics().scheduler.retries += 1;
             j.phase = JobPhase::Resubmit {
                 at: Instant::now() + wait,
@@ -1260,7 +1254,7 @@ impl Daemon {
             self.fail(
                 tag,
                 FailKind::Job,
-                format!("{reason}; {} of {max} attempts used; {log_text}", j.attempt),
+                format!("{reason}; {attempt} of {max} attempts used; {log_text}"),
             );
         }
     }
@@ -1268,49 +1262,35 @@ impl Daemon {
     /// Submit a step again from its spec (a new staging directory, the next
     /// attempt); while the scheduler is unusable, run it here if so configured.
     fn resubmit(&mut self, tag: &StepTag) {
-        let Some(j) = self.jobs.get(tag) else {
+        let Some(j) = self.jobs.remove(tag) else {
             return;
         };
-        let mut spec = (*j.spec).clone();
-        spec.attempt = j.attempt + 1;
-        let fallback = self.cfg.service.slurm.when_unreachable == Unreachable::Local;
         if self.scheduler_usable() {
-            self.jobs.remove(tag);
-            match self.submit(spec.clone()) {
+            let mut next = (*j.spec).clone();
+            next.attempt += 1;
+            match self.submit(next) {
                 Ok(()) => return,
-                Err(e) => {
-                    self.scheduler_down(&e);
-                    let attempt = spec.attempt - 1;
-                    self.jobs.insert(
-                        tag.clone(),
-                        InFlight {
-                            job: String::new(),
-                            stage: PathBuf::new(),
-                            attempt,
-                            spec: Arc::new(spec.clone()),
-                            phase: JobPhase::Resubmit {
-                                at: self.sched_retry,
-                            },
-                        },
-                    );
-                }
+                Err(e) => self.scheduler_down(&e),
             }
         }
+        let fallback = self.cfg.service.slurm.when_unreachable == Unreachable::Local;
         if fallback && self.running.len() < self.cfg.service.workers as usize {
-            let Some(j) = self.jobs.remove(tag) else {
-                return;
-            };
             warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, "scheduler unusable: running the step on this machine");
             self.metrics().scheduler.local_fallback += 1;
             let job = self.job_from_spec(&j.spec);
             self.spawn_local(job);
-        } else if let Some(j) = self.jobs.get_mut(tag) {
-            j.phase = JobPhase::Resubmit {
-                at: self
-                    .sched_retry
-                    .max(Instant::now() + Duration::from_secs(1)),
-            };
+            return;
         }
+        let at = self
+            .sched_retry
+            .max(Instant::now() + Duration::from_secs(1));
+        self.jobs.insert(
+            tag.clone(),
+            InFlight {
+                phase: JobPhase::Resubmit { at },
+                ..j
+            },
+        );
     }
 
     fn job_from_spec(&mut self, spec: &JobSpec) -> Job {
@@ -1364,7 +1344,6 @@ impl Daemon {
                         InFlight {
                             job: r.job,
                             stage,
-                            attempt: r.attempt,
                             spec: Arc::new(spec),
                             phase: JobPhase::Queued { gone: 0 },
                         },

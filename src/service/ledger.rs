@@ -328,6 +328,13 @@ pub struct State {
 }
 
 impl State {
+    /// A step's state, new (first seen `at`) if the journal has not named it yet.
+    fn step_mut(&mut self, step: &StepTag, at: i64) -> &mut StepState {
+        self.steps
+            .entry(step.clone())
+            .or_insert_with(|| StepState::new(at))
+    }
+
     fn apply(&mut self, r: &Record) {
         match r {
             Record::Started { version, pid, at } => {
@@ -345,9 +352,7 @@ impl State {
                 at,
             } => {
                 for s in steps {
-                    self.steps
-                        .entry(s.clone())
-                        .or_insert_with(|| StepState::new(*at));
+                    self.step_mut(s, *at);
                     let g = self.grids.entry(feed.clone()).or_default();
                     if !g.contains(&s.grid) {
                         g.push(s.grid.clone());
@@ -372,10 +377,7 @@ impl State {
                 partial,
                 at,
             } => {
-                let s = self
-                    .steps
-                    .entry(step.clone())
-                    .or_insert_with(|| StepState::new(*at));
+                let s = self.step_mut(step, *at);
                 s.job = None;
                 s.outcome = Outcome::Published {
                     path: path.clone(),
@@ -390,10 +392,7 @@ impl State {
                 reason,
                 at,
             } => {
-                let s = self
-                    .steps
-                    .entry(step.clone())
-                    .or_insert_with(|| StepState::new(*at));
+                let s = self.step_mut(step, *at);
                 s.job = None;
                 s.outcome = Outcome::Failed {
                     kind: *kind,
@@ -425,10 +424,7 @@ impl State {
                 attempt,
                 at,
             } => {
-                let s = self
-                    .steps
-                    .entry(step.clone())
-                    .or_insert_with(|| StepState::new(*at));
+                let s = self.step_mut(step, *at);
                 s.job = Some(JobRef {
                     job: job.clone(),
                     staging: staging.clone(),
