@@ -10,4 +10,5 @@ pub mod decode;
 pub mod grid;
 pub mod inspect;
 pub mod params;
+pub mod source;
 pub mod unpack;

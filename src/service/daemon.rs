@@ -7,7 +7,6 @@
 //! thread owns the state; workers run one step each and report back.
 
 use std::collections::{BTreeSet, HashMap};
-use std::io::{Read, Seek, SeekFrom};
 use std::path::{Path, PathBuf};
 use std::sync::mpsc::{channel, Receiver, Sender};
 use std::sync::{Arc, Mutex};
@@ -26,8 +25,10 @@ use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable}
 use super::systemd::{status_line, Notifier};
 use super::watch::{watch, FinishedFiles};
 use crate::config::Config;
-use crate::ingest::catalogue::catalogue;
+use crate::escape::shown;
+use crate::ingest::catalogue::{catalogue, catalogue_file};
 use crate::ingest::grid::parse_grid;
+use crate::ingest::source::{checksum_file, open_input, InputError, Opened};
 use crate::output::store::cycle_dir_name;
 use crate::pipeline::{
     grid_id, output_name, plan, run_step, Destination, InputFile, Step, StepKey, StepReport,
@@ -197,24 +198,6 @@ struct JobDone {
     outcome: JobOutcome,
 }
 
-fn read_ranges(path: &Path, expect_size: u64, ranges: &[(u64, u64)]) -> std::io::Result<Vec<u8>> {
-    let mut f = std::fs::File::open(path)?;
-    let size = f.metadata()?.len();
-    if size != expect_size {
-        return Err(std::io::Error::other(format!(
-            "changed since it was catalogued ({expect_size} bytes then, {size} now)"
-        )));
-    }
-    let mut out = Vec::new();
-    for &(off, len) in ranges {
-        f.seek(SeekFrom::Start(off))?;
-        let start = out.len();
-        out.resize(start + len as usize, 0);
-        f.read_exact(&mut out[start..])?;
-    }
-    Ok(out)
-}
-
 /// Read a step's messages from its files as they were catalogued, and find
 /// the step among them: the inputs and the step, or the file that cannot be
 /// read (with why), or `Ok(None)` when the step's fields are no longer there.
@@ -225,7 +208,13 @@ pub(super) fn load_step(
 ) -> Result<Option<(Step, Vec<InputFile>)>, (PathBuf, String)> {
     let mut inputs = Vec::new();
     for c in files {
-        match read_ranges(&c.path, c.size, &c.messages) {
+        let read = open_input(&c.path, true)
+            .map_err(|e| e.to_string())
+            .and_then(|o| {
+                crate::ingest::source::read_ranges(&o.file, c.size, &c.messages)
+                    .map_err(|e| e.to_string())
+            });
+        match read {
             Ok(bytes) => {
                 let cat = catalogue(&bytes);
                 inputs.push(InputFile {
@@ -234,7 +223,7 @@ pub(super) fn load_step(
                     catalogue: cat,
                 });
             }
-            Err(e) => return Err((c.path.clone(), e.to_string())),
+            Err(e) => return Err((c.path.clone(), e)),
         }
     }
     let (steps, _) = plan(&inputs);
@@ -402,6 +391,9 @@ struct Daemon {
     last_published: Option<String>,
     restart_needed: bool,
     last_ping: Instant,
+    /// Files read with their last message cut off at their end: (size, mtime
+    /// then, since when). Read again once settled, or when they change.
+    growing: HashMap<PathBuf, (u64, i64, Instant)>,
 }
 
 impl Daemon {
@@ -510,13 +502,12 @@ impl Daemon {
 
     /// A finished file in some feed's directory.
     fn ingest(&mut self, path: &Path, force: Option<&ReprocessRequest>) {
-        let Some(name) = path
-            .file_name()
-            .and_then(|n| n.to_str())
-            .map(str::to_string)
-        else {
+        let Some(raw) = path.file_name() else {
             return;
         };
+        // A name that is not UTF-8 is matched in its escaped form (`\xff`);
+        // the file itself is opened by its bytes.
+        let name = crate::escape::path(Path::new(raw));
         let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
         let found = self
             .rules
@@ -524,21 +515,115 @@ impl Daemon {
             .filter(|r| r.dir == dir)
             .find_map(|r| r.role(&name).map(|role| (r.feed.name.clone(), role)));
         let Some((feed, role)) = found else {
-            debug!(file = %path.display(), "not a file of any feed");
+            debug!(file = %shown(path), "not a file of any feed");
             return;
         };
         match role {
             FileRole::Marker(parts) => {
                 if let Some(c) = parts.cycle {
-                    info!(feed = %feed, file = %path.display(), cycle = %cycle_dir_name(c), step = ?parts.step, "marker");
+                    info!(feed = %feed, file = %shown(path), cycle = %cycle_dir_name(c), step = ?parts.step, "marker");
                     self.asm
                         .markers
                         .insert((feed, cycle_dir_name(c), parts.step));
                 } else {
-                    warn!(feed = %feed, file = %path.display(), "marker file without a readable cycle in its name");
+                    warn!(feed = %feed, file = %shown(path), "marker file without a readable cycle in its name");
                 }
             }
             FileRole::Data(parts) => self.ingest_data(&feed, path, parts, force),
+        }
+    }
+
+    /// Open a feed's input file as its link policy allows. Whatever is not
+    /// read is said in the log once (the watcher hands each file over once per
+    /// change); a link the policy refuses is quarantined by its name, its
+    /// target never opened.
+    fn open_feed_input(
+        &mut self,
+        feed: &str,
+        path: &Path,
+        size: u64,
+        mtime: i64,
+    ) -> Option<Opened> {
+        let is_link = std::fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_symlink());
+        let target = if is_link {
+            let target = match std::fs::canonicalize(path) {
+                Ok(t) => t,
+                Err(e) => {
+                    let to = std::fs::read_link(path)
+                        .map(|t| crate::escape::path(&t))
+                        .unwrap_or_default();
+                    warn!(feed, file = %shown(path), link_to = %to, error = %e, "symbolic link whose target cannot be reached (dangling): skipped until it can");
+                    return None;
+                }
+            };
+            let rule = self.rules.iter().find(|r| r.feed.name == feed)?;
+            if !rule.link_allowed(&target) {
+                let policy = match rule.feed.follow_links {
+                    super::settings::FollowLinks::Never => "follow_links = \"never\"".to_string(),
+                    _ => format!(
+                        "follow_links = \"inside\": the target is not under {} or the feed's link_roots",
+                        crate::escape::path(&rule.dir)
+                    ),
+                };
+                let reason = format!(
+                    "symbolic link to {} refused ({policy}); its target was not read",
+                    crate::escape::path(&target)
+                );
+                self.quarantine(feed, path, &reason, size, mtime, String::new());
+                return None;
+            }
+            target
+        } else {
+            path.to_path_buf()
+        };
+        // The resolved target has no link left in it: opened without following one.
+        match open_input(&target, false) {
+            Ok(o) => Some(o),
+            Err(InputError::NotRegular(kind)) => {
+                warn!(feed, file = %shown(path), kind, "not a regular file: skipped");
+                None
+            }
+            Err(e) => {
+                warn!(feed, file = %shown(path), error = %e, "input could not be read; it is taken again if it changes");
+                None
+            }
+        }
+    }
+
+    /// A file read with its last message cut off at its end: true once it has
+    /// kept that size and mtime for the settle time (a file that settled cut
+    /// short), false while it may still be written (it is looked at again).
+    fn settled_cut_short(&mut self, path: &Path, size: u64, mtime: i64) -> bool {
+        let settle = Duration::from_secs_f64(self.cfg.service.settle_s);
+        match self.growing.get(path) {
+            Some(&(s, m, since)) if (s, m) == (size, mtime) => since.elapsed() >= settle,
+            _ => {
+                self.growing
+                    .insert(path.to_path_buf(), (size, mtime, Instant::now()));
+                false
+            }
+        }
+    }
+
+    /// Files cut short at their end are read again once they have settled;
+    /// one that changed meanwhile is handed over again by its watcher.
+    fn recheck_growing(&mut self) {
+        let settle = Duration::from_secs_f64(self.cfg.service.settle_s);
+        let due: Vec<PathBuf> = self
+            .growing
+            .iter()
+            .filter(|(_, (_, _, since))| since.elapsed() >= settle)
+            .map(|(p, _)| p.clone())
+            .collect();
+        for p in due {
+            let (size, mtime, since) = self.growing[&p];
+            if std::fs::metadata(&p).is_ok_and(|m| (m.len(), mtime_ns(&m)) == (size, mtime)) {
+                self.ingest(&p, None);
+            }
+            // Read now (or not readable any more): not looked at again unless it changes.
+            if self.growing.get(&p).is_some_and(|g| g.2 == since) {
+                self.growing.remove(&p);
+            }
         }
     }
 
@@ -554,20 +639,20 @@ impl Daemon {
         let moved_to = match self.cfg.service.quarantine {
             QuarantineMode::Move => {
                 match publish::quarantine(path, &self.cfg.service.quarantine_dir(), feed, reason) {
-                    Ok(d) => Some(d.display().to_string()),
+                    Ok(d) => Some(crate::escape::path(&d)),
                     Err(e) => {
-                        warn!(feed, file = %path.display(), error = %e, "cannot move the file to quarantine; recorded only");
+                        warn!(feed, file = %shown(path), error = %e, "cannot move the file to quarantine; recorded only");
                         None
                     }
                 }
             }
             QuarantineMode::Record => None,
         };
-        error!(feed, file = %path.display(), reason, moved_to = ?moved_to, "input file quarantined");
+        error!(feed, file = %shown(path), reason, moved_to = ?moved_to, "input file quarantined");
         self.metrics().feed(feed).quarantined += 1;
         self.record(Record::Seen {
             feed: feed.into(),
-            file: path.display().to_string(),
+            file: crate::escape::path(path),
             size,
             mtime_ns: mtime,
             checksum,
@@ -576,7 +661,7 @@ impl Daemon {
         });
         self.record(Record::Quarantined {
             feed: feed.into(),
-            file: path.display().to_string(),
+            file: crate::escape::path(path),
             reason: reason.into(),
             moved_to,
             at: Utc::now().timestamp(),
@@ -595,37 +680,47 @@ impl Daemon {
                 r.feed == t.feed && r.cycle == t.cycle && r.lead.is_none_or(|l| l == t.lead)
             })
         };
-        let meta = match std::fs::metadata(path) {
+        // Its identity as last seen (a link: its target's), without opening it.
+        let meta = match std::fs::metadata(path).or_else(|_| std::fs::symlink_metadata(path)) {
             Ok(m) => m,
             Err(e) => {
-                warn!(feed, file = %path.display(), error = %e, "input vanished before it could be read");
+                warn!(feed, file = %shown(path), error = %e, "input vanished before it could be read");
                 return;
             }
         };
         let (size, mtime) = (meta.len(), mtime_ns(&meta));
-        let key = path.display().to_string();
+        let key = crate::escape::path(path);
         if force.is_none() {
             if let Some(s) = self.ledger.state.seen.get(&key) {
                 if s.size == size
                     && s.mtime_ns == mtime
                     && s.steps.iter().all(|t| self.ledger.state.settled(t))
                 {
-                    debug!(feed, file = %path.display(), "already done");
+                    debug!(feed, file = %shown(path), "already done");
                     return;
                 }
             }
         }
-        let bytes = match std::fs::read(path) {
-            Ok(b) => b,
+        let Some(opened) = self.open_feed_input(feed, path, size, mtime) else {
+            return;
+        };
+        let (size, mtime) = (opened.size, opened.mtime_ns);
+        let checksum = match checksum_file(&opened.file, size) {
+            Ok(c) => c,
             Err(e) => {
-                warn!(feed, file = %path.display(), error = %e, "input could not be read; it is taken again if it changes");
+                warn!(feed, file = %shown(path), error = %e, "input could not be read; it is taken again if it changes");
                 return;
             }
         };
-        let checksum = super::ledger::checksum(&bytes);
-        let cat = catalogue(&bytes);
+        let cat = catalogue_file(&opened.file, size);
+        drop(opened);
+        if cat.cut_at_end && !self.settled_cut_short(path, size, mtime) {
+            debug!(feed, file = %shown(path), bytes = size, "last message cut off at the end of the file: still being written; read again when it changes or has settled");
+            return;
+        }
+        self.growing.remove(path);
         for p in &cat.problems {
-            warn!(feed, file = %path.display(), field = ?p.field, offset = p.offset, reason = %p.reason, "input problem");
+            warn!(feed, file = %shown(path), field = ?p.field, offset = p.offset, reason = %p.reason, "input problem");
         }
         let usable: Vec<_> = cat.fields.iter().filter(|f| f.unusable.is_none()).collect();
         if usable.is_empty() {
@@ -639,18 +734,17 @@ impl Daemon {
             return;
         }
         // Grids leeward cannot use make a file unusable only if every field is on one.
-        let mut grid_ok: HashMap<std::ops::Range<usize>, Result<(), String>> = HashMap::new();
+        let mut grid_ok: HashMap<Arc<[u8]>, Result<(), String>> = HashMap::new();
         for f in &usable {
-            grid_ok.entry(f.sect3.clone()).or_insert_with(|| {
-                bytes
-                    .get(f.sect3.clone())
-                    .ok_or_else(|| "section 3 outside the file".to_string())
-                    .and_then(|s| parse_grid(s).map(|_| ()).map_err(|e| e.to_string()))
+            grid_ok.entry(f.grid_definition.clone()).or_insert_with(|| {
+                parse_grid(&f.grid_definition)
+                    .map(|_| ())
+                    .map_err(|e| e.to_string())
             });
         }
         let good: Vec<_> = usable
             .into_iter()
-            .filter(|f| matches!(grid_ok.get(&f.sect3), Some(Ok(()))))
+            .filter(|f| matches!(grid_ok.get(&f.grid_definition), Some(Ok(()))))
             .collect();
         if good.is_empty() {
             let reason = grid_ok
@@ -673,15 +767,12 @@ impl Daemon {
         let mut by_step: std::collections::BTreeMap<StepKey, Gathered> =
             std::collections::BTreeMap::new();
         for f in &good {
-            let k = crate::pipeline::step_key(&bytes, f);
-            let msg_len = bytes
-                .get(f.message_offset + 8..f.message_offset + 16)
-                .and_then(|b| <[u8; 8]>::try_from(b).ok())
-                .map(u64::from_be_bytes)
-                .unwrap_or(0);
+            let k = crate::pipeline::step_key(f);
             let e = by_step.entry(k).or_default();
-            let range = (f.message_offset as u64, msg_len);
-            if !e.0.contains(&range) {
+            // Only the messages the products may use are read again for the
+            // step (and the step's first from this file, which names its grid).
+            let range = (f.message_offset as u64, f.message_len as u64);
+            if (e.0.is_empty() || crate::pipeline::may_use(f)) && !e.0.contains(&range) {
                 e.0.push(range);
             }
             if let Some(q) = isobaric(f) {
@@ -698,14 +789,14 @@ impl Daemon {
                 .map(|k| (k.valid_time - k.reference_time).num_hours())
                 .collect();
             if !leads.contains(&s) {
-                warn!(feed, file = %path.display(), name_step = s, leads = ?leads, "the file name and the contents disagree on the step; the contents are used");
+                warn!(feed, file = %shown(path), name_step = s, leads = ?leads, "the file name and the contents disagree on the step; the contents are used");
             }
         }
         for (k, (messages, fields)) in by_step {
             let cycle = cycle_dir_name(k.reference_time);
             if let Some(c) = parts.cycle {
                 if c != k.reference_time {
-                    warn!(feed, file = %path.display(), name_cycle = %cycle_dir_name(c), cycle = %cycle, "the file name and the contents disagree on the cycle; the contents are used");
+                    warn!(feed, file = %shown(path), name_cycle = %cycle_dir_name(c), cycle = %cycle, "the file name and the contents disagree on the cycle; the contents are used");
                 }
             }
             let tag = StepTag {
@@ -741,7 +832,7 @@ impl Daemon {
                     .get(&key)
                     .is_some_and(|s| s.checksum == checksum);
                 if !used {
-                    warn!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, "input arrived after its step was published; not used (reprocess the cycle to use it)");
+                    warn!(feed, file = %shown(path), cycle = %cycle, step = tag.lead, "input arrived after its step was published; not used (reprocess the cycle to use it)");
                     self.metrics().feed(feed).late_files += 1;
                 }
                 continue;
@@ -751,7 +842,7 @@ impl Daemon {
                     .is_some_and(|h| k.reference_time < Utc::now().naive_utc() - h);
             if too_old && !asked(&tag) {
                 if self.too_old.insert((feed.to_string(), cycle.clone())) {
-                    warn!(feed, cycle = %cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
+                    warn!(feed, cycle = %cycle, file = %shown(path), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
                 }
                 skipped.push(tag);
                 continue;
@@ -774,7 +865,7 @@ impl Daemon {
                 .asm
                 .add(tag.clone(), k, c, &fields, first_seen, asked(&tag))
             {
-                info!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, fields = fields.len(), "input for step");
+                info!(feed, file = %shown(path), cycle = %cycle, step = tag.lead, fields = fields.len(), "input for step");
             }
         }
         let known = self
@@ -841,7 +932,7 @@ impl Daemon {
         let have: BTreeSet<(String, String)> = p
             .files
             .values()
-            .map(|c| (c.path.display().to_string(), c.checksum.clone()))
+            .map(|c| (crate::escape::path(&c.path), c.checksum.clone()))
             .collect();
         let had: BTreeSet<(String, String)> = m
             .inputs
@@ -1599,8 +1690,7 @@ impl Daemon {
             paths.sort();
             for p in paths {
                 if p.file_name()
-                    .and_then(|n| n.to_str())
-                    .is_some_and(|n| !super::watch::ignored(n))
+                    .is_some_and(|n| !super::watch::ignored(&crate::escape::path(Path::new(n))))
                 {
                     self.ingest(&p, Some(&req));
                     self.keepalive();
@@ -1832,6 +1922,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         last_published: None,
         restart_needed: false,
         last_ping: Instant::now(),
+        growing: HashMap::new(),
     };
     for (tag, st) in &d.ledger.state.steps {
         if let Outcome::Published { at, .. } = st.outcome {
@@ -1938,6 +2029,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
             last_second = Instant::now();
             if stopping.is_none() {
                 d.requests();
+                d.recheck_growing();
             }
             d.timeouts();
         }
