@@ -217,3 +217,58 @@ def test_a_file_still_being_written_is_read_again_quietly_and_warned_only_once_s
     warned = [ln.split(" WARN ", 1)[1] for ln in lines_with(svc, " WARN ", gen[1].name)]
     assert len(warned) == len(set(warned)), warned
     assert svc.stop() == 0
+
+
+def raw_get(port: int, path: str, timeout: float = 10.0) -> tuple[float, bytes]:
+    """One GET on a fresh connection: (seconds from connecting to the whole answer, answer)."""
+    t0 = time.monotonic()
+    with socket.create_connection(("127.0.0.1", port), timeout=timeout) as c:
+        c.sendall(f"GET {path} HTTP/1.1\r\nHost: localhost\r\n\r\n".encode())
+        out = b""
+        while chunk := c.recv(65536):
+            out += chunk
+    return time.monotonic() - t0, out
+
+
+def test_health_answers_at_once_beside_idle_clients_a_slow_sender_and_a_slow_reader(tmp_path):
+    svc = Service(tmp_path).start()
+    port = svc.port
+    # Several clients that connect and say nothing.
+    idle = [socket.create_connection(("127.0.0.1", port)) for _ in range(6)]
+    # One that sends its request a byte at a time.
+    slow_sender = socket.create_connection(("127.0.0.1", port))
+    stop = False
+
+    def dribble():
+        for b in b"GET /health HTTP/1.1\r\n":
+            if stop:
+                return
+            try:
+                slow_sender.send(bytes([b]))
+            except OSError:
+                return
+            time.sleep(0.3)
+
+    import threading
+    threading.Thread(target=dribble, daemon=True).start()
+    # One that asks for /metrics and does not read: a receive buffer of the
+    # smallest size the kernel allows, so that the answer cannot all be sent.
+    slow_reader = socket.socket()
+    slow_reader.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 1024)
+    slow_reader.connect(("127.0.0.1", port))
+    slow_reader.sendall(b"GET /metrics HTTP/1.1\r\nHost: localhost\r\n\r\n")
+    time.sleep(0.3)  # the service has accepted them all
+    times = []
+    for _ in range(5):
+        dt, out = raw_get(port, "/health")
+        assert out.startswith(b"HTTP/1.1 200 OK\r\n") and out.endswith(b"ok\n"), out
+        times.append(dt)
+    times.sort()
+    # The bound is on a stall, not on speed: a connection that waits for
+    # another client takes seconds (the time that client is given).
+    assert times[2] < 0.1, times
+    assert times[-1] < 1.0, times
+    stop = True
+    for s in idle + [slow_sender, slow_reader]:
+        s.close()
+    assert svc.stop() == 0
