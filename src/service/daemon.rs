@@ -23,6 +23,7 @@ use super::metrics::Metrics;
 use super::publish::{self, StepFacts};
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::systemd::{status_line, Notifier};
+use super::waiting::{self, Waiting, WaitingStep};
 use super::watch::{watch, FinishedFiles};
 use crate::config::Config;
 use crate::escape::shown;
@@ -395,6 +396,8 @@ struct Daemon {
     /// Files read with their last message cut off at their end: (size, mtime
     /// then, since when). Read again once settled, or when they change.
     growing: HashMap<PathBuf, (u64, i64, Instant)>,
+    /// The waiting steps as last reported (state file, /health).
+    last_waiting: Vec<WaitingStep>,
 }
 
 impl Daemon {
@@ -866,7 +869,12 @@ impl Daemon {
                 .asm
                 .add(tag.clone(), k, c, &fields, first_seen, asked(&tag))
             {
-                info!(feed, file = %shown(path), cycle = %cycle, step = tag.lead, fields = fields.len(), "input for step");
+                let w = self.waiting_step(&tag);
+                let missing = w
+                    .as_ref()
+                    .map_or_else(|| "nothing: complete".to_string(), |w| w.missing.join("; "));
+                let made_by = w.map_or(0, |w| w.made_by);
+                info!(feed, file = %shown(path), cycle = %cycle, step = tag.lead, fields = fields.len(), missing = %missing, made_anyway_in_s = made_by.saturating_sub(now as i64).max(0), "input for step");
             }
         }
         let known = self
@@ -1641,6 +1649,50 @@ impl Daemon {
         });
     }
 
+    /// A step still waiting for input: what it lacks and when it is made anyway;
+    /// `None` when it is not waiting or lacks nothing.
+    fn waiting_step(&self, tag: &StepTag) -> Option<WaitingStep> {
+        let p = self.asm.steps.get(tag)?;
+        if p.phase != Phase::Waiting {
+            return None;
+        }
+        let rule = self.rules.iter().find(|r| r.feed.name == tag.feed)?;
+        let missing = self.asm.waiting_for(p, rule);
+        if missing.is_empty() {
+            return None;
+        }
+        Some(WaitingStep {
+            step: tag.clone(),
+            missing,
+            first_seen: p.first_seen.ceil() as i64,
+            made_by: (p.first_seen + self.cfg.service.step_timeout_s).ceil() as i64,
+        })
+    }
+
+    /// Say what the waiting steps lack, in the state directory (for `leeward
+    /// status`) and on /health, whenever that changes.
+    fn report_waiting(&mut self) {
+        let now: Vec<WaitingStep> = self
+            .asm
+            .steps
+            .keys()
+            .filter_map(|t| self.waiting_step(t))
+            .collect();
+        if now == self.last_waiting {
+            return;
+        }
+        let w = Waiting {
+            written: Utc::now().timestamp(),
+            pid: std::process::id(),
+            steps: now.clone(),
+        };
+        if let Err(e) = waiting::write(&self.cfg.service.state_dir, &w) {
+            warn!(file = %waiting::path(&self.cfg.service.state_dir).display(), error = %e, "waiting steps not written to the state directory");
+        }
+        self.metrics().waiting = now.clone();
+        self.last_waiting = now;
+    }
+
     fn timeouts(&mut self) {
         let ready = self.asm.promote(
             &self.rules,
@@ -1935,6 +1987,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         restart_needed: false,
         last_ping: Instant::now(),
         growing: HashMap::new(),
+        last_waiting: Vec::new(),
     };
     for (tag, st) in &d.ledger.state.steps {
         if let Outcome::Published { at, .. } = st.outcome {
@@ -2042,6 +2095,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
             if stopping.is_none() {
                 d.requests();
                 d.recheck_growing();
+                d.report_waiting();
             }
             d.timeouts();
         }

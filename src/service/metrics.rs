@@ -108,6 +108,8 @@ pub struct Metrics {
     pub heartbeat: Option<Instant>,
     /// Unix time of start.
     pub started: f64,
+    /// Steps waiting for input: what each lacks and when it is made anyway.
+    pub waiting: Vec<crate::service::waiting::WaitingStep>,
 }
 
 fn esc(s: &str) -> String {
@@ -415,7 +417,9 @@ fn answer(req: &[u8], metrics: &Mutex<Metrics>) -> (&'static str, &'static str, 
         ("GET", "/health") | ("GET", "/healthz") => {
             let alive = m.heartbeat.is_some_and(|h| h.elapsed() < STALL);
             if alive {
-                ("200 OK", "text/plain; charset=utf-8", health_body(&m))
+                let mut body = health_body(&m);
+                body.push_str(&waiting_lines(&m.waiting));
+                ("200 OK", "text/plain; charset=utf-8", body)
             } else {
                 (
                     "503 Service Unavailable",
@@ -435,6 +439,24 @@ fn answer(req: &[u8], metrics: &Mutex<Metrics>) -> (&'static str, &'static str, 
             "GET only\n".into(),
         ),
     }
+}
+
+/// How many waiting steps /health names; the rest are counted.
+const WAITING_SHOWN: usize = 20;
+
+fn waiting_lines(w: &[crate::service::waiting::WaitingStep]) -> String {
+    let now = chrono::Utc::now().timestamp();
+    let mut o = String::new();
+    for s in w.iter().take(WAITING_SHOWN) {
+        o.push_str(&format!("waiting: {}\n", s.line(now)));
+    }
+    if w.len() > WAITING_SHOWN {
+        o.push_str(&format!(
+            "waiting: and {} more step(s) (leeward status shows them all)\n",
+            w.len() - WAITING_SHOWN
+        ));
+    }
+    o
 }
 
 fn health_body(m: &Metrics) -> String {

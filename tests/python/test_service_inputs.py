@@ -272,3 +272,38 @@ def test_health_answers_at_once_beside_idle_clients_a_slow_sender_and_a_slow_rea
     for s in idle + [slow_sender, slow_reader]:
         s.close()
     assert svc.stop() == 0
+
+
+def test_a_waiting_step_says_what_it_lacks_and_when_it_is_made_anyway(tmp_path):
+    gen = demo_inputs(tmp_path / "gen", CYCLE, [0])
+    svc = Service(tmp_path)
+    # The feed asks for 925 hPa, which the demo model does not have (it has 950 and 900).
+    svc.cfg.write_text(svc.cfg.read_text().replace(f"levels_hpa = {LEVELS_HPA}",
+                                                   "levels_hpa = [925.0, 500.0]"))
+    svc.start()
+    deliver_renamed(gen[0].read_bytes(), tmp_path / "in" / gen[0].name)
+    wait_for(lambda: "waiting:" in (svc.get("/health") or (0, ""))[1], 60, "/health names the wait")
+    health = svc.get("/health")[1]
+    line = [ln for ln in health.splitlines() if ln.startswith("waiting:")][0]
+    assert "demo/20260314T0000Z/000h waiting for temperature at 925 hPa; " in line, health
+    assert "wind x-component at 925 hPa" in line and "geopotential height at 925 hPa" in line
+    assert "(arrived on levels not in levels_hpa: " in line and "950" in line, line
+    assert "made anyway with what is there in 9 min" in line or "in 10 min" in line, line
+    # The log said it when the file came.
+    logged = lines_with(svc, "input for step", "temperature at 925 hPa")
+    assert len(logged) == 1 and "made_anyway_in_s=" in logged[0], log_lines(svc)[-10:]
+    # leeward status, text and JSON.
+    st = tmp_path / "state"
+    wait_for(lambda: (st / "waiting.json").exists(), 30, "the waiting steps in the state directory")
+    import subprocess
+    from conftest import leeward_bin_path
+    text = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(st)],
+                          capture_output=True, text=True, timeout=30).stdout
+    assert "+0h waiting for temperature at 925 hPa" in text, text
+    assert "made anyway with what is there in " in text, text
+    js = json.loads(subprocess.run([str(leeward_bin_path()), "status", "--json", "--state-dir",
+                                    str(st)], capture_output=True, text=True, timeout=30).stdout)
+    w = js["cycles"][0]["waiting_for"][0]
+    assert w["missing"][0] == "temperature at 925 hPa"
+    assert w["made_by"] - w["first_seen"] == 600, w
+    assert svc.stop() == 0
