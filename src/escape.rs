@@ -68,6 +68,47 @@ pub fn path(p: &Path) -> String {
     shown(p).to_string()
 }
 
+/// The path a string of [`path`] stands for (`None` when it is not one).
+pub fn unescape_path(s: &str) -> Option<std::path::PathBuf> {
+    use std::os::unix::ffi::OsStringExt;
+    let mut out: Vec<u8> = Vec::with_capacity(s.len());
+    let mut it = s.chars().peekable();
+    while let Some(c) = it.next() {
+        if c != '\\' {
+            let mut b = [0u8; 4];
+            out.extend_from_slice(c.encode_utf8(&mut b).as_bytes());
+            continue;
+        }
+        match it.next()? {
+            '\\' => out.push(b'\\'),
+            'n' => out.push(b'\n'),
+            'r' => out.push(b'\r'),
+            't' => out.push(b'\t'),
+            'x' => {
+                let hex: String = [it.next()?, it.next()?].iter().collect();
+                out.push(u8::from_str_radix(&hex, 16).ok()?);
+            }
+            'u' => {
+                if it.next()? != '{' {
+                    return None;
+                }
+                let mut hex = String::new();
+                loop {
+                    match it.next()? {
+                        '}' => break,
+                        h => hex.push(h),
+                    }
+                }
+                let c = char::from_u32(u32::from_str_radix(&hex, 16).ok()?)?;
+                let mut b = [0u8; 4];
+                out.extend_from_slice(c.encode_utf8(&mut b).as_bytes());
+            }
+            _ => return None,
+        }
+    }
+    Some(std::ffi::OsString::from_vec(out).into())
+}
+
 /// A path that prints escaped (for `tracing` fields: `file = %shown(path)`).
 pub struct Shown<'a>(&'a Path);
 
@@ -169,6 +210,20 @@ mod tests {
         );
         assert_eq!(text("a\u{2028}b\u{202e}c\r"), "a\\u{2028}b\\u{202e}c\\r");
         assert_eq!(text("keep \\d{10}"), "keep \\d{10}");
+    }
+
+    #[test]
+    fn escaped_paths_read_back_to_their_bytes() {
+        for raw in [
+            &b"/in/plain.grib2"[..],
+            b"/in/a\nb\rc\td\x1b\x7f",
+            b"/in/\xff\xfe\\xff\\\\",
+            "/in/\u{2028}\u{202e}é".as_bytes(),
+        ] {
+            let p = Path::new(OsStr::from_bytes(raw));
+            assert_eq!(unescape_path(&path(p)).as_deref(), Some(p), "{}", path(p));
+        }
+        assert_eq!(unescape_path("bad\\q"), None);
     }
 
     #[test]

@@ -190,7 +190,8 @@ struct InFlight {
 }
 
 /// Steps of one run (feed, member, grid) read and complete each other's files:
-/// on the scheduler they go one at a time, so each sees the ones before it.
+/// they go one at a time, on this machine as on the scheduler, so that each
+/// sees the ones before it published (its changes in time, and their images).
 fn chain(t: &StepTag) -> (&str, Option<u8>, &str) {
     (&t.feed, t.member, &t.grid)
 }
@@ -1033,11 +1034,11 @@ impl Daemon {
             let sched_ok = self.scheduler_usable();
             let jobs_free = self.jobs.len() < max_jobs;
             let pick = self.asm.next_where(self.cfg.service.order, &busy, |p| {
-                if self.executor(&p.tag.feed) == Executor::Local {
-                    return local_free;
-                }
                 if busy_chains.contains(&chain(&p.tag)) {
                     return false;
+                }
+                if self.executor(&p.tag.feed) == Executor::Local {
+                    return local_free;
                 }
                 if sched_ok {
                     jobs_free
@@ -1780,12 +1781,48 @@ impl Daemon {
 
     fn retention(&mut self) {
         let days = self.cfg.service.retention_days;
-        if days == 0 {
+        if days > 0 {
+            let now = Utc::now().naive_utc();
+            for r in &self.rules {
+                publish::apply_retention(&self.cfg.service.out_dir.join(&r.feed.name), days, now);
+            }
+        }
+        self.forget_old();
+    }
+
+    /// Forget what settled longer ago than `service.ledger_days` and compact
+    /// the journal when anything was forgotten or it has grown to more than
+    /// twice what its state needs: memory and restart time stay bounded by
+    /// that window, not by how long the service has run.
+    fn forget_old(&mut self) {
+        let days = i64::from(self.cfg.service.ledger_days_in_effect());
+        let forgotten = self
+            .ledger
+            .state
+            .forget(Utc::now().timestamp() - days * 86_400, |file| {
+                crate::escape::unescape_path(file).is_some_and(|p| p.symlink_metadata().is_ok())
+            });
+        // Cycles already said to be too old are said again at most once a window.
+        let cutoff = cycle_dir_name((Utc::now() - TimeDelta::days(days)).naive_utc());
+        self.too_old.retain(|(_, c)| *c >= cutoff);
+        let live = self.ledger.state.records().len();
+        if forgotten == 0 && self.ledger.lines() <= 2 * live + 10_000 {
             return;
         }
-        let now = Utc::now().naive_utc();
-        for r in &self.rules {
-            publish::apply_retention(&self.cfg.service.out_dir.join(&r.feed.name), days, now);
+        let t = Instant::now();
+        match self.ledger.compact() {
+            Ok((was, now)) => info!(
+                steps_forgotten = forgotten,
+                lines_before = was,
+                lines_after = now,
+                seconds = t.elapsed().as_secs_f64(),
+                ledger_days = days,
+                "ledger compacted"
+            ),
+            Err(e) => {
+                error!(error = %e, "ledger not compacted; the state directory needs attention");
+                self.metrics().ledger_errors += 1;
+            }
         }
     }
 

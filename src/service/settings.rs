@@ -48,6 +48,11 @@ pub struct Service {
     pub step_timeout_s: f64,
     /// Delete output cycles older than this many days; 0 keeps everything.
     pub retention_days: u32,
+    /// Days the ledger remembers settled steps and files gone from the
+    /// incoming directories (then forgotten, and the journal compacted); 0:
+    /// `retention_days`, or 14 when that is 0. Never less than
+    /// `catch_up_hours` and a day.
+    pub ledger_days: u32,
     /// Address of the health and metrics endpoint; empty: none.
     pub metrics_listen: String,
     /// Seconds to finish the steps in hand after SIGTERM before abandoning them.
@@ -154,6 +159,7 @@ impl Default for Service {
             settle_s: 10.0,
             step_timeout_s: 2700.0,
             retention_days: 0,
+            ledger_days: 0,
             metrics_listen: "127.0.0.1:9478".into(),
             shutdown_grace_s: 60.0,
             retry_first_s: 5.0,
@@ -165,6 +171,16 @@ impl Default for Service {
 }
 
 impl Service {
+    /// Days the ledger remembers, in effect (see [`Service::ledger_days`]).
+    pub fn ledger_days_in_effect(&self) -> u32 {
+        let asked = match (self.ledger_days, self.retention_days) {
+            (0, 0) => 14,
+            (0, r) => r,
+            (d, _) => d,
+        };
+        asked.max(self.catch_up_hours.div_ceil(24) + 1)
+    }
+
     /// The quarantine directory in effect.
     pub fn quarantine_dir(&self) -> PathBuf {
         if self.quarantine_dir.as_os_str().is_empty() {
@@ -512,6 +528,12 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
         p.push(format!(
             "service.slurm.program: {} must be an absolute path (the nodes run it)",
             b.program.display()
+        ));
+    }
+    if s.ledger_days > 36_500 {
+        p.push(format!(
+            "service.ledger_days: {} is more than 36500 (100 years)",
+            s.ledger_days
         ));
     }
     if s.retry_max_s < s.retry_first_s {

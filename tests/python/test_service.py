@@ -473,7 +473,9 @@ def test_bad_input_and_a_full_or_read_only_disk_keep_the_service_up(tmp_path):
         # Room again: the next retry publishes it.
         assert mount("-o", "remount,rw,size=64m", str(out))
         wait_for(lambda: len(svc.published()) == 1, 60, "published once there is room")
-        assert svc.metric("leeward_steps_published_total", feed="demo", state="complete") == 1
+        # The ledger's record comes first, the count right after it.
+        wait_for(lambda: svc.metric("leeward_steps_published_total", feed="demo",
+                                    state="complete") == 1, 30, "the publication counted")
         st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(tmp_path / "state")],
                             capture_output=True, text=True, timeout=30).stdout
         assert "quarantined files" in st and "unsupported grid" in st, st

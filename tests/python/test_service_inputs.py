@@ -307,3 +307,38 @@ def test_a_waiting_step_says_what_it_lacks_and_when_it_is_made_anyway(tmp_path):
     assert w["missing"][0] == "temperature at 925 hPa"
     assert w["made_by"] - w["first_seen"] == 600, w
     assert svc.stop() == 0
+
+
+def test_months_of_history_are_forgotten_and_the_ledger_compacted_at_start(tmp_path):
+    gen = demo_inputs(tmp_path / "gen", CYCLE, [0])
+    svc = Service(tmp_path).start()
+    deliver_renamed(gen[0].read_bytes(), tmp_path / "in" / gen[0].name)
+    wait_for(lambda: len(svc.published()) == 1, 120, "one step published")
+    assert svc.stop() == 0
+    # Five thousand steps published 30 days ago from files long gone, as months of
+    # running leave them: with the default window (14 days) all of it is forgotten.
+    ledger = tmp_path / "state" / "ledger.jsonl"
+    old = int(time.time()) - 30 * 86400
+    with open(ledger, "a") as f:
+        for k in range(5000):
+            step = {"feed": "demo", "cycle": f"2025{1 + k // 3000:02d}01T0000Z", "lead": k % 3000,
+                    "grid": "old"}
+            f.write(json.dumps({"event": "seen", "feed": "demo", "file": f"/gone/{k}.grib2",
+                                "size": 1, "mtime_ns": 1, "checksum": "c", "steps": [step],
+                                "at": old}) + "\n")
+            f.write(json.dumps({"event": "published", "step": step, "path": "p", "manifest": "m",
+                                "partial": False, "at": old}) + "\n")
+    before = len(ledger.read_text().splitlines())
+    svc.start()
+    wait_for(lambda: lines_with(svc, "ledger compacted"), 60, "the ledger compacted at start")
+    line = lines_with(svc, "ledger compacted")[0]
+    assert "steps_forgotten=5000" in line, line
+    after = ledger.read_text().splitlines()
+    assert len(after) < 30 < before, (len(after), before)
+    # What is recent is kept: the step published minutes ago, its input still there.
+    recs = [json.loads(x) for x in after]
+    assert [r["step"]["lead"] for r in recs if r["event"] == "published"] == [0]
+    assert any(r["event"] == "seen" and r["file"].endswith(gen[0].name) for r in recs)
+    time.sleep(2)
+    assert len(svc.published()) == 1, "nothing made again"
+    assert svc.stop() == 0
