@@ -103,6 +103,10 @@ pub fn default_scale(name: &str, level: &str) -> Option<Scale> {
         "trop_p" => reversed(f(S, 100.0, 500.0, 25.0)),
         "trop_theta" => f(S, 280.0, 380.0, 5.0),
         "trop_z" => f(S, 4000.0, 18_000.0, 1000.0),
+        // Deep folds and low crossings dark.
+        "trop_fold_dp" => reversed(f(S, 0.0, 300.0, 25.0)),
+        "trop_p_low" => reversed(f(S, 100.0, 700.0, 25.0)),
+        "trop_crossings" => f(S, 0.0, 6.0, 1.0),
         "trop_p_r2r" => f(D, -100.0, 100.0, 20.0),
         "thick_r2r" => f(D, -60.0, 60.0, 10.0),
         "z_r2r" => f(D, -80.0, 80.0, 10.0),
