@@ -12,3 +12,5 @@ pub mod inspect;
 pub mod params;
 pub mod source;
 pub mod unpack;
+#[rustfmt::skip]
+pub mod wmo_tables;

@@ -101,13 +101,13 @@ mod tests {
                 member: None,
                 grid: "g".into(),
             },
-            missing: vec!["temperature at 925 hPa".into()],
+            missing: vec!["Temperature at 925 hPa".into()],
             first_seen: 1_773_446_400,
             made_by: 1_773_446_400 + 2700,
         };
         assert_eq!(
             w.line(1_773_446_400 + 60),
-            "m/20260314T0000Z/006h waiting for temperature at 925 hPa; made anyway with what is there in 44 min (at 2026-03-14 00:45:00Z)"
+            "m/20260314T0000Z/006h waiting for Temperature at 925 hPa; made anyway with what is there in 44 min (at 2026-03-14 00:45:00Z)"
         );
         assert!(w.line(1_773_446_400 + 3000).contains(" now (at "));
         assert_eq!(span(7500), "2 h 5 min");

@@ -285,12 +285,12 @@ def test_a_waiting_step_says_what_it_lacks_and_when_it_is_made_anyway(tmp_path):
     wait_for(lambda: "waiting:" in (svc.get("/health") or (0, ""))[1], 60, "/health names the wait")
     health = svc.get("/health")[1]
     line = [ln for ln in health.splitlines() if ln.startswith("waiting:")][0]
-    assert "demo/20260314T0000Z/000h waiting for temperature at 925 hPa; " in line, health
-    assert "wind x-component at 925 hPa" in line and "geopotential height at 925 hPa" in line
+    assert "demo/20260314T0000Z/000h waiting for Temperature at 925 hPa; " in line, health
+    assert "u-component of wind at 925 hPa" in line and "Geopotential height at 925 hPa" in line
     assert "(arrived on levels not in levels_hpa: " in line and "950" in line, line
     assert "made anyway with what is there in 9 min" in line or "in 10 min" in line, line
     # The log said it when the file came.
-    logged = lines_with(svc, "input for step", "temperature at 925 hPa")
+    logged = lines_with(svc, "input for step", "Temperature at 925 hPa")
     assert len(logged) == 1 and "made_anyway_in_s=" in logged[0], log_lines(svc)[-10:]
     # leeward status, text and JSON.
     st = tmp_path / "state"
@@ -299,12 +299,12 @@ def test_a_waiting_step_says_what_it_lacks_and_when_it_is_made_anyway(tmp_path):
     from conftest import leeward_bin_path
     text = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(st)],
                           capture_output=True, text=True, timeout=30).stdout
-    assert "+0h waiting for temperature at 925 hPa" in text, text
+    assert "+0h waiting for Temperature at 925 hPa" in text, text
     assert "made anyway with what is there in " in text, text
     js = json.loads(subprocess.run([str(leeward_bin_path()), "status", "--json", "--state-dir",
                                     str(st)], capture_output=True, text=True, timeout=30).stdout)
     w = js["cycles"][0]["waiting_for"][0]
-    assert w["missing"][0] == "temperature at 925 hPa"
+    assert w["missing"][0] == "Temperature at 925 hPa"
     assert w["made_by"] - w["first_seen"] == 600, w
     assert svc.stop() == 0
 
