@@ -236,6 +236,11 @@ fn update(
     deflate: i32,
     nsb: u32,
 ) -> Option<PathBuf> {
+    // Nothing that holds no value is added to a file.
+    let (products, left_out) = crate::output::cf::leave_out_empty(products);
+    for (name, why) in &left_out {
+        info!(file = %path.display(), variable = %name, reason = %why, "change left out: no valid point");
+    }
     if products.is_empty() {
         return None;
     }
@@ -355,7 +360,7 @@ pub fn update_later(
 /// Budget variables on isentropic layers and surfaces.
 pub mod budget_vars {
     use crate::output::cf::Vertical;
-    use crate::output::variables::{VarSpec, PVU_UNITS};
+    use crate::output::variables::VarSpec;
 
     /// Predicted relative vorticity.
     pub const ZETA_PRED: VarSpec = VarSpec {
@@ -395,13 +400,11 @@ pub mod budget_vars {
         name: "bud_dpvdt",
         standard_name: None,
         long_name:
-            "Lagrangian rate of change of Ertel potential vorticity on the isentropic surface",
-        units: "1e-6 K m2 kg-1 s-1 h-1",
+            "Lagrangian rate of change of Ertel potential vorticity on the isentropic surface (1 PVU per hour = 2.78e-10 K m2 kg-1 s-2)",
+        units: "K m2 kg-1 s-2",
         formula:
-            "(P_a - P_d)/dt in PVU per hour, P_d at the departure point of the surface's own winds",
+            "(P_a - P_d)/dt, P_d at the departure point of the surface's own winds",
     };
-    /// The unit of PV, for reference.
-    pub const _PVU: &str = PVU_UNITS;
 
     /// Every budget variable with its vertical coordinate (layers for the
     /// column budget, surfaces for the PV change), as the budget writes them.
@@ -494,7 +497,7 @@ pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Pro
                 }
             }
         }
-        let note = ("leeward_budget_interval_h", format!("{dt_h}"));
+        let interval = ("leeward_budget_interval_h", dt_h);
         for (spec, data) in [
             (budget_vars::ZETA_PRED, pred),
             (budget_vars::ZETA, act),
@@ -502,7 +505,7 @@ pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Pro
             (budget_vars::STRETCH, str_),
         ] {
             let mut p = Product::new(spec, Vertical::ThetaLayer, data);
-            p.notes.push(note.clone());
+            p.numbers.push(interval);
             out.push(p);
         }
     }
@@ -533,13 +536,12 @@ pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Pro
             let pv_d = at_departure(pvo.index_axis(Axis(0), s), dj.view(), di.view(), g.periodic);
             for j in 0..ny {
                 for i in 0..nx {
-                    rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / dt_h) as f32;
+                    rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / dt) as f32;
                 }
             }
         }
         let mut p = Product::new(budget_vars::DPVDT, Vertical::Theta, rate);
-        p.notes
-            .push(("leeward_budget_interval_h", format!("{dt_h}")));
+        p.numbers.push(("leeward_budget_interval_h", dt_h));
         out.push(p);
     }
     out

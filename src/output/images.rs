@@ -156,8 +156,12 @@ pub fn write_images(product: &Path, p: &StepProducts, wanted: &[Wanted]) -> Vec<
         // Forecasters read pressure in hPa and PV in PVU.
         let (values, units) = match f.spec.units {
             "Pa" => (f.level(k).mapv(|x| x / 100.0), "hPa"),
-            "1e-6 K m2 kg-1 s-1" => (f.level(k), "PVU"),
-            "1e-6 K m2 kg-1 s-1 h-1" => (f.level(k), "PVU h-1"),
+            // 1 PVU = 1e-6 K m2 kg-1 s-1; 1 PVU per hour = 1e-6/3600 K m2 kg-1 s-2.
+            "K m2 kg-1 s-1" => (f.level(k).mapv(|x| (f64::from(x) * 1e6) as f32), "PVU"),
+            "K m2 kg-1 s-2" => (
+                f.level(k).mapv(|x| (f64::from(x) * 3.6e9) as f32),
+                "PVU h-1",
+            ),
             u => (f.level(k), u),
         };
         // The variable and level first: a long name may be cut at the image's edge.
