@@ -127,7 +127,8 @@ pub fn points(lon: &Array2<f64>, want: LongitudeRange) -> Array2<f64> {
         LongitudeRange::Auto => LongitudeRange::Signed,
         r => r,
     };
-    let in_range = |r: LongitudeRange| lon.mapv(|x| if x.is_finite() { wrap(x, r.low()) } else { x });
+    let in_range =
+        |r: LongitudeRange| lon.mapv(|x| if x.is_finite() { wrap(x, r.low()) } else { x });
     let jump = |a: &Array2<f64>| {
         let (ny, nx) = a.dim();
         let mut m: f64 = 0.0;
@@ -221,13 +222,17 @@ mod tests {
 
     #[test]
     fn point_longitudes_take_the_range_without_a_jump() {
-        let pacific = Array2::from_shape_fn((3, 5), |(_, i)| 175.0 + 2.0 * i as f64 - 360.0 * (i >= 3) as i32 as f64);
+        let pacific = Array2::from_shape_fn((3, 5), |(_, i)| {
+            175.0 + 2.0 * i as f64 - 360.0 * (i >= 3) as i32 as f64
+        });
         let out = points(&pacific, LongitudeRange::Auto);
         assert_eq!(out[(0, 0)], 175.0);
         assert_eq!(out[(0, 4)], 183.0);
         let europe = Array2::from_shape_fn((3, 5), |(_, i)| (350.0 + 5.0 * i as f64) % 360.0);
         let out = points(&europe, LongitudeRange::East);
         assert_eq!((out[(0, 0)], out[(0, 4)]), (-10.0, 10.0));
-        assert!(points(&europe, LongitudeRange::Auto).iter().all(|x| (-180.0..180.0).contains(x)));
+        assert!(points(&europe, LongitudeRange::Auto)
+            .iter()
+            .all(|x| (-180.0..180.0).contains(x)));
     }
 }

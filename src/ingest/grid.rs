@@ -101,7 +101,7 @@ impl Scan {
         if !self.j_positive {
             j = self.nj - 1 - j;
         }
-        if self.roll % self.ni != 0 {
+        if !self.roll.is_multiple_of(self.ni) {
             i = (i + self.ni - self.roll % self.ni) % self.ni;
         }
         (j, i)
@@ -605,12 +605,18 @@ mod tests {
         let v: Vec<f32> = (0..8).map(|x| x as f32).collect();
         let mut s = Scan::from_flags(4, 2, 0x40);
         s.roll = 1;
-        assert_eq!(s.normalise(&v), vec![1.0, 2.0, 3.0, 0.0, 5.0, 6.0, 7.0, 4.0]);
+        assert_eq!(
+            s.normalise(&v),
+            vec![1.0, 2.0, 3.0, 0.0, 5.0, 6.0, 7.0, 4.0]
+        );
         assert_eq!(s.position(0), (0, 3));
         // The general path (east to west in the file) agrees.
         let mut s = Scan::from_flags(4, 2, 0xc0);
         s.roll = 1;
-        assert_eq!(s.normalise(&v), vec![2.0, 1.0, 0.0, 3.0, 6.0, 5.0, 4.0, 7.0]);
+        assert_eq!(
+            s.normalise(&v),
+            vec![2.0, 1.0, 0.0, 3.0, 6.0, 5.0, 4.0, 7.0]
+        );
     }
 
     #[test]

@@ -374,7 +374,6 @@ fn nc(path: &Path) -> impl Fn(netcdf::Error) -> OutputError + '_ {
     }
 }
 
-
 /// Write `p` to `dir/name` atomically (temporary, fsync, rename).
 pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, OutputError> {
     let final_path = dir.join(name);
@@ -725,7 +724,10 @@ fn vertical_coordinates(f: &mut netcdf::FileMut, p: &StepProducts) -> netcdf::Re
         });
     }
     let one_layer: Vec<(String, [[f64; 2]; 1])> = if uses(Vertical::PressureLayer) {
-        p.p_layers.iter().map(|l| (layer_coordinate(*l), [*l])).collect()
+        p.p_layers
+            .iter()
+            .map(|l| (layer_coordinate(*l), [*l]))
+            .collect()
     } else {
         Vec::new()
     };
@@ -748,7 +750,8 @@ fn vertical_coordinates(f: &mut netcdf::FileMut, p: &StepProducts) -> netcdf::Re
         let c = VerticalCoord {
             name: "p_layer",
             standard_name: "air_pressure",
-            long_name: "pressure at the middle of the isobaric layer; its bottom and top are the bounds",
+            long_name:
+                "pressure at the middle of the isobaric layer; its bottom and top are the bounds",
             units: "Pa",
             positive: "down",
             values: vec![0.5 * (layer[0][0] + layer[0][1])],

@@ -382,7 +382,9 @@ pub fn add_variables_to(
         let mut direct: Vec<(String, super::pack::Packed)> = Vec::new();
         let layers = pressure_layers(&f);
         for prod in vars {
-            let targets: Vec<super::cf::Target> = if prod.vertical == super::cf::Vertical::PressureLayer {
+            let targets: Vec<super::cf::Target> = if prod.vertical
+                == super::cf::Vertical::PressureLayer
+            {
                 // Level k of a layer product is the file's k-th layer (changes are
                 // taken only between files whose layers agree).
                 if layers.len() != prod.dim().0 {
@@ -408,8 +410,16 @@ pub fn add_variables_to(
                 }]
             };
             for t in targets {
-                add_one(&mut f, prod, &t, (ydim, xdim), &coords, (deflate, significant_bits), &mut direct)
-                    .map_err(e)?;
+                add_one(
+                    &mut f,
+                    prod,
+                    &t,
+                    (ydim, xdim),
+                    &coords,
+                    (deflate, significant_bits),
+                    &mut direct,
+                )
+                .map_err(e)?;
             }
         }
         f.close().map_err(e)?;

@@ -94,8 +94,12 @@ pub fn pvu_to_si(pvu: f64) -> f64 {
 /// temperature difference inside compound units (PV, static stability).
 pub fn units_metadata(units: &str, standard_name: Option<&str>) -> Option<&'static str> {
     let has_kelvin = units.split_whitespace().any(|t| {
-        t.strip_prefix('K')
-            .is_some_and(|r| r.is_empty() || r.trim_start_matches('-').bytes().all(|b| b.is_ascii_digit()))
+        t.strip_prefix('K').is_some_and(|r| {
+            r.is_empty()
+                || r.trim_start_matches('-')
+                    .bytes()
+                    .all(|b| b.is_ascii_digit())
+        })
     });
     match (units, standard_name) {
         ("K", Some(n)) if n.contains("difference") || n.contains("anomaly") => {
@@ -261,10 +265,19 @@ mod tests {
     #[test]
     fn temperatures_say_whether_they_are_on_scale_or_differences() {
         // CF 1.11 section 3.1.3.
-        assert_eq!(units_metadata("K", Some("air_temperature")), Some("temperature: on_scale"));
+        assert_eq!(
+            units_metadata("K", Some("air_temperature")),
+            Some("temperature: on_scale")
+        );
         assert_eq!(units_metadata("K", None), Some("temperature: on_scale"));
-        assert_eq!(units_metadata(PV_UNITS, Some("ertel_potential_vorticity")), Some("temperature: difference"));
-        assert_eq!(units_metadata("K Pa-1", None), Some("temperature: difference"));
+        assert_eq!(
+            units_metadata(PV_UNITS, Some("ertel_potential_vorticity")),
+            Some("temperature: difference")
+        );
+        assert_eq!(
+            units_metadata("K Pa-1", None),
+            Some("temperature: difference")
+        );
         assert_eq!(units_metadata("K2", None), Some("temperature: difference"));
         assert_eq!(units_metadata("kg m-2", None), None);
         assert_eq!(units_metadata("Pa", Some("air_pressure")), None);
