@@ -441,6 +441,9 @@ pub fn check(text: &str, origin: &str) -> Result<Config, Vec<String>> {
                 };
                 match kt.get(key) {
                     None => out.push(format!("{p}: unknown key")),
+                    // An empty table by default is a map of the user's own keys
+                    // (`output.institutions`): any key is known.
+                    Some(ks) if ks.as_table().is_some_and(|t| t.is_empty()) => {}
                     Some(ks) if ks.is_table() => unknown(sub, ks, &p, out),
                     _ => {}
                 }
@@ -543,7 +546,9 @@ fn prune(v: &mut toml::Value, known: &toml::Value, feed: &toml::Value, products:
         if let (Some(t), Some(kt)) = (v.as_table_mut(), k.as_table()) {
             t.retain(|key, _| kt.contains_key(key));
             for (key, sub) in t.iter_mut() {
-                if let Some(ks) = kt.get(key).filter(|x| x.is_table()) {
+                // A map of the user's own keys (empty by default) is kept whole.
+                let free = |x: &toml::Value| x.as_table().is_some_and(|t| t.is_empty());
+                if let Some(ks) = kt.get(key).filter(|x| x.is_table() && !free(x)) {
                     walk(sub, ks);
                 }
             }

@@ -302,7 +302,7 @@ fn why_empty(f: &Product) -> &'static str {
             "every point is missing: a vertical derivative needs two or more isobaric levels with values"
         }
         (Vertical::Theta, _) => {
-            "every point is missing: no configured isentropic surface lies between the input's isobaric levels"
+            "every point is missing: no configured isentropic surface lies between two isobaric levels of a stable layer"
         }
         (Vertical::PvSurface, _) => {
             "every point is missing: no column crosses a configured PV surface"

@@ -63,6 +63,7 @@ class Kind:
     config: str = ""
     leads: tuple = (36,)
     patch_negative_lon: bool = False
+    member: int | None = None
 
 
 def _kinds() -> dict[str, Kind]:
@@ -82,6 +83,7 @@ def _kinds() -> dict[str, Kind]:
         "rotated": Kind(g["rotated_europe_0p5"]),
         "mercator": Kind(g["mercator_pacific"]),
         "changes_and_budget": Kind(ll("ll0", 0.0), leads=(30, 36)),
+        "ensemble_member": Kind(g["lambert_secant_30_60"], member=7),
     }
 
 
@@ -117,6 +119,32 @@ def wavy_step(path: Path, grid: gribgen.Grid, lead: int) -> Path:
             msgs.append(gribgen.encode_field(grid, geo, values, param, lev, **kw))
     path.write_bytes(b"".join(msgs))
     return path
+
+
+def as_member(path: Path, number: int) -> None:
+    """Make every message a forecast of ensemble member `number`: product definition
+    template 4.1 (individual ensemble forecast), perturbation number `number` of 51
+    (WMO-No. 306 code table 4.6 type 3, positively perturbed), set by ecCodes."""
+    out = []
+    for msg in _messages(path.read_bytes()):
+        h = eccodes.codes_new_from_message(msg)
+        try:
+            eccodes.codes_set_long(h, "productDefinitionTemplateNumber", 1)
+            eccodes.codes_set_long(h, "typeOfEnsembleForecast", 3)
+            eccodes.codes_set_long(h, "perturbationNumber", number)
+            eccodes.codes_set_long(h, "numberOfForecastsInEnsemble", 51)
+            out.append(eccodes.codes_get_message(h))
+        finally:
+            eccodes.codes_release(h)
+    path.write_bytes(b"".join(out))
+
+
+def _messages(data: bytes):
+    at = 0
+    while (at := data.find(b"GRIB", at)) >= 0:
+        total = int.from_bytes(data[at + 8:at + 16], "big")
+        yield data[at:at + total]
+        at += total
 
 
 def negative_first_longitude(path: Path) -> None:
@@ -158,9 +186,11 @@ def made(leeward_bin, tmp_path_factory) -> dict[str, Made]:
         d = root / name
         d.mkdir()
         inputs = [wavy_step(d / f"in_{lead:03d}.grib2", k.grid, lead) for lead in k.leads]
-        if k.patch_negative_lon:
-            for p in inputs:
+        for p in inputs:
+            if k.patch_negative_lon:
                 negative_first_longitude(p)
+            if k.member is not None:
+                as_member(p, k.member)
         cfg = None
         if k.config:
             cfg = d / "leeward.toml"
@@ -176,6 +206,36 @@ def made(leeward_bin, tmp_path_factory) -> dict[str, Made]:
 def _data_variables(ds) -> list[str]:
     """Names of the data variables: four dimensions and a grid mapping (output contract)."""
     return [n for n, v in ds.variables.items() if v.ndim == 4 and "grid_mapping" in v.ncattrs()]
+
+
+def test_cf_1_11_attributes(made):
+    # CF 1.11 (and leeward's output contract, docs/output.md): bit rounding said by the CF
+    # quantization container (section 8.4: algorithm bitround, quantization_nsb) and not by
+    # an attribute of leeward's own; units_metadata on temperatures (3.1.3) and time (4.4.3);
+    # axis Z on every vertical coordinate; the member as a realization coordinate (section
+    # 5.7 scalar coordinate, standard name realization); angles written without a minus zero.
+    for kind in CLIENT_KINDS:
+        with netCDF4.Dataset(made[kind].file) as ds:
+            q = ds["quantization_info"]
+            assert (q.getncattr("algorithm"), q.ncattrs().count("implementation")) == ("bitround", 1)
+            assert ds["time"].getncattr("units_metadata") == "leap_seconds: none"
+            for n in _data_variables(ds):
+                a = {k: ds[n].getncattr(k) for k in ds[n].ncattrs()}
+                assert (a.get("quantization"), a.get("quantization_nsb")) == ("quantization_info", 16), (kind, n)
+                assert not any(k.startswith("leeward_significant") for k in a), (kind, n)
+                if a.get("units") == "K":
+                    assert a.get("units_metadata") == "temperature: on_scale", (kind, n)
+                vdim = ds[n].dimensions[1]
+                assert ds[vdim].getncattr("axis") == "Z", (kind, n, vdim)
+                coords = a["coordinates"].split()
+                assert ("realization" in coords) == (kind == "ensemble_member"), (kind, n, coords)
+            assert "leeward_member" not in ds.ncattrs()
+            if kind == "ensemble_member":
+                r = ds["realization"]
+                assert (r.getncattr("standard_name"), int(r[...])) == ("realization", 7)
+            for name, value in {k: ds["crs"].getncattr(k) for k in ds["crs"].ncattrs()}.items():
+                if isinstance(value, (float, np.floating)):
+                    assert not (value == 0 and np.signbit(value)), f"{kind}: crs {name} is -0"
 
 
 def test_the_budget_and_changes_are_in_the_file_checked(made):
