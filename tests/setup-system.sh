@@ -19,6 +19,9 @@ command -v ncdump >/dev/null 2>&1 || need+=(netcdf-bin)
 # checker, its udunits2 program for the unit checks).
 /usr/bin/python3 -c 'from osgeo import gdal' >/dev/null 2>&1 || need+=(gdal-bin python3-gdal)
 command -v udunits2 >/dev/null 2>&1 || need+=(udunits-bin libudunits2-0)
+# Chromium and its driver: the cycle page's test loads the page in a real headless browser.
+[ -x /usr/bin/chromium ] || need+=(chromium)
+[ -x /usr/bin/chromedriver ] || need+=(chromium-driver)
 
 if [ ${#need[@]} -gt 0 ]; then
   if [ "$(id -u)" = 0 ]; then
