@@ -320,10 +320,16 @@ impl Metrics {
             self.reloads.1.to_string(),
         );
         if self.scheduler.used {
-            o.push_str("# HELP leeward_scheduler_jobs_ended_total Step jobs that ended without a result, by scheduler state.\n# TYPE leeward_scheduler_jobs_ended_total counter\n");
+            o.push_str("# HELP leeward_scheduler_jobs_ended_total Step jobs that ended without a result, by the scheduler's state or leeward's own outcome.\n# TYPE leeward_scheduler_jobs_ended_total counter\n");
             for (state, n) in &self.scheduler.ended {
+                // leeward's own words go under their own label, apart from the scheduler's states.
+                let label = if crate::service::batch::outcome::ALL.contains(&state.as_str()) {
+                    "outcome"
+                } else {
+                    "state"
+                };
                 o.push_str(&format!(
-                    "leeward_scheduler_jobs_ended_total{{state=\"{}\"}} {n}\n",
+                    "leeward_scheduler_jobs_ended_total{{{label}=\"{}\"}} {n}\n",
                     esc(state)
                 ));
             }
