@@ -38,6 +38,11 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
     for nc in ncs:
         m = json.loads(nc.with_suffix(".json").read_text())
         assert m["state"] == "complete"
+        # The demo's invented centre (GRIB2 centre 255, "missing" in WMO common code table
+        # C-11) is named by the demo's configuration (output.institutions), not a number.
+        import netCDF4
+        with netCDF4.Dataset(nc) as ds:
+            assert ds.getncattr("institution") == "Harrowmere Forecast Centre (invented for the leeward demo)"
         assert m["images"], "quicklooks listed in the manifest"
         # Every configured image of the demo (src/demo/play.rs) is there; the PV
         # budget's, read back from the file, from the second step on.

@@ -761,3 +761,36 @@ def test_permission_denied_on_the_output_is_retried_until_it_is_fixed():
         assert svc.stop() == 0
     finally:
         shutil.rmtree(root, ignore_errors=True)
+
+
+def test_the_manifest_lists_the_variables_left_out_and_why(tmp_path):
+    # Output contract (docs/output.md "Variables left out"): a step whose input has one
+    # isobaric level (500 hPa) cannot bracket an isentropic surface nor take a vertical
+    # derivative; those variables are not written, and the manifest's left_out says which
+    # and why, beside the log's warning per variable.
+    import eccodes
+    svc = Service(tmp_path, extra='complete = "files"\nfiles_per_step = 1')
+    svc.cfg.write_text(svc.cfg.read_text().replace(f"levels_hpa = {LEVELS_HPA}", "levels_hpa = [500]"))
+    svc.start()
+    f = demo_inputs(tmp_path / "gen", "2026031400", [0])[0]
+    keep = []
+    for m in messages(f.read_bytes()):
+        h = eccodes.codes_new_from_message(m)
+        try:
+            isobaric = eccodes.codes_get_long(h, "typeOfFirstFixedSurface") == 100
+            hpa = eccodes.codes_get_double(h, "level")
+        finally:
+            eccodes.codes_release(h)
+        if not isobaric or hpa == 500:
+            keep.append(m)
+    deliver_renamed(b"".join(keep), tmp_path / "in" / f.name)
+    wait_for(lambda: len(svc.published()) == 1, 120, "the one-level step published")
+    m = json.loads(Path(svc.published()[0]["manifest"]).read_text())
+    out = {x.split(":")[0]: x for x in m["left_out"]}
+    for name in ("isen_p", "isen_t", "stab", "n2"):
+        assert name in out and "every point is missing" in out[name], (name, m["left_out"])
+        assert name not in m["variables"], (name, m["variables"])
+    assert "zeta" in m["variables"], m["variables"]
+    log = svc.log.read_text()
+    assert "variable left out: no valid point" in log and "isen_p" in log, log[-3000:]
+    assert svc.stop() == 0
