@@ -332,7 +332,19 @@ pub fn add_variables_to(
             let (spec, vertical, notes) = (&prod.spec, prod.vertical.dim(), &prod.notes);
             let is_new = f.variable(spec.name).is_none();
             if !is_new {
-                // Already there (written earlier): values are replaced in place below.
+                // Already there (written earlier): values are replaced in place
+                // below, and what the notes say (the budget's interval, the
+                // previous cycle's file) is said again, so that the file is the
+                // same whatever order its steps came in.
+                let mut v = f
+                    .variable_mut(spec.name)
+                    .ok_or_else(|| OutputError::NetCdf {
+                        path: tmp.clone(),
+                        source: netcdf::Error::from("variable vanished"),
+                    })?;
+                for (n, t) in notes {
+                    v.put_attribute(n, t.as_str()).map_err(e)?;
+                }
             } else {
                 let mut v = f
                     .add_variable::<f32>(spec.name, &["time", vertical, ydim, xdim])
