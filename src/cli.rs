@@ -121,6 +121,10 @@ pub enum Command {
         /// Print JSON instead of text.
         #[arg(long)]
         json: bool,
+        /// Check every shown product against its manifest's SHA-256 too (reads each
+        /// file whole), not only its size.
+        #[arg(long)]
+        verify: bool,
     },
     /// List what is in GRIB2 files: per field the quantity, level, times, grid, packing and value range.
     Inspect {
@@ -265,7 +269,8 @@ pub fn main() -> ExitCode {
             state_dir,
             cycles,
             json,
-        } => ExitCode::from(status(&state_dir, cycles, json)),
+            verify,
+        } => ExitCode::from(status(&state_dir, cycles, json, verify)),
         Command::Reprocess {
             state_dir,
             feed,
@@ -518,8 +523,8 @@ pub fn man(out: &std::path::Path) -> u8 {
 }
 
 /// `leeward status`: returns the exit code.
-pub fn status(state_dir: &std::path::Path, cycles: usize, json: bool) -> u8 {
-    match crate::service::status::report(state_dir, cycles) {
+pub fn status(state_dir: &std::path::Path, cycles: usize, json: bool, verify: bool) -> u8 {
+    match crate::service::status::report(state_dir, cycles, verify) {
         Ok(r) => {
             if json {
                 match serde_json::to_string_pretty(&r) {

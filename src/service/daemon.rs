@@ -19,7 +19,8 @@ use tracing::{debug, error, info, warn};
 
 use super::assemble::{isobaric, Assembly, Contribution, Phase};
 use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
-use super::ledger::{FailKind, Ledger, Outcome, Record, StepTag};
+use super::commit::{self, StagedFile};
+use super::ledger::{FailKind, Journal, Ledger, Outcome, Record, StepTag};
 use super::metrics::Metrics;
 use super::publish::{self, StepFacts};
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
@@ -144,6 +145,7 @@ struct Job {
     partial: bool,
     last_input: f64,
     not_arrived: Vec<String>,
+    journal: Arc<Journal>,
 }
 
 /// What a worker reports.
@@ -253,8 +255,12 @@ fn run_job(job: &Job) -> JobOutcome {
         }
         Err((file, e)) => return JobOutcome::Vanished(file, e),
     };
-    if let Err(e) = std::fs::create_dir_all(&job.dir) {
-        return JobOutcome::OutputFailed(format!("cannot create {}: {e}", job.dir.display()));
+    // The step's files and its additions to published ones are written into
+    // a staging directory, then published as one act (see `commit`).
+    let stage = commit::local_stage(&job.store, &job.tag);
+    if let Err(e) = std::fs::create_dir_all(&job.dir).and_then(|()| std::fs::create_dir_all(&stage))
+    {
+        return JobOutcome::OutputFailed(format!("cannot create {}: {e}", stage.display()));
     }
     let facts = StepFacts::of(
         &job.tag.feed,
@@ -264,28 +270,19 @@ fn run_job(job: &Job) -> JobOutcome {
         job.last_input,
         job.not_arrived.clone(),
     );
-    let written: Mutex<Option<(PathBuf, f64)>> = Mutex::new(None);
+    let written: Mutex<Option<(PathBuf, PathBuf, f64)>> = Mutex::new(None);
     let hook = |rep: &StepReport| -> Result<(), String> {
-        let Some(product) = &rep.output else {
-            return Err("no product file".into());
-        };
-        let m = publish::write_manifest(product, rep, &facts).map_err(|e| {
-            format!(
-                "cannot write the manifest {}: {e}",
-                publish::manifest_path(product).display()
-            )
-        })?;
-        // The step's own file is among the updated ones (its budget against the
-        // step before): its manifest was just written from the file as it is.
-        for u in rep.updated.iter().filter(|u| *u != product) {
-            if let Err(e) = publish::revise_manifest(u) {
-                warn!(file = %u.display(), error = %e, "manifest of an updated product not revised");
-            }
-        }
+        let made = staged_files(rep, &job.tag, &stage, &job.store, &job.dir)?;
+        let intent = commit::stage_manifests(&made, rep, &facts)?;
+        commit::publish(&job.journal, &intent)?;
         let latency = (unix_now() - facts.last_input).max(0.0);
         *written
             .lock()
-            .unwrap_or_else(std::sync::PoisonError::into_inner) = Some((m, latency));
+            .unwrap_or_else(std::sync::PoisonError::into_inner) = Some((
+            made.product.target.clone(),
+            PathBuf::from(&intent.publishing.manifest),
+            latency,
+        ));
         Ok(())
     };
     let dest = Destination {
@@ -293,16 +290,18 @@ fn run_job(job: &Job) -> JobOutcome {
         dir: &job.dir,
         lock: Some(&job.lock),
         on_published: Some(&hook),
-        stage: None,
+        stage: Some(&stage),
     };
-    let rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
-    let manifest = written
+    let mut rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
+    commit::remove_stage(&stage);
+    let published = written
         .lock()
         .unwrap_or_else(std::sync::PoisonError::into_inner)
         .take();
     if rep.output_failed {
         JobOutcome::OutputFailed(rep.skipped.clone().unwrap_or_else(|| "write failed".into()))
-    } else if let (Some(path), Some((manifest, latency))) = (rep.output.clone(), manifest) {
+    } else if let Some((path, manifest, latency)) = published {
+        rep.output = Some(path.clone());
         JobOutcome::Published {
             path,
             manifest,
@@ -316,6 +315,45 @@ fn run_job(job: &Job) -> JobOutcome {
                 .unwrap_or_else(|| "nothing could be made from the input".into()),
         )
     }
+}
+
+/// The files a step made in its staging directory, each with its place in
+/// the output tree (`dir` for its own, the cycle directory under `store` for
+/// an update of a published file).
+fn staged_files<'a>(
+    rep: &StepReport,
+    tag: &'a StepTag,
+    stage: &'a Path,
+    store: &Path,
+    dir: &Path,
+) -> Result<commit::Made<'a>, String> {
+    let Some(own) = &rep.output else {
+        return Err("no product file".into());
+    };
+    let read = |staged: &Path, target: PathBuf| {
+        StagedFile::read(staged, target)
+            .map_err(|e| format!("staged file {} unreadable: {e}", staged.display()))
+    };
+    let beside = |p: &Path| dir.join(p.file_name().unwrap_or_default());
+    let product = read(own, beside(own))?;
+    let images = rep
+        .images
+        .iter()
+        .map(|i| read(i, beside(i)))
+        .collect::<Result<Vec<_>, _>>()?;
+    let mut updated = Vec::new();
+    for u in rep.updated.iter().filter(|u| *u != own) {
+        let target = commit::update_target(stage, store, u)
+            .ok_or_else(|| format!("{}: an update outside the staging layout", u.display()))?;
+        updated.push(read(u, target)?);
+    }
+    Ok(commit::Made {
+        step: tag,
+        stage,
+        product,
+        images,
+        updated,
+    })
 }
 
 /// What a caught panic said.
@@ -988,6 +1026,7 @@ impl Daemon {
                 partial,
                 last_input: p.last_input(),
                 not_arrived,
+                journal: self.ledger.journal(),
             };
             if self.executor(&tag.feed) == Executor::Slurm && sched_ok {
                 let attempt = self
@@ -1149,11 +1188,12 @@ impl Daemon {
                 j.phase = JobPhase::Taking;
                 let (spec, stage) = (j.spec.clone(), j.stage.clone());
                 let lock = self.lock_of(&tag.feed);
+                let journal = self.ledger.journal();
                 let tx = self.done_tx.clone();
                 std::thread::spawn(move || {
                     crate::output::quiet_hdf5_errors();
                     let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                        let t = taken_outcome(batch::take(&spec, &stage, &lock));
+                        let t = taken_outcome(batch::take(&spec, &stage, &lock, &journal));
                         crate::output::release_hdf5_free_lists();
                         t
                     }))
@@ -1330,6 +1370,69 @@ impl Daemon {
             partial: spec.partial,
             last_input: spec.last_input,
             not_arrived: spec.not_arrived.clone(),
+            journal: self.ledger.journal(),
+        }
+    }
+
+    /// At start: finish the publications a stop cut short (recorded in the
+    /// ledger, not yet recorded as published). One the file system refuses
+    /// now stays recorded and is tried again at the next start; one that
+    /// cannot be finished is abandoned and its step made again. Then the
+    /// local workers' staging directories left behind are removed.
+    fn recover_publications(&mut self) {
+        let open: Vec<(StepTag, super::ledger::Publishing)> = self
+            .ledger
+            .state
+            .publishing
+            .iter()
+            .map(|(t, p)| (t.clone(), p.clone()))
+            .collect();
+        let mut kept = Vec::new();
+        for (tag, p) in open {
+            match commit::recover(&tag, &p) {
+                Ok(true) => {
+                    self.record(Record::Published {
+                        step: tag.clone(),
+                        path: p.product.clone(),
+                        manifest: p.manifest.clone(),
+                        partial: p.partial,
+                        at: Utc::now().timestamp(),
+                    });
+                    self.last_published = Some(format!("{tag}"));
+                }
+                Ok(false) => {
+                    self.record(Record::Abandoned {
+                        step: tag.clone(),
+                        reason: "a file of the publication is neither staged nor in place".into(),
+                        at: Utc::now().timestamp(),
+                    });
+                    self.fail(
+                        &tag,
+                        FailKind::Output,
+                        "a publication cut short could not be finished; made again".into(),
+                    );
+                }
+                Err(e) => {
+                    error!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, error = %e, "publication cut short not finished: the file system refused; tried again at the next start");
+                    kept.push(PathBuf::from(&p.stage));
+                }
+            }
+        }
+        let feeds: Vec<PathBuf> = self
+            .rules
+            .iter()
+            .map(|r| self.cfg.service.out_dir.join(&r.feed.name))
+            .collect();
+        for f in &feeds {
+            let Ok(rd) = std::fs::read_dir(f.join(commit::STAGE_DIR)) else {
+                continue;
+            };
+            for e in rd.flatten() {
+                if !kept.contains(&e.path()) {
+                    info!(dir = %e.path().display(), "staging directory of a step in hand at the last stop removed");
+                    commit::remove_stage(&e.path());
+                }
+            }
         }
     }
 
@@ -1440,6 +1543,7 @@ impl Daemon {
             } => {
                 let partial =
                     publish::read_manifest(&manifest).is_some_and(|m| m.state == "partial");
+                commit::crash_point("before-record");
                 info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %path.display(), manifest = %manifest.display(), partial, latency_s = latency, seconds = report.seconds, "published");
                 for i in &report.issues {
                     warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %i.file.display(), field = ?i.field, what = %i.what, reason = %i.reason, "input problem");
@@ -1866,6 +1970,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         .values()
         .filter(|s| matches!(s.outcome, Outcome::Waiting))
         .count();
+    d.recover_publications();
     d.recover_jobs();
     d.start_watchers();
     d.retention();

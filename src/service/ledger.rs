@@ -14,6 +14,7 @@ use std::collections::BTreeMap;
 use std::fs::{File, OpenOptions};
 use std::io::{BufRead, BufReader, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
 
 use serde::{Deserialize, Serialize};
 use thiserror::Error;
@@ -176,6 +177,37 @@ pub enum Record {
         /// When.
         at: i64,
     },
+    /// A step's files are staged and about to be renamed into place: every
+    /// rename of its publication, written before the first one, so that a
+    /// stop part of the way through is finished at the next start. Closed by
+    /// the step's `published` record, or by `abandoned`.
+    Publishing {
+        /// The step.
+        step: StepTag,
+        /// The staging directory the files come from.
+        stage: String,
+        /// The step's product file in the output tree.
+        product: String,
+        /// Its manifest (the last rename).
+        manifest: String,
+        /// Made at the timeout with what was there.
+        partial: bool,
+        /// The renames, in order.
+        moves: Vec<Move>,
+        /// When.
+        at: i64,
+    },
+    /// A publication cut short that could not be finished (a file neither
+    /// staged nor in place): its manifests were made to match their files and
+    /// the step is made again.
+    Abandoned {
+        /// The step.
+        step: StepTag,
+        /// Why.
+        reason: String,
+        /// When.
+        at: i64,
+    },
     /// An operator asked for a cycle (or one step of it) to be made again.
     Reprocess {
         /// The feed.
@@ -187,6 +219,37 @@ pub enum Record {
         /// When.
         at: i64,
     },
+}
+
+/// One rename of a publication: a staged file and its place in the output
+/// tree, with the size and SHA-256 (hex) it has.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Move {
+    /// In the staging directory.
+    pub staged: String,
+    /// In the output tree.
+    pub target: String,
+    /// Size, bytes.
+    pub bytes: u64,
+    /// SHA-256, hex.
+    pub sha256: String,
+}
+
+/// A publication whose renames were recorded and whose end was not.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Publishing {
+    /// The staging directory.
+    pub stage: String,
+    /// The step's product.
+    pub product: String,
+    /// Its manifest.
+    pub manifest: String,
+    /// Made at the timeout.
+    pub partial: bool,
+    /// The renames, in order.
+    pub moves: Vec<Move>,
+    /// When it was recorded.
+    pub at: i64,
 }
 
 /// What identifies a step in the ledger.
@@ -325,6 +388,9 @@ pub struct State {
     pub started: Option<(String, u32, i64)>,
     /// Last clean stop after the last start.
     pub stopped: Option<(String, i64)>,
+    /// Publications recorded and not finished (a stop between their first
+    /// rename and their `published` record): finished at the next start.
+    pub publishing: BTreeMap<StepTag, Publishing>,
 }
 
 impl State {
@@ -377,6 +443,7 @@ impl State {
                 partial,
                 at,
             } => {
+                self.publishing.remove(step);
                 let s = self.step_mut(step, *at);
                 s.job = None;
                 s.outcome = Outcome::Published {
@@ -439,6 +506,30 @@ impl State {
                         s.job = None;
                     }
                 }
+            }
+            Record::Publishing {
+                step,
+                stage,
+                product,
+                manifest,
+                partial,
+                moves,
+                at,
+            } => {
+                self.publishing.insert(
+                    step.clone(),
+                    Publishing {
+                        stage: stage.clone(),
+                        product: product.clone(),
+                        manifest: manifest.clone(),
+                        partial: *partial,
+                        moves: moves.clone(),
+                        at: *at,
+                    },
+                );
+            }
+            Record::Abandoned { step, .. } => {
+                self.publishing.remove(step);
             }
             Record::Reprocess {
                 feed,
@@ -520,10 +611,40 @@ pub fn read_state(state_dir: &Path) -> Result<State, LedgerError> {
     Ok(state)
 }
 
+/// The journal's file, shared by the main loop and the threads that publish
+/// (they record a publication's renames before making them). Each record is
+/// one line, written whole and fsynced before `write` returns.
+pub struct Journal {
+    path: PathBuf,
+    file: Mutex<File>,
+}
+
+impl Journal {
+    /// Append one record and fsync it.
+    pub fn write(&self, r: &Record) -> Result<(), LedgerError> {
+        let io = |source| LedgerError::Io {
+            path: self.path.clone(),
+            source,
+        };
+        let mut line = serde_json::to_string(r).map_err(|e| io(std::io::Error::other(e)))?;
+        line.push('\n');
+        let mut f = self
+            .file
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        f.write_all(line.as_bytes()).map_err(io)?;
+        f.sync_data().map_err(io)
+    }
+
+    /// Where the journal lives.
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+}
+
 /// An open journal.
 pub struct Ledger {
-    path: PathBuf,
-    file: File,
+    journal: Arc<Journal>,
     /// The state, kept in step with the journal.
     pub state: State,
 }
@@ -553,26 +674,30 @@ impl Ledger {
             file.set_len(good_len).map_err(io)?;
             file.sync_all().map_err(io)?;
         }
-        Ok(Ledger { path, file, state })
+        Ok(Ledger {
+            journal: Arc::new(Journal {
+                path,
+                file: Mutex::new(file),
+            }),
+            state,
+        })
     }
 
     /// Append one record, fsynced before returning, and apply it to the state.
     pub fn append(&mut self, r: Record) -> Result<(), LedgerError> {
-        let io = |source| LedgerError::Io {
-            path: self.path.clone(),
-            source,
-        };
-        let mut line = serde_json::to_string(&r).map_err(|e| io(std::io::Error::other(e)))?;
-        line.push('\n');
-        self.file.write_all(line.as_bytes()).map_err(io)?;
-        self.file.sync_data().map_err(io)?;
+        self.journal.write(&r)?;
         self.state.apply(&r);
         Ok(())
     }
 
+    /// The journal, for a thread that records a publication.
+    pub fn journal(&self) -> Arc<Journal> {
+        self.journal.clone()
+    }
+
     /// Where the journal lives.
     pub fn path(&self) -> &Path {
-        &self.path
+        self.journal.path()
     }
 }
 
