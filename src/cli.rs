@@ -87,7 +87,7 @@ pub enum Command {
             default_value = "0,6,12,18,24,30,36,42,48"
         )]
         leads: Vec<u32>,
-        /// Seconds between the steps' deliveries.
+        /// Seconds between a step's publication and the next step's delivery.
         #[arg(long, default_value_t = 1.0)]
         pause: f64,
     },

@@ -1,8 +1,10 @@
 //! The demo played through the real service: `leeward demo` writes the
 //! invented cycle as GRIB2, starts `leeward serve` on a directory of its own,
 //! delivers the files one step at a time as a model would (written under a
-//! hidden name, renamed into place), and reports per step what arrived, what
-//! was published and how long it took.
+//! hidden name, renamed into place; each step once the one before it is
+//! published, so that every step finds the one before it and the changes in
+//! time and their images are in every file whatever the machine's load), and
+//! reports per step what arrived, what was published and how long it took.
 //!
 //! In: a directory, a cycle, lead times, a pause between steps. Out: the
 //! service's output tree, its ledger and log in that directory, and a table.
@@ -326,19 +328,23 @@ pub fn run(p: &Play) -> Result<Vec<Row>, String> {
                     .unwrap_or_default()
             );
         }
+        wait_settled(&state_dir, &arrived, &mut child);
         std::thread::sleep(p.pause);
     }
+    stop(&mut child);
+    Ok(rows(&state_dir, &arrived))
+}
+
+/// Wait until every step delivered so far is published or has failed (at
+/// most 180 s, or until the service ends).
+fn wait_settled(state_dir: &Path, arrived: &[(String, i64, f64)], child: &mut Child) {
     let t0 = Instant::now();
-    loop {
-        let r = rows(&state_dir, &arrived);
-        let settled = r
+    while t0.elapsed() < Duration::from_secs(180) && !matches!(child.try_wait(), Ok(Some(_))) {
+        let settled = rows(state_dir, arrived)
             .iter()
             .all(|r| r.published.is_some() || !r.note.is_empty());
-        if settled || t0.elapsed() > Duration::from_secs(180) {
-            // Later steps add changes to earlier files: let the last one finish.
-            std::thread::sleep(Duration::from_millis(300));
-            stop(&mut child);
-            return Ok(rows(&state_dir, &arrived));
+        if settled {
+            return;
         }
         std::thread::sleep(Duration::from_millis(100));
     }

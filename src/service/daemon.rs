@@ -75,9 +75,7 @@ pub fn requests_dir(state_dir: &Path) -> PathBuf {
 }
 
 /// The lock file that keeps two services off one state directory.
-pub fn lock_path(state_dir: &Path) -> PathBuf {
-    state_dir.join("leeward.lock")
-}
+pub use super::ledger::lock_path;
 
 /// Load the configuration and apply the command-line overrides.
 pub fn load(opts: &ServeOptions) -> Result<Config, String> {
@@ -441,6 +439,9 @@ struct Daemon {
     last_published: Option<String>,
     restart_needed: bool,
     last_ping: Instant,
+    /// Since when and why the state directory cannot be used: no new work
+    /// is taken until it can be again.
+    state_problem: Option<(Instant, String)>,
 }
 
 impl Daemon {
@@ -496,9 +497,60 @@ impl Daemon {
 
     fn record(&mut self, r: Record) {
         if let Err(e) = self.ledger.append(r) {
-            error!(error = %e, "ledger not written; the state directory needs attention");
             self.metrics().ledger_errors += 1;
+            self.state_unusable(e.to_string());
         }
+    }
+
+    /// The state directory or its ledger is gone, replaced or cannot be
+    /// written: say so once, and take no new work until it can be used.
+    fn state_unusable(&mut self, why: String) {
+        if self.state_problem.is_none() {
+            error!(state_dir = %self.cfg.service.state_dir.display(), error = %why, "state directory unusable: no new work is taken until it is back; records are kept until they can be written");
+            self.state_problem = Some((Instant::now(), why.clone()));
+        }
+        self.metrics().state_problem = Some(why);
+    }
+
+    /// Once a second: is the state directory still this service's, and, when
+    /// it was not, can it be used again? A ledger still ours is written on
+    /// (the records kept first); one removed or replaced is written anew from
+    /// the state once the directory is there again.
+    fn watch_state(&mut self) {
+        if self.state_problem.is_none() && self.ledger.in_trouble() {
+            // A publishing thread could not record its publication.
+            self.state_unusable("a record could not be written".into());
+            return;
+        }
+        match self.ledger.check() {
+            Ok(()) if self.state_problem.is_none() => return,
+            Err(e) if self.state_problem.is_none() => {
+                self.state_unusable(e.to_string());
+                return;
+            }
+            Ok(()) => {
+                if self.ledger.flush().is_err() {
+                    return;
+                }
+            }
+            Err(e @ super::ledger::LedgerError::Io { .. }) => {
+                // No room, or not writable: wait for it.
+                self.metrics().state_problem = Some(e.to_string());
+                return;
+            }
+            Err(super::ledger::LedgerError::NotHeld { .. }) => {
+                if let Err(e) = self.ledger.rewrite() {
+                    self.metrics().state_problem = Some(e.to_string());
+                    return;
+                }
+                warn!(ledger = %self.ledger.path().display(), steps = self.ledger.state.steps.len(), "ledger written anew from the service's state");
+            }
+        }
+        self.ledger.clear_trouble();
+        if let Some((since, why)) = self.state_problem.take() {
+            info!(state_dir = %self.cfg.service.state_dir.display(), unusable_s = since.elapsed().as_secs_f64(), was = %why, "state directory usable again; taking work again");
+        }
+        self.metrics().state_problem = None;
     }
 
     fn start_watchers(&mut self) {
@@ -1782,6 +1834,9 @@ impl Daemon {
         if let Some((_, why)) = &self.sched_down {
             s.push_str(&format!("; {why}"));
         }
+        if let Some((_, why)) = &self.state_problem {
+            s.push_str(&format!("; no new work: state directory unusable ({why})"));
+        }
         if let Some(l) = &self.last_published {
             s.push_str(&format!("; last published {l}"));
         }
@@ -1836,6 +1891,25 @@ pub fn serve(opts: ServeOptions) -> u8 {
         }
     };
     let sdir = cfg.service.state_dir.clone();
+    // One service per state directory: a hold that survives the directory's
+    // removal, and the lock file that `leeward status` reads.
+    let _held = match super::ledger::hold_state_dir(&sdir) {
+        Ok(h) => h,
+        Err(e) if e.kind() == std::io::ErrorKind::AddrInUse => {
+            eprintln!(
+                "leeward: another leeward serve is using the state directory {}",
+                sdir.display()
+            );
+            return code::CONFIG;
+        }
+        Err(e) => {
+            eprintln!(
+                "leeward: cannot hold the state directory {}: {e}",
+                sdir.display()
+            );
+            return code::CONFIG;
+        }
+    };
     if let Err(e) = std::fs::create_dir_all(requests_dir(&sdir)) {
         eprintln!(
             "leeward: cannot use the state directory {}: {e}",
@@ -1843,36 +1917,24 @@ pub fn serve(opts: ServeOptions) -> u8 {
         );
         return code::CONFIG;
     }
-    // One service per state directory.
-    let lock = match std::fs::OpenOptions::new()
-        .create(true)
-        .truncate(false)
-        .read(true)
-        .write(true)
-        .open(lock_path(&sdir))
-    {
+    let lock = match super::ledger::take_lock(&sdir) {
         Ok(f) => f,
         Err(e) => {
-            eprintln!("leeward: cannot open {}: {e}", lock_path(&sdir).display());
+            eprintln!("leeward: {e}");
             return code::CONFIG;
         }
     };
-    if lock.try_lock().is_err() {
-        eprintln!(
-            "leeward: another leeward serve is using the state directory {}",
-            sdir.display()
-        );
-        return code::CONFIG;
-    }
-    let _ = lock.set_len(0);
-    let _ = std::fs::write(lock_path(&sdir), format!("{}\n", std::process::id()));
-    let ledger = match Ledger::open(&sdir) {
+    let mut ledger = match Ledger::open(&sdir) {
         Ok(l) => l,
         Err(e) => {
             eprintln!("leeward: {e}");
             return code::CONFIG;
         }
     };
+    if let Err(e) = ledger.hold(lock) {
+        eprintln!("leeward: {e}");
+        return code::CONFIG;
+    }
     if cfg.service.quarantine == QuarantineMode::Move {
         if let Err(e) = std::fs::create_dir_all(cfg.service.quarantine_dir()) {
             warn!(dir = %cfg.service.quarantine_dir().display(), error = %e, "cannot create the quarantine directory; bad files are recorded only");
@@ -1948,6 +2010,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         last_published: None,
         restart_needed: false,
         last_ping: Instant::now(),
+        state_problem: None,
     };
     for (tag, st) in &d.ledger.state.steps {
         if let Outcome::Published { at, .. } = st.outcome {
@@ -2032,7 +2095,8 @@ pub fn serve(opts: ServeOptions) -> u8 {
             stopping = Some(Instant::now());
             exit_code = code::RESTART;
         }
-        if stopping.is_none() {
+        let taking = stopping.is_none() && d.state_problem.is_none();
+        if taking {
             let mut files = Vec::new();
             for (_, w) in &d.watchers {
                 while let Some(p) = w.next(Duration::ZERO) {
@@ -2047,13 +2111,14 @@ pub fn serve(opts: ServeOptions) -> u8 {
         while let Ok(done) = d.done_rx.try_recv() {
             d.finished(done);
         }
-        if stopping.is_none() && d.last_poll.elapsed().as_secs_f64() >= d.cfg.service.slurm.poll_s {
+        if taking && d.last_poll.elapsed().as_secs_f64() >= d.cfg.service.slurm.poll_s {
             d.last_poll = Instant::now();
             d.poll_jobs();
         }
         if last_second.elapsed() >= Duration::from_secs(1) {
             last_second = Instant::now();
-            if stopping.is_none() {
+            d.watch_state();
+            if taking {
                 d.requests();
             }
             d.timeouts();
@@ -2069,7 +2134,9 @@ pub fn serve(opts: ServeOptions) -> u8 {
         match stopping {
             None => {
                 d.timeouts();
-                d.dispatch();
+                if d.state_problem.is_none() {
+                    d.dispatch();
+                }
             }
             Some(t0) => {
                 // Jobs on the scheduler go on without the service and are

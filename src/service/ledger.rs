@@ -30,6 +30,15 @@ pub enum LedgerError {
         /// The system's error.
         source: std::io::Error,
     },
+    /// The journal or the lock at their paths are no longer the files this
+    /// service opened (the state directory was removed, moved or replaced).
+    #[error("ledger {path}: {what}")]
+    NotHeld {
+        /// The journal.
+        path: PathBuf,
+        /// What is wrong.
+        what: String,
+    },
 }
 
 /// Why a step produced nothing.
@@ -207,6 +216,24 @@ pub enum Record {
         reason: String,
         /// When.
         at: i64,
+    },
+    /// A step as the state holds it (a ledger written anew from the state:
+    /// its outcome, job and quarantine follow in their own records).
+    Step {
+        /// The step.
+        step: StepTag,
+        /// When its first input was seen.
+        first_seen: i64,
+        /// Runs of it on the scheduler so far.
+        job_attempts: u32,
+    },
+    /// The grids of a feed in the order first seen (they number its file
+    /// names), in a ledger written anew from the state.
+    Grids {
+        /// The feed.
+        feed: String,
+        /// Grid fingerprints.
+        grids: Vec<String>,
     },
     /// An operator asked for a cycle (or one step of it) to be made again.
     Reprocess {
@@ -531,6 +558,23 @@ impl State {
             Record::Abandoned { step, .. } => {
                 self.publishing.remove(step);
             }
+            Record::Step {
+                step,
+                first_seen,
+                job_attempts,
+            } => {
+                let s = self.step_mut(step, *first_seen);
+                s.first_seen = *first_seen;
+                s.job_attempts = *job_attempts;
+            }
+            Record::Grids { feed, grids } => {
+                let g = self.grids.entry(feed.clone()).or_default();
+                for x in grids {
+                    if !g.contains(x) {
+                        g.push(x.clone());
+                    }
+                }
+            }
             Record::Reprocess {
                 feed,
                 cycle,
@@ -556,6 +600,100 @@ impl State {
                 });
             }
         }
+    }
+
+    /// Records that replay into this very state: what a ledger written anew
+    /// holds (a state directory that came back empty, a compaction).
+    pub fn snapshot(&self) -> Vec<Record> {
+        let mut out = Vec::new();
+        if let Some((version, pid, at)) = &self.started {
+            out.push(Record::Started {
+                version: version.clone(),
+                pid: *pid,
+                at: *at,
+            });
+        }
+        if let Some((reason, at)) = &self.stopped {
+            out.push(Record::Stopped {
+                reason: reason.clone(),
+                at: *at,
+            });
+        }
+        for (feed, grids) in &self.grids {
+            out.push(Record::Grids {
+                feed: feed.clone(),
+                grids: grids.clone(),
+            });
+        }
+        for (tag, st) in &self.steps {
+            out.push(Record::Step {
+                step: tag.clone(),
+                first_seen: st.first_seen,
+                job_attempts: st.job_attempts,
+            });
+            match &st.outcome {
+                Outcome::Waiting => {}
+                Outcome::Published {
+                    path,
+                    manifest,
+                    partial,
+                    at,
+                } => out.push(Record::Published {
+                    step: tag.clone(),
+                    path: path.clone(),
+                    manifest: manifest.clone(),
+                    partial: *partial,
+                    at: *at,
+                }),
+                Outcome::Failed { kind, reason, at } => out.push(Record::Failed {
+                    step: tag.clone(),
+                    kind: *kind,
+                    reason: reason.clone(),
+                    at: *at,
+                }),
+            }
+            if let Some(j) = &st.job {
+                out.push(Record::Submitted {
+                    step: tag.clone(),
+                    job: j.job.clone(),
+                    staging: j.staging.clone(),
+                    attempt: j.attempt,
+                    at: j.at,
+                });
+            }
+        }
+        for (file, f) in &self.seen {
+            out.push(Record::Seen {
+                feed: f.feed.clone(),
+                file: file.clone(),
+                size: f.size,
+                mtime_ns: f.mtime_ns,
+                checksum: f.checksum.clone(),
+                steps: f.steps.clone(),
+                at: f.at,
+            });
+        }
+        for (file, q) in &self.quarantined {
+            out.push(Record::Quarantined {
+                feed: q.feed.clone(),
+                file: file.clone(),
+                reason: q.reason.clone(),
+                moved_to: q.moved_to.clone(),
+                at: q.at,
+            });
+        }
+        for (tag, p) in &self.publishing {
+            out.push(Record::Publishing {
+                step: tag.clone(),
+                stage: p.stage.clone(),
+                product: p.product.clone(),
+                manifest: p.manifest.clone(),
+                partial: p.partial,
+                moves: p.moves.clone(),
+                at: p.at,
+            });
+        }
+        out
     }
 
     /// True if the step is published or has failed for good (not an output
@@ -611,29 +749,209 @@ pub fn read_state(state_dir: &Path) -> Result<State, LedgerError> {
     Ok(state)
 }
 
+/// A file's identity: its device and inode.
+fn identity(m: &std::fs::Metadata) -> (u64, u64) {
+    use std::os::unix::fs::MetadataExt;
+    (m.dev(), m.ino())
+}
+
+/// The lock file that keeps two services off one state directory.
+pub fn lock_path(state_dir: &Path) -> PathBuf {
+    state_dir.join("leeward.lock")
+}
+
+/// Hold the state directory for this process, in a way that survives the
+/// directory's removal: an abstract Unix socket (Linux, unix(7)) whose name
+/// is derived from the directory's canonical path. The kernel frees it when
+/// the process ends, however it ends; a second service on the same
+/// directory cannot bind it while the first lives, even after the directory
+/// was removed and made again (binding fails with `AddrInUse`).
+pub fn hold_state_dir(state_dir: &Path) -> std::io::Result<std::os::unix::net::UnixListener> {
+    use sha2::Digest;
+    use std::os::linux::net::SocketAddrExt;
+    // The directory itself if it is there, else its parent's canonical path
+    // and its name: a service that must not start takes nothing there, not
+    // even the directory.
+    let canonical = match std::fs::canonicalize(state_dir) {
+        Ok(c) => c,
+        Err(_) => {
+            let abs = std::path::absolute(state_dir)?;
+            match (abs.parent(), abs.file_name()) {
+                (Some(p), Some(n)) => std::fs::canonicalize(p).unwrap_or(p.to_path_buf()).join(n),
+                _ => abs,
+            }
+        }
+    };
+    let digest = sha2::Sha256::digest(canonical.as_os_str().as_encoded_bytes());
+    let hex: String = digest.iter().take(20).map(|b| format!("{b:02x}")).collect();
+    let addr = std::os::unix::net::SocketAddr::from_abstract_name(format!("leeward-state-{hex}"))?;
+    std::os::unix::net::UnixListener::bind_addr(&addr)
+}
+
+/// Take the lock file of `state_dir` (an advisory lock, which `leeward
+/// status` reads), with this process's id in it.
+pub fn take_lock(state_dir: &Path) -> Result<File, String> {
+    let path = lock_path(state_dir);
+    let mut f = OpenOptions::new()
+        .create(true)
+        .truncate(false)
+        .read(true)
+        .write(true)
+        .open(&path)
+        .map_err(|e| format!("cannot open {}: {e}", path.display()))?;
+    if f.try_lock().is_err() {
+        return Err(format!(
+            "another leeward serve is using the state directory {}",
+            state_dir.display()
+        ));
+    }
+    let _ = f.set_len(0);
+    let _ = f.write_all(format!("{}\n", std::process::id()).as_bytes());
+    let _ = f.sync_all();
+    Ok(f)
+}
+
+/// Bytes that must be free in the state directory for the service to take
+/// new work: room for some hundred records (a step writes a few of about
+/// 0.3-2 KB), so that it stops before a record cannot be written.
+pub const ROOM: u64 = 256 * 1024;
+
+/// The journal's open file, and the lock held with it.
+struct Open {
+    file: File,
+    /// Its identity when opened.
+    id: (u64, u64),
+    /// The length of its whole records: a write that fails part of the way
+    /// is cut back to it, so that no torn line sits before the next record.
+    len: u64,
+    /// The lock file and its identity, when held.
+    lock: Option<(File, (u64, u64))>,
+}
+
 /// The journal's file, shared by the main loop and the threads that publish
 /// (they record a publication's renames before making them). Each record is
-/// one line, written whole and fsynced before `write` returns.
+/// one line, written whole and fsynced before `write` returns, and only
+/// while the journal and the lock at their paths are still the files this
+/// service opened: a state directory removed or replaced under a running
+/// service is noticed at its next record, not written into the void.
 pub struct Journal {
     path: PathBuf,
-    file: Mutex<File>,
+    state_dir: PathBuf,
+    open: Mutex<Open>,
+    /// A record could not be written: until the main loop has written what
+    /// it kept (or written the journal anew), no publication is recorded.
+    trouble: std::sync::atomic::AtomicBool,
 }
 
 impl Journal {
-    /// Append one record and fsync it.
+    fn held(&self, o: &Open) -> Result<(), LedgerError> {
+        let gone = |what: String| LedgerError::NotHeld {
+            path: self.path.clone(),
+            what,
+        };
+        match std::fs::metadata(&self.path) {
+            Ok(m) if identity(&m) == o.id => {}
+            Ok(_) => return Err(gone("replaced by another file".into())),
+            Err(e) => return Err(gone(format!("gone ({e})"))),
+        }
+        if let Some((_, id)) = &o.lock {
+            let lock = lock_path(&self.state_dir);
+            match std::fs::metadata(&lock) {
+                Ok(m) if identity(&m) == *id => {}
+                Ok(_) => return Err(gone(format!("{} replaced by another file", lock.display()))),
+                Err(e) => return Err(gone(format!("{} gone ({e})", lock.display()))),
+            }
+        }
+        Ok(())
+    }
+
+    /// Are the journal and the lock still this service's, and is there room
+    /// to write on (the file system writable, [`ROOM`] bytes free)? Without
+    /// room the service stops before a record fails, not after.
+    pub fn check(&self) -> Result<(), LedgerError> {
+        let o = self
+            .open
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        self.held(&o)?;
+        let full = |what: String| LedgerError::Io {
+            path: self.path.clone(),
+            source: std::io::Error::new(std::io::ErrorKind::StorageFull, what),
+        };
+        let st = rustix::fs::statvfs(&self.state_dir).map_err(|e| LedgerError::Io {
+            path: self.path.clone(),
+            source: e.into(),
+        })?;
+        if st.f_flag.contains(rustix::fs::StatVfsMountFlags::RDONLY) {
+            return Err(LedgerError::Io {
+                path: self.path.clone(),
+                source: std::io::Error::new(
+                    std::io::ErrorKind::ReadOnlyFilesystem,
+                    "Read-only file system",
+                ),
+            });
+        }
+        let free = st.f_bavail.saturating_mul(st.f_frsize);
+        if free < ROOM {
+            return Err(full(format!(
+                "No space left on device: {free} bytes free in the state directory, {ROOM} needed"
+            )));
+        }
+        Ok(())
+    }
+
+    /// Append one record and fsync it (a publishing thread). Refused while
+    /// the journal is in trouble: what the main loop kept goes first.
     pub fn write(&self, r: &Record) -> Result<(), LedgerError> {
+        if self.in_trouble() {
+            return Err(LedgerError::NotHeld {
+                path: self.path.clone(),
+                what: "records wait to be written; the state directory needs attention".into(),
+            });
+        }
+        self.write_now(r)
+    }
+
+    /// Did a record fail to be written, and not all kept ones been written since?
+    pub fn in_trouble(&self) -> bool {
+        self.trouble.load(std::sync::atomic::Ordering::SeqCst)
+    }
+
+    fn write_now(&self, r: &Record) -> Result<(), LedgerError> {
+        let written = self.append_line(r);
+        if written.is_err() {
+            self.trouble
+                .store(true, std::sync::atomic::Ordering::SeqCst);
+        }
+        written
+    }
+
+    fn append_line(&self, r: &Record) -> Result<(), LedgerError> {
         let io = |source| LedgerError::Io {
             path: self.path.clone(),
             source,
         };
         let mut line = serde_json::to_string(r).map_err(|e| io(std::io::Error::other(e)))?;
         line.push('\n');
-        let mut f = self
-            .file
+        let mut o = self
+            .open
             .lock()
             .unwrap_or_else(std::sync::PoisonError::into_inner);
-        f.write_all(line.as_bytes()).map_err(io)?;
-        f.sync_data().map_err(io)
+        self.held(&o)?;
+        let len = o.len;
+        if o.file.metadata().map(|m| m.len()).map_err(io)? != len {
+            o.file.set_len(len).map_err(io)?;
+        }
+        let written = o
+            .file
+            .write_all(line.as_bytes())
+            .and_then(|()| o.file.sync_data());
+        if let Err(e) = written {
+            let _ = o.file.set_len(len);
+            return Err(io(e));
+        }
+        o.len = len + line.len() as u64;
+        Ok(())
     }
 
     /// Where the journal lives.
@@ -647,6 +965,9 @@ pub struct Ledger {
     journal: Arc<Journal>,
     /// The state, kept in step with the journal.
     pub state: State,
+    /// Records applied to the state and not yet written (the state
+    /// directory could not be written): written first when it can be again.
+    pending: Vec<Record>,
 }
 
 impl Ledger {
@@ -674,19 +995,157 @@ impl Ledger {
             file.set_len(good_len).map_err(io)?;
             file.sync_all().map_err(io)?;
         }
+        let id = identity(&file.metadata().map_err(io)?);
         Ok(Ledger {
             journal: Arc::new(Journal {
                 path,
-                file: Mutex::new(file),
+                state_dir: state_dir.to_path_buf(),
+                open: Mutex::new(Open {
+                    file,
+                    id,
+                    len: good_len,
+                    lock: None,
+                }),
+                trouble: std::sync::atomic::AtomicBool::new(false),
             }),
             state,
+            pending: Vec::new(),
         })
     }
 
-    /// Append one record, fsynced before returning, and apply it to the state.
+    /// Keep `lock` (taken with [`take_lock`]) with the journal: every record
+    /// then checks that it is still the lock file of the state directory.
+    pub fn hold(&mut self, lock: File) -> Result<(), LedgerError> {
+        let id = identity(&lock.metadata().map_err(|source| LedgerError::Io {
+            path: lock_path(&self.journal.state_dir),
+            source,
+        })?);
+        self.journal
+            .open
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .lock = Some((lock, id));
+        Ok(())
+    }
+
+    /// Append one record, fsynced before returning, and apply it to the
+    /// state. If it cannot be written, it is applied all the same and kept,
+    /// with the records after it, until [`Ledger::flush`] or
+    /// [`Ledger::rewrite`] writes them.
     pub fn append(&mut self, r: Record) -> Result<(), LedgerError> {
-        self.journal.write(&r)?;
+        let written = self.flush().and_then(|()| self.journal.write_now(&r));
         self.state.apply(&r);
+        if written.is_err() {
+            self.pending.push(r);
+        }
+        written
+    }
+
+    /// Write the records kept while the journal could not be written.
+    pub fn flush(&mut self) -> Result<(), LedgerError> {
+        while let Some(r) = self.pending.first() {
+            self.journal.write_now(r)?;
+            self.pending.remove(0);
+        }
+        Ok(())
+    }
+
+    /// Is the journal in trouble (a record not written, by this thread or a
+    /// publishing one)?
+    pub fn in_trouble(&self) -> bool {
+        self.journal.in_trouble()
+    }
+
+    /// Every record kept is written and the journal is this service's: let
+    /// the publishing threads record again.
+    pub fn clear_trouble(&self) {
+        self.journal
+            .trouble
+            .store(false, std::sync::atomic::Ordering::SeqCst);
+    }
+
+    /// Records kept, not yet written.
+    pub fn pending(&self) -> usize {
+        self.pending.len()
+    }
+
+    /// Are the journal and the lock at their paths still this service's?
+    pub fn check(&self) -> Result<(), LedgerError> {
+        self.journal.check()
+    }
+
+    /// The state directory is back after it was removed or replaced: take
+    /// its lock again and write the journal anew from the state (every
+    /// record kept included). A journal found there that is not this
+    /// service's is kept beside it as `ledger.jsonl.replaced-<unix time>`.
+    pub fn rewrite(&mut self) -> Result<(), LedgerError> {
+        let dir = self.journal.state_dir.clone();
+        let path = self.journal.path.clone();
+        let io = |source| LedgerError::Io {
+            path: path.clone(),
+            source,
+        };
+        if !dir.is_dir() {
+            return Err(LedgerError::NotHeld {
+                path: path.clone(),
+                what: format!("the state directory {} is not there", dir.display()),
+            });
+        }
+        let mut open = self
+            .journal
+            .open
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        // The lock file still ours (only the journal went): kept; else taken anew.
+        let ours = open.lock.as_ref().is_some_and(|(_, id)| {
+            std::fs::metadata(lock_path(&dir)).is_ok_and(|m| identity(&m) == *id)
+        });
+        let lock = match open.lock.take() {
+            Some(l) if ours => l,
+            _ => {
+                let f = take_lock(&dir).map_err(|what| LedgerError::NotHeld {
+                    path: path.clone(),
+                    what,
+                })?;
+                let id = identity(&f.metadata().map_err(io)?);
+                (f, id)
+            }
+        };
+        let tmp = dir.join(format!(".{FILE_NAME}.partial-{}", std::process::id()));
+        let mut text = String::new();
+        for r in self.state.snapshot() {
+            text.push_str(&serde_json::to_string(&r).map_err(|e| io(std::io::Error::other(e)))?);
+            text.push('\n');
+        }
+        let mut f = File::create(&tmp).map_err(io)?;
+        f.write_all(text.as_bytes())
+            .and_then(|()| f.sync_all())
+            .map_err(io)?;
+        let mine = std::fs::metadata(&path).is_ok_and(|m| identity(&m) == open.id);
+        if path.exists() && !mine {
+            let aside = dir.join(format!(
+                "{FILE_NAME}.replaced-{}",
+                chrono::Utc::now().timestamp()
+            ));
+            std::fs::rename(&path, &aside).map_err(io)?;
+            tracing::warn!(ledger = %path.display(), kept_as = %aside.display(), "a ledger that is not this service's was found and kept aside");
+        }
+        std::fs::rename(&tmp, &path).map_err(io)?;
+        File::open(&dir).and_then(|d| d.sync_all()).map_err(io)?;
+        let file = OpenOptions::new()
+            .read(true)
+            .append(true)
+            .open(&path)
+            .map_err(io)?;
+        let id = identity(&file.metadata().map_err(io)?);
+        *open = Open {
+            file,
+            id,
+            len: text.len() as u64,
+            lock: Some(lock),
+        };
+        drop(open);
+        self.pending.clear();
         Ok(())
     }
 
@@ -898,6 +1357,194 @@ mod tests {
         let l = Ledger::open(&d).unwrap();
         assert_eq!(l.state.quarantined["bad"].reason, "garbage");
         let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn a_snapshot_replays_into_the_same_state() {
+        let d = dir("snapshot");
+        let mut l = Ledger::open(&d).unwrap();
+        let mut other_grid = tag(18);
+        other_grid.grid = "def".into();
+        let records = vec![
+            Record::Started {
+                version: "0.1.0".into(),
+                pid: 7,
+                at: 1,
+            },
+            Record::Seen {
+                feed: "m".into(),
+                file: "a.grib2".into(),
+                size: 10,
+                mtime_ns: 5,
+                checksum: "x".into(),
+                steps: vec![tag(6), tag(12), other_grid.clone()],
+                at: 100,
+            },
+            Record::Seen {
+                feed: "m".into(),
+                file: "b.grib2".into(),
+                size: 11,
+                mtime_ns: 6,
+                checksum: "y".into(),
+                steps: vec![tag(0)],
+                at: 90,
+            },
+            Record::Published {
+                step: tag(6),
+                path: "p6".into(),
+                manifest: "m6".into(),
+                partial: true,
+                at: 120,
+            },
+            Record::Failed {
+                step: tag(0),
+                kind: FailKind::Input,
+                reason: "r".into(),
+                at: 121,
+            },
+            Record::Submitted {
+                step: tag(12),
+                job: "44".into(),
+                staging: "/s".into(),
+                attempt: 2,
+                at: 122,
+            },
+            Record::Quarantined {
+                feed: "m".into(),
+                file: "bad".into(),
+                reason: "junk".into(),
+                moved_to: Some("q/bad".into()),
+                at: 123,
+            },
+            Record::Reprocess {
+                feed: "m".into(),
+                cycle: "20260314T0000Z".into(),
+                lead: Some(0),
+                at: 130,
+            },
+            Record::Publishing {
+                step: other_grid,
+                stage: "/st".into(),
+                product: "p18".into(),
+                manifest: "m18".into(),
+                partial: false,
+                moves: vec![Move {
+                    staged: "/st/p18".into(),
+                    target: "p18".into(),
+                    bytes: 3,
+                    sha256: "ab".into(),
+                }],
+                at: 131,
+            },
+        ];
+        for r in records {
+            l.append(r).unwrap();
+        }
+        let mut again = State::default();
+        for r in l.state.snapshot() {
+            again.apply(&r);
+        }
+        assert_eq!(again, l.state);
+        assert_eq!(again.grids["m"], vec!["abc".to_string(), "def".to_string()]);
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn a_removed_state_directory_is_noticed_and_written_anew_when_back() {
+        let d = dir("removed");
+        std::fs::create_dir_all(&d).unwrap();
+        let mut l = Ledger::open(&d).unwrap();
+        l.hold(take_lock(&d).unwrap()).unwrap();
+        let stop = |at| Record::Stopped {
+            reason: "s".into(),
+            at,
+        };
+        l.append(stop(1)).unwrap();
+        std::fs::remove_dir_all(&d).unwrap();
+        // Written into a removed file, a record would go nowhere: it is refused and kept.
+        assert!(matches!(l.check(), Err(LedgerError::NotHeld { .. })));
+        assert!(matches!(
+            l.append(stop(2)),
+            Err(LedgerError::NotHeld { .. })
+        ));
+        assert_eq!(l.pending(), 1);
+        assert!(l.rewrite().is_err(), "not while the directory is gone");
+        std::fs::create_dir_all(&d).unwrap();
+        // Someone else's lock on the new directory keeps this service off it.
+        let other = take_lock(&d).unwrap();
+        assert!(l.rewrite().is_err());
+        drop(other);
+        l.rewrite().unwrap();
+        assert_eq!(l.pending(), 0);
+        l.append(stop(3)).unwrap();
+        assert_eq!(read_state(&d).unwrap().stopped, Some(("s".into(), 3)));
+        assert!(l.check().is_ok());
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn a_full_state_directory_keeps_the_records_and_leaves_no_torn_line() {
+        // A 1 MiB tmpfs (needs root to mount; skipped with a reason otherwise).
+        let d = dir("full");
+        std::fs::create_dir_all(&d).unwrap();
+        let mounted = std::process::Command::new("mount")
+            .args(["-t", "tmpfs", "-o", "size=1m", "tmpfs"])
+            .arg(&d)
+            .output();
+        if !mounted.as_ref().is_ok_and(|o| o.status.success()) {
+            eprintln!("SKIPPED: cannot mount a small tmpfs (needs root): {mounted:?}");
+            return;
+        }
+        struct Unmount<'a>(&'a Path);
+        impl Drop for Unmount<'_> {
+            fn drop(&mut self) {
+                let _ = std::process::Command::new("umount")
+                    .arg("-l")
+                    .arg(self.0)
+                    .status();
+                let _ = std::fs::remove_dir_all(self.0);
+            }
+        }
+        let _unmount = Unmount(&d);
+        let mut l = Ledger::open(&d).unwrap();
+        l.hold(take_lock(&d).unwrap()).unwrap();
+        let seen = |k: i64| Record::Seen {
+            feed: "m".into(),
+            file: format!("/in/{k:03}_{}.grib2", "f".repeat(300)),
+            size: 10,
+            mtime_ns: k,
+            checksum: "c".into(),
+            steps: vec![tag(k)],
+            at: k,
+        };
+        l.append(seen(0)).unwrap();
+        assert!(l.check().is_ok());
+        // Fill the file system: the check says so before any record fails.
+        let mut filler = File::create(d.join("filler")).unwrap();
+        while filler.write_all(&[0u8; 4096]).is_ok() {}
+        let e = l.check().unwrap_err();
+        assert!(e.to_string().contains("No space left on device"), "{e}");
+        // Records go on until the last page of the journal is full; the one
+        // that does not fit is refused and kept, and so is every one after it.
+        let mut k = 1;
+        while l.append(seen(k)).is_ok() {
+            k += 1;
+            assert!(k < 100, "a full file system took 100 records");
+        }
+        l.append(seen(k + 1)).unwrap_err();
+        assert_eq!(l.pending(), 2);
+        assert!(l.in_trouble());
+        let text = std::fs::read_to_string(d.join(FILE_NAME)).unwrap();
+        assert!(text.ends_with('\n'), "a torn line was left in the journal");
+        assert_eq!(text.lines().count() as i64, k);
+        drop(filler);
+        std::fs::remove_file(d.join("filler")).unwrap();
+        assert!(l.check().is_ok());
+        l.flush().unwrap();
+        assert_eq!(l.pending(), 0);
+        let again = read_state(&d).unwrap();
+        assert_eq!(again, l.state);
+        assert_eq!(again.seen.len() as i64, k + 2);
     }
 
     #[test]

@@ -105,6 +105,9 @@ pub struct Metrics {
     pub reloads: (u64, u64),
     /// When the main loop last turned.
     pub heartbeat: Option<Instant>,
+    /// Why the state directory cannot be used, while it cannot (no new work
+    /// is taken).
+    pub state_problem: Option<String>,
     /// Unix time of start.
     pub started: f64,
 }
@@ -308,6 +311,12 @@ impl Metrics {
             self.ledger_errors.to_string(),
         );
         family(
+            "leeward_state_dir_usable",
+            "gauge",
+            "1 while the state directory and its ledger are this service's and writable; 0 while not (no new work is taken).",
+            u8::from(self.state_problem.is_none()).to_string(),
+        );
+        family(
             "leeward_config_reloads_total",
             "counter",
             "Configuration reloads accepted (SIGHUP).",
@@ -368,7 +377,13 @@ fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
         ),
         ("GET", "/health") | ("GET", "/healthz") => {
             let alive = m.heartbeat.is_some_and(|h| h.elapsed() < STALL);
-            if alive {
+            if let (true, Some(why)) = (alive, &m.state_problem) {
+                (
+                    "503 Service Unavailable",
+                    "text/plain; charset=utf-8",
+                    format!("state directory unusable: {why}; no new work is taken\n"),
+                )
+            } else if alive {
                 let c = &m.scheduler;
                 let body = if c.used && !c.reachable {
                     format!(

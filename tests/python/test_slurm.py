@@ -110,11 +110,12 @@ def records(svc: Service, event: str) -> list[dict]:
 
 
 def no_stray_files(root: Path):
-    """Nothing hidden left in the output tree and no staging directory."""
+    """Nothing hidden left in the output tree and no staging directory (the
+    feed's `.jobs` and `.publish` directories hold them while in use)."""
     out = root / "out"
-    stray = [p for p in out.rglob("*") if p.name.startswith(".") and p.name != ".jobs"]
-    jobs = out / "demo" / ".jobs"
-    left = list(jobs.iterdir()) if jobs.exists() else []
+    work = (".jobs", ".publish")
+    stray = [p for p in out.rglob("*") if p.name.startswith(".") and p.name not in work]
+    left = [x for w in work if (out / "demo" / w).exists() for x in (out / "demo" / w).iterdir()]
     assert stray == [] and left == [], (stray, left)
 
 
