@@ -537,8 +537,22 @@ pub fn run_step(
             wanted.push((Want::Orography, fr.clone()));
         }
     }
+    // The model's own terrain outlines its land on the quicklooks when asked.
+    let terrain_outline =
+        cfg.quicklook.enabled && cfg.quicklook.outline == crate::config::OutlineKind::Terrain;
+    if terrain_outline && !wanted.iter().any(|(w, _)| *w == Want::Orography) {
+        if let Some((fr, _)) = &inv.orography {
+            wanted.push((Want::Orography, fr.clone()));
+        }
+    }
     let t_decode = Instant::now();
     let mut dec = decode_all(wanted, inputs, &scan, &mut issues);
+    let terrain_m: Option<Array2<f32>> = terrain_outline
+        .then(|| {
+            let to_m = inv.orography.as_ref().map_or(1.0, |o| o.1) as f32;
+            dec.get(&Want::Orography).map(|o| o.mapv(|x| x * to_m))
+        })
+        .flatten();
     rep.fields_used = dec.len();
     rep.decode_seconds = t_decode.elapsed().as_secs_f64();
     let t_compute = Instant::now();
@@ -1227,12 +1241,18 @@ pub fn run_step(
                         dy: if y.len() > 1 { y[1] - y[0] } else { f64::NAN },
                     },
                 };
+                let trajectories = budget::Settings {
+                    max_substep: cfg.changes.budget_max_substep_h * 3600.0,
+                    tolerance: cfg.changes.budget_tolerance * layout.grid_length(),
+                    max_iterations: budget::MAX_ITERATIONS,
+                };
                 let geom = changes::Geometry {
                     layout,
                     f: &budget_f,
                     rotation: budget_rotation.as_ref(),
                     winds_grid_relative: input_grid_relative,
                     periodic: products.grid.periodic(),
+                    trajectories,
                 };
                 rep.updated.extend(changes::update_budgets(
                     &run,
@@ -1252,7 +1272,11 @@ pub fn run_step(
                     .iter()
                     .filter_map(|s| crate::output::images::parse(s).ok())
                     .collect();
-                rep.images = crate::output::images::write_images(&path, &products, &wanted);
+                let look = crate::output::images::Look {
+                    settings: &cfg.quicklook,
+                    terrain: terrain_m.as_ref().map(|t| t.view()),
+                };
+                rep.images = crate::output::images::write_images(&path, &products, &wanted, &look);
             }
             rep.output = Some(path);
             if let Some(hook) = out.on_published {

@@ -243,7 +243,10 @@ pub fn publish(journal: &Journal, intent: &Intent) -> Result<(), String> {
     let mut wait = std::time::Duration::from_millis(500);
     loop {
         match finish(&intent.publishing) {
-            Ok(()) => return Ok(()),
+            Ok(()) => {
+                publish::refresh_cycle_page(Path::new(&intent.publishing.product));
+                return Ok(());
+            }
             Err(Unfinished::Retry(e)) => {
                 error!(feed = %intent.step.feed, cycle = %intent.step.cycle, step = intent.step.lead, error = %e, retry_in_s = wait.as_secs_f64(), "publication half made: a rename failed; trying again");
                 std::thread::sleep(wait);
@@ -362,6 +365,7 @@ pub fn remove_stage(stage: &Path) {
 pub fn recover(step: &StepTag, p: &Publishing) -> Result<bool, String> {
     match finish(p) {
         Ok(()) => {
+            publish::refresh_cycle_page(Path::new(&p.product));
             info!(feed = %step.feed, cycle = %step.cycle, step = step.lead, files = p.moves.len(), "publication cut short by a stop finished");
             Ok(true)
         }

@@ -100,6 +100,10 @@ pub struct Manifest {
     pub revision: u32,
     /// When last revised, ISO 8601.
     pub revised_at: String,
+    /// Points whose PV budget trajectories did not converge (flagged 1 in the file's
+    /// `bud_unconverged` and `bud_dpvdt_unconverged`), when the file has a budget.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub budget_not_converged: Option<u64>,
 }
 
 fn now_iso() -> String {
@@ -247,6 +251,7 @@ pub fn new_manifest(
         // A step made again (reprocess, late input) goes on from the revision it had.
         revision: read_manifest(&manifest_path(target)).map_or(1, |m| m.revision + 1),
         revised_at: now,
+        budget_not_converged: crate::changes::not_converged_in(staged),
     }
 }
 
@@ -263,9 +268,21 @@ pub fn revised_manifest(
     m.product_bytes = bytes;
     m.product_checksum = checksum;
     m.variables = variables_of(staged);
+    m.budget_not_converged = crate::changes::not_converged_in(staged);
     m.revision += 1;
     m.revised_at = now_iso();
     Some(m)
+}
+
+/// Write the cycle page beside a product again, now that its step is
+/// published; a page that cannot be written is logged and the step stands.
+pub fn refresh_cycle_page(product: &Path) {
+    let Some(dir) = product.parent() else {
+        return;
+    };
+    if let Err(e) = crate::output::page::refresh(dir) {
+        warn!(file = %dir.display(), error = %e, "cycle page not written");
+    }
 }
 
 /// Write a manifest atomically at `path`.

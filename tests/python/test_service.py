@@ -339,10 +339,23 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
         product = Path(r["manifest"]).parent / m["product"]
         assert m["product_bytes"] == product.stat().st_size
         assert m["product_checksum"] == hashlib.sha256(product.read_bytes()).hexdigest()
-    # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side.
+        # Steps after the first carry the PV budget: the manifest counts the points whose
+        # trajectories did not converge, as the file's flag variables mark them.
+        if lead > 0:
+            import netCDF4
+            with netCDF4.Dataset(product) as ds:
+                flagged = sum(int(np.nansum(np.ma.filled(ds[n][:].astype(float), np.nan)))
+                              for n in ("bud_unconverged", "bud_dpvdt_unconverged"))
+            assert m.get("budget_not_converged") == flagged, (lead, m.get("budget_not_converged"))
+    # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side, and the
+    # cycle's page, which links every step's product.
     cycle_dir = tmp_path / "out" / "demo" / "20260314T0000Z"
     assert sorted(p.name for p in cycle_dir.iterdir()) == sorted(
-        [f"c255_20260314T0000Z_{h:03d}h.{x}" for h in leads for x in ("nc", "json")])
+        [f"c255_20260314T0000Z_{h:03d}h.{x}" for h in leads for x in ("nc", "json")]
+        + ["c255_20260314T0000Z.html"])
+    page = (cycle_dir / "c255_20260314T0000Z.html").read_text()
+    for h in leads:
+        assert f'href="c255_20260314T0000Z_{h:03d}h.nc"' in page, h
     assert_same_products(svc.out_files(), ref)
     assert svc.metric("leeward_steps_published_total", feed="demo", state="complete") == 4
     assert svc.metric("leeward_publish_latency_seconds_count", feed="demo") == 4
@@ -396,8 +409,9 @@ def test_kill_9_at_random_moments_loses_nothing_and_publishes_nothing_twice(tmp_
         if rng.random() < 0.6:
             svc.kill9()
             kills += 1
-            # While it is down no partial product is visible.
-            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json")
+            # While it is down no partial product is visible (the cycle page, too, is
+            # written under a hidden name and renamed into place).
+            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json", ".html")
                        for p in svc.out_files())
             svc.start()
     wait_for(lambda: len({step_key(r) for r in svc.published()}) == 6, DEADLINE_S,
