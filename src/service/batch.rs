@@ -62,6 +62,10 @@ pub struct SpecInput {
     pub checksum: String,
     /// Byte ranges (offset, length) of the step's messages.
     pub messages: Vec<(u64, u64)>,
+    /// Checksum of those messages (FNV-1a 64, hex); the job reads them only
+    /// if they are still these bytes.
+    #[serde(default)]
+    pub digest: String,
     /// Unix time it was found finished.
     pub seen_at: f64,
 }
@@ -145,16 +149,7 @@ impl JobSpec {
             valid_time: key.valid_time.format(TIME_FORMAT).to_string(),
             member: key.member,
             grid_key: hex(&key.grid_key),
-            inputs: files
-                .iter()
-                .map(|c| SpecInput {
-                    path: c.path.clone(),
-                    size: c.size,
-                    checksum: c.checksum.clone(),
-                    messages: c.messages.clone(),
-                    seen_at: c.seen_at,
-                })
-                .collect(),
+            inputs: Self::inputs_of(files),
             store: store.to_path_buf(),
             dir: dir.to_path_buf(),
             suffix,
@@ -164,6 +159,20 @@ impl JobSpec {
             threads,
             config,
         }
+    }
+
+    fn inputs_of(files: &[Contribution]) -> Vec<SpecInput> {
+        files
+            .iter()
+            .map(|c| SpecInput {
+                path: c.path.clone(),
+                size: c.size,
+                checksum: c.checksum.clone(),
+                messages: c.messages.clone(),
+                digest: c.digest.clone(),
+                seen_at: c.seen_at,
+            })
+            .collect()
     }
 
     /// The step's key.
@@ -187,6 +196,7 @@ impl JobSpec {
                 size: i.size,
                 checksum: i.checksum.clone(),
                 messages: i.messages.clone(),
+                digest: i.digest.clone(),
                 seen_at: i.seen_at,
             })
             .collect()

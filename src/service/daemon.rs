@@ -130,6 +130,33 @@ fn mtime_ns(m: &std::fs::Metadata) -> i64 {
         .unwrap_or(0)
 }
 
+/// A step's messages in one file (byte ranges) and the isobaric fields they hold.
+type Gathered = (Vec<(u64, u64)>, Vec<(crate::ingest::params::Param, i64)>);
+
+/// A file found finished and catalogued.
+struct Caught {
+    feed: String,
+    path: PathBuf,
+    /// Its name in the ledger.
+    key: String,
+    size: u64,
+    mtime: i64,
+    /// Of the whole file.
+    checksum: String,
+}
+
+/// What became of a file's fields for one step.
+enum Given {
+    /// Added to the step.
+    Yes,
+    /// Not used: already used, not asked for, or arrived too late.
+    No,
+    /// Its cycle is older than catch-up: the step is recorded as skipped.
+    Skipped,
+    /// The step had been made without them: it waits again, with them.
+    Reopened,
+}
+
 /// A step handed to a worker.
 struct Job {
     tag: StepTag,
@@ -198,20 +225,39 @@ struct JobDone {
     outcome: JobOutcome,
 }
 
-fn read_ranges(path: &Path, expect_size: u64, ranges: &[(u64, u64)]) -> std::io::Result<Vec<u8>> {
+/// Read a step's messages from a file as they were catalogued. With their
+/// digest known, the messages must be the very bytes catalogued (a file
+/// written in place may have grown by other steps' messages since); without
+/// it (a spec of an earlier version), the file must have its size of then.
+fn read_ranges(path: &Path, c: &Contribution) -> std::io::Result<Vec<u8>> {
     let mut f = std::fs::File::open(path)?;
     let size = f.metadata()?.len();
-    if size != expect_size {
-        return Err(std::io::Error::other(format!(
-            "changed since it was catalogued ({expect_size} bytes then, {size} now)"
-        )));
+    let changed = |then: String, now: String| {
+        std::io::Error::other(format!(
+            "changed since it was catalogued ({then} then, {now} now)"
+        ))
+    };
+    if c.digest.is_empty() && size != c.size {
+        return Err(changed(format!("{} bytes", c.size), format!("{size}")));
     }
     let mut out = Vec::new();
-    for &(off, len) in ranges {
+    for &(off, len) in &c.messages {
         f.seek(SeekFrom::Start(off))?;
         let start = out.len();
         out.resize(start + len as usize, 0);
-        f.read_exact(&mut out[start..])?;
+        f.read_exact(&mut out[start..]).map_err(|e| {
+            if e.kind() == std::io::ErrorKind::UnexpectedEof {
+                changed(format!("{} bytes", c.size), format!("{size}"))
+            } else {
+                e
+            }
+        })?;
+    }
+    if !c.digest.is_empty() {
+        let now = super::ledger::checksum(&out);
+        if now != c.digest {
+            return Err(changed(format!("the step's messages {}", c.digest), now));
+        }
     }
     Ok(out)
 }
@@ -226,7 +272,7 @@ pub(super) fn load_step(
 ) -> Result<Option<(Step, Vec<InputFile>)>, (PathBuf, String)> {
     let mut inputs = Vec::new();
     for c in files {
-        match read_ranges(&c.path, c.size, &c.messages) {
+        match read_ranges(&c.path, c) {
             Ok(bytes) => {
                 let cat = catalogue(&bytes);
                 inputs.push(InputFile {
@@ -663,6 +709,7 @@ impl Daemon {
             mtime_ns: mtime,
             checksum,
             steps: Vec::new(),
+            digests: Vec::new(),
             at: Utc::now().timestamp(),
         });
         self.record(Record::Quarantined {
@@ -681,11 +728,6 @@ impl Daemon {
         parts: super::settings::NameParts,
         force: Option<&ReprocessRequest>,
     ) {
-        let asked = |t: &StepTag| {
-            force.is_some_and(|r| {
-                r.feed == t.feed && r.cycle == t.cycle && r.lead.is_none_or(|l| l == t.lead)
-            })
-        };
         let meta = match std::fs::metadata(path) {
             Ok(m) => m,
             Err(e) => {
@@ -760,7 +802,6 @@ impl Daemon {
         }
         self.metrics().feed(feed).files_seen += 1;
         // Group the fields into steps.
-        type Gathered = (Vec<(u64, u64)>, Vec<(crate::ingest::params::Param, i64)>);
         let mut by_step: std::collections::BTreeMap<StepKey, Gathered> =
             std::collections::BTreeMap::new();
         for f in &good {
@@ -779,10 +820,32 @@ impl Daemon {
                 e.1.push(q);
             }
         }
+        let file = Caught {
+            feed: feed.to_string(),
+            path: path.to_path_buf(),
+            key,
+            size,
+            mtime,
+            checksum,
+        };
+        self.assign(&file, &bytes, by_step, &parts, force);
+    }
+
+    /// Give a catalogued file's fields to their steps, and record the file.
+    fn assign(
+        &mut self,
+        file: &Caught,
+        bytes: &[u8],
+        by_step: std::collections::BTreeMap<StepKey, Gathered>,
+        parts: &super::settings::NameParts,
+        force: Option<&ReprocessRequest>,
+    ) {
+        let (feed, path) = (file.feed.as_str(), file.path.as_path());
         let now = unix_now();
         let mut tags = Vec::new();
+        let mut digests = Vec::new();
         let mut skipped = Vec::new();
-        let catch_up = self.cfg.service.catch_up_hours;
+        let mut reopened = Vec::new();
         if let Some(s) = parts.step {
             let leads: Vec<i64> = by_step
                 .keys()
@@ -793,98 +856,51 @@ impl Daemon {
             }
         }
         for (k, (messages, fields)) in by_step {
-            let cycle = cycle_dir_name(k.reference_time);
             if let Some(c) = parts.cycle {
                 if c != k.reference_time {
-                    warn!(feed, file = %path.display(), name_cycle = %cycle_dir_name(c), cycle = %cycle, "the file name and the contents disagree on the cycle; the contents are used");
+                    warn!(feed, file = %path.display(), name_cycle = %cycle_dir_name(c), cycle = %cycle_dir_name(k.reference_time), "the file name and the contents disagree on the cycle; the contents are used");
                 }
             }
             let tag = StepTag {
                 feed: feed.to_string(),
-                cycle: cycle.clone(),
+                cycle: cycle_dir_name(k.reference_time),
                 lead: (k.valid_time - k.reference_time).num_hours(),
                 member: k.member,
                 grid: grid_id(&k.grid_key),
             };
+            let digest = super::assemble::digest(bytes, &messages);
             tags.push(tag.clone());
-            if force.is_some() && !asked(&tag) {
-                // A reprocess looks at every file of the feed: the steps not asked
-                // for go their normal way, quietly.
-                if self.ledger.state.settled(&tag) || self.asm.steps.contains_key(&tag) {
-                    continue;
-                }
-            }
-            let skipped_before = matches!(
-                self.ledger.state.steps.get(&tag).map(|s| &s.outcome),
-                Some(Outcome::Failed {
-                    kind: FailKind::Skipped,
-                    ..
-                })
-            );
-            if skipped_before && !asked(&tag) {
-                continue;
-            }
-            if self.ledger.state.settled(&tag) {
-                let used = self
-                    .ledger
-                    .state
-                    .seen
-                    .get(&key)
-                    .is_some_and(|s| s.checksum == checksum);
-                if !used {
-                    warn!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, "input arrived after its step was published; not used (reprocess the cycle to use it)");
-                    self.metrics().feed(feed).late_files += 1;
-                }
-                continue;
-            }
-            let too_old = catch_up > 0
-                && TimeDelta::try_hours(i64::from(catch_up))
-                    .is_some_and(|h| k.reference_time < Utc::now().naive_utc() - h);
-            if too_old && !asked(&tag) {
-                if self.too_old.insert((feed.to_string(), cycle.clone())) {
-                    warn!(feed, cycle = %cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
-                }
-                skipped.push(tag);
-                continue;
-            }
-            let first_seen = self
-                .ledger
-                .state
-                .steps
-                .get(&tag)
-                .map(|s| s.first_seen as f64)
-                .unwrap_or(now);
+            digests.push(digest.clone());
             let c = Contribution {
                 path: path.to_path_buf(),
-                size,
-                checksum: checksum.clone(),
+                size: file.size,
+                checksum: file.checksum.clone(),
                 messages,
+                digest,
                 seen_at: now,
             };
-            if self
-                .asm
-                .add(tag.clone(), k, c, &fields, first_seen, asked(&tag))
-            {
-                info!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, fields = fields.len(), "input for step");
+            match self.step_input(file, tag.clone(), k, c, &fields, force) {
+                Given::Yes | Given::No => {}
+                Given::Skipped => skipped.push(tag),
+                Given::Reopened => reopened.push(tag),
             }
         }
-        let known = self
-            .ledger
-            .state
-            .seen
-            .get(&key)
-            .is_some_and(|s| s.size == size && s.mtime_ns == mtime && s.checksum == checksum);
+        let known = self.ledger.state.seen.get(&file.key).is_some_and(|s| {
+            s.size == file.size && s.mtime_ns == file.mtime && s.checksum == file.checksum
+        });
         if !known {
             self.record(Record::Seen {
                 feed: feed.into(),
-                file: key,
-                size,
-                mtime_ns: mtime,
-                checksum,
+                file: file.key.clone(),
+                size: file.size,
+                mtime_ns: file.mtime,
+                checksum: file.checksum.clone(),
                 steps: tags,
+                digests,
                 at: now as i64,
             });
         }
+        let catch_up = self.cfg.service.catch_up_hours;
         for tag in skipped {
             *self
                 .metrics()
@@ -901,6 +917,144 @@ impl Daemon {
                 at: now as i64,
             });
         }
+        // A step made again is made from all its input: its other files are
+        // read again (they go to the step, which waits again).
+        for tag in reopened {
+            for other in self.other_inputs(&tag, &file.key) {
+                self.ingest(&other, None);
+            }
+        }
+    }
+
+    /// Give one step a file's fields (see [`Given`]).
+    fn step_input(
+        &mut self,
+        file: &Caught,
+        tag: StepTag,
+        k: StepKey,
+        c: Contribution,
+        fields: &[(crate::ingest::params::Param, i64)],
+        force: Option<&ReprocessRequest>,
+    ) -> Given {
+        let asked = force.is_some_and(|r| {
+            r.feed == tag.feed && r.cycle == tag.cycle && r.lead.is_none_or(|l| l == tag.lead)
+        });
+        let (feed, path) = (file.feed.as_str(), file.path.as_path());
+        if force.is_some() && !asked {
+            // A reprocess looks at every file of the feed: the steps not asked
+            // for go their normal way, quietly.
+            if self.ledger.state.settled(&tag) || self.asm.steps.contains_key(&tag) {
+                return Given::No;
+            }
+        }
+        let skipped_before = matches!(
+            self.ledger.state.steps.get(&tag).map(|s| &s.outcome),
+            Some(Outcome::Failed {
+                kind: FailKind::Skipped,
+                ..
+            })
+        );
+        if skipped_before && !asked {
+            return Given::No;
+        }
+        let catch_up = self.cfg.service.catch_up_hours;
+        let too_old = catch_up > 0
+            && TimeDelta::try_hours(i64::from(catch_up))
+                .is_some_and(|h| k.reference_time < Utc::now().naive_utc() - h);
+        let mut taken = Given::Yes;
+        if self.ledger.state.settled(&tag) {
+            let used = self.ledger.state.seen.get(&file.key).is_some_and(|s| {
+                s.checksum == file.checksum || s.digest_of(&tag) == Some(c.digest.as_str())
+            });
+            if used {
+                return Given::No;
+            }
+            if let Err(why) = self.may_remake(&tag, &file.key, too_old) {
+                warn!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, reason = %why, "input arrived after its step was made; not used (reprocess the cycle to use it)");
+                self.metrics().feed(feed).late_files += 1;
+                return Given::No;
+            }
+            info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, "more input for a step already made; made again with all its input");
+            self.metrics().feed(feed).remade += 1;
+            self.record(Record::Reopened {
+                step: tag.clone(),
+                file: file.key.clone(),
+                in_hand: false,
+                at: Utc::now().timestamp(),
+            });
+            taken = Given::Reopened;
+        } else if too_old && !asked {
+            if self.too_old.insert((feed.to_string(), tag.cycle.clone())) {
+                warn!(feed, cycle = %tag.cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
+            }
+            return Given::Skipped;
+        }
+        let first_seen = self
+            .ledger
+            .state
+            .steps
+            .get(&tag)
+            .map_or(c.seen_at, |s| s.first_seen as f64);
+        let in_hand = self
+            .asm
+            .steps
+            .get(&tag)
+            .is_some_and(|p| matches!(p.phase, Phase::Running { .. }));
+        let n = fields.len();
+        let more_before = self.ledger.state.steps.get(&tag).is_some_and(|s| s.more);
+        if self.asm.add(tag.clone(), k, c, fields, first_seen, asked) {
+            if more_before {
+                // Reopened in hand before a restart, by input now caught again.
+                if let Some(p) = self.asm.steps.get_mut(&tag) {
+                    p.more = true;
+                }
+            }
+            info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, fields = n, "input for step");
+            if in_hand {
+                // Told to the ledger now: the end of the run in hand then
+                // leaves the step waiting, whatever stops the service meanwhile.
+                info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, "input for a step being made; made again with all its input once this run ends");
+                self.record(Record::Reopened {
+                    step: tag,
+                    file: file.key.clone(),
+                    in_hand: true,
+                    at: Utc::now().timestamp(),
+                });
+            }
+        }
+        taken
+    }
+
+    /// May a step already made be made again with more input? Not when its
+    /// cycle is older than catch-up, nor when one of the files it was made
+    /// from is gone (the new make would lack it).
+    fn may_remake(&self, tag: &StepTag, file: &str, too_old: bool) -> Result<(), String> {
+        if too_old {
+            return Err(format!(
+                "its cycle is older than service.catch_up_hours ({} h)",
+                self.cfg.service.catch_up_hours
+            ));
+        }
+        for other in self.other_inputs(tag, file) {
+            if !other.is_file() {
+                return Err(format!(
+                    "{} it was made from is no longer there",
+                    other.display()
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    /// The files a step was made from, as the ledger knows them, but `file`.
+    fn other_inputs(&self, tag: &StepTag, file: &str) -> Vec<PathBuf> {
+        self.ledger
+            .state
+            .seen
+            .iter()
+            .filter(|(f, s)| f.as_str() != file && s.steps.contains(tag))
+            .map(|(f, _)| PathBuf::from(f))
+            .collect()
     }
 
     fn suffix(&self, tag: &StepTag) -> Option<usize> {
@@ -1062,6 +1216,7 @@ impl Daemon {
                 break;
             };
             p.phase = Phase::Running { partial };
+            p.more = false;
             let Some(cfg) = self.feed_cfgs.get(&tag.feed).cloned() else {
                 continue;
             };
@@ -1080,6 +1235,15 @@ impl Daemon {
                 not_arrived,
                 journal: self.ledger.journal(),
             };
+            if let Some(st) = self.ledger.state.steps.get(&tag).filter(|s| s.more) {
+                // Handed out again with all its input: the reopening is done.
+                let (first_seen, job_attempts) = (st.first_seen, st.job_attempts);
+                self.record(Record::Step {
+                    step: tag.clone(),
+                    first_seen,
+                    job_attempts,
+                });
+            }
             if self.executor(&tag.feed) == Executor::Slurm && sched_ok {
                 let attempt = self
                     .ledger
@@ -1346,7 +1510,13 @@ impl Daemon {
             .or_default() += 1;
         let max = self.cfg.service.slurm.max_attempts;
         let attempt = j.spec.attempt;
-        if attempt < max {
+        if let Some(p) = self.asm.steps.get_mut(tag).filter(|p| p.more) {
+            // Input came since the job's spec was written: the next job is
+            // written afresh with all of it.
+            p.more = false;
+            p.phase = Phase::Waiting;
+            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, reason = %reason, log = %log_text, "step job ended without a result; made again with the input that came meanwhile");
+        } else if attempt < max {
             let wait = self.backoff(attempt);
             warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, attempt, max_attempts = max, retry_in_s = wait.as_secs_f64(), reason = %reason, log = %log_text, "step job ended without a result; submitting again");
             self.metrics().scheduler.retries += 1;
@@ -1596,6 +1766,7 @@ impl Daemon {
                 let partial =
                     publish::read_manifest(&manifest).is_some_and(|m| m.state == "partial");
                 commit::crash_point("before-record");
+                let more = self.more_came(&tag);
                 info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %path.display(), manifest = %manifest.display(), partial, latency_s = latency, seconds = report.seconds, "published");
                 for i in &report.issues {
                     warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %i.file.display(), field = ?i.field, what = %i.what, reason = %i.reason, "input problem");
@@ -1611,7 +1782,7 @@ impl Daemon {
                     .feed(&tag.feed)
                     .published(partial, latency, unix_now());
                 self.last_published = Some(format!("{tag}"));
-                self.asm.steps.remove(&tag);
+                self.after_run(&tag, more);
             }
             JobOutcome::OutputFailed(reason) => {
                 let attempts = self.asm.steps.get(&tag).map_or(1, |p| p.attempts + 1);
@@ -1642,6 +1813,14 @@ impl Daemon {
                     self.restart_needed = true;
                 }
             }
+            JobOutcome::Vanished(_, _) if self.asm.steps.get(&tag).is_some_and(|p| p.more) => {
+                // The file changed after it was handed out, and its new
+                // content is already with the step: no attempt is spent.
+                if let Some(p) = self.asm.steps.get_mut(&tag) {
+                    p.more = false;
+                    p.phase = Phase::Waiting;
+                }
+            }
             JobOutcome::Vanished(file, reason) => {
                 let attempts = self.asm.steps.get(&tag).map_or(1, |p| p.attempts + 1);
                 let wait = self.backoff(attempts);
@@ -1669,13 +1848,14 @@ impl Daemon {
                 }
             }
             JobOutcome::InputFailed(reason) => {
-                self.asm.steps.remove(&tag);
                 let kind = if was_partial {
                     FailKind::Missing
                 } else {
                     FailKind::Input
                 };
+                let more = self.more_came(&tag);
                 self.fail(&tag, kind, reason);
+                self.after_run(&tag, more);
             }
             JobOutcome::Internal(reason) => {
                 self.asm.steps.remove(&tag);
@@ -1687,6 +1867,29 @@ impl Daemon {
                 self.fail(&tag, FailKind::Job, format!("{state}: {reason}"));
             }
         }
+    }
+
+    /// A step whose run has just ended: did input come while it ran? (The
+    /// ledger was told when it came, so the record of the end leaves the
+    /// step waiting.)
+    fn more_came(&self, tag: &StepTag) -> bool {
+        self.asm.steps.get(tag).is_some_and(|p| p.more)
+    }
+
+    /// After the record of a run's end: the step waits again, to be made
+    /// with all its input (at once ready if its rule or its timeout says
+    /// so), when input came while it ran; otherwise it is done.
+    fn after_run(&mut self, tag: &StepTag, more: bool) {
+        let Some(p) = self.asm.steps.get_mut(tag).filter(|_| more) else {
+            self.asm.steps.remove(tag);
+            return;
+        };
+        p.more = false;
+        p.phase = Phase::Waiting;
+        p.attempts = 0;
+        p.forced = false;
+        info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, "more input came while the step was made; made again with all its input");
+        self.metrics().feed(&tag.feed).remade += 1;
     }
 
     fn fail(&mut self, tag: &StepTag, kind: FailKind, reason: String) {

@@ -117,6 +117,31 @@ pub enum Record {
         checksum: String,
         /// The steps it holds fields of.
         steps: Vec<StepTag>,
+        /// For each of `steps`, the checksum of the messages it holds for
+        /// that step (FNV-1a 64, hex): more input for a step, or not, when
+        /// the file is written again in place. Empty in older records.
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        digests: Vec<String>,
+        /// When.
+        at: i64,
+    },
+    /// A step got input it was not made from (a file new to it, or its
+    /// messages in a file changed) while its cycle was within catch-up: it
+    /// waits again, to be made with all its input, and its next publication
+    /// is the manifest's next revision. Of a step published or failed, it
+    /// reopens it at once. Of a step in hand (`in_hand`: input came while it
+    /// was made), the end of that run (its `published` or `failed` record)
+    /// leaves it waiting, unless a `step` record says it was handed out
+    /// again with all its input; so a kill at any instant cannot lose the
+    /// input.
+    Reopened {
+        /// The step.
+        step: StepTag,
+        /// The file that brought the input.
+        file: String,
+        /// The step was in hand.
+        #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+        in_hand: bool,
         /// When.
         at: i64,
     },
@@ -218,7 +243,9 @@ pub enum Record {
         at: i64,
     },
     /// A step as the state holds it (a ledger written anew from the state:
-    /// its outcome, job and quarantine follow in their own records).
+    /// its outcome, job and quarantine follow in their own records); also
+    /// written when a step reopened in hand is handed out again with all
+    /// its input (it clears that pending reopening).
     Step {
         /// The step.
         step: StepTag,
@@ -318,8 +345,19 @@ pub struct SeenFile {
     pub checksum: String,
     /// Steps it holds fields of.
     pub steps: Vec<StepTag>,
+    /// For each of `steps`, the checksum of its messages for that step
+    /// (empty when recorded by an older version).
+    pub digests: Vec<String>,
     /// When it was seen.
     pub at: i64,
+}
+
+impl SeenFile {
+    /// The checksum of the messages this file held for `step` when seen.
+    pub fn digest_of(&self, step: &StepTag) -> Option<&str> {
+        let k = self.steps.iter().position(|t| t == step)?;
+        self.digests.get(k).map(String::as_str)
+    }
 }
 
 /// Where a step stands.
@@ -373,6 +411,8 @@ pub struct StepState {
     pub job: Option<JobRef>,
     /// Runs of it on the scheduler so far.
     pub job_attempts: u32,
+    /// Reopened while in hand: the end of this run leaves it waiting.
+    pub more: bool,
 }
 
 impl StepState {
@@ -382,7 +422,16 @@ impl StepState {
             outcome: Outcome::Waiting,
             job: None,
             job_attempts: 0,
+            more: false,
         }
+    }
+
+    /// Waiting again, to be made with all its input.
+    fn reopen(&mut self) {
+        self.outcome = Outcome::Waiting;
+        self.job = None;
+        self.job_attempts = 0;
+        self.more = false;
     }
 }
 
@@ -442,6 +491,7 @@ impl State {
                 mtime_ns,
                 checksum,
                 steps,
+                digests,
                 at,
             } => {
                 for s in steps {
@@ -459,9 +509,18 @@ impl State {
                         mtime_ns: *mtime_ns,
                         checksum: checksum.clone(),
                         steps: steps.clone(),
+                        digests: digests.clone(),
                         at: *at,
                     },
                 );
+            }
+            Record::Reopened { step, in_hand, .. } => {
+                let s = self.step_mut(step, 0);
+                if *in_hand {
+                    s.more = true;
+                } else {
+                    s.reopen();
+                }
             }
             Record::Published {
                 step,
@@ -479,6 +538,9 @@ impl State {
                     partial: *partial,
                     at: *at,
                 };
+                if s.more {
+                    s.reopen();
+                }
             }
             Record::Failed {
                 step,
@@ -493,6 +555,9 @@ impl State {
                     reason: reason.clone(),
                     at: *at,
                 };
+                if s.more && *kind != FailKind::Output {
+                    s.reopen();
+                }
             }
             Record::Quarantined {
                 feed,
@@ -566,6 +631,7 @@ impl State {
                 let s = self.step_mut(step, *first_seen);
                 s.first_seen = *first_seen;
                 s.job_attempts = *job_attempts;
+                s.more = false;
             }
             Record::Grids { feed, grids } => {
                 let g = self.grids.entry(feed.clone()).or_default();
@@ -661,6 +727,14 @@ impl State {
                     at: j.at,
                 });
             }
+            if st.more {
+                out.push(Record::Reopened {
+                    step: tag.clone(),
+                    file: String::new(),
+                    in_hand: true,
+                    at: st.first_seen,
+                });
+            }
         }
         for (file, f) in &self.seen {
             out.push(Record::Seen {
@@ -670,6 +744,7 @@ impl State {
                 mtime_ns: f.mtime_ns,
                 checksum: f.checksum.clone(),
                 steps: f.steps.clone(),
+                digests: f.digests.clone(),
                 at: f.at,
             });
         }
@@ -1165,6 +1240,11 @@ pub fn checksum(bytes: &[u8]) -> String {
     crate::ingest::bytes::fnv1a_hex(bytes)
 }
 
+/// [`checksum`] of the concatenation of `parts`.
+pub fn checksum_parts(parts: &[&[u8]]) -> String {
+    crate::ingest::bytes::fnv1a_hex_parts(parts)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -1197,6 +1277,7 @@ mod tests {
                 mtime_ns: 5,
                 checksum: checksum(b"x"),
                 steps: vec![tag(6), tag(12)],
+                digests: vec![],
                 at: 100,
             })
             .unwrap();
@@ -1300,6 +1381,120 @@ mod tests {
     }
 
     #[test]
+    fn late_input_reopens_one_step_and_keeps_its_first_input_time() {
+        let d = dir("reopen");
+        let mut l = Ledger::open(&d).unwrap();
+        l.append(Record::Seen {
+            feed: "m".into(),
+            file: "/in/a".into(),
+            size: 1,
+            mtime_ns: 1,
+            checksum: "c".into(),
+            steps: vec![tag(6), tag(12)],
+            digests: vec!["d6".into(), "d12".into()],
+            at: 50,
+        })
+        .unwrap();
+        for lead in [6, 12] {
+            l.append(Record::Submitted {
+                step: tag(lead),
+                job: "7".into(),
+                staging: "/s".into(),
+                attempt: 3,
+                at: 60,
+            })
+            .unwrap();
+            l.append(Record::Published {
+                step: tag(lead),
+                path: "p".into(),
+                manifest: "m".into(),
+                partial: true,
+                at: 70,
+            })
+            .unwrap();
+        }
+        assert_eq!(l.state.seen["/in/a"].digest_of(&tag(12)), Some("d12"));
+        assert_eq!(l.state.seen["/in/a"].digest_of(&tag(18)), None);
+        l.append(Record::Reopened {
+            step: tag(12),
+            file: "/in/a".into(),
+            in_hand: false,
+            at: 80,
+        })
+        .unwrap();
+        assert!(l.state.settled(&tag(6)));
+        assert!(!l.state.settled(&tag(12)));
+        let s = &l.state.steps[&tag(12)];
+        assert_eq!((s.first_seen, s.job_attempts), (50, 0));
+        assert_eq!(read_state(&d).unwrap(), l.state);
+        // A record of an older version, without digests, still reads.
+        let old = r#"{"event":"seen","feed":"m","file":"/in/b","size":1,"mtime_ns":1,"checksum":"c","steps":[],"at":1}"#;
+        assert!(matches!(
+            serde_json::from_str::<Record>(old),
+            Ok(Record::Seen { digests, .. }) if digests.is_empty()
+        ));
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn input_that_came_while_a_step_was_made_reopens_it_at_the_end_of_that_run() {
+        let d = dir("reopen-in-hand");
+        let mut l = Ledger::open(&d).unwrap();
+        let published = |at| Record::Published {
+            step: tag(6),
+            path: "p".into(),
+            manifest: "m".into(),
+            partial: false,
+            at,
+        };
+        let in_hand = Record::Reopened {
+            step: tag(6),
+            file: "/in/a".into(),
+            in_hand: true,
+            at: 10,
+        };
+        l.append(in_hand.clone()).unwrap();
+        // Killed here: the step is not settled, it is made again at start.
+        assert!(!l.state.settled(&tag(6)));
+        assert_eq!(read_state(&d).unwrap(), l.state);
+        // The run that was in hand ends: the step waits again, and a ledger
+        // written anew from the state says so too.
+        l.append(published(20)).unwrap();
+        assert!(!l.state.settled(&tag(6)));
+        assert!(!l.state.steps[&tag(6)].more);
+        // The next run, with everything, settles it.
+        l.append(published(30)).unwrap();
+        assert!(l.state.settled(&tag(6)));
+        // Reopened in hand, then handed out again with all its input (the
+        // `step` record): the end of that run settles it.
+        l.append(in_hand).unwrap();
+        let mut snap = State::default();
+        for r in l.state.snapshot() {
+            snap.apply(&r);
+        }
+        assert!(
+            snap.steps[&tag(6)].more,
+            "a ledger written anew keeps the reopening"
+        );
+        l.append(Record::Step {
+            step: tag(6),
+            first_seen: 0,
+            job_attempts: 0,
+        })
+        .unwrap();
+        l.append(Record::Failed {
+            step: tag(6),
+            kind: FailKind::Input,
+            reason: "r".into(),
+            at: 40,
+        })
+        .unwrap();
+        assert!(l.state.settled(&tag(6)));
+        assert_eq!(read_state(&d).unwrap(), l.state);
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
     fn a_torn_last_line_is_dropped_and_cut() {
         let d = dir("torn");
         {
@@ -1378,6 +1573,7 @@ mod tests {
                 mtime_ns: 5,
                 checksum: "x".into(),
                 steps: vec![tag(6), tag(12), other_grid.clone()],
+                digests: vec!["d6".into(), "d12".into(), "d18".into()],
                 at: 100,
             },
             Record::Seen {
@@ -1387,6 +1583,7 @@ mod tests {
                 mtime_ns: 6,
                 checksum: "y".into(),
                 steps: vec![tag(0)],
+                digests: vec![],
                 at: 90,
             },
             Record::Published {
@@ -1515,6 +1712,7 @@ mod tests {
             mtime_ns: k,
             checksum: "c".into(),
             steps: vec![tag(k)],
+            digests: vec![format!("{k:016x}")],
             at: k,
         };
         l.append(seen(0)).unwrap();
@@ -1552,5 +1750,9 @@ mod tests {
         // FNV-1a 64 test vectors (Fowler, Noll and Vo; from memory): "" and "a".
         assert_eq!(checksum(b""), "cbf29ce484222325");
         assert_eq!(checksum(b"a"), "af63dc4c8601ec8c");
+        // In parts: the checksum of the concatenation.
+        assert_eq!(checksum_parts(&[b"a", b""]), checksum(b"a"));
+        assert_eq!(checksum_parts(&[b"gr", b"ib", b"2"]), checksum(b"grib2"));
+        assert_ne!(checksum_parts(&[b"ib", b"gr", b"2"]), checksum(b"grib2"));
     }
 }

@@ -34,8 +34,11 @@ pub struct FeedCounters {
     pub quarantined: u64,
     /// Input files catalogued.
     pub files_seen: u64,
-    /// Input files that came after their step was published.
+    /// Input files that came after their step was published and were not
+    /// used (its cycle older than catch-up, or its other inputs gone).
     pub late_files: u64,
+    /// Steps made again because input came after they were made (or while).
+    pub remade: u64,
     /// Unix time of the last publication.
     pub last_success: Option<f64>,
     /// Latency histogram counts (per bucket, not cumulative), +Inf last.
@@ -209,8 +212,14 @@ impl Metrics {
         family(
             "leeward_late_files_total",
             "counter",
-            "Input files that arrived after their step was published (not used; reprocess to use them).",
+            "Input files that arrived after their step was made and were not used (cycle older than catch_up_hours, or the step's other inputs gone; reprocess to use them).",
             per(&|c| vec![(String::new(), c.late_files.to_string())]),
+        );
+        family(
+            "leeward_steps_remade_total",
+            "counter",
+            "Steps made again because more input came after, or while, they were made (each a new revision of its manifest).",
+            per(&|c| vec![(String::new(), c.remade.to_string())]),
         );
         family(
             "leeward_queue_steps",
