@@ -326,6 +326,9 @@ pub struct JobReport {
     pub missing: Vec<String>,
     /// Variables written.
     pub products: Vec<String>,
+    /// Variables left out because no point has a value ("name: why").
+    #[serde(default)]
+    pub left_out: Vec<String>,
     /// Input problems.
     pub issues: Vec<Issue>,
     /// Seconds of the step on the node (no latency: the service measures that).
@@ -338,6 +341,7 @@ impl JobReport {
             grid: rep.grid.clone(),
             missing: rep.missing.clone(),
             products: rep.products.clone(),
+            left_out: rep.left_out.clone(),
             issues: rep.issues.clone(),
             timings: Timings {
                 decode: rep.decode_seconds,
@@ -356,6 +360,7 @@ impl JobReport {
             grid: self.grid.clone(),
             missing: self.missing.clone(),
             products: self.products.clone(),
+            left_out: self.left_out.clone(),
             issues: self.issues.clone(),
             seconds: self.timings.total,
             decode_seconds: self.timings.decode,
@@ -820,6 +825,22 @@ pub fn has_ended(state: &str) -> bool {
         .trim_end_matches('+')
         .to_ascii_uppercase();
     ENDED_STATES.contains(&base.as_str())
+}
+
+/// How a step job ended when leeward itself found the end, not the
+/// scheduler: leeward's own lower-case words, kept apart from the states
+/// the scheduler reports (upper case, such as `FAILED` or `TIMEOUT`).
+pub mod outcome {
+    /// The job could not write the step's products.
+    pub const UNWRITTEN: &str = "unwritten";
+    /// The job could not read one of the step's input files.
+    pub const UNREADABLE: &str = "unreadable";
+    /// The job's result (a staged file) could not be used.
+    pub const UNUSABLE: &str = "unusable";
+    /// The job's staging directory was gone after a restart.
+    pub const LOST: &str = "lost";
+    /// Every one of them.
+    pub const ALL: [&str; 4] = [UNWRITTEN, UNREADABLE, UNUSABLE, LOST];
 }
 
 /// The Slurm commands, as `[service.slurm]` configures them.
