@@ -29,6 +29,8 @@ use crate::ingest::params::{surface, Quantity};
 use crate::output::cf::{step_file_name, write_step, Product, StepProducts, Vertical};
 use crate::output::variables;
 
+mod synoptic;
+
 /// A problem with the input, said so an operator can act on it.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Issue {
@@ -265,6 +267,8 @@ struct Inventory {
     /// (quantity, level in Pa) -> field, isobaric levels.
     isobaric: BTreeMap<(Quantity, i64), FieldRef>,
     surface_pressure: Option<FieldRef>,
+    /// Pressure reduced to mean sea level.
+    mslp: Option<FieldRef>,
     /// Orography and how to turn it into metres.
     orography: Option<(FieldRef, f64)>,
 }
@@ -311,6 +315,12 @@ fn inventory(step: &Step, inputs: &[InputFile], issues: &mut Vec<Issue>) -> Inve
                 }
                 _ => {}
             },
+            // Some centres code it as pressure (0/3/0) at mean sea level.
+            (surface::MEAN_SEA_LEVEL, _)
+                if matches!(q, Quantity::MeanSeaLevelPressure | Quantity::Pressure) =>
+            {
+                inv.mslp.get_or_insert(fr.clone());
+            }
             _ => {}
         }
     }
@@ -481,6 +491,12 @@ pub fn run_step(
     let want_layer = pr.layer_pv && have_t && have_w;
     let z_levels_all = levels_of(Quantity::GeopotentialHeight);
     let want_thick = pr.thickness && (have_t || !z_levels_all.is_empty());
+    let want_moist = (pr.theta_e || pr.isentropic_humidity) && have_t;
+    let want_low_pv = pr.low_level_pv && have_t && have_w;
+    let want_mslp = pr.mslp || pr.cyclones;
+    // Without a mean sea-level pressure it is reduced from the 1000 hPa height.
+    let mslp_from_z = want_mslp && inv.mslp.is_none();
+    let at_1000 = |p: &i64| *p == pa_key(1.0e5);
     if (pr.vorticity || pr.isobaric_pv || pr.tropopause || pr.layer_pv) && !have_w {
         rep.missing
             .push("isobaric u and v: no vorticity or PV".into());
@@ -514,16 +530,19 @@ pub fn run_step(
         Iso(Quantity, i64),
         SurfacePressure,
         Orography,
+        Mslp,
     }
     let mask_by_orography =
         pr.mask_below_ground && inv.orography.is_some() && inv.surface_pressure.is_none();
     let mut wanted: Vec<(Want, FieldRef)> = Vec::new();
     for ((q, p), fr) in &inv.isobaric {
         let need = match q {
-            Quantity::Temperature => need_t,
+            Quantity::Temperature => need_t || (mslp_from_z && at_1000(p)),
             Quantity::WindU | Quantity::WindV => need_w && wind_levels.contains(p),
-            Quantity::GeopotentialHeight => need_z_products || mask_by_orography,
-            Quantity::SpecificHumidity | Quantity::RelativeHumidity => want_thick,
+            Quantity::GeopotentialHeight => {
+                need_z_products || mask_by_orography || (mslp_from_z && at_1000(p))
+            }
+            Quantity::SpecificHumidity | Quantity::RelativeHumidity => want_thick || want_moist,
             _ => false,
         };
         if need {
@@ -537,11 +556,38 @@ pub fn run_step(
             wanted.push((Want::Orography, fr.clone()));
         }
     }
+    if want_mslp {
+        if let Some(fr) = &inv.mslp {
+            wanted.push((Want::Mslp, fr.clone()));
+        }
+        if let Some((fr, _)) = &inv.orography {
+            if !wanted.iter().any(|(w, _)| *w == Want::Orography) {
+                wanted.push((Want::Orography, fr.clone()));
+            }
+        }
+    }
     let t_decode = Instant::now();
     let mut dec = decode_all(wanted, inputs, &scan, &mut issues);
     rep.fields_used = dec.len();
     rep.decode_seconds = t_decode.elapsed().as_secs_f64();
     let t_compute = Instant::now();
+    // Mean sea-level pressure and the terrain, before anything is masked below ground.
+    let mut surface_products: Vec<Product> = Vec::new();
+    if want_mslp {
+        let input = dec.remove(&Want::Mslp);
+        let iso = |q| dec.get(&Want::Iso(q, pa_key(1.0e5)));
+        let z1000 = iso(Quantity::GeopotentialHeight).filter(|_| mslp_from_z);
+        let t1000 = iso(Quantity::Temperature).filter(|_| mslp_from_z);
+        let made = synoptic::mslp(input, z1000, t1000);
+        if made.is_none() {
+            rep.missing
+                .push("mean sea-level pressure, or the 1000 hPa height: no mslp".into());
+        }
+        surface_products.extend(made);
+        if let (Some(oro), Some((_, scale))) = (dec.get(&Want::Orography), &inv.orography) {
+            surface_products.push(synoptic::orography(oro, *scale));
+        }
+    }
 
     // The isobaric levels of the products: every level with temperature or winds.
     let (ny, nx) = grid.shape();
@@ -620,12 +666,12 @@ pub fn run_step(
     let u3 = if need_w { stack(Quantity::WindU) } else { None };
     let v3 = if need_w { stack(Quantity::WindV) } else { None };
     let z3 = stack(Quantity::GeopotentialHeight);
-    let q3 = if want_thick {
+    let q3 = if want_thick || want_moist {
         stack(Quantity::SpecificHumidity)
     } else {
         None
     };
-    let rh3 = if want_thick && q3.is_none() {
+    let rh3 = if (want_thick || want_moist) && q3.is_none() {
         stack(Quantity::RelativeHumidity)
     } else {
         None
@@ -746,6 +792,45 @@ pub fn run_step(
     let t_family = Instant::now();
     // Potential temperature and static stability.
     let mut st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
+    // Relative humidity on the levels, for theta_e and the isentropic surfaces.
+    let rh_moist = if want_moist {
+        synoptic::relative_humidity(q3.as_ref(), rh3.as_ref(), t3.as_ref(), &p_pa)
+    } else {
+        None
+    };
+    if want_moist && rh_moist.is_none() {
+        rep.missing
+            .push("isobaric humidity: no theta_e, isen_q or isen_rh".into());
+    }
+    {
+        let syn = synoptic::Stacks {
+            p: &p_pa,
+            t: t3.as_ref(),
+            u: ug3,
+            v: vg3,
+            z: z3.as_ref(),
+            theta: st.as_ref().map(|s| &s.theta),
+            rh: rh_moist.as_ref(),
+            f: &plane.f,
+            rotation: plane.rotation.as_ref(),
+        };
+        if pr.theta_e {
+            fields.extend(synoptic::theta_e(&syn).map(seal));
+        }
+        if pr.eady && have_t && have_w {
+            match synoptic::eady(&syn, cfg.cyclones.eady_layer_hpa) {
+                Ok(p) => surface_products.push(p),
+                Err(m) => rep.missing.push(m),
+            }
+        }
+        if pr.cyclones {
+            surface_products.extend(
+                synoptic::steering(&syn, cfg.cyclones.steering_layer_hpa)
+                    .into_iter()
+                    .flatten(),
+            );
+        }
+    }
     // Temperature itself is needed later only for a thickness layer without heights.
     let has_z_at = |hpa: f64| {
         z_levels_all
@@ -771,7 +856,7 @@ pub fn run_step(
     // Isobaric PV in its full form.
     let mut pv3: Option<Array3<f32>> = None;
     if let (Some(st), Some(eta), Some(ug), Some(vg)) = (&st, &eta3, ug3, vg3) {
-        if want_pv || want_trop {
+        if want_pv || want_trop || want_low_pv {
             let lnp: Vec<f64> = p_pa.iter().map(|p| p.ln()).collect();
             let mut pv = Array3::from_elem((nz, ny, nx), f32::NAN);
             pv.axis_iter_mut(Axis(0))
@@ -796,6 +881,13 @@ pub fn run_step(
     }
     // Absolute vorticity is needed by PV only.
     drop(eta3);
+    if let (true, Some(pv)) = (want_low_pv, &pv3) {
+        surface_products.push(synoptic::low_pv(
+            pv,
+            &p_pa,
+            cfg.cyclones.low_pv_layer_hpa,
+        ));
+    }
 
     let stab_prod = st
         .as_mut()
@@ -936,6 +1028,10 @@ pub fn run_step(
         let z_s = z3
             .as_ref()
             .map(|z| isentropic::on_surfaces(z.view(), &surf));
+        let rh_s = rh_moist
+            .as_ref()
+            .filter(|_| pr.isentropic_humidity)
+            .map(|r| isentropic::on_surfaces(r.view(), &surf));
         let p_s = std::mem::take(&mut surf.pressure);
         drop(surf);
         let mut t_s = Array3::from_elem((ns, ny, nx), f32::NAN);
@@ -944,6 +1040,9 @@ pub fn run_step(
             .par_for_each(|(s, _, _), t, &p| {
                 *t = isentropic::temperature_on_surface(targets[s], f64::from(p)) as f32;
             });
+        if let Some(rh_s) = rh_s {
+            made.extend(synoptic::isentropic_humidity(rh_s, &p_s, &t_s).map(seal));
+        }
         made.push(sealed(variables::ISEN_P, Vertical::Theta, p_s));
         if let Some(z_s) = z_s {
             let mut m = Array3::from_elem((ns, ny, nx), f32::NAN);
@@ -1128,6 +1227,7 @@ pub fn run_step(
     fields.extend(stab_prod);
     fields.extend(n2_prod);
     fields.extend(pv_prod);
+    fields.extend(surface_products);
     if let (true, Some(z)) = (want_thick || want_isen, &z3) {
         fields.push(sealed_copy(variables::Z, Vertical::Pressure, z));
     }

@@ -28,6 +28,8 @@ pub enum Quantity {
     PotentialVorticity,
     /// Pressure, Pa (0/3/0).
     Pressure,
+    /// Pressure reduced to mean sea level, Pa (0/3/1).
+    MeanSeaLevelPressure,
     /// Geopotential, m2 s-2 (0/3/4).
     Geopotential,
     /// Geopotential height, gpm (0/3/5).
@@ -52,6 +54,7 @@ impl Quantity {
             (0, 2, 12) => RelativeVorticity,
             (0, 2, 14) => PotentialVorticity,
             (0, 3, 0) => Pressure,
+            (0, 3, 1) => MeanSeaLevelPressure,
             (0, 3, 4) => Geopotential,
             (0, 3, 5) => GeopotentialHeight,
             (0, 3, 6) => GeometricHeight,
@@ -73,6 +76,7 @@ impl Quantity {
             RelativeVorticity => "relative vorticity",
             PotentialVorticity => "potential vorticity",
             Pressure => "pressure",
+            MeanSeaLevelPressure => "pressure reduced to mean sea level",
             Geopotential => "geopotential",
             GeopotentialHeight => "geopotential height",
             GeometricHeight => "geometric height",
@@ -90,7 +94,7 @@ impl Quantity {
             WindU | WindV => "m s-1",
             AbsoluteVorticity | RelativeVorticity => "s-1",
             PotentialVorticity => "K m2 kg-1 s-1",
-            Pressure => "Pa",
+            Pressure | MeanSeaLevelPressure => "Pa",
             Geopotential => "m2 s-2",
             GeopotentialHeight => "gpm",
             GeometricHeight | TerrainHeight => "m",
@@ -147,6 +151,10 @@ mod tests {
         assert_eq!(
             Quantity::from_wmo(0, 2, 14),
             Some(Quantity::PotentialVorticity)
+        );
+        assert_eq!(
+            Quantity::from_wmo(0, 3, 1),
+            Some(Quantity::MeanSeaLevelPressure)
         );
         assert_eq!(Quantity::from_wmo(0, 1, 8), None);
         assert_eq!(Quantity::from_wmo(10, 0, 3), None);

@@ -119,6 +119,9 @@ pub enum Vertical {
     ThetaLayer,
     /// Isobaric layers (`p_layer`, with bounds).
     PressureLayer,
+    /// A single field with no vertical dimension (mean sea-level pressure, a
+    /// layer's mean): (time, y, x); a layer it stands for is said in its attributes.
+    Surface,
 }
 
 impl Vertical {
@@ -130,6 +133,15 @@ impl Vertical {
             Vertical::PvSurface => "pv_level",
             Vertical::ThetaLayer => "theta_layer",
             Vertical::PressureLayer => "p_layer",
+            Vertical::Surface => "",
+        }
+    }
+
+    /// The variable's dimensions in the file, given the horizontal ones.
+    pub fn dims<'a>(self, ydim: &'a str, xdim: &'a str) -> Vec<&'a str> {
+        match self {
+            Vertical::Surface => vec!["time", ydim, xdim],
+            v => vec!["time", v.dim(), ydim, xdim],
         }
     }
 }
@@ -711,14 +723,19 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
     let mut direct = Vec::new();
     for prod in &p.fields {
         let spec = &prod.spec;
+        let surface = prod.vertical == Vertical::Surface;
         let mut v = f
-            .add_variable::<f32>(spec.name, &["time", prod.vertical.dim(), ydim, xdim])
+            .add_variable::<f32>(spec.name, &prod.vertical.dims(ydim, xdim))
             .map_err(&e)?;
         v.set_fill_value(FILL_F32).map_err(&e)?;
         if p.deflate > 0 {
             v.set_compression(p.deflate, true).map_err(&e)?;
         }
-        v.set_chunking(&[1, 1, ny, nx]).map_err(&e)?;
+        if surface {
+            v.set_chunking(&[1, ny, nx]).map_err(&e)?;
+        } else {
+            v.set_chunking(&[1, 1, ny, nx]).map_err(&e)?;
+        }
         if let Some(s) = spec.standard_name {
             v.put_attribute("standard_name", s).map_err(&e)?;
         }
@@ -744,6 +761,21 @@ fn write_file(path: &Path, p: &StepProducts) -> Result<(), OutputError> {
                 .map_err(&e)?;
         }
         match &prod.values {
+            // One level, no vertical dimension: through libnetcdf, which packs it.
+            _ if surface => {
+                let level = prod.level(0);
+                let buf: Vec<f32> = level
+                    .iter()
+                    .map(|&x| {
+                        if x.is_finite() {
+                            bit_round(x, p.significant_bits)
+                        } else {
+                            FILL_F32
+                        }
+                    })
+                    .collect();
+                v.put_values(&buf, (0, .., ..)).map_err(&e)?;
+            }
             Values::Plain(data) => {
                 for (k, level) in data.outer_iter().enumerate() {
                     let buf: Vec<f32> = level

@@ -231,15 +231,22 @@ pub fn read_field(path: &Path, name: &str) -> Option<(Vec<f64>, Array3<f32>)> {
     super::quiet_hdf5_errors();
     let f = netcdf::open(path).ok()?;
     let v = f.variable(name)?;
-    let dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
-    let vname = v.dimensions().get(1)?.name();
+    let mut dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
+    // A field with no vertical dimension reads as one level with no coordinate.
+    let vname = if dims.len() == 3 {
+        dims.insert(1, 1);
+        String::new()
+    } else {
+        v.dimensions().get(1)?.name()
+    };
     if dims.len() != 4 {
         return None;
     }
     let data: Vec<f32> = v.get_values(..).ok()?;
     let a = Array3::from_shape_vec((dims[1], dims[2], dims[3]), data).ok()?;
-    let coord: Vec<f64> = f
-        .variable(&vname)
+    let coord: Vec<f64> = Some(&vname)
+        .filter(|n| !n.is_empty())
+        .and_then(|n| f.variable(n))
         .or_else(|| f.variable(&format!("{vname}_mid")))
         .and_then(|c| c.get_values(..).ok())
         .unwrap_or_default();
@@ -330,19 +337,24 @@ pub fn add_variables_to(
         let mut direct: Vec<(&str, super::pack::Packed)> = Vec::new();
         for prod in vars {
             let (spec, vertical, notes) = (&prod.spec, prod.vertical.dim(), &prod.notes);
+            let surface = prod.vertical == super::cf::Vertical::Surface;
             let is_new = f.variable(spec.name).is_none();
             if !is_new {
                 // Already there (written earlier): values are replaced in place below.
             } else {
                 let mut v = f
-                    .add_variable::<f32>(spec.name, &["time", vertical, ydim, xdim])
+                    .add_variable::<f32>(spec.name, &prod.vertical.dims(ydim, xdim))
                     .map_err(e)?;
                 v.set_fill_value(FILL_F32).map_err(e)?;
                 if deflate > 0 {
                     v.set_compression(deflate, true).map_err(e)?;
                 }
                 let (_, ny, nx) = prod.dim();
-                v.set_chunking(&[1, 1, ny, nx]).map_err(e)?;
+                if surface {
+                    v.set_chunking(&[1, ny, nx]).map_err(e)?;
+                } else {
+                    v.set_chunking(&[1, 1, ny, nx]).map_err(e)?;
+                }
                 if let Some(s) = spec.standard_name {
                     v.put_attribute("standard_name", s).map_err(e)?;
                 }
@@ -364,7 +376,7 @@ pub fn add_variables_to(
                         .map_err(e)?;
                 }
             }
-            if is_new && deflate > 0 {
+            if is_new && deflate > 0 && !surface {
                 let packed = match &prod.values {
                     super::cf::Values::Plain(a) => {
                         super::pack::Packed::new(a, significant_bits, deflate as u32)
@@ -392,7 +404,11 @@ pub fn add_variables_to(
                         }
                     })
                     .collect();
-                v.put_values(&buf, (0, k, .., ..)).map_err(e)?;
+                if surface {
+                    v.put_values(&buf, (0, .., ..)).map_err(e)?;
+                } else {
+                    v.put_values(&buf, (0, k, .., ..)).map_err(e)?;
+                }
             }
         }
         f.close().map_err(e)?;
