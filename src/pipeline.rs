@@ -1255,7 +1255,7 @@ pub fn run_step(
     let nsb = cfg.output.significant_bits;
     let as_published: Vec<(&'static str, Array3<f32>)> = fields
         .iter()
-        .filter(|f| matches!(f.spec.name, "thick" | "z" | "trop_p"))
+        .filter(|f| matches!(f.spec.name, "thick" | "z" | "trop_p" | "mslp"))
         .map(|f| (f.spec.name, f.published(nsb)))
         .collect();
     let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
@@ -1267,6 +1267,7 @@ pub fn run_step(
             ("thick", &p_layer_coords),
             ("z", &p_pa),
             ("trop_p", &pv_coords),
+            ("mslp", &Vec::new()),
         ] {
             if let Some(a) = find(name) {
                 r2r_fields.push((name, coords.clone(), a));
@@ -1280,6 +1281,15 @@ pub fn run_step(
     };
     if let Some(th) = thick_now {
         change_products.extend(changes::within_cycle(&run, th, &cfg.changes.intervals_h));
+    }
+    let mslp_now = find("mslp").map(|a| (&[][..], a));
+    if let Some(m) = mslp_now {
+        change_products.extend(changes::within_cycle_of(
+            &run,
+            changes::MSLP_TENDENCY,
+            m,
+            &cfg.changes.intervals_h,
+        ));
     }
     if pr.run_to_run {
         change_products.extend(changes::run_to_run(&run, &r2r_fields));
@@ -1352,6 +1362,16 @@ pub fn run_step(
                 cfg.output.deflate_level,
                 nsb,
             );
+            if let Some(m) = mslp_now {
+                rep.updated.extend(changes::update_later_of(
+                    &run,
+                    changes::MSLP_TENDENCY,
+                    m,
+                    &cfg.changes.intervals_h,
+                    cfg.output.deflate_level,
+                    nsb,
+                ));
+            }
             if pr.pv_budget && want_layer {
                 let layout = match &products.grid.horizontal {
                     Horizontal::LatLon { lat, lon, .. } => budget::Layout::Sphere {
