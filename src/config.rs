@@ -445,9 +445,19 @@ impl Cyclones {
             ));
         }
         for (key, v, lo, hi) in [
-            ("cyclones.max_contour_radius_km", self.max_contour_radius_km, 100.0, 10_000.0),
+            (
+                "cyclones.max_contour_radius_km",
+                self.max_contour_radius_km,
+                100.0,
+                10_000.0,
+            ),
             ("cyclones.radius_km", self.radius_km, 50.0, 3000.0),
-            ("cyclones.search_radius_km", self.search_radius_km, 50.0, 3000.0),
+            (
+                "cyclones.search_radius_km",
+                self.search_radius_km,
+                50.0,
+                3000.0,
+            ),
         ] {
             if !(v >= lo && v <= hi) {
                 p.push(format!("{key}: {v} km is outside {lo} to {hi} km"));

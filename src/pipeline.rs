@@ -256,6 +256,8 @@ pub struct StepReport {
     pub skipped: Option<String>,
     /// Quicklook images written beside the product.
     pub images: Vec<PathBuf>,
+    /// The cycle's cyclone tracks, written again with this step.
+    pub tracks: Vec<PathBuf>,
     /// True when the products were made but could not be written (disk full,
     /// permission denied): worth trying again, unlike a problem with the input.
     pub output_failed: bool,
@@ -882,11 +884,7 @@ pub fn run_step(
     // Absolute vorticity is needed by PV only.
     drop(eta3);
     if let (true, Some(pv)) = (want_low_pv, &pv3) {
-        surface_products.push(synoptic::low_pv(
-            pv,
-            &p_pa,
-            cfg.cyclones.low_pv_layer_hpa,
-        ));
+        surface_products.push(synoptic::low_pv(pv, &p_pa, cfg.cyclones.low_pv_layer_hpa));
     }
 
     let stab_prod = st
@@ -1410,6 +1408,11 @@ pub fn run_step(
                     cfg.output.deflate_level,
                     nsb,
                 ));
+            }
+            // The cycle's tracks, from every step published so far; a batch job's
+            // staged step is not published yet: the service makes them on taking it.
+            if pr.cyclones && out.stage.is_none() && mslp_now.is_some() {
+                rep.tracks = crate::cyclones::cycle::update(&run, &path, &cfg.cyclones);
             }
             rep.changes_seconds = t_changes.elapsed().as_secs_f64();
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");

@@ -38,7 +38,7 @@ pub struct Surface<'a> {
 }
 
 /// How centres are found.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Settings {
     /// Interval of the isobars, Pa.
     pub interval: f64,
@@ -137,7 +137,11 @@ pub fn find_centres(s: &Surface<'_>, set: &Settings) -> Vec<Centre> {
                 continue;
             }
             let open = s.neighbours(j, i, &mut nb);
-            if open || nb.iter().any(|&(a, b)| !(s.at(a, b) >= v)) {
+            if open
+                || nb
+                    .iter()
+                    .any(|&(a, b)| s.at(a, b).is_nan() || s.at(a, b) < v)
+            {
                 continue; // an edge, a missing or a lower neighbour
             }
             if let Some(outer) = outermost_closed(s, set, j, i, &mut taken) {
@@ -165,9 +169,14 @@ struct Flood {
 }
 
 /// Value and grid order of a point, for the ordered flood.
-#[derive(PartialEq, PartialOrd)]
+#[derive(PartialEq)]
 struct Key(f64, usize);
 impl Eq for Key {}
+impl PartialOrd for Key {
+    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(other))
+    }
+}
 impl Ord for Key {
     fn cmp(&self, other: &Self) -> std::cmp::Ordering {
         self.0
@@ -299,7 +308,14 @@ mod tests {
     }
 
     /// A Gaussian low of `depth` Pa and e-folding radius `r` m at (la, lo) over 1010 hPa.
-    fn low(lat: &Array2<f64>, lon: &Array2<f64>, la: f64, lo: f64, depth: f64, r: f64) -> Array2<f32> {
+    fn low(
+        lat: &Array2<f64>,
+        lon: &Array2<f64>,
+        la: f64,
+        lo: f64,
+        depth: f64,
+        r: f64,
+    ) -> Array2<f32> {
         Array2::from_shape_fn(lat.dim(), |(j, i)| {
             let d = distance(A, la, lo, lat[(j, i)], lon[(j, i)]);
             (101_000.0 - depth * (-(d / r).powi(2)).exp()) as f32
@@ -344,13 +360,25 @@ mod tests {
         // A low centred on the edge has no closed isobar: a minimum of the grid on
         // its edge is not a centre, and the points next to it are not minima.
         let p = low(&lat, &lon, 30.0, 10.0, 1500.0, 6e5);
-        let s = Surface { values: p.view(), lat: lat.view(), lon: lon.view(), periodic: false, radius: A };
+        let s = Surface {
+            values: p.view(),
+            lat: lat.view(),
+            lon: lon.view(),
+            periodic: false,
+            radius: A,
+        };
         assert!(find_centres(&s, &settings()).is_empty());
         // Two lows: each has its own closed isobars until they merge; both found.
         let a = low(&lat, &lon, 50.0, 0.0, 1500.0, 4e5);
         let b = low(&lat, &lon, 50.0, 20.0, 900.0, 4e5);
         let p = &a + &b - 101_000.0;
-        let s = Surface { values: p.view(), lat: lat.view(), lon: lon.view(), periodic: false, radius: A };
+        let s = Surface {
+            values: p.view(),
+            lat: lat.view(),
+            lon: lon.view(),
+            periodic: false,
+            radius: A,
+        };
         let c = find_centres(&s, &settings());
         assert_eq!(c.len(), 2, "{c:?}");
         // The shallower one's outermost closed isobar is below the col between them
@@ -366,7 +394,13 @@ mod tests {
             }
         }
         let (la, lo) = grid(40.0, 0.0, 1.0, 21, 21);
-        let s = Surface { values: flat.view(), lat: la.view(), lon: lo.view(), periodic: false, radius: A };
+        let s = Surface {
+            values: flat.view(),
+            lat: la.view(),
+            lon: lo.view(),
+            periodic: false,
+            radius: A,
+        };
         let c = find_centres(&s, &settings());
         assert_eq!(c.len(), 1, "{c:?}");
         assert_eq!((c[0].j, c[0].i), (8, 8));
@@ -377,18 +411,32 @@ mod tests {
         // Global 2.5 degree grid from 90 S to 90 N, 0 to 357.5 E: a low at 0 E, 60 S
         // straddles the seam; a low over the North Pole reaches the pole row.
         let (lat, lon) = grid(-90.0, 0.0, 2.5, 73, 144);
-        let p = &low(&lat, &lon, -60.0, 0.0, 2000.0, 8e5) + &low(&lat, &lon, 90.0, 0.0, 1200.0, 9e5)
+        let p = &low(&lat, &lon, -60.0, 0.0, 2000.0, 8e5)
+            + &low(&lat, &lon, 90.0, 0.0, 1200.0, 9e5)
             - 101_000.0;
-        let s = Surface { values: p.view(), lat: lat.view(), lon: lon.view(), periodic: true, radius: A };
+        let s = Surface {
+            values: p.view(),
+            lat: lat.view(),
+            lon: lon.view(),
+            periodic: true,
+            radius: A,
+        };
         let c = find_centres(&s, &settings());
-        assert!(c.iter().any(|c| (c.lat + 60.0).abs() < 0.1 && c.lon.abs() < 0.1), "{c:?}");
+        assert!(
+            c.iter()
+                .any(|c| (c.lat + 60.0).abs() < 0.1 && c.lon.abs() < 0.1),
+            "{c:?}"
+        );
         // The pole row is one point on the sphere: every point of it is a minimum of
         // equal value, and only the first in grid order is a centre.
         let polar: Vec<_> = c.iter().filter(|c| c.lat > 89.0).collect();
         assert_eq!(polar.len(), 1, "{c:?}");
         assert!(polar[0].depth >= 50.0);
         // The same field on a grid that does not wrap: the seam low is cut by the edge.
-        let s = Surface { periodic: false, ..s };
+        let s = Surface {
+            periodic: false,
+            ..s
+        };
         let c = find_centres(&s, &settings());
         assert!(!c.iter().any(|c| (c.lat + 60.0).abs() < 0.1), "{c:?}");
     }

@@ -138,7 +138,10 @@ pub fn disc(g: &Grid<'_>, j: usize, i: usize, radius: f64) -> Vec<(usize, usize)
 }
 
 /// Largest finite value of `f` over the points, and where.
-pub fn max_over(f: ArrayView2<'_, f32>, points: &[(usize, usize)]) -> Option<(f64, (usize, usize))> {
+pub fn max_over(
+    f: ArrayView2<'_, f32>,
+    points: &[(usize, usize)],
+) -> Option<(f64, (usize, usize))> {
     points
         .iter()
         .filter_map(|&q| {
@@ -196,7 +199,16 @@ pub fn nearest_point(g: &Grid<'_>, j: usize, i: usize, lat: f64, lon: f64) -> (u
     let mut best = d(at);
     loop {
         let mut moved = false;
-        for (dj, di) in [(-1i64, 0i64), (1, 0), (0, -1), (0, 1), (-1, -1), (-1, 1), (1, -1), (1, 1)] {
+        for (dj, di) in [
+            (-1i64, 0i64),
+            (1, 0),
+            (0, -1),
+            (0, 1),
+            (-1, -1),
+            (-1, 1),
+            (1, -1),
+            (1, 1),
+        ] {
             let jj = at.0 as i64 + dj;
             let mut ii = at.1 as i64 + di;
             if jj < 0 || jj >= ny as i64 {
@@ -254,8 +266,20 @@ pub fn upstream_max(
 pub fn grid_length(g: &Grid<'_>, at: (usize, usize)) -> f64 {
     let (ny, nx) = g.lat.dim();
     let d = |q: (usize, usize)| distance(g.radius, g.lat[at], g.lon[at], g.lat[q], g.lon[q]);
-    let along = if at.1 + 1 < nx { d((at.0, at.1 + 1)) } else if at.1 > 0 { d((at.0, at.1 - 1)) } else { f64::INFINITY };
-    let across = if at.0 + 1 < ny { d((at.0 + 1, at.1)) } else if at.0 > 0 { d((at.0 - 1, at.1)) } else { f64::INFINITY };
+    let along = if at.1 + 1 < nx {
+        d((at.0, at.1 + 1))
+    } else if at.1 > 0 {
+        d((at.0, at.1 - 1))
+    } else {
+        f64::INFINITY
+    };
+    let across = if at.0 + 1 < ny {
+        d((at.0 + 1, at.1))
+    } else if at.0 > 0 {
+        d((at.0 - 1, at.1))
+    } else {
+        f64::INFINITY
+    };
     along.min(across)
 }
 
@@ -290,7 +314,12 @@ pub fn median_over(f: ArrayView2<'_, f32>, points: &[(usize, usize)]) -> f64 {
 
 /// Every fact but the upper-level PV (see [`upper_pv`]) round the centre at
 /// grid point `at` within `radius` m.
-pub fn facts(g: &Grid<'_>, f: &Fields, at: (usize, usize), radius: f64) -> (Facts, Vec<(usize, usize)>) {
+pub fn facts(
+    g: &Grid<'_>,
+    f: &Fields,
+    at: (usize, usize),
+    radius: f64,
+) -> (Facts, Vec<(usize, usize)>) {
     let points = disc(g, at.0, at.1, radius);
     let mut out = Facts::default();
     if let Some((u, v)) = &f.steer {
@@ -311,7 +340,8 @@ pub fn facts(g: &Grid<'_>, f: &Fields, at: (usize, usize), radius: f64) -> (Fact
         out.orog_centre = f64::from(o[at]);
         // Half a grid length, so that no crest is stepped over.
         let step = 0.5 * grid_length(g, at).clamp(500.0, radius);
-        out.orog_upstream_max = upstream_max(g, o.view(), at, (out.steer_u, out.steer_v), radius, step);
+        out.orog_upstream_max =
+            upstream_max(g, o.view(), at, (out.steer_u, out.steer_v), radius, step);
     }
     out.low_pv_max = max_of(f.low_pv.as_ref(), &points);
     out.theta_e_850_max = max_of(f.theta_e_850.as_ref(), &points);
@@ -324,7 +354,14 @@ pub fn facts(g: &Grid<'_>, f: &Fields, at: (usize, usize), radius: f64) -> (Fact
 /// The upper-level PV facts: the largest PV on the surface `theta` (`pv` on it,
 /// PVU) within `points`, its distance from the centre at `at` and the part of
 /// that offset along the steering wind.
-pub fn upper_pv(g: &Grid<'_>, pv: ArrayView2<'_, f32>, theta: f64, at: (usize, usize), points: &[(usize, usize)], out: &mut Facts) {
+pub fn upper_pv(
+    g: &Grid<'_>,
+    pv: ArrayView2<'_, f32>,
+    theta: f64,
+    at: (usize, usize),
+    points: &[(usize, usize)],
+    out: &mut Facts,
+) {
     out.upper_theta = theta;
     let Some((v, q)) = max_over(pv, points) else {
         return;
@@ -358,7 +395,12 @@ mod tests {
     #[test]
     fn the_disc_holds_every_point_within_the_radius_and_no_other() {
         let (lat, lon) = latlon(30.0, 340.0, 0.5, 81, 121); // crosses 0 E as 360
-        let g = Grid { lat: lat.view(), lon: lon.view(), periodic: false, radius: A };
+        let g = Grid {
+            lat: lat.view(),
+            lon: lon.view(),
+            periodic: false,
+            radius: A,
+        };
         let d = disc(&g, 40, 40, 500e3);
         let brute: Vec<(usize, usize)> = lat
             .indexed_iter()
@@ -376,7 +418,12 @@ mod tests {
     fn gradient_of_a_field_linear_in_distance() {
         // h = 10 m per 100 km northward: its gradient is 1e-4 per metre (by hand).
         let (lat, lon) = latlon(40.0, 0.0, 1.0, 21, 21);
-        let g = Grid { lat: lat.view(), lon: lon.view(), periodic: false, radius: A };
+        let g = Grid {
+            lat: lat.view(),
+            lon: lon.view(),
+            periodic: false,
+            radius: A,
+        };
         let h = lat.mapv(|p| (5400.0 + 1e-4 * A * p.to_radians()) as f32);
         let got = gradient(&g, h.view(), 10, 10);
         assert!((got - 1e-4).abs() < 1e-7, "{got}");
@@ -388,7 +435,12 @@ mod tests {
         // A ridge along 10 E; a centre at 50 N 14 E in a westerly: the ridge is 286 km
         // upstream, within 500 km; in an easterly it is behind the centre.
         let (lat, lon) = latlon(40.0, 0.0, 0.25, 81, 97);
-        let g = Grid { lat: lat.view(), lon: lon.view(), periodic: false, radius: A };
+        let g = Grid {
+            lat: lat.view(),
+            lon: lon.view(),
+            periodic: false,
+            radius: A,
+        };
         let orog = lon.mapv(|l| (2000.0 * (-((l - 10.0) / 0.6).powi(2)).exp()) as f32);
         let at = (40, 56);
         let west = upstream_max(&g, orog.view(), at, (15.0, 0.0), 500e3, 8e3);
@@ -400,12 +452,19 @@ mod tests {
             (8.0 * (-r * r).exp()) as f32
         });
         let points = disc(&g, at.0, at.1, 500e3);
-        let mut f = Facts { steer_u: 15.0, steer_v: 0.0, ..Facts::default() };
+        let mut f = Facts {
+            steer_u: 15.0,
+            steer_v: 0.0,
+            ..Facts::default()
+        };
         upper_pv(&g, pv.view(), 320.0, at, &points, &mut f);
         assert!((f.upper_pv_max - 8.0).abs() < 1e-3);
         assert!((f.upper_pv_distance - 143.0).abs() < 1.0, "{f:?}");
         assert!((f.upper_pv_along_flow + 143.0).abs() < 1.0, "{f:?}");
-        assert_eq!(nearest_surface(&[300.0, 310.0, 320.0, 330.0], 323.0), Some(2));
+        assert_eq!(
+            nearest_surface(&[300.0, 310.0, 320.0, 330.0], 323.0),
+            Some(2)
+        );
         assert_eq!(nearest_surface(&[300.0, 310.0], 340.0), None);
     }
 }

@@ -10,6 +10,9 @@
 //! These are facts of the diagnostics, guidance for trained forecasters, not
 //! warnings.
 
+pub mod cycle;
 pub mod detect;
 pub mod facts;
+pub mod read;
 pub mod track;
+pub mod write;

@@ -279,9 +279,15 @@ mod tests {
                     hours: t,
                     // Listed in a different order at each step.
                     fixes: if k % 2 == 0 {
-                        vec![moving(52.0, -14.0, 20.0, 0.5, t), moving(48.0, 14.0, -20.0, 0.0, t)]
+                        vec![
+                            moving(52.0, -14.0, 20.0, 0.5, t),
+                            moving(48.0, 14.0, -20.0, 0.0, t),
+                        ]
                     } else {
-                        vec![moving(48.0, 14.0, -20.0, 0.0, t), moving(52.0, -14.0, 20.0, 0.5, t)]
+                        vec![
+                            moving(48.0, 14.0, -20.0, 0.0, t),
+                            moving(52.0, -14.0, 20.0, 0.5, t),
+                        ]
                     },
                 }
             })
@@ -292,21 +298,33 @@ mod tests {
             assert_eq!(tr.len(), 9);
             let lats: Vec<f64> = tr.iter().map(|&(s, c)| steps[s].fixes[c].lat).collect();
             let first = lats[0];
-            assert!(lats.iter().all(|l| (l - first).abs() < 0.01), "swapped: {lats:?}");
+            assert!(
+                lats.iter().all(|l| (l - first).abs() < 0.01),
+                "swapped: {lats:?}"
+            );
         }
     }
 
     #[test]
     fn a_gap_longer_than_the_search_ends_a_track() {
         let steps = vec![
-            Step { hours: 0.0, fixes: vec![fix(50.0, 0.0, 1000.0, (0.0, 0.0))] },
-            Step { hours: 6.0, fixes: vec![fix(50.0, 12.0, 1000.0, (0.0, 0.0))] },
+            Step {
+                hours: 0.0,
+                fixes: vec![fix(50.0, 0.0, 1000.0, (0.0, 0.0))],
+            },
+            Step {
+                hours: 6.0,
+                fixes: vec![fix(50.0, 12.0, 1000.0, (0.0, 0.0))],
+            },
         ];
         // 857 km away with no steering: a new track.
         assert_eq!(link(&steps, &settings()).len(), 2);
         // With a steering wind that carries it there, one track.
         let steps = vec![
-            Step { hours: 0.0, fixes: vec![fix(50.0, 0.0, 1000.0, (40.0, 0.0))] },
+            Step {
+                hours: 0.0,
+                fixes: vec![fix(50.0, 0.0, 1000.0, (40.0, 0.0))],
+            },
             steps[1].clone(),
         ];
         assert_eq!(link(&steps, &settings()).len(), 1);

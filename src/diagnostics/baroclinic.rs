@@ -23,12 +23,19 @@ pub const EADY_FACTOR: f64 = 0.31;
 /// Brunt-Vaisala frequency N^2 = g ln(theta_top / theta_bottom) / dz, the
 /// layer-mean of (g / theta) dtheta/dz, exact for a constant N. |f| keeps the
 /// rate positive in both hemispheres. NaN where dz <= 0 or N^2 <= 0.
-pub fn eady_growth_rate(f: f64, du: f64, dv: f64, dz: f64, theta_bottom: f64, theta_top: f64) -> f64 {
+pub fn eady_growth_rate(
+    f: f64,
+    du: f64,
+    dv: f64,
+    dz: f64,
+    theta_bottom: f64,
+    theta_top: f64,
+) -> f64 {
     if !(dz > 0.0 && theta_bottom > 0.0 && theta_top > 0.0) {
         return f64::NAN;
     }
     let n2 = G0 * (theta_top / theta_bottom).ln() / dz;
-    if !(n2 > 0.0) {
+    if n2.is_nan() || n2 <= 0.0 {
         return f64::NAN;
     }
     EADY_FACTOR * f.abs() * du.hypot(dv) / dz / n2.sqrt()
@@ -46,7 +53,7 @@ pub fn eady_growth_rate(f: f64, du: f64, dv: f64, dz: f64, theta_bottom: f64, th
 /// its depth, else NaN.
 pub fn pressure_weighted_mean(f: &[f64], p: &[f64], p_bottom: f64, p_top: f64) -> f64 {
     let n = f.len().min(p.len());
-    if !(p_bottom > p_top) || n == 0 {
+    if p_bottom.partial_cmp(&p_top) != Some(std::cmp::Ordering::Greater) || n == 0 {
         return f64::NAN;
     }
     // The column as (p, f) points inside the layer, with the bounds interpolated.
@@ -76,7 +83,8 @@ pub fn pressure_weighted_mean(f: &[f64], p: &[f64], p_bottom: f64, p_top: f64) -
     pts.sort_by(|a, b| a.0.total_cmp(&b.0));
     pts.dedup_by(|a, b| a.0 == b.0);
     // Integrate over consecutive valid points; a gap (a missing level between) is not bridged.
-    let valid_between = |a: f64, b: f64| (0..n).all(|k| !(p[k] > a && p[k] < b) || f[k].is_finite());
+    let valid_between =
+        |a: f64, b: f64| (0..n).all(|k| !(p[k] > a && p[k] < b) || f[k].is_finite());
     let (mut sum, mut depth) = (0.0, 0.0);
     for w in pts.windows(2) {
         let ((pa, fa), (pb, fb)) = (w[0], w[1]);

@@ -225,7 +225,8 @@ pub const OROG: VarSpec = VarSpec {
     standard_name: Some("surface_altitude"),
     long_name: "height of the model's terrain",
     units: "m",
-    formula: "from the input: terrain or surface geopotential height, or surface geopotential / 9.80665",
+    formula:
+        "from the input: terrain or surface geopotential height, or surface geopotential / 9.80665",
 };
 
 /// Steering wind of the cyclone tracks: east component.

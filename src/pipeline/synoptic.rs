@@ -123,7 +123,8 @@ pub(super) fn eady(s: &Stacks<'_>, l: [f64; 2]) -> Result<Product, String> {
 /// heights' difference, or the dry hypsometric thickness without heights.
 fn layer_depth(s: &Stacks<'_>, kb: usize, kt: usize) -> Option<Array2<f64>> {
     if let Some(z) = s.z {
-        let d = &z.index_axis(Axis(0), kt).mapv(f64::from) - &z.index_axis(Axis(0), kb).mapv(f64::from);
+        let d =
+            &z.index_axis(Axis(0), kt).mapv(f64::from) - &z.index_axis(Axis(0), kb).mapv(f64::from);
         if d.iter().any(|x| x.is_finite()) {
             return Some(d);
         }
@@ -172,7 +173,12 @@ pub(super) fn steering(s: &Stacks<'_>, l: [f64; 2]) -> Option<[Product; 2]> {
                 *v = (ug * sn + vg * c) as f32;
             });
     }
-    let mk = |spec, a: Array2<f32>| with_layer(Product::new(spec, Vertical::Surface, a.insert_axis(Axis(0))), l);
+    let mk = |spec, a: Array2<f32>| {
+        with_layer(
+            Product::new(spec, Vertical::Surface, a.insert_axis(Axis(0))),
+            l,
+        )
+    };
     Some([mk(variables::STEER_U, ue), mk(variables::STEER_V, ve)])
 }
 
@@ -184,7 +190,10 @@ pub(super) fn mslp(
     t1000: Option<&Array2<f32>>,
 ) -> Option<Product> {
     let (data, method) = match (input, z1000, t1000) {
-        (Some(m), _, _) => (m, "from the input: pressure reduced to mean sea level (WMO 0/3/1)"),
+        (Some(m), _, _) => (
+            m,
+            "from the input: pressure reduced to mean sea level (WMO 0/3/1)",
+        ),
         (None, Some(z), Some(t)) => {
             let mut m = Array2::from_elem(z.dim(), f32::NAN);
             Zip::from(&mut m).and(z).and(t).par_for_each(|m, &z, &t| {
@@ -201,7 +210,11 @@ pub(super) fn mslp(
         }
         _ => return None,
     };
-    let mut prod = Product::new(variables::MSLP, Vertical::Surface, data.insert_axis(Axis(0)));
+    let mut prod = Product::new(
+        variables::MSLP,
+        Vertical::Surface,
+        data.insert_axis(Axis(0)),
+    );
     prod.notes.push(("leeward_method", method.to_string()));
     Some(prod)
 }
@@ -211,7 +224,9 @@ const STANDARD_T1000: f64 = 288.15;
 
 /// The terrain as a product, metres.
 pub(super) fn orography(oro: &Array2<f32>, scale: f64) -> Product {
-    let data = oro.mapv(|x| (f64::from(x) * scale) as f32).insert_axis(Axis(0));
+    let data = oro
+        .mapv(|x| (f64::from(x) * scale) as f32)
+        .insert_axis(Axis(0));
     Product::new(variables::OROG, Vertical::Surface, data)
 }
 
