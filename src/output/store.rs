@@ -130,7 +130,8 @@ pub fn published_where(
     for e in rd.flatten() {
         let path = e.path();
         let name = e.file_name().to_string_lossy().into_owned();
-        if name.starts_with('.') {
+        // Hidden temporaries, and a cycle's cyclone tracks (not a step).
+        if name.starts_with('.') || name.contains("_cyclones") {
             continue;
         }
         if name.ends_with(".nc") {
@@ -139,9 +140,9 @@ pub fn published_where(
             if (t - near).abs() <= window && path.is_dir() {
                 if let Ok(sub) = std::fs::read_dir(&path) {
                     candidates.extend(sub.flatten().map(|e| e.path()).filter(|p| {
-                        p.file_name()
-                            .and_then(|n| n.to_str())
-                            .is_some_and(|n| !n.starts_with('.') && n.ends_with(".nc"))
+                        p.file_name().and_then(|n| n.to_str()).is_some_and(|n| {
+                            !n.starts_with('.') && n.ends_with(".nc") && !n.contains("_cyclones")
+                        })
                     }));
                 }
             }
