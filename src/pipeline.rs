@@ -1412,7 +1412,12 @@ pub fn run_step(
             // The cycle's tracks, from every step published so far; a batch job's
             // staged step is not published yet: the service makes them on taking it.
             if pr.cyclones && out.stage.is_none() && mslp_now.is_some() {
-                rep.tracks = crate::cyclones::cycle::update(&run, &path, &cfg.cyclones);
+                rep.tracks = crate::cyclones::cycle::update(
+                    &run,
+                    &path,
+                    &cfg.cyclones,
+                    cfg.quicklook.enabled,
+                );
             }
             rep.changes_seconds = t_changes.elapsed().as_secs_f64();
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");

@@ -116,7 +116,12 @@ pub fn base_name(step_file: &Path) -> String {
 /// After a step is published: make the cycle's tracks from every step of it
 /// published in `run`'s store and write them beside `this_file`. Returns the
 /// files written. A step file that cannot be read is passed over and said so.
-pub fn update(run: &Run<'_>, this_file: &Path, cfg: &crate::config::Cyclones) -> Vec<PathBuf> {
+pub fn update(
+    run: &Run<'_>,
+    this_file: &Path,
+    cfg: &crate::config::Cyclones,
+    image: bool,
+) -> Vec<PathBuf> {
     let (set, search) = settings(cfg);
     let files = published_where(
         run.out_dir,
@@ -152,6 +157,15 @@ pub fn update(run: &Run<'_>, this_file: &Path, cfg: &crate::config::Cyclones) ->
         Ok(()) => written.push(gj),
         Err(e) => warn!(file = %gj.display(), error = %e, "cyclone tracks not written"),
     }
+    if image {
+        let png = dir.join(format!("{base}.png"));
+        match quicklook(&cycle)
+            .and_then(|b| crate::output::write_file_atomic(&png, &b).map_err(|e| e.to_string()))
+        {
+            Ok(()) => written.push(png),
+            Err(e) => warn!(file = %png.display(), error = %e, "cyclone quicklook not written"),
+        }
+    }
     info!(
         cycle = %run.reference_time.format("%Y-%m-%dT%H:%MZ"),
         steps = cycle.steps.len(),
@@ -159,6 +173,48 @@ pub fn update(run: &Run<'_>, this_file: &Path, cfg: &crate::config::Cyclones) ->
         "cyclone tracks written"
     );
     written
+}
+
+/// The mean sea-level pressure of the cycle's latest step with every track drawn
+/// over it (a dot at each point, a larger one at its last), as PNG bytes.
+pub fn quicklook(c: &Cycle) -> Result<Vec<u8>, String> {
+    use crate::output::quicklook::{render_with_marks, Palette, Quicklook, Scale};
+    let last = c.steps.last().ok_or("no step")?;
+    let (m, lat, lon) = super::read::mslp_map(&last.path).ok_or("no mslp in the latest step")?;
+    let hpa = m.mapv(|x| x / 100.0);
+    let marks: Vec<Vec<(f64, f64)>> = c
+        .tracks
+        .iter()
+        .map(|t| {
+            t.iter()
+                .map(|&(s, k)| {
+                    let centre = &c.steps[s].centres[k].0;
+                    (centre.j as f64, centre.i as f64)
+                })
+                .collect()
+        })
+        .collect();
+    let lead = (last.valid_time - c.reference_time).num_hours();
+    let title = format!(
+        "mslp with the cycle's {} cyclone tracks: pressure reduced to mean sea level",
+        c.tracks.len()
+    );
+    let subtitle = format!(
+        "valid {} UTC  (cycle {} UTC +{lead} h); tracks of {} steps",
+        last.valid_time.format("%Y-%m-%d %H:%M"),
+        c.reference_time.format("%Y-%m-%d %H:%M"),
+        c.steps.len()
+    );
+    let q = Quicklook {
+        values: hpa.view(),
+        lat: lat.view(),
+        lon: lon.view(),
+        title: &title,
+        subtitle: &subtitle,
+        units: "hPa",
+        scale: Scale::from_data(Palette::Sequential),
+    };
+    render_with_marks(&q, &marks)
 }
 
 #[cfg(test)]

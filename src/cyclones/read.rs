@@ -182,6 +182,15 @@ fn times(f: &netcdf::File) -> Option<(NaiveDateTime, NaiveDateTime)> {
     ))
 }
 
+/// A step file's mean sea-level pressure with the latitude and longitude of every point.
+pub fn mslp_map(path: &Path) -> Option<(Array2<f32>, Array2<f64>, Array2<f64>)> {
+    crate::output::quiet_hdf5_errors();
+    let f = netcdf::open(path).ok()?;
+    let m = plane(&f, "mslp", None)?;
+    let (lat, lon, _, _) = geography(&f)?;
+    (lat.dim() == m.dim()).then_some((m, lat, lon))
+}
+
 /// Read one step file and find its centres and their facts.
 pub fn step_centres(path: &Path, set: &Settings) -> Result<StepCentres, String> {
     crate::output::quiet_hdf5_errors();

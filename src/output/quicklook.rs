@@ -136,6 +136,57 @@ pub fn render(q: &Quicklook<'_>) -> Result<Vec<u8>, String> {
     img.encode()
 }
 
+/// Colour of the lines and points drawn over a map: near-black, with a white edge.
+const MARK: [u8; 3] = [10, 10, 10];
+const MARK_EDGE: [u8; 3] = [255, 255, 255];
+
+/// [`render`] with lines drawn over the map: each mark a polyline through
+/// points given as (row, column) grid indices of the field, fractions allowed,
+/// a dot at each point and a larger one at its last. A segment that jumps more
+/// than half the grid's width (across the seam of a global grid) is not drawn.
+pub fn render_with_marks(q: &Quicklook<'_>, marks: &[Vec<(f64, f64)>]) -> Result<Vec<u8>, String> {
+    let shape = q.values.dim();
+    if q.lat.dim() != shape || q.lon.dim() != shape {
+        return Err(format!(
+            "quicklook: shapes differ: values {:?}, lat {:?}, lon {:?}",
+            shape,
+            q.lat.dim(),
+            q.lon.dim()
+        ));
+    }
+    let (ny, nx) = shape;
+    if ny == 0 || nx == 0 {
+        return Err(format!("quicklook: empty grid {shape:?}"));
+    }
+    let (lo, hi) = colour_range(&q.values, &q.scale)?;
+    let lay = layout(nx, ny);
+    let mut img = Canvas::new(lay.width, lay.height, BACKGROUND);
+    draw_bands(&mut img, &lay, q.title, q.subtitle);
+    draw_map(&mut img, &lay, q, lo, hi);
+    let flip = flip_rows(&q.lat);
+    let to_px = |(j, i): (f64, f64)| {
+        let row = if flip { (ny - 1) as f64 - j } else { j };
+        (
+            lay.map_x as f64 + (i + 0.5) * lay.map_w as f64 / nx as f64,
+            lay.map_y as f64 + (row + 0.5) * lay.map_h as f64 / ny as f64,
+        )
+    };
+    for mark in marks {
+        for w in mark.windows(2) {
+            if (w[1].1 - w[0].1).abs() <= nx as f64 / 2.0 {
+                img.line(to_px(w[0]), to_px(w[1]), MARK);
+            }
+        }
+        for (k, &p) in mark.iter().enumerate() {
+            let r = if k + 1 == mark.len() { 4 } else { 2 };
+            img.dot(to_px(p), r + 1, MARK_EDGE);
+            img.dot(to_px(p), r, MARK);
+        }
+    }
+    draw_colour_bar(&mut img, &lay, &q.scale, lo, hi, q.units);
+    img.encode()
+}
+
 /// Where each part of the image goes.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 struct Layout {
@@ -650,6 +701,34 @@ impl Canvas {
         if x < self.w && y < self.h {
             let k = 3 * (y * self.w + x);
             self.rgb[k..k + 3].copy_from_slice(&c);
+        }
+    }
+
+    /// A line of width 2 from `a` to `b` (pixel coordinates), a point every half pixel.
+    fn line(&mut self, a: (f64, f64), b: (f64, f64), c: [u8; 3]) {
+        let n = (2.0 * (b.0 - a.0).abs().max((b.1 - a.1).abs()))
+            .ceil()
+            .max(1.0) as usize;
+        for k in 0..=n {
+            let t = k as f64 / n as f64;
+            let (x, y) = (a.0 + t * (b.0 - a.0), a.1 + t * (b.1 - a.1));
+            if x >= 0.0 && y >= 0.0 {
+                let (x, y) = (x as usize, y as usize);
+                self.set(x, y, c);
+                self.set(x + 1, y, c);
+            }
+        }
+    }
+
+    /// A filled disc of radius `r` pixels about `p`.
+    fn dot(&mut self, p: (f64, f64), r: i64, c: [u8; 3]) {
+        let (cx, cy) = (p.0.round() as i64, p.1.round() as i64);
+        for dy in -r..=r {
+            for dx in -r..=r {
+                if dx * dx + dy * dy <= r * r && cx + dx >= 0 && cy + dy >= 0 {
+                    self.set((cx + dx) as usize, (cy + dy) as usize, c);
+                }
+            }
         }
     }
 
