@@ -83,6 +83,7 @@ impl Default for Quicklooks {
                 "eta@500".into(),
                 "thick@1000-500".into(),
                 "thick_chg_06h@1000-500".into(),
+                "trop_fold_dp@2".into(),
             ],
         }
     }
@@ -138,6 +139,11 @@ pub struct Isentropic {
     pub layers: Vec<[f64; 2]>,
     /// |PV| values of the dynamic tropopause surfaces, PVU, ascending (+ north, - south).
     pub tropopause_pvu: Vec<f64>,
+    /// Potential temperature at and above which air counts as stratospheric whatever its
+    /// PV, K: the tropopause is the lower of the PV surface and this isentrope.
+    pub tropopause_theta_bound: f64,
+    /// Crossings of the PV surface below this pressure (hPa) do not count toward a fold.
+    pub fold_bottom_hpa: f64,
 }
 
 impl Default for Isentropic {
@@ -148,6 +154,9 @@ impl Default for Isentropic {
             surfaces: (0..=16).map(|k| 280.0 + 5.0 * f64::from(k)).collect(),
             layers: vec![[290.0, 300.0], [300.0, 310.0], [310.0, 330.0]],
             tropopause_pvu: vec![2.0],
+            // The 380 K bound of the tropical tropopause (Hoskins, McIntyre and Robertson 1985).
+            tropopause_theta_bound: 380.0,
+            fold_bottom_hpa: 700.0,
         }
     }
 }
@@ -375,6 +384,18 @@ impl Config {
         {
             p.push(format!(
                 "isentropic.tropopause_pvu: {v} must be a magnitude above 0 and at most 20 PVU"
+            ));
+        }
+        if !(250.0..=1000.0).contains(&iso.tropopause_theta_bound) {
+            p.push(format!(
+                "isentropic.tropopause_theta_bound: {} K is outside 250 to 1000 K",
+                iso.tropopause_theta_bound
+            ));
+        }
+        if !(100.0..=1100.0).contains(&iso.fold_bottom_hpa) {
+            p.push(format!(
+                "isentropic.fold_bottom_hpa: {} hPa is outside 100 to 1100 hPa",
+                iso.fold_bottom_hpa
             ));
         }
         if iso.tropopause_pvu.windows(2).any(|w| w[1] <= w[0]) {

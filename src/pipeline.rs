@@ -895,74 +895,26 @@ pub fn run_step(
     rep.family_seconds
         .push(("isobaric_pv", t_family.elapsed().as_secs_f64()));
     let t_family = Instant::now();
-    // Dynamic tropopause on each PV surface.
+    // Dynamic tropopause and folds on each PV surface.
     if let (true, Some(pv), Some(st), Some(u), Some(v)) = (want_trop, &pv3, &st, &u3, &v3) {
-        let levels_pvu = &cfg.isentropic.tropopause_pvu;
-        let np = levels_pvu.len();
-        let lnp: Vec<f64> = p_pa.iter().map(|p| p.ln()).collect();
-        let mut out: Vec<Array3<f32>> = (0..5)
-            .map(|_| Array3::from_elem((np, ny, nx), f32::NAN))
-            .collect();
-        // Rows in parallel; each row writes its own row of every output.
-        let rows: Vec<Vec<[f32; 5]>> = (0..ny)
-            .into_par_iter()
-            .map(|j| {
-                let mut col = vec![0.0f64; nz];
-                let mut row = vec![[f32::NAN; 5]; np * nx];
-                for i in 0..nx {
-                    for (k, c) in col.iter_mut().enumerate() {
-                        *c = f64::from(pv[(k, j, i)]);
-                    }
-                    for (s, &thr) in levels_pvu.iter().enumerate() {
-                        if let Some((k, w)) = tropopause::locate_pv_surface(&col, lat[(j, i)], thr)
-                        {
-                            let at = |a: &Array3<f32>| {
-                                let (fu, fl) =
-                                    (f64::from(a[(k, j, i)]), f64::from(a[(k + 1, j, i)]));
-                                (fl + w * (fu - fl)) as f32
-                            };
-                            let o = &mut row[s * nx + i];
-                            o[0] = (lnp[k + 1] + w * (lnp[k] - lnp[k + 1])).exp() as f32;
-                            o[1] = at(&st.theta);
-                            if let Some(z) = &z3 {
-                                o[2] = at(z);
-                            }
-                            o[3] = at(u);
-                            o[4] = at(v);
-                        }
-                    }
-                }
-                row
-            })
-            .collect();
-        for (j, row) in rows.iter().enumerate() {
-            for s in 0..np {
-                for i in 0..nx {
-                    for (q, o) in out.iter_mut().enumerate() {
-                        o[(s, j, i)] = row[s * nx + i][q];
-                    }
-                }
-            }
-        }
-        let mut it = out.into_iter();
-        let (tp, tt, tz, tu, tv) = (it.next(), it.next(), it.next(), it.next(), it.next());
-        if let (Some(tp), Some(tt), Some(tz), Some(tu), Some(tv)) = (tp, tt, tz, tu, tv) {
-            fields.push(sealed(variables::TROP_P, Vertical::PvSurface, tp));
-            fields.push(sealed(variables::TROP_THETA, Vertical::PvSurface, tt));
-            if z3.is_some() {
-                fields.push(sealed(variables::TROP_Z, Vertical::PvSurface, tz));
-            }
-            fields.push(sealed(
-                variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
-                Vertical::PvSurface,
-                tu,
-            ));
-            fields.push(sealed(
-                variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
-                Vertical::PvSurface,
-                tv,
-            ));
-        }
+        let columns = TropopauseColumns {
+            pv,
+            theta: &st.theta,
+            z: z3.as_ref(),
+            u,
+            v,
+            lat: &lat,
+            p: &p_pa,
+        };
+        let winds = (
+            variables::wind("trop_u", u_spec, "wind component at the dynamic tropopause"),
+            variables::wind("trop_v", v_spec, "wind component at the dynamic tropopause"),
+        );
+        fields.extend(
+            tropopause_products(&columns, &cfg.isentropic, winds)
+                .into_iter()
+                .map(&seal),
+        );
     }
 
     let pv_prod = pv3
@@ -1450,6 +1402,115 @@ pub fn run_step(
     rep.issues.extend(issues);
     rep.seconds = t0.elapsed().as_secs_f64();
     rep
+}
+
+/// The columns the tropopause search reads: isobaric PV (PVU), theta, heights
+/// and winds as the input gives them, on the product levels `p` (Pa).
+struct TropopauseColumns<'a> {
+    pv: &'a Array3<f32>,
+    theta: &'a Array3<f32>,
+    z: Option<&'a Array3<f32>>,
+    u: &'a Array3<f32>,
+    v: &'a Array3<f32>,
+    lat: &'a Array2<f64>,
+    p: &'a [f64],
+}
+
+/// Outputs of the tropopause search per PV surface, in the order of
+/// [`tropopause_products`]: p, theta, z, u, v, crossings, p of the lowest crossing, fold depth.
+const TROP_OUTPUTS: usize = 8;
+
+/// One column's tropopause outputs on one PV surface (NaN where nothing is found).
+fn tropopause_column(
+    c: &TropopauseColumns<'_>,
+    (j, i): (usize, usize),
+    lnp: &[f64],
+    search: &tropopause::Search,
+) -> [f32; TROP_OUTPUTS] {
+    let col =
+        |a: &Array3<f32>| -> Vec<f64> { (0..lnp.len()).map(|k| f64::from(a[(k, j, i)])).collect() };
+    let (pv, theta) = (col(c.pv), col(c.theta));
+    let mut o = [f32::NAN; TROP_OUTPUTS];
+    let Some(found) = tropopause::search(&pv, &theta, lnp, c.lat[(j, i)], search) else {
+        return o;
+    };
+    let x = found.top;
+    o[0] = x.exp() as f32;
+    o[1] = tropopause::theta_at_ln_p(&theta, lnp, x) as f32;
+    if let Some(z) = c.z {
+        o[2] = tropopause::at_ln_p(&col(z), lnp, x) as f32;
+    }
+    o[3] = tropopause::at_ln_p(&col(c.u), lnp, x) as f32;
+    o[4] = tropopause::at_ln_p(&col(c.v), lnp, x) as f32;
+    o[5] = found.crossings as f32;
+    o[6] = found.lowest.exp() as f32;
+    o[7] = found.fold_depth as f32;
+    o
+}
+
+/// The dynamic tropopause on each configured PV surface: the lower of the PV surface
+/// and the bound isentrope, with its pressure, theta, height and wind, and the fold
+/// search's crossings, lowest crossing and fold depth (see [`tropopause::search`]).
+fn tropopause_products(
+    c: &TropopauseColumns<'_>,
+    cfg: &crate::config::Isentropic,
+    (u_spec, v_spec): (variables::VarSpec, variables::VarSpec),
+) -> Vec<Product> {
+    let (_, ny, nx) = c.pv.dim();
+    let np = cfg.tropopause_pvu.len();
+    let lnp: Vec<f64> = c.p.iter().map(|p| p.ln()).collect();
+    let mut out: Vec<Array3<f32>> = (0..TROP_OUTPUTS)
+        .map(|_| Array3::from_elem((np, ny, nx), f32::NAN))
+        .collect();
+    for (s, &threshold) in cfg.tropopause_pvu.iter().enumerate() {
+        let search = tropopause::Search {
+            threshold,
+            theta_bound: cfg.tropopause_theta_bound,
+            fold_bottom: cfg.fold_bottom_hpa * 100.0,
+            boundary_layer: tropopause::BOUNDARY_LAYER_PA,
+        };
+        // Rows in parallel; each row gives its own row of every output.
+        let rows: Vec<Vec<[f32; TROP_OUTPUTS]>> = (0..ny)
+            .into_par_iter()
+            .map(|j| {
+                (0..nx)
+                    .map(|i| tropopause_column(c, (j, i), &lnp, &search))
+                    .collect()
+            })
+            .collect();
+        for (j, row) in rows.iter().enumerate() {
+            for (i, o) in row.iter().enumerate() {
+                for (q, a) in out.iter_mut().enumerate() {
+                    a[(s, j, i)] = o[q];
+                }
+            }
+        }
+    }
+    let bound = format!("{} K", cfg.tropopause_theta_bound);
+    let bottom = format!("{} hPa", cfg.fold_bottom_hpa);
+    let mut specs = vec![
+        Some(variables::TROP_P),
+        Some(variables::TROP_THETA),
+        c.z.map(|_| variables::TROP_Z),
+        Some(u_spec),
+        Some(v_spec),
+        Some(variables::TROP_CROSSINGS),
+        Some(variables::TROP_P_LOW),
+        Some(variables::TROP_FOLD_DP),
+    ]
+    .into_iter();
+    out.into_iter()
+        .filter_map(|data| {
+            let spec = specs.next().flatten()?;
+            let mut prod = Product::new(spec, Vertical::PvSurface, data);
+            prod.notes.push(("leeward_theta_bound", bound.clone()));
+            if matches!(spec.name, "trop_crossings" | "trop_p_low" | "trop_fold_dp") {
+                prod.notes
+                    .push(("leeward_fold_search_bottom", bottom.clone()));
+            }
+            Some(prod)
+        })
+        .collect()
 }
 
 /// The file name of a step's products: centre, cycle, lead, grid number

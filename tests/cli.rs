@@ -237,7 +237,7 @@ fn check_config_names_every_planted_error_and_completions_and_man_pages_come_out
     std::fs::write(
         &bad,
         "[output]\ndeflate_level = 12\nspeed = 3\n[isentropic]\nsurfaces = [300.0, 290.0]\n\
-         [service]\nworkers = 0\n[quicklook]\nimages = [\"no good\"]\n\
+         [service]\nworkers = 0\n[service.slurm]\nresult_grace_s = -1.0\n[quicklook]\nimages = [\"no good\"]\n\
          [[feed]]\nname = \"x y\"\ncomplete = \"files\"\nfiles_per_step = 0\n",
     )
     .unwrap();
@@ -248,6 +248,7 @@ fn check_config_names_every_planted_error_and_completions_and_man_pages_come_out
         "output.deflate_level",
         "isentropic.surfaces",
         "service.workers",
+        "service.slurm.result_grace_s",
         "quicklook.images[0]",
         "feed[0].name",
         "feed[0].files_per_step",

@@ -1,6 +1,6 @@
 //! Physical constants, in one place for the whole program.
 //!
-//! Sources as listed in the handbook of methods (REFERENCES.md).
+//! Sources as listed in docs/references.md.
 
 /// Earth's angular velocity, s-1 (IERS conventions).
 pub const OMEGA: f64 = 7.292115e-5;

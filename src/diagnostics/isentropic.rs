@@ -330,7 +330,7 @@ mod tests {
     use super::*;
     use crate::diagnostics::constants::R_DRY;
 
-    /// Constant-lapse-rate atmosphere (REFERENCES.md): T = T0 (p/p0)^c, c = R gamma / g.
+    /// Constant-lapse-rate atmosphere (docs/references.md): T = T0 (p/p0)^c, c = R gamma / g.
     fn theta_of(p: f64) -> f64 {
         let c = R_DRY * 0.0065 / G0;
         288.15 * (p / 101_325.0).powf(c) * (P0 / p).powf(KAPPA)

@@ -121,14 +121,14 @@ pub fn stability(t: ArrayView3<f32>, p: &[f64]) -> Stability {
 mod tests {
     use super::*;
 
-    /// Constant-lapse-rate atmosphere (REFERENCES.md): T = T0 (p/p0)^(R gamma/g).
+    /// Constant-lapse-rate atmosphere (docs/references.md): T = T0 (p/p0)^(R gamma/g).
     fn lapse_t(p: f64) -> f64 {
         288.15 * (p / 101_325.0).powf(R_DRY * 0.0065 / G0)
     }
 
     #[test]
     fn potential_temperature_of_the_standard_atmosphere() {
-        // US Standard Atmosphere 1976 (computed from its defining constants, REFERENCES.md):
+        // US Standard Atmosphere 1976 (computed from its defining constants, docs/references.md):
         // at 500 hPa, z = 5574.4 m, T = 288.15 - 6.5 * 5.5744 = 251.91 K, so theta = 251.91 (1000/500)^kappa.
         let t500 = 288.15 - 6.5 * 5.5744;
         let th = potential_temperature(t500, 50_000.0);

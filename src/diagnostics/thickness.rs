@@ -46,7 +46,7 @@ fn segment(t1: f64, t2: f64, dlnp: f64) -> f64 {
 /// Hypsometric thickness of the layer from `p_bottom` to `p_top` (Pa), given a
 /// column of virtual temperature `tv` on levels `p` (Pa, increasing) that include
 /// both bounds: z_top - z_bottom = (R / g0) integral Tv d ln p, the hypsometric
-/// equation (any dynamics text; REFERENCES.md). NaN if any level used is missing.
+/// equation (any dynamics text; docs/references.md). NaN if any level used is missing.
 pub fn hypsometric_thickness(tv: &[f64], p: &[f64], p_bottom: f64, p_top: f64) -> f64 {
     let (Some(kb), Some(kt)) = (
         p.iter().position(|&x| (x - p_bottom).abs() < 1e-3),
@@ -69,14 +69,14 @@ mod tests {
     use super::*;
 
     /// US Standard Atmosphere 1976 temperature at pressure p (Pa), troposphere:
-    /// T = T0 (p/p0)^(R gamma/g) (REFERENCES.md, computed from its defining constants).
+    /// T = T0 (p/p0)^(R gamma/g) (docs/references.md, computed from its defining constants).
     fn std_t(p: f64) -> f64 {
         288.15 * (p / 101_325.0).powf(R_DRY * 0.0065 / G0)
     }
 
     #[test]
     fn standard_atmosphere_thicknesses_from_temperature_alone() {
-        // REFERENCES.md check values: 1000-500 5463.6 m, 1000-850 1346.4, 850-700 1554.9, 700-500 2562.3.
+        // docs/references.md check values: 1000-500 5463.6 m, 1000-850 1346.4, 850-700 1554.9, 700-500 2562.3.
         let p: Vec<f64> = [500.0, 700.0, 850.0, 925.0, 1000.0]
             .iter()
             .map(|h| h * 100.0)

@@ -166,7 +166,7 @@ mod tests {
 
     const A: f64 = 6_371_229.0;
 
-    /// Williamson et al. 1992, test case 2 (REFERENCES.md): u = u0 cos(phi), v = 0
+    /// Williamson et al. 1992, test case 2 (docs/references.md): u = u0 cos(phi), v = 0
     /// has zeta = 2 u0 sin(phi) / a exactly.
     #[test]
     fn solid_body_flow_on_a_global_grid_with_poles() {
@@ -247,7 +247,7 @@ mod tests {
 
     #[test]
     fn absolute_adds_coriolis() {
-        // REFERENCES.md check value: f at 45 degrees = 1.03126e-4 s-1.
+        // docs/references.md check value: f at 45 degrees = 1.03126e-4 s-1.
         let f = 2.0 * OMEGA * 45f64.to_radians().sin();
         let eta = absolute_vorticity_at(1e-5, f);
         assert!((eta - (1.03126e-4 + 1e-5)).abs() < 1e-9);

@@ -138,7 +138,7 @@ mod tests {
 
     #[test]
     fn wmo_numbers_from_code_table_4_2() {
-        // WMO-No. 306 code table 4.2 as listed in REFERENCES.md.
+        // WMO-No. 306 code table 4.2 as listed in docs/references.md.
         assert_eq!(Quantity::from_wmo(0, 0, 0), Some(Quantity::Temperature));
         assert_eq!(
             Quantity::from_wmo(0, 3, 5),

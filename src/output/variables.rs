@@ -151,9 +151,9 @@ pub const fn wind(
 pub const TROP_P: VarSpec = VarSpec {
     name: "trop_p",
     standard_name: Some("air_pressure"),
-    long_name: "pressure of the dynamic tropopause",
+    long_name: "pressure of the dynamic tropopause (the lower of the PV surface and the bound isentrope)",
     units: "Pa",
-    formula: "first crossing of |PV| = value from the top of the column down (+value north, -value south), linear in PV, applied in ln p",
+    formula: "uppermost crossing, from the top of the column down, from stratospheric air (|PV| >= value, +value north and -value south, or theta >= the bound in leeward_theta_bound) to tropospheric air; the PV surface linear in PV and the isentrope linear in ln theta, placed in ln p; missing where the top of the column is not stratospheric (Hoskins, McIntyre and Robertson 1985; docs/references.md)",
 };
 
 /// Potential temperature of the dynamic tropopause.
@@ -162,7 +162,34 @@ pub const TROP_THETA: VarSpec = VarSpec {
     standard_name: Some("dynamic_tropopause_potential_temperature"),
     long_name: "potential temperature of the dynamic tropopause",
     units: "K",
-    formula: "theta interpolated to the PV surface linearly in ln p",
+    formula: "ln theta linear in ln p at trop_p; equal to the bound (leeward_theta_bound) where the isentrope is the lower surface",
+};
+
+/// Crossings of the tropopause criterion in a column.
+pub const TROP_CROSSINGS: VarSpec = VarSpec {
+    name: "trop_crossings",
+    standard_name: None,
+    long_name: "number of crossings between stratospheric and tropospheric air in the column, from the top down",
+    units: "1",
+    formula: "the first crossing (trop_p) and every later one above the fold search's bottom (leeward_fold_search_bottom, and 100 hPa above the lowest level with data); 3 or more: the column folds (Sprenger, Croci Maspoli and Wernli 2003; docs/references.md)",
+};
+
+/// Lowest crossing with stratospheric air above.
+pub const TROP_P_LOW: VarSpec = VarSpec {
+    name: "trop_p_low",
+    standard_name: Some("air_pressure"),
+    long_name: "pressure of the lowest crossing from stratospheric air above to tropospheric air below",
+    units: "Pa",
+    formula: "the lowest counted crossing into the troposphere (the base of a fold); equal to trop_p where the column does not fold",
+};
+
+/// Depth of a tropopause fold.
+pub const TROP_FOLD_DP: VarSpec = VarSpec {
+    name: "trop_fold_dp",
+    standard_name: None,
+    long_name: "tropopause fold depth: pressure between the uppermost and the lowest crossing",
+    units: "Pa",
+    formula: "trop_p_low - trop_p where trop_crossings >= 3, 0 where the column does not fold, missing where there is no tropopause (Sprenger, Croci Maspoli and Wernli 2003; docs/references.md)",
 };
 
 /// Geopotential height of the dynamic tropopause.

@@ -859,22 +859,37 @@ pub struct JobFacts {
     pub exit_code: String,
 }
 
-/// Job states in which the job may still write its staging directory.
-pub fn is_active(state: &str) -> bool {
-    matches!(
-        state,
-        "PENDING"
-            | "RUNNING"
-            | "CONFIGURING"
-            | "REQUEUED"
-            | "REQUEUE_HOLD"
-            | "REQUEUE_FED"
-            | "RESIZING"
-            | "SUSPENDED"
-            | "STOPPED"
-            | "SIGNALING"
-            | "STAGE_OUT"
-    )
+/// The base job states in which a Slurm job has ended for good: it runs no
+/// more and writes nothing more into its staging directory (Slurm's
+/// `squeue(1)` and `sacct(1)`, "JOB STATE CODES"). Every other state, and a
+/// state leeward does not know, means the job is still going: it is pending,
+/// running, being configured, completing (its processes are being killed or
+/// its epilog runs), requeued, resized, suspended, staging out, held, or
+/// signalled.
+pub const ENDED_STATES: [&str; 9] = [
+    "COMPLETED",
+    "FAILED",
+    "CANCELLED",
+    "TIMEOUT",
+    "OUT_OF_MEMORY",
+    "NODE_FAIL",
+    "PREEMPTED",
+    "BOOT_FAIL",
+    "DEADLINE",
+];
+
+/// True when a job state as `squeue --format=%T`, `scontrol show job`
+/// (`JobState=`) or `sacct --parsable` prints it says the job has ended:
+/// one of [`ENDED_STATES`]. `sacct` may add who cancelled it (`CANCELLED by
+/// 0`); that is read as `CANCELLED`.
+pub fn has_ended(state: &str) -> bool {
+    let base = state
+        .split_whitespace()
+        .next()
+        .unwrap_or("")
+        .trim_end_matches('+')
+        .to_ascii_uppercase();
+    ENDED_STATES.contains(&base.as_str())
 }
 
 /// The Slurm commands, as `[service.slurm]` configures them.
@@ -1180,6 +1195,52 @@ mod tests {
             assert!(a.iter().any(|x| x == want), "{want} not in {a:?}");
         }
         assert_eq!(a.last().unwrap(), "/st/job.sh");
+    }
+
+    #[test]
+    fn only_the_terminal_states_say_a_job_has_ended() {
+        // Slurm's job state codes (squeue(1), "JOB STATE CODES", Slurm 22.05;
+        // from memory): the nine base states after which a job runs no more.
+        for s in [
+            "COMPLETED",
+            "FAILED",
+            "CANCELLED",
+            "TIMEOUT",
+            "OUT_OF_MEMORY",
+            "NODE_FAIL",
+            "PREEMPTED",
+            "BOOT_FAIL",
+            "DEADLINE",
+            // sacct --parsable names who cancelled a job.
+            "CANCELLED by 0",
+        ] {
+            assert!(has_ended(s), "{s} is an end");
+        }
+        // Still going: queued, starting, running, its processes being killed
+        // or its epilog running (COMPLETING), requeued, resized, suspended,
+        // staging out, held, signalled; and any state not known here.
+        for s in [
+            "PENDING",
+            "CONFIGURING",
+            "RUNNING",
+            "COMPLETING",
+            "REQUEUED",
+            "REQUEUE_HOLD",
+            "REQUEUE_FED",
+            "RESIZING",
+            "SUSPENDED",
+            "STOPPED",
+            "SIGNALING",
+            "STAGE_OUT",
+            "SPECIAL_EXIT",
+            "RESV_DEL_HOLD",
+            "REVOKED",
+            "POWER_UP_NODE",
+            "",
+            "SOMETHING_NEW",
+        ] {
+            assert!(!has_ended(s), "{s} is not an end");
+        }
     }
 
     #[test]

@@ -169,8 +169,9 @@ enum JobOutcome {
 /// Where a step's batch job stands.
 #[derive(Debug, Clone, Copy, PartialEq)]
 enum JobPhase {
-    /// Submitted; `gone` polls without the job in the queue and without a result.
-    Queued { gone: u32 },
+    /// Submitted. `ended`: since when Slurm has said the job ended (or no
+    /// longer knows it) while its result record is not yet to be seen.
+    Queued { ended: Option<Instant> },
     /// Its result is being taken (checked, moved, manifest written).
     Taking,
     /// Ended without a result; submitted again at `at`.
@@ -1100,7 +1101,7 @@ impl Daemon {
                 job,
                 stage,
                 spec: Arc::new(spec),
-                phase: JobPhase::Queued { gone: 0 },
+                phase: JobPhase::Queued { ended: None },
             },
         );
         Ok(())
@@ -1138,9 +1139,13 @@ impl Daemon {
                 continue;
             };
             let listed = queued.as_ref().ok().and_then(|q| q.get(&j.job)).cloned();
-            let active = listed.as_ref().is_some_and(|(st, _)| batch::is_active(st));
+            // Only a terminal state (or a job the controller no longer holds)
+            // is an end: COMPLETING, CONFIGURING, REQUEUED, SUSPENDED, ... go on.
+            // While squeue does not answer, a result record (the job's last
+            // act) is still taken from the file system.
+            let going = listed.as_ref().is_some_and(|(st, _)| !batch::has_ended(st));
             let has_result = j.stage.join(batch::RESULT).exists();
-            if has_result && !active {
+            if has_result && !going {
                 j.phase = JobPhase::Taking;
                 let (spec, stage) = (j.spec.clone(), j.stage.clone());
                 let lock = self.lock_of(&tag.feed);
@@ -1163,18 +1168,18 @@ impl Daemon {
                 });
                 continue;
             }
-            if has_result || active || queued.is_err() {
-                j.phase = JobPhase::Queued { gone: 0 };
+            if going || queued.is_err() {
+                j.phase = JobPhase::Queued { ended: None };
                 continue;
             }
-            // Not in the queue and no result. A shared file system may show the
-            // result a moment late: look twice before calling the job lost.
-            let gone = match j.phase {
-                JobPhase::Queued { gone } => gone + 1,
-                _ => 1,
+            // Ended, and no result to be seen. A shared file system may show
+            // the result late: wait up to `result_grace_s` from the end.
+            let since = match j.phase {
+                JobPhase::Queued { ended: Some(t) } => t,
+                _ => now,
             };
-            j.phase = JobPhase::Queued { gone };
-            if gone < 2 {
+            j.phase = JobPhase::Queued { ended: Some(since) };
+            if since.elapsed().as_secs_f64() < self.cfg.service.slurm.result_grace_s {
                 continue;
             }
             let job = j.job.clone();
@@ -1185,11 +1190,19 @@ impl Daemon {
                     exit_code: String::new(),
                 })
             });
+            if facts.as_ref().is_some_and(|f| !batch::has_ended(&f.state)) {
+                // Requeued or started again meanwhile: it goes on.
+                if let Some(j) = self.jobs.get_mut(&tag) {
+                    j.phase = JobPhase::Queued { ended: None };
+                }
+                continue;
+            }
+            let grace = self.cfg.service.slurm.result_grace_s;
             let (state, reason) = match facts {
                 Some(f) => (
                     f.state.clone(),
                     format!(
-                        "Slurm job {job} ended {} (reason {}, exit code {}) without a result",
+                        "Slurm job {job} ended {} (reason {}, exit code {}) without a result (none seen {grace} s after its end)",
                         f.state,
                         if f.reason.is_empty() {
                             "none"
@@ -1206,7 +1219,7 @@ impl Daemon {
                 None => (
                     "UNKNOWN".into(),
                     format!(
-                        "Slurm job {job} is no longer known to the scheduler and left no result"
+                        "Slurm job {job} is no longer known to the scheduler and left no result (none seen {grace} s later)"
                     ),
                 ),
             };
@@ -1345,7 +1358,7 @@ impl Daemon {
                             job: r.job,
                             stage,
                             spec: Arc::new(spec),
-                            phase: JobPhase::Queued { gone: 0 },
+                            phase: JobPhase::Queued { ended: None },
                         },
                     );
                 }
@@ -1399,16 +1412,15 @@ impl Daemon {
             return;
         }
         self.running.remove(&d.tag);
-        let batch_job = self.jobs.remove(&d.tag);
-        if let Some(j) = &batch_job {
+        // The staging directory goes before the outcome is recorded, so that
+        // a recorded outcome leaves nothing of its job behind.
+        if let Some(j) = self.jobs.remove(&d.tag) {
             if !matches!(d.outcome, JobOutcome::Published { .. }) {
                 batch::keep_log(&j.stage, &self.cfg.service.state_dir, &d.tag, &j.job);
             }
-        }
-        self.finish_step(d);
-        if let Some(j) = batch_job {
             batch::remove_stage(&j.stage);
         }
+        self.finish_step(d);
     }
 
     fn finish_step(&mut self, d: JobDone) {

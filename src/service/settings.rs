@@ -107,6 +107,10 @@ pub struct Slurm {
     pub poll_s: f64,
     /// Seconds a scheduler command may take before it counts as unreachable.
     pub command_timeout_s: f64,
+    /// Seconds to wait for a job's result record to be seen after Slurm says
+    /// the job has ended (a shared file system may show it late) before the
+    /// run counts as failed.
+    pub result_grace_s: f64,
     /// The leeward program the nodes run; empty: the service's own.
     pub program: PathBuf,
     /// Shell lines run in the job before leeward (environment modules, paths).
@@ -128,6 +132,7 @@ impl Default for Slurm {
             when_unreachable: Unreachable::Local,
             poll_s: 2.0,
             command_timeout_s: 30.0,
+            result_grace_s: 60.0,
             program: PathBuf::new(),
             setup: Vec::new(),
             sbatch_args: Vec::new(),
@@ -424,6 +429,7 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
     for (key, v, lo, hi) in [
         ("poll_s", b.poll_s, 0.1, 600.0),
         ("command_timeout_s", b.command_timeout_s, 1.0, 600.0),
+        ("result_grace_s", b.result_grace_s, 0.0, 3600.0),
     ] {
         if !(lo..=hi).contains(&v) {
             p.push(format!("service.slurm.{key}: {v} is outside {lo} to {hi}"));

@@ -65,6 +65,7 @@ PARAM_RH = (1, 1)  # relative humidity, %
 #: WMO code table 4.5: mean sea level.
 LEVEL_MSL = 101
 PARAM_GH = (3, 5)  # geopotential height, gpm
+PARAM_GP = (3, 4)  # geopotential, m2 s-2
 PARAM_U = (2, 2)  # u-component of wind, m s-1
 PARAM_V = (2, 3)  # v-component of wind, m s-1
 PARAM_ABSV = (2, 10)  # absolute vorticity, s-1
@@ -599,6 +600,20 @@ def solid_body(
         msgs.append(encode_field(grid, geo, z, PARAM_GH, lev, **kw))
         msgs.append(encode_field(grid, geo, ug, PARAM_U, lev, **kw))
         msgs.append(encode_field(grid, geo, vg, PARAM_V, lev, **kw))
+    path.write_bytes(b"".join(msgs))
+    return path
+
+
+def write_fields(path, grid: Grid, fields, *, times: Times = Times(), centre: int = 98,
+                 bits: int = 24, packing: str = "grid_simple") -> Path:
+    """Write one step of arbitrary isobaric fields: `fields` yields (param, level_hpa,
+    values2d) with values in file order (rows as geometry(grid) gives them). Returns the
+    path."""
+    path = Path(path)
+    geo = geometry(grid)
+    msgs = [encode_field(grid, geo, np.asarray(v, dtype=float), param, lev, times=times,
+                         centre=centre, packing=packing, bits=bits)
+            for param, lev, v in fields]
     path.write_bytes(b"".join(msgs))
     return path
 

@@ -131,6 +131,7 @@ ISENTROPIC_VARIABLES = {
     "pv": "pressure",
     "trop_p": "pv_level", "trop_theta": "pv_level", "trop_z": "pv_level",
     "trop_u": "pv_level", "trop_v": "pv_level",
+    "trop_crossings": "pv_level", "trop_p_low": "pv_level", "trop_fold_dp": "pv_level",
     "layer_pv": "theta_layer", "layer_dp": "theta_layer",
 }
 

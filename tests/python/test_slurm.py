@@ -82,13 +82,16 @@ def sacct(env: dict, job: str) -> list[list[str]]:
     return [line.split("|") for line in out.splitlines() if line.strip()]
 
 
-def squeue(env: dict) -> dict[str, tuple[str, str]]:
-    out = slurm_cmd(env, "squeue", "-h", "-o", "%i|%T|%j")
+def squeue(env: dict, states: str = "") -> dict[str, tuple[str, str]]:
+    """Jobs the controller holds: id -> (state, name); with states="all", ended
+    ones too (cluster.sh keeps them MinJobAge = 3600 s)."""
+    out = slurm_cmd(env, "squeue", "-h", "-o", "%i|%T|%j", *(["-t", states] if states else []))
     rows = [line.split("|") for line in out.splitlines() if line.strip()]
     return {r[0]: (r[1], r[2]) for r in rows}
 
 
-def slurm_service(root: Path, env: dict, slurm_extra: str = "", feed_extra: str = "") -> Service:
+def slurm_service(root: Path, env: dict, slurm_extra: str = "", feed_extra: str = "",
+                  grace: float = 2.0) -> Service:
     return Service(root, env=env,
                    extra_service=f"""
 [service.slurm]
@@ -96,6 +99,7 @@ memory = "1000M"
 cpus_per_step = 1
 poll_s = 0.3
 time_limit = "00:10:00"
+result_grace_s = {grace}
 {slurm_extra}
 """,
                    extra=f'executor = "slurm"\n{feed_extra}')
@@ -222,11 +226,23 @@ def test_a_requeued_and_a_cancelled_job_still_publish_each_step_once(tmp_path, s
 
 def test_a_step_whose_jobs_all_fail_is_reported_with_slurms_reason_and_the_log(tmp_path, slurm):
     files = demo_inputs(tmp_path / "gen", "2026031400", [0])
-    svc = slurm_service(tmp_path, slurm,
-                        slurm_extra='max_attempts = 1\nsetup = ["echo job-started", "sleep 4"]').start()
+    # The job ignores SIGTERM, so that after scancel Slurm holds it in
+    # COMPLETING until KillWait (5 s in cluster.sh) has passed and it is
+    # killed: a job still going, not yet ended (squeue(1), JOB STATE CODES).
+    svc = slurm_service(tmp_path, slurm, slurm_extra=(
+        'max_attempts = 1\nsetup = ["trap \'\' TERM", "echo job-started", "sleep 30"]')).start()
     deliver_renamed(files[0].read_bytes(), tmp_path / "in" / files[0].name)
     job = wait_running(slurm, "lw_demo_20260314T0000Z_000h", 60)
     slurm_cmd(slurm, "scancel", job)
+    wait_for(lambda: squeue(slurm).get(job, ("",))[0] == "COMPLETING", 30,
+             f"Slurm shows job {job} COMPLETING")
+    seen_completing = 0
+    while squeue(slurm).get(job, ("",))[0] == "COMPLETING":
+        seen_completing += 1
+        assert records(svc, "job_ended") == [] and records(svc, "failed") == [], \
+            "a COMPLETING job was taken for ended"
+        time.sleep(0.2)
+    assert seen_completing >= 3, "COMPLETING lasted at least three looks of the test"
     wait_for(lambda: records(svc, "failed"), 60, "the step reported failed")
     failed = records(svc, "failed")
     assert len(failed) == 1 and failed[0]["kind"] == "job", failed
@@ -238,6 +254,48 @@ def test_a_step_whose_jobs_all_fail_is_reported_with_slurms_reason_and_the_log(t
     st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(tmp_path / "state")],
                         capture_output=True, text=True, timeout=30)
     assert "+0h failed (batch job (attempts used up))" in st.stdout, st.stdout
+    no_stray_files(tmp_path)
+    assert svc.stop() == 0
+
+
+def test_a_result_seen_only_after_its_job_ended_is_still_taken(tmp_path, slurm):
+    """On a shared file system the result record a node wrote may show on the
+    service's host after Slurm already says COMPLETED. Here the job hides its
+    record as it ends and the test puts it back once the job is COMPLETED:
+    within service.slurm.result_grace_s the run is not failed, and the step
+    is published once from that very job."""
+    files = demo_inputs(tmp_path / "gen", "2026031400", [0])
+    wrapper = tmp_path / "late-result.sh"
+    wrapper.write_text(
+        "#!/bin/sh\n"
+        f"'{leeward_bin_path()}' \"$@\" || exit $?\n"
+        # leeward process --job DIR: $3 is the staging directory.
+        'mv "$3/result.json" "$3/result.hidden"\n')
+    wrapper.chmod(0o755)
+    svc = slurm_service(tmp_path, slurm, grace=60.0,
+                        slurm_extra=f'max_attempts = 1\nprogram = "{wrapper}"').start()
+    deliver_renamed(files[0].read_bytes(), tmp_path / "in" / files[0].name)
+    hidden = {}
+
+    def result_hidden():
+        found = list((tmp_path / "out" / "demo" / ".jobs").glob("*/result.hidden"))
+        if found:
+            hidden["path"] = found[0]
+        return bool(found)
+
+    wait_for(result_hidden, DEADLINE_S, "the job's result record written and hidden")
+    job = records(svc, "submitted")[0]["job"]
+    wait_for(lambda: squeue(slurm, "all").get(job, ("",))[0] == "COMPLETED", 60,
+             f"Slurm shows job {job} COMPLETED")
+    # Ten looks of the service (poll_s 0.3 s) at an ended job without a result.
+    time.sleep(3.0)
+    assert records(svc, "job_ended") == [] and records(svc, "failed") == [], \
+        "the run was failed before result_grace_s had passed"
+    os.rename(hidden["path"], hidden["path"].with_name("result.json"))
+    wait_for(lambda: len(svc.published()) == 1, 60, "the step published")
+    assert records(svc, "job_ended") == [] and records(svc, "failed") == []
+    assert [r["job"] for r in records(svc, "submitted")] == [job], "one job, one attempt"
+    assert sacct(slurm, job)[-1][2] == "COMPLETED"
     no_stray_files(tmp_path)
     assert svc.stop() == 0
 
