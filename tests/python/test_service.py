@@ -242,7 +242,15 @@ class Reader(threading.Thread):
                 if not p.is_file():
                     continue
                 try:
-                    if p.suffix == ".nc":
+                    if p.suffix == ".nc" and "_cyclones" in p.name:
+                        # A cycle's cyclone tracks, rewritten with every step (CF trajectories).
+                        with netCDF4.Dataset(p) as ds:
+                            ds.variables["row_size"][:]
+                        self.opened += 1
+                    elif p.suffix == ".geojson":
+                        assert json.loads(p.read_text())["type"] == "FeatureCollection"
+                        self.opened += 1
+                    elif p.suffix == ".nc":
                         with netCDF4.Dataset(p) as ds:
                             ds.variables["zeta"][0, 0, 0, 0]
                         self.opened += 1
@@ -339,10 +347,12 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
         product = Path(r["manifest"]).parent / m["product"]
         assert m["product_bytes"] == product.stat().st_size
         assert m["product_checksum"] == hashlib.sha256(product.read_bytes()).hexdigest()
-    # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side.
+    # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side, and the
+    # cycle's cyclone tracks.
     cycle_dir = tmp_path / "out" / "demo" / "20260314T0000Z"
     assert sorted(p.name for p in cycle_dir.iterdir()) == sorted(
-        [f"c255_20260314T0000Z_{h:03d}h.{x}" for h in leads for x in ("nc", "json")])
+        [f"c255_20260314T0000Z_{h:03d}h.{x}" for h in leads for x in ("nc", "json")]
+        + [f"c255_20260314T0000Z_cyclones.{x}" for x in ("nc", "geojson")])
     assert_same_products(svc.out_files(), ref)
     assert svc.metric("leeward_steps_published_total", feed="demo", state="complete") == 4
     assert svc.metric("leeward_publish_latency_seconds_count", feed="demo") == 4
@@ -397,7 +407,7 @@ def test_kill_9_at_random_moments_loses_nothing_and_publishes_nothing_twice(tmp_
             svc.kill9()
             kills += 1
             # While it is down no partial product is visible.
-            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json")
+            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json", ".geojson")
                        for p in svc.out_files())
             svc.start()
     wait_for(lambda: len({step_key(r) for r in svc.published()}) == 6, DEADLINE_S,
