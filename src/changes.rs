@@ -452,15 +452,39 @@ pub mod budget_vars {
     pub const ZETA_PRED: VarSpec = VarSpec {
         name: "bud_zeta_pred",
         standard_name: None,
-        long_name: "relative vorticity the layer's column would have if (zeta + f)/depth were conserved since the previous step",
+        long_name: "relative vorticity the layer's column would have on arrival if (zeta + f)/depth were conserved along its trajectory since the previous step",
         units: "s-1",
-        formula: "eta_d depth_a / depth_d - f_a, eta_d and depth_d at the departure point (semi-Lagrangian midpoint trajectories of the layer-mean wind)",
+        formula: "eta_d depth_a/depth_d - f_a = bud_zeta_dep + bud_zeta_stretch + bud_zeta_beta; eta_d, depth_d and f_d at the departure point of the layer-mean wind's semi-Lagrangian trajectory, depth_a and f_a on arrival (column-depth PV conservation; docs/references.md)",
+    };
+    /// Relative vorticity at the departure point.
+    pub const ZETA_DEP: VarSpec = VarSpec {
+        name: "bud_zeta_dep",
+        standard_name: None,
+        long_name: "relative vorticity of the layer at the departure point, at the previous step",
+        units: "s-1",
+        formula: "zeta_d = eta_d - f_d, bilinear at the departure point",
+    };
+    /// Stretching part of the predicted change.
+    pub const ZETA_STRETCH: VarSpec = VarSpec {
+        name: "bud_zeta_stretch",
+        standard_name: None,
+        long_name: "change of the layer's relative vorticity that the change of its pressure depth alone makes along the trajectory (stretching part)",
+        units: "s-1",
+        formula: "eta_d (depth_a/depth_d - 1); cyclonic (same sign as f) where the column is stretched",
+    };
+    /// Coriolis part of the predicted change.
+    pub const ZETA_BETA: VarSpec = VarSpec {
+        name: "bud_zeta_beta",
+        standard_name: None,
+        long_name: "change of the layer's relative vorticity that the change of the Coriolis parameter along the trajectory makes with absolute vorticity kept (Coriolis part)",
+        units: "s-1",
+        formula: "-(f_a - f_d): poleward motion takes relative vorticity away in the north",
     };
     /// Actual relative vorticity of the layer.
     pub const ZETA: VarSpec = VarSpec {
         name: "bud_zeta",
         standard_name: None,
-        long_name: "relative vorticity of the layer-mean wind",
+        long_name: "relative vorticity of the layer-mean wind on arrival",
         units: "s-1",
         formula: "layer_pv * layer_dp - f",
     };
@@ -470,7 +494,7 @@ pub mod budget_vars {
         standard_name: None,
         long_name: "actual minus conserved-PV prediction of the layer's relative vorticity",
         units: "s-1",
-        formula: "bud_zeta - bud_zeta_pred; non-zero where heating, radiation or friction changes the column's PV (or the trajectory is unreliable)",
+        formula: "bud_zeta - bud_zeta_pred; non-zero where heating, radiation or friction changes the column's PV, and where the layer-mean trajectory does not follow the column (vertical wind shear across a deep layer), or the trajectory or interpolation is in error",
     };
     /// Fractional depth change.
     pub const STRETCH: VarSpec = VarSpec {
@@ -481,33 +505,80 @@ pub mod budget_vars {
         units: "1",
         formula: "(depth_a - depth_d)/depth_d",
     };
+    /// Layer trajectories that did not converge.
+    pub const UNCONVERGED: VarSpec = VarSpec {
+        name: "bud_unconverged",
+        standard_name: None,
+        long_name: "1 where the layer-mean wind's trajectory did not converge (the layer budget is missing there), 0 where it did",
+        units: "1",
+        formula: "midpoint iteration of each sub-step stopped when two successive departure points lie within the tolerance (leeward_trajectory_tolerance_m); missing where the trajectory left the grid or met missing winds",
+    };
     /// Lagrangian rate of change of PV on isentropic surfaces.
     pub const DPVDT: VarSpec = VarSpec {
         name: "bud_dpvdt",
         standard_name: None,
         long_name:
-            "Lagrangian rate of change of Ertel potential vorticity on the isentropic surface",
+            "rate of change of Ertel potential vorticity following the wind on the isentropic surface",
         units: "1e-6 K m2 kg-1 s-1 h-1",
         formula:
-            "(P_a - P_d)/dt in PVU per hour, P_d at the departure point of the surface's own winds",
+            "(P_a - P_d)/dt in PVU per hour, P_d at the departure point of the surface's own winds; where air is heated or cooled it crosses the surface, which this trajectory does not follow",
+    };
+    /// Surface trajectories that did not converge.
+    pub const DPVDT_UNCONVERGED: VarSpec = VarSpec {
+        name: "bud_dpvdt_unconverged",
+        standard_name: None,
+        long_name: "1 where the isentropic surface wind's trajectory did not converge (bud_dpvdt is missing there), 0 where it did",
+        units: "1",
+        formula: "as bud_unconverged, for the trajectories of bud_dpvdt",
     };
     /// The unit of PV, for reference.
     pub const _PVU: &str = PVU_UNITS;
 
     /// Every budget variable with its vertical coordinate (layers for the
     /// column budget, surfaces for the PV change), as the budget writes them.
-    pub const ALL: [(VarSpec, Vertical); 5] = [
+    pub const ALL: [(VarSpec, Vertical); 10] = [
         (ZETA_PRED, Vertical::ThetaLayer),
+        (ZETA_DEP, Vertical::ThetaLayer),
+        (ZETA_STRETCH, Vertical::ThetaLayer),
+        (ZETA_BETA, Vertical::ThetaLayer),
         (ZETA, Vertical::ThetaLayer),
         (ZETA_DIFF, Vertical::ThetaLayer),
         (STRETCH, Vertical::ThetaLayer),
+        (UNCONVERGED, Vertical::ThetaLayer),
         (DPVDT, Vertical::Theta),
+        (DPVDT_UNCONVERGED, Vertical::Theta),
     ];
 
     /// The budget variable called `name`.
     pub fn find(name: &str) -> Option<(VarSpec, Vertical)> {
         ALL.into_iter().find(|(v, _)| v.name == name)
     }
+}
+
+/// The attribute of the budget's flag variables that counts the points whose
+/// trajectory did not converge.
+pub const NOT_CONVERGED_ATTR: &str = "leeward_trajectories_not_converged";
+
+/// Points whose budget trajectories did not converge in a published file: the sum
+/// of [`NOT_CONVERGED_ATTR`] over its flag variables, None where it has no budget.
+pub fn not_converged_in(path: &Path) -> Option<u64> {
+    crate::output::quiet_hdf5_errors();
+    let f = netcdf::open(path).ok()?;
+    let mut total = None;
+    for name in [
+        budget_vars::UNCONVERGED.name,
+        budget_vars::DPVDT_UNCONVERGED.name,
+    ] {
+        let Some(v) = f.variable(name) else { continue };
+        if let Some(Ok(netcdf::AttributeValue::Str(s))) =
+            v.attribute(NOT_CONVERGED_ATTR).map(|a| a.value())
+        {
+            if let Ok(n) = s.trim().parse::<u64>() {
+                total = Some(total.unwrap_or(0) + n);
+            }
+        }
+    }
+    total
 }
 
 /// Grid geometry for the budget's trajectories.
@@ -523,6 +594,8 @@ pub struct Geometry<'a> {
     pub winds_grid_relative: bool,
     /// Periodic in x.
     pub periodic: bool,
+    /// How trajectories are traced.
+    pub trajectories: crate::diagnostics::budget::Settings,
 }
 
 fn to_grid(
@@ -538,100 +611,206 @@ fn to_grid(
     }
 }
 
-/// The PV budget of the later step `new` against the earlier `old`, both read from
-/// their published files, `dt_h` hours apart.
-pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Product> {
-    use crate::diagnostics::budget::{
-        at_departure, departure_points, predicted_absolute_vorticity, stretching,
-    };
+type Read<'a> = dyn Fn(&Path, &str) -> Option<ndarray::Array3<f64>> + 'a;
+
+/// Notes every budget variable carries: the interval and how trajectories were traced.
+fn budget_notes(g: &Geometry<'_>, dt_h: f64) -> Vec<(&'static str, String)> {
+    let t = &g.trajectories;
+    vec![
+        ("leeward_budget_interval_h", format!("{dt_h}")),
+        (
+            "leeward_trajectory_substep_h",
+            format!("{}", dt_h / (dt_h * 3600.0 / t.max_substep).ceil().max(1.0)),
+        ),
+        (
+            "leeward_trajectory_tolerance_m",
+            format!("{:.1}", t.tolerance),
+        ),
+    ]
+}
+
+/// A flag variable's values from trajectory outcomes: 0 converged, 1 not, NaN none.
+fn flag(status: crate::diagnostics::budget::Status) -> f32 {
+    use crate::diagnostics::budget::Status;
+    match status {
+        Status::Converged => 0.0,
+        Status::NotConverged => 1.0,
+        Status::None => f32::NAN,
+    }
+}
+
+/// The column budget of each isentropic layer along the layer-mean wind's trajectories.
+/// Returns the products and the points whose trajectory did not converge.
+fn layer_budget(
+    g: &Geometry<'_>,
+    (old, new): (&Path, &Path),
+    dt_h: f64,
+    read: &Read<'_>,
+) -> Option<(Vec<Product>, usize)> {
+    use crate::diagnostics::budget::{at_departure, departure_points, stretching, Parts, Status};
     use ndarray::Axis;
-    let read = |p: &Path, n: &str| read_field(p, n).map(|(_, a)| a.mapv(f64::from));
-    let dt = dt_h * 3600.0;
-    let mut out = Vec::new();
-    // Layers: trajectories of the layer-mean wind.
-    if let (Some(uo), Some(vo), Some(un), Some(vn), Some(pvo), Some(dpo), Some(pvn), Some(dpn)) = (
-        read(old, "layer_u"),
-        read(old, "layer_v"),
-        read(new, "layer_u"),
-        read(new, "layer_v"),
-        read(old, "layer_pv"),
-        read(old, "layer_dp"),
-        read(new, "layer_pv"),
-        read(new, "layer_dp"),
-    ) {
-        let (nl, ny, nx) = un.dim();
-        let mut pred = Array3::from_elem((nl, ny, nx), f32::NAN);
-        let mut act = pred.clone();
-        let mut diff = pred.clone();
-        let mut str_ = pred.clone();
-        for l in 0..nl.min(uo.dim().0) {
-            // Layer-mean winds are written along the grid's axes.
-            let (uo, vo) = (uo.index_axis(Axis(0), l), vo.index_axis(Axis(0), l));
-            let (un, vn) = (un.index_axis(Axis(0), l), vn.index_axis(Axis(0), l));
-            let (dj, di) = departure_points(&g.layout, uo, vo, un, vn, dt, 4);
-            let eta_old = &pvo.index_axis(Axis(0), l) * &dpo.index_axis(Axis(0), l);
-            let eta_d = at_departure(eta_old.view(), dj.view(), di.view(), g.periodic);
-            let dp_d = at_departure(dpo.index_axis(Axis(0), l), dj.view(), di.view(), g.periodic);
-            for j in 0..ny {
-                for i in 0..nx {
-                    let dpa = dpn[(l, j, i)];
-                    let fa = g.f[(j, i)];
-                    let zp = predicted_absolute_vorticity(eta_d[(j, i)], dp_d[(j, i)], dpa) - fa;
-                    let za = pvn[(l, j, i)] * dpa - fa;
-                    pred[(l, j, i)] = zp as f32;
-                    act[(l, j, i)] = za as f32;
-                    diff[(l, j, i)] = (za - zp) as f32;
-                    str_[(l, j, i)] = stretching(dp_d[(j, i)], dpa) as f32;
-                }
+    let (uo, vo, un, vn) = (
+        read(old, "layer_u")?,
+        read(old, "layer_v")?,
+        read(new, "layer_u")?,
+        read(new, "layer_v")?,
+    );
+    let (pvo, dpo, pvn, dpn) = (
+        read(old, "layer_pv")?,
+        read(old, "layer_dp")?,
+        read(new, "layer_pv")?,
+        read(new, "layer_dp")?,
+    );
+    let (nl, ny, nx) = un.dim();
+    // pred, dep, stretch part, beta part, actual, diff, fractional stretch, flag
+    let mut out: Vec<Array3<f32>> = (0..8)
+        .map(|_| Array3::from_elem((nl, ny, nx), f32::NAN))
+        .collect();
+    let mut not_converged = 0;
+    for l in 0..nl.min(uo.dim().0) {
+        // Layer-mean winds are written along the grid's axes.
+        let d = departure_points(
+            &g.layout,
+            (uo.index_axis(Axis(0), l), vo.index_axis(Axis(0), l)),
+            (un.index_axis(Axis(0), l), vn.index_axis(Axis(0), l)),
+            dt_h * 3600.0,
+            &g.trajectories,
+        );
+        not_converged += d.not_converged();
+        let eta_old = &pvo.index_axis(Axis(0), l) * &dpo.index_axis(Axis(0), l);
+        let eta_d = at_departure(eta_old.view(), &d, g.periodic);
+        let dp_d = at_departure(dpo.index_axis(Axis(0), l), &d, g.periodic);
+        let f_d = at_departure(g.f.view(), &d, g.periodic);
+        for ((j, i), st) in d.status.indexed_iter() {
+            out[7][(l, j, i)] = flag(*st);
+            if *st != Status::Converged {
+                continue;
             }
-        }
-        let note = ("leeward_budget_interval_h", format!("{dt_h}"));
-        for (spec, data) in [
-            (budget_vars::ZETA_PRED, pred),
-            (budget_vars::ZETA, act),
-            (budget_vars::ZETA_DIFF, diff),
-            (budget_vars::STRETCH, str_),
-        ] {
-            let mut p = Product::new(spec, Vertical::ThetaLayer, data);
-            p.notes.push(note.clone());
-            out.push(p);
+            let (dpa, fa) = (dpn[(l, j, i)], g.f[(j, i)]);
+            let parts = Parts::of(eta_d[(j, i)], f_d[(j, i)], fa, dp_d[(j, i)], dpa);
+            let actual = pvn[(l, j, i)] * dpa - fa;
+            let values = [
+                parts.predicted(),
+                parts.zeta_departure,
+                parts.stretching,
+                parts.coriolis,
+                actual,
+                actual - parts.predicted(),
+                stretching(dp_d[(j, i)], dpa),
+            ];
+            for (k, x) in values.into_iter().enumerate() {
+                out[k][(l, j, i)] = x as f32;
+            }
         }
     }
-    // Surfaces: trajectories of each surface's own wind.
-    if let (Some(uo), Some(vo), Some(un), Some(vn), Some(pvo), Some(pvn)) = (
-        read(old, "isen_u"),
-        read(old, "isen_v"),
-        read(new, "isen_u"),
-        read(new, "isen_v"),
-        read(old, "isen_pv"),
-        read(new, "isen_pv"),
-    ) {
-        let (ns, ny, nx) = un.dim();
-        let mut rate = Array3::from_elem((ns, ny, nx), f32::NAN);
-        for s in 0..ns.min(uo.dim().0) {
-            let (uo, vo) = to_grid(
-                g,
-                &uo.index_axis(Axis(0), s).to_owned(),
-                &vo.index_axis(Axis(0), s).to_owned(),
-            );
-            let (un, vn) = to_grid(
-                g,
-                &un.index_axis(Axis(0), s).to_owned(),
-                &vn.index_axis(Axis(0), s).to_owned(),
-            );
-            let (dj, di) =
-                departure_points(&g.layout, uo.view(), vo.view(), un.view(), vn.view(), dt, 4);
-            let pv_d = at_departure(pvo.index_axis(Axis(0), s), dj.view(), di.view(), g.periodic);
-            for j in 0..ny {
-                for i in 0..nx {
-                    rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / dt_h) as f32;
-                }
+    let specs = [
+        budget_vars::ZETA_PRED,
+        budget_vars::ZETA_DEP,
+        budget_vars::ZETA_STRETCH,
+        budget_vars::ZETA_BETA,
+        budget_vars::ZETA,
+        budget_vars::ZETA_DIFF,
+        budget_vars::STRETCH,
+        budget_vars::UNCONVERGED,
+    ];
+    let notes = budget_notes(g, dt_h);
+    let prods = specs
+        .into_iter()
+        .zip(out)
+        .map(|(spec, data)| {
+            let mut p = Product::new(spec, Vertical::ThetaLayer, data);
+            p.notes.extend(notes.iter().cloned());
+            if spec.name == budget_vars::UNCONVERGED.name {
+                p.notes
+                    .push((NOT_CONVERGED_ATTR, not_converged.to_string()));
+            }
+            p
+        })
+        .collect();
+    Some((prods, not_converged))
+}
+
+/// The Lagrangian rate of change of PV on each isentropic surface along the
+/// surface wind's trajectories. Returns the products and the points whose
+/// trajectory did not converge.
+fn surface_budget(
+    g: &Geometry<'_>,
+    (old, new): (&Path, &Path),
+    dt_h: f64,
+    read: &Read<'_>,
+) -> Option<(Vec<Product>, usize)> {
+    use crate::diagnostics::budget::{at_departure, departure_points, Status};
+    use ndarray::Axis;
+    let (uo, vo, un, vn) = (
+        read(old, "isen_u")?,
+        read(old, "isen_v")?,
+        read(new, "isen_u")?,
+        read(new, "isen_v")?,
+    );
+    let (pvo, pvn) = (read(old, "isen_pv")?, read(new, "isen_pv")?);
+    let (ns, ny, nx) = un.dim();
+    let mut rate = Array3::from_elem((ns, ny, nx), f32::NAN);
+    let mut flags = rate.clone();
+    let mut not_converged = 0;
+    for s in 0..ns.min(uo.dim().0) {
+        let old_w = to_grid(
+            g,
+            &uo.index_axis(Axis(0), s).to_owned(),
+            &vo.index_axis(Axis(0), s).to_owned(),
+        );
+        let new_w = to_grid(
+            g,
+            &un.index_axis(Axis(0), s).to_owned(),
+            &vn.index_axis(Axis(0), s).to_owned(),
+        );
+        let d = departure_points(
+            &g.layout,
+            (old_w.0.view(), old_w.1.view()),
+            (new_w.0.view(), new_w.1.view()),
+            dt_h * 3600.0,
+            &g.trajectories,
+        );
+        not_converged += d.not_converged();
+        let pv_d = at_departure(pvo.index_axis(Axis(0), s), &d, g.periodic);
+        for ((j, i), st) in d.status.indexed_iter() {
+            flags[(s, j, i)] = flag(*st);
+            if *st == Status::Converged {
+                rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / dt_h) as f32;
             }
         }
-        let mut p = Product::new(budget_vars::DPVDT, Vertical::Theta, rate);
-        p.notes
-            .push(("leeward_budget_interval_h", format!("{dt_h}")));
-        out.push(p);
+    }
+    let notes = budget_notes(g, dt_h);
+    let mut p = Product::new(budget_vars::DPVDT, Vertical::Theta, rate);
+    p.notes.extend(notes.iter().cloned());
+    let mut q = Product::new(budget_vars::DPVDT_UNCONVERGED, Vertical::Theta, flags);
+    q.notes.extend(notes);
+    q.notes
+        .push((NOT_CONVERGED_ATTR, not_converged.to_string()));
+    Some((vec![p, q], not_converged))
+}
+
+/// The PV budget of the later step `new` against the earlier `old`, both read from
+/// their published files, `dt_h` hours apart. Points whose trajectories did not
+/// converge are flagged, left missing, counted in the flag variables' attribute
+/// and logged.
+pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Product> {
+    let read = |p: &Path, n: &str| read_field(p, n).map(|(_, a)| a.mapv(f64::from));
+    let mut out = Vec::new();
+    let mut not_converged = 0;
+    for part in [
+        layer_budget(g, (old, new), dt_h, &read),
+        surface_budget(g, (old, new), dt_h, &read),
+    ]
+    .into_iter()
+    .flatten()
+    {
+        out.extend(part.0);
+        not_converged += part.1;
+    }
+    if not_converged > 0 {
+        warn!(file = %new.display(), hours = dt_h, not_converged, "PV budget: trajectories that did not converge are left out");
+    } else if !out.is_empty() {
+        info!(file = %new.display(), hours = dt_h, not_converged, "PV budget");
     }
     out
 }

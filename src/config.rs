@@ -97,6 +97,11 @@ pub struct Changes {
     pub intervals_h: Vec<u32>,
     /// Longest interval between consecutive steps for which the PV budget is made, hours.
     pub budget_max_interval_h: u32,
+    /// Longest sub-step of the budget's trajectories, hours: longer intervals are cut.
+    pub budget_max_substep_h: f64,
+    /// A trajectory sub-step has converged when two successive departure points lie
+    /// within this fraction of the grid length of each other.
+    pub budget_tolerance: f64,
 }
 
 impl Default for Changes {
@@ -104,6 +109,8 @@ impl Default for Changes {
         Changes {
             intervals_h: vec![6, 12, 24],
             budget_max_interval_h: 12,
+            budget_max_substep_h: 3.0,
+            budget_tolerance: 0.01,
         }
     }
 }
@@ -416,6 +423,18 @@ impl Config {
             p.push(format!(
                 "changes.budget_max_interval_h: {} h is outside 1 to 48 h",
                 self.changes.budget_max_interval_h
+            ));
+        }
+        if !(0.1..=48.0).contains(&self.changes.budget_max_substep_h) {
+            p.push(format!(
+                "changes.budget_max_substep_h: {} h is outside 0.1 to 48 h",
+                self.changes.budget_max_substep_h
+            ));
+        }
+        if !(1e-4..=0.5).contains(&self.changes.budget_tolerance) {
+            p.push(format!(
+                "changes.budget_tolerance: {} is outside 0.0001 to 0.5 grid lengths",
+                self.changes.budget_tolerance
             ));
         }
         if let Some(h) = self

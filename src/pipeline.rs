@@ -1345,12 +1345,18 @@ pub fn run_step(
                         dy: if y.len() > 1 { y[1] - y[0] } else { f64::NAN },
                     },
                 };
+                let trajectories = budget::Settings {
+                    max_substep: cfg.changes.budget_max_substep_h * 3600.0,
+                    tolerance: cfg.changes.budget_tolerance * layout.grid_length(),
+                    max_iterations: budget::MAX_ITERATIONS,
+                };
                 let geom = changes::Geometry {
                     layout,
                     f: &budget_f,
                     rotation: budget_rotation.as_ref(),
                     winds_grid_relative: input_grid_relative,
                     periodic: products.grid.periodic(),
+                    trajectories,
                 };
                 rep.updated.extend(changes::update_budgets(
                     &run,

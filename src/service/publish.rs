@@ -100,6 +100,10 @@ pub struct Manifest {
     pub revision: u32,
     /// When last revised, ISO 8601.
     pub revised_at: String,
+    /// Points whose PV budget trajectories did not converge (flagged 1 in the file's
+    /// `bud_unconverged` and `bud_dpvdt_unconverged`), when the file has a budget.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub budget_not_converged: Option<u64>,
 }
 
 fn now_iso() -> String {
@@ -257,6 +261,7 @@ pub fn write_manifest_with(
         // A step made again (reprocess) goes on from the revision it had.
         revision: read_manifest(&manifest_path(product)).map_or(1, |m| m.revision + 1),
         revised_at: now,
+        budget_not_converged: crate::changes::not_converged_in(product),
     };
     let path = manifest_path(product);
     let text = serde_json::to_vec_pretty(&m).map_err(std::io::Error::other)?;
@@ -287,6 +292,7 @@ pub fn revise_manifest_with(product: &Path, known: Option<(u64, String)>) -> std
     m.product_bytes = bytes;
     m.product_checksum = checksum;
     m.variables = variables_of(product);
+    m.budget_not_converged = crate::changes::not_converged_in(product);
     m.revision += 1;
     m.revised_at = now_iso();
     let text = serde_json::to_vec_pretty(&m).map_err(std::io::Error::other)?;

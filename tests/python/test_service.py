@@ -347,6 +347,14 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
         product = Path(r["manifest"]).parent / m["product"]
         assert m["product_bytes"] == product.stat().st_size
         assert m["product_checksum"] == hashlib.sha256(product.read_bytes()).hexdigest()
+        # Steps after the first carry the PV budget: the manifest counts the points whose
+        # trajectories did not converge, as the file's flag variables mark them.
+        if lead > 0:
+            import netCDF4
+            with netCDF4.Dataset(product) as ds:
+                flagged = sum(int(np.nansum(np.ma.filled(ds[n][:].astype(float), np.nan)))
+                              for n in ("bud_unconverged", "bud_dpvdt_unconverged"))
+            assert m.get("budget_not_converged") == flagged, (lead, m.get("budget_not_converged"))
     # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side, and the
     # cycle's cyclone tracks.
     cycle_dir = tmp_path / "out" / "demo" / "20260314T0000Z"
