@@ -37,6 +37,8 @@ pub struct Fields {
     pub orog: Option<Array2<f32>>,
     /// Fractional stretching of the isentropic layers since the previous step (layers, rows, columns).
     pub stretch: Option<Array3<f32>>,
+    /// The budget's stretching part of the layers' relative vorticity, eta_d (depth_a/depth_d - 1), s-1.
+    pub zeta_stretch: Option<Array3<f32>>,
     /// The budget's actual minus conserved-PV relative vorticity of the layers, s-1.
     pub zeta_diff: Option<Array3<f32>>,
     /// Low-level PV mean, PVU.
@@ -59,6 +61,8 @@ pub struct Facts {
     pub thick_gradient_max: f64,
     /// Largest fractional stretching of an isentropic layer within the radius.
     pub stretch_max: f64,
+    /// Largest vorticity the budget puts down to that stretching within the radius, s-1.
+    pub zeta_stretch_max: f64,
     /// Highest terrain on the line from the centre one radius upstream along the steering wind, m.
     pub orog_upstream_max: f64,
     /// Terrain at the centre, m.
@@ -90,6 +94,7 @@ impl Default for Facts {
             eady_max: n,
             thick_gradient_max: n,
             stretch_max: n,
+            zeta_stretch_max: n,
             orog_upstream_max: n,
             orog_centre: n,
             low_pv_max: n,
@@ -335,6 +340,7 @@ pub fn facts(
             * 1.0e5;
     }
     out.stretch_max = max_of_layers(f.stretch.as_ref(), &points);
+    out.zeta_stretch_max = max_of_layers(f.zeta_stretch.as_ref(), &points);
     out.zeta_diff_max = max_of_layers(f.zeta_diff.as_ref(), &points);
     if let Some(o) = &f.orog {
         out.orog_centre = f64::from(o[at]);

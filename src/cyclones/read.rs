@@ -162,6 +162,7 @@ fn fields(f: &netcdf::File) -> Fields {
         thick: thick_layer.and_then(|k| plane(f, "thick", Some(k))),
         orog: plane(f, "orog", None),
         stretch: read(f, "bud_stretch", None),
+        zeta_stretch: read(f, "bud_zeta_stretch", None),
         zeta_diff: read(f, "bud_zeta_diff", None),
         low_pv: plane(f, "low_pv", None),
         theta_e_850: index_of(&values(f, "pressure"), 85_000.0)

@@ -66,7 +66,7 @@ struct Var {
 }
 
 /// The per-point variables, in the order written.
-const VARS: [Var; 22] = [
+const VARS: [Var; 23] = [
     Var { name: "central_pressure", standard_name: Some("air_pressure_at_mean_sea_level"), long_name: "central pressure of the cyclone (minimum of a quadratic fitted to the 3 x 3 grid points round the grid-point minimum)", units: "Pa", value: |p| p.centre.pressure },
     Var { name: "outer_isobar", standard_name: None, long_name: "outermost isobar closed round the centre", units: "Pa", value: |p| p.centre.outer },
     Var { name: "depth", standard_name: None, long_name: "outermost closed isobar minus the grid-point central pressure", units: "Pa", value: |p| p.centre.depth },
@@ -79,6 +79,7 @@ const VARS: [Var; 22] = [
     Var { name: "eady_max", standard_name: None, long_name: "largest Eady growth rate within the radius", units: "day-1", value: |p| p.facts.eady_max },
     Var { name: "thick_gradient_max", standard_name: None, long_name: "largest 1000-500 hPa thickness gradient within the radius, m per 100 km", units: "1e-5", value: |p| p.facts.thick_gradient_max },
     Var { name: "stretch_max", standard_name: None, long_name: "largest fractional stretching of an isentropic layer within the radius since the previous step (bud_stretch)", units: "1", value: |p| p.facts.stretch_max },
+    Var { name: "zeta_stretch_max", standard_name: None, long_name: "largest relative vorticity the PV budget puts down to the stretching of an isentropic layer within the radius (bud_zeta_stretch)", units: "s-1", value: |p| p.facts.zeta_stretch_max },
     Var { name: "orog_upstream_max", standard_name: None, long_name: "highest terrain on the line from the centre one radius upstream along the steering wind", units: "m", value: |p| p.facts.orog_upstream_max },
     Var { name: "orog_centre", standard_name: Some("surface_altitude"), long_name: "terrain height at the centre", units: "m", value: |p| p.facts.orog_centre },
     Var { name: "low_pv_max", standard_name: None, long_name: "largest low-level mean PV (low_pv) within the radius", units: PVU_UNITS, value: |p| p.facts.low_pv_max },
@@ -351,6 +352,7 @@ fn properties(c: &Cycle, p: &Point<'_>) -> Map<String, Value> {
         num(f.thick_gradient_max, 2),
     );
     m.insert("stretch_max".into(), num(f.stretch_max, 4));
+    m.insert("zeta_stretch_max_per_s".into(), num(f.zeta_stretch_max, 8));
     m.insert(
         "orography_upstream_max_m".into(),
         num(f.orog_upstream_max, 1),
@@ -416,6 +418,13 @@ pub fn sentences(c: &Cycle, p: &Point<'_>) -> Vec<String> {
         ),
     );
     say(f.stretch_max, format!("stretching of an isentropic layer within {r:.0} km: up to {:.0} % since the previous step", 100.0 * f.stretch_max));
+    say(
+        f.zeta_stretch_max,
+        format!(
+            "relative vorticity made by that stretching within {r:.0} km: up to {:.1e} s-1",
+            f.zeta_stretch_max
+        ),
+    );
     say(
         f.orog_upstream_max,
         format!(
