@@ -369,11 +369,20 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
         b.set_message("steps");
     }
     let mut written = 0usize;
+    let mut pages = Vec::new();
     let mut reports = Vec::new();
     for (step, suffix) in steps.iter().zip(suffixes) {
         let r = run_step(step, &files, &cfg, &Destination::flat(&out), suffix);
         if r.output.is_some() {
             written += 1;
+            // With quicklooks on, a page per cycle beside the products shows
+            // them, written again after each step.
+            if cfg.quicklook.enabled {
+                match crate::output::page::refresh(&out) {
+                    Ok(p) => pages = p,
+                    Err(e) => eprintln!("cycle page not written in {}: {e}", out.display()),
+                }
+            }
         }
         if let Some(b) = &bar {
             b.inc(1);
@@ -382,6 +391,9 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     }
     if let Some(b) = bar {
         b.finish_and_clear();
+    }
+    for p in &pages {
+        println!("cycle page {}", p.display());
     }
     for r in &reports {
         summary(r);

@@ -71,6 +71,31 @@ pub struct Quicklooks {
     /// Images, each `variable` or `variable@level`: the level in the variable's
     /// vertical coordinate (hPa, K, PVU), `bottom-top` for a layer.
     pub images: Vec<String>,
+    /// What outlines the land: Natural Earth coastlines and borders, the
+    /// model's terrain height, or nothing.
+    pub outline: OutlineKind,
+    /// Heights of the terrain outline, m (for `outline = "terrain"`).
+    pub terrain_m: Vec<f64>,
+    /// The PV of the line drawn on PV and tropopause maps, PVU.
+    pub contour_pvu: f64,
+    /// The isentrope whose PV gives that line on tropopause maps, K.
+    pub contour_theta_k: f64,
+    /// Colour scales replacing the products' fixed defaults, by `variable` or
+    /// `variable@level`: `[min, max]` or `[min, max, band width]`, in the
+    /// units the image shows (hPa, PVU, 10^-5 s-1, ...).
+    pub scales: std::collections::BTreeMap<String, Vec<f64>>,
+}
+
+/// What outlines the land on the quicklooks.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum OutlineKind {
+    /// Natural Earth coastlines and country borders, on the grid's projection.
+    Coastlines,
+    /// Contours of the model's terrain height (an invented world's own outline).
+    Terrain,
+    /// No outline.
+    None,
 }
 
 impl Default for Quicklooks {
@@ -85,7 +110,69 @@ impl Default for Quicklooks {
                 "thick_chg_06h@1000-500".into(),
                 "trop_fold_dp@2".into(),
             ],
+            outline: OutlineKind::Coastlines,
+            terrain_m: vec![250.0, 1000.0, 2000.0],
+            contour_pvu: 2.0,
+            contour_theta_k: 320.0,
+            scales: std::collections::BTreeMap::new(),
         }
+    }
+}
+
+impl Quicklooks {
+    /// Every problem of the settings, as "key: reason".
+    pub fn problems(&self) -> Vec<String> {
+        let mut p = Vec::new();
+        for (k, s) in self.images.iter().enumerate() {
+            if let Err(e) = crate::output::images::parse(s) {
+                p.push(format!("quicklook.images[{k}]: {e}"));
+            }
+        }
+        if self.outline == OutlineKind::Terrain
+            && (self.terrain_m.is_empty() || self.terrain_m.iter().any(|h| !h.is_finite()))
+        {
+            p.push("quicklook.terrain_m: needs finite heights when outline = \"terrain\"".into());
+        }
+        if !(self.contour_pvu > 0.0 && self.contour_pvu <= 20.0) {
+            p.push(format!(
+                "quicklook.contour_pvu: {} is outside 0 to 20",
+                self.contour_pvu
+            ));
+        }
+        if !(150.0..=2000.0).contains(&self.contour_theta_k) {
+            p.push(format!(
+                "quicklook.contour_theta_k: {} is outside 150 to 2000",
+                self.contour_theta_k
+            ));
+        }
+        for (key, v) in &self.scales {
+            let name = format!("quicklook.scales.{key:?}");
+            if let Err(e) = crate::output::images::parse(key) {
+                p.push(format!("{name}: {e}"));
+            }
+            let ok_len = matches!(v.len(), 2 | 3) && v.iter().all(|x| x.is_finite());
+            if !ok_len {
+                p.push(format!(
+                    "{name}: write [min, max] or [min, max, band width], finite numbers"
+                ));
+                continue;
+            }
+            let (lo, hi) = (v[0], v[1]);
+            let step = v
+                .get(2)
+                .copied()
+                .unwrap_or_else(|| crate::output::quicklook::band_step(hi - lo));
+            let bands = (hi - lo) / step;
+            let max = crate::output::quicklook::MAX_BANDS as f64;
+            if lo >= hi {
+                p.push(format!("{name}: min {lo} is not below max {hi}"));
+            } else if !(step > 0.0 && (1.0..=max + 1e-9).contains(&bands)) {
+                p.push(format!(
+                    "{name}: band width {step} gives {bands:.1} bands (1 to {max})"
+                ));
+            }
+        }
+        p
     }
 }
 
@@ -446,11 +533,7 @@ impl Config {
             p.push(format!("changes.intervals_h: {h} h is outside 1 to 240 h"));
         }
         p.extend(self.cyclones.problems());
-        for (k, s) in self.quicklook.images.iter().enumerate() {
-            if let Err(e) = crate::output::images::parse(s) {
-                p.push(format!("quicklook.images[{k}]: {e}"));
-            }
-        }
+        p.extend(self.quicklook.problems());
         p.extend(crate::service::settings::problems(
             &self.service,
             &self.feed,
@@ -531,7 +614,11 @@ pub fn check(text: &str, origin: &str) -> Result<Config, Vec<String>> {
                 };
                 match kt.get(key) {
                     None => out.push(format!("{p}: unknown key")),
-                    Some(ks) if ks.is_table() => unknown(sub, ks, &p, out),
+                    // An empty table in the defaults is a map of free keys
+                    // (`quicklook.scales`): its keys are checked by its own rules.
+                    Some(ks) if ks.as_table().is_some_and(|t| !t.is_empty()) => {
+                        unknown(sub, ks, &p, out)
+                    }
                     _ => {}
                 }
             }
@@ -634,7 +721,10 @@ fn prune(v: &mut toml::Value, known: &toml::Value, feed: &toml::Value, products:
         if let (Some(t), Some(kt)) = (v.as_table_mut(), k.as_table()) {
             t.retain(|key, _| kt.contains_key(key));
             for (key, sub) in t.iter_mut() {
-                if let Some(ks) = kt.get(key).filter(|x| x.is_table()) {
+                if let Some(ks) = kt
+                    .get(key)
+                    .filter(|x| x.as_table().is_some_and(|t| !t.is_empty()))
+                {
                     walk(sub, ks);
                 }
             }

@@ -562,14 +562,24 @@ pub fn run_step(
         if let Some(fr) = &inv.mslp {
             wanted.push((Want::Mslp, fr.clone()));
         }
+    }
+    // The model's own terrain outlines its land on the quicklooks when asked, and is
+    // written with the mean sea-level pressure.
+    let terrain_outline =
+        cfg.quicklook.enabled && cfg.quicklook.outline == crate::config::OutlineKind::Terrain;
+    if (terrain_outline || want_mslp) && !wanted.iter().any(|(w, _)| *w == Want::Orography) {
         if let Some((fr, _)) = &inv.orography {
-            if !wanted.iter().any(|(w, _)| *w == Want::Orography) {
-                wanted.push((Want::Orography, fr.clone()));
-            }
+            wanted.push((Want::Orography, fr.clone()));
         }
     }
     let t_decode = Instant::now();
     let mut dec = decode_all(wanted, inputs, &scan, &mut issues);
+    let terrain_m: Option<Array2<f32>> = terrain_outline
+        .then(|| {
+            let to_m = inv.orography.as_ref().map_or(1.0, |o| o.1) as f32;
+            dec.get(&Want::Orography).map(|o| o.mapv(|x| x * to_m))
+        })
+        .flatten();
     rep.fields_used = dec.len();
     rep.decode_seconds = t_decode.elapsed().as_secs_f64();
     let t_compute = Instant::now();
@@ -1374,7 +1384,8 @@ pub fn run_step(
                     &run,
                     &path,
                     &cfg.cyclones,
-                    cfg.quicklook.enabled,
+                    &cfg.quicklook,
+                    Some(&products.grid),
                 );
             }
             rep.changes_seconds = t_changes.elapsed().as_secs_f64();
@@ -1386,7 +1397,11 @@ pub fn run_step(
                     .iter()
                     .filter_map(|s| crate::output::images::parse(s).ok())
                     .collect();
-                rep.images = crate::output::images::write_images(&path, &products, &wanted);
+                let look = crate::output::images::Look {
+                    settings: &cfg.quicklook,
+                    terrain: terrain_m.as_ref().map(|t| t.view()),
+                };
+                rep.images = crate::output::images::write_images(&path, &products, &wanted, &look);
             }
             rep.output = Some(path);
             if let Some(hook) = out.on_published {

@@ -126,7 +126,7 @@ fn inspect_text_names_quantity_level_grid_and_a_refused_template() {
         .unwrap();
     let text = String::from_utf8_lossy(&out.stdout);
     assert!(
-        text.contains("temperature (0/0/0)") && text.contains("500 hPa"),
+        text.contains("Temperature (0/0/0)") && text.contains("500 hPa"),
         "{text}"
     );
     assert!(
@@ -137,4 +137,14 @@ fn inspect_text_names_quantity_level_grid_and_a_refused_template() {
         text.contains("not usable") && text.contains("32769"),
         "{text}"
     );
+    // Standard parameters leeward does not compute with are named all the
+    // same (WMO-No. 306 code table 4.2.0.3 and 4.2.0.1), local numbers said so.
+    for want in [
+        "Pressure reduced to MSL (0/3/1)",
+        "Total precipitation (0/1/8)",
+        "local use (0/3/192)",
+    ] {
+        assert!(text.contains(want), "{want}: {text}");
+    }
+    assert!(!text.contains(" - (0/"), "{text}");
 }

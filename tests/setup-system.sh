@@ -14,6 +14,9 @@ command -v pkg-config >/dev/null 2>&1 || need+=(pkg-config)
 command -v cc >/dev/null 2>&1 || need+=(build-essential)
 # ncdump: the README's first look at a product's header (the docs test runs it).
 command -v ncdump >/dev/null 2>&1 || need+=(netcdf-bin)
+# Chromium and its driver: the cycle page's test loads the page in a real headless browser.
+[ -x /usr/bin/chromium ] || need+=(chromium)
+[ -x /usr/bin/chromedriver ] || need+=(chromium-driver)
 
 if [ ${#need[@]} -gt 0 ]; then
   if [ "$(id -u)" = 0 ]; then

@@ -15,6 +15,7 @@ use super::detect::Settings as DetectSettings;
 use super::read::{step_centres_cached, Settings, StepCentres};
 use super::track::{deepening, link, Deepening, Fix, Settings as TrackSettings, Step, Track};
 use crate::changes::Run;
+use crate::geometry::Grid;
 use crate::output::store::published_where;
 
 /// The tracks of one cycle.
@@ -116,11 +117,13 @@ pub fn base_name(step_file: &Path) -> String {
 /// After a step is published: make the cycle's tracks from every step of it
 /// published in `run`'s store and write them beside `this_file`. Returns the
 /// files written. A step file that cannot be read is passed over and said so.
+/// `grid` is the grid of the cycle's steps, for the quicklook's coastlines.
 pub fn update(
     run: &Run<'_>,
     this_file: &Path,
     cfg: &crate::config::Cyclones,
-    image: bool,
+    look: &crate::config::Quicklooks,
+    grid: Option<&Grid>,
 ) -> Vec<PathBuf> {
     let (set, search) = settings(cfg);
     let files = published_where(
@@ -157,9 +160,9 @@ pub fn update(
         Ok(()) => written.push(gj),
         Err(e) => warn!(file = %gj.display(), error = %e, "cyclone tracks not written"),
     }
-    if image {
+    if look.enabled {
         let png = dir.join(format!("{base}.png"));
-        match quicklook(&cycle)
+        match quicklook(&cycle, look, grid)
             .and_then(|b| crate::output::write_file_atomic(&png, &b).map_err(|e| e.to_string()))
         {
             Ok(()) => written.push(png),
@@ -176,11 +179,21 @@ pub fn update(
 }
 
 /// The mean sea-level pressure of the cycle's latest step with every track drawn
-/// over it (a dot at each point, a larger one at its last), as PNG bytes.
-pub fn quicklook(c: &Cycle) -> Result<Vec<u8>, String> {
-    use crate::output::quicklook::{render_with_marks, Palette, Quicklook, Scale};
+/// over it (a dot at each point, a larger one at its last), as PNG bytes, drawn
+/// as the step quicklooks are: the fixed `mslp` scale (or the one `[quicklook]`
+/// sets for `mslp`) and the land outline `[quicklook]` asks for, coastlines
+/// placed by `grid` or the model's terrain where the step has it.
+pub fn quicklook(
+    c: &Cycle,
+    look: &crate::config::Quicklooks,
+    grid: Option<&Grid>,
+) -> Result<Vec<u8>, String> {
+    use crate::config::OutlineKind;
+    use crate::output::images::{scale_of, Look};
+    use crate::output::quicklook::{render_with_marks, Outline, Quicklook};
     let last = c.steps.last().ok_or("no step")?;
-    let (m, lat, lon) = super::read::mslp_map(&last.path).ok_or("no mslp in the latest step")?;
+    let (m, lat, lon, orog) =
+        super::read::mslp_map(&last.path).ok_or("no mslp in the latest step")?;
     let hpa = m.mapv(|x| x / 100.0);
     let marks: Vec<Vec<(f64, f64)>> = c
         .tracks
@@ -205,6 +218,19 @@ pub fn quicklook(c: &Cycle) -> Result<Vec<u8>, String> {
         c.reference_time.format("%Y-%m-%d %H:%M"),
         c.steps.len()
     );
+    let outline = match (look.outline, grid, &orog) {
+        (OutlineKind::Coastlines, Some(g), _) if g.shape() == hpa.dim() => Outline::Coastlines(g),
+        (OutlineKind::Terrain, _, Some(t)) => Outline::Terrain {
+            height: t.view(),
+            levels: &look.terrain_m,
+        },
+        _ => Outline::None,
+    };
+    let styles = Look {
+        settings: look,
+        terrain: None,
+    };
+    let (scale, _) = scale_of(&styles, "mslp", "", &hpa.view());
     let q = Quicklook {
         values: hpa.view(),
         lat: lat.view(),
@@ -212,7 +238,9 @@ pub fn quicklook(c: &Cycle) -> Result<Vec<u8>, String> {
         title: &title,
         subtitle: &subtitle,
         units: "hPa",
-        scale: Scale::from_data(Palette::Sequential),
+        scale,
+        outline,
+        contour: None,
     };
     render_with_marks(&q, &marks)
 }

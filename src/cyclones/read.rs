@@ -183,13 +183,18 @@ fn times(f: &netcdf::File) -> Option<(NaiveDateTime, NaiveDateTime)> {
     ))
 }
 
-/// A step file's mean sea-level pressure with the latitude and longitude of every point.
-pub fn mslp_map(path: &Path) -> Option<(Array2<f32>, Array2<f64>, Array2<f64>)> {
+/// A step file's mean sea-level pressure with the latitude and longitude of every
+/// point, and its terrain where it has one.
+pub type MslpMap = (Array2<f32>, Array2<f64>, Array2<f64>, Option<Array2<f32>>);
+
+/// Read [`MslpMap`] from a step file.
+pub fn mslp_map(path: &Path) -> Option<MslpMap> {
     crate::output::quiet_hdf5_errors();
     let f = netcdf::open(path).ok()?;
     let m = plane(&f, "mslp", None)?;
     let (lat, lon, _, _) = geography(&f)?;
-    (lat.dim() == m.dim()).then_some((m, lat, lon))
+    let orog = plane(&f, "orog", None).filter(|o| o.dim() == m.dim());
+    (lat.dim() == m.dim()).then_some((m, lat, lon, orog))
 }
 
 /// Read one step file and find its centres and their facts.

@@ -73,6 +73,9 @@ workers = 2
 [quicklook]
 enabled = true
 images = ["trop_p@2", "isen_pv@320", "eta@500", "thick@1000-500", "thick_chg_06h@1000-500", "bud_stretch@290-300", "bud_dpvdt@300"]
+# The demo's world is invented: its outline is its own terrain, not a real coast.
+outline = "terrain"
+terrain_m = [250.0, 1000.0, 2000.0]
 
 [[feed]]
 name = "regional"
@@ -417,6 +420,18 @@ pub fn run(p: &Play) -> Result<Vec<Row>, String> {
                     .map(|n| n.to_string_lossy())
                     .unwrap_or_default()
             );
+        }
+        // The next step comes once this one is settled, as from a model
+        // that writes a step while the last is post-processed: each step's
+        // changes and images then find the step before it published,
+        // however busy the machine.
+        let t_step = Instant::now();
+        while t_step.elapsed() < Duration::from_secs(120)
+            && !rows(&state_dir, &arrived)
+                .iter()
+                .all(|r| r.published.is_some() || !r.note.is_empty())
+        {
+            std::thread::sleep(Duration::from_millis(50));
         }
         std::thread::sleep(p.pause);
     }

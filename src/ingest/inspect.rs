@@ -1,7 +1,8 @@
 //! What is in a GRIB2 file, for people and scripts (`leeward inspect`).
 //!
-//! In: a file's bytes. Out: one [`FieldListing`] per field: the quantity (our
-//! name and its WMO discipline/category/number), the level with its units,
+//! In: a file's bytes. Out: one [`FieldListing`] per field: the quantity (its
+//! name in the WMO code tables, "local use" for a centre's own numbers, and its
+//! WMO discipline/category/number), the level with its units,
 //! reference and valid time, the grid (template, size, spacing), the packing
 //! (template, bits per value) and the range of the decoded values; fields
 //! leeward cannot use carry the reason. Built on the same catalogue, grid
@@ -12,7 +13,7 @@ use serde::Serialize;
 use super::catalogue::{catalogue, FieldEntry};
 use super::decode::decode_raw;
 use super::grid::parse_grid;
-use super::params::{surface, Quantity};
+use super::params::{naming, surface, Naming, Param};
 use crate::geometry::Horizontal;
 
 /// One field as listed.
@@ -22,8 +23,13 @@ pub struct FieldListing {
     pub index: usize,
     /// Byte offset of its message.
     pub offset: usize,
-    /// leeward's name of the quantity, if leeward knows it.
+    /// The quantity's name in the WMO code tables (4.2), for every standard
+    /// parameter; `None` for a number the tables leave to local use or do not list.
     pub quantity: Option<String>,
+    /// Units of the quantity in the WMO code tables, for a standard parameter.
+    pub units: Option<String>,
+    /// The numbers are reserved for local use (the centre's own meaning).
+    pub local_use: bool,
     /// WMO discipline (code table 0.0), parameter category (4.1) and number (4.2).
     pub wmo: [u8; 3],
     /// Level for people, e.g. "500 hPa", "ground surface".
@@ -86,15 +92,7 @@ pub struct FileListing {
 }
 
 fn level_text(e: &FieldEntry) -> String {
-    match (e.level.kind, e.level.value) {
-        (surface::ISOBARIC, Some(p)) => format!("{} hPa", p / 100.0),
-        (surface::ISENTROPIC, Some(t)) => format!("{t} K"),
-        (surface::POTENTIAL_VORTICITY, Some(v)) => format!("{} PVU", v * 1e6),
-        (103, Some(h)) => format!("{h} m above ground"),
-        (surface::GROUND, _) => surface::describe(surface::GROUND).to_string(),
-        (k, Some(v)) => format!("{} {v}", surface::describe(k)),
-        (k, None) => surface::describe(k).to_string(),
-    }
+    surface::level_text(e.level.kind, e.level.value)
 }
 
 fn spacing(h: &Horizontal) -> Option<String> {
@@ -163,11 +161,19 @@ pub fn inspect(file: &str, bytes: &[u8], with_values: bool) -> FileListing {
                 Err(x) => unusable = Some(x.to_string()),
             }
         }
+        let named = naming(Param::new(e.discipline, e.category, e.number));
         fields.push(FieldListing {
             index: e.index,
             offset: e.message_offset,
-            quantity: Quantity::from_wmo(e.discipline, e.category, e.number)
-                .map(|q| q.name().to_string()),
+            quantity: match named {
+                Naming::Standard(p) => Some(p.name.to_string()),
+                _ => None,
+            },
+            units: match named {
+                Naming::Standard(p) => Some(p.units.to_string()),
+                _ => None,
+            },
+            local_use: named == Naming::LocalUse,
             wmo: [e.discipline, e.category, e.number],
             level: level_text(e),
             level_type: e.level.kind,
@@ -216,7 +222,51 @@ fn short(x: f64) -> String {
     }
 }
 
-/// The listing as text: one header line per file, one line per field.
+/// The columns of one field's line.
+fn columns(f: &FieldListing) -> [String; 6] {
+    let name = match (&f.quantity, f.local_use) {
+        (Some(q), _) => q.as_str(),
+        (None, true) => "local use",
+        (None, false) => "not in the WMO tables",
+    };
+    let q = format!("{name} ({}/{}/{})", f.wmo[0], f.wmo[1], f.wmo[2]);
+    let lead = if f.lead_hours.fract() == 0.0 {
+        format!("{}", f.lead_hours as i64)
+    } else {
+        format!("{:.2}", f.lead_hours)
+    };
+    let valid = format!(
+        "{} (+{lead}h)",
+        f.valid_time
+            .get(..16)
+            .unwrap_or(&f.valid_time)
+            .replace('T', " ")
+    );
+    let grid = match (&f.grid, &f.spacing) {
+        (Some(g), Some(s)) => format!("{g}, {s}"),
+        (Some(g), None) => g.clone(),
+        _ => format!("template 3.{}", f.grid_template),
+    };
+    let packing = match f.bits_per_value {
+        Some(b) => format!("5.{} {b} bit", f.packing_template),
+        None => format!("5.{}", f.packing_template),
+    };
+    let values = match (f.min, f.max, f.mean) {
+        (Some(a), Some(b), Some(m)) => {
+            let mut s = format!("{} to {}, mean {}", short(a), short(b), short(m));
+            if let Some(n) = f.missing.filter(|n| *n > 0) {
+                s.push_str(&format!(", {n} missing"));
+            }
+            s
+        }
+        _ => String::new(),
+    };
+    [q, f.level.clone(), valid, grid, packing, values]
+}
+
+/// The listing as text: one header line per file, one line per field, in
+/// columns as wide as their widest entry (counted in characters), so that
+/// they stay aligned whatever the names of the quantities and levels.
 pub fn render(l: &FileListing) -> String {
     let mut o = format!(
         "{}: {} bytes, {} field(s)\n",
@@ -224,57 +274,47 @@ pub fn render(l: &FileListing) -> String {
         l.bytes,
         l.fields.len()
     );
-    if !l.fields.is_empty() {
-        o.push_str(&format!(
-            "  {:>4}  {:<28} {:<14} {:<24} {:<44} {:<10} {}\n",
-            "#", "quantity (WMO d/c/n)", "level", "valid (lead)", "grid", "packing", "values"
-        ));
+    let header = [
+        "quantity (WMO d/c/n)",
+        "level",
+        "valid (lead)",
+        "grid",
+        "packing",
+        "values",
+    ]
+    .map(String::from);
+    let rows: Vec<[String; 6]> = l.fields.iter().map(columns).collect();
+    let index_w = l
+        .fields
+        .iter()
+        .map(|f| f.index.to_string().len())
+        .max()
+        .unwrap_or(1)
+        .max(1);
+    let mut widths = [0usize; 6];
+    for r in rows.iter().chain(std::iter::once(&header)) {
+        for (w, c) in widths.iter_mut().zip(r) {
+            *w = (*w).max(c.chars().count());
+        }
     }
-    for f in &l.fields {
-        let q = format!(
-            "{} ({}/{}/{})",
-            f.quantity.as_deref().unwrap_or("-"),
-            f.wmo[0],
-            f.wmo[1],
-            f.wmo[2]
-        );
-        let lead = if f.lead_hours.fract() == 0.0 {
-            format!("{}", f.lead_hours as i64)
-        } else {
-            format!("{:.2}", f.lead_hours)
-        };
-        let valid = format!(
-            "{} (+{lead}h)",
-            f.valid_time
-                .get(..16)
-                .unwrap_or(&f.valid_time)
-                .replace('T', " ")
-        );
-        let grid = match (&f.grid, &f.spacing) {
-            (Some(g), Some(s)) => format!("{g}, {s}"),
-            (Some(g), None) => g.clone(),
-            _ => format!("template 3.{}", f.grid_template),
-        };
-        let packing = match f.bits_per_value {
-            Some(b) => format!("5.{} {b} bit", f.packing_template),
-            None => format!("5.{}", f.packing_template),
-        };
-        let values = match (f.min, f.max, f.mean) {
-            (Some(a), Some(b), Some(m)) => {
-                let mut s = format!("{} to {}, mean {}", short(a), short(b), short(m));
-                if let Some(n) = f.missing.filter(|n| *n > 0) {
-                    s.push_str(&format!(", {n} missing"));
-                }
-                s
+    let line = |first: &str, r: &[String; 6]| {
+        let mut s = format!("  {first:>index_w$}");
+        for (k, (c, w)) in r.iter().zip(widths).enumerate() {
+            s.push_str("  ");
+            s.push_str(c);
+            if k + 1 < r.len() {
+                s.extend(std::iter::repeat_n(' ', w - c.chars().count()));
             }
-            _ => String::new(),
-        };
-        o.push_str(&format!(
-            "  {:>4}  {:<28} {:<14} {:<24} {:<44} {:<10} {}\n",
-            f.index, q, f.level, valid, grid, packing, values
-        ));
+        }
+        s.trim_end().to_string() + "\n"
+    };
+    if !l.fields.is_empty() {
+        o.push_str(&line("#", &header));
+    }
+    for (f, r) in l.fields.iter().zip(&rows) {
+        o.push_str(&line(&f.index.to_string(), r));
         if let Some(r) = f.unusable.as_ref().or(f.grid_problem.as_ref()) {
-            o.push_str(&format!("        not usable: {r}\n"));
+            o.push_str(&format!("  {:index_w$}  not usable: {r}\n", ""));
         }
     }
     for p in &l.problems {
@@ -308,7 +348,7 @@ mod tests {
             .iter()
             .find(|f| f.wmo == [0, 0, 0] && f.level == "500 hPa")
             .expect("temperature at 500 hPa");
-        assert_eq!(t500.quantity.as_deref(), Some("temperature"));
+        assert_eq!(t500.quantity.as_deref(), Some("Temperature"));
         assert_eq!(t500.lead_hours, 6.0);
         assert_eq!(t500.grid_template, 30);
         assert!(t500.spacing.as_deref().is_some_and(|s| s.ends_with("km")));
@@ -316,9 +356,23 @@ mod tests {
         assert!(200.0 < lo && lo < hi && hi < 300.0, "{lo} {hi}");
         let text = render(&l);
         assert!(
-            text.contains("temperature (0/0/0)") && text.contains("500 hPa"),
+            text.contains("Temperature (0/0/0)") && text.contains("500 hPa"),
             "{text}"
         );
+        // Every line starts its columns at the same character, whatever the
+        // level names ("Specified height level above ground" among them).
+        let starts = |needle: &str| -> Vec<usize> {
+            text.lines()
+                .skip(1)
+                .filter(|l| !l.trim_start().starts_with("not usable"))
+                .filter_map(|l| {
+                    let cut = l.find(needle)?;
+                    Some(l[..cut].chars().count())
+                })
+                .collect()
+        };
+        let at = starts(" 2026-03-");
+        assert!(at.len() > 20 && at.iter().all(|&c| c == at[0]), "{text}");
         // A truncated file: what is left is listed, the problem said.
         let cut = inspect("cut", &bytes[..bytes.len() / 3], true);
         assert!(!cut.problems.is_empty());

@@ -11,3 +11,5 @@ pub mod grid;
 pub mod inspect;
 pub mod params;
 pub mod unpack;
+#[rustfmt::skip]
+pub mod wmo_tables;

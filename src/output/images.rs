@@ -7,14 +7,22 @@
 //! layers). Out: PNG files beside the NetCDF file, `<stem>_<variable>[_<level>].png`,
 //! each written under a hidden name, fsynced and renamed into place. A
 //! variable the step does not have is passed over; an image never stops a
-//! step. The images are guidance for trained forecasters, not warnings.
+//! step. Each image gets its product's fixed scale ([`super::scales`]), the
+//! land outline the settings ask for, and on PV and tropopause maps the
+//! 2 PVU line. The images are guidance for trained forecasters, not warnings.
 
 use std::path::{Path, PathBuf};
 
+use std::borrow::Cow;
+
+use ndarray::{Array2, ArrayView2};
+use rayon::prelude::*;
 use tracing::{debug, warn};
 
 use super::cf::{Product, StepProducts, Vertical};
-use super::quicklook::{render, Palette, Quicklook, Scale};
+use super::quicklook::{self, render, Contour, Outline, Quicklook, Scale};
+use super::scales;
+use crate::config::{OutlineKind, Quicklooks};
 
 /// One image asked for.
 #[derive(Debug, Clone, PartialEq)]
@@ -106,85 +114,123 @@ fn added_later(product: &Path, name: &str) -> Option<Product> {
     Some(Product::new(spec, vertical, data))
 }
 
-/// Colour scale of a variable: changes and signed quantities diverge about zero.
-fn scale_for(name: &str) -> Scale {
-    let diverging = [
-        "zeta", "chg", "r2r", "diff", "stretch", "dpvdt", "isen_u", "isen_v", "trop_u", "trop_v",
-    ]
-    .iter()
-    .any(|k| name.contains(k));
-    let mut s = Scale::from_data(if diverging {
-        Palette::Diverging
-    } else {
-        Palette::Sequential
+/// What the images of a step are drawn with besides the step's products.
+#[derive(Debug, Clone, Copy)]
+pub struct Look<'a> {
+    /// The `[quicklook]` settings.
+    pub settings: &'a Quicklooks,
+    /// The model's terrain height (m) on the grid, where the input has it.
+    pub terrain: Option<ArrayView2<'a, f32>>,
+}
+
+/// The level of an image entry as written in `[quicklook]` (`500`,
+/// `1000-500`, `320`, `2`), to look up its scale.
+fn level_key(level: Option<(f64, Option<f64>)>) -> String {
+    match level {
+        None => String::new(),
+        Some((v, None)) => format!("{}", v.abs()),
+        Some((b, Some(t))) => format!("{b}-{t}"),
+    }
+}
+
+/// The scale of an image: the configured one (by `variable@level`, then by
+/// `variable`), else the product's default, else one spanning the values.
+/// The flag says the scale came from the values.
+pub fn scale_of(
+    look: &Look<'_>,
+    name: &str,
+    level: &str,
+    values: &ArrayView2<'_, f32>,
+) -> (Scale, bool) {
+    let s = look.settings;
+    let configured = s
+        .scales
+        .get(&format!("{name}@{level}"))
+        .or_else(|| s.scales.get(name));
+    if let Some(c) = configured {
+        let base = scales::default_scale(name, level)
+            .unwrap_or_else(|| Scale::fixed(scales::fallback_palette(name), 0.0, 1.0, 0.1));
+        let (min, max) = (c[0], c[1]);
+        let step = c
+            .get(2)
+            .copied()
+            .unwrap_or_else(|| quicklook::band_step(max - min));
+        return (
+            Scale {
+                min,
+                max,
+                step,
+                ..base
+            },
+            false,
+        );
+    }
+    match scales::default_scale(name, level) {
+        Some(d) => (d, false),
+        None => (
+            Scale::spanning(values, scales::fallback_palette(name)),
+            true,
+        ),
+    }
+}
+
+/// A field with its sign reversed south of the equator (PV: the stratosphere
+/// high in both hemispheres); and whether any point was south.
+fn by_magnitude(v: &Array2<f32>, lat: &Array2<f64>) -> (Array2<f32>, bool) {
+    let mut south = false;
+    let mut out = v.clone();
+    ndarray::Zip::from(&mut out).and(lat).for_each(|x, &la| {
+        if la < 0.0 {
+            *x = -*x;
+            south = true;
+        }
     });
-    // Low tropopause pressure is a high tropopause: draw high as light.
-    s.reversed = name == "trop_p";
-    s
+    (out, south)
+}
+
+/// The isentropic PV of the step on `theta` K, in PVU, sign reversed south of
+/// the equator: the field whose 2 PVU contour goes on tropopause maps.
+fn isentropic_pv_pvu(p: &StepProducts, theta: f64) -> Option<Array2<f32>> {
+    let f = p.fields.iter().find(|f| f.spec.name == "isen_pv")?;
+    let k = p
+        .theta_levels
+        .iter()
+        .position(|x| (x - theta).abs() < 1e-6)?;
+    let factor = scales::shown_units(f.spec.units).factor as f32;
+    let v = f.level(k).mapv(|x| x * factor);
+    Some(by_magnitude(&v, &p.lat).0)
 }
 
 /// Write the asked images of a step beside `product`. Returns the images written.
-pub fn write_images(product: &Path, p: &StepProducts, wanted: &[Wanted]) -> Vec<PathBuf> {
+pub fn write_images(
+    product: &Path,
+    p: &StepProducts,
+    wanted: &[Wanted],
+    look: &Look<'_>,
+) -> Vec<PathBuf> {
     let mut out = Vec::new();
     let stem = product
         .file_stem()
         .map(|s| s.to_string_lossy().into_owned())
         .unwrap_or_default();
     let dir = product.parent().unwrap_or(Path::new("."));
-    let lead = (p.valid_time - p.reference_time).num_hours();
+    // What to draw, found in order (a product added to the file later is
+    // read back from it here, one read at a time), then drawn on every core.
+    let mut jobs: Vec<(PathBuf, Cow<'_, Product>, usize, String, String)> = Vec::new();
     for w in wanted {
-        // The step's own products, or one added to the file after it was
-        // written (the PV budget), read back from the file.
-        let from_file;
         let f = match p.fields.iter().find(|f| f.spec.name == w.variable) {
-            Some(f) => f,
+            Some(f) => Cow::Borrowed(f),
             None => match added_later(product, &w.variable) {
-                Some(f) => {
-                    from_file = f;
-                    &from_file
-                }
+                Some(f) => Cow::Owned(f),
                 None => {
                     debug!(variable = %w.variable, "quicklook: not in this step");
                     continue;
                 }
             },
         };
-        let Some((k, level_text)) = level_index(p, f, w.level) else {
+        let Some((k, level_text)) = level_index(p, &f, w.level) else {
             debug!(variable = %w.variable, level = ?w.level, "quicklook: no such level in this step");
             continue;
-        };
-        // Forecasters read pressure in hPa and PV in PVU.
-        let (values, units) = match f.spec.units {
-            "Pa" => (f.level(k).mapv(|x| x / 100.0), "hPa"),
-            "1e-6 K m2 kg-1 s-1" => (f.level(k), "PVU"),
-            "1e-6 K m2 kg-1 s-1 h-1" => (f.level(k), "PVU h-1"),
-            u => (f.level(k), u),
-        };
-        // The variable and level first: a long name may be cut at the image's edge.
-        // A PV surface is one per magnitude: +v in the north, -v in the south.
-        let shown = if f.vertical == Vertical::PvSurface {
-            format!("+/-{level_text}")
-        } else {
-            level_text.clone()
-        };
-        let title = if level_text.is_empty() {
-            format!("{}: {}", f.spec.name, f.spec.long_name)
-        } else {
-            format!("{} {shown}: {}", f.spec.name, f.spec.long_name)
-        };
-        let subtitle = format!(
-            "valid {} UTC  (cycle {} UTC +{lead} h)",
-            p.valid_time.format("%Y-%m-%d %H:%M"),
-            p.reference_time.format("%Y-%m-%d %H:%M")
-        );
-        let q = Quicklook {
-            values: values.view(),
-            lat: p.lat.view(),
-            lon: p.lon.view(),
-            title: &title,
-            subtitle: &subtitle,
-            units,
-            scale: scale_for(f.spec.name),
         };
         let suffix = level_text
             .split_whitespace()
@@ -192,15 +238,114 @@ pub fn write_images(product: &Path, p: &StepProducts, wanted: &[Wanted]) -> Vec<
             .map(|l| format!("_{}", l.replace('.', "p")))
             .unwrap_or_default();
         let path = dir.join(format!("{stem}_{}{suffix}.png", f.spec.name));
-        match render(&q)
-            .map_err(std::io::Error::other)
-            .and_then(|png| super::write_file_atomic(&path, &png))
-        {
-            Ok(()) => out.push(path),
-            Err(e) => warn!(file = %path.display(), error = %e, "quicklook not written"),
-        }
+        jobs.push((path, f, k, level_text, level_key(w.level)));
     }
+    let written: Vec<Option<PathBuf>> = jobs
+        .par_iter()
+        .map(|(path, f, k, level_text, level)| {
+            match draw_one(p, f, *k, level_text, level, look)
+                .map_err(std::io::Error::other)
+                .and_then(|png| super::write_file_atomic(path, &png))
+            {
+                Ok(()) => Some(path.clone()),
+                Err(e) => {
+                    warn!(file = %path.display(), error = %e, "quicklook not written");
+                    None
+                }
+            }
+        })
+        .collect();
+    out.extend(written.into_iter().flatten());
     out
+}
+
+/// One image of level `k` of product `f`, as PNG bytes.
+fn draw_one(
+    p: &StepProducts,
+    f: &Product,
+    k: usize,
+    level_text: &str,
+    level: &str,
+    look: &Look<'_>,
+) -> Result<Vec<u8>, String> {
+    let name = f.spec.name;
+    let shown = scales::shown_units(f.spec.units);
+    let factor = shown.factor as f32;
+    let mut values = f.level(k).mapv(|x| x * factor);
+    let mut south = false;
+    if scales::by_magnitude(name) {
+        (values, south) = by_magnitude(&values, &p.lat);
+    }
+    let (scale, from_values) = scale_of(look, name, level, &values.view());
+    let settings = look.settings;
+    // The 2 PVU line: of the field itself on PV maps, of PV on the chosen
+    // isentrope on tropopause maps.
+    let line_field = if matches!(name, "pv" | "isen_pv") {
+        Some(values.clone())
+    } else if scales::is_tropopause(name) {
+        isentropic_pv_pvu(p, settings.contour_theta_k)
+    } else {
+        None
+    };
+    let pvu = settings.contour_pvu;
+    let line_label = if scales::is_tropopause(name) {
+        format!("{pvu} PVU on {} K", settings.contour_theta_k)
+    } else {
+        format!("{pvu} PVU")
+    };
+    let contour = line_field.as_ref().map(|v| Contour {
+        values: v.view(),
+        level: pvu,
+        label: &line_label,
+    });
+    let terrain = look.terrain.filter(|t| t.dim() == values.dim());
+    let outline = match (settings.outline, &terrain) {
+        (OutlineKind::Coastlines, _) => Outline::Coastlines(&p.grid),
+        (OutlineKind::Terrain, Some(t)) => Outline::Terrain {
+            height: t.view(),
+            levels: &settings.terrain_m,
+        },
+        _ => Outline::None,
+    };
+    // The variable and level first: a long name may be cut at the image's edge.
+    // A PV surface is one per magnitude: +v in the north, -v in the south.
+    let shown_level = if f.vertical == Vertical::PvSurface {
+        format!("\u{b1}{level_text}")
+    } else {
+        level_text.to_string()
+    };
+    let mut head = if level_text.is_empty() {
+        f.spec.name.to_string()
+    } else {
+        format!("{} {shown_level}", f.spec.name)
+    };
+    if south {
+        head.push_str(", sign reversed south of the equator");
+    }
+    let title = format!("{head}: {}", f.spec.long_name);
+    let lead = (p.valid_time - p.reference_time).num_hours();
+    let subtitle = format!(
+        "valid {} UTC   cycle {} UTC +{lead} h",
+        p.valid_time.format("%a %Y-%m-%d %H:%M"),
+        p.reference_time.format("%Y-%m-%d %H:%M")
+    );
+    let units = if from_values {
+        format!("{} (range of this field)", shown.units)
+    } else {
+        shown.units.clone()
+    };
+    let q = Quicklook {
+        values: values.view(),
+        lat: p.lat.view(),
+        lon: p.lon.view(),
+        title: &title,
+        subtitle: &subtitle,
+        units: &units,
+        scale,
+        outline,
+        contour,
+    };
+    render(&q)
 }
 
 #[cfg(test)]

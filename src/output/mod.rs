@@ -6,7 +6,9 @@
 pub mod cf;
 pub mod images;
 pub mod pack;
+pub mod page;
 pub mod quicklook;
+pub mod scales;
 pub mod store;
 pub mod variables;
 

@@ -16,7 +16,7 @@ use chrono::NaiveDateTime;
 use super::ledger::StepTag;
 use super::settings::{Completeness, FeedRule, Order};
 use crate::ingest::catalogue::FieldEntry;
-use crate::ingest::params::{surface, Quantity};
+use crate::ingest::params::{parameter, surface, Param};
 use crate::pipeline::StepKey;
 
 /// What one input file gives to one step.
@@ -67,8 +67,8 @@ pub struct Pending {
     pub key: StepKey,
     /// Files that hold its fields.
     pub files: BTreeMap<PathBuf, Contribution>,
-    /// (quantity, isobaric level in 0.01 Pa) present.
-    pub have: BTreeSet<(Quantity, i64)>,
+    /// (WMO parameter, isobaric level in 0.01 Pa) present.
+    pub have: BTreeSet<(Param, i64)>,
     /// Unix time its first input was seen (kept across restarts by the ledger).
     pub first_seen: f64,
     /// Phase.
@@ -94,9 +94,9 @@ pub fn level_key(pa: f64) -> i64 {
     (pa * 100.0).round() as i64
 }
 
-/// The isobaric (quantity, level) of a field, if it is one leeward knows.
-pub fn isobaric(e: &FieldEntry) -> Option<(Quantity, i64)> {
-    let q = Quantity::from_wmo(e.discipline, e.category, e.number)?;
+/// The (WMO parameter, isobaric level) of a field on an isobaric level.
+pub fn isobaric(e: &FieldEntry) -> Option<(Param, i64)> {
+    let q = Param::new(e.discipline, e.category, e.number);
     match (e.level.kind, e.level.value) {
         (surface::ISOBARIC, Some(p)) if p > 0.0 => Some((q, level_key(p))),
         _ => None,
@@ -123,7 +123,7 @@ impl Assembly {
         tag: StepTag,
         key: StepKey,
         c: Contribution,
-        fields: &[(Quantity, i64)],
+        fields: &[(Param, i64)],
         first_seen: f64,
         forced: bool,
     ) -> bool {
@@ -179,7 +179,9 @@ impl Assembly {
                 for pa in rule.levels_pa() {
                     for q in &rule.required {
                         if !p.have.contains(&(*q, level_key(pa))) {
-                            out.push(format!("{} at {} hPa (not arrived)", q.name(), pa / 100.0));
+                            let name =
+                                parameter(*q).map_or_else(|| q.to_string(), |e| e.name.to_string());
+                            out.push(format!("{name} at {} hPa (not arrived)", pa / 100.0));
                         }
                     }
                 }
@@ -360,6 +362,8 @@ mod tests {
         }
     }
 
+    use crate::ingest::params::Quantity;
+
     fn rule(toml_feed: &str) -> FeedRule {
         let f: Feed = toml::from_str(toml_feed).unwrap();
         FeedRule::new(&f, &Service::default(), &Products::default()).unwrap()
@@ -373,7 +377,7 @@ mod tests {
         let lv = |p: f64| level_key(p * 100.0);
         let first = [Quantity::Temperature, Quantity::WindU, Quantity::WindV]
             .iter()
-            .flat_map(|q| [(*q, lv(500.0)), (*q, lv(300.0))])
+            .flat_map(|q| [(q.param(), lv(500.0)), (q.param(), lv(300.0))])
             .collect::<Vec<_>>();
         assert!(a.add(
             tag.clone(),
@@ -396,8 +400,8 @@ mod tests {
             .promote(std::slice::from_ref(&r), 10.0, now, 100.0)
             .is_empty());
         let gh = [
-            (Quantity::GeopotentialHeight, lv(500.0)),
-            (Quantity::GeopotentialHeight, lv(300.0)),
+            (Quantity::GeopotentialHeight.param(), lv(500.0)),
+            (Quantity::GeopotentialHeight.param(), lv(300.0)),
         ];
         a.add(tag.clone(), key, contribution("b"), &gh, 5.0, false);
         assert_eq!(a.promote(&[r], 10.0, now, 100.0), vec![tag.clone()]);

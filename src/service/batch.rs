@@ -782,12 +782,25 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>) -> Taken {
                 valid_time: key.valid_time,
                 stage: None,
             };
-            crate::cyclones::cycle::update(
+            // The grid, for the coastlines of the tracks' quicklook.
+            let grid = crate::ingest::grid::parse_grid(&key.grid_key)
+                .ok()
+                .map(|(g, _)| g);
+            let written = crate::cyclones::cycle::update(
                 &run,
                 &product.target,
                 &spec.config.cyclones,
-                spec.config.quicklook.enabled,
+                &spec.config.quicklook,
+                grid.as_ref(),
             );
+            // The page was written with the manifest, before the tracks.
+            if !written.is_empty() {
+                if let Some(dir) = product.target.parent() {
+                    if let Err(e) = crate::output::page::refresh(dir) {
+                        warn!(file = %dir.display(), error = %e, "cycle page not written");
+                    }
+                }
+            }
         }
     }
     let latency =

@@ -670,7 +670,7 @@ impl Daemon {
         }
         self.metrics().feed(feed).files_seen += 1;
         // Group the fields into steps.
-        type Gathered = (Vec<(u64, u64)>, Vec<(crate::ingest::params::Quantity, i64)>);
+        type Gathered = (Vec<(u64, u64)>, Vec<(crate::ingest::params::Param, i64)>);
         let mut by_step: std::collections::BTreeMap<StepKey, Gathered> =
             std::collections::BTreeMap::new();
         for f in &good {

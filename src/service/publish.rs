@@ -266,7 +266,19 @@ pub fn write_manifest_with(
     let path = manifest_path(product);
     let text = serde_json::to_vec_pretty(&m).map_err(std::io::Error::other)?;
     write_atomic(&path, &text)?;
+    refresh_cycle_page(product);
     Ok(path)
+}
+
+/// Write the cycle page beside a product again, now that its step is
+/// published; a page that cannot be written is logged and the step stands.
+fn refresh_cycle_page(product: &Path) {
+    let Some(dir) = product.parent() else {
+        return;
+    };
+    if let Err(e) = crate::output::page::refresh(dir) {
+        warn!(file = %dir.display(), error = %e, "cycle page not written");
+    }
 }
 
 /// Bring the manifest of an earlier product up to date after a later step

@@ -15,7 +15,7 @@ use regex::Regex;
 use serde::{Deserialize, Serialize};
 
 use crate::config::Products;
-use crate::ingest::params::Quantity;
+use crate::ingest::params::{param_from_words, Param, Quantity};
 
 /// The `[service]` table.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -227,7 +227,9 @@ pub struct Feed {
     /// Isobaric levels, hPa, a complete step has (for `complete = "fields"`).
     pub levels_hpa: Vec<f64>,
     /// Quantities a complete step has on those levels; empty: those the
-    /// products need. Names: t, u, v, gh, q, r.
+    /// products need. Each is the name `leeward inspect` prints (the WMO
+    /// code table's words, e.g. "Temperature") or WMO numbers
+    /// `discipline/category/number` (e.g. "0/0/0").
     pub require: Vec<String>,
     /// Files per step (for `complete = "files"`).
     pub files_per_step: u32,
@@ -303,7 +305,7 @@ pub struct FeedRule {
     file_re: Option<Regex>,
     marker_re: Option<Regex>,
     /// Quantities a complete step needs (for `complete = "fields"`).
-    pub required: Vec<Quantity>,
+    pub required: Vec<Param>,
 }
 
 /// What a file in a feed's directory is.
@@ -334,10 +336,13 @@ impl FeedRule {
         let products = feed.products.as_ref().unwrap_or(products);
         let required = if feed.require.is_empty() {
             needed_quantities(products)
+                .into_iter()
+                .map(Quantity::param)
+                .collect()
         } else {
             feed.require
                 .iter()
-                .map(|n| quantity_by_name(n).ok_or_else(|| format!("unknown quantity {n}")))
+                .map(|n| param_from_words(n))
                 .collect::<Result<_, _>>()?
         };
         Ok(FeedRule {
@@ -384,19 +389,6 @@ pub fn needed_quantities(p: &Products) -> Vec<Quantity> {
         q.push(Quantity::GeopotentialHeight);
     }
     q
-}
-
-/// Quantity by the short names of the `require` key.
-pub fn quantity_by_name(n: &str) -> Option<Quantity> {
-    Some(match n {
-        "t" => Quantity::Temperature,
-        "u" => Quantity::WindU,
-        "v" => Quantity::WindV,
-        "gh" => Quantity::GeopotentialHeight,
-        "q" => Quantity::SpecificHumidity,
-        "r" => Quantity::RelativeHumidity,
-        _ => return None,
-    })
 }
 
 fn has_cycle_part(pattern: &str) -> bool {
@@ -568,11 +560,10 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
                 ));
             }
         }
-        if let Some(n) = f.require.iter().find(|n| quantity_by_name(n).is_none()) {
-            p.push(format!(
-                "{}: unknown quantity {n:?} (known: t, u, v, gh, q, r)",
-                key("require")
-            ));
+        for (k, n) in f.require.iter().enumerate() {
+            if let Err(e) = param_from_words(n) {
+                p.push(format!("{}[{k}]: {e}", key("require")));
+            }
         }
         let bad_format = f.cycle_format.is_empty()
             || chrono::format::StrftimeItems::new(&f.cycle_format)
@@ -653,7 +644,7 @@ mod tests {
         let feeds: Vec<Feed> = vec![
             toml::from_str("name = \"a b\"\nfile_pattern = '('\n").unwrap(),
             toml::from_str(
-                "name = \"c\"\ncomplete = \"marker\"\nmarker_pattern = 'done'\nrequire = [\"w\"]\n",
+                "name = \"c\"\ncomplete = \"marker\"\nmarker_pattern = 'done'\nrequire = [\"Temperature\", \"0/2/2\", \"gh\"]\n",
             )
             .unwrap(),
         ];
@@ -670,9 +661,18 @@ mod tests {
             "feed[0].file_pattern",
             "feed[0].levels_hpa",
             "feed[1].marker_pattern",
-            "feed[1].require",
+            "feed[1].require[2]",
         ] {
             assert!(p.iter().any(|x| x.starts_with(key)), "{key}: {p:?}");
         }
+        // The quantity words and numbers are taken; the old short name is
+        // refused with what to write instead.
+        assert!(!p.iter().any(|x| x.starts_with("feed[1].require[0]")
+            || x.starts_with("feed[1].require[1]")), "{p:?}");
+        let gh = p
+            .iter()
+            .find(|x| x.starts_with("feed[1].require[2]"))
+            .unwrap();
+        assert!(gh.contains("\"Geopotential height\" or 0/3/5"), "{gh}");
     }
 }

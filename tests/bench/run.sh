@@ -51,6 +51,9 @@ rm -rf target/bench/out
 cargo bench --quiet --bench step -- "$input" target/bench/out "$next" | tee "$out/leeward.jsonl"
 rm -rf target/bench/out
 
+echo "== 2b. quicklook images of a grid this size (five, best of three each)"
+cargo bench --quiet --bench quicklook -- "$res" | tee "$out/quicklook.jsonl"
+
 if [ "$skip_scal" = 0 ]; then
   echo "== 3. scaling in grid points and threads, peak memory"
   "$py" tests/bench/scaling.py --leeward "$bin" --work target/bench/scaling --json | tee "$out/scaling.txt"

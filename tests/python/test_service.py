@@ -356,11 +356,15 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
                               for n in ("bud_unconverged", "bud_dpvdt_unconverged"))
             assert m.get("budget_not_converged") == flagged, (lead, m.get("budget_not_converged"))
     # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side, and the
-    # cycle's cyclone tracks.
+    # cycle's cyclone tracks and its page, which links every step's product.
     cycle_dir = tmp_path / "out" / "demo" / "20260314T0000Z"
     assert sorted(p.name for p in cycle_dir.iterdir()) == sorted(
         [f"c255_20260314T0000Z_{h:03d}h.{x}" for h in leads for x in ("nc", "json")]
-        + [f"c255_20260314T0000Z_cyclones.{x}" for x in ("nc", "geojson")])
+        + [f"c255_20260314T0000Z_cyclones.{x}" for x in ("nc", "geojson")]
+        + ["c255_20260314T0000Z.html"])
+    page = (cycle_dir / "c255_20260314T0000Z.html").read_text()
+    for h in leads:
+        assert f'href="c255_20260314T0000Z_{h:03d}h.nc"' in page, h
     assert_same_products(svc.out_files(), ref)
     assert svc.metric("leeward_steps_published_total", feed="demo", state="complete") == 4
     assert svc.metric("leeward_publish_latency_seconds_count", feed="demo") == 4
@@ -414,8 +418,9 @@ def test_kill_9_at_random_moments_loses_nothing_and_publishes_nothing_twice(tmp_
         if rng.random() < 0.6:
             svc.kill9()
             kills += 1
-            # While it is down no partial product is visible.
-            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json", ".geojson")
+            # While it is down no partial product is visible (the cycle page, too, is
+            # written under a hidden name and renamed into place).
+            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json", ".geojson", ".html")
                        for p in svc.out_files())
             svc.start()
     wait_for(lambda: len({step_key(r) for r in svc.published()}) == 6, DEADLINE_S,
