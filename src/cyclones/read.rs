@@ -17,7 +17,8 @@ use ndarray::{Array2, Array3};
 
 use super::detect::{find_centres, Centre, Settings as DetectSettings, Surface};
 use super::facts::{facts, nearest_surface, upper_pv, Facts, Fields, Grid};
-use crate::output::cf::FILL_F32;
+use crate::output::cf::{layer_suffix, FILL_F32};
+use crate::output::variables::PVU;
 
 /// How centres are found and summarised.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -148,23 +149,40 @@ fn index_of(coord: &[f64], want: f64) -> Option<usize> {
         .position(|x| (x - want).abs() <= 1e-6 * want.abs().max(1.0))
 }
 
+/// What turns a PV variable's (or coordinate's) values into PVU: files give
+/// PV in SI units, K m2 kg-1 s-1 (1 PVU = 1e-6 of them); a scaled unit
+/// ("1e-6 K m2 kg-1 s-1") is PVU already.
+fn to_pvu(f: &netcdf::File, name: &str) -> f64 {
+    match f.variable(name).and_then(|v| text(&v, "units")) {
+        Some(u) if u.trim() == crate::output::variables::PV_UNITS => 1.0 / PVU,
+        _ => 1.0,
+    }
+}
+
+/// One level of a PV variable, in PVU.
+fn plane_pvu(f: &netcdf::File, name: &str, level: Option<usize>) -> Option<Array2<f32>> {
+    let k = to_pvu(f, name);
+    plane(f, name, level).map(|a| a.mapv(|x| (f64::from(x) * k) as f32))
+}
+
 /// The fields of the facts in a step file.
 fn fields(f: &netcdf::File) -> Fields {
-    let thick_layer = {
-        let b = values(f, "p_layer_bounds");
-        b.chunks(2)
-            .position(|l| l.len() == 2 && (l[0] - 1.0e5).abs() < 1.0 && (l[1] - 5.0e4).abs() < 1.0)
-    };
-    let pv_level = index_of(&values(f, "pv_level"), 2.0).or(Some(0));
+    // The 1000-500 hPa thickness: one variable of its own layer.
+    let thick = format!("thick_{}", layer_suffix([1.0e5, 5.0e4]));
+    let pv_levels: Vec<f64> = values(f, "pv_level")
+        .iter()
+        .map(|x| x * to_pvu(f, "pv_level"))
+        .collect();
+    let pv_level = index_of(&pv_levels, 2.0).or(Some(0));
     Fields {
         steer: plane(f, "steer_u", None).zip(plane(f, "steer_v", None)),
         eady: plane(f, "eady", None),
-        thick: thick_layer.and_then(|k| plane(f, "thick", Some(k))),
+        thick: plane(f, &thick, Some(0)),
         orog: plane(f, "orog", None),
         stretch: read(f, "bud_stretch", None),
         zeta_stretch: read(f, "bud_zeta_stretch", None),
         zeta_diff: read(f, "bud_zeta_diff", None),
-        low_pv: plane(f, "low_pv", None),
+        low_pv: plane_pvu(f, "low_pv", None),
         theta_e_850: index_of(&values(f, "pressure"), 85_000.0)
             .and_then(|k| plane(f, "theta_e", Some(k))),
         trop_theta: pv_level.and_then(|k| plane(f, "trop_theta", Some(k))),
@@ -236,7 +254,7 @@ pub fn step_centres(path: &Path, set: &Settings) -> Result<StepCentres, String> 
         if let Some(k) = nearest_surface(&thetas, fx.trop_theta) {
             let pv = upper
                 .entry(k)
-                .or_insert_with(|| plane(&f, "isen_pv", Some(k)));
+                .or_insert_with(|| plane_pvu(&f, "isen_pv", Some(k)));
             if let Some(pv) = pv {
                 upper_pv(&grid, pv.view(), thetas[k], at, &points, &mut fx);
             }

@@ -19,7 +19,7 @@ use super::facts::Facts;
 use super::read::StepCentres;
 use super::track::{Deepening, BERGERON};
 use crate::output::cf::{CAUTION, FILL_F32};
-use crate::output::variables::PVU_UNITS;
+use crate::output::variables::{PVU, PV_UNITS};
 
 /// One point of one track.
 pub struct Point<'a> {
@@ -82,12 +82,12 @@ const VARS: [Var; 23] = [
     Var { name: "zeta_stretch_max", standard_name: None, long_name: "largest relative vorticity the PV budget puts down to the stretching of an isentropic layer within the radius (bud_zeta_stretch)", units: "s-1", value: |p| p.facts.zeta_stretch_max },
     Var { name: "orog_upstream_max", standard_name: None, long_name: "highest terrain on the line from the centre one radius upstream along the steering wind", units: "m", value: |p| p.facts.orog_upstream_max },
     Var { name: "orog_centre", standard_name: Some("surface_altitude"), long_name: "terrain height at the centre", units: "m", value: |p| p.facts.orog_centre },
-    Var { name: "low_pv_max", standard_name: None, long_name: "largest low-level mean PV (low_pv) within the radius", units: PVU_UNITS, value: |p| p.facts.low_pv_max },
+    Var { name: "low_pv_max", standard_name: None, long_name: "largest low-level mean PV (low_pv) within the radius (1 PVU = 1e-6 K m2 kg-1 s-1)", units: PV_UNITS, value: |p| p.facts.low_pv_max * PVU },
     Var { name: "zeta_diff_max", standard_name: None, long_name: "largest actual minus conserved-PV relative vorticity of an isentropic layer within the radius (bud_zeta_diff, PV not conserved)", units: "s-1", value: |p| p.facts.zeta_diff_max },
     Var { name: "theta_e_850_max", standard_name: None, long_name: "largest 850 hPa equivalent potential temperature within the radius", units: "K", value: |p| p.facts.theta_e_850_max },
     Var { name: "trop_theta", standard_name: None, long_name: "median potential temperature of the dynamic tropopause within the radius", units: "K", value: |p| p.facts.trop_theta },
     Var { name: "upper_theta", standard_name: None, long_name: "the isentropic surface nearest to trop_theta", units: "K", value: |p| p.facts.upper_theta },
-    Var { name: "upper_pv_max", standard_name: None, long_name: "largest PV on the surface upper_theta within the radius", units: PVU_UNITS, value: |p| p.facts.upper_pv_max },
+    Var { name: "upper_pv_max", standard_name: None, long_name: "largest PV on the surface upper_theta within the radius (1 PVU = 1e-6 K m2 kg-1 s-1)", units: PV_UNITS, value: |p| p.facts.upper_pv_max * PVU },
     Var { name: "upper_pv_distance", standard_name: None, long_name: "distance from the centre to upper_pv_max", units: "km", value: |p| p.facts.upper_pv_distance },
     Var { name: "upper_pv_along_flow", standard_name: None, long_name: "offset of upper_pv_max from the centre along the steering wind (negative: upstream)", units: "km", value: |p| p.facts.upper_pv_along_flow },
 ];
