@@ -1,5 +1,5 @@
 //! A cycle's tracks as files: a CF discrete sampling geometry NetCDF file of
-//! trajectories (CF 1.10 chapter 9, featureType "trajectory", contiguous
+//! trajectories (CF 1.11 chapter 9, featureType "trajectory", contiguous
 //! ragged array: the points of each track together, `row_size` of them per
 //! track), and a GeoJSON FeatureCollection (IETF RFC 7946: longitude before
 //! latitude, longitudes in -180 to 180, a track that crosses the antimeridian
@@ -260,7 +260,7 @@ fn write_netcdf(path: &Path, c: &Cycle) -> Result<(), String> {
 }
 
 fn globals(f: &mut netcdf::FileMut, c: &Cycle) -> netcdf::Result<()> {
-    f.add_attribute("Conventions", "CF-1.10")?;
+    f.add_attribute("Conventions", "CF-1.11")?;
     f.add_attribute("featureType", "trajectory")?;
     f.add_attribute("title", "leeward cyclone tracks of one model cycle")?;
     f.add_attribute(
