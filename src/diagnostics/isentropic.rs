@@ -36,7 +36,8 @@ pub struct Surfaces {
     pub weight: Array3<f32>,
     /// Pressure of the surface, Pa (NaN where missing).
     pub pressure: Array3<f32>,
-    /// d theta / d p of the bracketing layer at the surface, K Pa-1.
+    /// d theta / d p at the surface, K Pa-1, from the pressures of the isentropes
+    /// [`STABILITY_HALF_WIDTH`] either side of it (see [`stability_at`]).
     pub dtheta_dp: Array3<f32>,
     /// Missing columns by cause, one entry per surface.
     pub gaps: Vec<Gaps>,
@@ -148,6 +149,12 @@ pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces 
                     col[k] = f64::from(th_row[(k, i)]);
                     ln_col[k] = col[k].ln();
                 }
+                let ln_p_of = |t: f64| {
+                    locate_ln(&col, &ln_col, t, t.ln()).ok().map(|(u, w)| {
+                        let l = u + 1;
+                        lnp[l] + w * (lnp[u] - lnp[l])
+                    })
+                };
                 for (s, &target) in targets.iter().enumerate() {
                     match locate_ln(&col, &ln_col, target, ln_targets[s]) {
                         Ok((u, w)) => {
@@ -156,9 +163,16 @@ pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces 
                             up[(s, i)] = u as i16;
                             wt[(s, i)] = w as f32;
                             pr[(s, i)] = ps as f32;
-                            // d theta/dp = (theta/p) d ln theta / d ln p of the bracketing layer.
-                            dd[(s, i)] =
-                                (target / ps * (ln_col[u] - ln_col[l]) / (lnp[u] - lnp[l])) as f32;
+                            let layer = (ln_col[u] - ln_col[l]) / (lnp[u] - lnp[l]);
+                            let h = STABILITY_HALF_WIDTH;
+                            let at = stability_at(
+                                (target, ps.ln()),
+                                (target + h, ln_p_of(target + h)),
+                                (target - h, ln_p_of(target - h)),
+                                layer,
+                            );
+                            // d theta/dp = (theta/p) d ln theta / d ln p.
+                            dd[(s, i)] = (target / ps * at) as f32;
                         }
                         Err(kind) => {
                             counts[s][kind as usize].fetch_add(1, Ordering::Relaxed);
@@ -179,6 +193,42 @@ pub fn surfaces(theta: ArrayView3<f32>, p: &[f64], targets: &[f64]) -> Surfaces 
         pressure,
         dtheta_dp: dthdp,
         gaps,
+    }
+}
+
+/// Half the potential temperature interval over which the stability of an isentropic
+/// surface is taken, K (half the usual 5 K spacing of isentropic analyses; judgement).
+pub const STABILITY_HALF_WIDTH: f64 = 2.5;
+
+/// d ln theta / d ln p at a surface (theta*, ln p*), from the pressures of the isentropes
+/// theta* + h above and theta* - h below it (`up`, `down`: theta and ln p, None where that
+/// isentrope is not in the column): the secant (ln theta+ - ln theta-) / (ln p+ - ln p-),
+/// dp/dtheta between neighbouring surfaces (as isentropic analyses difference them; Ziv and
+/// Alpert 1994 on how interpolation errors reach PV; docs/references.md). Where one
+/// neighbour is missing, the secant to the surface itself; where both are, or the secant is
+/// not stable (>= 0), `layer`, the slope of the bracketing pair of levels.
+///
+/// The pressure of an isentrope is continuous in theta, so this stability is too, also
+/// where a surface passes through an isobaric level; the bracketing layer's own slope,
+/// constant between two levels, jumps there and makes PV jump along the isobar (a seam).
+/// Exact for a polytropic column (ln p linear in ln theta).
+pub fn stability_at(
+    (theta, lnp): (f64, f64),
+    up: (f64, Option<f64>),
+    down: (f64, Option<f64>),
+    layer: f64,
+) -> f64 {
+    let secant = |a: (f64, f64), b: (f64, f64)| (a.0.ln() - b.0.ln()) / (a.1 - b.1);
+    let s = match (up.1, down.1) {
+        (Some(pu), Some(pd)) => secant((up.0, pu), (down.0, pd)),
+        (Some(pu), None) => secant((up.0, pu), (theta, lnp)),
+        (None, Some(pd)) => secant((theta, lnp), (down.0, pd)),
+        (None, None) => layer,
+    };
+    if s.is_finite() && s < 0.0 {
+        s
+    } else {
+        layer
     }
 }
 
@@ -359,6 +409,51 @@ mod tests {
             let exact = (c - KAPPA) * t / p_of(t);
             assert!(((f64::from(s.dtheta_dp[(k, 0, 1)]) - exact) / exact).abs() < 1e-3);
         }
+    }
+
+    #[test]
+    fn stability_is_continuous_where_a_surface_passes_through_a_level() {
+        // A column whose stability changes with height (a stable layer above 500 hPa, a
+        // weakly stable one below): surfaces just above and just below the 500 hPa level's
+        // theta lie in different layers. With the stability taken between the isentropes
+        // 2.5 K either side, dtheta/dp on the two differs by what 0.004 K changes (under
+        // 0.1%); with each layer's own slope it would jump by the ratio of the layers'
+        // stabilities (here 2.3).
+        let p: Vec<f64> = [200.0, 300.0, 400.0, 500.0, 600.0, 700.0, 850.0]
+            .iter()
+            .map(|h| h * 100.0)
+            .collect();
+        let th: [f64; 7] = [350.0, 335.0, 323.0, 313.0, 309.5, 306.5, 302.5];
+        let col = Array3::from_shape_fn((p.len(), 1, 1), |(k, _, _)| th[k] as f32);
+        let at = th[3] as f32 as f64;
+        let s = surfaces(col.view(), &p, &[at - 0.002, at + 0.002]);
+        let (below, above) = (
+            f64::from(s.dtheta_dp[(0, 0, 0)]),
+            f64::from(s.dtheta_dp[(1, 0, 0)]),
+        );
+        assert!(below < 0.0 && above < 0.0);
+        assert!(
+            (above / below - 1.0).abs() < 1e-3,
+            "dtheta/dp {below:e} below the level, {above:e} above"
+        );
+        // The layers' own slopes differ by a factor of 2.3.
+        let slope = |a: usize, b: usize| (th[a] / th[b]).ln() / (p[a] / p[b]).ln();
+        assert!(slope(2, 3) / slope(3, 4) > 2.0);
+        // stability_at: the secant between the neighbours, one-sided where one is missing,
+        // the layer's slope where both are or the secant is not stable.
+        let (t, lp) = (300.0f64, 50_000f64.ln());
+        let lp_of = |th: f64| lp + (th / t).ln() / -0.1; // d ln theta / d ln p = -0.1
+        let up = (302.5, Some(lp_of(302.5)));
+        let down = (297.5, Some(lp_of(297.5)));
+        assert!((stability_at((t, lp), up, down, -0.3) + 0.1).abs() < 1e-12);
+        assert!((stability_at((t, lp), up, (297.5, None), -0.3) + 0.1).abs() < 1e-12);
+        assert!((stability_at((t, lp), (302.5, None), down, -0.3) + 0.1).abs() < 1e-12);
+        assert_eq!(
+            stability_at((t, lp), (302.5, None), (297.5, None), -0.3),
+            -0.3
+        );
+        let inverted = (302.5, Some(lp_of(297.5)));
+        assert_eq!(stability_at((t, lp), inverted, down, -0.3), -0.3);
     }
 
     #[test]
