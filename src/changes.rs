@@ -236,6 +236,11 @@ fn update(
     deflate: i32,
     nsb: u32,
 ) -> Option<PathBuf> {
+    // Nothing that holds no value is added to a file.
+    let (products, left_out) = crate::output::cf::leave_out_empty(products);
+    for (name, why) in &left_out {
+        info!(file = %path.display(), variable = %name, reason = %why, "change left out: no valid point");
+    }
     if products.is_empty() {
         return None;
     }
@@ -355,7 +360,7 @@ pub fn update_later(
 /// Budget variables on isentropic layers and surfaces.
 pub mod budget_vars {
     use crate::output::cf::Vertical;
-    use crate::output::variables::{VarSpec, PVU_UNITS};
+    use crate::output::variables::VarSpec;
 
     /// Predicted relative vorticity.
     pub const ZETA_PRED: VarSpec = VarSpec {
@@ -427,10 +432,10 @@ pub mod budget_vars {
         name: "bud_dpvdt",
         standard_name: None,
         long_name:
-            "rate of change of Ertel potential vorticity following the wind on the isentropic surface",
-        units: "1e-6 K m2 kg-1 s-1 h-1",
+            "rate of change of Ertel potential vorticity following the wind on the isentropic surface (1 PVU per hour = 2.78e-10 K m2 kg-1 s-2)",
+        units: "K m2 kg-1 s-2",
         formula:
-            "(P_a - P_d)/dt in PVU per hour, P_d at the departure point of the surface's own winds; where air is heated or cooled it crosses the surface, which this trajectory does not follow",
+            "(P_a - P_d)/dt, P_d at the departure point of the surface's own winds; where air is heated or cooled it crosses the surface, which this trajectory does not follow",
     };
     /// Surface trajectories that did not converge.
     pub const DPVDT_UNCONVERGED: VarSpec = VarSpec {
@@ -440,8 +445,6 @@ pub mod budget_vars {
         units: "1",
         formula: "as bud_unconverged, for the trajectories of bud_dpvdt",
     };
-    /// The unit of PV, for reference.
-    pub const _PVU: &str = PVU_UNITS;
 
     /// Every budget variable with its vertical coordinate (layers for the
     /// column budget, surfaces for the PV change), as the budget writes them.
@@ -479,12 +482,14 @@ pub fn not_converged_in(path: &Path) -> Option<u64> {
         budget_vars::DPVDT_UNCONVERGED.name,
     ] {
         let Some(v) = f.variable(name) else { continue };
-        if let Some(Ok(netcdf::AttributeValue::Str(s))) =
-            v.attribute(NOT_CONVERGED_ATTR).map(|a| a.value())
-        {
-            if let Ok(n) = s.trim().parse::<u64>() {
-                total = Some(total.unwrap_or(0) + n);
-            }
+        // A number (this layout), or text (files of the layout before).
+        let n = match v.attribute(NOT_CONVERGED_ATTR).map(|a| a.value()) {
+            Some(Ok(netcdf::AttributeValue::Double(x))) if x >= 0.0 => Some(x as u64),
+            Some(Ok(netcdf::AttributeValue::Str(s))) => s.trim().parse::<u64>().ok(),
+            _ => None,
+        };
+        if let Some(n) = n {
+            total = Some(total.unwrap_or(0) + n);
         }
     }
     total
@@ -522,19 +527,16 @@ fn to_grid(
 
 type Read<'a> = dyn Fn(&Path, &str) -> Option<ndarray::Array3<f64>> + 'a;
 
-/// Notes every budget variable carries: the interval and how trajectories were traced.
-fn budget_notes(g: &Geometry<'_>, dt_h: f64) -> Vec<(&'static str, String)> {
+/// Numbers every budget variable carries: the interval and how trajectories were traced.
+fn budget_notes(g: &Geometry<'_>, dt_h: f64) -> Vec<(&'static str, f64)> {
     let t = &g.trajectories;
     vec![
-        ("leeward_budget_interval_h", format!("{dt_h}")),
+        ("leeward_budget_interval_h", dt_h),
         (
             "leeward_trajectory_substep_h",
-            format!("{}", dt_h / (dt_h * 3600.0 / t.max_substep).ceil().max(1.0)),
+            dt_h / (dt_h * 3600.0 / t.max_substep).ceil().max(1.0),
         ),
-        (
-            "leeward_trajectory_tolerance_m",
-            format!("{:.1}", t.tolerance),
-        ),
+        ("leeward_trajectory_tolerance_m", t.tolerance),
     ]
 }
 
@@ -628,10 +630,9 @@ fn layer_budget(
         .zip(out)
         .map(|(spec, data)| {
             let mut p = Product::new(spec, Vertical::ThetaLayer, data);
-            p.notes.extend(notes.iter().cloned());
+            p.numbers.extend(notes.iter().cloned());
             if spec.name == budget_vars::UNCONVERGED.name {
-                p.notes
-                    .push((NOT_CONVERGED_ATTR, not_converged.to_string()));
+                p.numbers.push((NOT_CONVERGED_ATTR, not_converged as f64));
             }
             p
         })
@@ -684,17 +685,17 @@ fn surface_budget(
         for ((j, i), st) in d.status.indexed_iter() {
             flags[(s, j, i)] = flag(*st);
             if *st == Status::Converged {
-                rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / dt_h) as f32;
+                // PV is read in K m2 kg-1 s-1: the rate is per second.
+                rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / (dt_h * 3600.0)) as f32;
             }
         }
     }
     let notes = budget_notes(g, dt_h);
     let mut p = Product::new(budget_vars::DPVDT, Vertical::Theta, rate);
-    p.notes.extend(notes.iter().cloned());
+    p.numbers.extend(notes.iter().cloned());
     let mut q = Product::new(budget_vars::DPVDT_UNCONVERGED, Vertical::Theta, flags);
-    q.notes.extend(notes);
-    q.notes
-        .push((NOT_CONVERGED_ATTR, not_converged.to_string()));
+    q.numbers.extend(notes);
+    q.numbers.push((NOT_CONVERGED_ATTR, not_converged as f64));
     Some((vec![p, q], not_converged))
 }
 

@@ -317,6 +317,9 @@ fn summary(r: &StepReport) {
     if !r.missing.is_empty() {
         println!("    missing: {}", r.missing.join("; "));
     }
+    if !r.left_out.is_empty() {
+        println!("    left out: {}", r.left_out.join("; "));
+    }
 }
 
 /// `leeward process`: returns the exit code.

@@ -211,10 +211,11 @@ pub struct Thickness {
 impl Default for Thickness {
     fn default() -> Self {
         Thickness {
+            // In order of their middle pressure, from the ground up (see `Config::from_toml`).
             layers_hpa: vec![
-                [1000.0, 500.0],
                 [1000.0, 850.0],
                 [850.0, 700.0],
+                [1000.0, 500.0],
                 [700.0, 500.0],
             ],
         }
@@ -322,6 +323,17 @@ pub struct Output {
     /// Mantissa bits kept in data values, 1 to 23 (23: exact float32). Fewer bits
     /// compress better and faster; 16 keeps a relative precision of 7.6e-6.
     pub significant_bits: u32,
+    /// Range of the longitudes in the files: `"auto"`, `"-180..180"` or
+    /// `"0..360"`. A global grid is rolled into it; a limited area keeps its
+    /// columns in order and takes the range in which its longitudes run without
+    /// a jump. `"auto"` keeps a global grid in the range its first column is
+    /// nearest to (0 or 180 W: no roll for the usual layouts).
+    pub longitudes: crate::geometry::LongitudeRange,
+    /// Names of originating centres for the files' `institution`, by their
+    /// number in WMO common code table C-11 (a centre leeward does not name,
+    /// or a local model whose files say 255, "missing"); for example
+    /// `[output.institutions]` `255 = "Our local model"`.
+    pub institutions: std::collections::BTreeMap<String, String>,
 }
 
 impl Default for Output {
@@ -329,7 +341,20 @@ impl Default for Output {
         Output {
             deflate_level: 1,
             significant_bits: 16,
+            longitudes: crate::geometry::LongitudeRange::Auto,
+            institutions: std::collections::BTreeMap::new(),
         }
+    }
+}
+
+impl Output {
+    /// The institution named in the files for centre `c`: the configured name,
+    /// else leeward's own list.
+    pub fn institution(&self, c: u16) -> String {
+        self.institutions
+            .get(&c.to_string())
+            .cloned()
+            .unwrap_or_else(|| crate::output::cf::institution(c))
     }
 }
 
@@ -346,6 +371,12 @@ impl Config {
         cfg.isentropic
             .layers
             .sort_by(|a, b| (a[0] + a[1]).total_cmp(&(b[0] + b[1])));
+        // Isobaric layers likewise, by middle pressure from the ground up: the
+        // layer coordinate (the middles, with the bottom and top as bounds) is
+        // then monotonic.
+        cfg.thickness
+            .layers_hpa
+            .sort_by(|a, b| (b[0] + b[1]).total_cmp(&(a[0] + a[1])));
         let problems = cfg.problems();
         if problems.is_empty() {
             Ok(cfg)
@@ -380,6 +411,16 @@ impl Config {
                 "output.significant_bits: {} is outside 1 to 23",
                 self.output.significant_bits
             ));
+        }
+        for (k, name) in &self.output.institutions {
+            if k.parse::<u16>().is_err() {
+                p.push(format!(
+                    "output.institutions: key {k:?} is not a centre number (0 to 65535)"
+                ));
+            }
+            if name.trim().is_empty() {
+                p.push(format!("output.institutions.{k}: empty name"));
+            }
         }
         let iso = &self.isentropic;
         let in_range = |t: f64| (150.0..=2000.0).contains(&t);
@@ -442,6 +483,19 @@ impl Config {
                 p.push(format!(
                     "thickness.layers_hpa[{k}]: [{}, {}] must be [bottom, top] in hPa with bottom > top > 0, bottom at most 1100",
                     l[0], l[1]
+                ));
+            }
+        }
+        let mids: Vec<f64> = self
+            .thickness
+            .layers_hpa
+            .iter()
+            .map(|l| 0.5 * (l[0] + l[1]))
+            .collect();
+        for (k, m) in mids.iter().enumerate() {
+            if mids[..k].iter().any(|o| (o - m).abs() < 1e-6) {
+                p.push(format!(
+                    "thickness.layers_hpa[{k}]: its middle, {m} hPa, is another layer's middle: the layer coordinate needs one value per layer"
                 ));
             }
         }
@@ -511,7 +565,8 @@ pub fn check(text: &str, origin: &str) -> Result<Config, Vec<String>> {
                 match kt.get(key) {
                     None => out.push(format!("{p}: unknown key")),
                     // An empty table in the defaults is a map of free keys
-                    // (`quicklook.scales`): its keys are checked by its own rules.
+                    // (`quicklook.scales`, `output.institutions`): its keys are
+                    // checked by their own rules.
                     Some(ks) if ks.as_table().is_some_and(|t| !t.is_empty()) => {
                         unknown(sub, ks, &p, out)
                     }

@@ -231,6 +231,9 @@ pub struct StepReport {
     pub missing: Vec<String>,
     /// Variables written.
     pub products: Vec<String>,
+    /// Variables made but left out of the file because no point has a value,
+    /// each as "name: why".
+    pub left_out: Vec<String>,
     /// The file written, if any.
     pub output: Option<PathBuf>,
     /// Files published earlier that this step completed (changes added to them).
@@ -439,7 +442,7 @@ pub fn run_step(
         .ok_or_else(|| "section 3 outside the file".to_string())
         .and_then(|s| parse_grid(s).map_err(|e| e.to_string()))
     {
-        Ok(g) => g,
+        Ok((g, s)) => crate::ingest::grid::with_longitudes(g, s, cfg.output.longitudes),
         Err(reason) => {
             // Every field of the step shares this grid: report each file once.
             let mut seen = Vec::new();
@@ -661,6 +664,12 @@ pub fn run_step(
     drop(dec);
 
     let (lat, lon) = grid.latlon();
+    // Longitudes of every point of a rotated or projected grid in one range, as the columns'.
+    let lon = if matches!(grid.horizontal, Horizontal::LatLon { .. }) {
+        lon
+    } else {
+        crate::geometry::longitude::points(&lon, cfg.output.longitudes)
+    };
     let plane = Plane::new(&grid, &lat, &lon);
     let mut fields: Vec<Product> = Vec::new();
     let mut winds = "no winds used".to_string();
@@ -724,15 +733,23 @@ pub fn run_step(
     let packing = std::cell::Cell::new(0.0);
     let seal = |mut p: Product| {
         let t = Instant::now();
+        in_si_units(&mut p);
         p.pack(cfg.output.significant_bits, cfg.output.deflate_level);
         packing.set(packing.get() + t.elapsed().as_secs_f64());
         p
     };
     let sealed = |spec, vertical, data: Array3<f32>| seal(Product::new(spec, vertical, data));
     // Values still in use elsewhere: packed from a borrow, without a copy.
-    let sealed_copy = |spec, vertical, data: &Array3<f32>| {
+    let sealed_copy = |spec: variables::VarSpec, vertical, data: &Array3<f32>| {
         let t = Instant::now();
-        let p = Product::packed_copy(spec, vertical, data, &cfg.output);
+        let p = if spec.units == variables::PV_UNITS {
+            let mut p = Product::new(spec, vertical, data.clone());
+            in_si_units(&mut p);
+            p.pack(cfg.output.significant_bits, cfg.output.deflate_level);
+            p
+        } else {
+            Product::packed_copy(spec, vertical, data, &cfg.output)
+        };
         packing.set(packing.get() + t.elapsed().as_secs_f64());
         p
     };
@@ -1187,7 +1204,18 @@ pub fn run_step(
     for (family, seconds) in &rep.family_seconds {
         tracing::debug!(cycle = %cycle, step = lead, family, seconds, "diagnostic family timing");
     }
-    rep.products = fields.iter().map(|f| f.spec.name.to_string()).collect();
+    let (fields, left_out) = crate::output::cf::leave_out_empty(fields);
+    for (name, why) in &left_out {
+        warn!(cycle = %cycle, step = lead, variable = %name, reason = %why, "variable left out: no valid point");
+    }
+    rep.left_out = left_out
+        .into_iter()
+        .map(|(n, why)| format!("{n}: {why}"))
+        .collect();
+    rep.products = fields
+        .iter()
+        .flat_map(|f| crate::output::cf::file_names(f, &p_layers))
+        .collect();
     rep.compute_seconds = t_compute.elapsed().as_secs_f64() - pack_seconds;
 
     let mut inputs_used: Vec<String> = step
@@ -1210,6 +1238,7 @@ pub fn run_step(
         centre: step.key.centre,
         grid_id: grid_id(&step.key.grid_key),
         member: step.key.member,
+        institution: cfg.output.institution(step.key.centre),
         reference_time: step.key.reference_time,
         valid_time: step.key.valid_time,
         grid,
@@ -1447,6 +1476,17 @@ pub fn output_name(key: &StepKey, grid_suffix: Option<usize>) -> String {
         name = name.replace(".nc", &format!("_m{m:02}.nc"));
     }
     name
+}
+
+/// PV is computed in PVU and written in SI units ([`variables::PV_UNITS`]):
+/// the values of a product in those units are scaled here, once, before packing.
+fn in_si_units(p: &mut Product) {
+    if p.spec.units != variables::PV_UNITS {
+        return;
+    }
+    if let crate::output::cf::Values::Plain(a) = &mut p.values {
+        a.mapv_inplace(|x| (f64::from(x) * variables::PVU) as f32);
+    }
 }
 
 /// Suffixes `_g2`, `_g3`, ... for steps that share centre, cycle, lead and member

@@ -95,18 +95,18 @@ fn thickness_change_in_both_orders() {
             process(&out, &[&s0]);
         }
         let later = out.join("c255_20260314T0000Z_006h.nc");
-        let chg = read(&later, "thick_chg_06h");
+        // One variable per layer (docs/output.md "Thickness"): the 1000-500 hPa layer.
+        let chg = read(&later, "thick_chg_06h_1000_500");
         let together = d.join("together");
         process(&together, &[&s6, &s0]);
         assert_eq!(
             read(
                 &together.join("c255_20260314T0000Z_006h.nc"),
-                "thick_chg_06h"
+                "thick_chg_06h_1000_500"
             ),
             chg,
             "{order}: one run"
         );
-        // p_layer 0 is 1000-500 hPa (the default layers).
         for v in &chg[..80] {
             assert!(
                 (f64::from(*v) - expected(2.0)).abs() < 1.0,
@@ -148,7 +148,7 @@ fn run_to_run_change_survives_a_restart_in_both_orders() {
             process(&out, &[&a]);
         }
         let newer = out.join("c255_20260314T0600Z_006h.nc");
-        let r2r = read(&newer, "thick_r2r");
+        let r2r = read(&newer, "thick_r2r_1000_500");
         for v in &r2r[..80] {
             assert!(
                 (f64::from(*v) - expected(1.0)).abs() < 1.0,
@@ -160,7 +160,10 @@ fn run_to_run_change_survives_a_restart_in_both_orders() {
         let together = d.join("together");
         process(&together, &[&a, &b]);
         assert_eq!(
-            read(&together.join("c255_20260314T0600Z_006h.nc"), "thick_r2r"),
+            read(
+                &together.join("c255_20260314T0600Z_006h.nc"),
+                "thick_r2r_1000_500"
+            ),
             r2r,
             "{order}"
         );
@@ -171,7 +174,7 @@ fn run_to_run_change_survives_a_restart_in_both_orders() {
                 netcdf::open(&older)
             }
             .unwrap()
-            .variable("thick_r2r")
+            .variable("thick_r2r_1000_500")
             .is_none(),
             "{order}: the older cycle has no previous one"
         );

@@ -14,6 +14,11 @@ command -v pkg-config >/dev/null 2>&1 || need+=(pkg-config)
 command -v cc >/dev/null 2>&1 || need+=(build-essential)
 # ncdump: the README's first look at a product's header (the docs test runs it).
 command -v ncdump >/dev/null 2>&1 || need+=(netcdf-bin)
+# The reader clients of tests/python/test_readers.py: GDAL with its Python bindings (run
+# with the system Python they are built for) and UDUNITS (its library for the NCAS CF
+# checker, its udunits2 program for the unit checks).
+/usr/bin/python3 -c 'from osgeo import gdal' >/dev/null 2>&1 || need+=(gdal-bin python3-gdal)
+command -v udunits2 >/dev/null 2>&1 || need+=(udunits-bin libudunits2-0)
 # Chromium and its driver: the cycle page's test loads the page in a real headless browser.
 [ -x /usr/bin/chromium ] || need+=(chromium)
 [ -x /usr/bin/chromedriver ] || need+=(chromium-driver)

@@ -19,6 +19,10 @@ use scenario::StepFields;
 /// since the demo model belongs to no centre.
 pub const DEMO_CENTRE: u16 = 255;
 
+/// The invented centre the demo's files come from, named in their `institution` through
+/// the demo's configuration (`output.institutions`): it exists nowhere else.
+pub const DEMO_INSTITUTION: &str = "Harrowmere Forecast Centre (invented for the leeward demo)";
+
 /// The lead times of one full demo cycle: 48 hours in 6-hour steps.
 pub const CYCLE_LEADS: [u32; 9] = [0, 6, 12, 18, 24, 30, 36, 42, 48];
 

@@ -70,6 +70,9 @@ catch_up_hours = 0
 metrics_listen = ""
 workers = 2
 
+[output.institutions]
+{centre} = "{institution}"
+
 [quicklook]
 enabled = true
 images = ["trop_p@2", "isen_pv@320", "eta@500", "thick@1000-500", "thick_chg_06h@1000-500", "bud_stretch@290-300", "bud_dpvdt@300"]
@@ -92,7 +95,9 @@ complete = "fields"
 levels_hpa = [{levels}]
 "#,
         d = dir.display(),
-        levels = levels.join(", ")
+        levels = levels.join(", "),
+        centre = super::DEMO_CENTRE,
+        institution = super::DEMO_INSTITUTION
     )
 }
 
@@ -356,5 +361,23 @@ pub fn run(p: &Play) -> Result<Vec<Row>, String> {
             return Ok(rows(&state_dir, &arrived));
         }
         std::thread::sleep(Duration::from_millis(100));
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_demo_names_its_invented_centre() {
+        let cfg = crate::config::Config::from_toml(&config_text(Path::new("/tmp/x")), "demo")
+            .expect("the demo's configuration is valid");
+        assert_eq!(
+            cfg.output.institution(super::super::DEMO_CENTRE),
+            super::super::DEMO_INSTITUTION
+        );
+        // Without it, centre 255 is said to be missing, never given a name.
+        let plain = crate::config::Config::default();
+        assert!(plain.output.institution(255).contains("255, missing"));
     }
 }

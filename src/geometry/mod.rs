@@ -9,11 +9,13 @@
 //! Every grid is held in one orientation: row 0 is the southernmost (smallest
 //! y), column 0 the westernmost (smallest x), whatever the file's scanning mode.
 
+pub mod longitude;
 pub mod ops;
 pub mod projection;
 
 use ndarray::Array2;
 
+pub use longitude::LongitudeRange;
 pub use projection::{gaussian_latitudes, Conformal, Earth, RotatedPole};
 
 use crate::diagnostics::constants::OMEGA;
@@ -25,7 +27,8 @@ pub enum Horizontal {
     LatLon {
         /// Latitudes of the rows, degrees north, ascending.
         lat: Vec<f64>,
-        /// Longitudes of the columns, degrees east, ascending (may pass 180 or 360).
+        /// Longitudes of the columns, degrees east, ascending, in [-180, 180) or
+        /// [0, 360) (a limited area wider than both ascends past 180).
         lon: Vec<f64>,
         /// For a Gaussian grid, its N (latitudes between pole and equator).
         gaussian: Option<usize>,
@@ -34,7 +37,7 @@ pub enum Horizontal {
     Rotated {
         /// Rotated latitudes of the rows, degrees, ascending.
         rlat: Vec<f64>,
-        /// Rotated longitudes of the columns, degrees, ascending.
+        /// Rotated longitudes of the columns, degrees, ascending, in one range as `lon` above.
         rlon: Vec<f64>,
         /// The rotation.
         pole: RotatedPole,

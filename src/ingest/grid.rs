@@ -12,7 +12,9 @@
 use thiserror::Error;
 
 use super::bytes::{all_ones, f32_at, i32_at, i8_at, u16_at, u32_at, u8_at};
-use crate::geometry::{gaussian_latitudes, Conformal, Earth, Grid, Horizontal, RotatedPole};
+use crate::geometry::{
+    gaussian_latitudes, Conformal, Earth, Grid, Horizontal, LongitudeRange, RotatedPole,
+};
 
 /// Why a grid cannot be used.
 #[derive(Debug, Error, Clone, PartialEq)]
@@ -57,6 +59,10 @@ pub struct Scan {
     pub j_consecutive: bool,
     /// Bit 4: every other row scans in the opposite direction.
     pub alternating: bool,
+    /// Columns rolled so that longitudes ascend in their range (see
+    /// [`crate::geometry::longitude::columns`]): column `c` of the result is
+    /// column `(c + roll) % ni` west to east.
+    pub roll: usize,
 }
 
 impl Scan {
@@ -68,6 +74,7 @@ impl Scan {
             j_positive: flags & 0x40 != 0,
             j_consecutive: flags & 0x20 != 0,
             alternating: flags & 0x10 != 0,
+            roll: 0,
         }
     }
 
@@ -94,6 +101,9 @@ impl Scan {
         if !self.j_positive {
             j = self.nj - 1 - j;
         }
+        if !self.roll.is_multiple_of(self.ni) {
+            i = (i + self.ni - self.roll % self.ni) % self.ni;
+        }
         (j, i)
     }
 
@@ -104,9 +114,16 @@ impl Scan {
         let plain = !self.j_consecutive && !self.alternating && !self.i_negative;
         if plain {
             // Common fast path: only the row order may need flipping.
+            let roll = self.roll % self.ni.max(1);
             for (r, row) in values.chunks(self.ni).take(self.nj).enumerate() {
                 let j = if self.j_positive { r } else { self.nj - 1 - r };
-                out[j * self.ni..j * self.ni + row.len()].copy_from_slice(row);
+                let dest = &mut out[j * self.ni..j * self.ni + row.len()];
+                if roll == 0 || row.len() != self.ni {
+                    dest.copy_from_slice(row);
+                } else {
+                    dest[..self.ni - roll].copy_from_slice(&row[roll..]);
+                    dest[self.ni - roll..].copy_from_slice(&row[..roll]);
+                }
             }
             return out;
         }
@@ -354,14 +371,33 @@ fn latlon(s: &[u8], t: u16) -> Result<(Grid, Scan), GridError> {
             gaussian: None,
         },
     };
-    Ok((
+    Ok(with_longitudes(
         Grid {
             earth: e,
             horizontal,
             template: t,
         },
         scan,
+        LongitudeRange::Auto,
     ))
+}
+
+/// The grid with its column longitudes (rotated longitudes on a rotated grid)
+/// in the range `want` asks for, and the scan that rolls the values with them
+/// ([`crate::geometry::longitude::columns`]). Projected grids pass unchanged.
+pub fn with_longitudes(mut grid: Grid, mut scan: Scan, want: LongitudeRange) -> (Grid, Scan) {
+    let periodic = grid.periodic();
+    let lon = match &mut grid.horizontal {
+        Horizontal::LatLon { lon, .. } => lon,
+        Horizontal::Rotated { rlon, .. } => rlon,
+        Horizontal::Projected { .. } => return (grid, scan),
+    };
+    let (roll, new) = crate::geometry::longitude::columns(lon, periodic, want);
+    *lon = new;
+    if scan.ni > 0 {
+        scan.roll = (scan.roll + roll) % scan.ni;
+    }
+    (grid, scan)
 }
 
 /// Plane coordinates from the first point, spacing and scan direction.
@@ -561,6 +597,26 @@ mod tests {
         let v: Vec<f32> = (0..6).map(|x| x as f32).collect();
         let n = s.normalise(&v);
         assert_eq!(n, vec![0.0, 1.0, 2.0, 5.0, 4.0, 3.0]);
+    }
+
+    #[test]
+    fn a_roll_moves_columns_on_both_paths() {
+        // Column c of the result is column (c + roll) % ni of the file's west-to-east row.
+        let v: Vec<f32> = (0..8).map(|x| x as f32).collect();
+        let mut s = Scan::from_flags(4, 2, 0x40);
+        s.roll = 1;
+        assert_eq!(
+            s.normalise(&v),
+            vec![1.0, 2.0, 3.0, 0.0, 5.0, 6.0, 7.0, 4.0]
+        );
+        assert_eq!(s.position(0), (0, 3));
+        // The general path (east to west in the file) agrees.
+        let mut s = Scan::from_flags(4, 2, 0xc0);
+        s.roll = 1;
+        assert_eq!(
+            s.normalise(&v),
+            vec![2.0, 1.0, 0.0, 3.0, 6.0, 5.0, 4.0, 7.0]
+        );
     }
 
     #[test]

@@ -27,6 +27,8 @@ pub struct Packed {
     pub shape: (usize, usize, usize),
     /// Per level: the shuffled, deflated chunk.
     pub chunks: Vec<Vec<u8>>,
+    /// Number of points with a value (not missing), over all levels.
+    pub valid: usize,
 }
 
 /// The HDF5 shuffle filter for 4-byte elements: byte `b` of element `i` goes
@@ -110,6 +112,26 @@ impl Packed {
         Packed {
             shape: data.dim(),
             chunks,
+            valid: data.iter().filter(|x| x.is_finite()).count(),
+        }
+    }
+
+    /// The chunks of `levels` only, in that order.
+    pub fn levels(&self, levels: &[usize]) -> Packed {
+        let (_, ny, nx) = self.shape;
+        let chunks: Vec<Vec<u8>> = levels.iter().map(|&k| self.chunks[k].clone()).collect();
+        let valid = if levels.len() == self.chunks.len() {
+            self.valid
+        } else {
+            levels
+                .iter()
+                .map(|&k| self.level(k).iter().filter(|x| x.is_finite()).count())
+                .sum()
+        };
+        Packed {
+            shape: (levels.len(), ny, nx),
+            chunks,
+            valid,
         }
     }
 

@@ -14,7 +14,7 @@ use std::path::{Path, PathBuf};
 use chrono::{NaiveDateTime, TimeDelta};
 use ndarray::Array3;
 
-use super::cf::{bit_round, OutputError, Product, FILL_F32};
+use super::cf::{stored, OutputError, Product, FILL_F32};
 
 /// One published step file.
 #[derive(Debug, Clone, PartialEq)]
@@ -160,9 +160,12 @@ pub fn published_where(
             }
         }
         let Some(id) = identity(&path) else { continue };
+        // Files of an earlier layout (longitudes, units, coordinates) are not
+        // mixed with this one's: no change is taken between them.
         let same = id.grid_id.as_deref() == Some(grid_id)
             && id.centre == Some(i64::from(centre))
-            && id.member == Some(member.map(i64::from).unwrap_or(-1));
+            && id.member == member.map(i64::from)
+            && id.layout == Some(i64::from(super::cf::LAYOUT));
         if !same {
             continue;
         }
@@ -183,7 +186,9 @@ pub fn published_where(
 struct Identity {
     grid_id: Option<String>,
     centre: Option<i64>,
+    /// The `realization` coordinate, if any.
     member: Option<i64>,
+    layout: Option<i64>,
     times: Option<(NaiveDateTime, NaiveDateTime)>,
 }
 
@@ -211,7 +216,11 @@ fn identity(path: &Path) -> Option<Identity> {
     let id = Identity {
         grid_id: text_attr(&f, "leeward_grid_id"),
         centre: int_attr(&f, "leeward_centre"),
-        member: int_attr(&f, "leeward_member"),
+        member: f
+            .variable("realization")
+            .and_then(|v| v.get_value::<i32, _>(..).ok())
+            .map(i64::from),
+        layout: int_attr(&f, "leeward_layout"),
         times: times(&f),
     };
     drop(f);
@@ -225,34 +234,74 @@ fn identity(path: &Path) -> Option<Identity> {
     Some(id)
 }
 
-/// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
-/// with the values of its vertical coordinate.
-pub fn read_field(path: &Path, name: &str) -> Option<(Vec<f64>, Array3<f32>)> {
-    super::quiet_hdf5_errors();
-    let f = netcdf::open(path).ok()?;
-    let v = f.variable(name)?;
+/// The isobaric layers of a file: (coordinate name, middle, [bottom, top]),
+/// from the ground up (the order of the configured layers, see
+/// [`crate::config::Config::from_toml`]).
+fn pressure_layers(f: &netcdf::File) -> Vec<(String, f64, [f64; 2])> {
+    let mut out: Vec<(String, f64, [f64; 2])> = f
+        .variables()
+        .filter_map(|v| {
+            let name = v.name();
+            let dims = v.dimensions();
+            if !name.starts_with("p_layer_") || dims.len() != 1 || dims[0].name() != name {
+                return None;
+            }
+            let mid: f64 = v.get_value(0).ok()?;
+            let b: Vec<f64> = f.variable(&format!("{name}_bounds"))?.get_values(..).ok()?;
+            (b.len() == 2).then(|| (name, mid, [b[0], b[1]]))
+        })
+        .collect();
+    out.sort_by(|a, b| b.1.total_cmp(&a.1));
+    out
+}
+
+fn read_values(v: &netcdf::Variable<'_>) -> Option<Array3<f32>> {
     let dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
-    let vname = v.dimensions().get(1)?.name();
     if dims.len() != 4 {
         return None;
     }
     let data: Vec<f32> = v.get_values(..).ok()?;
     let a = Array3::from_shape_vec((dims[1], dims[2], dims[3]), data).ok()?;
-    let coord: Vec<f64> = f
-        .variable(&vname)
-        .or_else(|| f.variable(&format!("{vname}_mid")))
-        .and_then(|c| c.get_values(..).ok())
-        .unwrap_or_default();
-    Some((
-        coord,
-        a.mapv(|x| {
-            if x == FILL_F32 || !x.is_finite() {
-                f32::NAN
-            } else {
-                x
-            }
-        }),
-    ))
+    Some(a.mapv(|x| {
+        if x == FILL_F32 || !x.is_finite() {
+            f32::NAN
+        } else {
+            x
+        }
+    }))
+}
+
+/// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
+/// with the values of its vertical coordinate. A variable on isobaric layers,
+/// written as one variable per layer, comes back with every layer the file
+/// has it on, in the file's order of layers, with their middles.
+pub fn read_field(path: &Path, name: &str) -> Option<(Vec<f64>, Array3<f32>)> {
+    super::quiet_hdf5_errors();
+    let f = netcdf::open(path).ok()?;
+    if let Some(v) = f.variable(name) {
+        let vname = v.dimensions().get(1)?.name();
+        let a = read_values(&v)?;
+        let coord: Vec<f64> = f
+            .variable(&vname)
+            .and_then(|c| c.get_values(..).ok())
+            .unwrap_or_default();
+        return Some((coord, a));
+    }
+    let mut mids = Vec::new();
+    let mut levels = Vec::new();
+    for (coord, mid, _) in pressure_layers(&f) {
+        let suffix = coord.strip_prefix("p_layer_").unwrap_or_default();
+        if let Some(a) = f
+            .variable(&format!("{name}_{suffix}"))
+            .and_then(|v| read_values(&v))
+        {
+            mids.push(mid);
+            levels.push(a);
+        }
+    }
+    let views: Vec<_> = levels.iter().map(|a| a.view()).collect();
+    let a = ndarray::concatenate(ndarray::Axis(0), &views).ok()?;
+    Some((mids, a))
 }
 
 /// Add (or replace) float variables on an existing vertical dimension of a
@@ -303,15 +352,14 @@ pub fn add_variables_to(
         };
         super::quiet_hdf5_errors();
         let mut f = netcdf::append(&tmp).map_err(e)?;
-        let coords = ["zeta", "theta", "thick", "isen_p"]
-            .iter()
-            .find_map(|n| {
-                let v = f.variable(n)?;
-                let a = v.attribute("coordinates")?;
-                match a.value().ok()? {
-                    netcdf::AttributeValue::Str(s) => Some(s),
-                    _ => None,
-                }
+        // The coordinates every data variable of the file names (the file's
+        // own, from any data variable), so that an added one names the same.
+        let coords = f
+            .variables()
+            .filter(|v| v.dimensions().len() == 4)
+            .find_map(|v| match v.attribute("coordinates")?.value().ok()? {
+                netcdf::AttributeValue::Str(s) => Some(s),
+                _ => None,
             })
             .unwrap_or_else(|| "reference_time lead_time".to_string());
         let (ydim, xdim) = if f.dimension("lat").is_some()
@@ -323,82 +371,61 @@ pub fn add_variables_to(
         } else {
             ("y", "x")
         };
+        if significant_bits < 23 {
+            super::cf::quantization_container(&mut f).map_err(e)?;
+        }
         // New variables are declared here with leeward's chunks and filters, so
         // their levels are packed on every core and stored directly after the
         // file is closed; a variable already in the file keeps its own
-        // declaration and is rewritten through libnetcdf.
-        let mut direct: Vec<(&str, super::pack::Packed)> = Vec::new();
+        // declaration and is rewritten through libnetcdf, its attributes
+        // replaced by this version's.
+        let mut direct: Vec<(String, super::pack::Packed)> = Vec::new();
+        let layers = pressure_layers(&f);
         for prod in vars {
-            let (spec, vertical, notes) = (&prod.spec, prod.vertical.dim(), &prod.notes);
-            let is_new = f.variable(spec.name).is_none();
-            if !is_new {
-                // Already there (written earlier): values are replaced in place below.
-            } else {
-                let mut v = f
-                    .add_variable::<f32>(spec.name, &["time", vertical, ydim, xdim])
-                    .map_err(e)?;
-                v.set_fill_value(FILL_F32).map_err(e)?;
-                if deflate > 0 {
-                    v.set_compression(deflate, true).map_err(e)?;
+            let targets: Vec<super::cf::Target> = if prod.vertical
+                == super::cf::Vertical::PressureLayer
+            {
+                // Level k of a layer product is the file's k-th layer (changes are
+                // taken only between files whose layers agree).
+                if layers.len() != prod.dim().0 {
+                    tracing::warn!(file = %path.display(), variable = prod.spec.name, "layers differ from the file's: not added");
+                    continue;
                 }
-                let (_, ny, nx) = prod.dim();
-                v.set_chunking(&[1, 1, ny, nx]).map_err(e)?;
-                if let Some(s) = spec.standard_name {
-                    v.put_attribute("standard_name", s).map_err(e)?;
-                }
-                v.put_attribute("long_name", spec.long_name).map_err(e)?;
-                v.put_attribute("units", spec.units).map_err(e)?;
-                v.put_attribute("grid_mapping", "crs").map_err(e)?;
-                if vertical == "p_layer" {
-                    v.put_attribute("coordinates", format!("{coords} p_layer_mid").as_str())
-                        .map_err(e)?;
-                } else {
-                    v.put_attribute("coordinates", coords.as_str()).map_err(e)?;
-                }
-                v.put_attribute("comment", spec.formula).map_err(e)?;
-                for (n, t) in notes {
-                    v.put_attribute(n, t.as_str()).map_err(e)?;
-                }
-                if significant_bits < 23 {
-                    v.put_attribute("leeward_significant_bits", significant_bits as i32)
-                        .map_err(e)?;
-                }
-            }
-            if is_new && deflate > 0 {
-                let packed = match &prod.values {
-                    super::cf::Values::Plain(a) => {
-                        super::pack::Packed::new(a, significant_bits, deflate as u32)
-                    }
-                    super::cf::Values::Packed(p) => p.clone(),
-                };
-                direct.push((spec.name, packed));
-                continue;
-            }
-            let mut v = f
-                .variable_mut(spec.name)
-                .ok_or_else(|| OutputError::NetCdf {
-                    path: tmp.clone(),
-                    source: netcdf::Error::from("variable vanished"),
-                })?;
-            for k in 0..prod.dim().0 {
-                let buf: Vec<f32> = prod
-                    .level(k)
+                layers
                     .iter()
-                    .map(|&x| {
-                        if x.is_finite() {
-                            bit_round(x, significant_bits)
-                        } else {
-                            FILL_F32
-                        }
+                    .enumerate()
+                    .map(|(k, (coord, _, bounds))| super::cf::Target {
+                        name: format!("{}_{}", prod.spec.name, super::cf::layer_suffix(*bounds)),
+                        vertical: coord.clone(),
+                        level: Some(k),
+                        layer: Some(*bounds),
                     })
-                    .collect();
-                v.put_values(&buf, (0, k, .., ..)).map_err(e)?;
+                    .collect()
+            } else {
+                vec![super::cf::Target {
+                    name: prod.spec.name.to_string(),
+                    vertical: prod.vertical.dim().to_string(),
+                    level: None,
+                    layer: None,
+                }]
+            };
+            for t in targets {
+                add_one(
+                    &mut f,
+                    prod,
+                    &t,
+                    (ydim, xdim),
+                    &coords,
+                    (deflate, significant_bits),
+                    &mut direct,
+                )
+                .map_err(e)?;
             }
         }
         f.close().map_err(e)?;
         if !direct.is_empty() {
             let refs: Vec<(&str, &super::pack::Packed)> =
-                direct.iter().map(|(n, p)| (*n, p)).collect();
+                direct.iter().map(|(n, p)| (n.as_str(), p)).collect();
             super::pack::write_chunks(&tmp, &refs).map_err(|m| OutputError::NetCdf {
                 path: tmp.clone(),
                 source: netcdf::Error::from(m.as_str()),
@@ -417,6 +444,49 @@ pub fn add_variables_to(
         let _ = std::fs::remove_file(&tmp);
     }
     result
+}
+
+/// Add or replace one variable of an update (a whole product, or one level
+/// of it): new variables are declared with leeward's chunks and filters and
+/// their packed levels queued in `direct`, to be stored after the file is
+/// closed; a variable already in the file keeps its own declaration and is
+/// rewritten through libnetcdf, its attributes replaced by this version's.
+fn add_one(
+    f: &mut netcdf::FileMut,
+    prod: &Product,
+    t: &super::cf::Target,
+    (ydim, xdim): (&str, &str),
+    coords: &str,
+    (deflate, nsb): (i32, u32),
+    direct: &mut Vec<(String, super::pack::Packed)>,
+) -> netcdf::Result<()> {
+    let levels: Vec<usize> = match t.level {
+        Some(k) => vec![k],
+        None => (0..prod.dim().0).collect(),
+    };
+    let is_new = f.variable(&t.name).is_none();
+    if is_new {
+        let mut v = f.add_variable::<f32>(&t.name, &["time", t.vertical.as_str(), ydim, xdim])?;
+        let (_, ny, nx) = prod.dim();
+        super::cf::declare_storage(&mut v, deflate, (ny, nx))?;
+    }
+    let mut v = f
+        .variable_mut(&t.name)
+        .ok_or_else(|| netcdf::Error::from("variable vanished"))?;
+    super::cf::describe_variable(&mut v, prod, coords, nsb, t.layer)?;
+    if is_new && deflate > 0 {
+        let packed = match &prod.values {
+            super::cf::Values::Plain(a) => super::pack::Packed::new(a, nsb, deflate as u32),
+            super::cf::Values::Packed(p) => p.clone(),
+        };
+        direct.push((t.name.clone(), packed.levels(&levels)));
+        return Ok(());
+    }
+    for (n, &k) in levels.iter().enumerate() {
+        let buf: Vec<f32> = prod.level(k).iter().map(|&x| stored(x, nsb)).collect();
+        v.put_values(&buf, (0, n, .., ..))?;
+    }
+    Ok(())
 }
 
 #[cfg(test)]

@@ -69,13 +69,47 @@ pub const N2: VarSpec = VarSpec {
 pub const PV: VarSpec = VarSpec {
     name: "pv",
     standard_name: Some("ertel_potential_vorticity"),
-    long_name: "Ertel potential vorticity on isobaric levels",
-    units: PVU_UNITS,
-    formula: "P = -g [ (zeta_p + f) dtheta/dp - (dv/dp)(dtheta/dx) + (du/dp)(dtheta/dy) ] (Bluestein 1992), in PVU",
+    long_name: "Ertel potential vorticity on isobaric levels (1 PVU = 1e-6 K m2 kg-1 s-1)",
+    units: PV_UNITS,
+    formula: "P = -g [ (zeta_p + f) dtheta/dp - (dv/dp)(dtheta/dx) + (du/dp)(dtheta/dy) ] (Bluestein 1992)",
 };
 
-/// PVU as a scaled unit string that UDUNITS accepts.
-pub const PVU_UNITS: &str = "1e-6 K m2 kg-1 s-1";
+/// Potential vorticity in SI units, the canonical units of the CF standard
+/// name: every reader parses them (UDUNITS, cf_units, pint, GDAL), unlike a
+/// scaled unit such as "1e-6 K m2 kg-1 s-1", which pint refuses. The PVU
+/// (1e-6 of this) is said in the long names and used in quicklooks.
+pub const PV_UNITS: &str = "K m2 kg-1 s-1";
+
+/// Values of PV in PVU times this are in [`PV_UNITS`].
+pub const PVU: f64 = 1e-6;
+
+/// PV in PVU (the unit of the diagnostics and the configuration) as written.
+pub fn pvu_to_si(pvu: f64) -> f64 {
+    // Dividing by the exact 1e6 rounds once: 2 PVU is written as the double nearest 2e-6.
+    pvu / 1e6
+}
+
+/// CF 1.11 `units_metadata` (section 3.1.3) for a variable in `units` with
+/// CF standard name `standard_name`: a temperature on its scale, or a
+/// temperature difference inside compound units (PV, static stability).
+pub fn units_metadata(units: &str, standard_name: Option<&str>) -> Option<&'static str> {
+    let has_kelvin = units.split_whitespace().any(|t| {
+        t.strip_prefix('K').is_some_and(|r| {
+            r.is_empty()
+                || r.trim_start_matches('-')
+                    .bytes()
+                    .all(|b| b.is_ascii_digit())
+        })
+    });
+    match (units, standard_name) {
+        ("K", Some(n)) if n.contains("difference") || n.contains("anomaly") => {
+            Some("temperature: difference")
+        }
+        ("K", _) => Some("temperature: on_scale"),
+        _ if has_kelvin => Some("temperature: difference"),
+        _ => None,
+    }
+}
 
 /// Pressure on isentropic surfaces.
 pub const ISEN_P: VarSpec = VarSpec {
@@ -118,9 +152,9 @@ pub const ISEN_M: VarSpec = VarSpec {
 pub const ISEN_PV: VarSpec = VarSpec {
     name: "isen_pv",
     standard_name: Some("ertel_potential_vorticity"),
-    long_name: "Ertel potential vorticity on isentropic surfaces",
-    units: PVU_UNITS,
-    formula: "P = -g (zeta_theta + f) dtheta/dp, zeta_theta from the winds on the surface, dtheta/dp of the bracketing layer (Hoskins, McIntyre and Robertson 1985), in PVU",
+    long_name: "Ertel potential vorticity on isentropic surfaces (1 PVU = 1e-6 K m2 kg-1 s-1)",
+    units: PV_UNITS,
+    formula: "P = -g (zeta_theta + f) dtheta/dp, zeta_theta from the winds on the surface, dtheta/dp of the bracketing layer (Hoskins, McIntyre and Robertson 1985)",
 };
 
 /// Wind components on a surface: earth-relative and grid-relative variants.
@@ -253,5 +287,28 @@ mod tests {
         assert!(ISOBARIC
             .iter()
             .all(|v| !v.units.is_empty() && !v.long_name.is_empty()));
+    }
+
+    #[test]
+    fn temperatures_say_whether_they_are_on_scale_or_differences() {
+        // CF 1.11 section 3.1.3.
+        assert_eq!(
+            units_metadata("K", Some("air_temperature")),
+            Some("temperature: on_scale")
+        );
+        assert_eq!(units_metadata("K", None), Some("temperature: on_scale"));
+        assert_eq!(
+            units_metadata(PV_UNITS, Some("ertel_potential_vorticity")),
+            Some("temperature: difference")
+        );
+        assert_eq!(
+            units_metadata("K Pa-1", None),
+            Some("temperature: difference")
+        );
+        assert_eq!(units_metadata("K2", None), Some("temperature: difference"));
+        assert_eq!(units_metadata("kg m-2", None), None);
+        assert_eq!(units_metadata("Pa", Some("air_pressure")), None);
+        assert_eq!(pvu_to_si(2.0), 2e-6);
+        assert_eq!(pvu_to_si(1.5), 1.5e-6);
     }
 }

@@ -325,6 +325,9 @@ pub struct JobReport {
     pub missing: Vec<String>,
     /// Variables written.
     pub products: Vec<String>,
+    /// Variables left out because no point has a value ("name: why").
+    #[serde(default)]
+    pub left_out: Vec<String>,
     /// Input problems.
     pub issues: Vec<Issue>,
     /// Seconds of the step on the node (no latency: the service measures that).
@@ -337,6 +340,7 @@ impl JobReport {
             grid: rep.grid.clone(),
             missing: rep.missing.clone(),
             products: rep.products.clone(),
+            left_out: rep.left_out.clone(),
             issues: rep.issues.clone(),
             timings: Timings {
                 decode: rep.decode_seconds,
@@ -355,6 +359,7 @@ impl JobReport {
             grid: self.grid.clone(),
             missing: self.missing.clone(),
             products: self.products.clone(),
+            left_out: self.left_out.clone(),
             issues: self.issues.clone(),
             seconds: self.timings.total,
             decode_seconds: self.timings.decode,

@@ -88,6 +88,10 @@ pub struct Manifest {
     pub inputs: Vec<ManifestInput>,
     /// What was looked for and not found.
     pub missing: Vec<String>,
+    /// Variables made but left out of the file because no point has a value,
+    /// each as "name: why".
+    #[serde(default)]
+    pub left_out: Vec<String>,
     /// Problems met with the input.
     pub issues: Vec<String>,
     /// leeward's version.
@@ -247,6 +251,7 @@ pub fn write_manifest_with(
             .cloned()
             .chain(facts.not_arrived.iter().cloned())
             .collect(),
+        left_out: rep.left_out.clone(),
         issues: rep.issues.iter().map(ToString::to_string).collect(),
         software: format!("leeward {}", env!("CARGO_PKG_VERSION")),
         timings_s: Timings {

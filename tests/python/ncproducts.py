@@ -145,7 +145,7 @@ class IsentropicProduct:
     lon: np.ndarray
     pressure: np.ndarray  # Pa
     theta_level: np.ndarray  # K
-    pv_level: np.ndarray  # PVU
+    pv_level: np.ndarray  # PVU (the file holds K m2 kg-1 s-1; converted on reading)
     theta_layer: np.ndarray  # K, mid values
     theta_layer_bounds: np.ndarray  # K, (n, 2): bottom, top
     fields: dict  # name -> array (nvertical, ny, nx), NaN where missing
@@ -168,12 +168,29 @@ def read_isentropic(path, names=tuple(ISENTROPIC_VARIABLES)) -> IsentropicProduc
             v = ds[name]
             want = ("time", ISENTROPIC_VARIABLES[name], *base.dims)
             assert v.dimensions == want, f"{path.name}:{name} dims {v.dimensions}, contract says {want}"
-            fields[name] = _filled(v)[0]
+            fields[name] = _filled(v)[0] * _to_pvu(v)
             attrs[name] = {k: v.getncattr(k) for k in v.ncattrs()}
         return IsentropicProduct(
             path, base.kind, base.dims, base.lat, base.lon, base.pressure,
-            _filled(ds["theta_level"]), _filled(ds["pv_level"]), _filled(ds["theta_layer"]),
-            _filled(ds["theta_layer_bounds"]), fields, attrs)
+            _filled(ds["theta_level"]), _filled(ds["pv_level"]) * _to_pvu(ds["pv_level"]),
+            _filled(ds["theta_layer"]), _filled(ds["theta_layer_bounds"]), fields, attrs)
+
+
+#: Units of potential vorticity in the files (the CF canonical units of
+#: ertel_potential_vorticity) and the PVU the checks are written in:
+#: 1 PVU = 1e-6 K m2 kg-1 s-1 (Hoskins et al. 1985; REFERENCES.md "Constants").
+PV_UNITS = "K m2 kg-1 s-1"
+PVU_IN_SI = 1e-6
+
+
+def _to_pvu(var) -> float:
+    """Factor taking a variable to PVU if it holds potential vorticity, else 1."""
+    attrs = {k: var.getncattr(k) for k in var.ncattrs()}
+    units = attrs.get("units", "")
+    if attrs.get("standard_name") == "ertel_potential_vorticity":
+        assert units == PV_UNITS, f"{var.name}: PV units {units!r}, the output contract says {PV_UNITS!r}"
+        return 1.0 / PVU_IN_SI
+    return 1.0
 
 
 def vertical_index(values, want, atol=1e-6, what="level") -> int:

@@ -226,8 +226,8 @@ def test_budget_variables_say_what_they_are(deepened):
     assert "Coriolis part" in attrs["bud_zeta_beta"]["long_name"]
     assert "bud_zeta_dep + bud_zeta_stretch + bud_zeta_beta" in attrs["bud_zeta_pred"]["comment"]
     for n in ("bud_unconverged", "bud_dpvdt_unconverged"):
-        assert attrs[n]["leeward_trajectories_not_converged"] == "0"
-        assert attrs[n]["leeward_trajectory_substep_h"] == "3"
+        assert attrs[n]["leeward_trajectories_not_converged"] == 0
+        assert attrs[n]["leeward_trajectory_substep_h"] == 3.0
 
 
 def test_trajectories_that_cannot_converge_are_flagged_and_counted(leeward_bin, tmp_path):

@@ -1,6 +1,6 @@
 """CF conformance of every NetCDF file leeward writes in the closed-form and real-data runs.
 
-Outside references: the IOOS compliance checker (PyPI compliance-checker, CF 1.9 suite with
+Outside references: the IOOS compliance checker (PyPI compliance-checker, CF 1.11 suite with
 its bundled standard name table), netCDF4-python and xarray as a downstream reader opens the
 files, pyproj's CRS.from_cf for the grid mapping (CF 1.10 section 5.6 and appendix F), and
 ecCodes for the geography of the GRIB input.
@@ -60,7 +60,9 @@ DATA_VARS = {
 #: (REFERENCES.md: ertel_potential_vorticity, potential_vorticity_of_atmosphere_layer,
 #: dynamic_tropopause_potential_temperature, air_pressure, geopotential_height, ...). "U"
 #: and "V" stand for the wind names, which follow the input's flag table 3.3 bit 5.
-PVU_UNITS = "1e-6 K m2 kg-1 s-1"  # 1 PVU (Hoskins et al. 1985; REFERENCES.md "Constants")
+#: PV in the CF canonical units of ertel_potential_vorticity (CF Standard Name Table); a
+#: PVU is 1e-6 of them (Hoskins et al. 1985; REFERENCES.md "Constants").
+PVU_UNITS = "K m2 kg-1 s-1"
 ISEN_VARS = {
     "isen_p": ("Pa", "air_pressure", "theta_level"),
     "isen_z": ("m", "geopotential_height", "theta_level"),
@@ -152,7 +154,7 @@ def test_netcdf_structure(kind, name, request):
         # Global attributes: CF 1.10 section 2.6 (Conventions, title, institution, source,
         # history, references); the masking note is leeward's output contract.
         g = {k: ds.getncattr(k) for k in ds.ncattrs()}
-        assert g.get("Conventions") == "CF-1.10"
+        assert g.get("Conventions") == "CF-1.11"
         for key in ("title", "institution", "source", "history", "references",
                     "leeward_below_ground_masking"):
             assert isinstance(g.get(key), str) and g[key].strip(), f"global attribute {key} missing or empty"
@@ -258,10 +260,23 @@ def test_netcdf_structure(kind, name, request):
             raw = var[:]
             assert not np.isnan(raw).any(), f"{v}: NaN in the file (missing must be the fill value)"
 
-        _check_isentropic_structure(ds, hdims, aux, field)
+        _check_isentropic_structure(ds, hdims, aux, field, left_out(run))
 
 
-def _check_isentropic_structure(ds, hdims, aux, field):
+def left_out(run) -> set:
+    """Variables the step line says were left out for want of any valid point (output
+    contract, docs/output.md "Variables left out")."""
+    out = set()
+    for ln in run.stdout.splitlines():
+        if ln.strip().startswith("left out:"):
+            for part in ln.strip()[len("left out:"):].split(";"):
+                name, sep, why = part.strip().partition(": ")
+                assert sep and why.startswith("every point is missing"), part
+                out.add(name)
+    return out
+
+
+def _check_isentropic_structure(ds, hdims, aux, field, left=frozenset()):
     """Coordinates and data variables of the isentropic family (output contract; CF 1.10
     sections 4.3 vertical coordinates and 7.1 cell boundaries; CF Standard Name Table)."""
     # Isentropic surfaces: air_potential_temperature in K, positive up, axis Z (CF 4.3;
@@ -272,11 +287,18 @@ def _check_isentropic_structure(ds, hdims, aux, field):
     assert (ta.get("units"), ta.get("standard_name"), ta.get("positive"), ta.get("axis")) == (
         "K", "air_potential_temperature", "up", "Z"), ta
     assert np.all(np.diff(tl[:]) > 0), f"theta_level not increasing: {tl[:]}"
-    # PV surfaces: ertel_potential_vorticity in PVU, with a comment on the hemispheric sign.
+    # PV surfaces: ertel_potential_vorticity in SI units, axis Z, with a comment on the
+    # hemispheric sign. (Where no column crosses the surface, as over the tropical
+    # Pacific, every trop_* variable is left out, and so is the coordinate.)
+    on_pv = [v for v, (_, _, d) in ISEN_VARS.items() if d == "pv_level"]
+    if all(v in left for v in on_pv):
+        assert "pv_level" not in ds.variables
+        return _check_isentropic_variables(ds, hdims, aux, field, left)
     pl = ds["pv_level"]
     pla = _attrs(pl)
     assert pl.dtype == np.float64 and pl.dimensions == ("pv_level",)
-    assert (pla.get("units"), pla.get("standard_name")) == (PVU_UNITS, "ertel_potential_vorticity"), pla
+    assert (pla.get("units"), pla.get("standard_name"), pla.get("axis")) == (
+        PVU_UNITS, "ertel_potential_vorticity", "Z"), pla
     assert isinstance(pla.get("comment"), str) and pla["comment"].strip(), f"pv_level has no comment: {pla}"
     # Isentropic layers: mid values with bounds (CF 7.1), bounds (theta_layer, nv), nv = 2,
     # bottom below top.
@@ -293,10 +315,17 @@ def _check_isentropic_structure(ds, hdims, aux, field):
     bv = np.asarray(b[:], dtype=float)
     assert np.all(bv[:, 0] < bv[:, 1]), f"layer bounds not bottom < top: {bv}"
     np.testing.assert_allclose(np.asarray(ly[:], dtype=float), bv.mean(axis=1), rtol=0, atol=1e-9)
+    _check_isentropic_variables(ds, hdims, aux, field, left)
+
+
+def _check_isentropic_variables(ds, hdims, aux, field, left):
     # Data variables: float32, dims (time, vertical, y, x), fill value, units, standard
     # names (wind names as the input's flag table 3.3 bit 5 says), grid mapping, coordinates.
     winds = WIND_NAMES[bool(field["uv_relative"])]
     for v, (units, sn, vdim) in ISEN_VARS.items():
+        if v in left:
+            assert v not in ds.variables, f"{v} said left out but written"
+            continue
         assert v in ds.variables, f"data variable {v} missing (isentropic family)"
         var = ds[v]
         va = _attrs(var)
@@ -347,7 +376,8 @@ def test_xarray_decodes_times(kind, name, request):
         assert ref == want_ref, f"reference time {ref}, GRIB says {want_ref}"
         assert lead == np.timedelta64(f["step"], "h"), f"lead time {lead}, GRIB says {f['step']} h"
         for v in (*DATA_VARS, *ISEN_VARS):
-            assert ds[v].dtype == np.float32, v  # decoded with the fill value masked as NaN
+            if v in ds.variables or v not in left_out(_run_for(request, kind, name)):
+                assert ds[v].dtype == np.float32, v  # decoded with the fill value masked as NaN
         # The layer coordinate's bounds as xarray finds them (CF 7.1).
         lay = ds["theta_layer"]
         bname = lay.attrs.get("bounds", lay.encoding.get("bounds"))
@@ -428,7 +458,7 @@ class _ComplianceRuns:
             if not part:
                 continue
             out = folder / f"report{i}.json"
-            proc = subprocess.Popen([exe, "--test=cf:1.9", "--format=json_new", "-o", str(out), *map(str, part)],
+            proc = subprocess.Popen([exe, "--test=cf:1.11", "--format=json_new", "-o", str(out), *map(str, part)],
                                     stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
             self.jobs.append((proc, out))
         self._report = None
@@ -519,15 +549,15 @@ def _real_failures(path, failed_checks):
 
 
 @pytest.mark.parametrize("kind,name", PRODUCTS, ids=IDS)
-def test_compliance_checker_cf19(kind, name, request, compliance):
-    # IOOS compliance checker, CF 1.9 suite: no failed high-priority check; medium ones
+def test_compliance_checker_cf111(kind, name, request, compliance):
+    # IOOS compliance checker, CF 1.11 suite: no failed high-priority check; medium ones
     # are printed in the summary.
     _, files = _products(request, kind, name)
     for path in files:
         rep = compliance.report().get(str(path))
         assert rep is not None, f"no compliance report for {path.name}"
-        cf = rep.get("cf:1.9")
-        assert cf is not None, f"{path.name}: report has no cf:1.9 section: {list(rep)}"
+        cf = rep.get("cf:1.11")
+        assert cf is not None, f"{path.name}: report has no cf:1.11 section: {list(rep)}"
         high = [(c["name"], c["msgs"]) for c in cf["high_priorities"]
                 if c["value"][0] < c["value"][1]]
         medium = sorted({m for c in cf["medium_priorities"] if c["value"][0] < c["value"][1]

@@ -203,37 +203,45 @@ def scenarios(leeward_bin, inputs, tmp_path_factory):
 # --------------------------------------------------------------------------------------
 # Reading the products (netCDF4-python)
 # --------------------------------------------------------------------------------------
-def _layer_index(ds, bottom_hpa, top_hpa):
-    """Index along p_layer of the layer whose p_layer_bounds are (bottom, top) in Pa."""
-    b = np.asarray(ds["p_layer_bounds"][:], dtype=float)
-    hit = np.flatnonzero(np.isclose(b[:, 0], bottom_hpa * 100.0, atol=1e-3)
-                         & np.isclose(b[:, 1], top_hpa * 100.0, atol=1e-3))
-    assert hit.size == 1, f"layer {bottom_hpa}-{top_hpa} hPa not (once) in p_layer_bounds {b.tolist()}"
-    return int(hit[0])
+def _layer_name(bottom_hpa, top_hpa):
+    """Suffix of the variables and coordinate of one isobaric layer (output contract,
+    docs/output.md "Thickness": `<name>_<bottom>_<top>` in hPa on `p_layer_<bottom>_<top>`)."""
+    fmt = lambda x: f"{x:g}".replace(".", "p")  # noqa: E731
+    return f"{fmt(bottom_hpa)}_{fmt(top_hpa)}"
 
 
 def read_layer_var(path, name):
-    """{(bottom, top): 2-D float64 array, NaN where missing} of a p_layer variable, its
-    attributes and its raw float32 data (for bit-for-bit comparisons)."""
+    """{(bottom, top): 2-D float64 array, NaN where missing} of a variable on isobaric
+    layers (one file variable per layer), the attributes of its first layer and its raw
+    float32 data per layer (for bit-for-bit comparisons)."""
+    out, raws, attrs = {}, {}, None
     with netCDF4.Dataset(path) as ds:
-        assert name in ds.variables, f"{Path(path).name}: no variable {name}; has {sorted(ds.variables)}"
-        v = ds[name]
-        # Output contract: (time, p_layer, y, x).
-        assert v.dimensions == ("time", "p_layer", "lat", "lon"), f"{name} dims {v.dimensions}"
-        v.set_auto_mask(False)
-        raw = np.array(v[:])
-        attrs = {k: v.getncattr(k) for k in v.ncattrs()}
-        fill = attrs.get("_FillValue")
-        a = raw.astype(np.float64)
-        if fill is not None:
-            a[raw == fill] = np.nan
-        out = {lay: a[0, _layer_index(ds, *lay)] for lay in LAYERS}
-    return out, attrs, raw
+        for lay in LAYERS:
+            vname = f"{name}_{_layer_name(*lay)}"
+            coord = f"p_layer_{_layer_name(*lay)}"
+            assert vname in ds.variables, f"{Path(path).name}: no variable {vname}; has {sorted(ds.variables)}"
+            v = ds[vname]
+            # Output contract: (time, p_layer_<b>_<t>, y, x), the layer as the bounds of its coordinate.
+            assert v.dimensions == ("time", coord, "lat", "lon"), f"{vname} dims {v.dimensions}"
+            bnd = np.asarray(ds[f"{coord}_bounds"][:], dtype=float)
+            assert np.allclose(bnd, [[lay[0] * 100.0, lay[1] * 100.0]], rtol=0, atol=1e-3), (vname, bnd)
+            v.set_auto_mask(False)
+            raw = np.array(v[:])
+            a = {k: v.getncattr(k) for k in v.ncattrs()}
+            attrs = attrs or a
+            x = raw.astype(np.float64)
+            if a.get("_FillValue") is not None:
+                x[raw == a["_FillValue"]] = np.nan
+            out[lay] = x[0, 0]
+            raws[lay] = raw
+    return out, attrs, np.stack([raws[lay] for lay in LAYERS])
 
 
 def has_var(path, name):
+    """The file has `name`, or `name` on any isobaric layer (`name_<bottom>_<top>`)."""
     with netCDF4.Dataset(path) as ds:
-        return name in ds.variables
+        return name in ds.variables or any(
+            f"{name}_{_layer_name(*lay)}" in ds.variables for lay in LAYERS)
 
 
 def methods_by_layer(attrs):
@@ -251,10 +259,10 @@ def methods_by_layer(attrs):
 
 
 def rounding_tol(value, attrs):
-    """Largest error of bit rounding to `leeward_significant_bits` mantissa bits: relative
-    2^-(n+1) (Kloewer et al. 2021 round to nearest; docs/configuration.md), plus float32's
-    own half ulp."""
-    n = int(attrs.get("leeward_significant_bits", 23))
+    """Largest error of bit rounding to `quantization_nsb` mantissa bits (CF quantization,
+    algorithm bitround): relative 2^-(n+1) (Kloewer et al. 2021 round to nearest;
+    docs/configuration.md), plus float32's own half ulp."""
+    n = int(attrs.get("quantization_nsb", 23))
     return abs(value) * (2.0 ** -(n + 1) + 2.0 ** -24)
 
 
@@ -323,7 +331,7 @@ def test_late_change_keeps_published_values(scenarios):
     before = sc.snapshots[0][F_C00_006]
     after = sc.file(F_C00_006)
     with netCDF4.Dataset(before) as b, netCDF4.Dataset(after) as a:
-        assert "thick_chg_06h" not in b.variables  # nothing to take it against at first
+        assert not has_var(before, "thick_chg_06h")  # nothing to take it against at first
         missing = sorted(set(b.variables) - set(a.variables))
         assert not missing, f"{after.name}: variables lost in the update: {missing}"
         changed = []
@@ -339,7 +347,8 @@ def test_late_change_keeps_published_values(scenarios):
             if {k: str(v) for k, v in ab.items()} != {k: str(v) for k, v in aa.items()}:
                 changed.append(f"{name} (attributes)")
         assert not changed, f"{after.name}: published values changed by the update: {changed}"
-        assert set(a.variables) - set(b.variables) == {"thick_chg_06h"}, (
+        assert set(a.variables) - set(b.variables) == {
+            f"thick_chg_06h_{_layer_name(*lay)}" for lay in LAYERS}, (
             f"update added {sorted(set(a.variables) - set(b.variables))}")
 
 
@@ -361,16 +370,17 @@ def test_standard_atmosphere_thickness_from_temperature(scenarios):
         assert "hypsometric" in meth[lay] and "geopotential" not in meth[lay], f"{lay}: method {meth[lay]!r}"
         assert "dry" in meth[lay], f"{lay}: method {meth[lay]!r}, no humidity in the input"
         assert "humidity" not in meth[lay] or "no humidity" in meth[lay], f"{lay}: method {meth[lay]!r}"
-    # Output contract (docs/output.md "Thickness"): p_layer_mid is the middle pressure of each
-    # layer in Pa, air_pressure, with p_layer_bounds (bottom, top) in Pa.
+    # Output contract (docs/output.md "Thickness"): each layer's coordinate p_layer_<b>_<t>
+    # is its middle pressure in Pa, air_pressure, axis Z, with the layer (bottom, top) in Pa
+    # as its bounds (CF 1.11 section 7.1).
     with netCDF4.Dataset(path) as ds:
-        mid, bnd = ds["p_layer_mid"], np.asarray(ds["p_layer_bounds"][:], dtype=float)
-        assert mid.dimensions == ("p_layer",) and mid.getncattr("bounds") == "p_layer_bounds"
-        assert (mid.getncattr("standard_name"), mid.getncattr("units")) == ("air_pressure", "Pa")
-        got_layers = sorted((float(b0), float(t0)) for b0, t0 in (bnd / 100.0).round(6))
-        assert got_layers == sorted((float(b0), float(t0)) for b0, t0 in LAYERS), got_layers
-        assert np.allclose(np.asarray(mid[:], dtype=float), bnd.mean(axis=1), rtol=0, atol=1e-3), (
-            f"p_layer_mid {mid[:].tolist()} is not the middle of p_layer_bounds {bnd.tolist()}")
+        for lay in LAYERS:
+            c = ds[f"p_layer_{_layer_name(*lay)}"]
+            bnd = np.asarray(ds[c.getncattr("bounds")][:], dtype=float)
+            assert (c.getncattr("standard_name"), c.getncattr("units"), c.getncattr("axis")) == (
+                "air_pressure", "Pa", "Z")
+            assert np.allclose(bnd, [[lay[0] * 100.0, lay[1] * 100.0]], rtol=0, atol=1e-3), bnd
+            assert abs(float(c[0]) - bnd.mean()) < 1e-3, f"{c.name} {c[:]} is not the middle of {bnd}"
 
 
 def _decoded_heights(path):
@@ -526,7 +536,7 @@ def test_changes_within_cycle_and_across_cycles(scenarios):
 # 5. CF compliance after a late update
 # --------------------------------------------------------------------------------------
 def test_cf_compliance_after_late_update(scenarios, tmp_path):
-    # IOOS compliance checker (PyPI compliance-checker, CF 1.9 suite, bundled standard name
+    # IOOS compliance checker (PyPI compliance-checker, CF 1.11 suite, bundled standard name
     # table; REFERENCES.md): no failed high-priority check in files that leeward updated in
     # place (change added after the file was first published).
     # The checker installed with this interpreter (the test venv), before any on PATH.
@@ -540,7 +550,7 @@ def test_cf_compliance_after_late_update(scenarios, tmp_path):
     for i, f in enumerate(files):
         out = tmp_path / f"cf{i}.json"
         procs.append((f, out, subprocess.Popen(
-            [exe, "--test=cf:1.9", "--format=json", "-o", str(out), str(f)],
+            [exe, "--test=cf:1.11", "--format=json", "-o", str(out), str(f)],
             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)))
         if len(procs) >= 2:  # two cores: at most two checkers at once
             procs[-2][2].wait(timeout=120)
@@ -548,8 +558,8 @@ def test_cf_compliance_after_late_update(scenarios, tmp_path):
     for f, out, p in procs:
         _, err = p.communicate(timeout=120)
         assert out.is_file(), f"compliance-checker wrote no report for {f.name} (exit {p.returncode}):\n{err[-2000:]}"
-        cf = json.loads(out.read_text()).get("cf:1.9")
-        assert cf is not None, f"{f.name}: report has no cf:1.9 section"
+        cf = json.loads(out.read_text()).get("cf:1.11")
+        assert cf is not None, f"{f.name}: report has no cf:1.11 section"
         high = [(c["name"], c["msgs"]) for c in cf["high_priorities"] if c["value"][0] < c["value"][1]]
         medium = sorted({m for c in cf["medium_priorities"] if c["value"][0] < c["value"][1] for m in c["msgs"]})
         for m in medium:

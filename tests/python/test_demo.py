@@ -1,6 +1,6 @@
 """`leeward demo` as a newcomer runs it: the invented cycle played through the
 real service, every step published, every product passing the CF compliance
-checker (IOOS compliance-checker, CF 1.9 suite), quicklooks beside them.
+checker (IOOS compliance-checker, CF 1.11 suite), quicklooks beside them.
 Shortened to three steps and a short pause so the suite stays quick; the
 full demo is the same code with the default leads."""
 
@@ -65,7 +65,7 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
     runs = cfo._ComplianceRuns(exe, ncs, tmp_path)
     rep = runs.report()
     for nc in ncs:
-        cf = rep[str(nc)]["cf:1.9"]
+        cf = rep[str(nc)]["cf:1.11"]
         high = [(c["name"], c["msgs"]) for c in cf["high_priorities"] if c["value"][0] < c["value"][1]]
         assert cfo._real_failures(nc, high) == [], f"{nc.name}: {high}"
 

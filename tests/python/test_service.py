@@ -357,6 +357,9 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
     for h in leads:
         assert f'href="c255_20260314T0000Z_{h:03d}h.nc"' in page, h
     assert_same_products(svc.out_files(), ref)
+    # The ledger record comes first, the counter just after it.
+    wait_for(lambda: svc.metric("leeward_steps_published_total", feed="demo", state="complete") >= 4,
+             30, "the publication counted")
     assert svc.metric("leeward_steps_published_total", feed="demo", state="complete") == 4
     assert svc.metric("leeward_publish_latency_seconds_count", feed="demo") == 4
     assert svc.metric("leeward_last_success_timestamp_seconds", feed="demo") > 0
@@ -487,6 +490,9 @@ def test_bad_input_and_a_full_or_read_only_disk_keep_the_service_up(tmp_path):
         # Room again: the next retry publishes it.
         assert mount("-o", "remount,rw,size=64m", str(out))
         wait_for(lambda: len(svc.published()) == 1, 60, "published once there is room")
+        # The ledger record comes first, the counter just after it.
+        wait_for(lambda: svc.metric("leeward_steps_published_total", feed="demo", state="complete") >= 1,
+                 30, "the publication counted")
         assert svc.metric("leeward_steps_published_total", feed="demo", state="complete") == 1
         st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(tmp_path / "state")],
                             capture_output=True, text=True, timeout=30).stdout
@@ -645,6 +651,9 @@ def test_retention_removes_old_cycles_and_timeout_publishes_partial(tmp_path):
     deliver_renamed(f[0].read_bytes(), tmp_path / "in" / f[0].name)
     wait_for(lambda: len(svc.published()) == 1, 60, "partial step at the timeout")
     assert svc.published()[0]["partial"] is True
+    # The ledger record comes first, the counter just after it.
+    wait_for(lambda: svc.metric("leeward_steps_published_total", feed="demo", state="partial") >= 1,
+             30, "the publication counted")
     assert svc.metric("leeward_steps_published_total", feed="demo", state="partial") == 1
     # With the marker, the next step goes at once.
     deliver_renamed(f[1].read_bytes(), tmp_path / "in" / f[1].name)

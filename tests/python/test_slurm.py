@@ -168,7 +168,7 @@ def test_steps_run_as_slurm_jobs_are_published_once_and_identical_to_local(tmp_p
     # The +12 h step came last: the +18 h file had its 6-hour thickness change
     # added afterwards, exactly as the local executor adds it.
     late = [p for p in svc.out_files() if p.name.endswith("_018h.nc")][0]
-    assert "thick_chg_06h" in data_variables(late)
+    assert "thick_chg_06h_1000_500" in data_variables(late)
     no_stray_files(tmp_path / "batch")
     assert svc.metric("leeward_scheduler_up") == 1
     assert svc.metric("leeward_scheduler_jobs_submitted_total") == 4
