@@ -665,6 +665,7 @@ pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32],
         Ok(rows) => {
             println!();
             print!("{}", crate::demo::play::render(&rows, &dir));
+            print!("{}", crate::demo::play::render_tracks(&dir));
             let published = rows.iter().filter(|r| r.published.is_some()).count();
             println!(
                 "\n{published} of {} step(s) published in {:.1} s.",
@@ -677,6 +678,9 @@ pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32],
                 dir.display()
             );
             println!("  quicklook images        the .png files beside each product");
+            println!(
+                "  cyclone tracks          the *_cyclones.nc and *_cyclones.geojson files of each cycle"
+            );
             println!(
                 "  the service's state     {me} status --state-dir {}/state",
                 dir.display()

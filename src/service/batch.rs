@@ -773,6 +773,41 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>) -> Taken {
             warn!(file = %u.target.display(), error = %e, "manifest of an updated product not revised");
         }
     }
+    // The job could not see the step published: the cycle's cyclone tracks are
+    // made here, from the published files, still under the lock.
+    if spec.config.products.cyclones {
+        if let Some(key) = spec.key() {
+            let gid = crate::pipeline::grid_id(&key.grid_key);
+            let run = crate::changes::Run {
+                out_dir: &spec.store,
+                centre: key.centre,
+                grid_id: &gid,
+                member: key.member,
+                reference_time: key.reference_time,
+                valid_time: key.valid_time,
+                stage: None,
+            };
+            // The grid, for the coastlines of the tracks' quicklook.
+            let grid = crate::ingest::grid::parse_grid(&key.grid_key)
+                .ok()
+                .map(|(g, _)| g);
+            let written = crate::cyclones::cycle::update(
+                &run,
+                &product.target,
+                &spec.config.cyclones,
+                &spec.config.quicklook,
+                grid.as_ref(),
+            );
+            // The page was written with the manifest, before the tracks.
+            if !written.is_empty() {
+                if let Some(dir) = product.target.parent() {
+                    if let Err(e) = crate::output::page::refresh(dir) {
+                        warn!(file = %dir.display(), error = %e, "cycle page not written");
+                    }
+                }
+            }
+        }
+    }
     let latency =
         (chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - spec.last_input).max(0.0);
     Taken::Published {

@@ -242,7 +242,15 @@ class Reader(threading.Thread):
                 if not p.is_file():
                     continue
                 try:
-                    if p.suffix == ".nc":
+                    if p.suffix == ".nc" and "_cyclones" in p.name:
+                        # A cycle's cyclone tracks, rewritten with every step (CF trajectories).
+                        with netCDF4.Dataset(p) as ds:
+                            ds.variables["row_size"][:]
+                        self.opened += 1
+                    elif p.suffix == ".geojson":
+                        assert json.loads(p.read_text())["type"] == "FeatureCollection"
+                        self.opened += 1
+                    elif p.suffix == ".nc":
                         with netCDF4.Dataset(p) as ds:
                             ds.variables["zeta"][0, 0, 0, 0]
                         self.opened += 1
@@ -348,10 +356,11 @@ def test_a_cycle_fed_slowly_is_published_once_complete_and_never_seen_partial(tm
                               for n in ("bud_unconverged", "bud_dpvdt_unconverged"))
             assert m.get("budget_not_converged") == flagged, (lead, m.get("budget_not_converged"))
     # The output tree: <out>/<feed>/<cycle>/, product and manifest side by side, and the
-    # cycle's page, which links every step's product.
+    # cycle's cyclone tracks and its page, which links every step's product.
     cycle_dir = tmp_path / "out" / "demo" / "20260314T0000Z"
     assert sorted(p.name for p in cycle_dir.iterdir()) == sorted(
         [f"c255_20260314T0000Z_{h:03d}h.{x}" for h in leads for x in ("nc", "json")]
+        + [f"c255_20260314T0000Z_cyclones.{x}" for x in ("nc", "geojson")]
         + ["c255_20260314T0000Z.html"])
     page = (cycle_dir / "c255_20260314T0000Z.html").read_text()
     for h in leads:
@@ -414,7 +423,7 @@ def test_kill_9_at_random_moments_loses_nothing_and_publishes_nothing_twice(tmp_
             kills += 1
             # While it is down no partial product is visible (the cycle page, too, is
             # written under a hidden name and renamed into place).
-            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json", ".html")
+            assert all(p.name.startswith(".") or p.suffix in (".nc", ".json", ".geojson", ".html")
                        for p in svc.out_files())
             svc.start()
     wait_for(lambda: len({step_key(r) for r in svc.published()}) == 6, DEADLINE_S,
