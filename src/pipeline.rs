@@ -276,6 +276,9 @@ struct Inventory {
     mslp: Option<FieldRef>,
     /// Orography and how to turn it into metres.
     orography: Option<(FieldRef, f64)>,
+    /// Levels (Pa key) whose geopotential height is geopotential (0/3/4) to be divided by
+    /// standard gravity: levels with geopotential and no geopotential height.
+    geopotential: Vec<i64>,
 }
 
 fn pa_key(p: f64) -> i64 {
@@ -284,12 +287,16 @@ fn pa_key(p: f64) -> i64 {
 
 fn inventory(step: &Step, inputs: &[InputFile], issues: &mut Vec<Issue>) -> Inventory {
     let mut inv = Inventory::default();
+    let mut geopotential: BTreeMap<i64, FieldRef> = BTreeMap::new();
     for fr in &step.fields {
         let e = &fr.entry;
         let Some(q) = Quantity::from_wmo(e.discipline, e.category, e.number) else {
             continue;
         };
         match (e.level.kind, e.level.value) {
+            (surface::ISOBARIC, Some(p)) if p > 0.0 && q == Quantity::Geopotential => {
+                geopotential.entry(pa_key(p)).or_insert_with(|| fr.clone());
+            }
             (surface::ISOBARIC, Some(p)) if p > 0.0 => {
                 let k = (q, pa_key(p));
                 match inv.isobaric.entry(k) {
@@ -327,6 +334,16 @@ fn inventory(step: &Step, inputs: &[InputFile], issues: &mut Vec<Issue>) -> Inve
                 inv.mslp.get_or_insert(fr.clone());
             }
             _ => {}
+        }
+    }
+    // Geopotential stands in for geopotential height where a level has no height:
+    // z = Phi / g0 (WMO-No. 306 code table 4.2, 0/3/4 and 0/3/5; standard gravity).
+    for (p, fr) in geopotential {
+        if let std::collections::btree_map::Entry::Vacant(slot) =
+            inv.isobaric.entry((Quantity::GeopotentialHeight, p))
+        {
+            slot.insert(fr);
+            inv.geopotential.push(p);
         }
     }
     inv
@@ -577,6 +594,11 @@ pub fn run_step(
     }
     let t_decode = Instant::now();
     let mut dec = decode_all(wanted, inputs, &scan, &mut issues);
+    for p in &inv.geopotential {
+        if let Some(z) = dec.get_mut(&Want::Iso(Quantity::GeopotentialHeight, *p)) {
+            z.mapv_inplace(|phi| (f64::from(phi) / G0) as f32);
+        }
+    }
     let terrain_m: Option<Array2<f32>> = terrain_outline
         .then(|| {
             let to_m = inv.orography.as_ref().map_or(1.0, |o| o.1) as f32;
@@ -631,20 +653,12 @@ pub fn run_step(
         }
     } else if let Some(oro) = dec.remove(&Want::Orography) {
         let scale = inv.orography.as_ref().map(|o| o.1).unwrap_or(1.0);
-        let mut any = false;
-        for (k, lk) in levels.iter().enumerate() {
-            if let Some(z) = dec.get(&Want::Iso(Quantity::GeopotentialHeight, *lk)) {
-                any = true;
-                let mut m = Array2::from_elem((ny, nx), false);
-                ndarray::Zip::from(&mut m)
-                    .and(z)
-                    .and(&oro)
-                    .for_each(|m, &z, &o| {
-                        *m = z.is_finite() && o.is_finite() && f64::from(z) < f64::from(o) * scale;
-                    });
-                below[k] = Some(m);
-            }
-        }
+        let z_at: Vec<Option<&Array2<f32>>> = levels
+            .iter()
+            .map(|lk| dec.get(&Want::Iso(Quantity::GeopotentialHeight, *lk)))
+            .collect();
+        let any = z_at.iter().any(Option::is_some);
+        below = below_ground_by_heights(&p_pa, &z_at, &oro, scale);
         masking = if any {
             "levels whose geopotential height is below the orography are missing".to_string()
         } else {
@@ -1209,7 +1223,22 @@ pub fn run_step(
     }
     fields.extend(surface_products);
     if let (true, Some(z)) = (want_thick || want_isen, &z3) {
-        fields.push(sealed_copy(variables::Z, Vertical::Pressure, z));
+        let mut prod = sealed_copy(variables::Z, Vertical::Pressure, z);
+        if !inv.geopotential.is_empty() {
+            let hpa: Vec<String> = inv
+                .geopotential
+                .iter()
+                .map(|p| format!("{}", *p as f64 / 1e4))
+                .collect();
+            prod.notes.push((
+                "leeward_method",
+                format!(
+                    "geopotential (WMO 0/3/4) divided by standard gravity {G0} m s-2 at {} hPa",
+                    hpa.join(", ")
+                ),
+            ));
+        }
+        fields.push(prod);
     }
 
     // Changes in time, from the published files of earlier steps and cycles.
@@ -1614,6 +1643,56 @@ pub fn grid_suffixes(steps: &[Step]) -> Vec<Option<usize>> {
         .collect()
 }
 
+/// Below-ground masks of the levels `p` (Pa, increasing) from orography `oro` (times
+/// `scale` to metres) and the geopotential height `z_at` of the levels that have it: a
+/// level is below the ground where its height is below the orography. A level without
+/// heights takes its height linearly in ln p from the nearest levels above and below that
+/// have them; below the lowest of those it is below the ground where that level is
+/// (heights fall downward), and above the highest it is not masked.
+fn below_ground_by_heights(
+    p: &[f64],
+    z_at: &[Option<&Array2<f32>>],
+    oro: &Array2<f32>,
+    scale: f64,
+) -> Vec<Option<Array2<bool>>> {
+    let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
+    let have: Vec<usize> = (0..p.len()).filter(|&k| z_at[k].is_some()).collect();
+    let under = |z: f64, o: f32| z.is_finite() && o.is_finite() && z < f64::from(o) * scale;
+    (0..p.len())
+        .map(|k| {
+            if let Some(z) = z_at[k] {
+                return Some(
+                    ndarray::Zip::from(z)
+                        .and(oro)
+                        .map_collect(|&z, &o| under(f64::from(z), o)),
+                );
+            }
+            let above = have.iter().rev().copied().find(|&a| a < k);
+            let below = have.iter().copied().find(|&b| b > k);
+            match (above, below) {
+                (Some(a), Some(b)) => {
+                    let w = (lnp[k] - lnp[b]) / (lnp[a] - lnp[b]);
+                    let (za, zb) = (z_at[a]?, z_at[b]?);
+                    Some(
+                        ndarray::Zip::from(za)
+                            .and(zb)
+                            .and(oro)
+                            .map_collect(|&za, &zb, &o| {
+                                under(f64::from(zb) + w * f64::from(za - zb), o)
+                            }),
+                    )
+                }
+                (Some(a), None) => Some(
+                    ndarray::Zip::from(z_at[a]?)
+                        .and(oro)
+                        .map_collect(|&z, &o| under(f64::from(z), o)),
+                ),
+                _ => None,
+            }
+        })
+        .collect()
+}
+
 /// d f / d p of every column of `f` (levels, rows, columns), from three-point
 /// differences in ln p (see `stability::column_derivative`): df/dp = (1/p) df/d ln p.
 fn vertical_derivative_at(
@@ -1643,17 +1722,21 @@ fn vertical_derivative_at(
             ) / p[k];
         }
     }
-    // Otherwise the derivative at k looks at most two levels either side: the
-    // same column rule on a window of the column gives the same value.
-    let (lo, hi) = (k.saturating_sub(2), (k + 3).min(nz));
-    let mut col = [0.0f64; 5];
-    let mut d = [0.0f64; 5];
-    for (n, kk) in (lo..hi).enumerate() {
-        col[n] = f64::from(f[(kk, j, i)]);
+    // Otherwise the column rule on the whole column: the nearest valid levels may lie
+    // beyond levels that lack this quantity.
+    let mut col = [0.0f64; 128];
+    let mut d = [0.0f64; 128];
+    if nz > col.len() {
+        let c: Vec<f64> = (0..nz).map(|kk| f64::from(f[(kk, j, i)])).collect();
+        let mut dv = vec![0.0; nz];
+        stability::column_derivative(&c, lnp, &mut dv);
+        return dv[k] / p[k];
     }
-    let w = hi - lo;
-    stability::column_derivative(&col[..w], &lnp[lo..hi], &mut d[..w]);
-    d[k - lo] / p[k]
+    for (kk, c) in col.iter_mut().enumerate().take(nz) {
+        *c = f64::from(f[(kk, j, i)]);
+    }
+    stability::column_derivative(&col[..nz], lnp, &mut d[..nz]);
+    d[k] / p[k]
 }
 
 /// A stable fingerprint of a grid definition (FNV-1a, 64 bits, hex): the same

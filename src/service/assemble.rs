@@ -16,7 +16,7 @@ use chrono::NaiveDateTime;
 use super::ledger::StepTag;
 use super::settings::{Completeness, FeedRule, Order};
 use crate::ingest::catalogue::FieldEntry;
-use crate::ingest::params::{parameter, surface, Param};
+use crate::ingest::params::{parameter, surface, Param, Quantity};
 use crate::pipeline::StepKey;
 
 /// What one input file gives to one step.
@@ -76,6 +76,14 @@ pub enum Phase {
         /// Incomplete at the timeout.
         partial: bool,
     },
+}
+
+/// Has the quantity `q` arrived at the level? Geopotential (0/3/4) counts as geopotential
+/// height (0/3/5): the pipeline divides it by standard gravity.
+fn arrived(p: &Pending, q: Param, level: i64) -> bool {
+    p.have.contains(&(q, level))
+        || (q == Quantity::GeopotentialHeight.param()
+            && p.have.contains(&(Quantity::Geopotential.param(), level)))
 }
 
 /// A step being assembled.
@@ -181,11 +189,10 @@ impl Assembly {
     /// Is the step complete by its feed's rule?
     pub fn complete(&self, p: &Pending, rule: &FeedRule) -> bool {
         match rule.feed.complete {
-            Completeness::Fields => rule.levels_pa().iter().all(|&pa| {
-                rule.required
-                    .iter()
-                    .all(|q| p.have.contains(&(*q, level_key(pa))))
-            }),
+            Completeness::Fields => rule
+                .levels_pa()
+                .iter()
+                .all(|&pa| rule.required.iter().all(|q| arrived(p, *q, level_key(pa)))),
             Completeness::Files => p.files.len() >= rule.feed.files_per_step as usize,
             Completeness::Marker => {
                 self.markers
@@ -206,7 +213,7 @@ impl Assembly {
                 let mut out = Vec::new();
                 for pa in rule.levels_pa() {
                     for q in &rule.required {
-                        if !p.have.contains(&(*q, level_key(pa))) {
+                        if !arrived(p, *q, level_key(pa)) {
                             let name =
                                 parameter(*q).map_or_else(|| q.to_string(), |e| e.name.to_string());
                             out.push(format!("{name} at {} hPa (not arrived)", pa / 100.0));
@@ -470,6 +477,41 @@ mod tests {
             digest(bytes, &[(8, 5)]),
             crate::ingest::bytes::fnv1a_hex(b"")
         );
+    }
+
+    #[test]
+    fn geopotential_completes_a_step_that_needs_heights() {
+        // Geopotential (0/3/4) instead of geopotential height (0/3/5): the step is
+        // complete, and nothing is said not to have arrived.
+        let r = rule("name = \"m\"\nlevels_hpa = [500.0]\n");
+        let mut a = Assembly::default();
+        let (tag, key) = step(0, 6);
+        let lv = level_key(500.0 * 100.0);
+        let mut fields: Vec<(Param, i64)> = [
+            Quantity::Temperature,
+            Quantity::WindU,
+            Quantity::WindV,
+            Quantity::Geopotential,
+        ]
+        .iter()
+        .map(|q| (q.param(), lv))
+        .collect();
+        a.add(
+            tag.clone(),
+            key.clone(),
+            contribution("a"),
+            &fields,
+            0.0,
+            false,
+        );
+        assert!(a.complete(&a.steps[&tag], &r));
+        assert!(a.not_arrived(&a.steps[&tag], &r).is_empty());
+        // Without it, heights are still awaited.
+        fields.pop();
+        let (tag2, key2) = step(0, 12);
+        a.add(tag2.clone(), key2, contribution("b"), &fields, 0.0, false);
+        assert!(!a.complete(&a.steps[&tag2], &r));
+        assert_eq!(a.not_arrived(&a.steps[&tag2], &r).len(), 1);
     }
 
     #[test]
