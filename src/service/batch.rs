@@ -696,38 +696,8 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
     }
     // The job could not see the step published: the cycle's cyclone tracks are
     // made here, from the published files, still under the lock.
-    if spec.config.products.cyclones {
-        if let Some(key) = spec.key() {
-            let gid = crate::pipeline::grid_id(&key.grid_key);
-            let run = crate::changes::Run {
-                out_dir: &spec.store,
-                centre: key.centre,
-                grid_id: &gid,
-                member: key.member,
-                reference_time: key.reference_time,
-                valid_time: key.valid_time,
-                stage: None,
-            };
-            // The grid, for the coastlines of the tracks' quicklook.
-            let grid = crate::ingest::grid::parse_grid(&key.grid_key)
-                .ok()
-                .map(|(g, _)| g);
-            let written = crate::cyclones::cycle::update(
-                &run,
-                &product.target,
-                &spec.config.cyclones,
-                &spec.config.quicklook,
-                grid.as_ref(),
-            );
-            // The page was written with the manifest, before the tracks.
-            if !written.is_empty() {
-                if let Some(dir) = product.target.parent() {
-                    if let Err(e) = crate::output::page::refresh(dir) {
-                        warn!(file = %dir.display(), error = %e, "cycle page not written");
-                    }
-                }
-            }
-        }
+    if let Some(key) = spec.key() {
+        cycle_tracks(&spec.config, &spec.store, &key, &product.target);
     }
     let latency =
         (chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - spec.last_input).max(0.0);
@@ -737,6 +707,39 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
         latency,
         report: Box::new(report),
         result: Box::new(result),
+    }
+}
+
+/// The cycle's cyclone tracks, made again from every published step once a
+/// step is published (its staged files could not see the others), and the
+/// cycle page written again to show them. Called under the output lock.
+pub fn cycle_tracks(cfg: &Config, store: &Path, key: &StepKey, target: &Path) {
+    if !cfg.products.cyclones {
+        return;
+    }
+    let gid = crate::pipeline::grid_id(&key.grid_key);
+    let run = crate::changes::Run {
+        out_dir: store,
+        centre: key.centre,
+        grid_id: &gid,
+        member: key.member,
+        reference_time: key.reference_time,
+        valid_time: key.valid_time,
+        stage: None,
+    };
+    // The grid, for the coastlines of the tracks' quicklook.
+    let grid = crate::ingest::grid::parse_grid(&key.grid_key)
+        .ok()
+        .map(|(g, _)| g);
+    let written =
+        crate::cyclones::cycle::update(&run, target, &cfg.cyclones, &cfg.quicklook, grid.as_ref());
+    // The page was written with the manifest, before the tracks.
+    if !written.is_empty() {
+        if let Some(dir) = target.parent() {
+            if let Err(e) = crate::output::page::refresh(dir) {
+                warn!(file = %dir.display(), error = %e, "cycle page not written");
+            }
+        }
     }
 }
 

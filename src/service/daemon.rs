@@ -319,6 +319,8 @@ fn run_job(job: &Job) -> JobOutcome {
         let made = staged_files(rep, &job.tag, &stage, &job.store, &job.dir)?;
         let intent = commit::stage_manifests(&made, rep, &facts)?;
         commit::publish(&job.journal, &intent)?;
+        // Staged, the step could not see the others: the tracks once published.
+        batch::cycle_tracks(&job.cfg, &job.store, &job.key, &made.product.target);
         let latency = (unix_now() - facts.last_input).max(0.0);
         *written
             .lock()
