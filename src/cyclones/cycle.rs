@@ -125,56 +125,129 @@ pub fn update(
     look: &crate::config::Quicklooks,
     grid: Option<&Grid>,
 ) -> Vec<PathBuf> {
-    let (set, search) = settings(cfg);
-    let files = published_where(
+    let files: Vec<PathBuf> = cycle_files(run).into_iter().map(|p| p.path).collect();
+    let dir = this_file.parent().unwrap_or(Path::new("."));
+    let base = base_name(this_file);
+    match from_files(run, &files, cfg) {
+        Some(cycle) => write_all(&cycle, dir, &base, look, grid)
+            .into_iter()
+            .map(|(p, _)| p)
+            .collect(),
+        None => Vec::new(),
+    }
+}
+
+/// A step being published (`product`: its staged file and its place) with
+/// the copies of published files it revises (`revised`, the same): make the
+/// cycle's tracks as they will be once it is published, into `stage`. The
+/// steps are read from the store, except those the publication replaces,
+/// which are read from their staged copies, so the tracks are renamed into
+/// place with the step as one recorded act and a stop cannot leave them
+/// behind. Returns (staged file, its place) for each file written.
+pub fn staged(
+    run: &Run<'_>,
+    product: (&Path, &Path),
+    revised: &[(&Path, &Path)],
+    stage: &Path,
+    cfg: &crate::config::Cyclones,
+    look: &crate::config::Quicklooks,
+    grid: Option<&Grid>,
+) -> Vec<(PathBuf, PathBuf)> {
+    let (staged_product, target) = product;
+    let mut files: Vec<PathBuf> = cycle_files(run)
+        .into_iter()
+        .filter(|p| p.path != target)
+        .map(|p| {
+            revised
+                .iter()
+                .find(|(_, t)| *t == p.path)
+                .map_or(p.path, |(s, _)| s.to_path_buf())
+        })
+        .collect();
+    files.push(staged_product.to_path_buf());
+    let Some(cycle) = from_files(run, &files, cfg) else {
+        return Vec::new();
+    };
+    let dir = stage.join("tracks");
+    if let Err(e) = std::fs::create_dir_all(&dir) {
+        warn!(file = %dir.display(), error = %e, "cyclone tracks not written");
+        return Vec::new();
+    }
+    let into = target.parent().unwrap_or(Path::new("."));
+    write_all(&cycle, &dir, &base_name(target), look, grid)
+        .into_iter()
+        .map(|(p, name)| (p, into.join(name)))
+        .collect()
+}
+
+/// The steps of `run`'s cycle published in its store.
+fn cycle_files(run: &Run<'_>) -> Vec<crate::output::store::Published> {
+    published_where(
         run.out_dir,
         run.centre,
         run.grid_id,
         run.member,
         run.reference_time,
         |r, _| r == run.reference_time,
-    );
+    )
+}
+
+/// The tracks of the cycle whose step files are `files`; `None` when no step
+/// could be read.
+fn from_files(run: &Run<'_>, files: &[PathBuf], cfg: &crate::config::Cyclones) -> Option<Cycle> {
+    let (set, search) = settings(cfg);
     let mut steps = Vec::with_capacity(files.len());
-    for p in &files {
-        match step_centres_cached(&p.path, &set) {
+    for p in files {
+        match step_centres_cached(p, &set) {
             Ok(s) => steps.push(s),
             Err(e) => {
-                warn!(file = %p.path.display(), reason = %e, "step passed over by the cyclone tracks")
+                warn!(file = %p.display(), reason = %e, "step passed over by the cyclone tracks")
             }
         }
     }
-    let Some(cycle) = build(steps, set, search) else {
-        return Vec::new();
-    };
-    let dir = this_file.parent().unwrap_or(Path::new("."));
-    let base = base_name(this_file);
-    let mut written = Vec::new();
-    let nc = dir.join(format!("{base}.nc"));
-    match super::write::netcdf(&nc, &cycle) {
-        Ok(()) => written.push(nc),
-        Err(e) => warn!(file = %nc.display(), error = %e, "cyclone tracks not written"),
-    }
-    let gj = dir.join(format!("{base}.geojson"));
-    let text = super::write::geojson(&cycle).to_string();
-    match crate::output::write_file_atomic(&gj, text.as_bytes()) {
-        Ok(()) => written.push(gj),
-        Err(e) => warn!(file = %gj.display(), error = %e, "cyclone tracks not written"),
-    }
-    if look.enabled {
-        let png = dir.join(format!("{base}.png"));
-        match quicklook(&cycle, look, grid)
-            .and_then(|b| crate::output::write_file_atomic(&png, &b).map_err(|e| e.to_string()))
-        {
-            Ok(()) => written.push(png),
-            Err(e) => warn!(file = %png.display(), error = %e, "cyclone quicklook not written"),
-        }
-    }
+    let cycle = build(steps, set, search)?;
     info!(
         cycle = %run.reference_time.format("%Y-%m-%dT%H:%MZ"),
         steps = cycle.steps.len(),
         tracks = cycle.tracks.len(),
-        "cyclone tracks written"
+        "cyclone tracks made"
     );
+    Some(cycle)
+}
+
+/// Write a cycle's tracks into `dir` as `<base>.nc`, `<base>.geojson` and,
+/// with quicklooks on, `<base>.png`, each atomically. Returns (path, file
+/// name) of each file written; one that cannot be written is said so.
+fn write_all(
+    cycle: &Cycle,
+    dir: &Path,
+    base: &str,
+    look: &crate::config::Quicklooks,
+    grid: Option<&Grid>,
+) -> Vec<(PathBuf, String)> {
+    let mut written = Vec::new();
+    let nc = format!("{base}.nc");
+    match super::write::netcdf(&dir.join(&nc), cycle) {
+        Ok(()) => written.push((dir.join(&nc), nc)),
+        Err(e) => warn!(file = %dir.join(&nc).display(), error = %e, "cyclone tracks not written"),
+    }
+    let gj = format!("{base}.geojson");
+    let text = super::write::geojson(cycle).to_string();
+    match crate::output::write_file_atomic(&dir.join(&gj), text.as_bytes()) {
+        Ok(()) => written.push((dir.join(&gj), gj)),
+        Err(e) => warn!(file = %dir.join(&gj).display(), error = %e, "cyclone tracks not written"),
+    }
+    if look.enabled {
+        let png = format!("{base}.png");
+        match quicklook(cycle, look, grid).and_then(|b| {
+            crate::output::write_file_atomic(&dir.join(&png), &b).map_err(|e| e.to_string())
+        }) {
+            Ok(()) => written.push((dir.join(&png), png)),
+            Err(e) => {
+                warn!(file = %dir.join(&png).display(), error = %e, "cyclone quicklook not written")
+            }
+        }
+    }
     written
 }
 

@@ -680,24 +680,25 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
     let Some(facts) = spec.facts() else {
         return Taken::Unusable("the job spec's times do not parse".into());
     };
-    let made = commit::Made {
+    let mut made = commit::Made {
         step: &spec.tag,
         stage,
         product: product.clone(),
         images: images.clone(),
         updated: updated.clone(),
+        tracks: Vec::new(),
     };
+    // The job could not see the other steps published: the cycle's cyclone
+    // tracks are made here, under the lock, and published with the step.
+    if let Some(key) = spec.key() {
+        stage_tracks(&spec.config, &spec.store, &key, &mut made);
+    }
     let intent = match commit::stage_manifests(&made, &report, &facts) {
         Ok(i) => i,
         Err(e) => return Taken::Unusable(e),
     };
     if let Err(e) = commit::publish(journal, &intent) {
         return Taken::Unusable(e);
-    }
-    // The job could not see the step published: the cycle's cyclone tracks are
-    // made here, from the published files, still under the lock.
-    if let Some(key) = spec.key() {
-        cycle_tracks(&spec.config, &spec.store, &key, &product.target);
     }
     let latency =
         (chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - spec.last_input).max(0.0);
@@ -710,10 +711,13 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
     }
 }
 
-/// The cycle's cyclone tracks, made again from every published step once a
-/// step is published (its staged files could not see the others), and the
-/// cycle page written again to show them. Called under the output lock.
-pub fn cycle_tracks(cfg: &Config, store: &Path, key: &StepKey, target: &Path) {
+/// The cycle's cyclone tracks as they will be once `made` is published, made
+/// from the published steps and this publication's staged files and added to
+/// it: the tracks are renamed into place with the step, in the recorded
+/// publication, so a stop at any point of it leaves them as a run without the
+/// stop would. Called under the feed's publishing lock (the steps read stay
+/// as read). A file that cannot be made is said so and left out.
+pub fn stage_tracks(cfg: &Config, store: &Path, key: &StepKey, made: &mut commit::Made<'_>) {
     if !cfg.products.cyclones {
         return;
     }
@@ -731,14 +735,24 @@ pub fn cycle_tracks(cfg: &Config, store: &Path, key: &StepKey, target: &Path) {
     let grid = crate::ingest::grid::parse_grid(&key.grid_key)
         .ok()
         .map(|(g, _)| g);
-    let written =
-        crate::cyclones::cycle::update(&run, target, &cfg.cyclones, &cfg.quicklook, grid.as_ref());
-    // The page was written with the manifest, before the tracks.
-    if !written.is_empty() {
-        if let Some(dir) = target.parent() {
-            if let Err(e) = crate::output::page::refresh(dir) {
-                warn!(file = %dir.display(), error = %e, "cycle page not written");
-            }
+    let revised: Vec<(&Path, &Path)> = made
+        .updated
+        .iter()
+        .map(|u| (u.staged.as_path(), u.target.as_path()))
+        .collect();
+    let written = crate::cyclones::cycle::staged(
+        &run,
+        (&made.product.staged, &made.product.target),
+        &revised,
+        made.stage,
+        &cfg.cyclones,
+        &cfg.quicklook,
+        grid.as_ref(),
+    );
+    for (staged, target) in written {
+        match StagedFile::read(&staged, target) {
+            Ok(f) => made.tracks.push(f),
+            Err(e) => warn!(file = %staged.display(), error = %e, "cyclone tracks not staged"),
         }
     }
 }

@@ -2,8 +2,9 @@
 //! way through.
 //!
 //! A step may change several published files: its own product and images,
-//! and earlier or later steps' files to which it adds changes in time or
-//! its PV budget; each of those has a manifest. Everything is first written
+//! earlier or later steps' files to which it adds changes in time or its
+//! PV budget (each of those has a manifest), and the cycle's cyclone tracks,
+//! made from the published steps and this step's staged files. Everything is first written
 //! into a staging directory on the output tree's file system (a local
 //! worker's `<out>/<feed>/.publish/<step>_<ms>/`, or a batch job's staging
 //! directory): the files, then the manifests that will describe them. Then:
@@ -150,6 +151,8 @@ pub struct Made<'a> {
     pub images: Vec<StagedFile>,
     /// Copies of published files with this step's additions.
     pub updated: Vec<StagedFile>,
+    /// The cycle's cyclone tracks with this step.
+    pub tracks: Vec<StagedFile>,
 }
 
 /// Stage the manifests of a made step (its own, and the revised ones of the
@@ -176,6 +179,7 @@ pub fn stage_manifests(
     }
     let mut moves: Vec<Move> = std::iter::once(&made.product)
         .chain(&made.images)
+        .chain(&made.tracks)
         .chain(updated.iter().copied())
         .map(StagedFile::as_move)
         .collect();

@@ -316,11 +316,12 @@ fn run_job(job: &Job) -> JobOutcome {
     );
     let written: Mutex<Option<(PathBuf, PathBuf, f64)>> = Mutex::new(None);
     let hook = |rep: &StepReport| -> Result<(), String> {
-        let made = staged_files(rep, &job.tag, &stage, &job.store, &job.dir)?;
+        let mut made = staged_files(rep, &job.tag, &stage, &job.store, &job.dir)?;
+        // Staged, the step could not see the others: the cycle's tracks are
+        // made under the lock and published with it.
+        batch::stage_tracks(&job.cfg, &job.store, &job.key, &mut made);
         let intent = commit::stage_manifests(&made, rep, &facts)?;
         commit::publish(&job.journal, &intent)?;
-        // Staged, the step could not see the others: the tracks once published.
-        batch::cycle_tracks(&job.cfg, &job.store, &job.key, &made.product.target);
         let latency = (unix_now() - facts.last_input).max(0.0);
         *written
             .lock()
@@ -399,6 +400,7 @@ fn staged_files<'a>(
         product,
         images,
         updated,
+        tracks: Vec::new(),
     })
 }
 

@@ -73,6 +73,7 @@ def snapshot(out: Path) -> dict:
     """Files (whole) and manifest revisions of an output tree."""
     files = {p.name: describe(p) for p in sorted(out.rglob("*.nc"))}
     images = {p.name: p.read_bytes() for p in sorted(out.rglob("*.png"))}
+    images.update({p.name: p.read_bytes() for p in sorted(out.rglob("*.geojson"))})
     revisions = {p.name: json.loads(p.read_text())["revision"] for p in sorted(out.rglob("*.json"))}
     return {"files": files, "images": images, "revisions": revisions}
 
@@ -105,8 +106,12 @@ def prepared(tmp_path_factory):
     assert len(intent) == 1
     moves = intent[0]["moves"]
     targets = [Path(m["target"]).name for m in moves]
-    # Its own file and image, the two later files, their manifests, its own manifest last.
-    assert targets[-1].endswith("_006h.json") and len(moves) == 7, targets
+    # Its own file and image, the cycle's cyclone tracks (NetCDF, GeoJSON and
+    # map), the two later files, their manifests, its own manifest last: the
+    # tracks are published with the step, so a kill cannot leave them behind.
+    tracks = [t for t in targets if "_cyclones." in t]
+    assert sorted(Path(t).suffix for t in tracks) == [".geojson", ".nc", ".png"], targets
+    assert targets[-1].endswith("_006h.json") and len(moves) == 10, targets
     return dict(root=root, saved=saved, files=files, moves=moves,
                 reference=snapshot(root / "out"))
 
