@@ -22,6 +22,7 @@
 pub mod changes;
 pub mod cli;
 pub mod config;
+pub mod cyclones;
 pub mod demo;
 pub mod diagnostics;
 pub mod escape;

@@ -66,6 +66,15 @@ pub fn fnv1a_hex(bytes: &[u8]) -> String {
     h.hex()
 }
 
+/// [`fnv1a_hex`] of the concatenation of `parts`, without copying them.
+pub fn fnv1a_hex_parts(parts: &[&[u8]]) -> String {
+    let mut h = Fnv1a::new();
+    for part in parts {
+        h.update(part);
+    }
+    h.hex()
+}
+
 /// FNV-1a 64 fed in pieces: the same result as [`fnv1a_hex`] of the pieces joined.
 #[derive(Debug, Clone, Copy)]
 pub struct Fnv1a(u64);

@@ -139,20 +139,30 @@ pub fn read_ranges(
 
 /// FNV-1a 64 of a whole open file (its first `size` octets), read in pieces.
 pub fn checksum_file(file: &File, size: u64) -> std::io::Result<String> {
+    checksum_ranges(file, &[(0, size)])
+}
+
+/// FNV-1a 64 of the byte ranges `(offset, length)` of an open file, one after
+/// the other, read in pieces of 1 MB: the same as the checksum of the ranges
+/// joined, without holding them.
+pub fn checksum_ranges(file: &File, ranges: &[(u64, u64)]) -> std::io::Result<String> {
     let mut h = super::bytes::Fnv1a::new();
-    let mut buf = vec![0u8; 1 << 20];
-    let mut off = 0u64;
-    while off < size {
-        let want = (size - off).min(buf.len() as u64) as usize;
-        let n = file.read_at(&mut buf[..want], off)?;
-        if n == 0 {
-            return Err(std::io::Error::new(
-                std::io::ErrorKind::UnexpectedEof,
-                format!("the file ends at {off} bytes, {size} were there when it was opened"),
-            ));
+    let mut buf = vec![0u8; (1 << 20).min(ranges.iter().map(|r| r.1).max().unwrap_or(0) as usize)];
+    for &(start, len) in ranges {
+        let end = start.saturating_add(len);
+        let mut off = start;
+        while off < end {
+            let want = (end - off).min(buf.len() as u64) as usize;
+            let n = file.read_at(&mut buf[..want], off)?;
+            if n == 0 {
+                return Err(std::io::Error::new(
+                    std::io::ErrorKind::UnexpectedEof,
+                    format!("the file ends at {off} bytes, {end} were there when it was opened"),
+                ));
+            }
+            h.update(&buf[..n]);
+            off += n as u64;
         }
-        h.update(&buf[..n]);
-        off += n as u64;
     }
     Ok(h.hex())
 }
@@ -252,6 +262,32 @@ impl Octets for FileOctets<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn checksum_of_ranges_is_that_of_the_ranges_joined() {
+        let p = tmp("ranges");
+        let data: Vec<u8> = (0..3_000_000u32).map(|i| (i * 7 % 251) as u8).collect();
+        std::fs::write(&p, &data).unwrap();
+        let f = File::open(&p).unwrap();
+        let ranges = [(5u64, 1_500_000u64), (2_000_000, 10), (1, 3)];
+        let mut joined = Vec::new();
+        for &(o, n) in &ranges {
+            joined.extend_from_slice(&data[o as usize..(o + n) as usize]);
+        }
+        assert_eq!(
+            checksum_ranges(&f, &ranges).unwrap(),
+            super::super::bytes::fnv1a_hex(&joined)
+        );
+        assert_eq!(
+            checksum_file(&f, data.len() as u64).unwrap(),
+            super::super::bytes::fnv1a_hex(&data)
+        );
+        assert!(
+            checksum_ranges(&f, &[(2_999_990, 20)]).is_err(),
+            "past the end"
+        );
+        let _ = std::fs::remove_file(&p);
+    }
 
     fn tmp(name: &str) -> std::path::PathBuf {
         let d = std::env::temp_dir().join(format!("leeward-source-{}", std::process::id()));

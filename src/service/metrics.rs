@@ -35,8 +35,11 @@ pub struct FeedCounters {
     pub quarantined: u64,
     /// Input files catalogued.
     pub files_seen: u64,
-    /// Input files that came after their step was published.
+    /// Input files that came after their step was published and were not
+    /// used (its cycle older than catch-up, or its other inputs gone).
     pub late_files: u64,
+    /// Steps made again because input came after they were made (or while).
+    pub remade: u64,
     /// Unix time of the last publication.
     pub last_success: Option<f64>,
     /// Latency histogram counts (per bucket, not cumulative), +Inf last.
@@ -107,6 +110,9 @@ pub struct Metrics {
     pub reloads: (u64, u64),
     /// When the main loop last turned.
     pub heartbeat: Option<Instant>,
+    /// Why the state directory cannot be used, while it cannot (no new work
+    /// is taken).
+    pub state_problem: Option<String>,
     /// Unix time of start.
     pub started: f64,
     /// Steps waiting for input: what each lacks and when it is made anyway.
@@ -210,8 +216,14 @@ impl Metrics {
         family(
             "leeward_late_files_total",
             "counter",
-            "Input files that arrived after their step was published (not used; reprocess to use them).",
+            "Input files that arrived after their step was made and were not used (cycle older than catch_up_hours, or the step's other inputs gone; reprocess to use them).",
             per(&|c| vec![(String::new(), c.late_files.to_string())]),
+        );
+        family(
+            "leeward_steps_remade_total",
+            "counter",
+            "Steps made again because more input came after, or while, they were made (each a new revision of its manifest).",
+            per(&|c| vec![(String::new(), c.remade.to_string())]),
         );
         family(
             "leeward_queue_steps",
@@ -310,6 +322,12 @@ impl Metrics {
             "counter",
             "Failures to write the ledger in the state directory.",
             self.ledger_errors.to_string(),
+        );
+        family(
+            "leeward_state_dir_usable",
+            "gauge",
+            "1 while the state directory and its ledger are this service's and writable; 0 while not (no new work is taken).",
+            u8::from(self.state_problem.is_none()).to_string(),
         );
         family(
             "leeward_config_reloads_total",
@@ -423,7 +441,13 @@ fn answer(req: &[u8], metrics: &Mutex<Metrics>) -> (&'static str, &'static str, 
         ),
         ("GET", "/health") | ("GET", "/healthz") => {
             let alive = m.heartbeat.is_some_and(|h| h.elapsed() < STALL);
-            if alive {
+            if let (true, Some(why)) = (alive, &m.state_problem) {
+                (
+                    "503 Service Unavailable",
+                    "text/plain; charset=utf-8",
+                    format!("state directory unusable: {why}; no new work is taken\n"),
+                )
+            } else if alive {
                 let mut body = health_body(&m);
                 body.push_str(&waiting_lines(&m.waiting));
                 ("200 OK", "text/plain; charset=utf-8", body)
