@@ -286,6 +286,14 @@ pub fn band_step(span: f64) -> f64 {
 /// finite, not in order, too far apart, or a band width that gives no bands
 /// or more than [`MAX_BANDS`]).
 pub fn render(q: &Quicklook<'_>) -> Result<Vec<u8>, String> {
+    render_with_marks(q, &[])
+}
+
+/// [`render`] with tracks drawn over the map: each mark a line through points
+/// given as (row, column) grid indices of the field (fractions allowed), a dot
+/// at each point and a larger one at its last. A segment that jumps more than
+/// half the grid's width (across the seam of a global grid) is not drawn.
+pub fn render_with_marks(q: &Quicklook<'_>, marks: &[Vec<(f64, f64)>]) -> Result<Vec<u8>, String> {
     if let Some((name, s)) = [("lat", q.lat.dim()), ("lon", q.lon.dim())]
         .into_iter()
         .find(|(_, s)| *s != q.values.dim())
@@ -295,7 +303,7 @@ pub fn render(q: &Quicklook<'_>) -> Result<Vec<u8>, String> {
             q.values.dim()
         ));
     }
-    render_on(q, &Backdrop::new(q.lat, q.lon, &q.outline)?)
+    draw_on(q, &Backdrop::new(q.lat, q.lon, &q.outline)?, marks)
 }
 
 /// Draw `q` on a backdrop already worked out for its grid and outline (by
@@ -305,6 +313,11 @@ pub fn render(q: &Quicklook<'_>) -> Result<Vec<u8>, String> {
 ///
 /// Errors as [`render`]; a backdrop of another shape than the values is one.
 pub fn render_on(q: &Quicklook<'_>, b: &Backdrop) -> Result<Vec<u8>, String> {
+    draw_on(q, b, &[])
+}
+
+/// [`render_on`] with the marks of [`render_with_marks`].
+fn draw_on(q: &Quicklook<'_>, b: &Backdrop, marks: &[Vec<(f64, f64)>]) -> Result<Vec<u8>, String> {
     let shape = q.values.dim();
     let mut shapes = vec![("backdrop", (b.place.ny, b.place.nx))];
     if let Some(c) = &q.contour {
@@ -330,6 +343,9 @@ pub fn render_on(q: &Quicklook<'_>, b: &Backdrop) -> Result<Vec<u8>, String> {
     }
     if let Some(c) = &q.contour {
         draw_contour(&mut img, &lay, &b.place, c);
+    }
+    if !marks.is_empty() {
+        draw_marks(&mut img, &lay, &b.place, marks);
     }
     img.frame(lay.map_x, lay.map_y, lay.map_w, lay.map_h, FRAME);
     draw_colour_bar(&mut img, &lay, &q.scale);
@@ -795,6 +811,29 @@ fn draw_contour(img: &mut Canvas, lay: &Layout, place: &Placement, c: &Contour<'
     stroke_segments(&mut halo, place, &segs, 2.4);
     stroke_segments(&mut core, place, &segs, 1.3);
     blend_strokes(img, lay, &halo.strokes(), [255, 255, 255], 0.85);
+    blend_strokes(img, lay, &core.strokes(), CONTOUR_INK, 1.0);
+}
+
+/// Tracks over the map: dark lines and dots with a white halo.
+fn draw_marks(img: &mut Canvas, lay: &Layout, place: &Placement, marks: &[Vec<(f64, f64)>]) {
+    let mut halo = Mask::new(place.w, place.h);
+    let mut core = Mask::new(place.w, place.h);
+    for mark in marks {
+        for w in mark.windows(2) {
+            if (w[1].1 - w[0].1).abs() <= place.nx as f64 / 2.0 {
+                let (a, b) = (place.pixel(w[0].1, w[0].0), place.pixel(w[1].1, w[1].0));
+                halo.segment(a, b, 2.6);
+                core.segment(a, b, 1.4);
+            }
+        }
+        for (k, &(row, col)) in mark.iter().enumerate() {
+            let r = if k + 1 == mark.len() { 4.5 } else { 2.5 };
+            let c = place.pixel(col, row);
+            halo.segment(c, c, r + 1.2);
+            core.segment(c, c, r);
+        }
+    }
+    blend_strokes(img, lay, &halo.strokes(), [255, 255, 255], 0.9);
     blend_strokes(img, lay, &core.strokes(), CONTOUR_INK, 1.0);
 }
 
