@@ -420,8 +420,8 @@ struct Inventory {
 }
 
 /// True for the fields a step's products may use, as [`inventory`] sorts
-/// them: quantities leeward knows on isobaric levels, and surface pressure
-/// or orography at the ground.
+/// them: quantities leeward knows on isobaric levels, surface pressure or
+/// orography at the ground, and mean sea-level pressure.
 pub fn may_use(e: &FieldEntry) -> bool {
     let Some(q) = Quantity::from_wmo(e.discipline, e.category, e.number) else {
         return false;
@@ -436,6 +436,10 @@ pub fn may_use(e: &FieldEntry) -> bool {
                 | Quantity::TerrainHeight
                 | Quantity::Geopotential
         ),
+        // Mean sea-level pressure, for the cyclone centres and their tracks.
+        (surface::MEAN_SEA_LEVEL, _) => {
+            matches!(q, Quantity::MeanSeaLevelPressure | Quantity::Pressure)
+        }
         _ => false,
     }
 }
