@@ -253,6 +253,8 @@ pub struct StepReport {
     /// Of which changes in time and the PV budget after publishing (reading earlier
     /// files, updating later ones).
     pub changes_seconds: f64,
+    /// Of which drawing and writing the quicklook images.
+    pub images_seconds: f64,
     /// Diagnostics time by family (vorticity, stability, isobaric PV, isentropic, tropopause, layer PV).
     pub family_seconds: Vec<(&'static str, f64)>,
     /// Why nothing was written, when nothing was.
@@ -1462,7 +1464,9 @@ pub fn run_step(
                     settings: &cfg.quicklook,
                     terrain: terrain_m.as_ref().map(|t| t.view()),
                 };
+                let t_images = Instant::now();
                 rep.images = crate::output::images::write_images(&path, &products, &wanted, &look);
+                rep.images_seconds = t_images.elapsed().as_secs_f64();
             }
             rep.output = Some(path);
             if let Some(hook) = out.on_published {
