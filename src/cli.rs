@@ -314,14 +314,16 @@ fn summary(r: &StepReport) {
     }
     match (&r.output, &r.skipped) {
         (Some(p), _) => line.push_str(&format!(
-            ": {} fields used, products {} -> {} ({:.2} s: decode {:.2}, diagnostics {:.2}, write {:.2})",
+            ": {} fields used, products {} -> {} ({:.2} s: decode {:.2}, diagnostics {:.2}, write {:.2}, changes and tracks {:.2}, images {:.2})",
             r.fields_used,
             r.products.join(" "),
             p.display(),
             r.seconds,
             r.decode_seconds,
             r.compute_seconds,
-            r.write_seconds
+            r.write_seconds,
+            r.changes_seconds,
+            r.images_seconds
         )),
         (None, Some(why)) => line.push_str(&format!(": nothing written: {why}")),
         (None, None) => line.push_str(": nothing written"),

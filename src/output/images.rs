@@ -386,4 +386,53 @@ mod tests {
         assert!(parse("bad name@3").is_err());
         assert!(parse("eta@five").is_err());
     }
+
+    /// A product with a fixed scale keeps it whatever its values hold, so that
+    /// steps and runs compare; a configured scale replaces it, also whatever
+    /// the values; only a product without either spans its own values. The
+    /// fixed ranges are those of the table in docs/configuration.md
+    /// ("Colour scales").
+    #[test]
+    fn a_fixed_or_configured_scale_ignores_the_values_and_only_others_span_them() {
+        let calm = ndarray::Array2::from_elem((4, 5), 300.0f32);
+        let mut wild = ndarray::Array2::from_elem((4, 5), 20.0f32);
+        wild[(1, 2)] = 9000.0;
+        wild[(3, 4)] = f32::NAN;
+        let mut settings = Quicklooks::default();
+        let look = |s: &Quicklooks| -> (Scale, bool, Scale, bool, Scale) {
+            let l = Look {
+                settings: s,
+                terrain: None,
+            };
+            let (a, fa) = scale_of(&l, "trop_p", "2", &calm.view());
+            let (b, fb) = scale_of(&l, "trop_p", "2", &wild.view());
+            let (c, _) = scale_of(&l, "trop_theta", "2", &wild.view());
+            (a, fa, b, fb, c)
+        };
+        let (a, fa, b, fb, c) = look(&settings);
+        assert!(!fa && !fb);
+        assert_eq!(a, b);
+        assert_eq!((a.min, a.max, a.step), (100.0, 500.0, 25.0));
+        assert_eq!((c.min, c.max, c.step), (280.0, 380.0, 5.0));
+        settings
+            .scales
+            .insert("trop_p@2".into(), vec![150.0, 450.0, 50.0]);
+        let (a, fa, b, fb, _) = look(&settings);
+        assert!(!fa && !fb);
+        assert_eq!(a, b);
+        assert_eq!(
+            (a.min, a.max, a.step, a.reversed),
+            (150.0, 450.0, 50.0, true)
+        );
+        // A variable with no fixed scale spans its values, and says so.
+        let l = Look {
+            settings: &settings,
+            terrain: None,
+        };
+        let (s1, f1) = scale_of(&l, "no_such_field", "", &calm.view());
+        let (s2, f2) = scale_of(&l, "no_such_field", "", &wild.view());
+        assert!(f1 && f2);
+        assert!(s2.min <= 20.0 && s2.max >= 9000.0, "{s2:?}");
+        assert_ne!(s1, s2);
+    }
 }

@@ -95,7 +95,7 @@ CLIENT_KINDS = [k for k in KINDS if k not in ("latlon_from_minus_180", "latlon_r
 
 
 def wavy_step(path: Path, grid: gribgen.Grid, lead: int) -> Path:
-    """One step on `grid`: the constant-lapse-rate column (REFERENCES.md check values) with
+    """One step on `grid`: the constant-lapse-rate column (docs/references.md "Check values") with
     waves in longitude: T + 3 K cos(lat) cos(lon), z + 80 m cos(lat) sin(lon) + 0.05 m per
     degree east of 0 E (so that no two columns of a parallel agree), u = 30 cos(lat) +
     3 sin(2 lon) m/s, v = 4 cos(lat) sin(lon) m/s, toward east and north, relative humidity
@@ -489,7 +489,7 @@ def test_pv_units_read_by_every_unit_library(made):
     # The PV units of the files (isen_pv, pv, pv_level; bud_dpvdt) read by pint as MetPy
     # reads a units attribute (parse_units), by cf_units (Iris) and by UDUNITS itself (the
     # udunits2 program, Debian udunits-bin); 1 PVU = 1e-6 K m2 kg-1 s-1 and 1 PVU per hour
-    # = 1e-6/3600 K m2 kg-1 s-2 (Hoskins et al. 1985; REFERENCES.md "Constants"). The
+    # = 1e-6/3600 K m2 kg-1 s-2 (Hoskins et al. 1985; docs/references.md "Constants"). The
     # former "1e-6 K m2 kg-1 s-1" is refused by pint, which the first assertion shows.
     from metpy.units import units as mu
     import cf_units
