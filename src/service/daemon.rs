@@ -18,9 +18,10 @@ use tracing::{debug, error, info, warn};
 
 use super::assemble::{isobaric, Assembly, Contribution, Phase};
 use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
+use super::child;
 use super::ledger::{FailKind, Ledger, Outcome, Record, StepTag};
 use super::metrics::Metrics;
-use super::publish::{self, StepFacts};
+use super::publish;
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::systemd::{status_line, Notifier};
 use super::waiting::{self, Waiting, WaitingStep};
@@ -31,9 +32,7 @@ use crate::ingest::catalogue::{catalogue, catalogue_file};
 use crate::ingest::grid::parse_grid;
 use crate::ingest::source::{checksum_file, open_input, InputError, Opened};
 use crate::output::store::cycle_dir_name;
-use crate::pipeline::{
-    grid_id, output_name, plan, run_step, Destination, InputFile, Step, StepKey, StepReport,
-};
+use crate::pipeline::{grid_id, output_name, plan, InputFile, Step, StepKey, StepReport};
 
 /// Where `leeward serve` takes its settings from.
 #[derive(Debug, Clone)]
@@ -46,6 +45,8 @@ pub struct ServeOptions {
     pub out_dir: Option<PathBuf>,
     /// Overrides `service.state_dir`.
     pub state_dir: Option<PathBuf>,
+    /// The log format (`text` or `json`), which the step processes use too.
+    pub log_format: String,
 }
 
 /// Exit codes of `serve`.
@@ -54,9 +55,6 @@ pub mod code {
     pub const OK: u8 = 0;
     /// Configuration or state directory unusable: do not restart until fixed.
     pub const CONFIG: u8 = 2;
-    /// libnetcdf holds a failed temporary open (its blocks are not freed):
-    /// stopped so that the service manager starts a fresh process.
-    pub const RESTART: u8 = 3;
 }
 
 /// A request, dropped into `<state_dir>/requests/` by `leeward reprocess`.
@@ -236,76 +234,55 @@ pub(super) fn load_step(
         .map(|s| (s, inputs)))
 }
 
-fn run_job(job: &Job) -> JobOutcome {
-    let (step, inputs) = match load_step(&job.files, &job.key) {
-        Ok(Some(x)) => x,
-        Ok(None) => {
-            return JobOutcome::InputFailed("the step's fields are no longer in its files".into())
-        }
-        Err((file, e)) => return JobOutcome::Vanished(file, e),
-    };
-    if let Err(e) = std::fs::create_dir_all(&job.dir) {
-        return JobOutcome::OutputFailed(format!("cannot create {}: {e}", job.dir.display()));
+/// Make a step on this machine in a process of its own (see [`child`]):
+/// its spec into a staging directory, `leeward process --job` on it, and its
+/// result taken and published as a batch job's is. The staging directory is
+/// gone when this returns.
+fn run_local(job: &Job, spec: &JobSpec, stage: &Path, log_format: &str) -> JobOutcome {
+    if let Err(e) = batch::prepare(stage, spec, Path::new(child::PROGRAM), &[]) {
+        batch::remove_stage(stage);
+        return JobOutcome::OutputFailed(format!(
+            "cannot prepare the staging directory {}: {e}",
+            stage.display()
+        ));
     }
-    let facts = StepFacts::of(
-        &job.tag.feed,
-        &job.key,
-        job.partial,
-        &job.files,
-        job.last_input,
-        job.not_arrived.clone(),
-    );
-    let written: Mutex<Option<(PathBuf, f64)>> = Mutex::new(None);
-    let hook = |rep: &StepReport| -> Result<(), String> {
-        let Some(product) = &rep.output else {
-            return Err("no product file".into());
-        };
-        let m = publish::write_manifest(product, rep, &facts).map_err(|e| {
-            format!(
-                "cannot write the manifest {}: {e}",
-                publish::manifest_path(product).display()
-            )
-        })?;
-        // The step's own file is among the updated ones (its budget against the
-        // step before): its manifest was just written from the file as it is.
-        for u in rep.updated.iter().filter(|u| *u != product) {
-            if let Err(e) = publish::revise_manifest(u) {
-                warn!(file = %u.display(), error = %e, "manifest of an updated product not revised");
-            }
-        }
-        let latency = (unix_now() - facts.last_input).max(0.0);
-        *written
-            .lock()
-            .unwrap_or_else(std::sync::PoisonError::into_inner) = Some((m, latency));
-        Ok(())
+    let outcome = match child::run(stage, log_format) {
+        Ok(ran) => local_outcome(batch::take(spec, stage, &job.lock), ran),
+        Err(reason) => JobOutcome::Internal(reason),
     };
-    let dest = Destination {
-        store: &job.store,
-        dir: &job.dir,
-        lock: Some(&job.lock),
-        on_published: Some(&hook),
-        stage: None,
-    };
-    let rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
-    let manifest = written
-        .lock()
-        .unwrap_or_else(std::sync::PoisonError::into_inner)
-        .take();
-    if rep.output_failed {
-        JobOutcome::OutputFailed(rep.skipped.clone().unwrap_or_else(|| "write failed".into()))
-    } else if let (Some(path), Some((manifest, latency))) = (rep.output.clone(), manifest) {
-        JobOutcome::Published {
+    batch::remove_stage(stage);
+    outcome
+}
+
+/// What a step process's taken result means for the step: as a local
+/// worker's outcome (output failures and unreadable inputs retried here).
+fn local_outcome(t: Taken, ran: child::Ran) -> JobOutcome {
+    match t {
+        Taken::Published {
             path,
             manifest,
             latency,
-            report: Box::new(rep),
+            report,
+            result,
+        } => {
+            debug!(feed = %result.tag.feed, cycle = %result.tag.cycle, step = result.tag.lead, process_s = ran.seconds, peak_rss_mib = result.peak_rss_kib.map(|k| k / 1024), "step process's result taken");
+            JobOutcome::Published {
+                path,
+                manifest,
+                latency,
+                report,
+            }
         }
-    } else {
-        JobOutcome::InputFailed(
-            rep.skipped
-                .clone()
-                .unwrap_or_else(|| "nothing could be made from the input".into()),
-        )
+        Taken::Ended(r) => match r.ended {
+            batch::Ended::InputFailed { reason } => JobOutcome::InputFailed(reason),
+            batch::Ended::Internal { reason } => JobOutcome::Internal(reason),
+            batch::Ended::OutputFailed { reason } => JobOutcome::OutputFailed(reason),
+            batch::Ended::Vanished { file, reason } => JobOutcome::Vanished(file, reason),
+            batch::Ended::Made { .. } => {
+                JobOutcome::Internal("a made result was not taken (a defect in leeward)".into())
+            }
+        },
+        Taken::Unusable(reason) => JobOutcome::OutputFailed(reason),
     }
 }
 
@@ -392,7 +369,6 @@ struct Daemon {
     too_old: BTreeSet<(String, String)>,
     last_status: String,
     last_published: Option<String>,
-    restart_needed: bool,
     last_ping: Instant,
     /// Files read with their last message cut off at their end: (size, mtime
     /// then, since when). Read again once settled, or when they change.
@@ -1144,16 +1120,36 @@ impl Daemon {
         let tag = job.tag.clone();
         info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, partial = job.partial, files = job.files.len(), "processing");
         self.running.insert(tag.clone(), Instant::now());
+        let attempt = self.asm.steps.get(&tag).map_or(0, |p| p.attempts) + 1;
+        let threads = std::thread::available_parallelism().map_or(1, |n| n.get()) as u32;
+        let spec = JobSpec::new(
+            &job.tag,
+            attempt,
+            &job.key,
+            &job.files,
+            &job.store,
+            &job.dir,
+            job.suffix,
+            job.partial,
+            job.last_input,
+            job.not_arrived.clone(),
+            threads,
+            (*job.cfg).clone(),
+        );
+        let stage = batch::staging_dir(&self.cfg.service.out_dir, &tag, attempt);
+        let log_format = self.opts.log_format.clone();
         let tx = self.done_tx.clone();
         std::thread::spawn(move || {
             crate::output::quiet_hdf5_errors();
-            let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_job(&job)))
-                .unwrap_or_else(|p| {
-                    JobOutcome::Internal(format!(
-                        "internal error (a defect in leeward): {}",
-                        panic_text(&*p)
-                    ))
-                });
+            let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                run_local(&job, &spec, &stage, &log_format)
+            }))
+            .unwrap_or_else(|p| {
+                JobOutcome::Internal(format!(
+                    "internal error (a defect in leeward): {}",
+                    panic_text(&*p)
+                ))
+            });
             crate::output::release_hdf5_free_lists();
             let _ = tx.send(JobDone {
                 tag: job.tag.clone(),
@@ -1579,11 +1575,6 @@ impl Daemon {
                         at: Instant::now() + wait,
                         partial: was_partial,
                     };
-                }
-                let held = crate::output::held_temporaries(&self.cfg.service.out_dir);
-                if !held.is_empty() {
-                    error!(files = ?held, "libnetcdf keeps failed temporaries open and their space is not freed; stopping for a fresh start");
-                    self.restart_needed = true;
                 }
             }
             JobOutcome::Vanished(file, reason) => {
@@ -2021,7 +2012,6 @@ pub fn serve(opts: ServeOptions) -> u8 {
         too_old: BTreeSet::new(),
         last_status: String::new(),
         last_published: None,
-        restart_needed: false,
         last_ping: Instant::now(),
         growing: HashMap::new(),
         last_waiting: Vec::new(),
@@ -2069,7 +2059,6 @@ pub fn serve(opts: ServeOptions) -> u8 {
     let mut last_orphans = Instant::now();
     let ping_every = d.notifier.watchdog.map(|w| w / 2);
     let mut stopping: Option<Instant> = None;
-    let mut exit_code = code::OK;
     if let Some(w) = ping_every {
         d.notifier.send("WATCHDOG=1");
         debug!(every_s = w.as_secs_f64(), "watchdog pings");
@@ -2098,15 +2087,6 @@ pub fn serve(opts: ServeOptions) -> u8 {
                     }
                 }
             }
-        }
-        if d.restart_needed && stopping.is_none() {
-            d.notifier.send(&format!(
-                "STOPPING=1\n{}",
-                status_line("stopping for a fresh start: a failed write holds disk space")
-            ));
-            d.watchers.clear();
-            stopping = Some(Instant::now());
-            exit_code = code::RESTART;
         }
         if stopping.is_none() {
             let mut files = Vec::new();
@@ -2157,14 +2137,10 @@ pub fn serve(opts: ServeOptions) -> u8 {
                 if d.running.is_empty() && !taking {
                     info!("stopped cleanly");
                     d.record(Record::Stopped {
-                        reason: if exit_code == code::OK {
-                            "signal".into()
-                        } else {
-                            "fresh start needed".into()
-                        },
+                        reason: "signal".into(),
                         at: Utc::now().timestamp(),
                     });
-                    return exit_code;
+                    return code::OK;
                 }
                 if t0.elapsed().as_secs_f64() >= d.cfg.service.shutdown_grace_s {
                     let left: Vec<String> = d.running.keys().map(ToString::to_string).collect();
@@ -2173,9 +2149,9 @@ pub fn serve(opts: ServeOptions) -> u8 {
                         reason: format!("signal; abandoned {}", left.join(", ")),
                         at: Utc::now().timestamp(),
                     });
-                    // Workers cannot be interrupted safely; their hidden
-                    // temporaries are removed at the next start.
-                    std::process::exit(i32::from(exit_code));
+                    // The step processes die with the service; their
+                    // staging directories are removed at the next start.
+                    std::process::exit(i32::from(code::OK));
                 }
             }
         }

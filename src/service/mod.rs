@@ -8,6 +8,7 @@
 //! - [`assemble`]: fields grouped into steps; completeness; order.
 //! - [`daemon`]: the main loop, workers, signals, reprocess requests.
 //! - [`batch`]: step jobs on a batch scheduler (Slurm): spec, result, taking it.
+//! - [`child`]: step processes on this machine, made and taken as batch jobs are.
 //! - [`publish`]: output tree, manifests, temporaries, retention, quarantine.
 //! - [`ledger`]: the durable journal of what happened.
 //! - [`metrics`]: the health and metrics endpoint.
@@ -17,6 +18,7 @@
 
 pub mod assemble;
 pub mod batch;
+pub mod child;
 pub mod daemon;
 pub mod ledger;
 pub mod metrics;
