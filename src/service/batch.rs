@@ -397,6 +397,22 @@ pub struct JobResult {
     pub ended: Ended,
     /// The pipeline's report.
     pub report: JobReport,
+    /// The job process's peak resident memory, KiB (`VmHWM` of proc(5)).
+    #[serde(default)]
+    pub peak_rss_kib: Option<u64>,
+}
+
+/// This process's peak resident memory so far, KiB (`VmHWM` of /proc/self/status).
+pub fn peak_rss_kib() -> Option<u64> {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()?
+        .lines()
+        .find_map(|l| l.strip_prefix("VmHWM:"))?
+        .trim()
+        .strip_suffix("kB")?
+        .trim()
+        .parse()
+        .ok()
 }
 
 fn host_name() -> String {
@@ -463,7 +479,9 @@ pub fn run_in_job(dir: &Path) -> u8 {
         .ok()
         .and_then(|s| s.parse().ok())
         .unwrap_or(0);
-    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, job = ?job_id, restarts, threads, dir = %dir.display(), "step job started");
+    // Every line the step logs says which step it is.
+    let _step = tracing::info_span!("step", feed = %spec.tag.feed, cycle = %spec.tag.cycle, lead = spec.tag.lead).entered();
+    info!(job = ?job_id, restarts, threads, dir = %dir.display(), "step job started");
     crate::output::quiet_hdf5_errors();
     let made = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| make(&spec, dir)))
         .unwrap_or_else(|p| {
@@ -489,6 +507,7 @@ pub fn run_in_job(dir: &Path) -> u8 {
             .to_string(),
         ended: made.0,
         report: made.1,
+        peak_rss_kib: peak_rss_kib(),
     };
     let text = match serde_json::to_vec_pretty(&result) {
         Ok(t) => t,
@@ -511,7 +530,7 @@ pub fn run_in_job(dir: &Path) -> u8 {
         Ended::Vanished { .. } => "input vanished",
         Ended::Internal { .. } => "internal error",
     };
-    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, outcome = what, seconds = result.report.timings.total, "step job finished");
+    info!(outcome = what, seconds = result.report.timings.total, peak_rss_kib = ?result.peak_rss_kib, "step job finished");
     0
 }
 
