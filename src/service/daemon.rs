@@ -292,8 +292,7 @@ pub(super) fn load_step(
 /// The staging directory is gone when this returns, unless a stop cut the
 /// publication short (the next start finishes it from there).
 fn run_local(job: &Job, spec: &JobSpec, stage: &Path, log_format: &str) -> JobOutcome {
-    if let Err(e) = std::fs::create_dir_all(&job.dir)
-        .and_then(|()| batch::prepare(stage, spec, Path::new(child::PROGRAM), &[]))
+    if let Err(e) = std::fs::create_dir_all(&job.dir).and_then(|()| batch::write_spec(stage, spec))
     {
         commit::remove_stage(stage);
         return JobOutcome::OutputFailed(format!(
