@@ -662,6 +662,9 @@ def test_retention_removes_old_cycles_and_timeout_publishes_partial(tmp_path):
     deliver_renamed(f[0].read_bytes(), tmp_path / "in" / f[0].name)
     wait_for(lambda: len(svc.published()) == 1, 60, "partial step at the timeout")
     assert svc.published()[0]["partial"] is True
+    # The manifest says what the rule waited for and did not get.
+    m = json.loads(Path(svc.published()[0]["manifest"]).read_text())
+    assert "the marker file (not arrived)" in m["missing"], m["missing"]
     # The ledger record comes first, the counter just after it.
     wait_for(lambda: svc.metric("leeward_steps_published_total", feed="demo", state="partial") >= 1,
              30, "the publication counted")
