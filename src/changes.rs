@@ -18,6 +18,7 @@ use ndarray::Array3;
 use tracing::{info, warn};
 
 use crate::output::cf::{Product, Vertical};
+use crate::output::precision::KeptBits;
 use crate::output::store::{
     add_variables, add_variables_to, published_where, read_field, Published,
 };
@@ -234,7 +235,7 @@ fn update(
     path: &Path,
     products: Vec<Product>,
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Option<PathBuf> {
     // Nothing that holds no value is added to a file.
     let (products, left_out) = crate::output::cf::leave_out_empty(products);
@@ -246,7 +247,7 @@ fn update(
     }
     let target = run.staged(path);
     let written = if target == path {
-        add_variables(path, &products, deflate, nsb)
+        add_variables(path, &products, deflate, kept)
     } else {
         let from = if target.exists() {
             target.clone()
@@ -258,7 +259,7 @@ fn update(
                 path: target.clone(),
                 source,
             })
-            .and_then(|()| add_variables_to(&from, &target, &products, deflate, nsb))
+            .and_then(|()| add_variables_to(&from, &target, &products, deflate, kept))
     };
     match written {
         Ok(()) => Some(target),
@@ -279,7 +280,7 @@ pub fn update_later(
     fields: &Fields<'_>,
     intervals: &[u32],
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Vec<PathBuf> {
     let files = published_where(
         run.out_dir,
@@ -317,7 +318,7 @@ pub fn update_later(
                         d,
                     )],
                     deflate,
-                    nsb,
+                    kept,
                 ));
             }
         }
@@ -351,7 +352,7 @@ pub fn update_later(
                     prods.push(p);
                 }
             }
-            updated.extend(update(run, &next.path, prods, deflate, nsb));
+            updated.extend(update(run, &next.path, prods, deflate, kept));
         }
     }
     updated
@@ -733,7 +734,7 @@ pub fn update_budgets(
     g: &Geometry<'_>,
     max_interval_h: u32,
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Vec<PathBuf> {
     let files = published_where(
         run.out_dir,
@@ -757,7 +758,7 @@ pub fn update_budgets(
         let dt = run.valid_time - prev.valid_time;
         if dt <= max {
             let prods = pv_budget(g, &prev.path, this_file, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(run, this_file, prods, deflate, nsb));
+            updated.extend(update(run, this_file, prods, deflate, kept));
         }
     }
     let next = same_cycle
@@ -768,7 +769,7 @@ pub fn update_budgets(
         let dt = next.valid_time - run.valid_time;
         if dt <= max {
             let prods = pv_budget(g, this_file, &next.path, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(run, &next.path, prods, deflate, nsb));
+            updated.extend(update(run, &next.path, prods, deflate, kept));
         }
     }
     updated
