@@ -875,6 +875,22 @@ pub fn has_ended(state: &str) -> bool {
     ENDED_STATES.contains(&base.as_str())
 }
 
+/// How a step job ended when leeward itself found the end, not the
+/// scheduler: leeward's own lower-case words, kept apart from the states
+/// the scheduler reports (upper case, such as `FAILED` or `TIMEOUT`).
+pub mod outcome {
+    /// The job could not write the step's products.
+    pub const UNWRITTEN: &str = "unwritten";
+    /// The job could not read one of the step's input files.
+    pub const UNREADABLE: &str = "unreadable";
+    /// The job's result (a staged file) could not be used.
+    pub const UNUSABLE: &str = "unusable";
+    /// The job's staging directory was gone after a restart.
+    pub const LOST: &str = "lost";
+    /// Every one of them.
+    pub const ALL: [&str; 4] = [UNWRITTEN, UNREADABLE, UNUSABLE, LOST];
+}
+
 /// The Slurm commands, as `[service.slurm]` configures them.
 #[derive(Debug, Clone)]
 pub struct Scheduler {

@@ -348,14 +348,14 @@ fn taken_outcome(t: Taken) -> JobOutcome {
             batch::Ended::InputFailed { reason } => JobOutcome::InputFailed(reason),
             batch::Ended::Internal { reason } => JobOutcome::Internal(reason),
             batch::Ended::OutputFailed { reason } => JobOutcome::BatchRetry {
-                state: "OUTPUT_FAILED".into(),
+                state: batch::outcome::UNWRITTEN.into(),
                 reason: format!(
                     "the job on {} could not write the products: {reason}",
                     r.host
                 ),
             },
             batch::Ended::Vanished { file, reason } => JobOutcome::BatchRetry {
-                state: "INPUT_UNREADABLE".into(),
+                state: batch::outcome::UNREADABLE.into(),
                 reason: format!(
                     "the job on {} could not read {}: {reason}",
                     r.host,
@@ -367,7 +367,7 @@ fn taken_outcome(t: Taken) -> JobOutcome {
             }
         },
         Taken::Unusable(reason) => JobOutcome::BatchRetry {
-            state: "RESULT_UNUSABLE".into(),
+            state: batch::outcome::UNUSABLE.into(),
             reason,
         },
     }
@@ -1367,7 +1367,7 @@ impl Daemon {
                     self.record(Record::JobEnded {
                         step: tag,
                         job: r.job,
-                        state: "LOST".into(),
+                        state: batch::outcome::LOST.into(),
                         reason: format!("staging directory {} gone", stage.display()),
                         log: None,
                         at: Utc::now().timestamp(),

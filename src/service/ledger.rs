@@ -167,7 +167,9 @@ pub enum Record {
         step: StepTag,
         /// The job id.
         job: String,
-        /// The scheduler's state of the job (`FAILED`, `CANCELLED`, `TIMEOUT`, ...).
+        /// The scheduler's state of the job (`FAILED`, `CANCELLED`, `TIMEOUT`, ...),
+        /// or leeward's own lower-case word for an end it found itself
+        /// (`unwritten`, `unreadable`, `unusable`, `lost`).
         state: String,
         /// What the scheduler or the job said.
         reason: String,

@@ -84,7 +84,8 @@ pub struct SchedulerCounters {
     pub in_flight: usize,
     /// Step jobs submitted.
     pub submitted: u64,
-    /// Step jobs that ended without a result, by the scheduler's state.
+    /// Step jobs that ended without a result, by the scheduler's state or
+    /// leeward's own outcome word (`crate::service::batch::outcome`).
     pub ended: BTreeMap<String, u64>,
     /// Step jobs submitted again after one ended without a result.
     pub retries: u64,
@@ -320,10 +321,16 @@ impl Metrics {
             self.reloads.1.to_string(),
         );
         if self.scheduler.used {
-            o.push_str("# HELP leeward_scheduler_jobs_ended_total Step jobs that ended without a result, by scheduler state.\n# TYPE leeward_scheduler_jobs_ended_total counter\n");
+            o.push_str("# HELP leeward_scheduler_jobs_ended_total Step jobs that ended without a result, by the scheduler's state or leeward's own outcome.\n# TYPE leeward_scheduler_jobs_ended_total counter\n");
             for (state, n) in &self.scheduler.ended {
+                // leeward's own words go under their own label, apart from the scheduler's states.
+                let label = if crate::service::batch::outcome::ALL.contains(&state.as_str()) {
+                    "outcome"
+                } else {
+                    "state"
+                };
                 o.push_str(&format!(
-                    "leeward_scheduler_jobs_ended_total{{state=\"{}\"}} {n}\n",
+                    "leeward_scheduler_jobs_ended_total{{{label}=\"{}\"}} {n}\n",
                     esc(state)
                 ));
             }
@@ -475,6 +482,34 @@ mod tests {
                         .is_some_and(|s| ["_bucket", "_sum", "_count"].contains(&s))),
                 "{name}"
             );
+        }
+    }
+
+    #[test]
+    fn job_ends_leeward_found_itself_are_labelled_apart_from_the_schedulers_states() {
+        let mut m = Metrics::default();
+        m.scheduler.used = true;
+        for s in ["TIMEOUT", "unwritten", "lost"] {
+            *m.scheduler.ended.entry(s.into()).or_default() += 1;
+        }
+        let t = m.render();
+        assert!(
+            t.contains("leeward_scheduler_jobs_ended_total{state=\"TIMEOUT\"} 1"),
+            "{t}"
+        );
+        for word in ["unwritten", "lost"] {
+            assert!(
+                t.contains(&format!(
+                    "leeward_scheduler_jobs_ended_total{{outcome=\"{word}\"}} 1"
+                )),
+                "{t}"
+            );
+            assert!(!t.contains(&format!("state=\"{word}\"")), "{t}");
+        }
+        // leeward's words are lower case, the scheduler's upper case: never the same.
+        for w in crate::service::batch::outcome::ALL {
+            assert_eq!(w, w.to_lowercase());
+            assert!(!crate::service::batch::has_ended(w), "{w}");
         }
     }
 }

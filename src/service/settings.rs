@@ -154,7 +154,7 @@ impl Default for Service {
             settle_s: 10.0,
             step_timeout_s: 2700.0,
             retention_days: 0,
-            metrics_listen: "127.0.0.1:9478".into(),
+            metrics_listen: "127.0.0.1:7478".into(),
             shutdown_grace_s: 60.0,
             retry_first_s: 5.0,
             retry_max_s: 300.0,
@@ -474,7 +474,7 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
     use std::net::ToSocketAddrs;
     if !s.metrics_listen.is_empty() && s.metrics_listen.to_socket_addrs().is_err() {
         p.push(format!(
-            "service.metrics_listen: {:?} is not an address and port such as 127.0.0.1:9478",
+            "service.metrics_listen: {:?} is not an address and port such as 127.0.0.1:7478",
             s.metrics_listen
         ));
     }

@@ -13,7 +13,7 @@ The working directory (one per test session, under pytest's temporary directory)
 - The machine's own paths in a command are moved into the working directory: ``/tmp/...``
   to ``tmp/...``; ``/srv/leeward``, ``/var/lib/leeward`` and ``/etc/leeward`` to the tree
   of the machine the page is about: docs/operations.md speaks of a service host (``host/``),
-  the other pages of a newcomer's own machine (``desk/``); the metrics port 9478 to a free
+  the other pages of a newcomer's own machine (``desk/``); the metrics port 7478 to a free
   port of each. ``deploy/leeward.toml`` in ``work/`` is the repository's with the same moves.
 - The demo is run once, as README.md's first hour shows it (the first
   ``leeward demo --dir DIR`` line), so that the commands that look at its products and
@@ -195,7 +195,7 @@ class Machine:
 
     def rewrite(self, text: str) -> str:
         text = self._paths.sub(lambda m: self._subs[m.group(1)], text)
-        return text.replace("127.0.0.1:9478", f"127.0.0.1:{self.port}")
+        return text.replace("127.0.0.1:7478", f"127.0.0.1:{self.port}")
 
     def path(self, doc_path: str) -> Path:
         return Path(self.rewrite(doc_path))
