@@ -9,9 +9,14 @@
 #      one thread, peak resident memory, fitted exponent of cost in grid points;
 #   4. the yardstick: the same products from a Python pipeline of general-purpose
 #      libraries (ecCodes, MetPy, netCDF4), timed, and checked against leeward's;
-#   5. latency in the service: last byte of the input to the published file.
+#   5. latency in the service: last byte of the input to the published file;
+#   6. the first and the later step as `leeward process` runs them: wall time,
+#      peak resident memory and bytes written, with 16 bits for every product
+#      (before) and with the measured kept bits (after);
+#   7. precision: each product's real information on the step and its stored
+#      size before and after (tests/bench/information.py, sizes.py).
 #
-#   bash tests/bench/run.sh [--res 0.25|0.5|1.0] [--skip-yardstick] [--skip-latency] [--skip-scaling]
+#   bash tests/bench/run.sh [--res 0.25|0.5|1.0] [--skip-yardstick] [--skip-latency] [--skip-scaling] [--skip-precision]
 #
 # The machine is shared: read the ratios within one run, not the seconds across runs.
 set -euo pipefail
@@ -20,13 +25,15 @@ res=0.25
 skip_yard=0
 skip_lat=0
 skip_scal=0
+skip_prec=0
 while [ $# -gt 0 ]; do
   case "$1" in
     --res) res="$2"; shift 2 ;;
     --skip-yardstick) skip_yard=1; shift ;;
     --skip-latency) skip_lat=1; shift ;;
     --skip-scaling) skip_scal=1; shift ;;
-    *) echo "usage: bash tests/bench/run.sh [--res R] [--skip-yardstick] [--skip-latency] [--skip-scaling]" >&2; exit 2 ;;
+    --skip-precision) skip_prec=1; shift ;;
+    *) echo "usage: bash tests/bench/run.sh [--res R] [--skip-yardstick] [--skip-latency] [--skip-scaling] [--skip-precision]" >&2; exit 2 ;;
   esac
 done
 bash tests/setup-system.sh
@@ -76,6 +83,23 @@ if [ "$skip_lat" = 0 ]; then
   grep '^{' "$out/latency.txt" > "$out/latency.jsonl" || true
 fi
 
+echo "== 6. first and later step, peak memory, bytes written: before (16 bits) and after (kept bits)"
+"$py" tests/bench/steps.py --leeward "$bin" --input "$input" --next "$next" --work target/bench/steps --json | tee "$out/steps.txt"
+grep '^{' "$out/steps.txt" > "$out/steps.jsonl" || true
+rm -rf target/bench/steps
+
+if [ "$skip_prec" = 0 ]; then
+  echo "== 7. real information per product and stored size before and after"
+  rm -rf target/bench/exact && mkdir -p target/bench/exact
+  printf '[output]\nsignificant_bits = 23\n' > target/bench/exact/exact.toml
+  "$bin" process --config target/bench/exact/exact.toml --out target/bench/exact/out "$input" >&2
+  exact="$(ls target/bench/exact/out/*.nc | head -1)"
+  "$py" tests/bench/information.py "$exact" | tee "$out/information.md"
+  "$py" tests/bench/sizes.py "$exact" --json | tee "$out/sizes.txt"
+  grep '^{' "$out/sizes.txt" > "$out/sizes.jsonl" || true
+  rm -rf target/bench/exact
+fi
+
 echo "== summary"
 "$py" - "$out" <<'PY'
 import json, sys
@@ -117,6 +141,29 @@ if s:
     for r in s["rows"]:
         print(f"    {r['res']} degree: all cores {r['all_cores']['wall_s']:.2f} s, one thread {r['one_thread']['wall_s']:.2f} s: "
               f"speed-up {r['speedup']:.2f} on {s['cores']} cores; {r['wall_over_eccodes']:.2f} x ecCodes' decode")
+st = lines("steps.jsonl")
+if st:
+    st = st[0]
+    b, a = st["before"], st["after"]
+    f, n = a["first"], a["later"]
+    print(f"[T1] first step (leeward process, kept bits) {f['wall_s']:.2f} s vs ecCodes decode {e:.2f} s: ratio {f['wall_s']/e:.2f} (target <= 3.0): {verdict(f['wall_s'] <= 3.0 * e)}")
+    if y:
+        print(f"[T2] Python pipeline {y['total_s']:.1f} s vs the first step {f['wall_s']:.2f} s: {y['total_s']/f['wall_s']:.1f} x (target >= 15): {verdict(y['total_s']/f['wall_s'] >= 15)}")
+    print(f"[T3] later step {n['wall_s']:.2f} s vs first {f['wall_s']:.2f} s: ratio {n['wall_s']/f['wall_s']:.2f} (target <= 1.5): {verdict(n['wall_s'] <= 1.5 * f['wall_s'])}")
+    for label, r in (("first", f), ("later", n)):
+        print(f"[T4] peak resident memory, {label} step: {r['peak_rss_mib']:.0f} MiB (target <= 1536): {verdict(r['peak_rss_mib'] <= 1536)}")
+    print(f"[T5] bytes written, first step: {b['first']['bytes']/1e6:.1f} MB at 16 bits, {f['bytes']/1e6:.1f} MB with kept bits: "
+          f"{b['first']['bytes']/f['bytes']:.2f} x smaller (target >= 2): {verdict(b['first']['bytes'] >= 2 * f['bytes'])}; "
+          f"later step {b['later']['bytes']/1e6:.1f} MB and {n['bytes']/1e6:.1f} MB")
+    print(f"     before (16 bits): first {b['first']['wall_s']:.2f} s, later {b['later']['wall_s']:.2f} s, peaks {b['first']['peak_rss_mib']:.0f} and {b['later']['peak_rss_mib']:.0f} MiB")
+z = lines("sizes.jsonl")
+if z:
+    print("     per product, stored size at 16 bits -> kept bits (zlib stand-in for libdeflate):")
+    for r in z:
+        if r["product"] != "all":
+            print(f"       {r['product']:16s} {r['kept_bits']:2d} bits: {r['before']/1e6:7.1f} -> {r['after']/1e6:7.1f} MB ({r['before']/r['after']:.2f} x)")
+        else:
+            print(f"       all: {r['before']/1e6:.1f} -> {r['after']/1e6:.1f} MB ({r['ratio']:.2f} x)")
 l = lines("latency.jsonl")
 if l:
     l = l[0]
