@@ -326,10 +326,6 @@ pub struct Output {
     /// better and faster; 16 keeps a relative precision of 7.6e-6.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub significant_bits: Option<u32>,
-    /// Mantissa bits kept by single products, by product name (`thick`, `pv`,
-    /// `thick_chg` for every thickness change), 1 to 23; wins over
-    /// `significant_bits` and over the measured table.
-    pub kept_bits: std::collections::BTreeMap<String, u32>,
     /// Range of the longitudes in the files: `"auto"`, `"-180..180"` or
     /// `"0..360"`. A global grid is rolled into it; a limited area keeps its
     /// columns in order and takes the range in which its longitudes run without
@@ -341,6 +337,11 @@ pub struct Output {
     /// or a local model whose files say 255, "missing"); for example
     /// `[output.institutions]` `255 = "Our local model"`.
     pub institutions: std::collections::BTreeMap<String, String>,
+    /// Mantissa bits kept by single products, by product name (`thick`, `pv`,
+    /// `thick_chg` for every thickness change), 1 to 23; wins over
+    /// `significant_bits` and over the measured table. (A table: after the
+    /// plain values, as TOML writes them.)
+    pub kept_bits: std::collections::BTreeMap<String, u32>,
 }
 
 impl Default for Output {
@@ -348,9 +349,9 @@ impl Default for Output {
         Output {
             deflate_level: 1,
             significant_bits: None,
-            kept_bits: std::collections::BTreeMap::new(),
             longitudes: crate::geometry::LongitudeRange::Auto,
             institutions: std::collections::BTreeMap::new(),
+            kept_bits: std::collections::BTreeMap::new(),
         }
     }
 }
