@@ -94,6 +94,54 @@ pub fn thickness_change_spec(hours: u32) -> VarSpec {
     }
 }
 
+/// The variable for the mean sea-level pressure change over `hours`.
+pub fn mslp_change_spec(hours: u32) -> VarSpec {
+    VarSpec {
+        name: intern(format!("mslp_chg_{hours:02}h")),
+        standard_name: None,
+        long_name: intern(format!(
+            "change of mean sea-level pressure over the previous {hours} h"
+        )),
+        units: "Pa",
+        formula: "mslp(this step) - mslp(the step of the same cycle valid that many hours earlier), both read from published files",
+    }
+}
+
+/// Run-to-run change of mean sea-level pressure.
+pub const MSLP_R2R: VarSpec = VarSpec {
+    name: "mslp_r2r",
+    standard_name: None,
+    long_name: "mean sea-level pressure of this cycle minus that of the previous cycle at the same valid time",
+    units: "Pa",
+    formula: "mslp(this cycle) - mslp(previous cycle), same valid time",
+};
+
+/// A field whose change over the intervals of a cycle is made, with its change
+/// variable and vertical coordinate.
+#[derive(Clone, Copy)]
+pub struct Tendency {
+    /// The field's name in the files.
+    pub name: &'static str,
+    /// The change's variable for an interval in hours.
+    pub spec: fn(u32) -> VarSpec,
+    /// Its vertical coordinate.
+    pub vertical: Vertical,
+}
+
+/// Thickness and its change.
+pub const THICK_TENDENCY: Tendency = Tendency {
+    name: "thick",
+    spec: thickness_change_spec,
+    vertical: Vertical::PressureLayer,
+};
+
+/// Mean sea-level pressure and its change.
+pub const MSLP_TENDENCY: Tendency = Tendency {
+    name: "mslp",
+    spec: mslp_change_spec,
+    vertical: Vertical::Surface,
+};
+
 /// Run-to-run change of the thickness.
 pub const THICK_R2R: VarSpec = VarSpec {
     name: "thick_r2r",
@@ -143,6 +191,16 @@ pub fn within_cycle(
     thick: (&[f64], &Array3<f32>),
     intervals: &[u32],
 ) -> Vec<Product> {
+    within_cycle_of(run, THICK_TENDENCY, thick, intervals)
+}
+
+/// Changes of the field `what` for this step from earlier steps already published.
+pub fn within_cycle_of(
+    run: &Run<'_>,
+    what: Tendency,
+    this: (&[f64], &Array3<f32>),
+    intervals: &[u32],
+) -> Vec<Product> {
     let files = published_where(
         run.out_dir,
         run.centre,
@@ -164,14 +222,10 @@ pub fn within_cycle(
             continue;
         };
         if let Some(d) =
-            earlier_value(&earlier.path, "thick", thick.0).and_then(|e| difference(thick.1, &e))
+            earlier_value(&earlier.path, what.name, this.0).and_then(|e| difference(this.1, &e))
         {
-            info!(file = %earlier.path.display(), hours = h, "thickness change from an earlier step");
-            out.push(Product::new(
-                thickness_change_spec(h),
-                Vertical::PressureLayer,
-                d,
-            ));
+            info!(file = %earlier.path.display(), hours = h, field = what.name, "change from an earlier step");
+            out.push(Product::new((what.spec)(h), what.vertical, d));
         }
     }
     out
@@ -203,6 +257,7 @@ fn r2r_spec(name: &str) -> Option<(VarSpec, Vertical)> {
         "thick" => Some((THICK_R2R, Vertical::PressureLayer)),
         "z" => Some((Z_R2R, Vertical::Pressure)),
         "trop_p" => Some((TROP_P_R2R, Vertical::PvSurface)),
+        "mslp" => Some((MSLP_R2R, Vertical::Surface)),
         _ => None,
     }
 }
@@ -294,34 +349,16 @@ pub fn update_later(
         },
     );
     let mut updated = Vec::new();
-    if let Some((coords, this)) = thick {
-        for &h in intervals {
-            let Some(dt) = TimeDelta::try_hours(i64::from(h)) else {
-                continue;
-            };
-            let later_valid = run.valid_time + dt;
-            let Some(later) = files
-                .iter()
-                .find(|p| p.reference_time == run.reference_time && p.valid_time == later_valid)
-            else {
-                continue;
-            };
-            if let Some(d) =
-                earlier_value(&later.path, "thick", coords).and_then(|l| difference(&l, this))
-            {
-                updated.extend(update(
-                    run,
-                    &later.path,
-                    vec![Product::new(
-                        thickness_change_spec(h),
-                        Vertical::PressureLayer,
-                        d,
-                    )],
-                    deflate,
-                    kept,
-                ));
-            }
-        }
+    if let Some(thick) = thick {
+        updated.extend(later_in_cycle(
+            run,
+            &files,
+            THICK_TENDENCY,
+            thick,
+            intervals,
+            deflate,
+            kept,
+        ));
     }
     // The next cycle at the same valid time, if this cycle is its previous one.
     let next = files
@@ -356,6 +393,60 @@ pub fn update_later(
         }
     }
     updated
+}
+
+/// This step's contribution to the changes of `what` in the steps of its cycle
+/// published before it and valid an interval later (`files`: those published).
+fn later_in_cycle(
+    run: &Run<'_>,
+    files: &[Published],
+    what: Tendency,
+    (coords, this): (&[f64], &Array3<f32>),
+    intervals: &[u32],
+    deflate: i32,
+    kept: &KeptBits,
+) -> Vec<PathBuf> {
+    let mut updated = Vec::new();
+    for &h in intervals {
+        let Some(dt) = TimeDelta::try_hours(i64::from(h)) else {
+            continue;
+        };
+        let later_valid = run.valid_time + dt;
+        let Some(later) = files
+            .iter()
+            .find(|p| p.reference_time == run.reference_time && p.valid_time == later_valid)
+        else {
+            continue;
+        };
+        if let Some(d) =
+            earlier_value(&later.path, what.name, coords).and_then(|l| difference(&l, this))
+        {
+            let prods = vec![Product::new((what.spec)(h), what.vertical, d)];
+            updated.extend(update(run, &later.path, prods, deflate, kept));
+        }
+    }
+    updated
+}
+
+/// After this step is published: its contribution to the changes of `what` in
+/// later steps of its cycle published before it (steps arriving in any order).
+pub fn update_later_of(
+    run: &Run<'_>,
+    what: Tendency,
+    this: (&[f64], &Array3<f32>),
+    intervals: &[u32],
+    deflate: i32,
+    kept: &KeptBits,
+) -> Vec<PathBuf> {
+    let files = published_where(
+        run.out_dir,
+        run.centre,
+        run.grid_id,
+        run.member,
+        run.reference_time,
+        |r, v| r == run.reference_time && v > run.valid_time,
+    );
+    later_in_cycle(run, &files, what, this, intervals, deflate, kept)
 }
 
 /// Budget variables on isentropic layers and surfaces.

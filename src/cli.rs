@@ -87,7 +87,7 @@ pub enum Command {
             default_value = "0,6,12,18,24,30,36,42,48"
         )]
         leads: Vec<u32>,
-        /// Seconds between the steps' deliveries.
+        /// Seconds between a step's publication and the next step's delivery.
         #[arg(long, default_value_t = 1.0)]
         pause: f64,
     },
@@ -121,6 +121,10 @@ pub enum Command {
         /// Print JSON instead of text.
         #[arg(long)]
         json: bool,
+        /// Check every shown product against its manifest's SHA-256 too (reads each
+        /// file whole), not only its size.
+        #[arg(long)]
+        verify: bool,
     },
     /// List what is in GRIB2 files: per field the quantity, level, times, grid, packing and value range.
     Inspect {
@@ -265,7 +269,8 @@ pub fn main() -> ExitCode {
             state_dir,
             cycles,
             json,
-        } => ExitCode::from(status(&state_dir, cycles, json)),
+            verify,
+        } => ExitCode::from(status(&state_dir, cycles, json, verify)),
         Command::Reprocess {
             state_dir,
             feed,
@@ -533,8 +538,8 @@ pub fn man(out: &std::path::Path) -> u8 {
 }
 
 /// `leeward status`: returns the exit code.
-pub fn status(state_dir: &std::path::Path, cycles: usize, json: bool) -> u8 {
-    match crate::service::status::report(state_dir, cycles) {
+pub fn status(state_dir: &std::path::Path, cycles: usize, json: bool, verify: bool) -> u8 {
+    match crate::service::status::report(state_dir, cycles, verify) {
         Ok(r) => {
             if json {
                 match serde_json::to_string_pretty(&r) {
@@ -665,6 +670,7 @@ pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32],
         Ok(rows) => {
             println!();
             print!("{}", crate::demo::play::render(&rows, &dir));
+            print!("{}", crate::demo::play::render_tracks(&dir));
             let published = rows.iter().filter(|r| r.published.is_some()).count();
             println!(
                 "\n{published} of {} step(s) published in {:.1} s.",
@@ -677,6 +683,9 @@ pub fn demo(dir: Option<PathBuf>, inputs_only: bool, cycle: &str, leads: &[u32],
                 dir.display()
             );
             println!("  quicklook images        the .png files beside each product");
+            println!(
+                "  cyclone tracks          the *_cyclones.nc and *_cyclones.geojson files of each cycle"
+            );
             println!(
                 "  the service's state     {me} status --state-dir {}/state",
                 dir.display()

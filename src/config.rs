@@ -56,6 +56,8 @@ pub struct Config {
     pub service: crate::service::settings::Service,
     /// Quicklook images beside each product file.
     pub quicklook: Quicklooks,
+    /// Cyclone centres and tracks, and the layers of their fields.
+    pub cyclones: Cyclones,
     /// The model feeds the service serves.
     pub feed: Vec<crate::service::settings::Feed>,
 }
@@ -280,6 +282,20 @@ pub struct Products {
     pub run_to_run: bool,
     /// PV budget along isentropic trajectories between consecutive steps (`bud_*`).
     pub pv_budget: bool,
+    /// Mean sea-level pressure (`mslp`, from the input or reduced from the 1000 hPa
+    /// height), its changes (`mslp_chg_NNh`, `mslp_r2r`) and the terrain (`orog`).
+    pub mslp: bool,
+    /// Maximum Eady growth rate of the layer `cyclones.eady_layer_hpa` (`eady`).
+    pub eady: bool,
+    /// Equivalent potential temperature on isobaric levels (`theta_e`), where the input has humidity.
+    pub theta_e: bool,
+    /// Specific and relative humidity on isentropic surfaces (`isen_q`, `isen_rh`), where the input has humidity.
+    pub isentropic_humidity: bool,
+    /// Mass-weighted mean isobaric PV of the layer `cyclones.low_pv_layer_hpa` (`low_pv`).
+    pub low_level_pv: bool,
+    /// Cyclone centres tracked through the cycle, with what the diagnostics say
+    /// around each (`*_cyclones.nc`, `*_cyclones.geojson`); needs `mslp`.
+    pub cyclones: bool,
 }
 
 impl Products {
@@ -310,6 +326,48 @@ impl Default for Products {
             thickness_change: true,
             run_to_run: true,
             pv_budget: true,
+            mslp: true,
+            eady: true,
+            theta_e: true,
+            isentropic_humidity: true,
+            low_level_pv: true,
+            cyclones: true,
+        }
+    }
+}
+
+/// Cyclone centres and tracks, and the layers of the fields they draw on.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Cyclones {
+    /// Isobaric layer [bottom, top] of the Eady growth rate, hPa.
+    pub eady_layer_hpa: [f64; 2],
+    /// Isobaric layer [bottom, top] of the low-level PV mean, hPa.
+    pub low_pv_layer_hpa: [f64; 2],
+    /// Isobaric layer [bottom, top] whose pressure-weighted mean wind steers the
+    /// tracks' first guess, hPa.
+    pub steering_layer_hpa: [f64; 2],
+    /// Interval of the isobars that must close round a centre, hPa.
+    pub contour_interval_hpa: f64,
+    /// Farthest a closed isobar may reach from its centre, km.
+    pub max_contour_radius_km: f64,
+    /// Radius round each centre within which the diagnostics are summarised, km.
+    pub radius_km: f64,
+    /// Farthest a centre may lie from its first guess, km, for steps 6 h apart
+    /// (in proportion for longer intervals).
+    pub search_radius_km: f64,
+}
+
+impl Default for Cyclones {
+    fn default() -> Self {
+        Cyclones {
+            eady_layer_hpa: [850.0, 500.0],
+            low_pv_layer_hpa: [900.0, 700.0],
+            steering_layer_hpa: [850.0, 500.0],
+            contour_interval_hpa: 0.5,
+            max_contour_radius_km: 2500.0,
+            radius_km: 500.0,
+            search_radius_km: 600.0,
         }
     }
 }
@@ -551,6 +609,7 @@ impl Config {
         {
             p.push(format!("changes.intervals_h: {h} h is outside 1 to 240 h"));
         }
+        p.extend(self.cyclones.problems());
         p.extend(self.quicklook.problems());
         p.extend(crate::service::settings::problems(
             &self.service,
@@ -558,6 +617,51 @@ impl Config {
         ));
         if !self.products.any() {
             p.push("products: every product is switched off; nothing would be made".into());
+        }
+        p
+    }
+}
+
+impl Cyclones {
+    /// Every problem with the values, as "key: reason".
+    pub fn problems(&self) -> Vec<String> {
+        let mut p = Vec::new();
+        for (key, l) in [
+            ("cyclones.eady_layer_hpa", self.eady_layer_hpa),
+            ("cyclones.low_pv_layer_hpa", self.low_pv_layer_hpa),
+            ("cyclones.steering_layer_hpa", self.steering_layer_hpa),
+        ] {
+            if !(l[0] > l[1] && l[1] > 0.0 && l[0] <= 1100.0) {
+                p.push(format!(
+                    "{key}: [{}, {}] must be [bottom, top] in hPa with bottom > top > 0, bottom at most 1100",
+                    l[0], l[1]
+                ));
+            }
+        }
+        if !(self.contour_interval_hpa >= 0.1 && self.contour_interval_hpa <= 10.0) {
+            p.push(format!(
+                "cyclones.contour_interval_hpa: {} is outside 0.1 to 10 hPa",
+                self.contour_interval_hpa
+            ));
+        }
+        for (key, v, lo, hi) in [
+            (
+                "cyclones.max_contour_radius_km",
+                self.max_contour_radius_km,
+                100.0,
+                10_000.0,
+            ),
+            ("cyclones.radius_km", self.radius_km, 50.0, 3000.0),
+            (
+                "cyclones.search_radius_km",
+                self.search_radius_km,
+                50.0,
+                3000.0,
+            ),
+        ] {
+            if !(v >= lo && v <= hi) {
+                p.push(format!("{key}: {v} km is outside {lo} to {hi} km"));
+            }
         }
         p
     }
@@ -644,6 +748,7 @@ pub fn check(text: &str, origin: &str) -> Result<Config, Vec<String>> {
     typed::<Thickness>(cleaned.get("thickness"), "thickness", &mut problems);
     typed::<Changes>(cleaned.get("changes"), "changes", &mut problems);
     typed::<Quicklooks>(cleaned.get("quicklook"), "quicklook", &mut problems);
+    typed::<Cyclones>(cleaned.get("cyclones"), "cyclones", &mut problems);
     typed::<crate::service::settings::Service>(cleaned.get("service"), "service", &mut problems);
     if let Some(feeds) = cleaned.get("feed").and_then(|f| f.as_array()) {
         for (k, f) in feeds.iter().enumerate() {

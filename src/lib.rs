@@ -21,6 +21,7 @@
 pub mod changes;
 pub mod cli;
 pub mod config;
+pub mod cyclones;
 pub mod demo;
 pub mod diagnostics;
 pub mod geometry;

@@ -29,6 +29,8 @@ use crate::ingest::params::{surface, Quantity};
 use crate::output::cf::{step_file_name, write_step, Product, StepProducts, Vertical};
 use crate::output::variables;
 
+mod synoptic;
+
 /// A problem with the input, said so an operator can act on it.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Issue {
@@ -257,6 +259,8 @@ pub struct StepReport {
     pub skipped: Option<String>,
     /// Quicklook images written beside the product.
     pub images: Vec<PathBuf>,
+    /// The cycle's cyclone tracks, written again with this step.
+    pub tracks: Vec<PathBuf>,
     /// True when the products were made but could not be written (disk full,
     /// permission denied): worth trying again, unlike a problem with the input.
     pub output_failed: bool,
@@ -268,8 +272,13 @@ struct Inventory {
     /// (quantity, level in Pa) -> field, isobaric levels.
     isobaric: BTreeMap<(Quantity, i64), FieldRef>,
     surface_pressure: Option<FieldRef>,
+    /// Pressure reduced to mean sea level.
+    mslp: Option<FieldRef>,
     /// Orography and how to turn it into metres.
     orography: Option<(FieldRef, f64)>,
+    /// Levels (Pa key) whose geopotential height is geopotential (0/3/4) to be divided by
+    /// standard gravity: levels with geopotential and no geopotential height.
+    geopotential: Vec<i64>,
 }
 
 fn pa_key(p: f64) -> i64 {
@@ -278,12 +287,16 @@ fn pa_key(p: f64) -> i64 {
 
 fn inventory(step: &Step, inputs: &[InputFile], issues: &mut Vec<Issue>) -> Inventory {
     let mut inv = Inventory::default();
+    let mut geopotential: BTreeMap<i64, FieldRef> = BTreeMap::new();
     for fr in &step.fields {
         let e = &fr.entry;
         let Some(q) = Quantity::from_wmo(e.discipline, e.category, e.number) else {
             continue;
         };
         match (e.level.kind, e.level.value) {
+            (surface::ISOBARIC, Some(p)) if p > 0.0 && q == Quantity::Geopotential => {
+                geopotential.entry(pa_key(p)).or_insert_with(|| fr.clone());
+            }
             (surface::ISOBARIC, Some(p)) if p > 0.0 => {
                 let k = (q, pa_key(p));
                 match inv.isobaric.entry(k) {
@@ -314,7 +327,23 @@ fn inventory(step: &Step, inputs: &[InputFile], issues: &mut Vec<Issue>) -> Inve
                 }
                 _ => {}
             },
+            // Some centres code it as pressure (0/3/0) at mean sea level.
+            (surface::MEAN_SEA_LEVEL, _)
+                if matches!(q, Quantity::MeanSeaLevelPressure | Quantity::Pressure) =>
+            {
+                inv.mslp.get_or_insert(fr.clone());
+            }
             _ => {}
+        }
+    }
+    // Geopotential stands in for geopotential height where a level has no height:
+    // z = Phi / g0 (WMO-No. 306 code table 4.2, 0/3/4 and 0/3/5; standard gravity).
+    for (p, fr) in geopotential {
+        if let std::collections::btree_map::Entry::Vacant(slot) =
+            inv.isobaric.entry((Quantity::GeopotentialHeight, p))
+        {
+            slot.insert(fr);
+            inv.geopotential.push(p);
         }
     }
     inv
@@ -484,6 +513,12 @@ pub fn run_step(
     let want_layer = pr.layer_pv && have_t && have_w;
     let z_levels_all = levels_of(Quantity::GeopotentialHeight);
     let want_thick = pr.thickness && (have_t || !z_levels_all.is_empty());
+    let want_moist = (pr.theta_e || pr.isentropic_humidity) && have_t;
+    let want_low_pv = pr.low_level_pv && have_t && have_w;
+    let want_mslp = pr.mslp || pr.cyclones;
+    // Without a mean sea-level pressure it is reduced from the 1000 hPa height.
+    let mslp_from_z = want_mslp && inv.mslp.is_none();
+    let at_1000 = |p: &i64| *p == pa_key(1.0e5);
     if (pr.vorticity || pr.isobaric_pv || pr.tropopause || pr.layer_pv) && !have_w {
         rep.missing
             .push("isobaric u and v: no vorticity or PV".into());
@@ -517,16 +552,19 @@ pub fn run_step(
         Iso(Quantity, i64),
         SurfacePressure,
         Orography,
+        Mslp,
     }
     let mask_by_orography =
         pr.mask_below_ground && inv.orography.is_some() && inv.surface_pressure.is_none();
     let mut wanted: Vec<(Want, FieldRef)> = Vec::new();
     for ((q, p), fr) in &inv.isobaric {
         let need = match q {
-            Quantity::Temperature => need_t,
+            Quantity::Temperature => need_t || (mslp_from_z && at_1000(p)),
             Quantity::WindU | Quantity::WindV => need_w && wind_levels.contains(p),
-            Quantity::GeopotentialHeight => need_z_products || mask_by_orography,
-            Quantity::SpecificHumidity | Quantity::RelativeHumidity => want_thick,
+            Quantity::GeopotentialHeight => {
+                need_z_products || mask_by_orography || (mslp_from_z && at_1000(p))
+            }
+            Quantity::SpecificHumidity | Quantity::RelativeHumidity => want_thick || want_moist,
             _ => false,
         };
         if need {
@@ -540,16 +578,27 @@ pub fn run_step(
             wanted.push((Want::Orography, fr.clone()));
         }
     }
-    // The model's own terrain outlines its land on the quicklooks when asked.
+    if want_mslp {
+        if let Some(fr) = &inv.mslp {
+            wanted.push((Want::Mslp, fr.clone()));
+        }
+    }
+    // The model's own terrain outlines its land on the quicklooks when asked, and is
+    // written with the mean sea-level pressure.
     let terrain_outline =
         cfg.quicklook.enabled && cfg.quicklook.outline == crate::config::OutlineKind::Terrain;
-    if terrain_outline && !wanted.iter().any(|(w, _)| *w == Want::Orography) {
+    if (terrain_outline || want_mslp) && !wanted.iter().any(|(w, _)| *w == Want::Orography) {
         if let Some((fr, _)) = &inv.orography {
             wanted.push((Want::Orography, fr.clone()));
         }
     }
     let t_decode = Instant::now();
     let mut dec = decode_all(wanted, inputs, &scan, &mut issues);
+    for p in &inv.geopotential {
+        if let Some(z) = dec.get_mut(&Want::Iso(Quantity::GeopotentialHeight, *p)) {
+            z.mapv_inplace(|phi| (f64::from(phi) / G0) as f32);
+        }
+    }
     let terrain_m: Option<Array2<f32>> = terrain_outline
         .then(|| {
             let to_m = inv.orography.as_ref().map_or(1.0, |o| o.1) as f32;
@@ -559,6 +608,23 @@ pub fn run_step(
     rep.fields_used = dec.len();
     rep.decode_seconds = t_decode.elapsed().as_secs_f64();
     let t_compute = Instant::now();
+    // Mean sea-level pressure and the terrain, before anything is masked below ground.
+    let mut surface_products: Vec<Product> = Vec::new();
+    if want_mslp {
+        let input = dec.remove(&Want::Mslp);
+        let iso = |q| dec.get(&Want::Iso(q, pa_key(1.0e5)));
+        let z1000 = iso(Quantity::GeopotentialHeight).filter(|_| mslp_from_z);
+        let t1000 = iso(Quantity::Temperature).filter(|_| mslp_from_z);
+        let made = synoptic::mslp(input, z1000, t1000);
+        if made.is_none() {
+            rep.missing
+                .push("mean sea-level pressure, or the 1000 hPa height: no mslp".into());
+        }
+        surface_products.extend(made);
+        if let (Some(oro), Some((_, scale))) = (dec.get(&Want::Orography), &inv.orography) {
+            surface_products.push(synoptic::orography(oro, *scale));
+        }
+    }
 
     // The isobaric levels of the products: every level with temperature or winds.
     let (ny, nx) = grid.shape();
@@ -587,20 +653,12 @@ pub fn run_step(
         }
     } else if let Some(oro) = dec.remove(&Want::Orography) {
         let scale = inv.orography.as_ref().map(|o| o.1).unwrap_or(1.0);
-        let mut any = false;
-        for (k, lk) in levels.iter().enumerate() {
-            if let Some(z) = dec.get(&Want::Iso(Quantity::GeopotentialHeight, *lk)) {
-                any = true;
-                let mut m = Array2::from_elem((ny, nx), false);
-                ndarray::Zip::from(&mut m)
-                    .and(z)
-                    .and(&oro)
-                    .for_each(|m, &z, &o| {
-                        *m = z.is_finite() && o.is_finite() && f64::from(z) < f64::from(o) * scale;
-                    });
-                below[k] = Some(m);
-            }
-        }
+        let z_at: Vec<Option<&Array2<f32>>> = levels
+            .iter()
+            .map(|lk| dec.get(&Want::Iso(Quantity::GeopotentialHeight, *lk)))
+            .collect();
+        let any = z_at.iter().any(Option::is_some);
+        below = below_ground_by_heights(&p_pa, &z_at, &oro, scale);
         masking = if any {
             "levels whose geopotential height is below the orography are missing".to_string()
         } else {
@@ -637,12 +695,12 @@ pub fn run_step(
     let u3 = if need_w { stack(Quantity::WindU) } else { None };
     let v3 = if need_w { stack(Quantity::WindV) } else { None };
     let z3 = stack(Quantity::GeopotentialHeight);
-    let q3 = if want_thick {
+    let q3 = if want_thick || want_moist {
         stack(Quantity::SpecificHumidity)
     } else {
         None
     };
-    let rh3 = if want_thick && q3.is_none() {
+    let rh3 = if (want_thick || want_moist) && q3.is_none() {
         stack(Quantity::RelativeHumidity)
     } else {
         None
@@ -778,6 +836,45 @@ pub fn run_step(
     let t_family = Instant::now();
     // Potential temperature and static stability.
     let mut st = t3.as_ref().map(|t| stability::stability(t.view(), &p_pa));
+    // Relative humidity on the levels, for theta_e and the isentropic surfaces.
+    let rh_moist = if want_moist {
+        synoptic::relative_humidity(q3.as_ref(), rh3.as_ref(), t3.as_ref(), &p_pa)
+    } else {
+        None
+    };
+    if want_moist && rh_moist.is_none() {
+        rep.missing
+            .push("isobaric humidity: no theta_e, isen_q or isen_rh".into());
+    }
+    {
+        let syn = synoptic::Stacks {
+            p: &p_pa,
+            t: t3.as_ref(),
+            u: ug3,
+            v: vg3,
+            z: z3.as_ref(),
+            theta: st.as_ref().map(|s| &s.theta),
+            rh: rh_moist.as_ref(),
+            f: &plane.f,
+            rotation: plane.rotation.as_ref(),
+        };
+        if pr.theta_e {
+            fields.extend(synoptic::theta_e(&syn).map(seal));
+        }
+        if pr.eady && have_t && have_w {
+            match synoptic::eady(&syn, cfg.cyclones.eady_layer_hpa) {
+                Ok(p) => surface_products.push(p),
+                Err(m) => rep.missing.push(m),
+            }
+        }
+        if pr.cyclones {
+            surface_products.extend(
+                synoptic::steering(&syn, cfg.cyclones.steering_layer_hpa)
+                    .into_iter()
+                    .flatten(),
+            );
+        }
+    }
     // Temperature itself is needed later only for a thickness layer without heights.
     let has_z_at = |hpa: f64| {
         z_levels_all
@@ -803,7 +900,7 @@ pub fn run_step(
     // Isobaric PV in its full form.
     let mut pv3: Option<Array3<f32>> = None;
     if let (Some(st), Some(eta), Some(ug), Some(vg)) = (&st, &eta3, ug3, vg3) {
-        if want_pv || want_trop {
+        if want_pv || want_trop || want_low_pv {
             let lnp: Vec<f64> = p_pa.iter().map(|p| p.ln()).collect();
             let mut pv = Array3::from_elem((nz, ny, nx), f32::NAN);
             pv.axis_iter_mut(Axis(0))
@@ -828,6 +925,9 @@ pub fn run_step(
     }
     // Absolute vorticity is needed by PV only.
     drop(eta3);
+    if let (true, Some(pv)) = (want_low_pv, &pv3) {
+        surface_products.push(synoptic::low_pv(pv, &p_pa, cfg.cyclones.low_pv_layer_hpa));
+    }
 
     let stab_prod = st
         .as_mut()
@@ -920,6 +1020,10 @@ pub fn run_step(
         let z_s = z3
             .as_ref()
             .map(|z| isentropic::on_surfaces(z.view(), &surf));
+        let rh_s = rh_moist
+            .as_ref()
+            .filter(|_| pr.isentropic_humidity)
+            .map(|r| isentropic::on_surfaces(r.view(), &surf));
         let p_s = std::mem::take(&mut surf.pressure);
         drop(surf);
         let mut t_s = Array3::from_elem((ns, ny, nx), f32::NAN);
@@ -928,6 +1032,9 @@ pub fn run_step(
             .par_for_each(|(s, _, _), t, &p| {
                 *t = isentropic::temperature_on_surface(targets[s], f64::from(p)) as f32;
             });
+        if let Some(rh_s) = rh_s {
+            made.extend(synoptic::isentropic_humidity(rh_s, &p_s, &t_s).map(seal));
+        }
         made.push(sealed(variables::ISEN_P, Vertical::Theta, p_s));
         if let Some(z_s) = z_s {
             let mut m = Array3::from_elem((ns, ny, nx), f32::NAN);
@@ -1112,8 +1219,27 @@ pub fn run_step(
     fields.extend(stab_prod);
     fields.extend(n2_prod);
     fields.extend(pv_prod);
+    for p in &mut surface_products {
+        in_si_units(p);
+    }
+    fields.extend(surface_products);
     if let (true, Some(z)) = (want_thick || want_isen, &z3) {
-        fields.push(sealed_copy(variables::Z, Vertical::Pressure, z));
+        let mut prod = sealed_copy(variables::Z, Vertical::Pressure, z);
+        if !inv.geopotential.is_empty() {
+            let hpa: Vec<String> = inv
+                .geopotential
+                .iter()
+                .map(|p| format!("{}", *p as f64 / 1e4))
+                .collect();
+            prod.notes.push((
+                "leeward_method",
+                format!(
+                    "geopotential (WMO 0/3/4) divided by standard gravity {G0} m s-2 at {} hPa",
+                    hpa.join(", ")
+                ),
+            ));
+        }
+        fields.push(prod);
     }
 
     // Changes in time, from the published files of earlier steps and cycles.
@@ -1139,7 +1265,7 @@ pub fn run_step(
     let kept = cfg.output.kept_bits();
     let as_published: Vec<(&'static str, Array3<f32>)> = fields
         .iter()
-        .filter(|f| matches!(f.spec.name, "thick" | "z" | "trop_p"))
+        .filter(|f| matches!(f.spec.name, "thick" | "z" | "trop_p" | "mslp"))
         .map(|f| (f.spec.name, f.published(kept.bits(f.spec.name))))
         .collect();
     let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
@@ -1151,6 +1277,7 @@ pub fn run_step(
             ("thick", &p_layer_coords),
             ("z", &p_pa),
             ("trop_p", &pv_coords),
+            ("mslp", &Vec::new()),
         ] {
             if let Some(a) = find(name) {
                 r2r_fields.push((name, coords.clone(), a));
@@ -1164,6 +1291,15 @@ pub fn run_step(
     };
     if let Some(th) = thick_now {
         change_products.extend(changes::within_cycle(&run, th, &cfg.changes.intervals_h));
+    }
+    let mslp_now = find("mslp").map(|a| (&[][..], a));
+    if let Some(m) = mslp_now {
+        change_products.extend(changes::within_cycle_of(
+            &run,
+            changes::MSLP_TENDENCY,
+            m,
+            &cfg.changes.intervals_h,
+        ));
     }
     if pr.run_to_run {
         change_products.extend(changes::run_to_run(&run, &r2r_fields));
@@ -1248,6 +1384,16 @@ pub fn run_step(
                 cfg.output.deflate_level,
                 &kept,
             );
+            if let Some(m) = mslp_now {
+                rep.updated.extend(changes::update_later_of(
+                    &run,
+                    changes::MSLP_TENDENCY,
+                    m,
+                    &cfg.changes.intervals_h,
+                    cfg.output.deflate_level,
+                    &kept,
+                ));
+            }
             if pr.pv_budget && want_layer {
                 let layout = match &products.grid.horizontal {
                     Horizontal::LatLon { lat, lon, .. } => budget::Layout::Sphere {
@@ -1292,6 +1438,17 @@ pub fn run_step(
                     cfg.output.deflate_level,
                     &kept,
                 ));
+            }
+            // The cycle's tracks, from every step published so far; a batch job's
+            // staged step is not published yet: the service makes them on taking it.
+            if pr.cyclones && out.stage.is_none() && mslp_now.is_some() {
+                rep.tracks = crate::cyclones::cycle::update(
+                    &run,
+                    &path,
+                    &cfg.cyclones,
+                    &cfg.quicklook,
+                    Some(&products.grid),
+                );
             }
             rep.changes_seconds = t_changes.elapsed().as_secs_f64();
             info!(cycle = %cycle, step = lead, file = %path.display(), products = ?rep.products, "step written");
@@ -1487,6 +1644,56 @@ pub fn grid_suffixes(steps: &[Step]) -> Vec<Option<usize>> {
         .collect()
 }
 
+/// Below-ground masks of the levels `p` (Pa, increasing) from orography `oro` (times
+/// `scale` to metres) and the geopotential height `z_at` of the levels that have it: a
+/// level is below the ground where its height is below the orography. A level without
+/// heights takes its height linearly in ln p from the nearest levels above and below that
+/// have them; below the lowest of those it is below the ground where that level is
+/// (heights fall downward), and above the highest it is not masked.
+fn below_ground_by_heights(
+    p: &[f64],
+    z_at: &[Option<&Array2<f32>>],
+    oro: &Array2<f32>,
+    scale: f64,
+) -> Vec<Option<Array2<bool>>> {
+    let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
+    let have: Vec<usize> = (0..p.len()).filter(|&k| z_at[k].is_some()).collect();
+    let under = |z: f64, o: f32| z.is_finite() && o.is_finite() && z < f64::from(o) * scale;
+    (0..p.len())
+        .map(|k| {
+            if let Some(z) = z_at[k] {
+                return Some(
+                    ndarray::Zip::from(z)
+                        .and(oro)
+                        .map_collect(|&z, &o| under(f64::from(z), o)),
+                );
+            }
+            let above = have.iter().rev().copied().find(|&a| a < k);
+            let below = have.iter().copied().find(|&b| b > k);
+            match (above, below) {
+                (Some(a), Some(b)) => {
+                    let w = (lnp[k] - lnp[b]) / (lnp[a] - lnp[b]);
+                    let (za, zb) = (z_at[a]?, z_at[b]?);
+                    Some(
+                        ndarray::Zip::from(za)
+                            .and(zb)
+                            .and(oro)
+                            .map_collect(|&za, &zb, &o| {
+                                under(f64::from(zb) + w * f64::from(za - zb), o)
+                            }),
+                    )
+                }
+                (Some(a), None) => Some(
+                    ndarray::Zip::from(z_at[a]?)
+                        .and(oro)
+                        .map_collect(|&z, &o| under(f64::from(z), o)),
+                ),
+                _ => None,
+            }
+        })
+        .collect()
+}
+
 /// d f / d p of every column of `f` (levels, rows, columns), from three-point
 /// differences in ln p (see `stability::column_derivative`): df/dp = (1/p) df/d ln p.
 fn vertical_derivative_at(
@@ -1516,17 +1723,21 @@ fn vertical_derivative_at(
             ) / p[k];
         }
     }
-    // Otherwise the derivative at k looks at most two levels either side: the
-    // same column rule on a window of the column gives the same value.
-    let (lo, hi) = (k.saturating_sub(2), (k + 3).min(nz));
-    let mut col = [0.0f64; 5];
-    let mut d = [0.0f64; 5];
-    for (n, kk) in (lo..hi).enumerate() {
-        col[n] = f64::from(f[(kk, j, i)]);
+    // Otherwise the column rule on the whole column: the nearest valid levels may lie
+    // beyond levels that lack this quantity.
+    let mut col = [0.0f64; 128];
+    let mut d = [0.0f64; 128];
+    if nz > col.len() {
+        let c: Vec<f64> = (0..nz).map(|kk| f64::from(f[(kk, j, i)])).collect();
+        let mut dv = vec![0.0; nz];
+        stability::column_derivative(&c, lnp, &mut dv);
+        return dv[k] / p[k];
     }
-    let w = hi - lo;
-    stability::column_derivative(&col[..w], &lnp[lo..hi], &mut d[..w]);
-    d[k - lo] / p[k]
+    for (kk, c) in col.iter_mut().enumerate().take(nz) {
+        *c = f64::from(f[(kk, j, i)]);
+    }
+    stability::column_derivative(&col[..nz], lnp, &mut d[..nz]);
+    d[k] / p[k]
 }
 
 /// A stable fingerprint of a grid definition (FNV-1a, 64 bits, hex): the same

@@ -46,14 +46,19 @@ fn good_bad_and_nothing_exit_codes() {
     let out = d.join("out");
     let out_s = out.to_str().unwrap();
 
-    // All good: 0, one file per step.
+    // All good: 0, one file per step, and the cycle's cyclone tracks.
     let mut args = vec!["process", "--out", out_s];
     args.extend(&good);
     let (code, stdout, _) = run(&args);
     assert_eq!(code, 0, "{stdout}");
     assert_eq!(
         nc_files(&out),
-        vec!["c255_20260314T0000Z_000h.nc", "c255_20260314T0000Z_006h.nc"]
+        vec![
+            "c255_20260314T0000Z_000h.nc",
+            "c255_20260314T0000Z_006h.nc",
+            "c255_20260314T0000Z_cyclones.geojson",
+            "c255_20260314T0000Z_cyclones.nc"
+        ]
     );
     let before = std::fs::read(out.join("c255_20260314T0000Z_000h.nc")).unwrap();
 

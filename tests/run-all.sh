@@ -19,4 +19,4 @@ cargo fmt --check
 cargo clippy --all-targets --quiet -- -D warnings
 cargo build --quiet
 cargo test --quiet
-LEEWARD_BIN="$(pwd)/target/debug/leeward" "$py" -m pytest -q -rs tests/python
+LEEWARD_BIN="$(pwd)/target/debug/leeward" "$py" -m pytest -q -rs --durations=30 tests/python

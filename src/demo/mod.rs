@@ -87,7 +87,7 @@ fn valid_hours(reference: NaiveDateTime, lead: u32) -> f64 {
     (reference - default_cycle()).num_minutes() as f64 / 60.0 + f64::from(lead)
 }
 
-/// The GRIB2 messages of one step: terrain and surface pressure first, then per
+/// The GRIB2 messages of one step: terrain, surface pressure and mean sea-level pressure first, then per
 /// level from the bottom up temperature, specific humidity, height and winds.
 fn step_messages(
     s: &StepFields,
@@ -121,6 +121,8 @@ fn step_messages(
         &s.surface_pressure,
         D_PRESSURE,
     ));
+    // Mean sea level (code table 4.5 type 101): pressure reduced to mean sea level.
+    bytes.extend(message((0, 3, 1), (101, 0.0), &s.mslp, D_PRESSURE));
     for l in &s.levels {
         let surface = (100, l.p * 100.0);
         for (param, values, d) in [
@@ -209,10 +211,11 @@ mod tests {
         let size = std::fs::metadata(&a[0]).unwrap().len();
         assert!(size < 1_600_000, "{size} bytes");
         let (fa, fb) = (decoded(&a[0]), decoded(&b[0]));
-        // Terrain and surface pressure, then 5 quantities on 21 levels.
-        assert_eq!(fa.len(), 2 + 5 * 21);
+        // Terrain, surface pressure and mean sea-level pressure, then 5 quantities on 21 levels.
+        assert_eq!(fa.len(), 3 + 5 * 21);
         assert_eq!(fa[0].0, (0, 3, 5, 1, 0));
         assert_eq!(fa[1].0, (0, 3, 0, 1, 0));
+        assert_eq!(fa[2].0, (0, 3, 1, 101, 0));
         for ((ka, va), (kb, vb)) in fa.iter().zip(&fb) {
             assert_eq!(ka, kb);
             assert_eq!(va, vb, "{ka:?} differs between the cycles");
@@ -228,7 +231,7 @@ mod tests {
         let bytes = std::fs::read(&f[1]).unwrap();
         let cat = catalogue(&bytes);
         assert!(cat.problems.is_empty(), "{:?}", cat.problems);
-        assert_eq!(cat.fields.len(), 2 + 5 * 21);
+        assert_eq!(cat.fields.len(), 3 + 5 * 21);
         let first = &cat.fields[0];
         let (g, _) = crate::ingest::grid::parse_grid(&bytes[first.sect3.clone()]).unwrap();
         assert_eq!(g.shape(), (37, 72));

@@ -215,6 +215,98 @@ pub fn render(rows: &[Row], dir: &Path) -> String {
     o
 }
 
+/// The cyclone tracks of every feed's cycle under `dir`/products, as a table:
+/// per track its steps and central pressures, then the facts at its latest point.
+pub fn render_tracks(dir: &Path) -> String {
+    let mut files: Vec<PathBuf> = Vec::new();
+    let feeds = std::fs::read_dir(dir.join("products"))
+        .into_iter()
+        .flatten()
+        .flatten();
+    for feed in feeds {
+        for cycle in std::fs::read_dir(feed.path())
+            .into_iter()
+            .flatten()
+            .flatten()
+        {
+            for f in std::fs::read_dir(cycle.path())
+                .into_iter()
+                .flatten()
+                .flatten()
+            {
+                let p = f.path();
+                if p.to_string_lossy().ends_with("_cyclones.geojson") {
+                    files.push(p);
+                }
+            }
+        }
+    }
+    files.sort();
+    let mut o = String::new();
+    for path in files {
+        let Some(g) = std::fs::read(&path)
+            .ok()
+            .and_then(|b| serde_json::from_slice::<serde_json::Value>(&b).ok())
+        else {
+            continue;
+        };
+        let shown = path
+            .strip_prefix(dir)
+            .unwrap_or(&path)
+            .display()
+            .to_string();
+        o.push_str(&format!("\nCyclone tracks in {shown}:\n"));
+        let features = g["features"].as_array().cloned().unwrap_or_default();
+        let tracks: Vec<&serde_json::Value> = features
+            .iter()
+            .filter(|f| f["properties"]["kind"] == "track")
+            .collect();
+        if tracks.is_empty() {
+            o.push_str("  no closed low on any step\n");
+        }
+        for t in tracks {
+            o.push_str(&track_lines(&t["properties"]));
+        }
+    }
+    o
+}
+
+/// One track: its points, then the facts at the latest.
+fn track_lines(p: &serde_json::Value) -> String {
+    let points = p["points"].as_array().cloned().unwrap_or_default();
+    let steps: Vec<String> = points
+        .iter()
+        .map(|q| {
+            format!(
+                "+{}h {:.1}",
+                q["lead_hours"].as_f64().unwrap_or(f64::NAN),
+                q["central_pressure_hpa"].as_f64().unwrap_or(f64::NAN)
+            )
+        })
+        .collect();
+    let mut o = format!(
+        "  track {} ({} points, central pressure hPa): {}\n",
+        p["track"],
+        points.len(),
+        steps.join(", ")
+    );
+    if let Some(last) = points.last() {
+        let where_ = format!(
+            "{:.1} N {:.1} E",
+            last["lat"].as_f64().unwrap_or(f64::NAN),
+            last["lon"].as_f64().unwrap_or(f64::NAN)
+        );
+        o.push_str(&format!(
+            "    at +{}h, {where_}:\n",
+            last["lead_hours"].as_f64().unwrap_or(f64::NAN)
+        ));
+        for line in last["facts"].as_array().into_iter().flatten() {
+            o.push_str(&format!("      {}\n", line.as_str().unwrap_or_default()));
+        }
+    }
+    o
+}
+
 /// A file in every directory `leeward demo` plays into: how a later run knows
 /// the directory holds an earlier demo (and nothing of the user's).
 pub const MARKER: &str = ".leeward-demo";

@@ -131,6 +131,28 @@ struct Heating {
     t_scale: f64,
 }
 
+/// A low that forms in the lee of the range and deepens as it drifts away from it,
+/// with heating round its centre in the lower troposphere.
+#[derive(Debug, Clone, Copy)]
+struct LeeLow {
+    /// Centre at valid hour 0, degrees.
+    lat0: f64,
+    lon0: f64,
+    /// Its drift toward east and north, m/s.
+    u: f64,
+    v: f64,
+    /// Depth at 1000 hPa at hour 0, gpm, and what it gains over its deepening.
+    depth0: f64,
+    deepen: f64,
+    /// Middle of the deepening, valid hours, and its time scale, hours.
+    t_mid: f64,
+    t_scale: f64,
+    /// e-folding radius, km.
+    radius_km: f64,
+    /// Warming at 650 hPa round the centre by the end of the deepening, K.
+    heat: f64,
+}
+
 /// One scenario: the shapes and amplitudes of its weather.
 #[derive(Debug, Clone, Copy)]
 struct Weather {
@@ -162,6 +184,8 @@ struct Weather {
     /// (km for a single trough, degrees of longitude for a zonal wave).
     low: f64,
     low_ahead: f64,
+    /// The low in the lee of the range.
+    lee_low: LeeLow,
 }
 
 /// The regional scenario: a westerly jet over a range along 8 E, a trough coming
@@ -205,6 +229,18 @@ const REGIONAL: Weather = Weather {
     lee_reach: 1300.0,
     low: 40.0,
     low_ahead: 900.0,
+    lee_low: LeeLow {
+        lat0: 46.5,
+        lon0: 11.5,
+        u: 1.5,
+        v: 3.0,
+        depth0: 20.0,
+        deepen: 150.0,
+        t_mid: 30.0,
+        t_scale: 12.0,
+        radius_km: 420.0,
+        heat: 2.5,
+    },
 };
 
 /// The global scenario: jets in both hemispheres, wavenumber 5 (north) and 4
@@ -248,6 +284,18 @@ const GLOBAL: Weather = Weather {
     lee_reach: 1.0,
     low: 30.0,
     low_ahead: 18.0,
+    lee_low: LeeLow {
+        lat0: 42.0,
+        lon0: -96.0,
+        u: 3.0,
+        v: 3.0,
+        depth0: 20.0,
+        deepen: 90.0,
+        t_mid: 30.0,
+        t_scale: 12.0,
+        radius_km: 800.0,
+        heat: 2.5,
+    },
 };
 
 fn wrap180(d: f64) -> f64 {
@@ -308,6 +356,34 @@ fn wave_shape(w: &Weather, lat: f64, lon: f64, t: f64) -> (f64, f64) {
     }
 }
 
+impl LeeLow {
+    /// Centre at valid hour `t`, degrees: a straight drift from its place at hour 0.
+    fn centre(&self, t: f64) -> (f64, f64) {
+        let (lat, lon) = advance(self.lat0, self.lon0, self.u, self.v, t);
+        (lat, wrap180(lon))
+    }
+
+    /// The share of its deepening done by valid hour `t`, 0..1.
+    fn grown(&self, t: f64) -> f64 {
+        0.5 * (1.0 + ((t - self.t_mid) / self.t_scale).tanh())
+    }
+
+    /// Depth at 1000 hPa at valid hour `t`, gpm.
+    fn depth(&self, t: f64) -> f64 {
+        self.depth0 + self.deepen * self.grown(t)
+    }
+
+    /// Its shape at (lat, lon) at hour `t`, 1 at the centre.
+    fn shape(&self, lat: f64, lon: f64, t: f64) -> f64 {
+        let (la, lo) = self.centre(t);
+        let (ex, ny) = (
+            east_km(lat, lon, lo),
+            (lat - la) * DEG * EARTH_RADIUS / 1000.0,
+        );
+        gauss(ex.hypot(ny) / self.radius_km)
+    }
+}
+
 /// Everything about one column that does not depend on pressure.
 #[derive(Debug, Clone, Copy)]
 struct Setup {
@@ -326,6 +402,9 @@ struct Setup {
     /// 0..1: moistening by the heating, drying in the lee.
     moist: f64,
     dry: f64,
+    /// Heating round the lee low, K at 650 hPa, and its moistening, 0..1.
+    storm: f64,
+    storm_moist: f64,
     /// Reference height at 1000 hPa without the compensated anomalies, gpm.
     z1000: f64,
     /// Terrain height, gpm.
@@ -443,6 +522,11 @@ fn setup(w: &Weather, lat: f64, lon: f64, t: f64, hn: &HeatNow) -> Setup {
         }
     };
 
+    // The lee low, and its heating a little downstream (east) of its centre.
+    let ll = &w.lee_low;
+    let ll_shape = ll.shape(lat, lon, t);
+    let storm = ll.shape(lat, lon - 1.5, t);
+
     Setup {
         t1000: 281.0 - w.zone_contrast * tau,
         c_trop: R_DRY * lapse / 1000.0 / G0,
@@ -457,7 +541,9 @@ fn setup(w: &Weather, lat: f64, lon: f64, t: f64, hn: &HeatNow) -> Setup {
         heat: h.gain * hn.gained * patch,
         moist: hn.active * patch,
         dry: 0.35 * lee_strength * lee_shape,
-        z1000: 95.0 - 40.0 * zone(lat) - w.low * low,
+        storm: ll.heat * ll.grown(t) * storm,
+        storm_moist: storm,
+        z1000: 95.0 - 40.0 * zone(lat) - w.low * low - ll.depth(t) * ll_shape,
         terrain,
     }
 }
@@ -485,7 +571,8 @@ fn point(s: &Setup, p: f64) -> Point {
     let dome = -s.dome * (-x / 0.35).exp();
     let lee = s.lee * gauss((p - 800.0) / 170.0);
     let heat = s.heat * gauss((p - 500.0) / 120.0);
-    let t = base + dome + lee + heat;
+    let storm = s.storm * gauss((p - 650.0) / 150.0);
+    let t = base + dome + lee + heat + storm;
     // Relative humidity: moist low levels, dry aloft; drier in the lee, near
     // saturation where the heating goes on. Taken on the tropospheric branch so
     // that humidity keeps falling with height through the tropopause.
@@ -493,11 +580,12 @@ fn point(s: &Setup, p: f64) -> Point {
     let mut rh = rh_bg * (1.0 - s.dry * gauss((p - 800.0) / 200.0));
     let deep = ((p - 560.0) / 250.0).powi(4);
     rh += (0.97 - rh) * s.moist * (-deep).exp();
-    let q_trop = specific_humidity_from_rh(100.0 * rh, trop + dome + lee + heat, p * 100.0);
+    rh += (0.95 - rh) * s.storm_moist * (-((p - 750.0) / 250.0).powi(4)).exp();
+    let q_trop = specific_humidity_from_rh(100.0 * rh, trop + dome + lee + heat + storm, p * 100.0);
     let q = (1.0 - w_strat) * q_trop + w_strat * Q_STRATOSPHERE;
     Point {
         t,
-        compensated: dome + lee + HEAT_COMPENSATED * heat,
+        compensated: dome + lee + HEAT_COMPENSATED * (heat + storm),
         q,
     }
 }
@@ -510,6 +598,8 @@ struct Column {
     z: [f64; 21],
     surface_pressure: f64,
     terrain: f64,
+    /// Pressure reduced to mean sea level, Pa.
+    mslp: f64,
 }
 
 fn integrate_from(s: &Setup, a: f64, b: f64) -> (f64, f64) {
@@ -541,6 +631,7 @@ fn column(w: &Weather, lat: f64, lon: f64, t: f64, hn: &HeatNow) -> Column {
         z: [0.0; 21],
         surface_pressure: f64::NAN,
         terrain: s.terrain,
+        mslp: f64::NAN,
     };
     // Hypsometric equation upward from 1000 hPa: Z(p) = Z(1000) + (R/g) int_p^1000 Tv dln p.
     let mut tv_int = [0.0; 21];
@@ -575,6 +666,11 @@ fn column(w: &Weather, lat: f64, lon: f64, t: f64, hn: &HeatNow) -> Column {
         lnps = p0.ln() - (s.terrain - z0) * G0 / (R_DRY * tv);
     }
     col.surface_pressure = lnps.exp() * 100.0;
+    // Mean sea-level pressure as the scenario's model reduces it: from 1000 hPa to
+    // z = 0 with the 1000 hPa virtual temperature warmed by 6.5 K/km over half the
+    // depth (hypsometric equation).
+    let tv_mean = virtual_temperature(col.t[0], col.q[0]) + 0.5 * 0.0065 * col.z[0];
+    col.mslp = 1.0e5 * (G0 * col.z[0] / (R_DRY * tv_mean)).exp();
     col
 }
 
@@ -631,6 +727,8 @@ pub struct StepFields {
     pub terrain: Vec<f64>,
     /// Surface pressure, Pa.
     pub surface_pressure: Vec<f64>,
+    /// Pressure reduced to mean sea level, Pa.
+    pub mslp: Vec<f64>,
     /// Every level, from the bottom up.
     pub levels: Vec<LevelFields>,
 }
@@ -652,6 +750,7 @@ fn gather(cols: &[(Column, [f64; 21], [f64; 21])]) -> StepFields {
     StepFields {
         terrain: cols.iter().map(|c| c.0.terrain).collect(),
         surface_pressure: cols.iter().map(|c| c.0.surface_pressure).collect(),
+        mslp: cols.iter().map(|c| c.0.mslp).collect(),
         levels,
     }
 }
@@ -801,6 +900,11 @@ pub fn global_step(valid_h: f64) -> StepFields {
 pub fn heating_centre(valid_h: f64) -> (f64, f64) {
     let h = heat_now(&REGIONAL, valid_h);
     (h.lat, h.lon)
+}
+
+/// Centre of the regional scenario's lee low at `valid_h` (latitude, longitude).
+pub fn lee_low_centre(valid_h: f64) -> (f64, f64) {
+    REGIONAL.lee_low.centre(valid_h)
 }
 
 /// Centre of the global scenario's heating patch at `valid_h` (latitude, longitude).
@@ -996,9 +1100,21 @@ mod tests {
 
     #[test]
     fn the_lee_trough_deepens_as_the_trough_comes() {
+        // The lee trough alone: the lee low, which forms in it and drifts away, left out.
+        let no_low = Weather {
+            lee_low: LeeLow {
+                depth0: 0.0,
+                deepen: 0.0,
+                heat: 0.0,
+                ..REGIONAL.lee_low
+            },
+            ..REGIONAL
+        };
         let ps: Vec<f64> = [0.0, 12.0, 24.0, 36.0, 48.0]
             .iter()
-            .map(|&t| regional_column(47.0, 11.5, t).surface_pressure / 100.0)
+            .map(|&t| {
+                column(&no_low, 47.0, 11.5, t, &heat_now(&no_low, t)).surface_pressure / 100.0
+            })
             .collect();
         assert!(ps.windows(2).all(|w| w[1] < w[0]), "{ps:?}");
         assert!(ps[0] - ps[4] > 3.0, "{ps:?}");
@@ -1039,6 +1155,39 @@ mod tests {
         let e = c.q[10] * 50_000.0 / (0.622 + 0.378 * c.q[10]);
         let rh = e / saturation_vapour_pressure(c.t[10]);
         assert!(rh > 0.9, "RH {rh}");
+    }
+
+    #[test]
+    fn the_lee_low_deepens_as_it_drifts_from_the_range() {
+        // Its centre is the lowest mean sea-level pressure within 300 km, and that pressure
+        // falls by more than 15 hPa over the 48 hours, fastest near hour 30.
+        let at = |t: f64| {
+            let (la, lo) = REGIONAL.lee_low.centre(t);
+            let c = regional_column(la, lo, t).mslp;
+            let ring = (0..8)
+                .map(|k| {
+                    let a = f64::from(k) * std::f64::consts::FRAC_PI_4;
+                    let (dla, dlo) = (2.5 * a.sin(), 2.5 * a.cos() / (la * DEG).cos());
+                    regional_column(la + dla, lo + dlo, t).mslp
+                })
+                .fold(f64::INFINITY, f64::min);
+            (c, ring)
+        };
+        let p: Vec<(f64, f64)> = [0.0, 24.0, 36.0, 48.0].iter().map(|&t| at(t)).collect();
+        eprintln!("lee low (centre, lowest 250 km away), Pa: {p:?}");
+        // At hour 0 it is a dent in the lee trough; from hour 24 the lowest point round it.
+        for (c, ring) in &p[1..] {
+            assert!(c < ring, "{p:?}");
+        }
+        assert!(p[0].0 - p[3].0 > 1500.0, "{p:?}");
+        // Faster between hours 24 and 36 than over the first day.
+        assert!((p[1].0 - p[3].0) / 12.0 > (p[0].0 - p[1].0) / 24.0, "{p:?}");
+        // Downstream (east) of the crest, and it ends inside the grid.
+        let (la, lo) = lee_low_centre(48.0);
+        assert!(
+            lo > 12.0 && lo < 17.0 && la > 49.0 && la < 53.0,
+            "{la} {lo}"
+        );
     }
 
     #[test]

@@ -5,11 +5,14 @@
 //! function carries its equation and source in its doc comment and a
 //! closed-form test beside it.
 
+pub mod baroclinic;
 pub mod budget;
 pub mod constants;
 pub mod horizontal;
 pub mod isentropic;
+pub mod moisture;
 pub mod pv;
+pub mod sea_level;
 pub mod stability;
 pub mod thickness;
 pub mod tropopause;

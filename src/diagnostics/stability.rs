@@ -17,44 +17,52 @@ pub fn potential_temperature(t: f64, p: f64) -> f64 {
     t * (P0 / p).powf(KAPPA)
 }
 
-/// Derivative of one column `f` with respect to `x` (ascending), three-point:
-/// centred where both neighbours are valid, one-sided from the two valid
-/// levels on one side where the other is missing or absent, two-point where
-/// only one neighbour is valid, NaN where none is.
+/// Derivative of one column `f` with respect to `x` (ascending), three-point on the
+/// column's valid levels: a level where `f` is missing (a level that carries other
+/// quantities but not this one, or below the ground) is stepped over, so the
+/// neighbours of a valid level are the nearest valid levels above and below it.
+/// Centred where both exist, one-sided from the two nearest valid levels on one side
+/// at the ends, two-point where the column has only two valid levels, NaN where a
+/// level is missing or alone.
 pub fn column_derivative(f: &[f64], x: &[f64], out: &mut [f64]) {
     let n = f.len().min(x.len()).min(out.len());
-    let ok = |k: usize| f[k].is_finite();
+    out[..n].fill(f64::NAN);
+    let mut valid = [0usize; 128];
+    let mut m = 0;
     for k in 0..n {
-        out[k] = f64::NAN;
-        if !ok(k) {
-            continue;
+        if f[k].is_finite() {
+            if m == valid.len() {
+                // More levels than any model carries: fall back to a heap copy.
+                let all: Vec<usize> = (0..n).filter(|&k| f[k].is_finite()).collect();
+                derivative_on(&all, f, x, out);
+                return;
+            }
+            valid[m] = k;
+            m += 1;
         }
-        let below = k + 1 < n && ok(k + 1);
-        let above = k >= 1 && ok(k - 1);
-        out[k] = if below && above {
-            nonuniform_centred(f[k - 1], f[k], f[k + 1], x[k] - x[k - 1], x[k + 1] - x[k])
-        } else if below && k + 2 < n && ok(k + 2) {
-            nonuniform_one_sided(
-                f[k],
-                f[k + 1],
-                f[k + 2],
-                x[k + 1] - x[k],
-                x[k + 2] - x[k + 1],
-            )
-        } else if above && k >= 2 && ok(k - 2) {
-            nonuniform_one_sided(
-                f[k],
-                f[k - 1],
-                f[k - 2],
-                x[k - 1] - x[k],
-                x[k - 2] - x[k - 1],
-            )
-        } else if below {
-            (f[k + 1] - f[k]) / (x[k + 1] - x[k])
-        } else if above {
-            (f[k] - f[k - 1]) / (x[k] - x[k - 1])
+    }
+    derivative_on(&valid[..m], f, x, out);
+}
+
+/// [`column_derivative`] at the levels `v` (ascending indices of the valid levels).
+fn derivative_on(v: &[usize], f: &[f64], x: &[f64], out: &mut [f64]) {
+    let m = v.len();
+    if m < 2 {
+        return;
+    }
+    for (q, &k) in v.iter().enumerate() {
+        out[k] = if m == 2 {
+            let (a, b) = (v[0], v[1]);
+            (f[b] - f[a]) / (x[b] - x[a])
+        } else if q == 0 {
+            let (k1, k2) = (v[1], v[2]);
+            nonuniform_one_sided(f[k], f[k1], f[k2], x[k1] - x[k], x[k2] - x[k1])
+        } else if q + 1 == m {
+            let (k1, k2) = (v[q - 1], v[q - 2]);
+            nonuniform_one_sided(f[k], f[k1], f[k2], x[k1] - x[k], x[k2] - x[k1])
         } else {
-            f64::NAN
+            let (a, b) = (v[q - 1], v[q + 1]);
+            nonuniform_centred(f[a], f[k], f[b], x[k] - x[a], x[b] - x[k])
         };
     }
 }
@@ -166,6 +174,35 @@ mod tests {
             let n2 = G0 * G0 * p[k] / (R_DRY * lapse_t(p[k]) * th) * exact;
             assert!(((f64::from(s.n2[(k, 1, 2)]) - n2) / n2).abs() < tol);
         }
+    }
+
+    #[test]
+    fn levels_without_the_quantity_are_stepped_over() {
+        // f = x^2 on levels 0, 1, 3 and 6 (missing on 2, 4 and 5, levels that carry other
+        // quantities): three-point differences on the valid levels, centred at 1 and 3,
+        // one-sided at the ends, are exact for a quadratic.
+        let x = [0.0, 1.0, 2.0, 3.0, 4.0, 5.0, 6.0];
+        let mut f: Vec<f64> = x.iter().map(|v| v * v).collect();
+        for k in [2, 4, 5] {
+            f[k] = f64::NAN;
+        }
+        let mut d = [0.0; 7];
+        column_derivative(&f, &x, &mut d);
+        for k in [0, 1, 3, 6] {
+            assert!((d[k] - 2.0 * x[k]).abs() < 1e-12, "level {k}: {}", d[k]);
+        }
+        for k in [2, 4, 5] {
+            assert!(d[k].is_nan());
+        }
+        // Two valid levels: their two-point difference at both; one: nothing.
+        let two = [f64::NAN, 1.0, f64::NAN, 9.0];
+        let mut d2 = [0.0; 4];
+        column_derivative(&two, &x[..4], &mut d2);
+        assert_eq!((d2[1], d2[3]), (4.0, 4.0));
+        let one = [f64::NAN, 1.0, f64::NAN];
+        let mut d1 = [0.0; 3];
+        column_derivative(&one, &x[..3], &mut d1);
+        assert!(d1.iter().all(|v| v.is_nan()));
     }
 
     #[test]

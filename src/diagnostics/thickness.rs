@@ -46,7 +46,9 @@ fn segment(t1: f64, t2: f64, dlnp: f64) -> f64 {
 /// Hypsometric thickness of the layer from `p_bottom` to `p_top` (Pa), given a
 /// column of virtual temperature `tv` on levels `p` (Pa, increasing) that include
 /// both bounds: z_top - z_bottom = (R / g0) integral Tv d ln p, the hypsometric
-/// equation (any dynamics text; docs/references.md). NaN if any level used is missing.
+/// equation (any dynamics text; docs/references.md). Levels between the bounds without
+/// temperature (levels that carry only winds or heights) are stepped over, ln Tv linear
+/// in ln p across them; NaN if a bound lacks it.
 pub fn hypsometric_thickness(tv: &[f64], p: &[f64], p_bottom: f64, p_top: f64) -> f64 {
     let (Some(kb), Some(kt)) = (
         p.iter().position(|&x| (x - p_bottom).abs() < 1e-3),
@@ -57,9 +59,17 @@ pub fn hypsometric_thickness(tv: &[f64], p: &[f64], p_bottom: f64, p_top: f64) -
     if kt >= kb {
         return f64::NAN;
     }
+    if !(tv[kt].is_finite() && tv[kb].is_finite()) {
+        return f64::NAN;
+    }
     let mut integral = 0.0;
-    for k in kt..kb {
-        integral += segment(tv[k], tv[k + 1], (p[k + 1] / p[k]).ln());
+    let mut upper = kt;
+    for k in kt + 1..=kb {
+        if !tv[k].is_finite() {
+            continue; // a level without temperature: the segment spans it
+        }
+        integral += segment(tv[upper], tv[k], (p[k] / p[upper]).ln());
+        upper = k;
     }
     R_DRY / G0 * integral
 }
@@ -91,6 +101,26 @@ mod tests {
             let got = hypsometric_thickness(&t, &p, bot * 100.0, top * 100.0);
             assert!((got - want).abs() < 2.0, "{bot}-{top}: {got} vs {want}");
         }
+    }
+
+    #[test]
+    fn levels_without_temperature_are_stepped_over() {
+        // 925 and 700 hPa carry winds only (no temperature): the 1000-500 hPa thickness
+        // of the constant-lapse-rate column is still exact (ln T linear in ln p across
+        // the gaps), 5463.6 m (docs/references.md check values); a bound without
+        // temperature gives NaN.
+        let p: Vec<f64> = [500.0, 700.0, 850.0, 925.0, 1000.0]
+            .iter()
+            .map(|h| h * 100.0)
+            .collect();
+        let mut t: Vec<f64> = p.iter().map(|&x| std_t(x)).collect();
+        let full = hypsometric_thickness(&t, &p, 1e5, 5e4);
+        t[1] = f64::NAN;
+        t[3] = f64::NAN;
+        let gaps = hypsometric_thickness(&t, &p, 1e5, 5e4);
+        assert!((gaps - full).abs() < 1e-6, "{gaps} vs {full}");
+        assert!((gaps - 5463.6).abs() < 2.0);
+        assert!(hypsometric_thickness(&t, &p, 92_500.0, 5e4).is_nan());
     }
 
     #[test]

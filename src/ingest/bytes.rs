@@ -61,10 +61,17 @@ pub fn all_ones(b: &[u8], at: usize, n: usize) -> bool {
 /// FNV-1a 64-bit hash of a byte string, as 16 hex digits: a stable fingerprint
 /// (Fowler, Noll and Vo; from memory), not a security hash.
 pub fn fnv1a_hex(bytes: &[u8]) -> String {
+    fnv1a_hex_parts(&[bytes])
+}
+
+/// [`fnv1a_hex`] of the concatenation of `parts`, without copying them.
+pub fn fnv1a_hex_parts(parts: &[&[u8]]) -> String {
     let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    for &b in bytes {
-        h ^= u64::from(b);
-        h = h.wrapping_mul(0x0100_0000_01b3);
+    for part in parts {
+        for &b in *part {
+            h ^= u64::from(b);
+            h = h.wrapping_mul(0x0100_0000_01b3);
+        }
     }
     format!("{h:016x}")
 }

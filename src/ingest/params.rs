@@ -220,6 +220,8 @@ pub enum Quantity {
     PotentialVorticity,
     /// Pressure, Pa (0/3/0).
     Pressure,
+    /// Pressure reduced to mean sea level, Pa (0/3/1).
+    MeanSeaLevelPressure,
     /// Geopotential, m2 s-2 (0/3/4).
     Geopotential,
     /// Geopotential height, gpm (0/3/5).
@@ -232,7 +234,7 @@ pub enum Quantity {
 
 impl Quantity {
     /// Every quantity leeward computes with.
-    pub const ALL: [Quantity; 13] = {
+    pub const ALL: [Quantity; 14] = {
         use Quantity::*;
         [
             Temperature,
@@ -244,6 +246,7 @@ impl Quantity {
             RelativeVorticity,
             PotentialVorticity,
             Pressure,
+            MeanSeaLevelPressure,
             Geopotential,
             GeopotentialHeight,
             GeometricHeight,
@@ -270,6 +273,7 @@ impl Quantity {
             RelativeVorticity => (0, 2, 12),
             PotentialVorticity => (0, 2, 14),
             Pressure => (0, 3, 0),
+            MeanSeaLevelPressure => (0, 3, 1),
             Geopotential => (0, 3, 4),
             GeopotentialHeight => (0, 3, 5),
             GeometricHeight => (0, 3, 6),
@@ -294,7 +298,7 @@ impl Quantity {
             WindU | WindV => "m s-1",
             AbsoluteVorticity | RelativeVorticity => "s-1",
             PotentialVorticity => "K m2 kg-1 s-1",
-            Pressure => "Pa",
+            Pressure | MeanSeaLevelPressure => "Pa",
             Geopotential => "m2 s-2",
             GeopotentialHeight => "gpm",
             GeometricHeight | TerrainHeight => "m",

@@ -133,6 +133,9 @@ pub enum Vertical {
     /// on its own coordinate `p_layer_<bottom>_<top>` with the layer as bounds
     /// (layers may overlap, which one coordinate with bounds cannot hold).
     PressureLayer,
+    /// A single field with no vertical dimension (mean sea-level pressure, a
+    /// layer's mean): (time, y, x); a layer it stands for is said in its attributes.
+    Surface,
 }
 
 impl Vertical {
@@ -144,6 +147,15 @@ impl Vertical {
             Vertical::PvSurface => "pv_level",
             Vertical::ThetaLayer => "theta_layer",
             Vertical::PressureLayer => "p_layer",
+            Vertical::Surface => "",
+        }
+    }
+
+    /// The variable's dimensions in the file, given the horizontal ones.
+    pub fn dims<'a>(self, ydim: &'a str, xdim: &'a str) -> Vec<&'a str> {
+        match self {
+            Vertical::Surface => vec!["time", ydim, xdim],
+            v => vec!["time", v.dim(), ydim, xdim],
         }
     }
 }
@@ -531,10 +543,16 @@ fn data_variable(
     coords: &str,
 ) -> netcdf::Result<Option<(String, super::pack::Packed)>> {
     let (ydim, xdim, _) = horizontal_dims(&p.grid);
-    let mut v = f.add_variable::<f32>(&t.name, &["time", t.vertical.as_str(), ydim, xdim])?;
+    let mut v = f.add_variable::<f32>(&t.name, &target_dims(t, ydim, xdim))?;
     declare_storage(&mut v, p.deflate, p.grid.shape())?;
     let nsb = p.kept_bits.bits(prod.spec.name);
     describe_variable(&mut v, prod, coords, nsb, t.layer)?;
+    if prod.vertical == Vertical::Surface {
+        // One level, no vertical dimension: through libnetcdf, which packs it.
+        let buf: Vec<f32> = prod.level(0).iter().map(|&x| stored(x, nsb)).collect();
+        v.put_values(&buf, (0, .., ..))?;
+        return Ok(None);
+    }
     let levels: Vec<usize> = match t.level {
         Some(k) => vec![k],
         None => (0..prod.dim().0).collect(),
@@ -553,6 +571,16 @@ fn data_variable(
         }
         // Packed with the filters declared above: stored after the file is closed.
         Values::Packed(packed) => Ok(Some((t.name.clone(), packed.levels(&levels)))),
+    }
+}
+
+/// The dimensions of a target variable: (time, y, x) for a single field with
+/// no vertical dimension, (time, vertical, y, x) otherwise.
+pub fn target_dims<'a>(t: &'a Target, ydim: &'a str, xdim: &'a str) -> Vec<&'a str> {
+    if t.vertical.is_empty() {
+        vec!["time", ydim, xdim]
+    } else {
+        vec!["time", t.vertical.as_str(), ydim, xdim]
     }
 }
 
@@ -941,7 +969,8 @@ pub fn quantization_container(f: &mut netcdf::FileMut) -> netcdf::Result<()> {
     Ok(())
 }
 
-/// Chunks of one level and the filters the packed chunks were made with.
+/// Chunks of one level and the filters the packed chunks were made with
+/// (a variable with no vertical dimension is one chunk of (time, y, x)).
 pub fn declare_storage(
     v: &mut netcdf::VariableMut<'_>,
     deflate: i32,
@@ -951,7 +980,11 @@ pub fn declare_storage(
     if deflate > 0 {
         v.set_compression(deflate, true)?;
     }
-    v.set_chunking(&[1, 1, ny, nx])
+    if v.dimensions().len() == 3 {
+        v.set_chunking(&[1, ny, nx])
+    } else {
+        v.set_chunking(&[1, 1, ny, nx])
+    }
 }
 
 /// The attributes of a data variable: names and units from its spec, the grid

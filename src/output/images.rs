@@ -136,7 +136,7 @@ fn level_key(level: Option<(f64, Option<f64>)>) -> String {
 /// The scale of an image: the configured one (by `variable@level`, then by
 /// `variable`), else the product's default, else one spanning the values.
 /// The flag says the scale came from the values.
-fn scale_of(
+pub fn scale_of(
     look: &Look<'_>,
     name: &str,
     level: &str,

@@ -50,6 +50,8 @@ pub struct Cycle {
     pub feed: String,
     /// Its steps, by lead time then variant.
     pub steps: Vec<Step>,
+    /// The files of its cyclone tracks beside it (`<prefix>_cyclones*`: image, NetCDF, GeoJSON).
+    pub tracks: Vec<String>,
 }
 
 /// Split a product name `<prefix>_<HHH>h<variant>.nc` into its parts.
@@ -204,6 +206,12 @@ pub fn collect(dir: &Path) -> std::io::Result<Vec<Cycle>> {
     }
     let mut out: Vec<Cycle> = cycles.into_values().collect();
     for c in &mut out {
+        let own = format!("{}_cyclones", c.prefix);
+        c.tracks = names
+            .iter()
+            .filter(|n| n.starts_with(&own))
+            .cloned()
+            .collect();
         c.steps
             .sort_by(|a, b| (a.lead, &a.variant).cmp(&(b.lead, &b.variant)));
     }
@@ -256,6 +264,30 @@ fn lead_label(s: &Step) -> String {
     } else {
         format!("+{:03}h {}", s.lead, s.variant)
     }
+}
+
+/// The cycle's cyclone tracks: their map over the latest mean sea-level pressure
+/// and the files, on every lead time.
+fn tracks_html(o: &mut String, c: &Cycle) {
+    if c.tracks.is_empty() {
+        return;
+    }
+    o.push_str("<section class=\"tracks\">\n<h2>Cyclone tracks of the cycle</h2>\n<div class=\"images\">\n");
+    for t in c.tracks.iter().filter(|t| t.ends_with(".png")) {
+        o.push_str(&format!(
+            "<figure><a href=\"{h}\"><img src=\"{h}\" alt=\"cyclone tracks over the latest mean sea-level pressure\" loading=\"lazy\"></a><figcaption>tracks over the latest mean sea-level pressure</figcaption></figure>\n",
+            h = href(t)
+        ));
+    }
+    o.push_str("</div>\n<p>");
+    let links: Vec<String> = c
+        .tracks
+        .iter()
+        .filter(|t| !t.ends_with(".png"))
+        .map(|t| format!("<a href=\"{}\">{}</a>", href(t), esc(t)))
+        .collect();
+    o.push_str(&links.join(" &middot; "));
+    o.push_str(" (every track with its facts at each step)</p>\n</section>\n");
 }
 
 fn step_html(o: &mut String, k: usize, s: &Step) {
@@ -328,6 +360,9 @@ nav button { font: inherit; font-size: 13px; padding: 3px 9px; border: 1px solid
 nav button.partial { border-color: var(--warm); }
 nav button[aria-current="true"] { background: var(--accent); border-color: var(--accent); color: #fff; }
 nav .keys { margin-left: auto; color: var(--soft); font-size: 12px; }
+.tracks { padding: 8px 20px; background: #fff; border-bottom: 1px solid var(--rule); }
+.tracks h2 { margin: 4px 0; font-size: 16px; }
+.tracks p { margin: 4px 0; font-size: 13px; }
 main { padding: 12px 20px 24px; }
 .step { margin-bottom: 28px; }
 .step h2 { margin: 0 0 8px; font-size: 17px; }
@@ -421,6 +456,7 @@ pub fn render(c: &Cycle) -> String {
         if partial > 0 { format!(", {partial} partial") } else { String::new() },
         chrono::Utc::now().format("%Y-%m-%d %H:%M:%S UTC")
     ));
+    tracks_html(&mut o, c);
     o.push_str("<nav id=\"leads\" aria-label=\"lead times\"><span class=\"keys\">\u{2190} \u{2192} step through the lead times; Home, End: first, last</span></nav>\n<main>\n");
     for (k, s) in c.steps.iter().enumerate() {
         step_html(&mut o, k, s);

@@ -31,20 +31,24 @@ pub const UNLISTED_BITS: u32 = 16;
 pub const DIFFERENCE_FLOOR: u32 = 16;
 
 /// Products read back from published files by the changes in time
-/// ([`crate::changes`]: thickness, heights, tropopause pressure) and by the PV
-/// budget (layer and isentropic winds, PV and layer depth).
+/// ([`crate::changes`]: thickness, heights, tropopause pressure, mean
+/// sea-level pressure) and by the PV budget (layer and isentropic winds, PV
+/// and layer depth).
 pub const DIFFERENCED: &[&str] = &[
-    "thick", "z", "trop_p", "layer_u", "layer_v", "layer_pv", "layer_dp", "isen_u", "isen_v",
-    "isen_pv",
+    "thick", "z", "trop_p", "mslp", "layer_u", "layer_v", "layer_pv", "layer_dp", "isen_u",
+    "isen_v", "isen_pv",
 ];
 
 /// Mantissa bits that keep 99 % of each product's real information, the
 /// largest over the measured inputs (docs/output.md, "Precision").
 pub const MEASURED: &[(&str, u32)] = &[
+    ("eady", 4),
     ("eta", 9),
     ("isen_m", 14),
     ("isen_p", 9),
     ("isen_pv", 8),
+    ("isen_q", 2),
+    ("isen_rh", 4),
     ("isen_t", 10),
     ("isen_u", 7),
     ("isen_v", 3),
@@ -53,10 +57,16 @@ pub const MEASURED: &[(&str, u32)] = &[
     ("layer_pv", 7),
     ("layer_u", 6),
     ("layer_v", 3),
+    ("low_pv", 8),
+    ("mslp", 13),
     ("n2", 9),
+    ("orog", 7),
     ("pv", 8),
     ("stab", 9),
+    ("steer_u", 5),
+    ("steer_v", 3),
     ("theta", 12),
+    ("theta_e", 14),
     ("thick", 12),
     ("trop_crossings", 1),
     ("trop_fold_dp", 1),
@@ -99,12 +109,27 @@ pub const REFERENCE_FLOOR: &[(&str, u32)] = &[
     // tropopause's to 1e-4 (1 Pa), both read from the file.
     ("trop_p_low", 16),
     ("trop_fold_dp", 16),
+    // The Eady growth rate of uniform shear is checked to 1 % of its closed
+    // form: rounding at most 2.0e-3 of it.
+    ("eady", 8),
+    // Uniform relative humidity interpolates to itself within 0.01 % (of
+    // about 70 %): rounding at most 0.005.
+    ("isen_rh", 13),
+    // Specific humidity on isentropes within 1 % of MetPy's: rounding at most
+    // 2.0e-3 of it.
+    ("isen_q", 8),
+    // Equivalent potential temperature within 0.1 K of MetPy's: rounding at
+    // most 0.04 K at 350 K.
+    ("theta_e", 12),
 ];
 
-/// The name a product's count is kept under (`thick_chg_06h` under `thick_chg`).
+/// The name a product's count is kept under (`thick_chg_06h` under
+/// `thick_chg`, `mslp_chg_06h` under `mslp_chg`).
 fn key(name: &str) -> &str {
     if name.starts_with("thick_chg_") {
         "thick_chg"
+    } else if name.starts_with("mslp_chg_") {
+        "mslp_chg"
     } else {
         name
     }
@@ -203,8 +228,8 @@ mod tests {
     /// A change taken from two published values is the change of the exact
     /// values to within 5 % when the change is a small step of the trade: 2 m
     /// of a 5,500 m layer thickness, 10 m of a 10 km height, 1 hPa of a
-    /// 250 hPa tropopause, 0.1 m/s of a 60 m/s wind, 0.05 PVU of 8 PVU, 1 hPa
-    /// of a 100 hPa layer depth (common practice: the smallest contour steps
+    /// 250 hPa tropopause or of a 1008 hPa sea-level pressure, 0.1 m/s of a
+    /// 60 m/s wind, 0.05 PVU of 8 PVU, 1 hPa of a 100 hPa layer depth (common practice: the smallest contour steps
     /// of such charts are larger, from memory).
     #[test]
     fn a_difference_of_published_values_is_not_dominated_by_rounding() {
@@ -212,6 +237,7 @@ mod tests {
             ("thick", 5512.37, 2.0),
             ("z", 10_234.6, 10.0),
             ("trop_p", 25_013.3, 100.0),
+            ("mslp", 100_812.4, 100.0),
             ("layer_u", 61.37, 0.1),
             ("layer_v", -43.91, 0.1),
             ("isen_u", 58.22, 0.1),

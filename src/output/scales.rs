@@ -113,6 +113,13 @@ pub fn default_scale(name: &str, level: &str) -> Option<Scale> {
         "bud_stretch" => f(D, -0.5, 0.5, 0.1),
         "bud_dpvdt" => f(D, -0.5, 0.5, 0.1),
         n if n.starts_with("thick_chg_") => f(D, -120.0, 120.0, 20.0),
+        "mslp" => f(S, 960.0, 1048.0, 4.0),
+        n if n.starts_with("mslp_chg_") => f(D, -24.0, 24.0, 4.0),
+        "mslp_r2r" => f(D, -20.0, 20.0, 4.0),
+        "eady" => f(S, 0.0, 3.0, 0.25),
+        "theta_e" => f(S, 250.0, 370.0, 10.0),
+        "low_pv" => reversed(f(S, 0.0, 4.0, 0.5)),
+        "isen_rh" => f(S, 0.0, 100.0, 10.0),
         "thick" => match level {
             "1000-500" => f(S, 4800.0, 6000.0, 60.0),
             "1000-850" => f(S, 1100.0, 1500.0, 25.0),

@@ -130,7 +130,8 @@ pub fn published_where(
     for e in rd.flatten() {
         let path = e.path();
         let name = e.file_name().to_string_lossy().into_owned();
-        if name.starts_with('.') {
+        // Hidden temporaries, and a cycle's cyclone tracks (not a step).
+        if name.starts_with('.') || name.contains("_cyclones") {
             continue;
         }
         if name.ends_with(".nc") {
@@ -139,9 +140,9 @@ pub fn published_where(
             if (t - near).abs() <= window && path.is_dir() {
                 if let Ok(sub) = std::fs::read_dir(&path) {
                     candidates.extend(sub.flatten().map(|e| e.path()).filter(|p| {
-                        p.file_name()
-                            .and_then(|n| n.to_str())
-                            .is_some_and(|n| !n.starts_with('.') && n.ends_with(".nc"))
+                        p.file_name().and_then(|n| n.to_str()).is_some_and(|n| {
+                            !n.starts_with('.') && n.ends_with(".nc") && !n.contains("_cyclones")
+                        })
                     }));
                 }
             }
@@ -256,7 +257,11 @@ fn pressure_layers(f: &netcdf::File) -> Vec<(String, f64, [f64; 2])> {
 }
 
 fn read_values(v: &netcdf::Variable<'_>) -> Option<Array3<f32>> {
-    let dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
+    let mut dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
+    // A field with no vertical dimension reads as one level.
+    if dims.len() == 3 {
+        dims.insert(1, 1);
+    }
     if dims.len() != 4 {
         return None;
     }
@@ -279,10 +284,11 @@ pub fn read_field(path: &Path, name: &str) -> Option<(Vec<f64>, Array3<f32>)> {
     super::quiet_hdf5_errors();
     let f = netcdf::open(path).ok()?;
     if let Some(v) = f.variable(name) {
-        let vname = v.dimensions().get(1)?.name();
         let a = read_values(&v)?;
-        let coord: Vec<f64> = f
-            .variable(&vname)
+        // A field with no vertical dimension has no vertical coordinate.
+        let coord: Vec<f64> = Some(v.dimensions())
+            .filter(|d| d.len() == 4)
+            .and_then(|d| f.variable(&d[1].name()))
             .and_then(|c| c.get_values(..).ok())
             .unwrap_or_default();
         return Some((coord, a));
@@ -466,7 +472,7 @@ fn add_one(
     };
     let is_new = f.variable(&t.name).is_none();
     if is_new {
-        let mut v = f.add_variable::<f32>(&t.name, &["time", t.vertical.as_str(), ydim, xdim])?;
+        let mut v = f.add_variable::<f32>(&t.name, &super::cf::target_dims(t, ydim, xdim))?;
         let (_, ny, nx) = prod.dim();
         super::cf::declare_storage(&mut v, deflate, (ny, nx))?;
     }
@@ -474,6 +480,12 @@ fn add_one(
         .variable_mut(&t.name)
         .ok_or_else(|| netcdf::Error::from("variable vanished"))?;
     super::cf::describe_variable(&mut v, prod, coords, nsb, t.layer)?;
+    let surface = t.vertical.is_empty();
+    if surface {
+        // One level, no vertical dimension: through libnetcdf, which packs it.
+        let buf: Vec<f32> = prod.level(0).iter().map(|&x| stored(x, nsb)).collect();
+        return v.put_values(&buf, (0, .., ..));
+    }
     if is_new && deflate > 0 {
         let packed = match &prod.values {
             super::cf::Values::Plain(a) => super::pack::Packed::new(a, nsb, deflate as u32),

@@ -271,6 +271,88 @@ pub const THICK: VarSpec = VarSpec {
     formula: "z(top) - z(bottom) from geopotential height where both levels have it, else (R/g0) integral Tv dln p (hypsometric equation), ln Tv linear in ln p between levels; the method per layer is in leeward_method",
 };
 
+/// Mean sea-level pressure, from the input or reduced from the 1000 hPa height.
+pub const MSLP: VarSpec = VarSpec {
+    name: "mslp",
+    standard_name: Some("air_pressure_at_mean_sea_level"),
+    long_name: "pressure reduced to mean sea level",
+    units: "Pa",
+    formula: "from the input (WMO 0/3/1 at mean sea level), or, where the input has none, from the 1000 hPa height: p = 1000 hPa exp(g0 z1000 / (R T1000)) (hypsometric equation); the source is in leeward_method",
+};
+
+/// Terrain height of the model, as the input gives it.
+pub const OROG: VarSpec = VarSpec {
+    name: "orog",
+    standard_name: Some("surface_altitude"),
+    long_name: "height of the model's terrain",
+    units: "m",
+    formula:
+        "from the input: terrain or surface geopotential height, or surface geopotential / 9.80665",
+};
+
+/// Steering wind of the cyclone tracks: east component.
+pub const STEER_U: VarSpec = VarSpec {
+    name: "steer_u",
+    standard_name: Some("eastward_wind"),
+    long_name: "pressure-weighted mean eastward wind of the steering layer",
+    units: "m s-1",
+    formula: "(1/(p_bottom - p_top)) integral u dp over the layer in cyclones.steering_layer_hpa, trapezoidal, toward east whatever the input's axes; the layer is in leeward_layer_hpa",
+};
+
+/// Steering wind of the cyclone tracks: north component.
+pub const STEER_V: VarSpec = VarSpec {
+    name: "steer_v",
+    standard_name: Some("northward_wind"),
+    long_name: "pressure-weighted mean northward wind of the steering layer",
+    units: "m s-1",
+    formula: "(1/(p_bottom - p_top)) integral v dp over the layer in cyclones.steering_layer_hpa, trapezoidal, toward north whatever the input's axes; the layer is in leeward_layer_hpa",
+};
+
+/// Maximum Eady growth rate of an isobaric layer.
+pub const EADY: VarSpec = VarSpec {
+    name: "eady",
+    standard_name: None,
+    long_name: "maximum Eady growth rate of the isobaric layer",
+    units: "s-1",
+    formula: "sigma = 0.31 |f| |V_top - V_bottom| / (dz N), N^2 = g ln(theta_top/theta_bottom) / dz, dz = z_top - z_bottom (Lindzen and Farrell 1980; Hoskins and Valdes 1990); the layer is in leeward_layer_hpa",
+};
+
+/// Equivalent potential temperature on isobaric levels.
+pub const THETA_E: VarSpec = VarSpec {
+    name: "theta_e",
+    standard_name: Some("air_pseudo_equivalent_potential_temperature"),
+    long_name: "equivalent potential temperature (pseudo-adiabatic)",
+    units: "K",
+    formula: "theta_e = T (p0/(p - e))^kappa (T/T_L)^(0.28 r) exp[(3.036/T_L - 0.00178) r (1 + 0.448e-3 r)], r in g/kg, T_L = 2840/(3.5 ln T - ln e - 4.805) + 55, e in hPa (Bolton 1980, equations 39 and 22), kappa = 287.05/1004.6",
+};
+
+/// Specific humidity on isentropic surfaces.
+pub const ISEN_Q: VarSpec = VarSpec {
+    name: "isen_q",
+    standard_name: Some("specific_humidity"),
+    long_name: "specific humidity on isentropic surfaces",
+    units: "kg kg-1",
+    formula: "q = epsilon e / (p - (1 - epsilon) e), e = RH e_s(T), at the surface's pressure and temperature, RH from isen_rh, e_s = 611.2 exp(17.67 (T - 273.15)/(T - 29.65)) Pa (Bolton 1980), epsilon = 0.622",
+};
+
+/// Relative humidity on isentropic surfaces.
+pub const ISEN_RH: VarSpec = VarSpec {
+    name: "isen_rh",
+    standard_name: Some("relative_humidity"),
+    long_name: "relative humidity over water on isentropic surfaces",
+    units: "%",
+    formula: "isobaric relative humidity over water (from the input, or 100 e / e_s(T) from its specific humidity) interpolated linearly in ln p to the surface",
+};
+
+/// Mass-weighted mean isobaric PV of a low-level layer.
+pub const LOW_PV: VarSpec = VarSpec {
+    name: "low_pv",
+    standard_name: None,
+    long_name: "mass-weighted mean Ertel potential vorticity of the low-level isobaric layer (1 PVU = 1e-6 K m2 kg-1 s-1)",
+    units: PV_UNITS,
+    formula: "(1/(p_bottom - p_top)) integral pv dp over the layer in leeward_layer_hpa, trapezoidal on the isobaric levels, bounds linear in ln p; over the part of the layer above ground when that is at least half of it",
+};
+
 /// Every data variable of the isobaric diagnostics, in the order written.
 pub const ISOBARIC: [VarSpec; 6] = [ZETA, ETA, THETA, STAB, N2, PV];
 

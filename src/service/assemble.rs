@@ -16,7 +16,7 @@ use chrono::NaiveDateTime;
 use super::ledger::StepTag;
 use super::settings::{Completeness, FeedRule, Order};
 use crate::ingest::catalogue::FieldEntry;
-use crate::ingest::params::{parameter, surface, Param};
+use crate::ingest::params::{parameter, surface, Param, Quantity};
 use crate::pipeline::StepKey;
 
 /// What one input file gives to one step.
@@ -30,8 +30,28 @@ pub struct Contribution {
     pub checksum: String,
     /// Byte ranges (offset, length) of the GRIB2 messages holding the step's fields.
     pub messages: Vec<(u64, u64)>,
+    /// Checksum of those messages' bytes, in order (FNV-1a 64, hex; see
+    /// [`digest`]): what this file gives the step, whatever else it holds or
+    /// gains later. Empty for a spec written by a version that had none.
+    pub digest: String,
     /// Unix time the file was found finished.
     pub seen_at: f64,
+}
+
+/// The checksum of the messages `ranges` of `bytes`, in order: what a file
+/// gives one step. A file written in place that grows by other steps'
+/// messages keeps this step's digest; one whose messages for it change does not.
+pub fn digest(bytes: &[u8], ranges: &[(u64, u64)]) -> String {
+    let mut parts = Vec::with_capacity(ranges.len());
+    for &(off, len) in ranges {
+        let part = usize::try_from(off)
+            .ok()
+            .zip(usize::try_from(off.saturating_add(len)).ok())
+            .and_then(|(a, b)| bytes.get(a..b))
+            .unwrap_or(&[]);
+        parts.push(part);
+    }
+    super::ledger::checksum_parts(&parts)
 }
 
 /// Where a pending step stands.
@@ -58,6 +78,14 @@ pub enum Phase {
     },
 }
 
+/// Has the quantity `q` arrived at the level? Geopotential (0/3/4) counts as geopotential
+/// height (0/3/5): the pipeline divides it by standard gravity.
+fn arrived(p: &Pending, q: Param, level: i64) -> bool {
+    p.have.contains(&(q, level))
+        || (q == Quantity::GeopotentialHeight.param()
+            && p.have.contains(&(Quantity::Geopotential.param(), level)))
+}
+
 /// A step being assembled.
 #[derive(Debug, Clone)]
 pub struct Pending {
@@ -77,6 +105,9 @@ pub struct Pending {
     pub attempts: u32,
     /// Made again on an operator's request: never adopted from an existing manifest.
     pub forced: bool,
+    /// Input came while it was being made (a worker or a job had it): once
+    /// that run ends it is made again with everything, never left short.
+    pub more: bool,
 }
 
 impl Pending {
@@ -136,28 +167,32 @@ impl Assembly {
             phase: Phase::Waiting,
             attempts: 0,
             forced,
+            more: false,
         });
         p.forced |= forced;
         p.first_seen = p.first_seen.min(first_seen);
-        if p.files
-            .get(&c.path)
-            .is_some_and(|o| o.checksum == c.checksum)
-        {
+        // The same messages from the same file (the file grew by other
+        // steps' fields, or was caught again) are nothing new for this step.
+        if p.files.get(&c.path).is_some_and(|o| {
+            o.checksum == c.checksum || (!c.digest.is_empty() && o.digest == c.digest)
+        }) {
             return false;
         }
         p.have.extend(fields.iter().copied());
         p.files.insert(c.path.clone(), c);
+        if matches!(p.phase, Phase::Running { .. }) {
+            p.more = true;
+        }
         true
     }
 
     /// Is the step complete by its feed's rule?
     pub fn complete(&self, p: &Pending, rule: &FeedRule) -> bool {
         match rule.feed.complete {
-            Completeness::Fields => rule.levels_pa().iter().all(|&pa| {
-                rule.required
-                    .iter()
-                    .all(|q| p.have.contains(&(*q, level_key(pa))))
-            }),
+            Completeness::Fields => rule
+                .levels_pa()
+                .iter()
+                .all(|&pa| rule.required.iter().all(|q| arrived(p, *q, level_key(pa)))),
             Completeness::Files => p.files.len() >= rule.feed.files_per_step as usize,
             Completeness::Marker => {
                 self.markers
@@ -178,7 +213,7 @@ impl Assembly {
                 let mut out = Vec::new();
                 for pa in rule.levels_pa() {
                     for q in &rule.required {
-                        if !p.have.contains(&(*q, level_key(pa))) {
+                        if !arrived(p, *q, level_key(pa)) {
                             let name =
                                 parameter(*q).map_or_else(|| q.to_string(), |e| e.name.to_string());
                             out.push(format!("{name} at {} hPa (not arrived)", pa / 100.0));
@@ -358,6 +393,7 @@ mod tests {
             size: 1,
             checksum: name.into(),
             messages: vec![(0, 1)],
+            digest: format!("d{name}"),
             seen_at: 0.0,
         }
     }
@@ -406,6 +442,76 @@ mod tests {
         a.add(tag.clone(), key, contribution("b"), &gh, 5.0, false);
         assert_eq!(a.promote(&[r], 10.0, now, 100.0), vec![tag.clone()]);
         assert_eq!(a.steps[&tag].phase, Phase::Ready { partial: false });
+    }
+
+    #[test]
+    fn a_file_written_in_place_brings_news_only_when_the_steps_messages_change() {
+        let (tag, key) = step(0, 6);
+        let mut a = Assembly::default();
+        let grown = |checksum: &str, digest: &str| Contribution {
+            checksum: checksum.into(),
+            digest: digest.into(),
+            ..contribution("a")
+        };
+        assert!(a.add(tag.clone(), key.clone(), grown("c1", "d1"), &[], 0.0, false));
+        assert!(!a.steps[&tag].more);
+        a.steps.get_mut(&tag).unwrap().phase = Phase::Running { partial: false };
+        // The file grew by another step's messages: nothing new for this one.
+        assert!(!a.add(tag.clone(), key.clone(), grown("c2", "d1"), &[], 0.0, false));
+        assert!(!a.steps[&tag].more);
+        // Its own messages grew while it was being made: made again after.
+        assert!(a.add(tag.clone(), key, grown("c3", "d2"), &[], 0.0, false));
+        assert!(a.steps[&tag].more);
+        assert_eq!(a.steps[&tag].files[&PathBuf::from("a")].digest, "d2");
+        // The digest is of the step's messages only, in order.
+        let bytes = b"xxAAyyBBzz";
+        assert_eq!(
+            digest(bytes, &[(2, 2), (6, 2)]),
+            crate::ingest::bytes::fnv1a_hex(b"AABB")
+        );
+        assert_ne!(
+            digest(bytes, &[(6, 2), (2, 2)]),
+            digest(bytes, &[(2, 2), (6, 2)])
+        );
+        assert_eq!(
+            digest(bytes, &[(8, 5)]),
+            crate::ingest::bytes::fnv1a_hex(b"")
+        );
+    }
+
+    #[test]
+    fn geopotential_completes_a_step_that_needs_heights() {
+        // Geopotential (0/3/4) instead of geopotential height (0/3/5): the step is
+        // complete, and nothing is said not to have arrived.
+        let r = rule("name = \"m\"\nlevels_hpa = [500.0]\n");
+        let mut a = Assembly::default();
+        let (tag, key) = step(0, 6);
+        let lv = level_key(500.0 * 100.0);
+        let mut fields: Vec<(Param, i64)> = [
+            Quantity::Temperature,
+            Quantity::WindU,
+            Quantity::WindV,
+            Quantity::Geopotential,
+        ]
+        .iter()
+        .map(|q| (q.param(), lv))
+        .collect();
+        a.add(
+            tag.clone(),
+            key.clone(),
+            contribution("a"),
+            &fields,
+            0.0,
+            false,
+        );
+        assert!(a.complete(&a.steps[&tag], &r));
+        assert!(a.not_arrived(&a.steps[&tag], &r).is_empty());
+        // Without it, heights are still awaited.
+        fields.pop();
+        let (tag2, key2) = step(0, 12);
+        a.add(tag2.clone(), key2, contribution("b"), &fields, 0.0, false);
+        assert!(!a.complete(&a.steps[&tag2], &r));
+        assert_eq!(a.not_arrived(&a.steps[&tag2], &r).len(), 1);
     }
 
     #[test]

@@ -28,8 +28,9 @@ use serde::{Deserialize, Serialize};
 use tracing::{info, warn};
 
 use super::assemble::Contribution;
-use super::ledger::StepTag;
-use super::publish::{self, file_checksum, StepFacts, Timings};
+use super::commit;
+use super::ledger::{Journal, StepTag};
+use super::publish::{self, StepFacts, Timings};
 use super::settings::Slurm;
 use crate::config::Config;
 use crate::pipeline::{run_step, Destination, Issue, StepKey, StepReport};
@@ -61,6 +62,10 @@ pub struct SpecInput {
     pub checksum: String,
     /// Byte ranges (offset, length) of the step's messages.
     pub messages: Vec<(u64, u64)>,
+    /// Checksum of those messages (FNV-1a 64, hex); the job reads them only
+    /// if they are still these bytes.
+    #[serde(default)]
+    pub digest: String,
     /// Unix time it was found finished.
     pub seen_at: f64,
 }
@@ -144,16 +149,7 @@ impl JobSpec {
             valid_time: key.valid_time.format(TIME_FORMAT).to_string(),
             member: key.member,
             grid_key: hex(&key.grid_key),
-            inputs: files
-                .iter()
-                .map(|c| SpecInput {
-                    path: c.path.clone(),
-                    size: c.size,
-                    checksum: c.checksum.clone(),
-                    messages: c.messages.clone(),
-                    seen_at: c.seen_at,
-                })
-                .collect(),
+            inputs: Self::inputs_of(files),
             store: store.to_path_buf(),
             dir: dir.to_path_buf(),
             suffix,
@@ -163,6 +159,20 @@ impl JobSpec {
             threads,
             config,
         }
+    }
+
+    fn inputs_of(files: &[Contribution]) -> Vec<SpecInput> {
+        files
+            .iter()
+            .map(|c| SpecInput {
+                path: c.path.clone(),
+                size: c.size,
+                checksum: c.checksum.clone(),
+                messages: c.messages.clone(),
+                digest: c.digest.clone(),
+                seen_at: c.seen_at,
+            })
+            .collect()
     }
 
     /// The step's key.
@@ -186,6 +196,7 @@ impl JobSpec {
                 size: i.size,
                 checksum: i.checksum.clone(),
                 messages: i.messages.clone(),
+                digest: i.digest.clone(),
                 seen_at: i.seen_at,
             })
             .collect()
@@ -267,17 +278,7 @@ pub fn prepare(
 }
 
 /// A file the job left in its staging directory, and where it goes.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct StagedFile {
-    /// In the staging directory.
-    pub staged: PathBuf,
-    /// Its place in the output tree.
-    pub target: PathBuf,
-    /// Size, bytes.
-    pub bytes: u64,
-    /// SHA-256, hex.
-    pub sha256: String,
-}
+pub use super::commit::StagedFile;
 
 /// How the job ended.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -402,29 +403,6 @@ fn host_name() -> String {
     std::fs::read_to_string("/proc/sys/kernel/hostname")
         .map(|s| s.trim().to_string())
         .unwrap_or_default()
-}
-
-fn staged_file(staged: &Path, target: PathBuf) -> std::io::Result<StagedFile> {
-    let (bytes, sha256) = file_checksum(staged)?;
-    Ok(StagedFile {
-        staged: staged.to_path_buf(),
-        target,
-        bytes,
-        sha256,
-    })
-}
-
-/// Where a staged update of a published file goes back to: the staging
-/// layout is `<stage>/updates/<cycle directory>/<name>` (see [`crate::changes::Run::staged`]).
-fn update_target(stage: &Path, store: &Path, staged: &Path) -> Option<PathBuf> {
-    let rel = staged.strip_prefix(stage.join("updates")).ok()?;
-    let mut parts = rel.components();
-    let cycle = parts.next()?.as_os_str();
-    let name = parts.next()?.as_os_str();
-    if parts.next().is_some() {
-        return None;
-    }
-    Some(store.join(cycle).join(name))
 }
 
 /// The job's side: `leeward process --job DIR`. Returns the exit code: 0 when
@@ -580,23 +558,23 @@ fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
     };
     let staged = || -> std::io::Result<Ended> {
         let name = own.file_name().unwrap_or_default();
-        let product = staged_file(&own, spec.dir.join(name))?;
+        let product = StagedFile::read(&own, spec.dir.join(name))?;
         let mut images = Vec::new();
         for i in &rep.images {
-            images.push(staged_file(
+            images.push(StagedFile::read(
                 i,
                 spec.dir.join(i.file_name().unwrap_or_default()),
             )?);
         }
         let mut updated = Vec::new();
         for u in rep.updated.iter().filter(|u| **u != own) {
-            let Some(target) = update_target(stage, &spec.store, u) else {
+            let Some(target) = super::commit::update_target(stage, &spec.store, u) else {
                 return Err(std::io::Error::other(format!(
                     "{}: an update outside the staging layout",
                     u.display()
                 )));
             };
-            updated.push(staged_file(u, target)?);
+            updated.push(StagedFile::read(u, target)?);
         }
         Ok(Ended::Made {
             product,
@@ -637,11 +615,11 @@ pub enum Taken {
     Unusable(String),
 }
 
-/// Take a job's result: check each staged file against the record, rename
-/// them into place, write the manifest, and remove the staging directory.
-/// Runs again safely after a crash part of the way through (a file already
-/// moved is recognised at its target by its checksum).
-pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>) -> Taken {
+/// Take a job's result: check each staged file against the record, stage
+/// the manifests beside them and publish the whole as one act
+/// ([`super::commit`]): recorded in the ledger, renamed into place, finished
+/// at the next start if a stop cuts it short.
+pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -> Taken {
     let result: JobResult = match std::fs::read(stage.join(RESULT))
         .map_err(|e| e.to_string())
         .and_then(|b| serde_json::from_slice(&b).map_err(|e| e.to_string()))
@@ -686,102 +664,128 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>) -> Taken {
                 .unwrap_or_default()
         ));
     }
-    let all: Vec<&StagedFile> = std::iter::once(product)
-        .chain(images.iter())
-        .chain(updated.iter())
-        .collect();
     let _publishing = lock
         .lock()
         .unwrap_or_else(std::sync::PoisonError::into_inner);
-    let mut to_move = Vec::new();
-    for f in &all {
-        if !f.staged.starts_with(stage) || !f.target.starts_with(&spec.store) {
-            return Taken::Unusable(format!(
-                "{} -> {}: outside the staging directory or the feed's output tree",
-                f.staged.display(),
-                f.target.display()
-            ));
-        }
-        // A staged file is checked by its size and, for a NetCDF file, by
-        // opening it: the job wrote it under a temporary name, fsynced it,
-        // renamed it and only then hashed it and wrote the record, so a file
-        // of the recorded size at the staged name is the one hashed. Reading
-        // every product again here would cost the service a second pass over
-        // each file (about 1 s for the 0.25-degree step).
-        match std::fs::metadata(&f.staged) {
-            Ok(m) if m.len() == f.bytes => {
-                let is_nc = f.staged.extension().is_some_and(|x| x == "nc");
-                crate::output::quiet_hdf5_errors();
-                if is_nc && netcdf::open(&f.staged).is_err() {
-                    return Taken::Unusable(format!(
-                        "{}: does not open as NetCDF",
-                        f.staged.display()
-                    ));
-                }
-                to_move.push(*f);
-            }
-            Ok(m) => {
-                return Taken::Unusable(format!(
-                    "{}: {} bytes, the result record says {}",
-                    f.staged.display(),
-                    m.len(),
-                    f.bytes
-                ))
-            }
-            // Moved before a restart: the target must be that very file.
-            Err(_)
-                if file_checksum(&f.target).is_ok_and(|(n, h)| n == f.bytes && h == f.sha256) => {}
-            Err(e) => {
-                return Taken::Unusable(format!("{}: {e}", f.staged.display()));
-            }
-        }
-    }
-    for f in to_move {
-        let dir = f.target.parent().unwrap_or(Path::new("."));
-        let moved = std::fs::create_dir_all(dir)
-            .and_then(|()| std::fs::rename(&f.staged, &f.target))
-            .and_then(|()| std::fs::File::open(dir).and_then(|d| d.sync_all()));
-        if let Err(e) = moved {
-            return Taken::Unusable(format!(
-                "cannot move {} to {}: {e}",
-                f.staged.display(),
-                f.target.display()
-            ));
+    for f in std::iter::once(product).chain(images).chain(updated) {
+        if let Err(e) = check_staged(f, stage, &spec.store) {
+            return Taken::Unusable(e);
         }
     }
     let image_paths: Vec<PathBuf> = images.iter().map(|f| f.target.clone()).collect();
     let updated_paths: Vec<PathBuf> = updated.iter().map(|f| f.target.clone()).collect();
     let report = result
         .report
-        .report(&product.target, image_paths, updated_paths.clone());
+        .report(&product.target, image_paths, updated_paths);
     let Some(facts) = spec.facts() else {
         return Taken::Unusable("the job spec's times do not parse".into());
     };
-    let known = Some((product.bytes, product.sha256.clone()));
-    let manifest = match publish::write_manifest_with(&product.target, &report, &facts, known) {
-        Ok(m) => m,
-        Err(e) => {
-            return Taken::Unusable(format!(
-                "cannot write the manifest of {}: {e}",
-                product.target.display()
-            ))
-        }
+    let mut made = commit::Made {
+        step: &spec.tag,
+        stage,
+        product: product.clone(),
+        images: images.clone(),
+        updated: updated.clone(),
+        tracks: Vec::new(),
     };
-    for u in updated {
-        let known = Some((u.bytes, u.sha256.clone()));
-        if let Err(e) = publish::revise_manifest_with(&u.target, known) {
-            warn!(file = %u.target.display(), error = %e, "manifest of an updated product not revised");
-        }
+    // The job could not see the other steps published: the cycle's cyclone
+    // tracks are made here, under the lock, and published with the step.
+    if let Some(key) = spec.key() {
+        stage_tracks(&spec.config, &spec.store, &key, &mut made);
+    }
+    let intent = match commit::stage_manifests(&made, &report, &facts) {
+        Ok(i) => i,
+        Err(e) => return Taken::Unusable(e),
+    };
+    if let Err(e) = commit::publish(journal, &intent) {
+        return Taken::Unusable(e);
     }
     let latency =
         (chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - spec.last_input).max(0.0);
     Taken::Published {
         path: product.target.clone(),
-        manifest,
+        manifest: PathBuf::from(&intent.publishing.manifest),
         latency,
         report: Box::new(report),
         result: Box::new(result),
     }
+}
+
+/// The cycle's cyclone tracks as they will be once `made` is published, made
+/// from the published steps and this publication's staged files and added to
+/// it: the tracks are renamed into place with the step, in the recorded
+/// publication, so a stop at any point of it leaves them as a run without the
+/// stop would. Called under the feed's publishing lock (the steps read stay
+/// as read). A file that cannot be made is said so and left out.
+pub fn stage_tracks(cfg: &Config, store: &Path, key: &StepKey, made: &mut commit::Made<'_>) {
+    if !cfg.products.cyclones {
+        return;
+    }
+    let gid = crate::pipeline::grid_id(&key.grid_key);
+    let run = crate::changes::Run {
+        out_dir: store,
+        centre: key.centre,
+        grid_id: &gid,
+        member: key.member,
+        reference_time: key.reference_time,
+        valid_time: key.valid_time,
+        stage: None,
+    };
+    // The grid, for the coastlines of the tracks' quicklook.
+    let grid = crate::ingest::grid::parse_grid(&key.grid_key)
+        .ok()
+        .map(|(g, _)| g);
+    let revised: Vec<(&Path, &Path)> = made
+        .updated
+        .iter()
+        .map(|u| (u.staged.as_path(), u.target.as_path()))
+        .collect();
+    let written = crate::cyclones::cycle::staged(
+        &run,
+        (&made.product.staged, &made.product.target),
+        &revised,
+        made.stage,
+        &cfg.cyclones,
+        &cfg.quicklook,
+        grid.as_ref(),
+    );
+    for (staged, target) in written {
+        match StagedFile::read(&staged, target) {
+            Ok(f) => made.tracks.push(f),
+            Err(e) => warn!(file = %staged.display(), error = %e, "cyclone tracks not staged"),
+        }
+    }
+}
+
+/// A staged file is checked by its size and, for a NetCDF file, by opening
+/// it: the job wrote it under a temporary name, fsynced it, renamed it and
+/// only then hashed it and wrote the record, so a file of the recorded size
+/// at the staged name is the one hashed. Reading every product again here
+/// would cost the service a second pass over each file (about 1 s for the
+/// 0.25-degree step).
+fn check_staged(f: &StagedFile, stage: &Path, store: &Path) -> Result<(), String> {
+    if !f.staged.starts_with(stage) || !f.target.starts_with(store) {
+        return Err(format!(
+            "{} -> {}: outside the staging directory or the feed's output tree",
+            f.staged.display(),
+            f.target.display()
+        ));
+    }
+    let m = std::fs::metadata(&f.staged).map_err(|e| format!("{}: {e}", f.staged.display()))?;
+    if m.len() != f.bytes {
+        return Err(format!(
+            "{}: {} bytes, the result record says {}",
+            f.staged.display(),
+            m.len(),
+            f.bytes
+        ));
+    }
+    let is_nc = f.staged.extension().is_some_and(|x| x == "nc");
+    crate::output::quiet_hdf5_errors();
+    if is_nc && netcdf::open(&f.staged).is_err() {
+        return Err(format!("{}: does not open as NetCDF", f.staged.display()));
+    }
+    Ok(())
 }
 
 /// Keep a job's log in the state directory (`<state>/job-logs/`) before its
@@ -1112,7 +1116,7 @@ mod tests {
             Path::new("/out/alps/.jobs/x/updates/20260314T0000Z/a_030h.nc")
         );
         assert_eq!(
-            update_target(stage, Path::new("/out/alps"), &staged).as_deref(),
+            commit::update_target(stage, Path::new("/out/alps"), &staged).as_deref(),
             Some(published)
         );
         // The step's own file, in the staging directory, is written in place.

@@ -19,7 +19,8 @@ use tracing::{debug, error, info, warn};
 
 use super::assemble::{isobaric, Assembly, Contribution, Phase};
 use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
-use super::ledger::{FailKind, Ledger, Outcome, Record, StepTag};
+use super::commit::{self, StagedFile};
+use super::ledger::{FailKind, Journal, Ledger, Outcome, Record, StepTag};
 use super::metrics::Metrics;
 use super::publish::{self, StepFacts};
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
@@ -74,9 +75,7 @@ pub fn requests_dir(state_dir: &Path) -> PathBuf {
 }
 
 /// The lock file that keeps two services off one state directory.
-pub fn lock_path(state_dir: &Path) -> PathBuf {
-    state_dir.join("leeward.lock")
-}
+pub use super::ledger::lock_path;
 
 /// Load the configuration and apply the command-line overrides.
 pub fn load(opts: &ServeOptions) -> Result<Config, String> {
@@ -131,6 +130,33 @@ fn mtime_ns(m: &std::fs::Metadata) -> i64 {
         .unwrap_or(0)
 }
 
+/// A step's messages in one file (byte ranges) and the isobaric fields they hold.
+type Gathered = (Vec<(u64, u64)>, Vec<(crate::ingest::params::Param, i64)>);
+
+/// A file found finished and catalogued.
+struct Caught {
+    feed: String,
+    path: PathBuf,
+    /// Its name in the ledger.
+    key: String,
+    size: u64,
+    mtime: i64,
+    /// Of the whole file.
+    checksum: String,
+}
+
+/// What became of a file's fields for one step.
+enum Given {
+    /// Added to the step.
+    Yes,
+    /// Not used: already used, not asked for, or arrived too late.
+    No,
+    /// Its cycle is older than catch-up: the step is recorded as skipped.
+    Skipped,
+    /// The step had been made without them: it waits again, with them.
+    Reopened,
+}
+
 /// A step handed to a worker.
 struct Job {
     tag: StepTag,
@@ -144,6 +170,7 @@ struct Job {
     partial: bool,
     last_input: f64,
     not_arrived: Vec<String>,
+    journal: Arc<Journal>,
 }
 
 /// What a worker reports.
@@ -198,20 +225,39 @@ struct JobDone {
     outcome: JobOutcome,
 }
 
-fn read_ranges(path: &Path, expect_size: u64, ranges: &[(u64, u64)]) -> std::io::Result<Vec<u8>> {
+/// Read a step's messages from a file as they were catalogued. With their
+/// digest known, the messages must be the very bytes catalogued (a file
+/// written in place may have grown by other steps' messages since); without
+/// it (a spec of an earlier version), the file must have its size of then.
+fn read_ranges(path: &Path, c: &Contribution) -> std::io::Result<Vec<u8>> {
     let mut f = std::fs::File::open(path)?;
     let size = f.metadata()?.len();
-    if size != expect_size {
-        return Err(std::io::Error::other(format!(
-            "changed since it was catalogued ({expect_size} bytes then, {size} now)"
-        )));
+    let changed = |then: String, now: String| {
+        std::io::Error::other(format!(
+            "changed since it was catalogued ({then} then, {now} now)"
+        ))
+    };
+    if c.digest.is_empty() && size != c.size {
+        return Err(changed(format!("{} bytes", c.size), format!("{size}")));
     }
     let mut out = Vec::new();
-    for &(off, len) in ranges {
+    for &(off, len) in &c.messages {
         f.seek(SeekFrom::Start(off))?;
         let start = out.len();
         out.resize(start + len as usize, 0);
-        f.read_exact(&mut out[start..])?;
+        f.read_exact(&mut out[start..]).map_err(|e| {
+            if e.kind() == std::io::ErrorKind::UnexpectedEof {
+                changed(format!("{} bytes", c.size), format!("{size}"))
+            } else {
+                e
+            }
+        })?;
+    }
+    if !c.digest.is_empty() {
+        let now = super::ledger::checksum(&out);
+        if now != c.digest {
+            return Err(changed(format!("the step's messages {}", c.digest), now));
+        }
     }
     Ok(out)
 }
@@ -226,7 +272,7 @@ pub(super) fn load_step(
 ) -> Result<Option<(Step, Vec<InputFile>)>, (PathBuf, String)> {
     let mut inputs = Vec::new();
     for c in files {
-        match read_ranges(&c.path, c.size, &c.messages) {
+        match read_ranges(&c.path, c) {
             Ok(bytes) => {
                 let cat = catalogue(&bytes);
                 inputs.push(InputFile {
@@ -253,8 +299,12 @@ fn run_job(job: &Job) -> JobOutcome {
         }
         Err((file, e)) => return JobOutcome::Vanished(file, e),
     };
-    if let Err(e) = std::fs::create_dir_all(&job.dir) {
-        return JobOutcome::OutputFailed(format!("cannot create {}: {e}", job.dir.display()));
+    // The step's files and its additions to published ones are written into
+    // a staging directory, then published as one act (see `commit`).
+    let stage = commit::local_stage(&job.store, &job.tag);
+    if let Err(e) = std::fs::create_dir_all(&job.dir).and_then(|()| std::fs::create_dir_all(&stage))
+    {
+        return JobOutcome::OutputFailed(format!("cannot create {}: {e}", stage.display()));
     }
     let facts = StepFacts::of(
         &job.tag.feed,
@@ -264,28 +314,22 @@ fn run_job(job: &Job) -> JobOutcome {
         job.last_input,
         job.not_arrived.clone(),
     );
-    let written: Mutex<Option<(PathBuf, f64)>> = Mutex::new(None);
+    let written: Mutex<Option<(PathBuf, PathBuf, f64)>> = Mutex::new(None);
     let hook = |rep: &StepReport| -> Result<(), String> {
-        let Some(product) = &rep.output else {
-            return Err("no product file".into());
-        };
-        let m = publish::write_manifest(product, rep, &facts).map_err(|e| {
-            format!(
-                "cannot write the manifest {}: {e}",
-                publish::manifest_path(product).display()
-            )
-        })?;
-        // The step's own file is among the updated ones (its budget against the
-        // step before): its manifest was just written from the file as it is.
-        for u in rep.updated.iter().filter(|u| *u != product) {
-            if let Err(e) = publish::revise_manifest(u) {
-                warn!(file = %u.display(), error = %e, "manifest of an updated product not revised");
-            }
-        }
+        let mut made = staged_files(rep, &job.tag, &stage, &job.store, &job.dir)?;
+        // Staged, the step could not see the others: the cycle's tracks are
+        // made under the lock and published with it.
+        batch::stage_tracks(&job.cfg, &job.store, &job.key, &mut made);
+        let intent = commit::stage_manifests(&made, rep, &facts)?;
+        commit::publish(&job.journal, &intent)?;
         let latency = (unix_now() - facts.last_input).max(0.0);
         *written
             .lock()
-            .unwrap_or_else(std::sync::PoisonError::into_inner) = Some((m, latency));
+            .unwrap_or_else(std::sync::PoisonError::into_inner) = Some((
+            made.product.target.clone(),
+            PathBuf::from(&intent.publishing.manifest),
+            latency,
+        ));
         Ok(())
     };
     let dest = Destination {
@@ -293,16 +337,18 @@ fn run_job(job: &Job) -> JobOutcome {
         dir: &job.dir,
         lock: Some(&job.lock),
         on_published: Some(&hook),
-        stage: None,
+        stage: Some(&stage),
     };
-    let rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
-    let manifest = written
+    let mut rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
+    commit::remove_stage(&stage);
+    let published = written
         .lock()
         .unwrap_or_else(std::sync::PoisonError::into_inner)
         .take();
     if rep.output_failed {
         JobOutcome::OutputFailed(rep.skipped.clone().unwrap_or_else(|| "write failed".into()))
-    } else if let (Some(path), Some((manifest, latency))) = (rep.output.clone(), manifest) {
+    } else if let Some((path, manifest, latency)) = published {
+        rep.output = Some(path.clone());
         JobOutcome::Published {
             path,
             manifest,
@@ -316,6 +362,46 @@ fn run_job(job: &Job) -> JobOutcome {
                 .unwrap_or_else(|| "nothing could be made from the input".into()),
         )
     }
+}
+
+/// The files a step made in its staging directory, each with its place in
+/// the output tree (`dir` for its own, the cycle directory under `store` for
+/// an update of a published file).
+fn staged_files<'a>(
+    rep: &StepReport,
+    tag: &'a StepTag,
+    stage: &'a Path,
+    store: &Path,
+    dir: &Path,
+) -> Result<commit::Made<'a>, String> {
+    let Some(own) = &rep.output else {
+        return Err("no product file".into());
+    };
+    let read = |staged: &Path, target: PathBuf| {
+        StagedFile::read(staged, target)
+            .map_err(|e| format!("staged file {} unreadable: {e}", staged.display()))
+    };
+    let beside = |p: &Path| dir.join(p.file_name().unwrap_or_default());
+    let product = read(own, beside(own))?;
+    let images = rep
+        .images
+        .iter()
+        .map(|i| read(i, beside(i)))
+        .collect::<Result<Vec<_>, _>>()?;
+    let mut updated = Vec::new();
+    for u in rep.updated.iter().filter(|u| *u != own) {
+        let target = commit::update_target(stage, store, u)
+            .ok_or_else(|| format!("{}: an update outside the staging layout", u.display()))?;
+        updated.push(read(u, target)?);
+    }
+    Ok(commit::Made {
+        step: tag,
+        stage,
+        product,
+        images,
+        updated,
+        tracks: Vec::new(),
+    })
 }
 
 /// What a caught panic said.
@@ -403,6 +489,9 @@ struct Daemon {
     last_published: Option<String>,
     restart_needed: bool,
     last_ping: Instant,
+    /// Since when and why the state directory cannot be used: no new work
+    /// is taken until it can be again.
+    state_problem: Option<(Instant, String)>,
 }
 
 impl Daemon {
@@ -458,9 +547,60 @@ impl Daemon {
 
     fn record(&mut self, r: Record) {
         if let Err(e) = self.ledger.append(r) {
-            error!(error = %e, "ledger not written; the state directory needs attention");
             self.metrics().ledger_errors += 1;
+            self.state_unusable(e.to_string());
         }
+    }
+
+    /// The state directory or its ledger is gone, replaced or cannot be
+    /// written: say so once, and take no new work until it can be used.
+    fn state_unusable(&mut self, why: String) {
+        if self.state_problem.is_none() {
+            error!(state_dir = %self.cfg.service.state_dir.display(), error = %why, "state directory unusable: no new work is taken until it is back; records are kept until they can be written");
+            self.state_problem = Some((Instant::now(), why.clone()));
+        }
+        self.metrics().state_problem = Some(why);
+    }
+
+    /// Once a second: is the state directory still this service's, and, when
+    /// it was not, can it be used again? A ledger still ours is written on
+    /// (the records kept first); one removed or replaced is written anew from
+    /// the state once the directory is there again.
+    fn watch_state(&mut self) {
+        if self.state_problem.is_none() && self.ledger.in_trouble() {
+            // A publishing thread could not record its publication.
+            self.state_unusable("a record could not be written".into());
+            return;
+        }
+        match self.ledger.check() {
+            Ok(()) if self.state_problem.is_none() => return,
+            Err(e) if self.state_problem.is_none() => {
+                self.state_unusable(e.to_string());
+                return;
+            }
+            Ok(()) => {
+                if self.ledger.flush().is_err() {
+                    return;
+                }
+            }
+            Err(e @ super::ledger::LedgerError::Io { .. }) => {
+                // No room, or not writable: wait for it.
+                self.metrics().state_problem = Some(e.to_string());
+                return;
+            }
+            Err(super::ledger::LedgerError::NotHeld { .. }) => {
+                if let Err(e) = self.ledger.rewrite() {
+                    self.metrics().state_problem = Some(e.to_string());
+                    return;
+                }
+                warn!(ledger = %self.ledger.path().display(), steps = self.ledger.state.steps.len(), "ledger written anew from the service's state");
+            }
+        }
+        self.ledger.clear_trouble();
+        if let Some((since, why)) = self.state_problem.take() {
+            info!(state_dir = %self.cfg.service.state_dir.display(), unusable_s = since.elapsed().as_secs_f64(), was = %why, "state directory usable again; taking work again");
+        }
+        self.metrics().state_problem = None;
     }
 
     fn start_watchers(&mut self) {
@@ -573,6 +713,7 @@ impl Daemon {
             mtime_ns: mtime,
             checksum,
             steps: Vec::new(),
+            digests: Vec::new(),
             at: Utc::now().timestamp(),
         });
         self.record(Record::Quarantined {
@@ -591,11 +732,6 @@ impl Daemon {
         parts: super::settings::NameParts,
         force: Option<&ReprocessRequest>,
     ) {
-        let asked = |t: &StepTag| {
-            force.is_some_and(|r| {
-                r.feed == t.feed && r.cycle == t.cycle && r.lead.is_none_or(|l| l == t.lead)
-            })
-        };
         let meta = match std::fs::metadata(path) {
             Ok(m) => m,
             Err(e) => {
@@ -670,7 +806,6 @@ impl Daemon {
         }
         self.metrics().feed(feed).files_seen += 1;
         // Group the fields into steps.
-        type Gathered = (Vec<(u64, u64)>, Vec<(crate::ingest::params::Param, i64)>);
         let mut by_step: std::collections::BTreeMap<StepKey, Gathered> =
             std::collections::BTreeMap::new();
         for f in &good {
@@ -689,10 +824,32 @@ impl Daemon {
                 e.1.push(q);
             }
         }
+        let file = Caught {
+            feed: feed.to_string(),
+            path: path.to_path_buf(),
+            key,
+            size,
+            mtime,
+            checksum,
+        };
+        self.assign(&file, &bytes, by_step, &parts, force);
+    }
+
+    /// Give a catalogued file's fields to their steps, and record the file.
+    fn assign(
+        &mut self,
+        file: &Caught,
+        bytes: &[u8],
+        by_step: std::collections::BTreeMap<StepKey, Gathered>,
+        parts: &super::settings::NameParts,
+        force: Option<&ReprocessRequest>,
+    ) {
+        let (feed, path) = (file.feed.as_str(), file.path.as_path());
         let now = unix_now();
         let mut tags = Vec::new();
+        let mut digests = Vec::new();
         let mut skipped = Vec::new();
-        let catch_up = self.cfg.service.catch_up_hours;
+        let mut reopened = Vec::new();
         if let Some(s) = parts.step {
             let leads: Vec<i64> = by_step
                 .keys()
@@ -703,98 +860,51 @@ impl Daemon {
             }
         }
         for (k, (messages, fields)) in by_step {
-            let cycle = cycle_dir_name(k.reference_time);
             if let Some(c) = parts.cycle {
                 if c != k.reference_time {
-                    warn!(feed, file = %path.display(), name_cycle = %cycle_dir_name(c), cycle = %cycle, "the file name and the contents disagree on the cycle; the contents are used");
+                    warn!(feed, file = %path.display(), name_cycle = %cycle_dir_name(c), cycle = %cycle_dir_name(k.reference_time), "the file name and the contents disagree on the cycle; the contents are used");
                 }
             }
             let tag = StepTag {
                 feed: feed.to_string(),
-                cycle: cycle.clone(),
+                cycle: cycle_dir_name(k.reference_time),
                 lead: (k.valid_time - k.reference_time).num_hours(),
                 member: k.member,
                 grid: grid_id(&k.grid_key),
             };
+            let digest = super::assemble::digest(bytes, &messages);
             tags.push(tag.clone());
-            if force.is_some() && !asked(&tag) {
-                // A reprocess looks at every file of the feed: the steps not asked
-                // for go their normal way, quietly.
-                if self.ledger.state.settled(&tag) || self.asm.steps.contains_key(&tag) {
-                    continue;
-                }
-            }
-            let skipped_before = matches!(
-                self.ledger.state.steps.get(&tag).map(|s| &s.outcome),
-                Some(Outcome::Failed {
-                    kind: FailKind::Skipped,
-                    ..
-                })
-            );
-            if skipped_before && !asked(&tag) {
-                continue;
-            }
-            if self.ledger.state.settled(&tag) {
-                let used = self
-                    .ledger
-                    .state
-                    .seen
-                    .get(&key)
-                    .is_some_and(|s| s.checksum == checksum);
-                if !used {
-                    warn!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, "input arrived after its step was published; not used (reprocess the cycle to use it)");
-                    self.metrics().feed(feed).late_files += 1;
-                }
-                continue;
-            }
-            let too_old = catch_up > 0
-                && TimeDelta::try_hours(i64::from(catch_up))
-                    .is_some_and(|h| k.reference_time < Utc::now().naive_utc() - h);
-            if too_old && !asked(&tag) {
-                if self.too_old.insert((feed.to_string(), cycle.clone())) {
-                    warn!(feed, cycle = %cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
-                }
-                skipped.push(tag);
-                continue;
-            }
-            let first_seen = self
-                .ledger
-                .state
-                .steps
-                .get(&tag)
-                .map(|s| s.first_seen as f64)
-                .unwrap_or(now);
+            digests.push(digest.clone());
             let c = Contribution {
                 path: path.to_path_buf(),
-                size,
-                checksum: checksum.clone(),
+                size: file.size,
+                checksum: file.checksum.clone(),
                 messages,
+                digest,
                 seen_at: now,
             };
-            if self
-                .asm
-                .add(tag.clone(), k, c, &fields, first_seen, asked(&tag))
-            {
-                info!(feed, file = %path.display(), cycle = %cycle, step = tag.lead, fields = fields.len(), "input for step");
+            match self.step_input(file, tag.clone(), k, c, &fields, force) {
+                Given::Yes | Given::No => {}
+                Given::Skipped => skipped.push(tag),
+                Given::Reopened => reopened.push(tag),
             }
         }
-        let known = self
-            .ledger
-            .state
-            .seen
-            .get(&key)
-            .is_some_and(|s| s.size == size && s.mtime_ns == mtime && s.checksum == checksum);
+        let known = self.ledger.state.seen.get(&file.key).is_some_and(|s| {
+            s.size == file.size && s.mtime_ns == file.mtime && s.checksum == file.checksum
+        });
         if !known {
             self.record(Record::Seen {
                 feed: feed.into(),
-                file: key,
-                size,
-                mtime_ns: mtime,
-                checksum,
+                file: file.key.clone(),
+                size: file.size,
+                mtime_ns: file.mtime,
+                checksum: file.checksum.clone(),
                 steps: tags,
+                digests,
                 at: now as i64,
             });
         }
+        let catch_up = self.cfg.service.catch_up_hours;
         for tag in skipped {
             *self
                 .metrics()
@@ -811,6 +921,144 @@ impl Daemon {
                 at: now as i64,
             });
         }
+        // A step made again is made from all its input: its other files are
+        // read again (they go to the step, which waits again).
+        for tag in reopened {
+            for other in self.other_inputs(&tag, &file.key) {
+                self.ingest(&other, None);
+            }
+        }
+    }
+
+    /// Give one step a file's fields (see [`Given`]).
+    fn step_input(
+        &mut self,
+        file: &Caught,
+        tag: StepTag,
+        k: StepKey,
+        c: Contribution,
+        fields: &[(crate::ingest::params::Param, i64)],
+        force: Option<&ReprocessRequest>,
+    ) -> Given {
+        let asked = force.is_some_and(|r| {
+            r.feed == tag.feed && r.cycle == tag.cycle && r.lead.is_none_or(|l| l == tag.lead)
+        });
+        let (feed, path) = (file.feed.as_str(), file.path.as_path());
+        if force.is_some() && !asked {
+            // A reprocess looks at every file of the feed: the steps not asked
+            // for go their normal way, quietly.
+            if self.ledger.state.settled(&tag) || self.asm.steps.contains_key(&tag) {
+                return Given::No;
+            }
+        }
+        let skipped_before = matches!(
+            self.ledger.state.steps.get(&tag).map(|s| &s.outcome),
+            Some(Outcome::Failed {
+                kind: FailKind::Skipped,
+                ..
+            })
+        );
+        if skipped_before && !asked {
+            return Given::No;
+        }
+        let catch_up = self.cfg.service.catch_up_hours;
+        let too_old = catch_up > 0
+            && TimeDelta::try_hours(i64::from(catch_up))
+                .is_some_and(|h| k.reference_time < Utc::now().naive_utc() - h);
+        let mut taken = Given::Yes;
+        if self.ledger.state.settled(&tag) {
+            let used = self.ledger.state.seen.get(&file.key).is_some_and(|s| {
+                s.checksum == file.checksum || s.digest_of(&tag) == Some(c.digest.as_str())
+            });
+            if used {
+                return Given::No;
+            }
+            if let Err(why) = self.may_remake(&tag, &file.key, too_old) {
+                warn!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, reason = %why, "input arrived after its step was made; not used (reprocess the cycle to use it)");
+                self.metrics().feed(feed).late_files += 1;
+                return Given::No;
+            }
+            info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, "more input for a step already made; made again with all its input");
+            self.metrics().feed(feed).remade += 1;
+            self.record(Record::Reopened {
+                step: tag.clone(),
+                file: file.key.clone(),
+                in_hand: false,
+                at: Utc::now().timestamp(),
+            });
+            taken = Given::Reopened;
+        } else if too_old && !asked {
+            if self.too_old.insert((feed.to_string(), tag.cycle.clone())) {
+                warn!(feed, cycle = %tag.cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
+            }
+            return Given::Skipped;
+        }
+        let first_seen = self
+            .ledger
+            .state
+            .steps
+            .get(&tag)
+            .map_or(c.seen_at, |s| s.first_seen as f64);
+        let in_hand = self
+            .asm
+            .steps
+            .get(&tag)
+            .is_some_and(|p| matches!(p.phase, Phase::Running { .. }));
+        let n = fields.len();
+        let more_before = self.ledger.state.steps.get(&tag).is_some_and(|s| s.more);
+        if self.asm.add(tag.clone(), k, c, fields, first_seen, asked) {
+            if more_before {
+                // Reopened in hand before a restart, by input now caught again.
+                if let Some(p) = self.asm.steps.get_mut(&tag) {
+                    p.more = true;
+                }
+            }
+            info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, fields = n, "input for step");
+            if in_hand {
+                // Told to the ledger now: the end of the run in hand then
+                // leaves the step waiting, whatever stops the service meanwhile.
+                info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, "input for a step being made; made again with all its input once this run ends");
+                self.record(Record::Reopened {
+                    step: tag,
+                    file: file.key.clone(),
+                    in_hand: true,
+                    at: Utc::now().timestamp(),
+                });
+            }
+        }
+        taken
+    }
+
+    /// May a step already made be made again with more input? Not when its
+    /// cycle is older than catch-up, nor when one of the files it was made
+    /// from is gone (the new make would lack it).
+    fn may_remake(&self, tag: &StepTag, file: &str, too_old: bool) -> Result<(), String> {
+        if too_old {
+            return Err(format!(
+                "its cycle is older than service.catch_up_hours ({} h)",
+                self.cfg.service.catch_up_hours
+            ));
+        }
+        for other in self.other_inputs(tag, file) {
+            if !other.is_file() {
+                return Err(format!(
+                    "{} it was made from is no longer there",
+                    other.display()
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    /// The files a step was made from, as the ledger knows them, but `file`.
+    fn other_inputs(&self, tag: &StepTag, file: &str) -> Vec<PathBuf> {
+        self.ledger
+            .state
+            .seen
+            .iter()
+            .filter(|(f, s)| f.as_str() != file && s.steps.contains(tag))
+            .map(|(f, _)| PathBuf::from(f))
+            .collect()
     }
 
     fn suffix(&self, tag: &StepTag) -> Option<usize> {
@@ -972,6 +1220,7 @@ impl Daemon {
                 break;
             };
             p.phase = Phase::Running { partial };
+            p.more = false;
             let Some(cfg) = self.feed_cfgs.get(&tag.feed).cloned() else {
                 continue;
             };
@@ -988,7 +1237,17 @@ impl Daemon {
                 partial,
                 last_input: p.last_input(),
                 not_arrived,
+                journal: self.ledger.journal(),
             };
+            if let Some(st) = self.ledger.state.steps.get(&tag).filter(|s| s.more) {
+                // Handed out again with all its input: the reopening is done.
+                let (first_seen, job_attempts) = (st.first_seen, st.job_attempts);
+                self.record(Record::Step {
+                    step: tag.clone(),
+                    first_seen,
+                    job_attempts,
+                });
+            }
             if self.executor(&tag.feed) == Executor::Slurm && sched_ok {
                 let attempt = self
                     .ledger
@@ -1149,11 +1408,12 @@ impl Daemon {
                 j.phase = JobPhase::Taking;
                 let (spec, stage) = (j.spec.clone(), j.stage.clone());
                 let lock = self.lock_of(&tag.feed);
+                let journal = self.ledger.journal();
                 let tx = self.done_tx.clone();
                 std::thread::spawn(move || {
                     crate::output::quiet_hdf5_errors();
                     let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                        let t = taken_outcome(batch::take(&spec, &stage, &lock));
+                        let t = taken_outcome(batch::take(&spec, &stage, &lock, &journal));
                         crate::output::release_hdf5_free_lists();
                         t
                     }))
@@ -1254,7 +1514,13 @@ impl Daemon {
             .or_default() += 1;
         let max = self.cfg.service.slurm.max_attempts;
         let attempt = j.spec.attempt;
-        if attempt < max {
+        if let Some(p) = self.asm.steps.get_mut(tag).filter(|p| p.more) {
+            // Input came since the job's spec was written: the next job is
+            // written afresh with all of it.
+            p.more = false;
+            p.phase = Phase::Waiting;
+            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, reason = %reason, log = %log_text, "step job ended without a result; made again with the input that came meanwhile");
+        } else if attempt < max {
             let wait = self.backoff(attempt);
             warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, attempt, max_attempts = max, retry_in_s = wait.as_secs_f64(), reason = %reason, log = %log_text, "step job ended without a result; submitting again");
             self.metrics().scheduler.retries += 1;
@@ -1330,6 +1596,69 @@ impl Daemon {
             partial: spec.partial,
             last_input: spec.last_input,
             not_arrived: spec.not_arrived.clone(),
+            journal: self.ledger.journal(),
+        }
+    }
+
+    /// At start: finish the publications a stop cut short (recorded in the
+    /// ledger, not yet recorded as published). One the file system refuses
+    /// now stays recorded and is tried again at the next start; one that
+    /// cannot be finished is abandoned and its step made again. Then the
+    /// local workers' staging directories left behind are removed.
+    fn recover_publications(&mut self) {
+        let open: Vec<(StepTag, super::ledger::Publishing)> = self
+            .ledger
+            .state
+            .publishing
+            .iter()
+            .map(|(t, p)| (t.clone(), p.clone()))
+            .collect();
+        let mut kept = Vec::new();
+        for (tag, p) in open {
+            match commit::recover(&tag, &p) {
+                Ok(true) => {
+                    self.record(Record::Published {
+                        step: tag.clone(),
+                        path: p.product.clone(),
+                        manifest: p.manifest.clone(),
+                        partial: p.partial,
+                        at: Utc::now().timestamp(),
+                    });
+                    self.last_published = Some(format!("{tag}"));
+                }
+                Ok(false) => {
+                    self.record(Record::Abandoned {
+                        step: tag.clone(),
+                        reason: "a file of the publication is neither staged nor in place".into(),
+                        at: Utc::now().timestamp(),
+                    });
+                    self.fail(
+                        &tag,
+                        FailKind::Output,
+                        "a publication cut short could not be finished; made again".into(),
+                    );
+                }
+                Err(e) => {
+                    error!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, error = %e, "publication cut short not finished: the file system refused; tried again at the next start");
+                    kept.push(PathBuf::from(&p.stage));
+                }
+            }
+        }
+        let feeds: Vec<PathBuf> = self
+            .rules
+            .iter()
+            .map(|r| self.cfg.service.out_dir.join(&r.feed.name))
+            .collect();
+        for f in &feeds {
+            let Ok(rd) = std::fs::read_dir(f.join(commit::STAGE_DIR)) else {
+                continue;
+            };
+            for e in rd.flatten() {
+                if !kept.contains(&e.path()) {
+                    info!(dir = %e.path().display(), "staging directory of a step in hand at the last stop removed");
+                    commit::remove_stage(&e.path());
+                }
+            }
         }
     }
 
@@ -1440,6 +1769,8 @@ impl Daemon {
             } => {
                 let partial =
                     publish::read_manifest(&manifest).is_some_and(|m| m.state == "partial");
+                commit::crash_point("before-record");
+                let more = self.more_came(&tag);
                 info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %path.display(), manifest = %manifest.display(), partial, latency_s = latency, seconds = report.seconds, "published");
                 for i in &report.issues {
                     warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %i.file.display(), field = ?i.field, what = %i.what, reason = %i.reason, "input problem");
@@ -1455,7 +1786,7 @@ impl Daemon {
                     .feed(&tag.feed)
                     .published(partial, latency, unix_now());
                 self.last_published = Some(format!("{tag}"));
-                self.asm.steps.remove(&tag);
+                self.after_run(&tag, more);
             }
             JobOutcome::OutputFailed(reason) => {
                 let attempts = self.asm.steps.get(&tag).map_or(1, |p| p.attempts + 1);
@@ -1486,6 +1817,14 @@ impl Daemon {
                     self.restart_needed = true;
                 }
             }
+            JobOutcome::Vanished(_, _) if self.asm.steps.get(&tag).is_some_and(|p| p.more) => {
+                // The file changed after it was handed out, and its new
+                // content is already with the step: no attempt is spent.
+                if let Some(p) = self.asm.steps.get_mut(&tag) {
+                    p.more = false;
+                    p.phase = Phase::Waiting;
+                }
+            }
             JobOutcome::Vanished(file, reason) => {
                 let attempts = self.asm.steps.get(&tag).map_or(1, |p| p.attempts + 1);
                 let wait = self.backoff(attempts);
@@ -1513,13 +1852,14 @@ impl Daemon {
                 }
             }
             JobOutcome::InputFailed(reason) => {
-                self.asm.steps.remove(&tag);
                 let kind = if was_partial {
                     FailKind::Missing
                 } else {
                     FailKind::Input
                 };
+                let more = self.more_came(&tag);
                 self.fail(&tag, kind, reason);
+                self.after_run(&tag, more);
             }
             JobOutcome::Internal(reason) => {
                 self.asm.steps.remove(&tag);
@@ -1531,6 +1871,29 @@ impl Daemon {
                 self.fail(&tag, FailKind::Job, format!("{state}: {reason}"));
             }
         }
+    }
+
+    /// A step whose run has just ended: did input come while it ran? (The
+    /// ledger was told when it came, so the record of the end leaves the
+    /// step waiting.)
+    fn more_came(&self, tag: &StepTag) -> bool {
+        self.asm.steps.get(tag).is_some_and(|p| p.more)
+    }
+
+    /// After the record of a run's end: the step waits again, to be made
+    /// with all its input (at once ready if its rule or its timeout says
+    /// so), when input came while it ran; otherwise it is done.
+    fn after_run(&mut self, tag: &StepTag, more: bool) {
+        let Some(p) = self.asm.steps.get_mut(tag).filter(|_| more) else {
+            self.asm.steps.remove(tag);
+            return;
+        };
+        p.more = false;
+        p.phase = Phase::Waiting;
+        p.attempts = 0;
+        p.forced = false;
+        info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, "more input came while the step was made; made again with all its input");
+        self.metrics().feed(&tag.feed).remade += 1;
     }
 
     fn fail(&mut self, tag: &StepTag, kind: FailKind, reason: String) {
@@ -1678,6 +2041,9 @@ impl Daemon {
         if let Some((_, why)) = &self.sched_down {
             s.push_str(&format!("; {why}"));
         }
+        if let Some((_, why)) = &self.state_problem {
+            s.push_str(&format!("; no new work: state directory unusable ({why})"));
+        }
         if let Some(l) = &self.last_published {
             s.push_str(&format!("; last published {l}"));
         }
@@ -1732,6 +2098,25 @@ pub fn serve(opts: ServeOptions) -> u8 {
         }
     };
     let sdir = cfg.service.state_dir.clone();
+    // One service per state directory: a hold that survives the directory's
+    // removal, and the lock file that `leeward status` reads.
+    let _held = match super::ledger::hold_state_dir(&sdir) {
+        Ok(h) => h,
+        Err(e) if e.kind() == std::io::ErrorKind::AddrInUse => {
+            eprintln!(
+                "leeward: another leeward serve is using the state directory {}",
+                sdir.display()
+            );
+            return code::CONFIG;
+        }
+        Err(e) => {
+            eprintln!(
+                "leeward: cannot hold the state directory {}: {e}",
+                sdir.display()
+            );
+            return code::CONFIG;
+        }
+    };
     if let Err(e) = std::fs::create_dir_all(requests_dir(&sdir)) {
         eprintln!(
             "leeward: cannot use the state directory {}: {e}",
@@ -1739,36 +2124,24 @@ pub fn serve(opts: ServeOptions) -> u8 {
         );
         return code::CONFIG;
     }
-    // One service per state directory.
-    let lock = match std::fs::OpenOptions::new()
-        .create(true)
-        .truncate(false)
-        .read(true)
-        .write(true)
-        .open(lock_path(&sdir))
-    {
+    let lock = match super::ledger::take_lock(&sdir) {
         Ok(f) => f,
         Err(e) => {
-            eprintln!("leeward: cannot open {}: {e}", lock_path(&sdir).display());
+            eprintln!("leeward: {e}");
             return code::CONFIG;
         }
     };
-    if lock.try_lock().is_err() {
-        eprintln!(
-            "leeward: another leeward serve is using the state directory {}",
-            sdir.display()
-        );
-        return code::CONFIG;
-    }
-    let _ = lock.set_len(0);
-    let _ = std::fs::write(lock_path(&sdir), format!("{}\n", std::process::id()));
-    let ledger = match Ledger::open(&sdir) {
+    let mut ledger = match Ledger::open(&sdir) {
         Ok(l) => l,
         Err(e) => {
             eprintln!("leeward: {e}");
             return code::CONFIG;
         }
     };
+    if let Err(e) = ledger.hold(lock) {
+        eprintln!("leeward: {e}");
+        return code::CONFIG;
+    }
     if cfg.service.quarantine == QuarantineMode::Move {
         if let Err(e) = std::fs::create_dir_all(cfg.service.quarantine_dir()) {
             warn!(dir = %cfg.service.quarantine_dir().display(), error = %e, "cannot create the quarantine directory; bad files are recorded only");
@@ -1844,6 +2217,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         last_published: None,
         restart_needed: false,
         last_ping: Instant::now(),
+        state_problem: None,
     };
     for (tag, st) in &d.ledger.state.steps {
         if let Outcome::Published { at, .. } = st.outcome {
@@ -1866,6 +2240,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         .values()
         .filter(|s| matches!(s.outcome, Outcome::Waiting))
         .count();
+    d.recover_publications();
     d.recover_jobs();
     d.start_watchers();
     d.retention();
@@ -1927,7 +2302,8 @@ pub fn serve(opts: ServeOptions) -> u8 {
             stopping = Some(Instant::now());
             exit_code = code::RESTART;
         }
-        if stopping.is_none() {
+        let taking = stopping.is_none() && d.state_problem.is_none();
+        if taking {
             let mut files = Vec::new();
             for (_, w) in &d.watchers {
                 while let Some(p) = w.next(Duration::ZERO) {
@@ -1942,13 +2318,14 @@ pub fn serve(opts: ServeOptions) -> u8 {
         while let Ok(done) = d.done_rx.try_recv() {
             d.finished(done);
         }
-        if stopping.is_none() && d.last_poll.elapsed().as_secs_f64() >= d.cfg.service.slurm.poll_s {
+        if taking && d.last_poll.elapsed().as_secs_f64() >= d.cfg.service.slurm.poll_s {
             d.last_poll = Instant::now();
             d.poll_jobs();
         }
         if last_second.elapsed() >= Duration::from_secs(1) {
             last_second = Instant::now();
-            if stopping.is_none() {
+            d.watch_state();
+            if taking {
                 d.requests();
             }
             d.timeouts();
@@ -1964,7 +2341,9 @@ pub fn serve(opts: ServeOptions) -> u8 {
         match stopping {
             None => {
                 d.timeouts();
-                d.dispatch();
+                if d.state_problem.is_none() {
+                    d.dispatch();
+                }
             }
             Some(t0) => {
                 // Jobs on the scheduler go on without the service and are

@@ -34,8 +34,11 @@ pub struct FeedCounters {
     pub quarantined: u64,
     /// Input files catalogued.
     pub files_seen: u64,
-    /// Input files that came after their step was published.
+    /// Input files that came after their step was published and were not
+    /// used (its cycle older than catch-up, or its other inputs gone).
     pub late_files: u64,
+    /// Steps made again because input came after they were made (or while).
+    pub remade: u64,
     /// Unix time of the last publication.
     pub last_success: Option<f64>,
     /// Latency histogram counts (per bucket, not cumulative), +Inf last.
@@ -106,6 +109,9 @@ pub struct Metrics {
     pub reloads: (u64, u64),
     /// When the main loop last turned.
     pub heartbeat: Option<Instant>,
+    /// Why the state directory cannot be used, while it cannot (no new work
+    /// is taken).
+    pub state_problem: Option<String>,
     /// Unix time of start.
     pub started: f64,
 }
@@ -207,8 +213,14 @@ impl Metrics {
         family(
             "leeward_late_files_total",
             "counter",
-            "Input files that arrived after their step was published (not used; reprocess to use them).",
+            "Input files that arrived after their step was made and were not used (cycle older than catch_up_hours, or the step's other inputs gone; reprocess to use them).",
             per(&|c| vec![(String::new(), c.late_files.to_string())]),
+        );
+        family(
+            "leeward_steps_remade_total",
+            "counter",
+            "Steps made again because more input came after, or while, they were made (each a new revision of its manifest).",
+            per(&|c| vec![(String::new(), c.remade.to_string())]),
         );
         family(
             "leeward_queue_steps",
@@ -309,6 +321,12 @@ impl Metrics {
             self.ledger_errors.to_string(),
         );
         family(
+            "leeward_state_dir_usable",
+            "gauge",
+            "1 while the state directory and its ledger are this service's and writable; 0 while not (no new work is taken).",
+            u8::from(self.state_problem.is_none()).to_string(),
+        );
+        family(
             "leeward_config_reloads_total",
             "counter",
             "Configuration reloads accepted (SIGHUP).",
@@ -375,7 +393,13 @@ fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
         ),
         ("GET", "/health") | ("GET", "/healthz") => {
             let alive = m.heartbeat.is_some_and(|h| h.elapsed() < STALL);
-            if alive {
+            if let (true, Some(why)) = (alive, &m.state_problem) {
+                (
+                    "503 Service Unavailable",
+                    "text/plain; charset=utf-8",
+                    format!("state directory unusable: {why}; no new work is taken\n"),
+                )
+            } else if alive {
                 let c = &m.scheduler;
                 let body = if c.used && !c.reachable {
                     format!(

@@ -9,6 +9,7 @@
 //! - [`daemon`]: the main loop, workers, signals, reprocess requests.
 //! - [`batch`]: step jobs on a batch scheduler (Slurm): spec, result, taking it.
 //! - [`publish`]: output tree, manifests, temporaries, retention, quarantine.
+//! - [`commit`]: a step's publication as one act: recorded, renamed, finished after a crash.
 //! - [`ledger`]: the durable journal of what happened.
 //! - [`metrics`]: the health and metrics endpoint.
 //! - [`systemd`]: readiness, watchdog and status notifications.
@@ -16,6 +17,7 @@
 
 pub mod assemble;
 pub mod batch;
+pub mod commit;
 pub mod daemon;
 pub mod ledger;
 pub mod metrics;

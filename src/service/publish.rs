@@ -196,31 +196,21 @@ impl<'a> StepFacts<'a> {
     }
 }
 
-/// Write the manifest of a freshly published product.
-pub fn write_manifest(
-    product: &Path,
+/// The manifest of a step's product, to be published at `target` (the
+/// product's place in the output tree) once the staged file `staged` is
+/// renamed there: `bytes` and `sha256` are the staged file's. The revision
+/// goes on from the manifest at `target`'s place, if there is one (a step
+/// made again).
+pub fn new_manifest(
+    target: &Path,
+    staged: &Path,
+    (bytes, checksum): (u64, String),
     rep: &StepReport,
     facts: &StepFacts<'_>,
-) -> std::io::Result<PathBuf> {
-    write_manifest_with(product, rep, facts, None)
-}
-
-/// [`write_manifest`] with the product's size and SHA-256 already known (a
-/// batch job computed them on its node after closing the file), so that the
-/// service does not read the whole file again.
-pub fn write_manifest_with(
-    product: &Path,
-    rep: &StepReport,
-    facts: &StepFacts<'_>,
-    known: Option<(u64, String)>,
-) -> std::io::Result<PathBuf> {
-    let (bytes, checksum) = match known {
-        Some(k) => k,
-        None => file_checksum(product)?,
-    };
+) -> Manifest {
     let now = now_iso();
     let latency = (Utc::now().timestamp_millis() as f64 / 1000.0 - facts.last_input).max(0.0);
-    let m = Manifest {
+    Manifest {
         manifest_version: 1,
         feed: facts.feed.to_string(),
         cycle: facts
@@ -231,13 +221,13 @@ pub fn write_manifest_with(
         valid_time: facts.valid_time.format("%Y-%m-%dT%H:%M:%SZ").to_string(),
         member: facts.member,
         state: if facts.partial { "partial" } else { "complete" }.into(),
-        product: product
+        product: target
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default(),
         product_bytes: bytes,
         product_checksum: checksum,
-        variables: variables_of(product),
+        variables: variables_of(staged),
         images: rep
             .images
             .iter()
@@ -263,21 +253,35 @@ pub fn write_manifest_with(
             latency,
         },
         published_at: now.clone(),
-        // A step made again (reprocess) goes on from the revision it had.
-        revision: read_manifest(&manifest_path(product)).map_or(1, |m| m.revision + 1),
+        // A step made again (reprocess, late input) goes on from the revision it had.
+        revision: read_manifest(&manifest_path(target)).map_or(1, |m| m.revision + 1),
         revised_at: now,
-        budget_not_converged: crate::changes::not_converged_in(product),
-    };
-    let path = manifest_path(product);
-    let text = serde_json::to_vec_pretty(&m).map_err(std::io::Error::other)?;
-    write_atomic(&path, &text)?;
-    refresh_cycle_page(product);
-    Ok(path)
+        budget_not_converged: crate::changes::not_converged_in(staged),
+    }
+}
+
+/// The manifest of the published `target` once its staged copy `staged`
+/// (with a later step's additions) replaces it: size, checksum and
+/// variables of the copy, the revision one higher. `None` when `target` has
+/// no manifest (its own step writes one when it is published).
+pub fn revised_manifest(
+    target: &Path,
+    staged: &Path,
+    (bytes, checksum): (u64, String),
+) -> Option<Manifest> {
+    let mut m = read_manifest(&manifest_path(target))?;
+    m.product_bytes = bytes;
+    m.product_checksum = checksum;
+    m.variables = variables_of(staged);
+    m.budget_not_converged = crate::changes::not_converged_in(staged);
+    m.revision += 1;
+    m.revised_at = now_iso();
+    Some(m)
 }
 
 /// Write the cycle page beside a product again, now that its step is
 /// published; a page that cannot be written is logged and the step stands.
-fn refresh_cycle_page(product: &Path) {
+pub fn refresh_cycle_page(product: &Path) {
     let Some(dir) = product.parent() else {
         return;
     };
@@ -286,34 +290,54 @@ fn refresh_cycle_page(product: &Path) {
     }
 }
 
-/// Bring the manifest of an earlier product up to date after a later step
-/// added changes to it. A product without a manifest yet is left alone: its
-/// own step writes the manifest, from the file as it is then.
-pub fn revise_manifest(product: &Path) -> std::io::Result<()> {
-    revise_manifest_with(product, None)
+/// Write a manifest atomically at `path`.
+pub fn write_manifest(path: &Path, m: &Manifest) -> std::io::Result<()> {
+    let text = serde_json::to_vec_pretty(m).map_err(std::io::Error::other)?;
+    write_atomic(path, &text)
 }
 
-/// [`revise_manifest`] with the product's size and SHA-256 already known.
-pub fn revise_manifest_with(product: &Path, known: Option<(u64, String)>) -> std::io::Result<()> {
+/// Does the manifest beside `product` describe it? `Ok` when it does;
+/// otherwise what differs. `verify`: compare the SHA-256 too (a read of the
+/// whole file), not only the size.
+pub fn check_manifest(product: &Path, verify: bool) -> Result<(), String> {
     let path = manifest_path(product);
-    let text = match std::fs::read(&path) {
-        Ok(t) => t,
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()),
-        Err(e) => return Err(e),
-    };
-    let mut m: Manifest = serde_json::from_slice(&text).map_err(std::io::Error::other)?;
-    let (bytes, checksum) = match known {
-        Some(k) => k,
-        None => file_checksum(product)?,
-    };
-    m.product_bytes = bytes;
-    m.product_checksum = checksum;
-    m.variables = variables_of(product);
-    m.budget_not_converged = crate::changes::not_converged_in(product);
-    m.revision += 1;
-    m.revised_at = now_iso();
-    let text = serde_json::to_vec_pretty(&m).map_err(std::io::Error::other)?;
-    write_atomic(&path, &text)
+    let m =
+        read_manifest(&path).ok_or_else(|| format!("{}: no readable manifest", path.display()))?;
+    let size = std::fs::metadata(product)
+        .map_err(|e| format!("{}: {e}", product.display()))?
+        .len();
+    if size != m.product_bytes {
+        return Err(format!(
+            "{}: {size} bytes, its manifest says {}",
+            product.display(),
+            m.product_bytes
+        ));
+    }
+    if verify {
+        let (_, sum) = file_checksum(product).map_err(|e| format!("{}: {e}", product.display()))?;
+        if sum != m.product_checksum {
+            return Err(format!(
+                "{}: SHA-256 {sum}, its manifest says {}",
+                product.display(),
+                m.product_checksum
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// Make the manifest beside `product` describe the file as it is (size,
+/// SHA-256, variables), one revision higher; nothing when it already does or
+/// when there is no manifest.
+pub fn repair_manifest(product: &Path) -> std::io::Result<bool> {
+    if check_manifest(product, true).is_ok() {
+        return Ok(false);
+    }
+    let known = file_checksum(product)?;
+    match revised_manifest(product, product, known) {
+        Some(m) => write_manifest(&manifest_path(product), &m).map(|()| true),
+        None => Ok(false),
+    }
 }
 
 /// Read a manifest.

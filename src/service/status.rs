@@ -47,6 +47,12 @@ pub struct Report {
     pub cycles: Vec<CycleSummary>,
     /// Quarantined files: (file, reason, moved to, time), newest first.
     pub quarantined: Vec<(String, String, Option<String>, i64)>,
+    /// Published products of the cycles shown whose manifest does not
+    /// describe them: (product, what differs).
+    pub manifests_not_matching: Vec<(String, String)>,
+    /// Publications recorded and not finished: (step, files to rename). In
+    /// progress, or cut short by a stop (the service finishes them at start).
+    pub publishing: Vec<(String, usize)>,
 }
 
 /// Is a service holding the state directory? Its pid if so.
@@ -117,8 +123,35 @@ pub fn summarise(state: &State, cycles: usize) -> Vec<CycleSummary> {
     out
 }
 
-/// Build the report of a state directory.
-pub fn report(state_dir: &Path, cycles: usize) -> Result<Report, LedgerError> {
+/// The published products of the cycles shown whose manifest does not
+/// describe them (size; and SHA-256 with `verify`).
+fn manifests_not_matching(
+    state: &State,
+    shown: &[CycleSummary],
+    verify: bool,
+) -> Vec<(String, String)> {
+    let mut out = Vec::new();
+    for (tag, st) in &state.steps {
+        let Outcome::Published { path, .. } = &st.outcome else {
+            continue;
+        };
+        if !shown
+            .iter()
+            .any(|c| c.feed == tag.feed && c.cycle == tag.cycle)
+        {
+            continue;
+        }
+        if let Err(why) = super::publish::check_manifest(Path::new(path), verify) {
+            out.push((path.clone(), why));
+        }
+    }
+    out
+}
+
+/// Build the report of a state directory: the `cycles` newest cycles of each
+/// feed, their published products checked against their manifests by size
+/// (and by SHA-256 with `verify`, a read of every file).
+pub fn report(state_dir: &Path, cycles: usize, verify: bool) -> Result<Report, LedgerError> {
     let state = read_state(state_dir)?;
     let mut q: Vec<(String, String, Option<String>, i64)> = state
         .quarantined
@@ -127,11 +160,18 @@ pub fn report(state_dir: &Path, cycles: usize) -> Result<Report, LedgerError> {
         .collect();
     q.sort_by_key(|x| std::cmp::Reverse(x.3));
     q.truncate(20);
+    let shown = summarise(&state, cycles);
     Ok(Report {
         running: service_running(state_dir),
         started: state.started.as_ref().map(|(v, _, at)| (v.clone(), *at)),
-        cycles: summarise(&state, cycles),
+        manifests_not_matching: manifests_not_matching(&state, &shown, verify),
+        cycles: shown,
         quarantined: q,
+        publishing: state
+            .publishing
+            .iter()
+            .map(|(t, p)| (t.to_string(), p.moves.len()))
+            .collect(),
     })
 }
 
@@ -201,6 +241,18 @@ pub fn render(state_dir: &Path, r: &Report) -> String {
         }
         for (lead, kind, reason) in &c.failed {
             o.push_str(&format!("      +{lead}h failed ({kind}): {reason}\n"));
+        }
+    }
+    if !r.manifests_not_matching.is_empty() {
+        o.push_str("\nmanifests that do not match their files\n");
+        for (_, why) in &r.manifests_not_matching {
+            o.push_str(&format!("  {why}\n"));
+        }
+    }
+    if !r.publishing.is_empty() {
+        o.push_str("\npublications recorded and not finished (in progress, or cut short by a stop: the service finishes them when it starts)\n");
+        for (step, n) in &r.publishing {
+            o.push_str(&format!("  {step}: {n} file(s) to rename\n"));
         }
     }
     if !r.quarantined.is_empty() {

@@ -209,7 +209,8 @@ def file_levels(path: str):
     out: dict[str, list] = OrderedDict()
     with netCDF4.Dataset(path) as ds:
         for name, v in ds.variables.items():
-            if v.ndim != 4 or "grid_mapping" not in v.ncattrs():
+            # (time, level, y, x), or (time, y, x) for a single field such as mslp.
+            if v.ndim not in (3, 4) or "grid_mapping" not in v.ncattrs():
                 continue
             nsb = int(v.getncattr("quantization_nsb")) if "quantization_nsb" in v.ncattrs() else 23
             if nsb < 23:
@@ -217,6 +218,8 @@ def file_levels(path: str):
             v.set_auto_mask(True)
             data = v[0]
             arr = np.ma.filled(data.astype(np.float32), np.nan)
+            if arr.ndim == 2:
+                arr = arr[np.newaxis]
             out.setdefault(product_name(name), []).extend(arr[k] for k in range(arr.shape[0]))
     return out
 

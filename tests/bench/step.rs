@@ -60,7 +60,12 @@ fn main() {
         );
     }
     let out = std::path::PathBuf::from(out);
-    let cfg = Config::default();
+    // LEEWARD_BENCH_CONFIG names a configuration file (for instance one with some
+    // products switched off, to measure what they cost); default: every default.
+    let cfg = match std::env::var("LEEWARD_BENCH_CONFIG") {
+        Ok(p) => Config::load(std::path::Path::new(&p)).expect("the benchmark configuration"),
+        Err(_) => Config::default(),
+    };
     // The whole step twice, each into an empty directory (so no earlier file
     // is found for changes in time), best kept: the machine is shared.
     let mut best = f64::INFINITY;

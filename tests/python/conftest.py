@@ -66,7 +66,8 @@ class Run:
 
     @property
     def nc_files(self) -> list[Path]:
-        return sorted(self.out_dir.glob("*.nc"))
+        # The step files; a cycle's cyclone tracks (`*_cyclones*.nc`) are not steps.
+        return sorted(p for p in self.out_dir.glob("*.nc") if "_cyclones" not in p.name)
 
     def describe(self) -> str:
         tail = "\n".join(self.stderr.strip().splitlines()[-15:])

@@ -2,8 +2,8 @@
 own bindings (Debian's python3-gdal under /usr/bin/python3, GDAL 3.6), since the bindings
 must match the system library; the test suite's own environment calls it as a subprocess.
 
-For every data variable (four dimensions, with a grid_mapping): whether GDAL gives it a
-CRS. For one data variable (the first named on the command line, else the first in the
+For every data variable (four dimensions): whether GDAL gives it a CRS, and the units GDAL
+reports for it. For one data variable (the first named on the command line, else the first in the
 file): GDAL's geolocation of sampled pixel centres (its geotransform and CRS, through
 osr to geographic WGS 84 order lon/lat) against the file's own latitudes and longitudes,
 in units of the local grid spacing; and a gdal.Warp of its first level to EPSG:4326
@@ -23,13 +23,13 @@ gdal.UseExceptions()
 
 
 def data_variables(path):
-    """(name, GDAL subdataset name) of every array with four dimensions and a grid_mapping,
-    as GDAL's multidimensional API lists them."""
+    """(name, GDAL subdataset name) of every array with four dimensions, as GDAL's
+    multidimensional API lists them."""
     root = gdal.OpenEx(path, gdal.OF_MULTIDIM_RASTER).GetRootGroup()
     out = []
     for var in root.GetMDArrayNames():
         a = root.OpenMDArray(var)
-        if len(a.GetDimensions()) == 4 and a.GetAttribute("grid_mapping") is not None:
+        if len(a.GetDimensions()) == 4:
             out.append((var, f'NETCDF:"{path}":{var}'))
     return out
 
@@ -47,11 +47,12 @@ def main():
     messages = []
     gdal.PushErrorHandler(lambda cls, no, msg: messages.append(msg))
     variables = data_variables(path)
-    crs = {}
+    crs, units = {}, {}
     for var, name in variables:
         s = gdal.Open(name)
         srs = s.GetSpatialRef()
         crs[var] = srs.ExportToWkt() if srs is not None else None
+        units[var] = s.GetRasterBand(1).GetUnitType()
     var, name = next(((v, n) for v, n in variables if v == want), variables[0])
     src = gdal.Open(name)
     nx, ny = src.RasterXSize, src.RasterYSize
@@ -112,7 +113,7 @@ def main():
         p["warped_value"] = float(wband[wr, wc]) if inside else None
     gdal.Unlink("/vsimem/warped.tif")
     gdal.Unlink("/vsimem/level.vrt")
-    print(json.dumps(dict(variable=var, crs=crs, points=points, messages=messages,
+    print(json.dumps(dict(variable=var, crs=crs, units=units, points=points, messages=messages,
                           gdal_version=gdal.__version__)))
 
 

@@ -60,6 +60,10 @@ TALL_LEVELS_HPA = tuple(range(1000, 99, -50))
 
 #: WMO code table 4.2, discipline 0 (meteorological): (parameterCategory, parameterNumber).
 PARAM_T = (0, 0)  # temperature, K
+PARAM_MSLP = (3, 1)  # pressure reduced to mean sea level, Pa
+PARAM_RH = (1, 1)  # relative humidity, %
+#: WMO code table 4.5: mean sea level.
+LEVEL_MSL = 101
 PARAM_GH = (3, 5)  # geopotential height, gpm
 PARAM_GP = (3, 4)  # geopotential, m2 s-2
 PARAM_U = (2, 2)  # u-component of wind, m s-1
@@ -502,8 +506,11 @@ def encode_field(
     grid_relative: bool = False,
     packing: str = "grid_simple",
     bits: int = 16,
+    level_type: int = 100,
 ) -> bytes:
-    """One GRIB2 message (bytes) holding values2d (file order) on an isobaric level."""
+    """One GRIB2 message (bytes) holding values2d (file order) on an isobaric level, or on
+    the surface of code table 4.5 given by level_type (1 ground, 101 mean sea level), whose
+    level value is then 0."""
     h = eccodes.codes_grib_new_from_samples(geo.sample)
     try:
         _set_keys(h, [("tablesVersion", 28), ("centre", centre), ("subCentre", 0)])
@@ -534,9 +541,9 @@ def encode_field(
             ("typeOfGeneratingProcess", 2),  # code table 4.3: forecast
             ("indicatorOfUnitForForecastTime", 1),  # code table 4.4: hour
             ("forecastTime", times.step),
-            ("typeOfFirstFixedSurface", 100),  # code table 4.5: isobaric surface (Pa)
+            ("typeOfFirstFixedSurface", level_type),  # code table 4.5: 100 isobaric surface (Pa)
             ("scaleFactorOfFirstFixedSurface", 0),
-            ("scaledValueOfFirstFixedSurface", int(round(level_hpa * 100))),
+            ("scaledValueOfFirstFixedSurface", int(round(level_hpa * 100)) if level_type == 100 else 0),
             ("typeOfSecondFixedSurface", 255),
         ])
         vals = np.ascontiguousarray(values2d, dtype=float).ravel()

@@ -317,3 +317,136 @@ def test_layer_mean_wind_is_mass_weighted_in_sheared_flow(leeward_bin, tmp_path)
                        f"{trap / exact - 1:+.2e} off the exact integral (ln p weighting "
                        f"{by_lnp / exact - 1:+.2e}, levels alike {alike / exact - 1:+.2e})")
         print(FIGURES[-1])
+
+
+# ---------------------------------------------------------------------------------------
+# Case 3: a rigid rotation about an axis tilted off the pole, carrying the air across
+# latitudes and over the poles
+# ---------------------------------------------------------------------------------------
+#: The rotation axis: a unit vector through 20 N, 30 E. Air on the great circle 90 degrees
+#: from it reaches 70 N/S; air 70 degrees from it passes over a pole.
+AXIS_LAT, AXIS_LON = 20.0, 30.0
+
+
+def _unit(lat_deg, lon_deg):
+    p, l = np.radians(lat_deg), np.radians(lon_deg)
+    return np.stack([np.cos(p) * np.cos(l), np.cos(p) * np.sin(l), np.sin(p)], axis=-1)
+
+
+def _rotate(r, axis, angle):
+    """Rodrigues' rotation formula: r turned by `angle` (radians) about the unit `axis`."""
+    k = np.broadcast_to(axis, r.shape)
+    c, s = np.cos(angle), np.sin(angle)
+    kr = np.sum(k * r, axis=-1, keepdims=True)
+    return r * c + np.cross(k, r) * s + k * kr * (1 - c)
+
+
+def _pattern3(r):
+    """A smooth pattern on the sphere (a polynomial in the Cartesian components) that no
+    rotation about the axis leaves unchanged."""
+    x, y, z = r[..., 0], r[..., 1], r[..., 2]
+    return x * y + 0.8 * z * z - 0.5 * y * z + 0.3 * x
+
+
+def _tilted_winds(geo):
+    """East and north components (m/s) of V = a (W x r), W = (u0/a) axis: the solid-body
+    rotation about the axis with speed u0 on its great circle (Williamson et al. 1992 test
+    case 1 with a tilted axis; REFERENCES.md)."""
+    axis = _unit(AXIS_LAT, AXIS_LON)
+    r = _unit(geo.lat, geo.lon)
+    vel = U0 * np.cross(np.broadcast_to(axis, r.shape), r)
+    p, l = np.radians(geo.lat), np.radians(geo.lon)
+    east = np.stack([-np.sin(l), np.cos(l), np.zeros_like(l)], axis=-1)
+    north = np.stack([-np.sin(p) * np.cos(l), -np.sin(p) * np.sin(l), np.cos(p)], axis=-1)
+    return np.sum(vel * east, axis=-1), np.sum(vel * north, axis=-1)
+
+
+@pytest.fixture(scope="module")
+def tilted(leeward_bin, tmp_path_factory):
+    d = tmp_path_factory.mktemp("budget_tilted")
+    geo = gribgen.geometry(GRID)
+    u, v = _tilted_winds(geo)
+    angle = U0 * DT_H * 3600.0 / A  # radians turned in 6 h
+    axis = _unit(AXIS_LAT, AXIS_LON)
+    r = _unit(geo.lat, geo.lon)
+    r_dep = _rotate(r, axis, -angle)  # the exact departure point of each grid point
+    s0 = write_step(d / "s000.grib2", 0, 1 + EPS * _pattern3(r), u=u, v=v)
+    s6 = write_step(d / "s006.grib2", DT_H, 1 + EPS * _pattern3(r_dep), u=u, v=v)
+    _, later = run_pair(leeward_bin, d, s0, s6)
+    return read(later, NAMES), angle
+
+
+def test_tilted_rotation_across_latitudes_and_over_the_poles(tilted):
+    # The pattern and the flow turn together about an axis through 20 N, 30 E by
+    # u0 dt / a = 7.8 degrees, so every column keeps its depth and its relative vorticity
+    # zeta = 2 W.r (solid body), while f = 2 Omega sin(lat) changes as it moves north or
+    # south. In closed form, with r_d the departure point: the Coriolis part
+    # bud_zeta_beta = f(r_d) - f(r_a), the departure vorticity bud_zeta_dep = 2 W.r_d
+    # (= zeta at arrival), the stretching part 0, and therefore bud_zeta_diff =
+    # f(r_a) - f(r_d): this flow is not a solution of the vorticity equation, and the
+    # budget must say by how much. A departure point 0.1 grid length (0.25 degrees) off
+    # changes f by up to 2 Omega cos(lat) 0.1 dlat: that plus 1e-8 s-1 bounds the Coriolis
+    # part at every latitude, poles included; bud_stretch is held to the bilinear value at
+    # the exact departure point as in case 1 (|lat| <= 60); the departure vorticity, from
+    # 2.5-degree differences, within 1% of max |zeta| plus the same 0.1 grid length of its
+    # gradient (|lat| <= 80; common practice for second-order differences on this grid).
+    (lat, lon, f, attrs, layers), angle = tilted
+    lat, lon = np.asarray(lat, dtype=float), np.asarray(lon, dtype=float)
+    axis = _unit(AXIS_LAT, AXIS_LON)
+    r = _unit(lat, lon)
+    r_dep = _rotate(r, axis, -angle)
+    w = U0 / A
+    lat_d = np.degrees(np.arcsin(np.clip(r_dep[..., 2], -1, 1)))
+    lon_d = np.degrees(np.arctan2(r_dep[..., 1], r_dep[..., 0]))
+    f_a, f_d = gribgen.coriolis(lat), gribgen.coriolis(lat_d)
+    zeta_d = 2 * w * np.sum(r_dep * axis, axis=-1)
+    step = 0.1 * np.radians(2.5)
+    # Bilinear interpolation of f between rows 2.5 degrees apart errs by up to
+    # max|f''| h^2 / 8 = 2 Omega h^2 / 8 (the linear interpolation error bound), 3.5e-8 s-1.
+    interp = 2 * gribgen.OMEGA * np.radians(2.5) ** 2 / 8
+    beta_allow = 2 * gribgen.OMEGA * np.cos(np.radians(lat_d)) * step + interp + 1e-9
+    zeta_allow = 0.01 * 2 * w + 2 * w * step + 1e-9
+    # Exact departure point in the file's grid indices.
+    rows = lat[:, 0]
+    fj = np.interp(lat_d, rows, np.arange(rows.size)) if rows[0] < rows[-1] else \
+        np.interp(-lat_d, -rows, np.arange(rows.size))
+    fi = ((lon_d - lon[0, 0]) % 360.0) / 2.5
+    moved = float(np.max(np.abs(f_d - f_a)))
+    worst = {"beta": 0.0, "stretch": 0.0, "dep": 0.0}
+    poles = np.abs(lat) >= 80.0
+    for (bottom, top) in LAYERS:
+        k = _layer_index(layers, bottom, top)
+        beta, dep, diff = f["bud_zeta_beta"][k], f["bud_zeta_dep"][k], f["bud_zeta_diff"][k]
+        ok = np.isfinite(beta)
+        assert ok.sum() > 0.9 * lat.size, f"{bottom}-{top} K: budget at {ok.sum()} of {lat.size} points"
+        assert np.isfinite(beta[poles]).sum() > 0.5 * poles.sum(), "the budget reaches the polar caps"
+        err = np.abs(beta - (f_d - f_a))
+        worst["beta"] = max(worst["beta"], float(np.nanmax(err / beta_allow)))
+        assert np.all(err[ok] <= beta_allow[ok]), (
+            f"{bottom}-{top} K: bud_zeta_beta off f(r_d) - f(r_a) by up to {np.nanmax(err):.3g} s-1")
+        mid = ok & (np.abs(lat) <= 80.0) & np.isfinite(dep)
+        assert mid.sum() > 0.8 * lat.size * 160 / 180
+        errz = np.abs(dep - zeta_d)
+        worst["dep"] = max(worst["dep"], float(np.max(errz[mid] / zeta_allow)))
+        assert np.all(errz[mid] <= zeta_allow), (
+            f"{bottom}-{top} K: bud_zeta_dep off 2 W.r_d by up to {np.max(errz[mid]):.3g} s-1")
+        diff_allow = zeta_allow + beta_allow + np.abs(f_d) * 0.02
+        assert np.all(np.abs(diff - (f_a - f_d))[mid] <= diff_allow[mid]), (
+            f"{bottom}-{top} K: bud_zeta_diff off f(r_a) - f(r_d)")
+        # Depth at the departure point: bilinear value of the earlier depth there.
+        dp_old = layer_depth(1 + EPS * _pattern3(r), bottom, top)
+        dp_new = layer_depth(1 + EPS * _pattern3(r_dep), bottom, top)
+        want = dp_new / _bilinear(dp_old, fj, fi) - 1.0
+        ln_dp = np.log(dp_old)
+        allow = 0.1 * (np.abs(np.gradient(ln_dp, axis=1)) + np.abs(np.gradient(ln_dp, axis=0))) + 1e-4
+        sel = ok & (np.abs(lat) <= 60.0) & (np.abs(lat_d) <= 60.0)
+        got = f["bud_stretch"][k]
+        ratio = float(np.max(np.abs(got - want)[sel] / allow[sel]))
+        worst["stretch"] = max(worst["stretch"], ratio)
+        assert ratio <= 1.0, (f"{bottom}-{top} K: bud_stretch off the exact departure point's by "
+                              f"{ratio:.2f} of the 0.1-grid-length allowance")
+    FIGURES.append(f"budget, rotation about an axis through 20 N 30 E by 7.8 degrees (f changes by up "
+                   f"to {moved:.2e} s-1 along the paths): worst share of the allowance used: Coriolis "
+                   f"part {worst['beta']:.3f}, departure vorticity {worst['dep']:.3f}, stretching "
+                   f"{worst['stretch']:.3f}")
+    print(FIGURES[-1])

@@ -119,8 +119,23 @@ def test_the_demo_page_shows_every_step_and_image_and_steps_with_the_keys(demo_c
 
     labels = [f"+{m['lead_hours']:03d}h" for m in ms]
     # Every image of the page, as the manifests list them, in the DOM.
+    # and the cycle's cyclone tracks over the latest mean sea-level pressure.
+    tracks = "c255_20260314T0000Z_cyclones"
     in_dom = browser.execute_script("return Array.from(document.images).map(i => decodeURIComponent(i.src.split('/').pop()));")
-    assert sorted(in_dom) == sorted(i for m in ms for i in m["images"])
+    assert sorted(in_dom) == sorted([i for m in ms for i in m["images"]] + [f"{tracks}.png"])
+    # The tracks' map is shown above the lead times, loaded by the browser, with links to
+    # the tracks' files, which are served.
+    track_img = wait_for(browser, """
+        const i = document.querySelector('section.tracks img');
+        return i && i.complete && i.naturalWidth > 0 ? decodeURIComponent(i.src.split('/').pop()) : null;""")
+    assert track_img == f"{tracks}.png"
+    links = browser.execute_script(
+        "return Array.from(document.querySelectorAll('section.tracks p a')).map(a => a.href);")
+    assert sorted(l.split('/')[-1] for l in links) == [f"{tracks}.geojson", f"{tracks}.nc"]
+    for l in links:
+        with urllib.request.urlopen(l, timeout=30) as r:
+            assert r.status == 200 and int(r.headers["Content-Length"]) == (
+                demo_cycle / l.split('/')[-1]).stat().st_size
     # It opens on the latest step; Home goes to the first.
     assert shown(browser) == [labels[-1]]
     body = browser.find_element(By.TAG_NAME, "body")
@@ -167,5 +182,10 @@ def test_the_page_reads_without_scripts(demo_cycle):
         assert f'href="{m["product"]}"' in html
         for i in m["images"]:
             assert f'src="{i}"' in html
+    # The cycle's cyclone tracks: their map and their files.
+    assert html.count('<section class="tracks">') == 1
+    for x in ('src="c255_20260314T0000Z_cyclones.png"', 'href="c255_20260314T0000Z_cyclones.nc"',
+              'href="c255_20260314T0000Z_cyclones.geojson"'):
+        assert x in html, x
     # Nothing from elsewhere: no address with a scheme or a host.
     assert "http://" not in html and "https://" not in html and "src=\"//" not in html

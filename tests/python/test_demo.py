@@ -20,6 +20,11 @@ netCDF4 = pytest.importorskip("netCDF4")
 png = pytest.importorskip("PIL.Image")
 
 
+def _steps(cycle: Path) -> list[Path]:
+    """The step files of a cycle directory (its cyclone tracks, `*_cyclones.nc`, are not steps)."""
+    return sorted(p for p in cycle.glob("*.nc") if "_cyclones" not in p.name)
+
+
 def test_the_demo_publishes_every_step_through_the_service(tmp_path):
     d = tmp_path / "demo"
     r = subprocess.run([str(leeward_bin_path()), "demo", "--dir", str(d), "--leads", "0,6,12",
@@ -30,14 +35,30 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
         for lead in ("+000h", "+006h", "+012h"):
             row = [x for x in out.splitlines() if x.startswith(feed) and lead in x]
             assert row and " - " not in row[0].split(lead)[1][:30], f"{feed} {lead} not published:\n{out}"
-    assert len(list((d / "products" / "global" / "20260314T0000Z").glob("*.nc"))) == 3
+    assert len(_steps(d / "products" / "global" / "20260314T0000Z")) == 3
     assert "leeward status --state-dir" in out, out
     cycle = d / "products" / "regional" / "20260314T0000Z"
-    ncs = sorted(cycle.glob("*.nc"))
+    ncs = _steps(cycle)
     assert len(ncs) == 3
+    # The cycle's cyclone tracks beside the steps, with their quicklook, and in the table:
+    # the lee low of the scenario (demo-data/README.md) east of the range from hour 0.
+    tracks = cycle / "c255_20260314T0000Z_cyclones.nc"
+    for f in (tracks, tracks.with_suffix(".geojson"), tracks.with_suffix(".png")):
+        assert f.is_file(), f"{f.name} missing: {sorted(p.name for p in cycle.iterdir())}"
+    g = json.loads(tracks.with_suffix(".geojson").read_text())
+    lee = [f["properties"] for f in g["features"] if f["properties"]["kind"] == "track"
+           and 46.0 < f["properties"]["points"][0]["lat"] < 50.0 and 10.0 < f["properties"]["points"][0]["lon"] < 15.0]
+    assert len(lee) == 1 and lee[0]["points_count"] == 3, g["features"]
+    assert "Cyclone tracks in products/regional/20260314T0000Z/c255_20260314T0000Z_cyclones.geojson" in out, out
+    assert "Eady growth rate within 500 km" in out and "terrain within 500 km upstream" in out, out
     for nc in ncs:
         m = json.loads(nc.with_suffix(".json").read_text())
         assert m["state"] == "complete"
+        # The demo's invented centre (GRIB2 centre 255, "missing" in WMO common code table
+        # C-11) is named by the demo's configuration (output.institutions), not a number.
+        import netCDF4
+        with netCDF4.Dataset(nc) as ds:
+            assert ds.getncattr("institution") == "Harrowmere Forecast Centre (invented for the leeward demo)"
         assert m["images"], "quicklooks listed in the manifest"
         # Every configured image of the demo (src/demo/play.rs) is there; the PV
         # budget's, read back from the file, from the second step on.
@@ -62,9 +83,9 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
     beside = Path(sys.executable).parent / "compliance-checker"
     exe = str(beside) if beside.is_file() else shutil.which("compliance-checker")
     assert exe, "compliance-checker not installed (tests/python/requirements.txt)"
-    runs = cfo._ComplianceRuns(exe, ncs, tmp_path)
+    runs = cfo._ComplianceRuns(exe, ncs + [tracks], tmp_path)
     rep = runs.report()
-    for nc in ncs:
+    for nc in ncs + [tracks]:
         cf = rep[str(nc)]["cf:1.11"]
         high = [(c["name"], c["msgs"]) for c in cf["high_priorities"] if c["value"][0] < c["value"][1]]
         assert cfo._real_failures(nc, high) == [], f"{nc.name}: {high}"
@@ -84,7 +105,7 @@ def test_a_second_demo_run_in_the_same_directory_starts_afresh_and_a_foreign_one
     st = subprocess.run([str(leeward_bin_path()), "status", "--state-dir", str(d / "state")],
                         capture_output=True, text=True, timeout=30)
     assert "1 complete" in st.stdout, st.stdout
-    assert len(list((d / "products" / "regional" / "20260314T0000Z").glob("*.nc"))) == 1
+    assert len(_steps(d / "products" / "regional" / "20260314T0000Z")) == 1
     # A directory that holds someone else's files is refused and left as it was.
     foreign = tmp_path / "mine"
     foreign.mkdir()

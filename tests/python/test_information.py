@@ -99,9 +99,12 @@ def _documented_kept_bits() -> dict[str, int]:
 
 def table_name(var: str) -> str:
     """The name a file variable's kept bits are listed under (`thick_1000_500` -> `thick`,
-    `thick_chg_06h_1000_500` -> `thick_chg`)."""
+    `thick_chg_06h_1000_500` -> `thick_chg`, `mslp_chg_06h` -> `mslp_chg`)."""
     prod = information.product_name(var)
-    return "thick_chg" if prod.startswith("thick_chg_") else prod
+    for chg in ("thick_chg", "mslp_chg"):
+        if prod.startswith(chg + "_"):
+            return chg
+    return prod
 
 
 def test_files_keep_the_documented_bits(real_runs):
@@ -116,7 +119,7 @@ def test_files_keep_the_documented_bits(real_runs):
         for path in run.nc_files:
             with netCDF4.Dataset(path) as ds:
                 for name, v in ds.variables.items():
-                    if v.ndim != 4 or "grid_mapping" not in v.ncattrs():
+                    if v.ndim not in (3, 4) or "grid_mapping" not in v.ncattrs():
                         continue
                     prod = table_name(name)
                     nsb = int(v.getncattr("quantization_nsb"))

@@ -81,7 +81,8 @@ def gfs_images(leeward_bin, samples_dir, tmp_path_factory):
     r = subprocess.run([str(leeward_bin), "process", "--config", str(cfg), "--out", str(out),
                         str(samples_dir / GFS_SAMPLE)], capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
-    images = {p.name.split("_072h_")[1].removesuffix(".png"): p for p in out.glob("*.png")}
+    # The step's images (the cycle's tracks map beside them is not one of the step's).
+    images = {p.name.split("_072h_")[1].removesuffix(".png"): p for p in out.glob("*_072h_*.png")}
     assert set(images) == {"trop_theta_2", "trop_p_2", "zeta_500", "zeta_300"}, images
     return images
 

@@ -207,8 +207,9 @@ def made(leeward_bin, tmp_path_factory) -> dict[str, Made]:
 
 
 def _data_variables(ds) -> list[str]:
-    """Names of the data variables: four dimensions and a grid mapping (output contract)."""
-    return [n for n, v in ds.variables.items() if v.ndim == 4 and "grid_mapping" in v.ncattrs()]
+    """Names of the data variables: the variables of four dimensions (time, vertical, y, x;
+    output contract). Not chosen by their grid_mapping, so that one without it is checked."""
+    return [n for n, v in ds.variables.items() if v.ndim == 4]
 
 
 def test_cf_1_11_attributes(made):
@@ -224,6 +225,7 @@ def test_cf_1_11_attributes(made):
             assert ds["time"].getncattr("units_metadata") == "leap_seconds: none"
             for n in _data_variables(ds):
                 a = {k: ds[n].getncattr(k) for k in ds[n].ncattrs()}
+                assert a.get("grid_mapping") == "crs", (kind, n, a.get("grid_mapping"))
                 assert (a.get("quantization"), a.get("quantization_nsb")) == ("quantization_info", KEPT[table_name(n)]), (kind, n)
                 assert not any(k.startswith("leeward_significant") for k in a), (kind, n)
                 if a.get("units") == "K":
@@ -383,7 +385,7 @@ def gdal_views(made):
 
 
 @pytest.mark.parametrize("kind", CLIENT_KINDS)
-def test_gdal_crs_and_placement(kind, gdal_views):
+def test_gdal_crs_and_placement(kind, gdal_views, made):
     v = gdal_views[kind]
     without = [n for n, wkt in v["crs"].items() if not wkt]
     assert v["crs"] and not without, f"{kind}: GDAL gives no CRS to {without}"
@@ -395,6 +397,10 @@ def test_gdal_crs_and_placement(kind, gdal_views):
     assert not wrong, f"{kind}: warp to EPSG:4326 at the file's coordinates (lat, lon, source, warped): {wrong}"
     bad = [m for m in v["messages"] if "angle" in m.lower() or "longitude" in m.lower()]
     assert not bad, f"{kind}: GDAL says {bad}"
+    # GDAL takes the units attribute as the band's unit type: the PV units among them.
+    with netCDF4.Dataset(made[kind].file) as ds:
+        differ = {n: (u, ds[n].getncattr("units")) for n, u in v["units"].items() if u != ds[n].getncattr("units")}
+    assert not differ, f"{kind}: GDAL's units (GDAL, file) {differ}"
 
 
 # ---------------------------------------------------------------------------------------
@@ -480,6 +486,62 @@ def test_pv_units_read_by_every_unit_library(made):
         got = float(cp.stdout.split("=")[1].split()[0])
         assert abs(got / want - 1) < 1e-5, (n, u, cp.stdout)
     FIGURES.append(f"PV units read by pint, cf_units and UDUNITS: {sorted(set(found.values()))}")
+
+
+# ---------------------------------------------------------------------------------------
+# Thickness: every reader selects exactly one layer by its pressures
+# ---------------------------------------------------------------------------------------
+#: The configured isobaric layers (thickness.layers_hpa default, docs/configuration.md),
+#: bottom and top in Pa: they overlap (1000-500 holds the other three).
+LAYERS_PA = ((100000.0, 85000.0), (85000.0, 70000.0), (100000.0, 50000.0), (70000.0, 50000.0))
+THICKNESS = "atmosphere_layer_thickness_expressed_as_geopotential_height_difference"
+
+
+@pytest.mark.parametrize("kind", ["latlon_from_0", "lambert", "changes_and_budget"])
+def test_each_thickness_layer_is_selected_by_its_pressures(kind, made):
+    # CF 1.11 section 7.1 (cell boundaries): a layer is the cell its coordinate's bounds
+    # give. Iris (a constraint on the air_pressure cell) and xarray with cf_xarray (the Z
+    # coordinate's bounds) each find exactly one thickness of each layer, on a vertical
+    # coordinate of that one layer, and its values are z(top) - z(bottom) of the file's own
+    # geopotential height (the inputs have z on every level: the method's first branch,
+    # docs/output.md "Thickness"), within the rounding of the three stored values.
+    iris = pytest.importorskip("iris", reason="Iris (PyPI scitools-iris) is not installed")
+    path = made[kind].file
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cubes = iris.load(str(path), iris.Constraint(cube_func=lambda c: c.standard_name == THICKNESS))
+    with xr.open_dataset(path) as ds:
+        z = ds["z"].isel(time=0)
+        by_xarray = {}
+        for n in ds.data_vars:
+            if ds[n].attrs.get("standard_name") != THICKNESS:
+                continue
+            zc = ds[n].cf["Z"]
+            assert zc.size == 1, f"{kind}: {n} holds {zc.size} layers"
+            b = tuple(float(x) for x in np.ravel(ds[zc.attrs["bounds"]].values))
+            by_xarray.setdefault(b, []).append(n)
+        worst = 0.0
+        for bottom, top in LAYERS_PA:
+            lay = (bottom, top)
+            found = by_xarray.get(lay, [])
+            assert len(found) == 1, f"{kind}: cf_xarray finds {found} for the layer {lay} (all: {by_xarray})"
+            one = cubes.extract(iris.Constraint(air_pressure=lambda c, lay=lay: c.bound is not None
+                                                and tuple(float(x) for x in c.bound) == lay))
+            assert len(one) == 1, f"{kind}: Iris selects {[c.var_name for c in one]} for the layer {lay}"
+            cube = one[0]
+            assert cube.var_name == found[0], (kind, lay, cube.var_name, found)
+            pz = cube.coord(axis="Z")
+            assert pz.shape == (1,) and pz.points[0] == 0.5 * (bottom + top), (kind, lay, pz)
+            zt, zb = (z.sel(pressure=p).values.astype(np.float64) for p in (top, bottom))
+            got = np.asarray(cube.data, dtype=np.float64).reshape(zt.shape)
+            want = zt - zb
+            tol = (np.abs(want) + np.abs(zt) + np.abs(zb)) * ROUNDING + 1e-3
+            assert np.all(np.isfinite(got)) and np.all(np.abs(got - want) <= tol), (
+                f"{kind}: {cube.var_name} differs from z({top:g} Pa) - z({bottom:g} Pa) by up to "
+                f"{np.nanmax(np.abs(got - want)):.3f} m")
+            worst = max(worst, float(np.max(np.abs(got - want))))
+    FIGURES.append(f"thickness {kind}: Iris and cf_xarray select each of {len(LAYERS_PA)} layers once by its "
+                   f"bounds; largest |thick - (z_top - z_bottom)| {worst:.3f} m")
 
 
 # ---------------------------------------------------------------------------------------

@@ -110,11 +110,12 @@ def records(svc: Service, event: str) -> list[dict]:
 
 
 def no_stray_files(root: Path):
-    """Nothing hidden left in the output tree and no staging directory."""
+    """Nothing hidden left in the output tree and no staging directory (the
+    feed's `.jobs` and `.publish` directories hold them while in use)."""
     out = root / "out"
-    stray = [p for p in out.rglob("*") if p.name.startswith(".") and p.name != ".jobs"]
-    jobs = out / "demo" / ".jobs"
-    left = list(jobs.iterdir()) if jobs.exists() else []
+    work = (".jobs", ".publish")
+    stray = [p for p in out.rglob("*") if p.name.startswith(".") and p.name not in work]
+    left = [x for w in work if (out / "demo" / w).exists() for x in (out / "demo" / w).iterdir()]
     assert stray == [] and left == [], (stray, left)
 
 
@@ -331,6 +332,51 @@ def test_a_coordinator_killed_while_jobs_run_follows_them_again(tmp_path, slurm)
     assert "step job from before the restart followed again" in log
     no_stray_files(tmp_path)
     assert svc.stop() == 0
+
+
+@pytest.mark.parametrize("point", ["after-move-3", "before-record"])
+def test_a_coordinator_killed_while_it_publishes_a_jobs_result_finishes_it_at_start(
+        tmp_path, slurm, point):
+    """The result of the +6 h job changes the +12 h file already published:
+    the coordinator aborts (its test-only hook LEEWARD_TEST_CRASH_AT) after
+    the +12 h file was renamed and before its manifest was (after-move-3), or
+    after every rename and before the ledger's `published` record. At the
+    next start the publication recorded in the ledger is finished: every
+    manifest describes its file (size and SHA-256, hashlib), the +12 h
+    manifest is at revision 2, as in a run without a crash, and the step is
+    recorded published once."""
+    files = dict(zip([0, 6, 12], demo_inputs(tmp_path / "gen", "2026031400", [0, 6, 12])))
+    svc = slurm_service(tmp_path, slurm).start()
+    for k, lead in enumerate([0, 12], start=1):
+        deliver_renamed(files[lead].read_bytes(), tmp_path / "in" / files[lead].name)
+        wait_for(lambda: len(svc.published()) == k, DEADLINE_S, f"+{lead} h published")
+    assert svc.stop() == 0
+    svc = slurm_service(tmp_path, slurm)
+    svc.env["LEEWARD_TEST_CRASH_AT"] = point
+    svc.start()
+    deliver_renamed(files[6].read_bytes(), tmp_path / "in" / files[6].name)
+    wait_for(lambda: svc.proc.poll() is not None, DEADLINE_S, f"the coordinator aborted at {point}")
+    svc.logf.close()
+    intent = [r for r in records(svc, "publishing") if r["step"]["lead"] == 6]
+    assert len(intent) == 1 and ".jobs" in intent[0]["stage"], intent
+    del svc.env["LEEWARD_TEST_CRASH_AT"]
+    svc.start()
+    wait_for(lambda: len(svc.published()) == 3, DEADLINE_S, "+6 h published after the restart")
+    assert svc.stop() == 0
+    assert sorted(r["step"]["lead"] for r in svc.published()) == [0, 6, 12]
+    revisions = {}
+    for m_path in sorted((tmp_path / "out").rglob("*.json")):
+        if ".jobs" in m_path.parts:
+            continue
+        m = json.loads(m_path.read_text())
+        product = m_path.parent / m["product"]
+        assert m["product_bytes"] == product.stat().st_size, m_path
+        assert m["product_checksum"] == hashlib.sha256(product.read_bytes()).hexdigest(), m_path
+        revisions[m["lead_hours"]] = m["revision"]
+    assert revisions == {0: 1, 6: 1, 12: 2}, revisions
+    assert "publication cut short by a stop finished" in svc.log.read_text()
+    assert len(records(svc, "submitted")) == 3, "the job's result was not made again"
+    no_stray_files(tmp_path)
 
 
 def test_an_unreachable_scheduler_falls_back_to_local_and_says_so(tmp_path):

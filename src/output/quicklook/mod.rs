@@ -286,6 +286,14 @@ pub fn band_step(span: f64) -> f64 {
 /// finite, not in order, too far apart, or a band width that gives no bands
 /// or more than [`MAX_BANDS`]).
 pub fn render(q: &Quicklook<'_>) -> Result<Vec<u8>, String> {
+    render_with_marks(q, &[])
+}
+
+/// [`render`] with tracks drawn over the map: each mark a line through points
+/// given as (row, column) grid indices of the field (fractions allowed), a dot
+/// at each point and a larger one at its last. A segment that jumps more than
+/// half the grid's width (across the seam of a global grid) is not drawn.
+pub fn render_with_marks(q: &Quicklook<'_>, marks: &[Vec<(f64, f64)>]) -> Result<Vec<u8>, String> {
     let shape = q.values.dim();
     let mut shapes = vec![("lat", q.lat.dim()), ("lon", q.lon.dim())];
     if let Outline::Terrain { height, .. } = q.outline {
@@ -320,6 +328,9 @@ pub fn render(q: &Quicklook<'_>) -> Result<Vec<u8>, String> {
     let note = draw_outline(&mut img, &lay, &place, &q.outline);
     if let Some(c) = &q.contour {
         draw_contour(&mut img, &lay, &place, c);
+    }
+    if !marks.is_empty() {
+        draw_marks(&mut img, &lay, &place, marks);
     }
     img.frame(lay.map_x, lay.map_y, lay.map_w, lay.map_h, FRAME);
     draw_colour_bar(&mut img, &lay, &q.scale);
@@ -697,6 +708,29 @@ fn draw_contour(img: &mut Canvas, lay: &Layout, place: &Placement, c: &Contour<'
     stroke_contour(&mut halo, place, &c.values, c.level, 2.4);
     stroke_contour(&mut core, place, &c.values, c.level, 1.3);
     blend_mask(img, lay, &halo, [255, 255, 255], 0.85);
+    blend_mask(img, lay, &core, CONTOUR_INK, 1.0);
+}
+
+/// Tracks over the map: dark lines and dots with a white halo.
+fn draw_marks(img: &mut Canvas, lay: &Layout, place: &Placement, marks: &[Vec<(f64, f64)>]) {
+    let mut halo = Mask::new(place.w, place.h);
+    let mut core = Mask::new(place.w, place.h);
+    for mark in marks {
+        for w in mark.windows(2) {
+            if (w[1].1 - w[0].1).abs() <= place.nx as f64 / 2.0 {
+                let (a, b) = (place.pixel(w[0].1, w[0].0), place.pixel(w[1].1, w[1].0));
+                halo.segment(a, b, 2.6);
+                core.segment(a, b, 1.4);
+            }
+        }
+        for (k, &(row, col)) in mark.iter().enumerate() {
+            let r = if k + 1 == mark.len() { 4.5 } else { 2.5 };
+            let c = place.pixel(col, row);
+            halo.segment(c, c, r + 1.2);
+            core.segment(c, c, r);
+        }
+    }
+    blend_mask(img, lay, &halo, [255, 255, 255], 0.9);
     blend_mask(img, lay, &core, CONTOUR_INK, 1.0);
 }
 

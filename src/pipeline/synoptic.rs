@@ -1,0 +1,256 @@
+//! The fields a forecaster weighs round a cyclone, made within a step: mean
+//! sea-level pressure and the terrain, the steering wind, the Eady growth rate
+//! of a layer, equivalent potential temperature, humidity on isentropic
+//! surfaces and the low-level PV mean.
+//!
+//! In: the step's stacked isobaric fields (levels, rows, columns; NaN where
+//! missing or below ground) and its 2-D inputs. Out: [`Product`]s, each with
+//! the layer it stands for in its attributes. The formulas are the pure
+//! functions of [`crate::diagnostics`]; this module only walks the grid.
+
+use ndarray::{Array2, Array3, Axis, Zip};
+
+use crate::diagnostics::{baroclinic, moisture, sea_level, thickness};
+use crate::output::cf::{Product, Vertical};
+use crate::output::variables;
+
+/// The step's isobaric stacks the fields are made from.
+pub(super) struct Stacks<'a> {
+    /// Level pressures, Pa, increasing.
+    pub p: &'a [f64],
+    /// Temperature, K.
+    pub t: Option<&'a Array3<f32>>,
+    /// Winds along the grid's axes, m s-1.
+    pub u: Option<&'a Array3<f32>>,
+    pub v: Option<&'a Array3<f32>>,
+    /// Geopotential height, m.
+    pub z: Option<&'a Array3<f32>>,
+    /// Potential temperature, K.
+    pub theta: Option<&'a Array3<f32>>,
+    /// Relative humidity over water, % (from the input, or from its specific humidity).
+    pub rh: Option<&'a Array3<f32>>,
+    /// Coriolis parameter, s-1.
+    pub f: &'a Array2<f64>,
+    /// Angle from east to the grid's x axis, radians (None: the axes are east and north).
+    pub rotation: Option<&'a Array2<f64>>,
+}
+
+/// "850-500" for a layer [bottom, top] in hPa.
+fn layer_text(l: [f64; 2]) -> String {
+    format!("{}-{}", l[0], l[1])
+}
+
+fn level_index(p: &[f64], hpa: f64) -> Option<usize> {
+    p.iter().position(|x| (x / 100.0 - hpa).abs() < 1e-6)
+}
+
+fn with_layer(mut prod: Product, l: [f64; 2]) -> Product {
+    prod.notes.push(("leeward_layer_hpa", layer_text(l)));
+    prod
+}
+
+/// Relative humidity over water on the levels, %: the input's own, or from its
+/// specific humidity, temperature and pressure (100 e / e_s(T)).
+pub(super) fn relative_humidity(
+    q: Option<&Array3<f32>>,
+    rh: Option<&Array3<f32>>,
+    t: Option<&Array3<f32>>,
+    p: &[f64],
+) -> Option<Array3<f32>> {
+    if let Some(rh) = rh {
+        return Some(rh.clone());
+    }
+    let (q, t) = (q?, t?);
+    let mut out = Array3::from_elem(q.dim(), f32::NAN);
+    Zip::indexed(&mut out)
+        .and(q)
+        .and(t)
+        .par_for_each(|(k, _, _), o, &q, &tk| {
+            *o = moisture::relative_humidity(f64::from(q), f64::from(tk), p[k]) as f32;
+        });
+    Some(out)
+}
+
+/// Equivalent potential temperature on every level (Bolton 1980).
+pub(super) fn theta_e(s: &Stacks<'_>) -> Option<Product> {
+    let (t, rh) = (s.t?, s.rh?);
+    let mut out = Array3::from_elem(t.dim(), f32::NAN);
+    Zip::indexed(&mut out)
+        .and(t)
+        .and(rh)
+        .par_for_each(|(k, _, _), o, &tk, &r| {
+            let e = moisture::vapour_pressure_from_rh(f64::from(r), f64::from(tk));
+            *o = moisture::equivalent_potential_temperature(f64::from(tk), s.p[k], e) as f32;
+        });
+    Some(Product::new(variables::THETA_E, Vertical::Pressure, out))
+}
+
+/// The Eady growth rate of the layer `l` (hPa), when both its levels are there.
+pub(super) fn eady(s: &Stacks<'_>, l: [f64; 2]) -> Result<Product, String> {
+    let missing = |what: &str| format!("eady {}: {what}", layer_text(l));
+    let (kb, kt) = match (level_index(s.p, l[0]), level_index(s.p, l[1])) {
+        (Some(b), Some(t)) => (b, t),
+        _ => return Err(missing("a bounding level is not in the input")),
+    };
+    let (u, v, th) = match (s.u, s.v, s.theta) {
+        (Some(u), Some(v), Some(th)) => (u, v, th),
+        _ => return Err(missing("no winds or temperature")),
+    };
+    let dz = layer_depth(s, kb, kt).ok_or_else(|| missing("no heights and no temperature"))?;
+    let mut out = Array2::from_elem(dz.dim(), f32::NAN);
+    Zip::indexed(&mut out)
+        .and(&dz)
+        .and(s.f)
+        .par_for_each(|(j, i), o, &dz, &f| {
+            let d = |a: &Array3<f32>| f64::from(a[(kt, j, i)]) - f64::from(a[(kb, j, i)]);
+            *o = baroclinic::eady_growth_rate(
+                f,
+                d(u),
+                d(v),
+                dz,
+                f64::from(th[(kb, j, i)]),
+                f64::from(th[(kt, j, i)]),
+            ) as f32;
+        });
+    let data = out.insert_axis(Axis(0));
+    Ok(with_layer(
+        Product::new(variables::EADY, Vertical::Surface, data),
+        l,
+    ))
+}
+
+/// Depth of the layer between levels `kb` (bottom) and `kt` (top), m: the
+/// heights' difference, or the dry hypsometric thickness without heights.
+fn layer_depth(s: &Stacks<'_>, kb: usize, kt: usize) -> Option<Array2<f64>> {
+    if let Some(z) = s.z {
+        let d =
+            &z.index_axis(Axis(0), kt).mapv(f64::from) - &z.index_axis(Axis(0), kb).mapv(f64::from);
+        if d.iter().any(|x| x.is_finite()) {
+            return Some(d);
+        }
+    }
+    let t = s.t?;
+    let (_, ny, nx) = t.dim();
+    let mut out = Array2::from_elem((ny, nx), f64::NAN);
+    Zip::indexed(&mut out).par_for_each(|(j, i), o| {
+        let col: Vec<f64> = (0..s.p.len()).map(|k| f64::from(t[(k, j, i)])).collect();
+        *o = thickness::hypsometric_thickness(&col, s.p, s.p[kb], s.p[kt]);
+    });
+    Some(out)
+}
+
+/// Pressure-weighted mean of `a` over the layer `l` (hPa) in every column.
+fn layer_mean(a: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Array2<f32> {
+    let (nz, ny, nx) = a.dim();
+    let mut out = Array2::from_elem((ny, nx), f32::NAN);
+    Zip::indexed(&mut out).par_for_each(|(j, i), o| {
+        let col: Vec<f64> = (0..nz).map(|k| f64::from(a[(k, j, i)])).collect();
+        *o = baroclinic::pressure_weighted_mean(&col, p, l[0] * 100.0, l[1] * 100.0) as f32;
+    });
+    out
+}
+
+/// The low-level PV mean of the layer `l` (hPa) from isobaric PV.
+pub(super) fn low_pv(pv: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Product {
+    let data = layer_mean(pv, p, l).insert_axis(Axis(0));
+    with_layer(Product::new(variables::LOW_PV, Vertical::Surface, data), l)
+}
+
+/// The steering wind, earth-relative, of the layer `l` (hPa).
+pub(super) fn steering(s: &Stacks<'_>, l: [f64; 2]) -> Option<[Product; 2]> {
+    let (u, v) = (s.u?, s.v?);
+    let (mut ue, mut ve) = (layer_mean(u, s.p, l), layer_mean(v, s.p, l));
+    if let Some(alpha) = s.rotation {
+        // Grid axes back to east and north: the inverse of the rotation of axes
+        // (see `vorticity::earth_to_grid`).
+        Zip::from(&mut ue)
+            .and(&mut ve)
+            .and(alpha)
+            .par_for_each(|u, v, &a| {
+                let (sn, c) = a.sin_cos();
+                let (ug, vg) = (f64::from(*u), f64::from(*v));
+                *u = (ug * c - vg * sn) as f32;
+                *v = (ug * sn + vg * c) as f32;
+            });
+    }
+    let mk = |spec, a: Array2<f32>| {
+        with_layer(
+            Product::new(spec, Vertical::Surface, a.insert_axis(Axis(0))),
+            l,
+        )
+    };
+    Some([mk(variables::STEER_U, ue), mk(variables::STEER_V, ve)])
+}
+
+/// Mean sea-level pressure: the input's, or reduced from the 1000 hPa height
+/// and temperature (as decoded, not masked below ground).
+pub(super) fn mslp(
+    input: Option<Array2<f32>>,
+    z1000: Option<&Array2<f32>>,
+    t1000: Option<&Array2<f32>>,
+) -> Option<Product> {
+    let (data, method) = match (input, z1000, t1000) {
+        (Some(m), _, _) => (
+            m,
+            "from the input: pressure reduced to mean sea level (WMO 0/3/1)",
+        ),
+        (None, Some(z), Some(t)) => {
+            let mut m = Array2::from_elem(z.dim(), f32::NAN);
+            Zip::from(&mut m).and(z).and(t).par_for_each(|m, &z, &t| {
+                *m = sea_level::sea_level_pressure(f64::from(z), f64::from(t)) as f32;
+            });
+            (m, "reduced from the 1000 hPa height and temperature: the input has no mean sea-level pressure")
+        }
+        (None, Some(z), None) => {
+            let mut m = Array2::from_elem(z.dim(), f32::NAN);
+            Zip::from(&mut m).and(z).par_for_each(|m, &z| {
+                *m = sea_level::sea_level_pressure(f64::from(z), STANDARD_T1000) as f32;
+            });
+            (m, "reduced from the 1000 hPa height with 288.15 K: the input has no mean sea-level pressure and no 1000 hPa temperature")
+        }
+        _ => return None,
+    };
+    let mut prod = Product::new(
+        variables::MSLP,
+        Vertical::Surface,
+        data.insert_axis(Axis(0)),
+    );
+    prod.notes.push(("leeward_method", method.to_string()));
+    Some(prod)
+}
+
+/// Temperature of the US Standard Atmosphere 1976 at sea level, K (REFERENCES.md).
+const STANDARD_T1000: f64 = 288.15;
+
+/// The terrain as a product, metres.
+pub(super) fn orography(oro: &Array2<f32>, scale: f64) -> Product {
+    let data = oro
+        .mapv(|x| (f64::from(x) * scale) as f32)
+        .insert_axis(Axis(0));
+    Product::new(variables::OROG, Vertical::Surface, data)
+}
+
+/// Specific and relative humidity on isentropic surfaces, from the isobaric
+/// relative humidity interpolated there (bounded as the input is, where a
+/// linear interpolation of specific humidity would exceed saturation between
+/// levels) and the surfaces' pressure and temperature: q = epsilon e / (p - (1 - epsilon) e),
+/// e = RH e_s(T).
+pub(super) fn isentropic_humidity(
+    rh_s: Array3<f32>,
+    p_s: &Array3<f32>,
+    t_s: &Array3<f32>,
+) -> [Product; 2] {
+    let mut q = Array3::from_elem(rh_s.dim(), f32::NAN);
+    Zip::from(&mut q)
+        .and(&rh_s)
+        .and(p_s)
+        .and(t_s)
+        .par_for_each(|q, &r, &p, &t| {
+            let e = moisture::vapour_pressure_from_rh(f64::from(r), f64::from(t));
+            *q = moisture::specific_humidity(e, f64::from(p)) as f32;
+        });
+    [
+        Product::new(variables::ISEN_Q, Vertical::Theta, q),
+        Product::new(variables::ISEN_RH, Vertical::Theta, rh_s),
+    ]
+}
