@@ -91,9 +91,10 @@ pub const REFERENCE_FLOOR: &[(&str, u32)] = &[
     ("eta", 14),
     // Potential temperature within 2e-5 of the closed form at 1000 hPa.
     ("theta", 16),
-    // The closed-form check of PV (2 %) keeps a margin over the truncation of
-    // the differences: rounding at most 4.9e-4.
-    ("pv", 10),
+    // PV within 2 % of the closed form, and its two tilting terms in a
+    // baroclinic atmosphere each within 0.5 % of the smaller term plus 2^-16
+    // of the whole PV, point by point: the 16 bits that check was set for.
+    ("pv", 16),
     // Isentropic pressure within 100 Pa of the closed form, of which rounding
     // may take at most 4 Pa.
     ("isen_p", 13),
