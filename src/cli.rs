@@ -13,7 +13,10 @@ use indicatif::{ProgressBar, ProgressStyle};
 use tracing_subscriber::EnvFilter;
 
 use crate::config::Config;
-use crate::pipeline::{grid_suffixes, plan, read_input, run_step, Destination, Issue, StepReport};
+use crate::escape::shown;
+use crate::pipeline::{
+    grid_suffixes, index_input, load_step_input, plan, run_step, Destination, Issue, StepReport,
+};
 
 /// Exit codes of every command.
 pub mod exit {
@@ -192,9 +195,14 @@ fn init_logging(format: &str, default_level: &str) {
     if format == "json" {
         b.json().init();
     } else if journald {
-        b.with_ansi(false).without_time().init();
+        b.fmt_fields(crate::escape::LogFields)
+            .with_ansi(false)
+            .without_time()
+            .init();
     } else {
-        b.with_ansi(std::io::stderr().is_terminal()).init();
+        b.fmt_fields(crate::escape::LogFields)
+            .with_ansi(std::io::stderr().is_terminal())
+            .init();
     }
 }
 
@@ -306,14 +314,16 @@ fn summary(r: &StepReport) {
     }
     match (&r.output, &r.skipped) {
         (Some(p), _) => line.push_str(&format!(
-            ": {} fields used, products {} -> {} ({:.2} s: decode {:.2}, diagnostics {:.2}, write {:.2})",
+            ": {} fields used, products {} -> {} ({:.2} s: decode {:.2}, diagnostics {:.2}, write {:.2}, changes and tracks {:.2}, images {:.2})",
             r.fields_used,
             r.products.join(" "),
             p.display(),
             r.seconds,
             r.decode_seconds,
             r.compute_seconds,
-            r.write_seconds
+            r.write_seconds,
+            r.changes_seconds,
+            r.images_seconds
         )),
         (None, Some(why)) => line.push_str(&format!(": nothing written: {why}")),
         (None, None) => line.push_str(": nothing written"),
@@ -361,7 +371,7 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     let mut files = Vec::new();
     let mut issues = Vec::new();
     for p in &inputs {
-        let (f, mut i) = read_input(p);
+        let (f, mut i) = index_input(p);
         files.extend(f);
         issues.append(&mut i);
         if let Some(b) = &bar {
@@ -380,7 +390,21 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     let mut pages = Vec::new();
     let mut reports = Vec::new();
     for (step, suffix) in steps.iter().zip(suffixes) {
-        let r = run_step(step, &files, &cfg, &Destination::flat(&out), suffix);
+        // Only this step's messages are in memory, and only while it runs.
+        let r = match load_step_input(step, &files) {
+            Ok((s, loaded)) => run_step(&s, &loaded, &cfg, &Destination::flat(&out), suffix),
+            Err(issue) => StepReport {
+                cycle: step
+                    .key
+                    .reference_time
+                    .format("%Y-%m-%dT%H:%MZ")
+                    .to_string(),
+                lead_hours: step.lead_hours(),
+                skipped: Some(issue.reason.clone()),
+                issues: vec![issue],
+                ..StepReport::default()
+            },
+        };
         if r.output.is_some() {
             written += 1;
             // With quicklooks on, a page per cycle beside the products shows
@@ -410,6 +434,14 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     for i in &issues {
         print_issue(i);
     }
+    for r in reports.iter().filter(|r| r.output_failed) {
+        eprintln!(
+            "leeward: step {} +{:03}h not written: {}",
+            r.cycle,
+            r.lead_hours,
+            crate::escape::text(r.skipped.as_deref().unwrap_or("write failed"))
+        );
+    }
     let failed_writes = reports.iter().filter(|r| r.output_failed).count();
     println!(
         "{} step file(s) written to {} in {:.2} s; {} input problem(s)",
@@ -433,14 +465,15 @@ pub fn inspect(files: &[PathBuf], json: bool, with_values: bool) -> u8 {
     let mut listings = Vec::new();
     let mut failed = 0;
     for f in files {
-        match std::fs::read(f) {
-            Ok(b) => listings.push(crate::ingest::inspect::inspect(
-                &f.display().to_string(),
-                &b,
+        match crate::ingest::source::open_input(f, true) {
+            Ok(o) => listings.push(crate::ingest::inspect::inspect_file(
+                &crate::escape::path(f),
+                &o.file,
+                o.size,
                 with_values,
             )),
             Err(e) => {
-                eprintln!("leeward: {}: cannot read: {e}", f.display());
+                eprintln!("leeward: {}: {e}", shown(f));
                 failed += 1;
             }
         }
@@ -458,9 +491,27 @@ pub fn inspect(files: &[PathBuf], json: bool, with_values: bool) -> u8 {
             print!("{}", crate::ingest::inspect::render(l));
         }
     }
-    let unusable = listings
-        .iter()
-        .any(|l| !l.problems.is_empty() || l.fields.iter().any(|f| f.unusable.is_some()));
+    // What made the exit code non-zero, on standard error too: one line each.
+    let mut unusable = false;
+    for l in &listings {
+        for p in &l.problems {
+            eprintln!("leeward: {}: {p}", l.file);
+            unusable = true;
+        }
+        for f in &l.fields {
+            if let Some(why) = f.unusable.as_ref().or(f.grid_problem.as_ref()) {
+                let q = f
+                    .quantity
+                    .clone()
+                    .unwrap_or_else(|| format!("parameter {}/{}/{}", f.wmo[0], f.wmo[1], f.wmo[2]));
+                eprintln!(
+                    "leeward: {}: field {} ({q} at {}): {why}",
+                    l.file, f.index, f.level
+                );
+                unusable = true;
+            }
+        }
+    }
     if listings.is_empty() {
         exit::NOTHING
     } else if failed > 0 || unusable {

@@ -16,6 +16,7 @@
 //! - [`pipeline`]: one cycle step end to end, shared by `process` and the service.
 //! - [`demo`]: an invented scenario written as GRIB2 by our own encoder.
 //! - [`service`]: the watcher of the incoming directory and the ledger of the daemon.
+//! - [`escape`]: paths and texts made safe to print in logs, listings and manifests.
 //! - [`cli`]: the command line, kept thin.
 
 pub mod changes;
@@ -24,6 +25,7 @@ pub mod config;
 pub mod cyclones;
 pub mod demo;
 pub mod diagnostics;
+pub mod escape;
 pub mod geometry;
 pub mod ingest;
 pub mod output;

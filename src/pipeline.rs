@@ -22,10 +22,11 @@ use crate::diagnostics::constants::G0;
 use crate::diagnostics::horizontal::Plane;
 use crate::diagnostics::{budget, isentropic, pv, stability, thickness, tropopause, vorticity};
 use crate::geometry::Horizontal;
-use crate::ingest::catalogue::{catalogue, Catalogue, FieldEntry};
+use crate::ingest::catalogue::{catalogue, catalogue_file, Catalogue, FieldEntry};
 use crate::ingest::decode::decode;
 use crate::ingest::grid::{parse_grid, Scan};
 use crate::ingest::params::{surface, Quantity};
+use crate::ingest::source::{open_input, read_ranges};
 use crate::output::cf::{step_file_name, write_step, Product, StepProducts, Vertical};
 use crate::output::variables;
 
@@ -46,7 +47,7 @@ pub struct Issue {
 
 impl std::fmt::Display for Issue {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        write!(f, "{}", self.file.display())?;
+        write!(f, "{}", crate::escape::shown(&self.file))?;
         if let Some(n) = self.field {
             write!(f, ": field {n}")?;
         }
@@ -57,7 +58,9 @@ impl std::fmt::Display for Issue {
     }
 }
 
-/// One GRIB2 file in memory with its catalogue.
+/// One GRIB2 file in memory with its catalogue: the whole file, or only
+/// some of its messages one after the other (their fields' ranges then point
+/// into that buffer, their numbers stay those of the file).
 pub struct InputFile {
     /// Where it was read from.
     pub path: PathBuf,
@@ -67,21 +70,77 @@ pub struct InputFile {
     pub catalogue: Catalogue,
 }
 
-/// Read and catalogue a file; problems become issues.
+/// A GRIB2 file catalogued where it lies: its fields' byte ranges in the
+/// file, and nothing of its data read.
+pub struct IndexedFile {
+    /// The path.
+    pub path: PathBuf,
+    /// Its size when catalogued.
+    pub size: u64,
+    /// Its fields.
+    pub catalogue: Catalogue,
+}
+
+/// A file whose fields are catalogued, in memory or where it lies.
+pub trait Catalogued {
+    /// Its path.
+    fn path(&self) -> &Path;
+    /// Its catalogue.
+    fn catalogue(&self) -> &Catalogue;
+}
+
+impl Catalogued for InputFile {
+    fn path(&self) -> &Path {
+        &self.path
+    }
+    fn catalogue(&self) -> &Catalogue {
+        &self.catalogue
+    }
+}
+
+impl Catalogued for IndexedFile {
+    fn path(&self) -> &Path {
+        &self.path
+    }
+    fn catalogue(&self) -> &Catalogue {
+        &self.catalogue
+    }
+}
+
+fn file_issue(path: &Path, reason: String) -> Issue {
+    Issue {
+        file: path.to_path_buf(),
+        field: None,
+        what: String::new(),
+        reason,
+    }
+}
+
+fn catalogue_issues(path: &Path, catalogue: &Catalogue) -> Vec<Issue> {
+    catalogue
+        .problems
+        .iter()
+        .map(|p| Issue {
+            file: path.to_path_buf(),
+            field: p.field,
+            what: String::new(),
+            reason: format!("{} (at byte {})", p.reason, p.offset),
+        })
+        .collect()
+}
+
+/// Read a whole file and catalogue it; problems become issues. Anything but
+/// a regular file is refused without blocking (see [`open_input`]).
 pub fn read_input(path: &Path) -> (Option<InputFile>, Vec<Issue>) {
-    match std::fs::read(path) {
+    let read = open_input(path, true)
+        .map_err(|e| e.to_string())
+        .and_then(|o| {
+            read_ranges(&o.file, o.size, &[(0, o.size)]).map_err(|e| format!("cannot read: {e}"))
+        });
+    match read {
         Ok(bytes) => {
             let catalogue = catalogue(&bytes);
-            let issues = catalogue
-                .problems
-                .iter()
-                .map(|p| Issue {
-                    file: path.to_path_buf(),
-                    field: p.field,
-                    what: String::new(),
-                    reason: format!("{} (at byte {})", p.reason, p.offset),
-                })
-                .collect();
+            let issues = catalogue_issues(path, &catalogue);
             (
                 Some(InputFile {
                     path: path.to_path_buf(),
@@ -91,16 +150,96 @@ pub fn read_input(path: &Path) -> (Option<InputFile>, Vec<Issue>) {
                 issues,
             )
         }
-        Err(e) => (
-            None,
-            vec![Issue {
-                file: path.to_path_buf(),
-                field: None,
-                what: String::new(),
-                reason: format!("cannot read: {e}"),
-            }],
-        ),
+        Err(e) => (None, vec![file_issue(path, e)]),
     }
+}
+
+/// Catalogue a file where it lies, section by section, reading none of its
+/// data; problems become issues. Anything but a regular file is refused
+/// without blocking (see [`open_input`]).
+pub fn index_input(path: &Path) -> (Option<IndexedFile>, Vec<Issue>) {
+    match open_input(path, true) {
+        Ok(o) => {
+            let catalogue = catalogue_file(&o.file, o.size);
+            let issues = catalogue_issues(path, &catalogue);
+            (
+                Some(IndexedFile {
+                    path: path.to_path_buf(),
+                    size: o.size,
+                    catalogue,
+                }),
+                issues,
+            )
+        }
+        Err(e) => (None, vec![file_issue(path, e.to_string())]),
+    }
+}
+
+/// Read from their files the messages of a step's fields that its products
+/// may use (see [`may_use`]; the step's first field always, for its grid),
+/// each message once: the step again, over files that hold only those
+/// messages. A file that cannot be read again as it was catalogued is an issue.
+pub fn load_step_input(
+    step: &Step,
+    files: &[IndexedFile],
+) -> Result<(Step, Vec<InputFile>), Issue> {
+    let mut chosen: BTreeMap<usize, Vec<&FieldEntry>> = BTreeMap::new();
+    for (k, fr) in step.fields.iter().enumerate() {
+        if k == 0 || may_use(&fr.entry) {
+            chosen.entry(fr.file).or_default().push(&fr.entry);
+        }
+    }
+    let mut inputs = Vec::new();
+    let mut fields = Vec::new();
+    for (fi, entries) in chosen {
+        let f = &files[fi];
+        // The messages in file order, each once, and where each lands in the buffer.
+        let mut messages: Vec<(u64, u64)> = entries
+            .iter()
+            .map(|e| (e.message_offset as u64, e.message_len as u64))
+            .collect();
+        messages.sort_unstable();
+        messages.dedup();
+        let mut at = BTreeMap::new();
+        let mut next = 0usize;
+        for &(o, n) in &messages {
+            at.insert(o as usize, next);
+            next += n as usize;
+        }
+        let bytes = open_input(&f.path, true)
+            .map_err(|e| e.to_string())
+            .and_then(|o| {
+                read_ranges(&o.file, f.size, &messages).map_err(|e| format!("cannot read: {e}"))
+            })
+            .map_err(|reason| file_issue(&f.path, reason))?;
+        let moved: Vec<FieldEntry> = entries
+            .iter()
+            .map(|e| e.moved(at[&e.message_offset]))
+            .collect();
+        for e in &moved {
+            fields.push(FieldRef {
+                file: inputs.len(),
+                entry: e.clone(),
+            });
+        }
+        inputs.push(InputFile {
+            path: f.path.clone(),
+            bytes: Arc::new(bytes),
+            catalogue: Catalogue {
+                fields: moved,
+                ..Catalogue::default()
+            },
+        });
+    }
+    // Files and fields keep their order: the first field (the grid) stays
+    // first, and of duplicates the first is used, as with the whole files.
+    Ok((
+        Step {
+            key: step.key.clone(),
+            fields,
+        },
+        inputs,
+    ))
 }
 
 /// A field located in one of the inputs.
@@ -144,21 +283,18 @@ impl Step {
 
 /// The step a field belongs to: centre, cycle, valid time, member, and its
 /// grid definition with the resolution-and-component flags left out.
-pub fn step_key(bytes: &[u8], f: &FieldEntry) -> StepKey {
+pub fn step_key(f: &FieldEntry) -> StepKey {
     StepKey {
         centre: f.centre,
         reference_time: f.reference_time,
         valid_time: f.valid_time,
         member: f.member,
-        grid_key: grid_key(bytes, f),
+        grid_key: grid_key(f),
     }
 }
 
-fn grid_key(bytes: &[u8], f: &FieldEntry) -> Vec<u8> {
-    let mut k = bytes
-        .get(f.sect3.clone())
-        .map(<[u8]>::to_vec)
-        .unwrap_or_default();
+fn grid_key(f: &FieldEntry) -> Vec<u8> {
+    let mut k = f.grid_definition.to_vec();
     let flags_at = crate::ingest::grid::flags_octet(f.grid_template);
     if let Some(o) = flags_at {
         if let Some(b) = k.get_mut(o) {
@@ -182,21 +318,21 @@ fn describe(f: &FieldEntry) -> String {
 
 /// Group every usable field of the inputs into steps; fields that cannot be
 /// used at all (broken, unsupported product template) become issues.
-pub fn plan(inputs: &[InputFile]) -> (Vec<Step>, Vec<Issue>) {
+pub fn plan<F: Catalogued>(inputs: &[F]) -> (Vec<Step>, Vec<Issue>) {
     let mut groups: BTreeMap<StepKey, Vec<FieldRef>> = BTreeMap::new();
     let mut issues = Vec::new();
     for (fi, input) in inputs.iter().enumerate() {
-        for e in &input.catalogue.fields {
+        for e in &input.catalogue().fields {
             if let Some(reason) = &e.unusable {
                 // Problems already reported by the catalogue carry the same reason.
                 if !input
-                    .catalogue
+                    .catalogue()
                     .problems
                     .iter()
                     .any(|p| p.field == Some(e.index))
                 {
                     issues.push(Issue {
-                        file: input.path.clone(),
+                        file: input.path().to_path_buf(),
                         field: Some(e.index),
                         what: String::new(),
                         reason: reason.clone(),
@@ -204,7 +340,7 @@ pub fn plan(inputs: &[InputFile]) -> (Vec<Step>, Vec<Issue>) {
                 }
                 continue;
             }
-            let key = step_key(&input.bytes, e);
+            let key = step_key(e);
             groups.entry(key).or_default().push(FieldRef {
                 file: fi,
                 entry: e.clone(),
@@ -253,6 +389,8 @@ pub struct StepReport {
     /// Of which changes in time and the PV budget after publishing (reading earlier
     /// files, updating later ones).
     pub changes_seconds: f64,
+    /// Of which drawing and writing the quicklook images.
+    pub images_seconds: f64,
     /// Diagnostics time by family (vorticity, stability, isobaric PV, isentropic, tropopause, layer PV).
     pub family_seconds: Vec<(&'static str, f64)>,
     /// Why nothing was written, when nothing was.
@@ -279,6 +417,31 @@ struct Inventory {
     /// Levels (Pa key) whose geopotential height is geopotential (0/3/4) to be divided by
     /// standard gravity: levels with geopotential and no geopotential height.
     geopotential: Vec<i64>,
+}
+
+/// True for the fields a step's products may use, as [`inventory`] sorts
+/// them: quantities leeward knows on isobaric levels, surface pressure or
+/// orography at the ground, and mean sea-level pressure.
+pub fn may_use(e: &FieldEntry) -> bool {
+    let Some(q) = Quantity::from_wmo(e.discipline, e.category, e.number) else {
+        return false;
+    };
+    match (e.level.kind, e.level.value) {
+        (surface::ISOBARIC, Some(p)) => p > 0.0,
+        (surface::GROUND, _) => matches!(
+            q,
+            Quantity::Pressure
+                | Quantity::GeopotentialHeight
+                | Quantity::GeometricHeight
+                | Quantity::TerrainHeight
+                | Quantity::Geopotential
+        ),
+        // Mean sea-level pressure, for the cyclone centres and their tracks.
+        (surface::MEAN_SEA_LEVEL, _) => {
+            matches!(q, Quantity::MeanSeaLevelPressure | Quantity::Pressure)
+        }
+        _ => false,
+    }
 }
 
 fn pa_key(p: f64) -> i64 {
@@ -349,6 +512,44 @@ fn inventory(step: &Step, inputs: &[InputFile], issues: &mut Vec<Issue>) -> Inve
     inv
 }
 
+/// One issue per file of a step that gave nothing usable: what the products
+/// lacked, and what the file did give the step.
+fn nothing_usable(
+    step: &Step,
+    inputs: &[InputFile],
+    lacking: &str,
+    cycle: &str,
+    lead: i64,
+) -> Vec<Issue> {
+    let mut by_file: BTreeMap<usize, Vec<String>> = BTreeMap::new();
+    for fr in &step.fields {
+        by_file
+            .entry(fr.file)
+            .or_default()
+            .push(describe(&fr.entry));
+    }
+    by_file
+        .into_iter()
+        .map(|(fi, what)| {
+            let shown: Vec<&str> = what.iter().take(3).map(String::as_str).collect();
+            let more = if what.len() > 3 {
+                format!(", and {} more", what.len() - 3)
+            } else {
+                String::new()
+            };
+            Issue {
+                file: inputs[fi].path.clone(),
+                field: None,
+                what: String::new(),
+                reason: format!(
+                    "nothing usable: {lacking} for step {cycle} +{lead:03}h (found here: {}{more})",
+                    shown.join("; ")
+                ),
+            }
+        })
+        .collect()
+}
+
 /// Decoded fields of a step, keyed as asked.
 type Decoded<K> = BTreeMap<K, Array2<f32>>;
 
@@ -375,7 +576,7 @@ fn decode_all<K: Ord + Clone + Send + Sync>(
             }
             Err(reason) => {
                 let file = inputs[fr.file].path.clone();
-                warn!(file = %file.display(), field = fr.entry.index, what = %describe(&fr.entry), %reason, "field not decoded");
+                warn!(file = %crate::escape::shown(&file), field = fr.entry.index, what = %describe(&fr.entry), %reason, "field not decoded");
                 issues.push(Issue {
                     file,
                     field: Some(fr.entry.index),
@@ -447,13 +648,11 @@ pub fn run_step(
         lead_hours: lead,
         ..Default::default()
     };
-    let first = &step.fields[0];
-    let (grid, scan) = match inputs[first.file]
-        .bytes
-        .get(first.entry.sect3.clone())
-        .ok_or_else(|| "section 3 outside the file".to_string())
-        .and_then(|s| parse_grid(s).map_err(|e| e.to_string()))
-    {
+    let Some(first) = step.fields.first() else {
+        rep.skipped = Some("no fields".into());
+        return rep;
+    };
+    let (grid, scan) = match parse_grid(&first.entry.grid_definition).map_err(|e| e.to_string()) {
         Ok((g, s)) => crate::ingest::grid::with_longitudes(g, s, cfg.output.longitudes),
         Err(reason) => {
             // Every field of the step shares this grid: report each file once.
@@ -529,9 +728,28 @@ pub fn run_step(
             .push("isobaric temperature: no theta, stability, PV or isentropic products".into());
     }
     if !(want_vort || want_stab || want_pv || want_isen || want_trop || want_layer || want_thick) {
+        let mut absent = Vec::new();
+        for (q, levels) in [
+            ("temperature", &t_levels),
+            ("u", &u_levels),
+            ("v", &v_levels),
+        ] {
+            if levels.is_empty() {
+                absent.push(q);
+            }
+        }
+        if pr.thickness && z_levels_all.is_empty() {
+            absent.push("geopotential height");
+        }
+        let lacking = if absent.is_empty() {
+            "no isobaric level with both u and v".to_string()
+        } else {
+            format!("no isobaric {}", absent.join(", "))
+        };
+        issues.extend(nothing_usable(step, inputs, &lacking, &cycle, lead));
         rep.issues = issues;
         rep.skipped = Some(format!(
-            "no fields for any product ({})",
+            "no fields for any product: {lacking} ({})",
             rep.missing.join("; ")
         ));
         rep.seconds = t0.elapsed().as_secs_f64();
@@ -1463,7 +1681,9 @@ pub fn run_step(
                     settings: &cfg.quicklook,
                     terrain: terrain_m.as_ref().map(|t| t.view()),
                 };
+                let t_images = Instant::now();
                 rep.images = crate::output::images::write_images(&path, &products, &wanted, &look);
+                rep.images_seconds = t_images.elapsed().as_secs_f64();
             }
             rep.output = Some(path);
             if let Some(hook) = out.on_published {

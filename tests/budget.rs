@@ -28,9 +28,9 @@ fn write_step(dir: &Path, lead: u32) -> PathBuf {
     let (ni, nj) = (72, 37);
     let mut bytes = Vec::new();
     for p in LEVELS {
-        // Constant lapse rate (REFERENCES.md): T = T0 (p/p0)^(R gamma / g).
+        // Constant lapse rate (docs/references.md): T = T0 (p/p0)^(R gamma / g).
         let t = vec![288.15 * (p / 1013.25f64).powf(287.05 * 0.0065 / 9.80665); ni * nj];
-        // Solid-body flow u = u0 cos(lat) (Williamson et al. 1992; REFERENCES.md).
+        // Solid-body flow u = u0 cos(lat) (Williamson et al. 1992; docs/references.md).
         let u: Vec<f64> = (0..ni * nj)
             .map(|k| 30.0 * (-90.0 + 5.0 * (k / ni) as f64).to_radians().cos())
             .collect();

@@ -18,7 +18,7 @@ const GRID: GridSpec = GridSpec::LatLon {
 };
 const LEVELS: [f64; 5] = [1000.0, 925.0, 850.0, 700.0, 500.0];
 
-/// US Standard Atmosphere 1976 troposphere temperature (REFERENCES.md constants) plus `warm` K.
+/// US Standard Atmosphere 1976 troposphere temperature (docs/references.md "Constants") plus `warm` K.
 fn t_std(p_hpa: f64, warm: f64) -> f64 {
     288.15 * (p_hpa / 1013.25f64).powf(287.05 * 0.0065 / 9.80665) + warm
 }
@@ -74,7 +74,7 @@ fn tmp(name: &str) -> PathBuf {
     d
 }
 
-/// Closed form (hypsometric equation, REFERENCES.md): warming a column uniformly by dT
+/// Closed form (hypsometric equation, docs/references.md): warming a column uniformly by dT
 /// changes the 1000-500 hPa thickness by (R dT / g) ln 2: 40.6 m for 2 K.
 fn expected(dt: f64) -> f64 {
     287.05 * dt / 9.80665 * 2f64.ln()

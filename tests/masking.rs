@@ -35,7 +35,7 @@ fn levels_below_the_surface_pressure_are_missing() {
     let n = 12 * 9;
     let mut bytes = Vec::new();
     for p in [1000.0, 925.0, 850.0, 700.0, 500.0] {
-        // A standard-atmosphere-like column (REFERENCES.md constants), uniform in the horizontal.
+        // A standard-atmosphere-like column (docs/references.md "Constants"), uniform in the horizontal.
         let t = vec![288.15 * (p / 1013.25f64).powf(0.190_263); n];
         let u: Vec<f64> = (0..n).map(|k| 10.0 + (k % 12) as f64).collect();
         let v: Vec<f64> = (0..n).map(|k| (k / 12) as f64).collect();
@@ -93,7 +93,7 @@ fn geopotential_and_orography_mask_levels_with_and_without_heights() {
     // Geopotential (WMO 0/3/4, m2 s-2) on 1000, 850 and 500 hPa only, temperature and
     // winds on 1000, 925, 850, 700 and 500 hPa; the ground's geopotential 1100 m x g0 on
     // the eastern half (a plateau), 0 elsewhere. Heights are geopotential / g0 (standard
-    // gravity, REFERENCES.md "Constants"). Standard atmosphere (REFERENCES.md check values):
+    // gravity, docs/references.md "Constants"). Standard atmosphere (docs/references.md "Check values"):
     // 1000 hPa 110.9 m, 925 hPa 762.0 m, 850 hPa 1457.3 m. On the plateau 1000 hPa is
     // below the ground by its own height, 925 hPa (no height in the input) by its height
     // linear in ln p between 1000 and 850 hPa (757 m); 850 hPa and above are not.

@@ -12,7 +12,7 @@ use super::constants::{G0, R_DRY};
 ///
 /// p_msl = 1000 hPa exp(g0 z1000 / (R T1000))
 ///
-/// (hypsometric equation; REFERENCES.md "Methods"). Where the 1000 hPa surface
+/// (hypsometric equation; docs/references.md "Methods"). Where the 1000 hPa surface
 /// is below ground the model's own extrapolated height is used, as a model's
 /// own mean sea-level pressure is extrapolated there too.
 #[inline]
@@ -26,7 +26,7 @@ mod tests {
 
     #[test]
     fn standard_atmosphere() {
-        // US Standard Atmosphere 1976 (REFERENCES.md check values): 1000 hPa at 110.9 m,
+        // US Standard Atmosphere 1976 (docs/references.md "Check values"): 1000 hPa at 110.9 m,
         // 288.15 - 6.5 * 0.1109 = 287.43 K there, 1013.25 hPa at sea level.
         let p = sea_level_pressure(110.9, 288.15 - 6.5 * 0.1109);
         assert!((p - 101_325.0).abs() < 5.0, "{p}");

@@ -61,19 +61,48 @@ pub fn all_ones(b: &[u8], at: usize, n: usize) -> bool {
 /// FNV-1a 64-bit hash of a byte string, as 16 hex digits: a stable fingerprint
 /// (Fowler, Noll and Vo; from memory), not a security hash.
 pub fn fnv1a_hex(bytes: &[u8]) -> String {
-    fnv1a_hex_parts(&[bytes])
+    let mut h = Fnv1a::new();
+    h.update(bytes);
+    h.hex()
 }
 
 /// [`fnv1a_hex`] of the concatenation of `parts`, without copying them.
 pub fn fnv1a_hex_parts(parts: &[&[u8]]) -> String {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    let mut h = Fnv1a::new();
     for part in parts {
-        for &b in *part {
+        h.update(part);
+    }
+    h.hex()
+}
+
+/// FNV-1a 64 fed in pieces: the same result as [`fnv1a_hex`] of the pieces joined.
+#[derive(Debug, Clone, Copy)]
+pub struct Fnv1a(u64);
+
+impl Default for Fnv1a {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+impl Fnv1a {
+    /// The offset basis.
+    pub fn new() -> Self {
+        Fnv1a(0xcbf2_9ce4_8422_2325)
+    }
+    /// Take more octets.
+    pub fn update(&mut self, bytes: &[u8]) {
+        let mut h = self.0;
+        for &b in bytes {
             h ^= u64::from(b);
             h = h.wrapping_mul(0x0100_0000_01b3);
         }
+        self.0 = h;
     }
-    format!("{h:016x}")
+    /// The hash so far, 16 hex digits.
+    pub fn hex(&self) -> String {
+        format!("{:016x}", self.0)
+    }
 }
 
 #[cfg(test)]

@@ -12,10 +12,12 @@
 //! section; the Manual counts from 1.
 
 use std::ops::Range;
+use std::sync::Arc;
 
 use chrono::{Duration, NaiveDate, NaiveDateTime};
 
 use super::bytes::{all_ones, i32_at, i8_at, u16_at, u32_at, u64_at, u8_at};
+use super::source::Octets;
 
 /// A fixed surface (code table 4.5) with its value in SI units as coded.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -47,6 +49,9 @@ pub struct FieldEntry {
     pub index: usize,
     /// Byte offset of the message that holds the field.
     pub message_offset: usize,
+    /// Octets of that message in the file (its stated length, or less when
+    /// the file ends first).
+    pub message_len: usize,
     /// Discipline, code table 0.0.
     pub discipline: u8,
     /// Originating centre, common code table C-11.
@@ -77,6 +82,8 @@ pub struct FieldEntry {
     pub grid_template: u16,
     /// Section 3, the grid definition, as a byte range of the file.
     pub sect3: Range<usize>,
+    /// Section 3's octets (shared by the fields of a message that use it).
+    pub grid_definition: Arc<[u8]>,
     /// Data representation template number (table 5.0).
     pub data_template: u16,
     /// Number of data points the grid has (section 3).
@@ -101,6 +108,27 @@ impl FieldEntry {
     pub fn lead_hours(&self) -> i64 {
         self.lead.num_hours()
     }
+
+    /// The same field once its message, at `message_offset` in the file, has
+    /// been copied to `to` in a buffer of messages: every range moves with it.
+    pub fn moved(&self, to: usize) -> FieldEntry {
+        let from = self.message_offset;
+        let shift = |r: &Range<usize>| -> Range<usize> {
+            if r.is_empty() || r.start < from {
+                r.clone()
+            } else {
+                r.start - from + to..r.end - from + to
+            }
+        };
+        FieldEntry {
+            message_offset: to,
+            sect3: shift(&self.sect3),
+            sect5: shift(&self.sect5),
+            sect6: shift(&self.sect6),
+            sect7: shift(&self.sect7),
+            ..self.clone()
+        }
+    }
 }
 
 /// Something the catalogue could not read, with where it was.
@@ -121,14 +149,34 @@ pub struct Catalogue {
     pub fields: Vec<FieldEntry>,
     /// Every problem met on the way.
     pub problems: Vec<Problem>,
+    /// The last message claims more octets than the file holds: it is cut
+    /// off at the end of the file (normal while the file is still written).
+    pub cut_at_end: bool,
 }
 
 const SECTION0_LEN: usize = 16;
 
+/// Largest section 1, 3, 4 or 5 read (they describe a field; only sections 2,
+/// 6 and 7 grow with the data, and those are not read here).
+const MAX_DESCRIPTION_SECTION: usize = 16 << 20;
+
 /// Build the catalogue of a whole file held in memory.
 pub fn catalogue(bytes: &[u8]) -> Catalogue {
+    catalogue_of(bytes)
+}
+
+/// Build the catalogue of a file where it lies, reading section by section:
+/// sections 0, 1, 3, 4 and 5 and the first octets of 6 and 7, never the bitmap
+/// or the data. Offsets are those of the file, as [`catalogue`] of its bytes
+/// would give them.
+pub fn catalogue_file(file: &std::fs::File, size: u64) -> Catalogue {
+    catalogue_of(&super::source::FileOctets::new(file, size))
+}
+
+/// The catalogue of any [`Octets`].
+pub fn catalogue_of<O: Octets + ?Sized>(o: &O) -> Catalogue {
     let mut cat = Catalogue::default();
-    if bytes.is_empty() {
+    if o.is_empty() {
         cat.problems.push(Problem {
             offset: 0,
             field: None,
@@ -138,8 +186,8 @@ pub fn catalogue(bytes: &[u8]) -> Catalogue {
     }
     let mut pos = 0usize;
     let mut messages = 0usize;
-    while let Some(start) = find_marker(bytes, pos) {
-        match walk_message(bytes, start, &mut cat) {
+    while let Some(start) = o.find_marker(pos) {
+        match walk_message(o, start, &mut cat) {
             Ok(next) => {
                 messages += 1;
                 pos = next;
@@ -164,18 +212,20 @@ pub fn catalogue(bytes: &[u8]) -> Catalogue {
     cat
 }
 
-fn find_marker(b: &[u8], from: usize) -> Option<usize> {
-    let hay = b.get(from..)?;
-    hay.windows(4).position(|w| w == b"GRIB").map(|i| i + from)
+/// One section read whole: where it is and its octets.
+#[derive(Clone)]
+struct Section {
+    range: Range<usize>,
+    octets: Arc<[u8]>,
 }
 
 /// Sections of the current field while walking a message; ranges are absolute.
 #[derive(Default, Clone)]
 struct Open {
-    s1: Option<Range<usize>>,
-    s3: Option<Range<usize>>,
-    s4: Option<Range<usize>>,
-    s5: Option<Range<usize>>,
+    s1: Option<Section>,
+    s3: Option<Section>,
+    s4: Option<Section>,
+    s5: Option<Section>,
     s6: Option<Range<usize>>,
     s6_indicator: u8,
     bitmap_in_force: Option<Range<usize>>,
@@ -184,37 +234,44 @@ struct Open {
 /// Walk one message from its `GRIB` marker; returns the offset after it.
 /// Complete fields are added to the catalogue even when the message is cut
 /// short; the shortfall is reported as a problem.
-fn walk_message(b: &[u8], start: usize, cat: &mut Catalogue) -> Result<usize, String> {
-    let edition = u8_at(b, start + 7).ok_or("message header cut short (fewer than 8 octets)")?;
+fn walk_message<O: Octets + ?Sized>(
+    o: &O,
+    start: usize,
+    cat: &mut Catalogue,
+) -> Result<usize, String> {
+    let head = o.read(start..start.saturating_add(SECTION0_LEN))?;
+    let edition = u8_at(&head, 7).ok_or("message header cut short (fewer than 8 octets)")?;
     if edition != 2 {
         return Err(format!(
             "GRIB edition {edition} message: only edition 2 is read"
         ));
     }
-    let discipline = u8_at(b, start + 6).ok_or("message header cut short")?;
-    let total = u64_at(b, start + 8).ok_or("message header cut short (fewer than 16 octets)")?;
+    let discipline = u8_at(&head, 6).ok_or("message header cut short")?;
+    let total = u64_at(&head, 8).ok_or("message header cut short (fewer than 16 octets)")?;
     let total = usize::try_from(total).map_err(|_| "message length does not fit in memory")?;
     if total < SECTION0_LEN + 4 {
         return Err(format!(
             "message claims a length of {total} octets, too short for GRIB2"
         ));
     }
-    let available = b.len() - start;
+    let available = o.len() - start;
     let truncated = total > available;
-    let end = if truncated { b.len() } else { start + total };
+    let end = if truncated { o.len() } else { start + total };
+    let first_field = cat.fields.len();
     let mut open = Open::default();
     let mut p = start + SECTION0_LEN;
     let mut finished = false;
     while p + 4 <= end {
-        if &b[p..p + 4] == b"7777" {
+        let h = o.read(p..(p + 6).min(end))?;
+        if h.get(..4) == Some(b"7777".as_slice()) {
             finished = true;
             break;
         }
-        let (Some(len), Some(num)) = (u32_at(b, p), u8_at(b, p + 4)) else {
+        let (Some(len), Some(num)) = (u32_at(&h, 0), u8_at(&h, 4)) else {
             break;
         };
         let len = len as usize;
-        if len < 5 || p + len > end {
+        if len < 5 || len > end - p {
             cat.problems.push(Problem {
                 offset: p,
                 field: None,
@@ -227,14 +284,23 @@ fn walk_message(b: &[u8], start: usize, cat: &mut Catalogue) -> Result<usize, St
             break;
         }
         let r = p..p + len;
+        let whole = |r: Range<usize>| -> Result<Option<Section>, String> {
+            if r.len() > MAX_DESCRIPTION_SECTION {
+                return Err(format!(
+                    "section {num} claims {len} octets, more than leeward reads for a description ({MAX_DESCRIPTION_SECTION})"
+                ));
+            }
+            let octets: Arc<[u8]> = Arc::from(o.read(r.clone())?.as_ref());
+            Ok(Some(Section { range: r, octets }))
+        };
         match num {
-            1 => open.s1 = Some(r),
+            1 => open.s1 = whole(r)?,
             2 => {}
-            3 => open.s3 = Some(r),
-            4 => open.s4 = Some(r),
-            5 => open.s5 = Some(r),
+            3 => open.s3 = whole(r)?,
+            4 => open.s4 = whole(r)?,
+            5 => open.s5 = whole(r)?,
             6 => {
-                let ind = u8_at(b, p + 5).unwrap_or(255);
+                let ind = u8_at(&h, 5).unwrap_or(255);
                 open.s6_indicator = ind;
                 match ind {
                     254 => open.s6 = open.bitmap_in_force.clone(),
@@ -247,7 +313,7 @@ fn walk_message(b: &[u8], start: usize, cat: &mut Catalogue) -> Result<usize, St
             }
             7 => {
                 let field_index = cat.fields.len();
-                match build_field(b, start, discipline, &open, r, field_index) {
+                match build_field(start, discipline, &open, r, field_index) {
                     Ok(f) => cat.fields.push(f),
                     Err(reason) => {
                         // Keep the count of fields in step with the file, so that
@@ -273,7 +339,11 @@ fn walk_message(b: &[u8], start: usize, cat: &mut Catalogue) -> Result<usize, St
         }
         p += len;
     }
+    for f in &mut cat.fields[first_field..] {
+        f.message_len = end - start;
+    }
     if truncated {
+        cat.cut_at_end = true;
         cat.problems.push(Problem {
             offset: start,
             field: None,
@@ -281,7 +351,7 @@ fn walk_message(b: &[u8], start: usize, cat: &mut Catalogue) -> Result<usize, St
                 "message claims {total} octets but the file holds only {available} from its start (truncated file)"
             ),
         });
-        return Ok(b.len());
+        return Ok(o.len());
     }
     if !finished {
         cat.problems.push(Problem {
@@ -321,9 +391,11 @@ fn placeholder(start: usize, discipline: u8, index: usize, reason: String) -> Fi
         member: None,
         grid_template: u16::MAX,
         sect3: 0..0,
+        grid_definition: Arc::from(&[][..]),
         data_template: u16::MAX,
         num_points: 0,
         sect5: 0..0,
+        message_len: 0,
         sect6: 0..0,
         bitmap_indicator: 255,
         sect7: 0..0,
@@ -363,7 +435,6 @@ fn date_time_at(b: &[u8], at: usize) -> Option<NaiveDateTime> {
 }
 
 fn build_field(
-    b: &[u8],
     start: usize,
     discipline: u8,
     open: &Open,
@@ -372,19 +443,19 @@ fn build_field(
 ) -> Result<FieldEntry, String> {
     let s1 = open
         .s1
-        .clone()
+        .as_ref()
         .ok_or("field has no section 1 (identification)")?;
     let s3 = open
         .s3
-        .clone()
+        .as_ref()
         .ok_or("field has no section 3 (grid definition)")?;
     let s4 = open
         .s4
-        .clone()
+        .as_ref()
         .ok_or("field has no section 4 (product definition)")?;
     let s5 = open
         .s5
-        .clone()
+        .as_ref()
         .ok_or("field has no section 5 (data representation)")?;
     let s6 = match (&open.s6, open.s6_indicator) {
         (Some(r), _) => r.clone(),
@@ -393,13 +464,13 @@ fn build_field(
         }
         (None, _) => return Err("field has no section 6 (bitmap)".into()),
     };
-    let sec1 = &b[s1.clone()];
+    let sec1 = &s1.octets[..];
     let centre = u16_at(sec1, 5).ok_or("section 1 cut short")?;
     let subcentre = u16_at(sec1, 7).ok_or("section 1 cut short")?;
     let reference_time =
         date_time_at(sec1, 12).ok_or("section 1 gives an impossible reference time")?;
 
-    let sec3 = &b[s3.clone()];
+    let sec3 = &s3.octets[..];
     let num_points = u32_at(sec3, 6).ok_or("section 3 cut short")? as usize;
     let grid_template = u16_at(sec3, 12).ok_or("section 3 cut short")?;
     // Flag table 3.3 bit 5 (0x08): winds relative to the grid.
@@ -409,9 +480,9 @@ fn build_field(
         .map(|f| f & 0x08 != 0)
         .unwrap_or(false);
 
-    let sec4 = &b[s4.clone()];
+    let sec4 = &s4.octets[..];
     let product_template = u16_at(sec4, 7).ok_or("section 4 cut short")?;
-    let sec5 = &b[s5.clone()];
+    let sec5 = &s5.octets[..];
     let data_template = u16_at(sec5, 9).ok_or("section 5 cut short")?;
     let bitmap_indicator = open.s6_indicator;
 
@@ -475,10 +546,12 @@ fn build_field(
         valid_time,
         member,
         grid_template,
-        sect3: s3,
+        sect3: s3.range.clone(),
+        grid_definition: s3.octets.clone(),
         data_template,
         num_points,
-        sect5: s5,
+        sect5: s5.range.clone(),
+        message_len: 0,
         sect6: s6,
         bitmap_indicator,
         sect7: s7,

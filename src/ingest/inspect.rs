@@ -10,10 +10,11 @@
 
 use serde::Serialize;
 
-use super::catalogue::{catalogue, FieldEntry};
+use super::catalogue::{catalogue, catalogue_of, FieldEntry};
 use super::decode::decode_raw;
 use super::grid::parse_grid;
 use super::params::{naming, surface, Naming, Param};
+use super::source::{FileOctets, Octets};
 use crate::geometry::Horizontal;
 
 /// One field as listed.
@@ -123,42 +124,75 @@ fn bits_per_value(template: u16, sect5: &[u8]) -> Option<u8> {
         .flatten()
 }
 
-/// List every field of a file.
+/// List every field of a file in memory.
 pub fn inspect(file: &str, bytes: &[u8], with_values: bool) -> FileListing {
-    let cat = catalogue(bytes);
+    listing(file, bytes, &catalogue(bytes), with_values)
+}
+
+/// List every field of an open file where it lies: catalogued section by
+/// section, each message read only to decode its fields' values.
+pub fn inspect_file(file: &str, f: &std::fs::File, size: u64, with_values: bool) -> FileListing {
+    let o = FileOctets::new(f, size);
+    listing(file, &o, &catalogue_of(&o), with_values)
+}
+
+/// Smallest, largest and mean of the finite values, and how many are not.
+fn value_range(v: &[f32]) -> (usize, Option<(f64, f64, f64)>) {
+    let valid: Vec<f64> = v
+        .iter()
+        .filter(|x| x.is_finite())
+        .map(|&x| f64::from(x))
+        .collect();
+    let stats = (!valid.is_empty()).then(|| {
+        (
+            valid.iter().copied().fold(f64::INFINITY, f64::min),
+            valid.iter().copied().fold(f64::NEG_INFINITY, f64::max),
+            valid.iter().sum::<f64>() / valid.len() as f64,
+        )
+    });
+    (v.len() - valid.len(), stats)
+}
+
+fn listing<O: Octets + ?Sized>(
+    file: &str,
+    o: &O,
+    cat: &super::catalogue::Catalogue,
+    with_values: bool,
+) -> FileListing {
     let mut fields = Vec::new();
+    // The message last read, for the other fields of a message with several.
+    let mut message: Option<(usize, std::borrow::Cow<'_, [u8]>)> = None;
     for e in &cat.fields {
-        let (grid, size, sp, grid_problem) = match bytes
-            .get(e.sect3.clone())
-            .ok_or_else(|| "section 3 outside the file".to_string())
-            .and_then(|s| parse_grid(s).map_err(|x| x.to_string()))
-        {
-            Ok((g, _)) => (
-                Some(g.describe()),
-                Some([g.nx(), g.ny()]),
-                spacing(&g.horizontal),
-                None,
-            ),
-            Err(r) => (None, None, None, Some(r)),
-        };
+        let (grid, size, sp, grid_problem) =
+            match parse_grid(&e.grid_definition).map_err(|x| x.to_string()) {
+                Ok((g, _)) => (
+                    Some(g.describe()),
+                    Some([g.nx(), g.ny()]),
+                    spacing(&g.horizontal),
+                    None,
+                ),
+                Err(r) => (None, None, None, Some(r)),
+            };
         let (mut missing, mut min, mut max, mut mean) = (None, None, None, None);
         let mut unusable = e.unusable.clone();
         if with_values && unusable.is_none() {
-            match decode_raw(bytes, e) {
+            if message.as_ref().is_none_or(|m| m.0 != e.message_offset) {
+                let r = e.message_offset..e.message_offset + e.message_len;
+                message = o.read(r).ok().map(|b| (e.message_offset, b));
+            }
+            let values = match &message {
+                Some((_, m)) => decode_raw(m, &e.moved(0)).map_err(|x| x.to_string()),
+                None => Err("its message cannot be read".to_string()),
+            };
+            match values {
                 Ok(v) => {
-                    let valid: Vec<f64> = v
-                        .iter()
-                        .filter(|x| x.is_finite())
-                        .map(|&x| f64::from(x))
-                        .collect();
-                    missing = Some(v.len() - valid.len());
-                    if !valid.is_empty() {
-                        min = Some(valid.iter().copied().fold(f64::INFINITY, f64::min));
-                        max = Some(valid.iter().copied().fold(f64::NEG_INFINITY, f64::max));
-                        mean = Some(valid.iter().sum::<f64>() / valid.len() as f64);
+                    let (m, stats) = value_range(&v);
+                    missing = Some(m);
+                    if let Some((lo, hi, avg)) = stats {
+                        (min, max, mean) = (Some(lo), Some(hi), Some(avg));
                     }
                 }
-                Err(x) => unusable = Some(x.to_string()),
+                Err(x) => unusable = Some(x),
             }
         }
         let named = naming(Param::new(e.discipline, e.category, e.number));
@@ -190,9 +224,10 @@ pub fn inspect(file: &str, bytes: &[u8], with_values: bool) -> FileListing {
             spacing: sp,
             grid_problem,
             packing_template: e.data_template,
-            bits_per_value: bytes
-                .get(e.sect5.clone())
-                .and_then(|s| bits_per_value(e.data_template, s)),
+            bits_per_value: o
+                .read(e.sect5.clone())
+                .ok()
+                .and_then(|s| bits_per_value(e.data_template, &s)),
             points: e.num_points,
             missing,
             min,
@@ -203,7 +238,7 @@ pub fn inspect(file: &str, bytes: &[u8], with_values: bool) -> FileListing {
     }
     FileListing {
         file: file.to_string(),
-        bytes: bytes.len(),
+        bytes: o.len(),
         fields,
         problems: cat
             .problems

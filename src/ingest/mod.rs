@@ -10,6 +10,7 @@ pub mod decode;
 pub mod grid;
 pub mod inspect;
 pub mod params;
+pub mod source;
 pub mod unpack;
 #[rustfmt::skip]
 pub mod wmo_tables;

@@ -20,7 +20,7 @@ use rayon::prelude::*;
 use tracing::{debug, warn};
 
 use super::cf::{Product, StepProducts, Vertical};
-use super::quicklook::{self, render, Contour, Outline, Quicklook, Scale};
+use super::quicklook::{self, render_on, Backdrop, Contour, Outline, Quicklook, Scale};
 use super::scales;
 use crate::config::{OutlineKind, Quicklooks};
 
@@ -240,10 +240,23 @@ pub fn write_images(
         let path = dir.join(format!("{stem}_{}{suffix}.png", f.spec.name));
         jobs.push((path, f, k, level_text, level_key(w.level)));
     }
+    if jobs.is_empty() {
+        return out;
+    }
+    // The graticule and the outline are the same on every image of the
+    // step: worked out once.
+    let outline = outline_of(p, look);
+    let backdrop = match Backdrop::new(p.lat.view(), p.lon.view(), &outline) {
+        Ok(b) => b,
+        Err(e) => {
+            warn!(file = %product.display(), error = %e, "quicklooks not drawn");
+            return out;
+        }
+    };
     let written: Vec<Option<PathBuf>> = jobs
         .par_iter()
         .map(|(path, f, k, level_text, level)| {
-            match draw_one(p, f, *k, level_text, level, look)
+            match draw_one(p, f, *k, level_text, level, look, &backdrop)
                 .map_err(std::io::Error::other)
                 .and_then(|png| super::write_file_atomic(path, &png))
             {
@@ -259,7 +272,21 @@ pub fn write_images(
     out
 }
 
-/// One image of level `k` of product `f`, as PNG bytes.
+/// What outlines the land on the step's images, as the settings ask.
+fn outline_of<'a>(p: &'a StepProducts, look: &'a Look<'_>) -> Outline<'a> {
+    let terrain = look.terrain.as_ref().filter(|t| t.dim() == p.lat.dim());
+    match (look.settings.outline, terrain) {
+        (OutlineKind::Coastlines, _) => Outline::Coastlines(&p.grid),
+        (OutlineKind::Terrain, Some(t)) => Outline::Terrain {
+            height: t.view(),
+            levels: &look.settings.terrain_m,
+        },
+        _ => Outline::None,
+    }
+}
+
+/// One image of level `k` of product `f`, as PNG bytes, on the backdrop of
+/// the step's grid and outline.
 fn draw_one(
     p: &StepProducts,
     f: &Product,
@@ -267,6 +294,7 @@ fn draw_one(
     level_text: &str,
     level: &str,
     look: &Look<'_>,
+    backdrop: &Backdrop,
 ) -> Result<Vec<u8>, String> {
     let name = f.spec.name;
     let shown = scales::shown_units(f.spec.units);
@@ -280,12 +308,15 @@ fn draw_one(
     let settings = look.settings;
     // The 2 PVU line: of the field itself on PV maps, of PV on the chosen
     // isentrope on tropopause maps.
-    let line_field = if matches!(name, "pv" | "isen_pv") {
-        Some(values.clone())
-    } else if scales::is_tropopause(name) {
+    let pv_on_isentrope = if scales::is_tropopause(name) {
         isentropic_pv_pvu(p, settings.contour_theta_k)
     } else {
         None
+    };
+    let line_field = if matches!(name, "pv" | "isen_pv") {
+        Some(values.view())
+    } else {
+        pv_on_isentrope.as_ref().map(|v| v.view())
     };
     let pvu = settings.contour_pvu;
     let line_label = if scales::is_tropopause(name) {
@@ -293,20 +324,11 @@ fn draw_one(
     } else {
         format!("{pvu} PVU")
     };
-    let contour = line_field.as_ref().map(|v| Contour {
-        values: v.view(),
+    let contour = line_field.map(|v| Contour {
+        values: v,
         level: pvu,
         label: &line_label,
     });
-    let terrain = look.terrain.filter(|t| t.dim() == values.dim());
-    let outline = match (settings.outline, &terrain) {
-        (OutlineKind::Coastlines, _) => Outline::Coastlines(&p.grid),
-        (OutlineKind::Terrain, Some(t)) => Outline::Terrain {
-            height: t.view(),
-            levels: &settings.terrain_m,
-        },
-        _ => Outline::None,
-    };
     // The variable and level first: a long name may be cut at the image's edge.
     // A PV surface is one per magnitude: +v in the north, -v in the south.
     let shown_level = if f.vertical == Vertical::PvSurface {
@@ -342,10 +364,10 @@ fn draw_one(
         subtitle: &subtitle,
         units: &units,
         scale,
-        outline,
+        outline: outline_of(p, look),
         contour,
     };
-    render(&q)
+    render_on(&q, backdrop)
 }
 
 #[cfg(test)]
@@ -363,5 +385,54 @@ mod tests {
         assert_eq!(parse("trop_p@-2").unwrap().level, Some((-2.0, None)));
         assert!(parse("bad name@3").is_err());
         assert!(parse("eta@five").is_err());
+    }
+
+    /// A product with a fixed scale keeps it whatever its values hold, so that
+    /// steps and runs compare; a configured scale replaces it, also whatever
+    /// the values; only a product without either spans its own values. The
+    /// fixed ranges are those of the table in docs/configuration.md
+    /// ("Colour scales").
+    #[test]
+    fn a_fixed_or_configured_scale_ignores_the_values_and_only_others_span_them() {
+        let calm = ndarray::Array2::from_elem((4, 5), 300.0f32);
+        let mut wild = ndarray::Array2::from_elem((4, 5), 20.0f32);
+        wild[(1, 2)] = 9000.0;
+        wild[(3, 4)] = f32::NAN;
+        let mut settings = Quicklooks::default();
+        let look = |s: &Quicklooks| -> (Scale, bool, Scale, bool, Scale) {
+            let l = Look {
+                settings: s,
+                terrain: None,
+            };
+            let (a, fa) = scale_of(&l, "trop_p", "2", &calm.view());
+            let (b, fb) = scale_of(&l, "trop_p", "2", &wild.view());
+            let (c, _) = scale_of(&l, "trop_theta", "2", &wild.view());
+            (a, fa, b, fb, c)
+        };
+        let (a, fa, b, fb, c) = look(&settings);
+        assert!(!fa && !fb);
+        assert_eq!(a, b);
+        assert_eq!((a.min, a.max, a.step), (100.0, 500.0, 25.0));
+        assert_eq!((c.min, c.max, c.step), (280.0, 380.0, 5.0));
+        settings
+            .scales
+            .insert("trop_p@2".into(), vec![150.0, 450.0, 50.0]);
+        let (a, fa, b, fb, _) = look(&settings);
+        assert!(!fa && !fb);
+        assert_eq!(a, b);
+        assert_eq!(
+            (a.min, a.max, a.step, a.reversed),
+            (150.0, 450.0, 50.0, true)
+        );
+        // A variable with no fixed scale spans its values, and says so.
+        let l = Look {
+            settings: &settings,
+            terrain: None,
+        };
+        let (s1, f1) = scale_of(&l, "no_such_field", "", &calm.view());
+        let (s2, f2) = scale_of(&l, "no_such_field", "", &wild.view());
+        assert!(f1 && f2);
+        assert!(s2.min <= 20.0 && s2.max >= 9000.0, "{s2:?}");
+        assert_ne!(s1, s2);
     }
 }

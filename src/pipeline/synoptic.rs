@@ -219,7 +219,7 @@ pub(super) fn mslp(
     Some(prod)
 }
 
-/// Temperature of the US Standard Atmosphere 1976 at sea level, K (REFERENCES.md).
+/// Temperature of the US Standard Atmosphere 1976 at sea level, K (docs/references.md).
 const STANDARD_T1000: f64 = 288.15;
 
 /// The terrain as a product, metres.

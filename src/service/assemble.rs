@@ -241,6 +241,64 @@ impl Assembly {
         }
     }
 
+    /// What a waiting step still lacks by its feed's rule, said briefly: each
+    /// quantity with the levels it lacks (and the levels that arrived but are
+    /// not among `levels_hpa`), the files not yet there, or the marker.
+    pub fn waiting_for(&self, p: &Pending, rule: &FeedRule) -> Vec<String> {
+        match rule.feed.complete {
+            Completeness::Fields => {
+                let hpa = |k: i64| format!("{}", k as f64 / 1e4);
+                let wanted: Vec<i64> = rule.levels_pa().iter().map(|&pa| level_key(pa)).collect();
+                let mut out = Vec::new();
+                for q in &rule.required {
+                    let lacking: Vec<String> = wanted
+                        .iter()
+                        .filter(|k| !p.have.contains(&(*q, **k)))
+                        .map(|k| hpa(*k))
+                        .collect();
+                    if !lacking.is_empty() {
+                        let name =
+                            parameter(*q).map_or_else(|| q.to_string(), |e| e.name.to_string());
+                        out.push(format!("{name} at {} hPa", lacking.join(", ")));
+                    }
+                }
+                let mut other: Vec<i64> = p
+                    .have
+                    .iter()
+                    .filter(|(q, k)| rule.required.contains(q) && !wanted.contains(k))
+                    .map(|(_, k)| *k)
+                    .collect();
+                other.sort_unstable();
+                other.dedup();
+                if !out.is_empty() && !other.is_empty() {
+                    out.push(format!(
+                        "(arrived on levels not in levels_hpa: {} hPa)",
+                        other.iter().map(|k| hpa(*k)).collect::<Vec<_>>().join(", ")
+                    ));
+                }
+                out
+            }
+            Completeness::Files => {
+                let (n, want) = (p.files.len(), rule.feed.files_per_step as usize);
+                if n < want {
+                    vec![format!("{} more file(s): {n} of {want} arrived", want - n)]
+                } else {
+                    Vec::new()
+                }
+            }
+            Completeness::Marker => {
+                if self.complete(p, rule) {
+                    Vec::new()
+                } else {
+                    vec![format!(
+                        "the marker file of cycle {} (a name matching {:?})",
+                        p.tag.cycle, rule.feed.marker_pattern
+                    )]
+                }
+            }
+        }
+    }
+
     /// Move waiting steps that are complete, or past the timeout, to ready;
     /// retries whose time has come too. Returns the steps made ready.
     pub fn promote(
@@ -548,6 +606,43 @@ mod tests {
             .is_empty());
         a.add(tag.clone(), key, contribution("b"), &[], 0.0, false);
         assert_eq!(a.promote(&[f], 1.0, now, 100.0), vec![tag]);
+    }
+
+    #[test]
+    fn a_waiting_step_says_what_it_lacks_and_levels_that_do_not_match() {
+        let r = rule(
+            "name = \"m\"\nlevels_hpa = [925.0, 500.0]\nrequire = [\"Temperature\", \"u-component of wind\"]\n",
+        );
+        let mut a = Assembly::default();
+        let (tag, key) = step(0, 6);
+        let lv = |p: f64| level_key(p * 100.0);
+        // Temperature at 500 and 920 hPa (the model's level is not 925), u at 925 and 500.
+        let have = [
+            (Quantity::Temperature.param(), lv(500.0)),
+            (Quantity::Temperature.param(), lv(920.0)),
+            (Quantity::WindU.param(), lv(925.0)),
+            (Quantity::WindU.param(), lv(500.0)),
+        ];
+        a.add(tag.clone(), key, contribution("a"), &have, 0.0, false);
+        assert_eq!(
+            a.waiting_for(&a.steps[&tag], &r),
+            vec![
+                "Temperature at 925 hPa".to_string(),
+                "(arrived on levels not in levels_hpa: 920 hPa)".to_string()
+            ]
+        );
+        let f = rule("name = \"m\"\ncomplete = \"files\"\nfiles_per_step = 3\n");
+        assert_eq!(
+            a.waiting_for(&a.steps[&tag], &f),
+            vec!["2 more file(s): 1 of 3 arrived".to_string()]
+        );
+        let m = rule(
+            "name = \"m\"\ncomplete = \"marker\"\nmarker_pattern = '^(?P<cycle>\\d{10})\\.done$'\n",
+        );
+        assert!(a.waiting_for(&a.steps[&tag], &m)[0]
+            .starts_with("the marker file of cycle 20260314T0000Z"));
+        a.markers.insert(("m".into(), tag.cycle.clone(), None));
+        assert!(a.waiting_for(&a.steps[&tag], &m).is_empty());
     }
 
     #[test]

@@ -7,7 +7,6 @@
 //! thread owns the state; workers run one step each and report back.
 
 use std::collections::{BTreeSet, HashMap};
-use std::io::{Read, Seek, SeekFrom};
 use std::path::{Path, PathBuf};
 use std::sync::mpsc::{channel, Receiver, Sender};
 use std::sync::{Arc, Mutex};
@@ -25,10 +24,13 @@ use super::metrics::Metrics;
 use super::publish::{self, StepFacts};
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::systemd::{status_line, Notifier};
+use super::waiting::{self, Waiting, WaitingStep};
 use super::watch::{watch, FinishedFiles};
 use crate::config::Config;
-use crate::ingest::catalogue::catalogue;
+use crate::escape::shown;
+use crate::ingest::catalogue::{catalogue, catalogue_file};
 use crate::ingest::grid::parse_grid;
+use crate::ingest::source::{checksum_file, checksum_ranges, open_input, InputError, Opened};
 use crate::output::store::cycle_dir_name;
 use crate::pipeline::{
     grid_id, output_name, plan, run_step, Destination, InputFile, Step, StepKey, StepReport,
@@ -215,7 +217,8 @@ struct InFlight {
 }
 
 /// Steps of one run (feed, member, grid) read and complete each other's files:
-/// on the scheduler they go one at a time, so each sees the ones before it.
+/// they go one at a time, on this machine as on the scheduler, so that each
+/// sees the ones before it published (its changes in time, and their images).
 fn chain(t: &StepTag) -> (&str, Option<u8>, &str) {
     (&t.feed, t.member, &t.grid)
 }
@@ -225,38 +228,31 @@ struct JobDone {
     outcome: JobOutcome,
 }
 
-/// Read a step's messages from a file as they were catalogued. With their
+/// Read a step's messages from a file as they were catalogued, opened
+/// without blocking and refused unless it is a regular file. With their
 /// digest known, the messages must be the very bytes catalogued (a file
 /// written in place may have grown by other steps' messages since); without
 /// it (a spec of an earlier version), the file must have its size of then.
-fn read_ranges(path: &Path, c: &Contribution) -> std::io::Result<Vec<u8>> {
-    let mut f = std::fs::File::open(path)?;
-    let size = f.metadata()?.len();
-    let changed = |then: String, now: String| {
-        std::io::Error::other(format!(
-            "changed since it was catalogued ({then} then, {now} now)"
-        ))
-    };
-    if c.digest.is_empty() && size != c.size {
-        return Err(changed(format!("{} bytes", c.size), format!("{size}")));
-    }
-    let mut out = Vec::new();
-    for &(off, len) in &c.messages {
-        f.seek(SeekFrom::Start(off))?;
-        let start = out.len();
-        out.resize(start + len as usize, 0);
-        f.read_exact(&mut out[start..]).map_err(|e| {
-            if e.kind() == std::io::ErrorKind::UnexpectedEof {
-                changed(format!("{} bytes", c.size), format!("{size}"))
-            } else {
-                e
-            }
-        })?;
-    }
+fn read_messages(c: &Contribution) -> Result<Vec<u8>, String> {
+    let o = open_input(&c.path, true).map_err(|e| e.to_string())?;
+    let expect = if c.digest.is_empty() { c.size } else { o.size };
+    let out = crate::ingest::source::read_ranges(&o.file, expect, &c.messages).map_err(|e| {
+        if c.digest.is_empty() {
+            e.to_string()
+        } else {
+            format!(
+                "changed since it was catalogued ({} bytes then, {} now: {e})",
+                c.size, o.size
+            )
+        }
+    })?;
     if !c.digest.is_empty() {
         let now = super::ledger::checksum(&out);
         if now != c.digest {
-            return Err(changed(format!("the step's messages {}", c.digest), now));
+            return Err(format!(
+                "changed since it was catalogued (the step's messages {} then, {now} now)",
+                c.digest
+            ));
         }
     }
     Ok(out)
@@ -272,7 +268,7 @@ pub(super) fn load_step(
 ) -> Result<Option<(Step, Vec<InputFile>)>, (PathBuf, String)> {
     let mut inputs = Vec::new();
     for c in files {
-        match read_ranges(&c.path, c) {
+        match read_messages(c) {
             Ok(bytes) => {
                 let cat = catalogue(&bytes);
                 inputs.push(InputFile {
@@ -281,7 +277,7 @@ pub(super) fn load_step(
                     catalogue: cat,
                 });
             }
-            Err(e) => return Err((c.path.clone(), e.to_string())),
+            Err(e) => return Err((c.path.clone(), e)),
         }
     }
     let (steps, _) = plan(&inputs);
@@ -489,6 +485,11 @@ struct Daemon {
     last_published: Option<String>,
     restart_needed: bool,
     last_ping: Instant,
+    /// Files read with their last message cut off at their end: (size, mtime
+    /// then, since when). Read again once settled, or when they change.
+    growing: HashMap<PathBuf, (u64, i64, Instant)>,
+    /// The waiting steps as last reported (state file, /health).
+    last_waiting: Vec<WaitingStep>,
     /// Since when and why the state directory cannot be used: no new work
     /// is taken until it can be again.
     state_problem: Option<(Instant, String)>,
@@ -651,13 +652,12 @@ impl Daemon {
 
     /// A finished file in some feed's directory.
     fn ingest(&mut self, path: &Path, force: Option<&ReprocessRequest>) {
-        let Some(name) = path
-            .file_name()
-            .and_then(|n| n.to_str())
-            .map(str::to_string)
-        else {
+        let Some(raw) = path.file_name() else {
             return;
         };
+        // A name that is not UTF-8 is matched in its escaped form (`\xff`);
+        // the file itself is opened by its bytes.
+        let name = crate::escape::path(Path::new(raw));
         let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
         let found = self
             .rules
@@ -665,21 +665,115 @@ impl Daemon {
             .filter(|r| r.dir == dir)
             .find_map(|r| r.role(&name).map(|role| (r.feed.name.clone(), role)));
         let Some((feed, role)) = found else {
-            debug!(file = %path.display(), "not a file of any feed");
+            debug!(file = %shown(path), "not a file of any feed");
             return;
         };
         match role {
             FileRole::Marker(parts) => {
                 if let Some(c) = parts.cycle {
-                    info!(feed = %feed, file = %path.display(), cycle = %cycle_dir_name(c), step = ?parts.step, "marker");
+                    info!(feed = %feed, file = %shown(path), cycle = %cycle_dir_name(c), step = ?parts.step, "marker");
                     self.asm
                         .markers
                         .insert((feed, cycle_dir_name(c), parts.step));
                 } else {
-                    warn!(feed = %feed, file = %path.display(), "marker file without a readable cycle in its name");
+                    warn!(feed = %feed, file = %shown(path), "marker file without a readable cycle in its name");
                 }
             }
             FileRole::Data(parts) => self.ingest_data(&feed, path, parts, force),
+        }
+    }
+
+    /// Open a feed's input file as its link policy allows. Whatever is not
+    /// read is said in the log once (the watcher hands each file over once per
+    /// change); a link the policy refuses is quarantined by its name, its
+    /// target never opened.
+    fn open_feed_input(
+        &mut self,
+        feed: &str,
+        path: &Path,
+        size: u64,
+        mtime: i64,
+    ) -> Option<Opened> {
+        let is_link = std::fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_symlink());
+        let target = if is_link {
+            let target = match std::fs::canonicalize(path) {
+                Ok(t) => t,
+                Err(e) => {
+                    let to = std::fs::read_link(path)
+                        .map(|t| crate::escape::path(&t))
+                        .unwrap_or_default();
+                    warn!(feed, file = %shown(path), link_to = %to, error = %e, "symbolic link whose target cannot be reached (dangling): skipped until it can");
+                    return None;
+                }
+            };
+            let rule = self.rules.iter().find(|r| r.feed.name == feed)?;
+            if !rule.link_allowed(&target) {
+                let policy = match rule.feed.follow_links {
+                    super::settings::FollowLinks::Never => "follow_links = \"never\"".to_string(),
+                    _ => format!(
+                        "follow_links = \"inside\": the target is not under {} or the feed's link_roots",
+                        crate::escape::path(&rule.dir)
+                    ),
+                };
+                let reason = format!(
+                    "symbolic link to {} refused ({policy}); its target was not read",
+                    crate::escape::path(&target)
+                );
+                self.quarantine(feed, path, &reason, size, mtime, String::new());
+                return None;
+            }
+            target
+        } else {
+            path.to_path_buf()
+        };
+        // The resolved target has no link left in it: opened without following one.
+        match open_input(&target, false) {
+            Ok(o) => Some(o),
+            Err(InputError::NotRegular(kind)) => {
+                warn!(feed, file = %shown(path), kind, "not a regular file: skipped");
+                None
+            }
+            Err(e) => {
+                warn!(feed, file = %shown(path), error = %e, "input could not be read; it is taken again if it changes");
+                None
+            }
+        }
+    }
+
+    /// A file read with its last message cut off at its end: true once it has
+    /// kept that size and mtime for the settle time (a file that settled cut
+    /// short), false while it may still be written (it is looked at again).
+    fn settled_cut_short(&mut self, path: &Path, size: u64, mtime: i64) -> bool {
+        let settle = Duration::from_secs_f64(self.cfg.service.settle_s);
+        match self.growing.get(path) {
+            Some(&(s, m, since)) if (s, m) == (size, mtime) => since.elapsed() >= settle,
+            _ => {
+                self.growing
+                    .insert(path.to_path_buf(), (size, mtime, Instant::now()));
+                false
+            }
+        }
+    }
+
+    /// Files cut short at their end are read again once they have settled;
+    /// one that changed meanwhile is handed over again by its watcher.
+    fn recheck_growing(&mut self) {
+        let settle = Duration::from_secs_f64(self.cfg.service.settle_s);
+        let due: Vec<PathBuf> = self
+            .growing
+            .iter()
+            .filter(|(_, (_, _, since))| since.elapsed() >= settle)
+            .map(|(p, _)| p.clone())
+            .collect();
+        for p in due {
+            let (size, mtime, since) = self.growing[&p];
+            if std::fs::metadata(&p).is_ok_and(|m| (m.len(), mtime_ns(&m)) == (size, mtime)) {
+                self.ingest(&p, None);
+            }
+            // Read now (or not readable any more): not looked at again unless it changes.
+            if self.growing.get(&p).is_some_and(|g| g.2 == since) {
+                self.growing.remove(&p);
+            }
         }
     }
 
@@ -695,20 +789,20 @@ impl Daemon {
         let moved_to = match self.cfg.service.quarantine {
             QuarantineMode::Move => {
                 match publish::quarantine(path, &self.cfg.service.quarantine_dir(), feed, reason) {
-                    Ok(d) => Some(d.display().to_string()),
+                    Ok(d) => Some(crate::escape::path(&d)),
                     Err(e) => {
-                        warn!(feed, file = %path.display(), error = %e, "cannot move the file to quarantine; recorded only");
+                        warn!(feed, file = %shown(path), error = %e, "cannot move the file to quarantine; recorded only");
                         None
                     }
                 }
             }
             QuarantineMode::Record => None,
         };
-        error!(feed, file = %path.display(), reason, moved_to = ?moved_to, "input file quarantined");
+        error!(feed, file = %shown(path), reason, moved_to = ?moved_to, "input file quarantined");
         self.metrics().feed(feed).quarantined += 1;
         self.record(Record::Seen {
             feed: feed.into(),
-            file: path.display().to_string(),
+            file: crate::escape::path(path),
             size,
             mtime_ns: mtime,
             checksum,
@@ -718,7 +812,7 @@ impl Daemon {
         });
         self.record(Record::Quarantined {
             feed: feed.into(),
-            file: path.display().to_string(),
+            file: crate::escape::path(path),
             reason: reason.into(),
             moved_to,
             at: Utc::now().timestamp(),
@@ -732,37 +826,46 @@ impl Daemon {
         parts: super::settings::NameParts,
         force: Option<&ReprocessRequest>,
     ) {
-        let meta = match std::fs::metadata(path) {
+        // Its identity as last seen (a link: its target's), without opening it.
+        let meta = match std::fs::metadata(path).or_else(|_| std::fs::symlink_metadata(path)) {
             Ok(m) => m,
             Err(e) => {
-                warn!(feed, file = %path.display(), error = %e, "input vanished before it could be read");
+                warn!(feed, file = %shown(path), error = %e, "input vanished before it could be read");
                 return;
             }
         };
         let (size, mtime) = (meta.len(), mtime_ns(&meta));
-        let key = path.display().to_string();
+        let key = crate::escape::path(path);
         if force.is_none() {
             if let Some(s) = self.ledger.state.seen.get(&key) {
                 if s.size == size
                     && s.mtime_ns == mtime
                     && s.steps.iter().all(|t| self.ledger.state.settled(t))
                 {
-                    debug!(feed, file = %path.display(), "already done");
+                    debug!(feed, file = %shown(path), "already done");
                     return;
                 }
             }
         }
-        let bytes = match std::fs::read(path) {
-            Ok(b) => b,
+        let Some(opened) = self.open_feed_input(feed, path, size, mtime) else {
+            return;
+        };
+        let (size, mtime) = (opened.size, opened.mtime_ns);
+        let checksum = match checksum_file(&opened.file, size) {
+            Ok(c) => c,
             Err(e) => {
-                warn!(feed, file = %path.display(), error = %e, "input could not be read; it is taken again if it changes");
+                warn!(feed, file = %shown(path), error = %e, "input could not be read; it is taken again if it changes");
                 return;
             }
         };
-        let checksum = super::ledger::checksum(&bytes);
-        let cat = catalogue(&bytes);
+        let cat = catalogue_file(&opened.file, size);
+        if cat.cut_at_end && !self.settled_cut_short(path, size, mtime) {
+            debug!(feed, file = %shown(path), bytes = size, "last message cut off at the end of the file: still being written; read again when it changes or has settled");
+            return;
+        }
+        self.growing.remove(path);
         for p in &cat.problems {
-            warn!(feed, file = %path.display(), field = ?p.field, offset = p.offset, reason = %p.reason, "input problem");
+            warn!(feed, file = %shown(path), field = ?p.field, offset = p.offset, reason = %p.reason, "input problem");
         }
         let usable: Vec<_> = cat.fields.iter().filter(|f| f.unusable.is_none()).collect();
         if usable.is_empty() {
@@ -776,18 +879,17 @@ impl Daemon {
             return;
         }
         // Grids leeward cannot use make a file unusable only if every field is on one.
-        let mut grid_ok: HashMap<std::ops::Range<usize>, Result<(), String>> = HashMap::new();
+        let mut grid_ok: HashMap<Arc<[u8]>, Result<(), String>> = HashMap::new();
         for f in &usable {
-            grid_ok.entry(f.sect3.clone()).or_insert_with(|| {
-                bytes
-                    .get(f.sect3.clone())
-                    .ok_or_else(|| "section 3 outside the file".to_string())
-                    .and_then(|s| parse_grid(s).map(|_| ()).map_err(|e| e.to_string()))
+            grid_ok.entry(f.grid_definition.clone()).or_insert_with(|| {
+                parse_grid(&f.grid_definition)
+                    .map(|_| ())
+                    .map_err(|e| e.to_string())
             });
         }
         let good: Vec<_> = usable
             .into_iter()
-            .filter(|f| matches!(grid_ok.get(&f.sect3), Some(Ok(()))))
+            .filter(|f| matches!(grid_ok.get(&f.grid_definition), Some(Ok(()))))
             .collect();
         if good.is_empty() {
             let reason = grid_ok
@@ -809,15 +911,12 @@ impl Daemon {
         let mut by_step: std::collections::BTreeMap<StepKey, Gathered> =
             std::collections::BTreeMap::new();
         for f in &good {
-            let k = crate::pipeline::step_key(&bytes, f);
-            let msg_len = bytes
-                .get(f.message_offset + 8..f.message_offset + 16)
-                .and_then(|b| <[u8; 8]>::try_from(b).ok())
-                .map(u64::from_be_bytes)
-                .unwrap_or(0);
+            let k = crate::pipeline::step_key(f);
             let e = by_step.entry(k).or_default();
-            let range = (f.message_offset as u64, msg_len);
-            if !e.0.contains(&range) {
+            // Only the messages the products may use are read again for the
+            // step (and the step's first from this file, which names its grid).
+            let range = (f.message_offset as u64, f.message_len as u64);
+            if (e.0.is_empty() || crate::pipeline::may_use(f)) && !e.0.contains(&range) {
                 e.0.push(range);
             }
             if let Some(q) = isobaric(f) {
@@ -832,19 +931,32 @@ impl Daemon {
             mtime,
             checksum,
         };
-        self.assign(&file, &bytes, by_step, &parts, force);
+        self.assign(&file, &opened.file, by_step, &parts, force);
     }
 
     /// Give a catalogued file's fields to their steps, and record the file.
     fn assign(
         &mut self,
         file: &Caught,
-        bytes: &[u8],
+        opened: &std::fs::File,
         by_step: std::collections::BTreeMap<StepKey, Gathered>,
         parts: &super::settings::NameParts,
         force: Option<&ReprocessRequest>,
     ) {
         let (feed, path) = (file.feed.as_str(), file.path.as_path());
+        // What the file gives each step: the checksum of the step's messages,
+        // read again in pieces from the file as it was opened.
+        let step_digests: Result<Vec<String>, std::io::Error> = by_step
+            .values()
+            .map(|(messages, _)| checksum_ranges(opened, messages))
+            .collect();
+        let step_digests = match step_digests {
+            Ok(d) => d,
+            Err(e) => {
+                warn!(feed, file = %shown(path), error = %e, "input could not be read; it is taken again if it changes");
+                return;
+            }
+        };
         let now = unix_now();
         let mut tags = Vec::new();
         let mut digests = Vec::new();
@@ -856,13 +968,13 @@ impl Daemon {
                 .map(|k| (k.valid_time - k.reference_time).num_hours())
                 .collect();
             if !leads.contains(&s) {
-                warn!(feed, file = %path.display(), name_step = s, leads = ?leads, "the file name and the contents disagree on the step; the contents are used");
+                warn!(feed, file = %shown(path), name_step = s, leads = ?leads, "the file name and the contents disagree on the step; the contents are used");
             }
         }
-        for (k, (messages, fields)) in by_step {
+        for ((k, (messages, fields)), digest) in by_step.into_iter().zip(step_digests) {
             if let Some(c) = parts.cycle {
                 if c != k.reference_time {
-                    warn!(feed, file = %path.display(), name_cycle = %cycle_dir_name(c), cycle = %cycle_dir_name(k.reference_time), "the file name and the contents disagree on the cycle; the contents are used");
+                    warn!(feed, file = %shown(path), name_cycle = %cycle_dir_name(c), cycle = %cycle_dir_name(k.reference_time), "the file name and the contents disagree on the cycle; the contents are used");
                 }
             }
             let tag = StepTag {
@@ -872,7 +984,6 @@ impl Daemon {
                 member: k.member,
                 grid: grid_id(&k.grid_key),
             };
-            let digest = super::assemble::digest(bytes, &messages);
             tags.push(tag.clone());
             digests.push(digest.clone());
             let c = Contribution {
@@ -974,11 +1085,11 @@ impl Daemon {
                 return Given::No;
             }
             if let Err(why) = self.may_remake(&tag, &file.key, too_old) {
-                warn!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, reason = %why, "input arrived after its step was made; not used (reprocess the cycle to use it)");
+                warn!(feed, file = %shown(path), cycle = %tag.cycle, step = tag.lead, reason = %why, "input arrived after its step was made; not used (reprocess the cycle to use it)");
                 self.metrics().feed(feed).late_files += 1;
                 return Given::No;
             }
-            info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, "more input for a step already made; made again with all its input");
+            info!(feed, file = %shown(path), cycle = %tag.cycle, step = tag.lead, "more input for a step already made; made again with all its input");
             self.metrics().feed(feed).remade += 1;
             self.record(Record::Reopened {
                 step: tag.clone(),
@@ -989,7 +1100,7 @@ impl Daemon {
             taken = Given::Reopened;
         } else if too_old && !asked {
             if self.too_old.insert((feed.to_string(), tag.cycle.clone())) {
-                warn!(feed, cycle = %tag.cycle, file = %path.display(), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
+                warn!(feed, cycle = %tag.cycle, file = %shown(path), catch_up_hours = catch_up, "cycle older than service.catch_up_hours; not processed (use leeward reprocess)");
             }
             return Given::Skipped;
         }
@@ -1013,11 +1124,17 @@ impl Daemon {
                     p.more = true;
                 }
             }
-            info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, fields = n, "input for step");
+            let w = self.waiting_step(&tag);
+            let missing = w
+                .as_ref()
+                .map_or_else(|| "nothing: complete".to_string(), |w| w.missing.join("; "));
+            let made_by = w.map_or(0, |w| w.made_by);
+            let now = unix_now() as i64;
+            info!(feed, file = %shown(path), cycle = %tag.cycle, step = tag.lead, fields = n, missing = %missing, made_anyway_in_s = made_by.saturating_sub(now).max(0), "input for step");
             if in_hand {
                 // Told to the ledger now: the end of the run in hand then
                 // leaves the step waiting, whatever stops the service meanwhile.
-                info!(feed, file = %path.display(), cycle = %tag.cycle, step = tag.lead, "input for a step being made; made again with all its input once this run ends");
+                info!(feed, file = %shown(path), cycle = %tag.cycle, step = tag.lead, "input for a step being made; made again with all its input once this run ends");
                 self.record(Record::Reopened {
                     step: tag,
                     file: file.key.clone(),
@@ -1043,7 +1160,7 @@ impl Daemon {
             if !other.is_file() {
                 return Err(format!(
                     "{} it was made from is no longer there",
-                    other.display()
+                    shown(&other)
                 ));
             }
         }
@@ -1057,7 +1174,7 @@ impl Daemon {
             .seen
             .iter()
             .filter(|(f, s)| f.as_str() != file && s.steps.contains(tag))
-            .map(|(f, _)| PathBuf::from(f))
+            .filter_map(|(f, _)| crate::escape::unescape_path(f))
             .collect()
     }
 
@@ -1090,7 +1207,7 @@ impl Daemon {
         let have: BTreeSet<(String, String)> = p
             .files
             .values()
-            .map(|c| (c.path.display().to_string(), c.checksum.clone()))
+            .map(|c| (crate::escape::path(&c.path), c.checksum.clone()))
             .collect();
         let had: BTreeSet<(String, String)> = m
             .inputs
@@ -1182,11 +1299,11 @@ impl Daemon {
             let sched_ok = self.scheduler_usable();
             let jobs_free = self.jobs.len() < max_jobs;
             let pick = self.asm.next_where(self.cfg.service.order, &busy, |p| {
-                if self.executor(&p.tag.feed) == Executor::Local {
-                    return local_free;
-                }
                 if busy_chains.contains(&chain(&p.tag)) {
                     return false;
+                }
+                if self.executor(&p.tag.feed) == Executor::Local {
+                    return local_free;
                 }
                 if sched_ok {
                     jobs_free
@@ -1773,7 +1890,7 @@ impl Daemon {
                 let more = self.more_came(&tag);
                 info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %path.display(), manifest = %manifest.display(), partial, latency_s = latency, seconds = report.seconds, "published");
                 for i in &report.issues {
-                    warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %i.file.display(), field = ?i.field, what = %i.what, reason = %i.reason, "input problem");
+                    warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %shown(&i.file), field = ?i.field, what = %i.what, reason = %i.reason, "input problem");
                 }
                 self.record(Record::Published {
                     step: tag.clone(),
@@ -1832,10 +1949,10 @@ impl Daemon {
                 if let Some(p) = self.asm.steps.get_mut(&tag) {
                     p.attempts = attempts;
                     if attempts >= 3 {
-                        warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %file.display(), reason = %reason, "input gone; the step goes on without it");
+                        warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %shown(&file), reason = %reason, "input gone; the step goes on without it");
                         p.files.remove(&file);
                     } else {
-                        warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %file.display(), reason = %reason, retry_in_s = wait.as_secs_f64(), "input cannot be read; retrying");
+                        warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, file = %shown(&file), reason = %reason, retry_in_s = wait.as_secs_f64(), "input cannot be read; retrying");
                     }
                     p.phase = Phase::Retry {
                         at: Instant::now() + wait,
@@ -1913,6 +2030,50 @@ impl Daemon {
         });
     }
 
+    /// A step still waiting for input: what it lacks and when it is made anyway;
+    /// `None` when it is not waiting or lacks nothing.
+    fn waiting_step(&self, tag: &StepTag) -> Option<WaitingStep> {
+        let p = self.asm.steps.get(tag)?;
+        if p.phase != Phase::Waiting {
+            return None;
+        }
+        let rule = self.rules.iter().find(|r| r.feed.name == tag.feed)?;
+        let missing = self.asm.waiting_for(p, rule);
+        if missing.is_empty() {
+            return None;
+        }
+        Some(WaitingStep {
+            step: tag.clone(),
+            missing,
+            first_seen: p.first_seen.ceil() as i64,
+            made_by: (p.first_seen + self.cfg.service.step_timeout_s).ceil() as i64,
+        })
+    }
+
+    /// Say what the waiting steps lack, in the state directory (for `leeward
+    /// status`) and on /health, whenever that changes.
+    fn report_waiting(&mut self) {
+        let now: Vec<WaitingStep> = self
+            .asm
+            .steps
+            .keys()
+            .filter_map(|t| self.waiting_step(t))
+            .collect();
+        if now == self.last_waiting {
+            return;
+        }
+        let w = Waiting {
+            written: Utc::now().timestamp(),
+            pid: std::process::id(),
+            steps: now.clone(),
+        };
+        if let Err(e) = waiting::write(&self.cfg.service.state_dir, &w) {
+            warn!(file = %waiting::path(&self.cfg.service.state_dir).display(), error = %e, "waiting steps not written to the state directory");
+        }
+        self.metrics().waiting = now.clone();
+        self.last_waiting = now;
+    }
+
     fn timeouts(&mut self) {
         let ready = self.asm.promote(
             &self.rules,
@@ -1974,8 +2135,7 @@ impl Daemon {
             paths.sort();
             for p in paths {
                 if p.file_name()
-                    .and_then(|n| n.to_str())
-                    .is_some_and(|n| !super::watch::ignored(n))
+                    .is_some_and(|n| !super::watch::ignored(&crate::escape::path(Path::new(n))))
                 {
                     self.ingest(&p, Some(&req));
                     self.keepalive();
@@ -2001,12 +2161,51 @@ impl Daemon {
 
     fn retention(&mut self) {
         let days = self.cfg.service.retention_days;
-        if days == 0 {
+        if days > 0 {
+            let now = Utc::now().naive_utc();
+            for r in &self.rules {
+                publish::apply_retention(&self.cfg.service.out_dir.join(&r.feed.name), days, now);
+            }
+        }
+        self.forget_old();
+    }
+
+    /// Forget what settled longer ago than `service.ledger_days` and compact
+    /// the journal when anything was forgotten or it has grown to more than
+    /// twice what its state needs: memory and restart time stay bounded by
+    /// that window, not by how long the service has run.
+    fn forget_old(&mut self) {
+        let days = i64::from(self.cfg.service.ledger_days_in_effect());
+        let forgotten = self
+            .ledger
+            .state
+            .forget(Utc::now().timestamp() - days * 86_400, |file| {
+                crate::escape::unescape_path(file).is_some_and(|p| p.symlink_metadata().is_ok())
+            });
+        // Cycles already said to be too old are said again at most once a window.
+        let cutoff = cycle_dir_name((Utc::now() - TimeDelta::days(days)).naive_utc());
+        self.too_old.retain(|(_, c)| *c >= cutoff);
+        let live = self.ledger.state.snapshot().len();
+        if forgotten == 0 && self.ledger.lines() <= 2 * live + 10_000 {
             return;
         }
-        let now = Utc::now().naive_utc();
-        for r in &self.rules {
-            publish::apply_retention(&self.cfg.service.out_dir.join(&r.feed.name), days, now);
+        if self.state_problem.is_some() || self.ledger.in_trouble() {
+            return; // compacted once the state directory can be written again
+        }
+        let t = Instant::now();
+        match self.ledger.compact() {
+            Ok((was, now)) => info!(
+                steps_forgotten = forgotten,
+                lines_before = was,
+                lines_after = now,
+                seconds = t.elapsed().as_secs_f64(),
+                ledger_days = days,
+                "ledger compacted"
+            ),
+            Err(e) => {
+                error!(error = %e, "ledger not compacted; the state directory needs attention");
+                self.metrics().ledger_errors += 1;
+            }
         }
     }
 
@@ -2217,6 +2416,8 @@ pub fn serve(opts: ServeOptions) -> u8 {
         last_published: None,
         restart_needed: false,
         last_ping: Instant::now(),
+        growing: HashMap::new(),
+        last_waiting: Vec::new(),
         state_problem: None,
     };
     for (tag, st) in &d.ledger.state.steps {
@@ -2327,6 +2528,8 @@ pub fn serve(opts: ServeOptions) -> u8 {
             d.watch_state();
             if taking {
                 d.requests();
+                d.recheck_growing();
+                d.report_waiting();
             }
             d.timeouts();
         }

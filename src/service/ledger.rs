@@ -784,14 +784,57 @@ impl State {
     }
 }
 
+impl State {
+    /// Forget what settled before `before` (Unix time): steps published or
+    /// failed for good then; input files none of whose steps is remembered
+    /// any longer, unless `still_there` says the file is still in its incoming
+    /// directory (then it is kept, with no steps, so that it is passed over as
+    /// handled rather than read again); quarantine entries from before then.
+    /// Steps waiting, to be retried, to be made again with more input or in
+    /// the middle of a publication, their files and the grid numbering are
+    /// kept. Returns how many steps were forgotten.
+    pub fn forget(&mut self, before: i64, still_there: impl Fn(&str) -> bool) -> usize {
+        let old: Vec<StepTag> = self
+            .steps
+            .iter()
+            .filter(|(t, st)| {
+                self.settled(t)
+                    && !st.more
+                    && !self.publishing.contains_key(*t)
+                    && matches!(&st.outcome,
+                        Outcome::Published { at, .. } | Outcome::Failed { at, .. } if *at < before)
+            })
+            .map(|(t, _)| t.clone())
+            .collect();
+        for t in &old {
+            self.steps.remove(t);
+        }
+        let steps = &self.steps;
+        self.seen.retain(|file, f| {
+            // Each step's digest goes with it (an older record has none).
+            let keep: Vec<bool> = f.steps.iter().map(|t| steps.contains_key(t)).collect();
+            if f.digests.len() == f.steps.len() {
+                let mut k = keep.iter();
+                f.digests.retain(|_| k.next().copied().unwrap_or(false));
+            }
+            let mut k = keep.iter();
+            f.steps.retain(|_| k.next().copied().unwrap_or(false));
+            !f.steps.is_empty() || still_there(file)
+        });
+        self.quarantined.retain(|_, q| q.at >= before);
+        old.len()
+    }
+}
+
 /// Replay a journal into `state`. Returns the length of its whole lines (a
 /// crash mid-write leaves a last line without its newline: the torn tail) and
 /// the number of whole lines passed over because they do not parse (damage,
 /// or a record of a newer version): those are skipped, not a reason to drop
 /// the records after them.
-fn replay(file: &File, state: &mut State) -> std::io::Result<(u64, usize)> {
+fn replay(file: &File, state: &mut State) -> std::io::Result<(u64, usize, usize)> {
     let mut good_len = 0u64;
     let mut skipped = 0;
+    let mut lines = 0;
     let mut reader = BufReader::new(file);
     let mut line = Vec::new();
     loop {
@@ -801,12 +844,13 @@ fn replay(file: &File, state: &mut State) -> std::io::Result<(u64, usize)> {
             break;
         }
         good_len += n as u64;
+        lines += 1;
         match serde_json::from_slice::<Record>(line.trim_ascii_end()) {
             Ok(r) => state.apply(&r),
             Err(_) => skipped += 1,
         }
     }
-    Ok((good_len, skipped))
+    Ok((good_len, skipped, lines))
 }
 
 /// The journal's file name in the state directory.
@@ -901,6 +945,8 @@ struct Open {
     /// The length of its whole records: a write that fails part of the way
     /// is cut back to it, so that no torn line sits before the next record.
     len: u64,
+    /// Its whole lines (what a restart replays).
+    lines: usize,
     /// The lock file and its identity, when held.
     lock: Option<(File, (u64, u64))>,
 }
@@ -1028,6 +1074,7 @@ impl Journal {
             return Err(io(e));
         }
         o.len = len + line.len() as u64;
+        o.lines += 1;
         Ok(())
     }
 
@@ -1063,7 +1110,7 @@ impl Ledger {
             .open(&path)
             .map_err(io)?;
         let mut state = State::default();
-        let (good_len, skipped) = replay(&file, &mut state).map_err(io)?;
+        let (good_len, skipped, lines) = replay(&file, &mut state).map_err(io)?;
         if skipped > 0 {
             tracing::warn!(ledger = %path.display(), lines = skipped, "ledger lines that do not parse were passed over");
         }
@@ -1081,6 +1128,7 @@ impl Ledger {
                     file,
                     id,
                     len: good_len,
+                    lines,
                     lock: None,
                 }),
                 trouble: std::sync::atomic::AtomicBool::new(false),
@@ -1088,6 +1136,63 @@ impl Ledger {
             state,
             pending: Vec::new(),
         })
+    }
+
+    /// Lines in the journal now (what a restart replays).
+    pub fn lines(&self) -> usize {
+        self.journal
+            .open
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .lines
+    }
+
+    /// Rewrite the journal as the records of its state: written beside it,
+    /// fsynced, renamed over it, and the directory fsynced, so that a crash
+    /// at any moment leaves either the old journal or the new one whole.
+    /// Records kept while the directory could not be written go first; the
+    /// journal must still be this service's. Returns the lines before and
+    /// after.
+    pub fn compact(&mut self) -> Result<(usize, usize), LedgerError> {
+        self.flush()?;
+        let path = self.journal.path.clone();
+        let io = |source| LedgerError::Io {
+            path: path.clone(),
+            source,
+        };
+        let mut open = self
+            .journal
+            .open
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        self.journal.held(&open)?;
+        let records = self.state.snapshot();
+        let mut text = Vec::new();
+        for r in &records {
+            serde_json::to_writer(&mut text, r).map_err(|e| io(std::io::Error::other(e)))?;
+            text.push(b'\n');
+        }
+        let tmp = path.with_extension("jsonl.compacting");
+        {
+            let mut f = File::create(&tmp).map_err(io)?;
+            f.write_all(&text).map_err(io)?;
+            f.sync_all().map_err(io)?;
+        }
+        std::fs::rename(&tmp, &path).map_err(io)?;
+        File::open(&self.journal.state_dir)
+            .and_then(|d| d.sync_all())
+            .map_err(io)?;
+        let file = OpenOptions::new()
+            .read(true)
+            .append(true)
+            .open(&path)
+            .map_err(io)?;
+        open.id = identity(&file.metadata().map_err(io)?);
+        open.file = file;
+        open.len = text.len() as u64;
+        let before = open.lines;
+        open.lines = records.len();
+        Ok((before, open.lines))
     }
 
     /// Keep `lock` (taken with [`take_lock`]) with the journal: every record
@@ -1219,6 +1324,7 @@ impl Ledger {
             file,
             id,
             len: text.len() as u64,
+            lines: text.lines().count(),
             lock: Some(lock),
         };
         drop(open);
@@ -1553,6 +1659,217 @@ mod tests {
         .unwrap();
         let l = Ledger::open(&d).unwrap();
         assert_eq!(l.state.quarantined["bad"].reason, "garbage");
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    /// A journal with every kind of record, over `n` steps.
+    fn busy_ledger(d: &Path, n: i64) -> Ledger {
+        let mut l = Ledger::open(d).unwrap();
+        l.append(Record::Started {
+            version: "v".into(),
+            pid: 1,
+            at: 1,
+        })
+        .unwrap();
+        for k in 0..n {
+            let mut t = tag(6 * k);
+            t.grid = ["abc", "def"][(k % 2) as usize].into();
+            l.append(Record::Seen {
+                feed: "m".into(),
+                file: format!("/in/f{k}.grib2"),
+                size: 10,
+                mtime_ns: k,
+                checksum: "c".into(),
+                steps: vec![t.clone()],
+                digests: vec![format!("d{k}")],
+                at: 100 + k,
+            })
+            .unwrap();
+            match k % 5 {
+                0 => l
+                    .append(Record::Published {
+                        step: t,
+                        path: format!("/out/{k}.nc"),
+                        manifest: format!("/out/{k}.json"),
+                        partial: k % 2 == 0,
+                        at: 200 + k,
+                    })
+                    .unwrap(),
+                1 => l
+                    .append(Record::Failed {
+                        step: t,
+                        kind: FailKind::Input,
+                        reason: "bad".into(),
+                        at: 200 + k,
+                    })
+                    .unwrap(),
+                2 => l
+                    .append(Record::Submitted {
+                        step: t,
+                        job: format!("{k}"),
+                        staging: "/s".into(),
+                        attempt: 2,
+                        at: 150 + k,
+                    })
+                    .unwrap(),
+                3 => l
+                    .append(Record::Failed {
+                        step: t,
+                        kind: FailKind::Output,
+                        reason: "disk full".into(),
+                        at: 200 + k,
+                    })
+                    .unwrap(),
+                _ => {}
+            }
+        }
+        l.append(Record::Quarantined {
+            feed: "m".into(),
+            file: "/in/bad".into(),
+            reason: "garbage".into(),
+            moved_to: Some("/q/bad".into()),
+            at: 120,
+        })
+        .unwrap();
+        l.append(Record::Reprocess {
+            feed: "m".into(),
+            cycle: "20260314T0000Z".into(),
+            lead: Some(0),
+            at: 300,
+        })
+        .unwrap();
+        l.append(Record::Stopped {
+            reason: "signal".into(),
+            at: 400,
+        })
+        .unwrap();
+        l
+    }
+
+    #[test]
+    fn a_compacted_journal_replays_to_the_same_state() {
+        let d = dir("compact");
+        let mut l = busy_ledger(&d, 40);
+        let before = l.state.clone();
+        let lines = l.lines();
+        assert!(lines > 70, "{lines}");
+        let (was, now) = l.compact().unwrap();
+        assert_eq!((was, now), (lines, l.state.snapshot().len()));
+        assert_eq!(l.state, before);
+        drop(l);
+        let l = Ledger::open(&d).unwrap();
+        assert_eq!(l.state, before, "replayed from the compacted journal");
+        assert_eq!(l.lines(), now);
+        // Appending goes on after a compaction.
+        let mut l = l;
+        l.append(Record::Stopped {
+            reason: "again".into(),
+            at: 500,
+        })
+        .unwrap();
+        assert_eq!(
+            Ledger::open(&d).unwrap().state.stopped,
+            Some(("again".into(), 500))
+        );
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn forgetting_keeps_what_is_open_and_files_still_there() {
+        let d = dir("forget");
+        let mut l = Ledger::open(&d).unwrap();
+        // Steps k settled at 150 (k odd) or 250 (k even): published (k % 4 == 1
+        // or 0), failed for output, so retried (k % 4 == 2), or waiting (k % 4 == 3).
+        let step = |k: i64| tag(6 * k);
+        let settled_at = |k: i64| if k % 2 == 1 { 150 } else { 250 };
+        for k in 0..16 {
+            l.append(Record::Seen {
+                feed: "m".into(),
+                file: format!("/in/f{k}.grib2"),
+                size: 1,
+                mtime_ns: 1,
+                checksum: "c".into(),
+                steps: vec![step(k)],
+                digests: vec![format!("d{k}")],
+                at: 100,
+            })
+            .unwrap();
+            match k % 4 {
+                0 | 1 => l
+                    .append(Record::Published {
+                        step: step(k),
+                        path: "p".into(),
+                        manifest: "m".into(),
+                        partial: false,
+                        at: settled_at(k),
+                    })
+                    .unwrap(),
+                2 => l
+                    .append(Record::Failed {
+                        step: step(k),
+                        kind: FailKind::Output,
+                        reason: "disk full".into(),
+                        at: settled_at(k),
+                    })
+                    .unwrap(),
+                _ => {}
+            }
+        }
+        // A file with fields of a step forgotten (1) and one waiting (3).
+        l.append(Record::Seen {
+            feed: "m".into(),
+            file: "/in/two.grib2".into(),
+            size: 1,
+            mtime_ns: 1,
+            checksum: "c".into(),
+            steps: vec![step(1), step(3)],
+            digests: vec!["x1".into(), "x3".into()],
+            at: 100,
+        })
+        .unwrap();
+        for (file, at) in [("/in/bad-old", 100), ("/in/bad-new", 300)] {
+            l.append(Record::Quarantined {
+                feed: "m".into(),
+                file: file.into(),
+                reason: "garbage".into(),
+                moved_to: None,
+                at,
+            })
+            .unwrap();
+        }
+        let grids = l.state.grids.clone();
+        let n = l.state.forget(200, |f| f == "/in/f5.grib2");
+        // Only the steps published before 200: 1, 5, 9, 13.
+        assert_eq!(n, 4);
+        for k in 0..16 {
+            let gone = k % 2 == 1 && k % 4 == 1;
+            assert_eq!(l.state.steps.contains_key(&step(k)), !gone, "step {k}");
+        }
+        // A forgotten step's file goes unless it is still there: then it stays, with no steps.
+        assert!(!l.state.seen.contains_key("/in/f9.grib2"));
+        assert_eq!(l.state.seen["/in/f5.grib2"].steps, vec![]);
+        assert_eq!(l.state.seen["/in/f5.grib2"].digests, Vec::<String>::new());
+        let two = &l.state.seen["/in/two.grib2"];
+        assert_eq!(
+            (two.steps.clone(), two.digests.clone()),
+            (vec![step(3)], vec!["x3".to_string()]),
+            "each step's digest goes with it"
+        );
+        assert!(
+            l.state.seen.contains_key("/in/f3.grib2"),
+            "a waiting step's file"
+        );
+        assert!(
+            l.state.seen.contains_key("/in/f4.grib2"),
+            "a file of a step published later"
+        );
+        let q: Vec<&String> = l.state.quarantined.keys().collect();
+        assert_eq!(q, vec!["/in/bad-new"]);
+        assert_eq!(l.state.grids, grids, "grid numbering is never forgotten");
+        let after = l.state.clone();
+        l.compact().unwrap();
+        drop(l);
+        assert_eq!(Ledger::open(&d).unwrap().state, after);
         let _ = std::fs::remove_dir_all(&d);
     }
 

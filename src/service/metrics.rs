@@ -11,6 +11,7 @@
 use std::collections::BTreeMap;
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
@@ -114,6 +115,8 @@ pub struct Metrics {
     pub state_problem: Option<String>,
     /// Unix time of start.
     pub started: f64,
+    /// Steps waiting for input: what each lacks and when it is made anyway.
+    pub waiting: Vec<crate::service::waiting::WaitingStep>,
 }
 
 fn esc(s: &str) -> String {
@@ -360,32 +363,77 @@ impl Metrics {
 /// How long the main loop may be silent before /health says 503.
 pub const STALL: Duration = Duration::from_secs(30);
 
-fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
-    let _ = s.set_read_timeout(Some(Duration::from_secs(2)));
-    let _ = s.set_write_timeout(Some(Duration::from_secs(2)));
-    let mut buf = [0u8; 2048];
+/// Connections served at once. Further ones are closed at once, so that the
+/// threads and sockets held never grow past this, whatever clients do.
+pub const MAX_CONNECTIONS: usize = 64;
+
+/// A client has this long from connecting to the end of its request line and
+/// headers, however slowly it sends them.
+pub const REQUEST_DEADLINE: Duration = Duration::from_secs(2);
+
+/// ... and this long to take the whole answer, however slowly it reads.
+pub const ANSWER_DEADLINE: Duration = Duration::from_secs(5);
+
+/// Largest request read (a request line and a few headers).
+const MAX_REQUEST: usize = 8192;
+
+/// Read the request's head within `deadline`; what was read (possibly partial).
+fn read_request(s: &mut TcpStream, deadline: Instant) -> Vec<u8> {
+    let mut buf = vec![0u8; MAX_REQUEST];
     let mut n = 0;
     while n < buf.len() {
+        let Some(left) = deadline.checked_duration_since(Instant::now()) else {
+            break;
+        };
+        if left.is_zero() || s.set_read_timeout(Some(left)).is_err() {
+            break;
+        }
         match s.read(&mut buf[n..]) {
             Ok(0) => break,
             Ok(k) => {
                 n += k;
-                if buf[..n].windows(4).any(|w| w == b"\r\n\r\n")
-                    || buf[..n].windows(2).any(|w| w == b"\n\n")
+                let head = &buf[..n];
+                if head.windows(4).any(|w| w == b"\r\n\r\n")
+                    || head.windows(2).any(|w| w == b"\n\n")
                 {
                     break;
                 }
             }
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
             Err(_) => break,
         }
     }
-    let req = String::from_utf8_lossy(&buf[..n]);
+    buf.truncate(n);
+    buf
+}
+
+/// Write all of `bytes` by `deadline`, or give up (a client too slow to read).
+fn write_by(s: &mut TcpStream, mut bytes: &[u8], deadline: Instant) -> std::io::Result<()> {
+    while !bytes.is_empty() {
+        let left = deadline
+            .checked_duration_since(Instant::now())
+            .filter(|d| !d.is_zero())
+            .ok_or_else(|| std::io::Error::from(std::io::ErrorKind::TimedOut))?;
+        s.set_write_timeout(Some(left))?;
+        match s.write(bytes) {
+            Ok(0) => return Err(std::io::ErrorKind::WriteZero.into()),
+            Ok(k) => bytes = &bytes[k..],
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(())
+}
+
+/// The answer to a request: status, content type, body.
+fn answer(req: &[u8], metrics: &Mutex<Metrics>) -> (&'static str, &'static str, String) {
+    let req = String::from_utf8_lossy(req);
     let mut words = req.split_whitespace();
     let (method, target) = (words.next().unwrap_or(""), words.next().unwrap_or(""));
     let m = metrics
         .lock()
         .unwrap_or_else(std::sync::PoisonError::into_inner);
-    let (code, ctype, body) = match (method, target) {
+    match (method, target) {
         ("GET", "/metrics") => (
             "200 OK",
             "text/plain; version=0.0.4; charset=utf-8",
@@ -400,28 +448,8 @@ fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
                     format!("state directory unusable: {why}; no new work is taken\n"),
                 )
             } else if alive {
-                let c = &m.scheduler;
-                let body = if c.used && !c.reachable {
-                    format!(
-                        "ok\nscheduler: unusable for {:.0} s ({}); new steps {}\n",
-                        c.down_since.map_or(0.0, |t| {
-                            chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - t
-                        }),
-                        c.problem,
-                        if c.fallback {
-                            "run on this machine"
-                        } else {
-                            "wait"
-                        }
-                    )
-                } else if c.used {
-                    format!(
-                        "ok\nscheduler: reachable; {} job(s) in flight\n",
-                        c.in_flight
-                    )
-                } else {
-                    "ok\n".to_string()
-                };
+                let mut body = health_body(&m);
+                body.push_str(&waiting_lines(&m.waiting));
                 ("200 OK", "text/plain; charset=utf-8", body)
             } else {
                 (
@@ -441,17 +469,88 @@ fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
             "text/plain; charset=utf-8",
             "GET only\n".into(),
         ),
-    };
-    drop(m);
+    }
+}
+
+/// How many waiting steps /health names; the rest are counted.
+const WAITING_SHOWN: usize = 20;
+
+fn waiting_lines(w: &[crate::service::waiting::WaitingStep]) -> String {
+    let now = chrono::Utc::now().timestamp();
+    let mut o = String::new();
+    for s in w.iter().take(WAITING_SHOWN) {
+        o.push_str(&format!("waiting: {}\n", s.line(now)));
+    }
+    if w.len() > WAITING_SHOWN {
+        o.push_str(&format!(
+            "waiting: and {} more step(s) (leeward status shows them all)\n",
+            w.len() - WAITING_SHOWN
+        ));
+    }
+    o
+}
+
+fn health_body(m: &Metrics) -> String {
+    let c = &m.scheduler;
+    if c.used && !c.reachable {
+        format!(
+            "ok\nscheduler: unusable for {:.0} s ({}); new steps {}\n",
+            c.down_since.map_or(0.0, |t| {
+                chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - t
+            }),
+            c.problem,
+            if c.fallback {
+                "run on this machine"
+            } else {
+                "wait"
+            }
+        )
+    } else if c.used {
+        format!(
+            "ok\nscheduler: reachable; {} job(s) in flight\n",
+            c.in_flight
+        )
+    } else {
+        "ok\n".to_string()
+    }
+}
+
+/// One connection, start to end, within the deadlines.
+fn respond(mut s: TcpStream, metrics: &Mutex<Metrics>) {
+    let t0 = Instant::now();
+    let req = read_request(&mut s, t0 + REQUEST_DEADLINE);
+    if req.is_empty() {
+        return; // connected and said nothing in time: closed
+    }
+    let (code, ctype, body) = answer(&req, metrics);
     let head = format!(
         "HTTP/1.1 {code}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n",
         body.len()
     );
-    let _ = s.write_all(head.as_bytes());
-    let _ = s.write_all(body.as_bytes());
+    let deadline = Instant::now() + ANSWER_DEADLINE;
+    let _ = write_by(&mut s, head.as_bytes(), deadline)
+        .and_then(|()| write_by(&mut s, body.as_bytes(), deadline));
 }
 
-/// Serve `/metrics` and `/health` on `addr` in a thread of its own. Returns the bound address.
+/// Counts a connection in hand for as long as it lives.
+struct Slot(Arc<AtomicUsize>);
+
+impl Drop for Slot {
+    fn drop(&mut self) {
+        self.0.fetch_sub(1, Ordering::AcqRel);
+    }
+}
+
+/// Serve `/metrics` and `/health` on `addr`. Returns the bound address.
+///
+/// One thread accepts; each connection is answered on a thread of its own,
+/// so an idle or slow client holds up only itself: it has
+/// [`REQUEST_DEADLINE`] to send its request and [`ANSWER_DEADLINE`] to read
+/// the answer, and at most [`MAX_CONNECTIONS`] are served at once (beyond
+/// that a connection is closed at once, so that whoever floods the port
+/// cannot make the service hold more). The protocol is the small part of
+/// HTTP/1.1 these two answers need (a GET, `Connection: close`); a general
+/// HTTP server would bring more than it serves here.
 pub fn serve(addr: &str, metrics: Arc<Mutex<Metrics>>) -> std::io::Result<SocketAddr> {
     let listener = TcpListener::bind(addr)?;
     let bound = listener.local_addr()?;
@@ -459,20 +558,140 @@ pub fn serve(addr: &str, metrics: Arc<Mutex<Metrics>>) -> std::io::Result<Socket
         warn!(address = %bound, "metrics endpoint listens beyond localhost");
     }
     info!(address = %bound, "metrics and health endpoint listening");
-    std::thread::spawn(move || {
-        for s in listener.incoming() {
-            match s {
-                Ok(s) => respond(s, &metrics),
-                Err(e) => warn!(error = %e, "metrics endpoint: connection refused"),
+    let in_hand = Arc::new(AtomicUsize::new(0));
+    std::thread::Builder::new()
+        .name("leeward-http".into())
+        .spawn(move || {
+            let mut refused_said = false;
+            for s in listener.incoming() {
+                let s = match s {
+                    Ok(s) => s,
+                    Err(e) => {
+                        warn!(error = %e, "metrics endpoint: a connection could not be accepted");
+                        // Out of descriptors, say: do not spin.
+                        std::thread::sleep(Duration::from_millis(10));
+                        continue;
+                    }
+                };
+                if in_hand.fetch_add(1, Ordering::AcqRel) >= MAX_CONNECTIONS {
+                    in_hand.fetch_sub(1, Ordering::AcqRel);
+                    if !refused_said {
+                        warn!(limit = MAX_CONNECTIONS, "metrics endpoint: too many connections at once; further ones closed until some end");
+                        refused_said = true;
+                    }
+                    drop(s);
+                    continue;
+                }
+                refused_said = false;
+                let slot = Slot(in_hand.clone());
+                let m = metrics.clone();
+                let spawned = std::thread::Builder::new()
+                    .name("leeward-http-conn".into())
+                    .spawn(move || {
+                        let _slot = slot;
+                        respond(s, &m);
+                    });
+                if let Err(e) = spawned {
+                    warn!(error = %e, "metrics endpoint: no thread for a connection");
+                }
             }
-        }
-    });
+        })?;
     Ok(bound)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn get(addr: SocketAddr, path: &str) -> std::io::Result<String> {
+        let mut c = TcpStream::connect(addr)?;
+        c.set_read_timeout(Some(Duration::from_secs(10)))?;
+        c.write_all(format!("GET {path} HTTP/1.1\r\nHost: x\r\n\r\n").as_bytes())?;
+        let mut out = String::new();
+        c.read_to_string(&mut out)?;
+        Ok(out)
+    }
+
+    #[test]
+    fn a_reader_that_never_reads_holds_up_only_itself() {
+        let mut metrics = Metrics {
+            heartbeat: Some(Instant::now()),
+            ..Metrics::default()
+        };
+        for k in 0..3000 {
+            metrics
+                .feed(&format!("feed{k:05}"))
+                .published(false, 12.0, 1.0);
+        }
+        let body_len = metrics.render().len();
+        assert!(
+            body_len > 4 << 20,
+            "{body_len}: more than the socket buffers hold"
+        );
+        let addr = serve("127.0.0.1:0", Arc::new(Mutex::new(metrics))).unwrap();
+        let mut stuck = TcpStream::connect(addr).unwrap();
+        stuck.write_all(b"GET /metrics HTTP/1.1\r\n\r\n").unwrap();
+        std::thread::sleep(Duration::from_millis(300));
+        let t = Instant::now();
+        let r = get(addr, "/health").unwrap();
+        assert!(r.ends_with("ok\n"), "{r}");
+        assert!(
+            t.elapsed() < Duration::from_secs(1),
+            "health waited for the stuck reader"
+        );
+        // The stuck reader is given up at its deadline: what it can read then ends short.
+        std::thread::sleep(ANSWER_DEADLINE + Duration::from_millis(500));
+        stuck
+            .set_read_timeout(Some(Duration::from_secs(10)))
+            .unwrap();
+        let mut got = Vec::new();
+        let _ = stuck.read_to_end(&mut got);
+        assert!(got.len() < body_len, "{} of {body_len}", got.len());
+    }
+
+    #[test]
+    fn connections_are_bounded_and_idle_ones_closed_at_their_deadline() {
+        let m = Arc::new(Mutex::new(Metrics {
+            heartbeat: Some(Instant::now()),
+            ..Metrics::default()
+        }));
+        let addr = serve("127.0.0.1:0", m.clone()).unwrap();
+        let idle: Vec<TcpStream> = (0..MAX_CONNECTIONS)
+            .map(|_| TcpStream::connect(addr).unwrap())
+            .collect();
+        // One more than the limit: closed at once, nothing held for it.
+        let mut extra = TcpStream::connect(addr).unwrap();
+        extra
+            .set_read_timeout(Some(Duration::from_secs(10)))
+            .unwrap();
+        let t = Instant::now();
+        let mut b = [0u8; 16];
+        assert!(matches!(extra.read(&mut b), Ok(0) | Err(_)));
+        assert!(t.elapsed() < REQUEST_DEADLINE, "not closed at once");
+        // The idle ones are closed at their deadline; then /health answers again.
+        let mut first = idle.into_iter().next().unwrap();
+        first.set_read_timeout(Some(REQUEST_DEADLINE * 5)).unwrap();
+        assert!(matches!(first.read(&mut b), Ok(0) | Err(_)));
+        let t = Instant::now();
+        let mut answered = None;
+        while t.elapsed() < Duration::from_secs(20) {
+            if let Ok(r) = get(addr, "/health") {
+                if !r.is_empty() {
+                    answered = Some(r);
+                    break;
+                }
+            }
+            std::thread::sleep(Duration::from_millis(20));
+        }
+        let r = answered.expect("health answers once the idle clients are gone");
+        assert!(
+            r.starts_with("HTTP/1.1 200 OK\r\n") && r.ends_with("\r\n\r\nok\n"),
+            "{r}"
+        );
+        m.lock().unwrap().heartbeat = Some(Instant::now() - STALL - Duration::from_secs(1));
+        assert!(get(addr, "/health").unwrap().starts_with("HTTP/1.1 503"));
+        assert!(get(addr, "/nothing").unwrap().starts_with("HTTP/1.1 404"));
+    }
 
     #[test]
     fn exposition_has_the_families_and_a_cumulative_histogram() {

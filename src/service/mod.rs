@@ -14,6 +14,7 @@
 //! - [`metrics`]: the health and metrics endpoint.
 //! - [`systemd`]: readiness, watchdog and status notifications.
 //! - [`status`]: `leeward status`, from the ledger.
+//! - [`waiting`]: what each waiting step lacks and when it is made anyway.
 
 pub mod assemble;
 pub mod batch;
@@ -25,4 +26,5 @@ pub mod publish;
 pub mod settings;
 pub mod status;
 pub mod systemd;
+pub mod waiting;
 pub mod watch;

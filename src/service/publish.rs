@@ -185,7 +185,7 @@ impl<'a> StepFacts<'a> {
             inputs: files
                 .iter()
                 .map(|c| ManifestInput {
-                    file: c.path.display().to_string(),
+                    file: crate::escape::path(&c.path),
                     bytes: c.size,
                     checksum: c.checksum.clone(),
                 })
@@ -431,26 +431,36 @@ pub fn apply_retention(feed_dir: &Path, days: u32, now: NaiveDateTime) -> Vec<Pa
 pub fn quarantine(path: &Path, qdir: &Path, feed: &str, reason: &str) -> std::io::Result<PathBuf> {
     let dir = qdir.join(feed);
     std::fs::create_dir_all(&dir)?;
+    // The name's own bytes: a name that is not UTF-8 keeps them.
     let name = path
         .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
+        .map(std::ffi::OsStr::to_os_string)
         .unwrap_or_else(|| "unnamed".into());
     let mut dest = dir.join(&name);
     let mut k = 1;
-    while dest.exists() {
-        dest = dir.join(format!("{name}.{k}"));
+    while dest.symlink_metadata().is_ok() {
+        let mut n = name.clone();
+        n.push(format!(".{k}"));
+        dest = dir.join(n);
         k += 1;
     }
     if std::fs::rename(path, &dest).is_err() {
-        // Another file system: copy, then remove the original.
-        std::fs::copy(path, &dest)?;
+        // Another file system: copy, then remove the original. A symbolic
+        // link is made again as a link: its target is never read.
+        let is_link = std::fs::symlink_metadata(path)?.file_type().is_symlink();
+        if is_link {
+            std::os::unix::fs::symlink(std::fs::read_link(path)?, &dest)?;
+        } else {
+            std::fs::copy(path, &dest)?;
+        }
         std::fs::remove_file(path)?;
     }
     let note = format!(
-        "{}\nfrom: {}\nfeed: {feed}\nat: {}\nreason: {reason}\n",
-        dest.display(),
-        path.display(),
-        now_iso()
+        "{}\nfrom: {}\nfeed: {feed}\nat: {}\nreason: {}\n",
+        crate::escape::path(&dest),
+        crate::escape::path(path),
+        now_iso(),
+        crate::escape::text(reason)
     );
     let mut note_path = dest.clone().into_os_string();
     note_path.push(".reason.txt");

@@ -48,6 +48,11 @@ pub struct Service {
     pub step_timeout_s: f64,
     /// Delete output cycles older than this many days; 0 keeps everything.
     pub retention_days: u32,
+    /// Days the ledger remembers settled steps and files gone from the
+    /// incoming directories (then forgotten, and the journal compacted); 0:
+    /// `retention_days`, or 14 when that is 0. Never less than
+    /// `catch_up_hours` and a day.
+    pub ledger_days: u32,
     /// Address of the health and metrics endpoint; empty: none.
     pub metrics_listen: String,
     /// Seconds to finish the steps in hand after SIGTERM before abandoning them.
@@ -154,6 +159,7 @@ impl Default for Service {
             settle_s: 10.0,
             step_timeout_s: 2700.0,
             retention_days: 0,
+            ledger_days: 0,
             metrics_listen: "127.0.0.1:7478".into(),
             shutdown_grace_s: 60.0,
             retry_first_s: 5.0,
@@ -165,6 +171,16 @@ impl Default for Service {
 }
 
 impl Service {
+    /// Days the ledger remembers, in effect (see [`Service::ledger_days`]).
+    pub fn ledger_days_in_effect(&self) -> u32 {
+        let asked = match (self.ledger_days, self.retention_days) {
+            (0, 0) => 14,
+            (0, r) => r,
+            (d, _) => d,
+        };
+        asked.max(self.catch_up_hours.div_ceil(24) + 1)
+    }
+
     /// The quarantine directory in effect.
     pub fn quarantine_dir(&self) -> PathBuf {
         if self.quarantine_dir.as_os_str().is_empty() {
@@ -242,6 +258,28 @@ pub struct Feed {
     pub products: Option<Products>,
     /// Where its steps run: `local` (the service's workers) or `slurm`.
     pub executor: Executor,
+    /// Which symbolic links in the incoming directory are read: `inside`
+    /// (those whose target lies under the incoming directory or under one of
+    /// `link_roots`), `anywhere`, or `never`. A refused link is quarantined
+    /// by its name; its target is never opened.
+    pub follow_links: FollowLinks,
+    /// Absolute directories (beside the incoming directory) that links may
+    /// point into with `follow_links = "inside"`, such as a model's own output
+    /// file system.
+    pub link_roots: Vec<PathBuf>,
+}
+
+/// Which symbolic links of an incoming directory are followed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum FollowLinks {
+    /// Links whose target (every link in its path resolved) is under the
+    /// incoming directory or one of the feed's `link_roots`.
+    Inside,
+    /// Every link, wherever it points.
+    Anywhere,
+    /// No link: only regular files are read.
+    Never,
 }
 
 impl Default for Feed {
@@ -258,6 +296,8 @@ impl Default for Feed {
             marker_pattern: String::new(),
             products: None,
             executor: Executor::Local,
+            follow_links: FollowLinks::Inside,
+            link_roots: Vec::new(),
         }
     }
 }
@@ -367,6 +407,20 @@ impl FeedRule {
         }
     }
 
+    /// May a link in the incoming directory whose target resolves to
+    /// `target` (no link left in it) be read? Directories are compared as
+    /// they resolve now, links and all.
+    pub fn link_allowed(&self, target: &std::path::Path) -> bool {
+        match self.feed.follow_links {
+            FollowLinks::Anywhere => true,
+            FollowLinks::Never => false,
+            FollowLinks::Inside => std::iter::once(&self.dir)
+                .chain(&self.feed.link_roots)
+                .filter_map(|d| std::fs::canonicalize(d).ok())
+                .any(|d| target.starts_with(d)),
+        }
+    }
+
     /// The isobaric levels a complete step has, Pa.
     pub fn levels_pa(&self) -> Vec<f64> {
         self.feed.levels_hpa.iter().map(|p| p * 100.0).collect()
@@ -466,6 +520,12 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
         p.push(format!(
             "service.slurm.program: {} must be an absolute path (the nodes run it)",
             b.program.display()
+        ));
+    }
+    if s.ledger_days > 36_500 {
+        p.push(format!(
+            "service.ledger_days: {} is more than 36500 (100 years)",
+            s.ledger_days
         ));
     }
     if s.retry_max_s < s.retry_first_s {
@@ -571,6 +631,26 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
         if bad_format {
             p.push(format!("{}: not a usable time format", key("cycle_format")));
         }
+        for r in &f.link_roots {
+            if !r.is_absolute() {
+                p.push(format!(
+                    "{}: {} must be an absolute directory",
+                    key("link_roots"),
+                    crate::escape::path(r)
+                ));
+            } else if r.parent().is_none() {
+                p.push(format!(
+                    "{}: \"/\" would let links point anywhere; say follow_links = \"anywhere\" instead",
+                    key("link_roots")
+                ));
+            }
+        }
+        if !f.link_roots.is_empty() && f.follow_links != FollowLinks::Inside {
+            p.push(format!(
+                "{}: only used with follow_links = \"inside\"",
+                key("link_roots")
+            ));
+        }
     }
     p
 }
@@ -647,6 +727,12 @@ mod tests {
                 "name = \"c\"\ncomplete = \"marker\"\nmarker_pattern = 'done'\nrequire = [\"Temperature\", \"0/2/2\", \"gh\"]\n",
             )
             .unwrap(),
+            toml::from_str("name = \"d\"\nlevels_hpa = [500.0]\nlink_roots = [\"data/model\"]\n")
+                .unwrap(),
+            toml::from_str(
+                "name = \"e\"\nlevels_hpa = [500.0]\nfollow_links = \"never\"\nlink_roots = [\"/data\"]\n",
+            )
+            .unwrap(),
         ];
         let p = problems(
             &Service {
@@ -662,6 +748,8 @@ mod tests {
             "feed[0].levels_hpa",
             "feed[1].marker_pattern",
             "feed[1].require[2]",
+            "feed[2].link_roots: data/model must be an absolute directory",
+            "feed[3].link_roots: only used with follow_links = \"inside\"",
         ] {
             assert!(p.iter().any(|x| x.starts_with(key)), "{key}: {p:?}");
         }
@@ -674,5 +762,38 @@ mod tests {
             .find(|x| x.starts_with("feed[1].require[2]"))
             .unwrap();
         assert!(gh.contains("\"Geopotential height\" or 0/3/5"), "{gh}");
+        assert!(toml::from_str::<Feed>("name = \"f\"\nfollow_links = \"outside\"\n").is_err());
+    }
+
+    #[test]
+    fn links_are_followed_inside_the_incoming_directory_and_the_roots_only() {
+        let base = std::env::temp_dir().join(format!("leeward-links-{}", std::process::id()));
+        let (inc, root, other) = (base.join("in"), base.join("model"), base.join("elsewhere"));
+        for d in [&inc, &root, &other] {
+            std::fs::create_dir_all(d).unwrap();
+        }
+        let svc = Service {
+            watch_dir: base.clone(),
+            ..Service::default()
+        };
+        let feed = |extra: &str| -> FeedRule {
+            let f: Feed =
+                toml::from_str(&format!("name = \"m\"\nincoming = \"in\"\n{extra}")).unwrap();
+            FeedRule::new(&f, &svc, &Products::default()).unwrap()
+        };
+        let canon = |p: &std::path::Path| std::fs::canonicalize(p).unwrap();
+        let inside = feed(&format!("link_roots = [\"{}\"]\n", root.display()));
+        assert!(inside.link_allowed(&canon(&inc).join("sub/x.grib2")));
+        assert!(inside.link_allowed(&canon(&root).join("x.grib2")));
+        assert!(!inside.link_allowed(&canon(&other).join("x.grib2")));
+        assert!(!inside.link_allowed(std::path::Path::new("/etc/passwd")));
+        // A sibling whose name starts like the directory is not under it.
+        assert!(!inside.link_allowed(&canon(&base).join("in-other/x.grib2")));
+        assert!(!feed("").link_allowed(&canon(&root).join("x.grib2")));
+        assert!(
+            feed("follow_links = \"anywhere\"\n").link_allowed(std::path::Path::new("/etc/passwd"))
+        );
+        assert!(!feed("follow_links = \"never\"\n").link_allowed(&canon(&inc).join("x.grib2")));
+        let _ = std::fs::remove_dir_all(&base);
     }
 }

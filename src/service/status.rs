@@ -12,6 +12,7 @@ use serde::Serialize;
 
 use super::daemon::lock_path;
 use super::ledger::{read_state, FailKind, LedgerError, Outcome, State};
+use super::waiting::WaitingStep;
 
 /// One cycle of one feed.
 #[derive(Debug, Default, Clone, Serialize, PartialEq)]
@@ -28,6 +29,9 @@ pub struct CycleSummary {
     pub waiting: usize,
     /// Of the waiting steps, those with a batch job in flight: (lead, job id, attempt).
     pub on_scheduler: Vec<(i64, String, u32)>,
+    /// Of the waiting steps, those the service said it waits for input for:
+    /// what each lacks and when it is made anyway.
+    pub waiting_for: Vec<WaitingStep>,
     /// Steps that produced nothing, with lead and reason.
     pub failed: Vec<(i64, String, String)>,
     /// Leads published, ascending.
@@ -47,6 +51,8 @@ pub struct Report {
     pub cycles: Vec<CycleSummary>,
     /// Quarantined files: (file, reason, moved to, time), newest first.
     pub quarantined: Vec<(String, String, Option<String>, i64)>,
+    /// When the service last said what its steps wait for (Unix time).
+    pub waiting_as_of: Option<i64>,
     /// Published products of the cycles shown whose manifest does not
     /// describe them: (product, what differs).
     pub manifests_not_matching: Vec<(String, String)>,
@@ -160,13 +166,29 @@ pub fn report(state_dir: &Path, cycles: usize, verify: bool) -> Result<Report, L
         .collect();
     q.sort_by_key(|x| std::cmp::Reverse(x.3));
     q.truncate(20);
-    let shown = summarise(&state, cycles);
+    let mut shown = summarise(&state, cycles);
+    let waiting = super::waiting::read(state_dir);
+    if let Some(w) = &waiting {
+        for ws in &w.steps {
+            let still = state
+                .steps
+                .get(&ws.step)
+                .is_some_and(|s| matches!(s.outcome, Outcome::Waiting));
+            if let Some(c) = shown
+                .iter_mut()
+                .find(|c| still && c.feed == ws.step.feed && c.cycle == ws.step.cycle)
+            {
+                c.waiting_for.push(ws.clone());
+            }
+        }
+    }
     Ok(Report {
         running: service_running(state_dir),
         started: state.started.as_ref().map(|(v, _, at)| (v.clone(), *at)),
         manifests_not_matching: manifests_not_matching(&state, &shown, verify),
         cycles: shown,
         quarantined: q,
+        waiting_as_of: waiting.map(|w| w.written),
         publishing: state
             .publishing
             .iter()
@@ -234,6 +256,13 @@ pub fn render(state_dir: &Path, r: &Report) -> String {
         if !c.leads.is_empty() {
             o.push_str(&format!("      published {}\n", leads(&c.leads)));
         }
+        let now = chrono::Utc::now().timestamp();
+        for w in &c.waiting_for {
+            let line = w.line(now);
+            // The step is named by the cycle above: from its lead on.
+            let from_lead = line.split_once(' ').map_or(line.as_str(), |(_, rest)| rest);
+            o.push_str(&format!("      +{}h {from_lead}\n", w.step.lead));
+        }
         for (lead, job, attempt) in &c.on_scheduler {
             o.push_str(&format!(
                 "      +{lead}h on the scheduler: job {job}, attempt {attempt}\n"
@@ -243,10 +272,18 @@ pub fn render(state_dir: &Path, r: &Report) -> String {
             o.push_str(&format!("      +{lead}h failed ({kind}): {reason}\n"));
         }
     }
+    if let (Some(at), None) = (r.waiting_as_of, r.running) {
+        if r.cycles.iter().any(|c| !c.waiting_for.is_empty()) {
+            o.push_str(&format!(
+                "\n(what the steps wait for as the service last said it, at {})\n",
+                when(at)
+            ));
+        }
+    }
     if !r.manifests_not_matching.is_empty() {
         o.push_str("\nmanifests that do not match their files\n");
         for (_, why) in &r.manifests_not_matching {
-            o.push_str(&format!("  {why}\n"));
+            o.push_str(&format!("  {}\n", crate::escape::text(why)));
         }
     }
     if !r.publishing.is_empty() {
@@ -258,7 +295,12 @@ pub fn render(state_dir: &Path, r: &Report) -> String {
     if !r.quarantined.is_empty() {
         o.push_str("\nquarantined files (newest first)\n");
         for (f, reason, moved, at) in &r.quarantined {
-            o.push_str(&format!("  {} {f}: {reason}", when(*at)));
+            o.push_str(&format!(
+                "  {} {}: {}",
+                when(*at),
+                crate::escape::text(f),
+                crate::escape::text(reason)
+            ));
             if let Some(m) = moved {
                 o.push_str(&format!(" (now {m})"));
             }

@@ -7,6 +7,13 @@
 //! scan of the directory is the fallback for missed events and for network
 //! file systems, and the first scan catches up with files that arrived while
 //! the service was down. Hidden files and temporary names never count.
+//! Nothing is opened here: entries are looked at with `lstat` (and `stat`
+//! through a link). A symbolic link is handed over like a file, with its
+//! target's size and mtime, and the daemon applies the feed's link policy.
+//! Every entry that is never an input is said once in the log (again only
+//! if the reason changes), at a level that fits: a hidden or temporary name
+//! at debug, a directory at info, a dangling link, a FIFO, a socket or a
+//! device as a warning. Names need not be UTF-8.
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
@@ -17,7 +24,9 @@ use std::time::{Duration, Instant, SystemTime};
 use notify::event::{AccessKind, AccessMode, ModifyKind, RenameMode};
 use notify::{EventKind, RecursiveMode, Watcher as _};
 use thiserror::Error;
-use tracing::{debug, warn};
+use tracing::{debug, info, warn};
+
+use crate::ingest::source::kind_of;
 
 /// Why watching could not start.
 #[derive(Debug, Error)]
@@ -79,9 +88,62 @@ struct Candidate {
     closed: bool,
 }
 
-fn stat(p: &Path) -> Option<(u64, Option<SystemTime>)> {
-    let m = std::fs::metadata(p).ok()?;
-    m.is_file().then(|| (m.len(), m.modified().ok()))
+/// What an entry of the incoming directory is to the watcher.
+#[derive(Debug, Clone, PartialEq)]
+enum Look {
+    /// A regular file, or a link to something (the daemon applies the feed's
+    /// link policy): its size and mtime (a link's: its target's).
+    Candidate(u64, Option<SystemTime>),
+    /// Never an input: said once in the log, at this level, with why.
+    Skipped(tracing::Level, String),
+}
+
+/// Look at an entry without opening it; `None` when it is gone.
+fn look(p: &Path) -> Option<Look> {
+    let name = crate::escape::path(Path::new(p.file_name()?));
+    if ignored(&name) {
+        return Some(Look::Skipped(
+            tracing::Level::DEBUG,
+            "hidden or temporary name: never an input".into(),
+        ));
+    }
+    let m = std::fs::symlink_metadata(p).ok()?;
+    let t = m.file_type();
+    Some(if t.is_file() {
+        Look::Candidate(m.len(), m.modified().ok())
+    } else if t.is_symlink() {
+        match std::fs::metadata(p) {
+            Ok(target) => Look::Candidate(target.len(), target.modified().ok()),
+            Err(e) => Look::Skipped(
+                tracing::Level::WARN,
+                format!("symbolic link whose target cannot be reached (dangling: {e}); taken when it can"),
+            ),
+        }
+    } else if t.is_dir() {
+        Look::Skipped(
+            tracing::Level::INFO,
+            "a directory: not read (subdirectories are not watched)".into(),
+        )
+    } else {
+        Look::Skipped(
+            tracing::Level::WARN,
+            format!("{}, not a regular file: never read", kind_of(&t)),
+        )
+    })
+}
+
+/// Say once why an entry is skipped (again only if the reason changes).
+fn note_skip(said: &mut HashMap<PathBuf, String>, p: &Path, level: tracing::Level, why: String) {
+    if said.get(p) == Some(&why) {
+        return;
+    }
+    let file = crate::escape::shown(p);
+    match level {
+        tracing::Level::WARN => warn!(file = %file, reason = %why, "skipped"),
+        tracing::Level::INFO => info!(file = %file, reason = %why, "skipped"),
+        _ => debug!(file = %file, reason = %why, "skipped"),
+    }
+    said.insert(p.to_path_buf(), why);
 }
 
 /// Start watching `dir`.
@@ -108,13 +170,9 @@ pub fn watch(
         let _watcher = watcher; // lives as long as the thread
         let mut cands: HashMap<PathBuf, Candidate> = HashMap::new();
         let mut emitted: HashMap<PathBuf, (u64, Option<SystemTime>)> = HashMap::new();
+        let mut said: HashMap<PathBuf, String> = HashMap::new();
         let mut last_scan: Option<Instant> = None;
         let mut last_pass = Instant::now();
-        let consider = |p: &Path| {
-            p.file_name()
-                .and_then(|n| n.to_str())
-                .is_some_and(|n| !ignored(n))
-        };
         loop {
             if stop_rx.try_recv().is_ok() {
                 return;
@@ -128,8 +186,12 @@ pub fn watch(
                         for e in rd.flatten() {
                             let p = e.path();
                             present.insert(p.clone());
-                            if consider(&p) && !cands.contains_key(&p) {
-                                if let Some((size, mtime)) = stat(&p) {
+                            if cands.contains_key(&p) {
+                                continue;
+                            }
+                            match look(&p) {
+                                Some(Look::Candidate(size, mtime)) => {
+                                    said.remove(&p);
                                     if emitted.get(&p) != Some(&(size, mtime)) {
                                         cands.insert(
                                             p,
@@ -142,11 +204,16 @@ pub fn watch(
                                         );
                                     }
                                 }
+                                Some(Look::Skipped(level, why)) => {
+                                    note_skip(&mut said, &p, level, why)
+                                }
+                                None => {}
                             }
                         }
                         // Files gone from the directory are forgotten, so that
                         // months of deliveries do not accumulate here.
                         emitted.retain(|p, _| present.contains(p));
+                        said.retain(|p, _| present.contains(p));
                         debug!(dir = %dir.display(), files = present.len(), pending = cands.len(), seconds = t_scan.elapsed().as_secs_f64(), "incoming directory scanned");
                     }
                     Err(e) => {
@@ -165,10 +232,15 @@ pub fn watch(
                             | EventKind::Modify(ModifyKind::Name(RenameMode::Both))
                     );
                     for p in ev.paths {
-                        if !consider(&p) {
-                            continue;
-                        }
-                        if let Some((size, mtime)) = stat(&p) {
+                        let (size, mtime) = match look(&p) {
+                            Some(Look::Candidate(size, mtime)) => (size, mtime),
+                            Some(Look::Skipped(level, why)) => {
+                                note_skip(&mut said, &p, level, why);
+                                continue;
+                            }
+                            None => continue,
+                        };
+                        {
                             let c = cands.entry(p).or_insert(Candidate {
                                 size,
                                 mtime,
@@ -201,9 +273,9 @@ pub fn watch(
             last_pass = Instant::now();
             let mut done = Vec::new();
             for (p, c) in cands.iter_mut() {
-                match stat(p) {
-                    None => done.push((p.clone(), None)),
-                    Some((size, mtime)) => {
+                match look(p) {
+                    None | Some(Look::Skipped(..)) => done.push((p.clone(), None)),
+                    Some(Look::Candidate(size, mtime)) => {
                         if (size, mtime) != (c.size, c.mtime) {
                             *c = Candidate {
                                 size,

@@ -9,7 +9,7 @@ relative humidity field (0/1/1, %) on the same level is added, invented but smoo
 80 % near the ground falling to 20 % at 200 hPa with travelling waves of zonal wavenumber 6;
 and one field of pressure reduced to mean sea level (0/3/1, code table 4.5 type 101) from the
 1000 hPa height z and temperature T with the hypsometric equation,
-p = 1000 hPa exp(g0 z / (R T)) (REFERENCES.md "Methods"). Encoded by ecCodes (cloning the
+p = 1000 hPa exp(g0 z / (R T)) (docs/references.md "Methods"). Encoded by ecCodes (cloning the
 temperature message, same grid and packing). Written to a temporary name and renamed.
 """
 
@@ -22,7 +22,7 @@ import numpy as np
 import eccodes
 
 G0 = 9.80665  # standard gravity (CGPM 1901)
-R_DRY = 287.05  # dry-air gas constant (REFERENCES.md)
+R_DRY = 287.05  # dry-air gas constant (docs/references.md)
 
 
 def main(src: str, dst: str) -> None:

@@ -164,6 +164,26 @@ def vm_hwm_mib(pid: int) -> float:
     return float("nan")
 
 
+def vm_rss_kib(pid: int) -> float:
+    """Resident memory now (VmRSS of proc(5)), KiB: the whole process, children excluded."""
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return float(line.split()[1])
+    return float("nan")
+
+
+def growth_per_step(samples: list[tuple[int, float]], after: int = 1000) -> float | None:
+    """Least-squares slope of resident memory (KiB) over steps published, from `after` on,
+    in KB (1000 bytes) per step; None with too few samples."""
+    pts = [(n, r) for n, r in samples if n >= after]
+    if len(pts) < 3 or pts[-1][0] - pts[0][0] < 100:
+        return None
+    x = np.array([n for n, _ in pts], dtype=float)
+    y = np.array([r for _, r in pts], dtype=float) * 1.024  # KiB to KB
+    slope = np.polyfit(x, y, 1)[0]
+    return float(slope)
+
+
 def thread_cpu_s(pid: int, tid: int) -> float:
     """utime + stime of one thread (proc(5), fields 14 and 15, in clock ticks)."""
     f = Path(f"/proc/{pid}/task/{tid}/stat").read_text().rsplit(")", 1)[1].split()
@@ -206,6 +226,7 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
     seen_at = published_at = first_seen = None
     hwm = 0.0
     samples = []
+    rss = []  # (steps published, resident KiB)
     try:
         while True:
             time.sleep(1.0)
@@ -213,6 +234,7 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
                 raise SystemExit(f"leeward serve exited with {p.returncode}; see {root}/serve.log")
             c = ledger_counts(root / "state")
             hwm = max(hwm, vm_hwm_mib(p.pid))
+            rss.append((c.get("published", 0), vm_rss_kib(p.pid)))
             now = time.monotonic() - t_start
             samples.append((now, c.get("seen", 0), c.get("published", 0)))
             if first_seen is None and c.get("seen", 0) > 0:
@@ -245,6 +267,11 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
                "ledger_records": records, "ledger_bytes": ledger_bytes,
                "ledger_records_per_s": round(rate, 1),
                "peak_rss_mib": round(hwm, 1),
+               "rss_end_mib": round(rss[-1][1] / 1024, 1) if rss else None,
+               # Growth of resident memory per step published after the first 1,000
+               # (least squares over the samples taken each second).
+               "rss_growth_kb_per_step_after_1000": (
+                   None if growth_per_step(rss) is None else round(growth_per_step(rss), 2)),
                # The main loop is the coordinator (watching is a thread of its
                # own, steps run on worker threads): its CPU per step is what
                # bounds how many steps one service can coordinate.
@@ -349,7 +376,10 @@ def main(argv=None) -> int:
           f"({svc['ledger_records']} records, {svc['ledger_bytes'] / 1e6:.1f} MB)")
     print(f"  main loop CPU               {svc['main_loop_ms_per_step']} ms per step "
           f"({svc['main_loop_cpu_s']} s of {svc['process_cpu_s']} s for the whole service)")
-    print(f"  peak resident memory        {svc['peak_rss_mib']} MiB")
+    print(f"  peak resident memory        {svc['peak_rss_mib']} MiB "
+          f"(at the end {svc['rss_end_mib']} MiB)")
+    print(f"  memory growth               {svc['rss_growth_kb_per_step_after_1000']} KB per step "
+          "published after the first 1,000")
     print(f"  restart: ready after        {svc['restart_ready_s']} s "
           f"({svc['restart_republished']} steps published again)")
     if sl:

@@ -15,7 +15,7 @@ derivatives meet realistic data rather than constants:
   20 km, +1 K/km above; computed from its defining constants) plus an equator-to-pole
   contrast that reverses above the tropopause and travelling waves of zonal wavenumber 5-7;
 - geopotential height: integrated upward from 1000 hPa with the hypsometric equation
-  (z2 - z1 = (R T_mean / g0) ln(p1/p2), REFERENCES.md) over that temperature;
+  (z2 - z1 = (R T_mean / g0) ln(p1/p2), docs/references.md) over that temperature;
 - wind: a baroclinic mid-latitude jet in each hemisphere peaking near 250 hPa, weak
   tropical easterlies and wave perturbations in u and v, all vanishing at the poles.
 
@@ -40,10 +40,10 @@ GENERATOR_VERSION = 1
 LEVELS_HPA = (1000, 975, 950, 925, 900, 850, 800, 750, 700, 650, 600, 550, 500, 450, 400,
               350, 300, 250, 200, 150, 100, 70, 50, 30, 20, 10)
 
-# Constants: standard gravity (CGPM 1901), dry-air gas constant (REFERENCES.md).
+# Constants: standard gravity (CGPM 1901), dry-air gas constant (docs/references.md).
 G0 = 9.80665
 R_DRY = 287.05
-# US Standard Atmosphere 1976 defining constants (REFERENCES.md "Check values").
+# US Standard Atmosphere 1976 defining constants (docs/references.md "Check values").
 USSA_R = 8.31432 / 28.9644e-3
 USSA_T0 = 288.15
 USSA_P0 = 1013.25

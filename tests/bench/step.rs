@@ -4,7 +4,9 @@
 //!
 //!     cargo bench --bench step -- FILE.grib2 [OUT_DIR [NEXT_STEP.grib2]]
 //!
-//! With a next step, it is processed into the same directory afterwards, which
+//! Then the step once more with the quicklook images of the default list on:
+//! the images' time against the whole step's, measured in the same run. With
+//! a next step, it is processed into the same directory afterwards, which
 //! times the changes in time and the PV budget against the first.
 
 use std::time::Instant;
@@ -92,6 +94,7 @@ fn main() {
         best = best.min(t.elapsed().as_secs_f64());
     }
     println!("{{\"what\":\"pipeline\",\"seconds\":{best:.4},\"runs\":2}}");
+    images_share(path, &out);
     if let Some(next) = args.get(2) {
         let t = Instant::now();
         let (file, _) = read_input(std::path::Path::new(next));
@@ -110,6 +113,35 @@ fn main() {
         println!(
             "{{\"what\":\"next_pipeline\",\"seconds\":{:.4}}}",
             t.elapsed().as_secs_f64()
+        );
+    }
+}
+
+/// The whole step with the default quicklook images drawn, into an empty
+/// directory: the images' seconds and their share of the step's.
+fn images_share(path: &str, out: &std::path::Path) {
+    let mut cfg = Config::default();
+    cfg.quicklook.enabled = true;
+    let _ = std::fs::remove_dir_all(out);
+    std::fs::create_dir_all(out).expect("output dir");
+    let (file, _) = read_input(std::path::Path::new(path));
+    let files: Vec<_> = file.into_iter().collect();
+    let (steps, _) = plan(&files);
+    let suffixes = grid_suffixes(&steps);
+    for (s, g) in steps.iter().zip(suffixes) {
+        let r = run_step(s, &files, &cfg, &Destination::flat(out), g);
+        let bytes: u64 = r
+            .images
+            .iter()
+            .filter_map(|p| std::fs::metadata(p).ok())
+            .map(|m| m.len())
+            .sum();
+        println!(
+            "{{\"what\":\"step_with_images\",\"images\":{},\"png_bytes\":{bytes},\"images_s\":{:.4},\"step_s\":{:.4},\"images_share\":{:.4}}}",
+            r.images.len(),
+            r.images_seconds,
+            r.seconds,
+            r.images_seconds / r.seconds
         );
     }
 }

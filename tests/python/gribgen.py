@@ -30,13 +30,13 @@ import eccodes
 RADIUS_SHAPE_6 = 6371229.0
 #: GRIB2 code table 3.2, value 0: sphere of radius 6,367,470 m (WMO-No. 306).
 RADIUS_SHAPE_0 = 6367470.0
-#: Earth's angular velocity (IERS value, REFERENCES.md "Constants").
+#: Earth's angular velocity (IERS value, docs/references.md "Constants").
 OMEGA = 7.292115e-5
-#: Standard gravity (CGPM 1901, REFERENCES.md).
+#: Standard gravity (CGPM 1901, docs/references.md).
 G0 = 9.80665
-#: Dry-air gas constant (REFERENCES.md).
+#: Dry-air gas constant (docs/references.md).
 R_DRY = 287.05
-#: Constant-lapse-rate atmosphere of REFERENCES.md "Check values" (US Standard Atmosphere
+#: Constant-lapse-rate atmosphere of docs/references.md "Check values" (US Standard Atmosphere
 #: 1976 troposphere constants: T0 288.15 K, 6.5 K/km, p0 1013.25 hPa).
 T0 = 288.15
 GAMMA = 0.0065
@@ -409,32 +409,32 @@ def east_north_in_grid_axes(grid: Grid, geo: Geometry):
 # Closed-form fields
 # --------------------------------------------------------------------------------------
 def lapse_rate_exponent(gamma: float = GAMMA) -> float:
-    """R gamma / g of the constant-lapse-rate atmosphere (REFERENCES.md check values)."""
+    """R gamma / g of the constant-lapse-rate atmosphere (docs/references.md "Check values")."""
     return R_DRY * gamma / G0
 
 
 def lapse_rate_temperature(p_pa, gamma: float = GAMMA):
-    """T = T0 (p/p0)^(R gamma/g) (REFERENCES.md: constant lapse rate atmosphere)."""
+    """T = T0 (p/p0)^(R gamma/g) (docs/references.md: constant lapse rate atmosphere)."""
     return T0 * (np.asarray(p_pa, dtype=float) / P0) ** lapse_rate_exponent(gamma)
 
 
 def lapse_rate_height(p_pa, gamma: float = GAMMA):
-    """z = (T0/gamma)(1 - (p/p0)^(R gamma/g)) in geopotential metres (REFERENCES.md)."""
+    """z = (T0/gamma)(1 - (p/p0)^(R gamma/g)) in geopotential metres (docs/references.md)."""
     return (T0 / gamma) * (1.0 - (np.asarray(p_pa, dtype=float) / P0) ** lapse_rate_exponent(gamma))
 
 
 def solid_body_zeta(lat_deg, u0, radius):
     """Relative vorticity of u = u0 cos(lat), v = 0: 2 u0 sin(lat) / a
-    (Williamson et al. 1992, test case 2; REFERENCES.md)."""
+    (Williamson et al. 1992, test case 2; docs/references.md)."""
     return 2.0 * u0 * np.sin(np.radians(lat_deg)) / radius
 
 
 def coriolis(lat_deg):
-    """f = 2 Omega sin(lat), Omega = 7.292115e-5 s-1 (REFERENCES.md)."""
+    """f = 2 Omega sin(lat), Omega = 7.292115e-5 s-1 (docs/references.md)."""
     return 2.0 * OMEGA * np.sin(np.radians(lat_deg))
 
 
-#: Reference pressure of potential temperature, 1000 hPa (REFERENCES.md "Constants").
+#: Reference pressure of potential temperature, 1000 hPa (docs/references.md "Constants").
 THETA_REF_P = 1e5
 
 
@@ -460,7 +460,7 @@ def lapse_rate_dtheta_dp(p_pa, kappa):
 
 def lapse_rate_ertel_pv(p_pa, eta, kappa):
     """Ertel PV of a horizontally uniform column with absolute vorticity eta (s-1), in
-    K m2 kg-1 s-1: P = -g eta d theta/dp (Hoskins et al. 1985; REFERENCES.md "Methods"); on
+    K m2 kg-1 s-1: P = -g eta d theta/dp (Hoskins et al. 1985; docs/references.md "Methods"); on
     isobaric surfaces the baroclinic terms vanish because theta is horizontally uniform."""
     return -G0 * np.asarray(eta, dtype=float) * lapse_rate_dtheta_dp(p_pa, kappa)
 

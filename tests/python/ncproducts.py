@@ -178,7 +178,7 @@ def read_isentropic(path, names=tuple(ISENTROPIC_VARIABLES)) -> IsentropicProduc
 
 #: Units of potential vorticity in the files (the CF canonical units of
 #: ertel_potential_vorticity) and the PVU the checks are written in:
-#: 1 PVU = 1e-6 K m2 kg-1 s-1 (Hoskins et al. 1985; REFERENCES.md "Constants").
+#: 1 PVU = 1e-6 K m2 kg-1 s-1 (Hoskins et al. 1985; docs/references.md "Constants").
 PV_UNITS = "K m2 kg-1 s-1"
 PVU_IN_SI = 1e-6
 

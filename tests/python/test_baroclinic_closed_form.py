@@ -1,6 +1,6 @@
 """Isobaric Ertel PV with both tilting terms active, in a closed-form baroclinic atmosphere.
 
-Full form on isobaric levels (Bluestein 1992; REFERENCES.md "Methods"; from memory):
+Full form on isobaric levels (Bluestein 1992; docs/references.md "Methods"; from memory):
 
     P = -g [ (zeta_p + f) dtheta/dp - (dv/dp)(dtheta/dx) + (du/dp)(dtheta/dy) ]
 
@@ -10,11 +10,11 @@ The atmosphere, encoded with ecCodes on a 1-degree latitude/longitude grid from 
 - theta = theta0 + A lambda + B phi - S ln(p/p0): linear in longitude and latitude
   (radians), so that the centred differences in lambda and phi leeward takes are exact,
   dtheta/dx = A / (a cos phi), dtheta/dy = B / a; and linear in ln p, the coordinate in
-  which leeward differences vertically (REFERENCES.md "Methods": three-point differences
+  which leeward differences vertically (docs/references.md "Methods": three-point differences
   in ln p), so that dtheta/dp = -S/p exactly;
 - u = U0 - Su ln(p/p0), v = V0 + Sv ln(p/p0), the same at every point of a level: linear in
   ln p, du/dp = -Su/p and dv/dp = Sv/p exactly; their relative vorticity on the sphere is
-  zeta = u tan(phi) / a (REFERENCES.md "Methods": zeta = -(1/(a cos phi)) d(u cos phi)/dphi
+  zeta = u tan(phi) / a (docs/references.md "Methods": zeta = -(1/(a cos phi)) d(u cos phi)/dphi
   for a wind with no longitude dependence), f = 2 Omega sin(phi).
 
 The two tilting parts, Tv = g (dv/dp)(dtheta/dx), proportional to 1/(p cos phi), and
@@ -24,7 +24,7 @@ factor; each must be 1 within 0.5 %. Dropping either term, flipping its sign, or
 the two gradients moves its factor to 0, -1 or far off.
 
 Temperature is written as T = theta (p/1000 hPa)^kappa with the constants leeward
-documents (docs/output.md; kappa = R/cp = 287.05/1004.6, REFERENCES.md "Constants"; using
+documents (docs/output.md; kappa = R/cp = 287.05/1004.6, docs/references.md "Constants"; using
 the program's own constants is common practice).
 """
 
@@ -73,7 +73,7 @@ def closed_form(lat, p):
     du_dp, dv_dp = -SU / p, SV / p
     dth_dx = A / (A_EARTH * np.cos(phi))
     dth_dy = B / A_EARTH
-    to_pvu = 1e6  # 1 PVU = 1e-6 K m2 kg-1 s-1 (REFERENCES.md "Constants")
+    to_pvu = 1e6  # 1 PVU = 1e-6 K m2 kg-1 s-1 (docs/references.md "Constants")
     barotropic = -G * (zeta + f) * dth_dp * to_pvu
     tv = G * dv_dp * dth_dx * to_pvu
     tu = np.broadcast_to(-G * du_dp * dth_dy * to_pvu, np.shape(lat))

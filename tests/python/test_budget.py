@@ -5,7 +5,7 @@ Every case is a global 2.5-degree grid (north to south, GRIB2 shape of the earth
 of one cycle, run through `leeward process`; the budget is read from the later step's file.
 
 Column: temperature T = T0 (p/p0)^c (1 + eps g), c = R gamma / g0 with gamma = 6.5 K/km
-(REFERENCES.md "Check values": the constant-lapse-rate atmosphere), scaled by (1 + eps g) in
+(docs/references.md "Check values": the constant-lapse-rate atmosphere), scaled by (1 + eps g) in
 each column. theta is then A (1 + eps g) p^(c - kappa), ln theta is linear in ln p and the
 isentropic interpolation is exact, so the pressure of a surface is known in closed form,
 p(theta) = p0 (theta / (theta_c (1 + eps g)))^m, m = 1/(c - kappa), and so is the depth of
@@ -13,7 +13,7 @@ a layer, which scales as (1 + eps g)^(-m) (m is about -10.5: a 1% warmer column 
 deeper between two isentropes).
 
 Flow: solid-body rotation about the earth's axis, u = u0 cos(lat), v = 0 (Williamson et al.
-1992 test cases 1 and 2; REFERENCES.md): zeta = 2 u0 sin(lat)/a, and in dt every column
+1992 test cases 1 and 2; docs/references.md): zeta = 2 u0 sin(lat)/a, and in dt every column
 moves east by the angle u0 dt / a along its latitude circle.
 """
 
@@ -281,7 +281,7 @@ def _documented_layer_mean(u, pt, pb, levels):
 
 def test_layer_mean_wind_is_mass_weighted_in_sheared_flow(leeward_bin, tmp_path):
     # u = u0 cos(lat) (p/p0)^2: winds grow downward. The layer's mass-weighted mean wind
-    # is (1/dp) integral u dp (layer PV in column-depth form; REFERENCES.md "Methods"),
+    # is (1/dp) integral u dp (layer PV in column-depth form; docs/references.md "Methods"),
     # (pb^3 - pt^3) / (3 p0^2 (pb - pt)) u0 cos(lat) with pb, pt the closed-form pressures
     # of the bounding isentropes. leeward integrates it with the trapezoid rule (docs/output.md);
     # the same rule computed here must match layer_u to 2e-4 (float32, bit rounding), and
@@ -351,7 +351,7 @@ def _pattern3(r):
 def _tilted_winds(geo):
     """East and north components (m/s) of V = a (W x r), W = (u0/a) axis: the solid-body
     rotation about the axis with speed u0 on its great circle (Williamson et al. 1992 test
-    case 1 with a tilted axis; REFERENCES.md)."""
+    case 1 with a tilted axis; docs/references.md)."""
     axis = _unit(AXIS_LAT, AXIS_LON)
     r = _unit(geo.lat, geo.lon)
     vel = U0 * np.cross(np.broadcast_to(axis, r.shape), r)

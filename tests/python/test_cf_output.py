@@ -46,7 +46,7 @@ GRID_MAPPING = {
 CENTRE_NAMES = {7: "ncep", 54: "cmc", 98: "ecmwf", 74: "ukmo", 78: "dwd", 34: "jma", 85: "mfr"}
 
 #: Data variables: (units, standard_name or None) from the output contract; the standard
-#: names are those of the CF Standard Name Table (REFERENCES.md).
+#: names are those of the CF Standard Name Table (docs/references.md).
 DATA_VARS = {
     "zeta": ("s-1", "atmosphere_upward_relative_vorticity"),
     "eta": ("s-1", "atmosphere_upward_absolute_vorticity"),
@@ -57,11 +57,11 @@ DATA_VARS = {
 
 #: The isentropic family: name -> (units, standard_name or None, vertical dimension), from the
 #: output contract; standard names and canonical units from the CF Standard Name Table
-#: (REFERENCES.md: ertel_potential_vorticity, potential_vorticity_of_atmosphere_layer,
+#: (docs/references.md: ertel_potential_vorticity, potential_vorticity_of_atmosphere_layer,
 #: dynamic_tropopause_potential_temperature, air_pressure, geopotential_height, ...). "U"
 #: and "V" stand for the wind names, which follow the input's flag table 3.3 bit 5.
 #: PV in the CF canonical units of ertel_potential_vorticity (CF Standard Name Table); a
-#: PVU is 1e-6 of them (Hoskins et al. 1985; REFERENCES.md "Constants").
+#: PVU is 1e-6 of them (Hoskins et al. 1985; docs/references.md "Constants").
 PVU_UNITS = "K m2 kg-1 s-1"
 ISEN_VARS = {
     "isen_p": ("Pa", "air_pressure", "theta_level"),
@@ -238,7 +238,7 @@ def test_netcdf_structure(kind, name, request):
         if "semi_minor_axis" in ca:
             assert abs(float(ca["semi_minor_axis"]) - radius) < 0.5
 
-        # Data variables: float32, units and CF standard names (REFERENCES.md), netCDF
+        # Data variables: float32, units and CF standard names (docs/references.md), netCDF
         # default float fill as _FillValue, grid_mapping and coordinates (CF 1.10 5.6, 5).
         for v, (units, sn) in DATA_VARS.items():
             assert v in ds.variables, f"data variable {v} missing"
@@ -280,7 +280,7 @@ def _check_isentropic_structure(ds, hdims, aux, field, left=frozenset()):
     """Coordinates and data variables of the isentropic family (output contract; CF 1.10
     sections 4.3 vertical coordinates and 7.1 cell boundaries; CF Standard Name Table)."""
     # Isentropic surfaces: air_potential_temperature in K, positive up, axis Z (CF 4.3;
-    # REFERENCES.md "CF output shape").
+    # docs/references.md "CF output shape").
     tl = ds["theta_level"]
     ta = _attrs(tl)
     assert tl.dtype == np.float64 and tl.dimensions == ("theta_level",)

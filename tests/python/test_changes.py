@@ -1,16 +1,16 @@
 """Thickness, its change in time and the run-to-run difference, on inputs encoded by ecCodes.
 
 Column: a horizontally uniform US Standard Atmosphere 1976 troposphere (NOAA/NASA/USAF 1976;
-REFERENCES.md "Check values": T0 288.15 K, 6.5 K/km, p0 1013.25 hPa),
+docs/references.md "Check values": T0 288.15 K, 6.5 K/km, p0 1013.25 hPa),
 T = T0 (p/p0)^(R gamma/g), on 1000, 925, 850, 700 and 500 hPa of a small regular
 latitude/longitude grid, temperature only unless a check adds geopotential height or
-specific humidity. Thickness from the hypsometric equation (REFERENCES.md "Methods"):
+specific humidity. Thickness from the hypsometric equation (docs/references.md "Methods"):
 
     z2 - z1 = (R Tv_mean / g0) ln(p1/p2),
 
 so a column warmed by dT everywhere thickens by (R dT / g0) ln(p1/p2) exactly: 40.58 m for
 1000-500 hPa and dT = 2 K, 20.29 m for dT = 1 K. A uniform specific humidity q multiplies
-Tv, hence the thickness, by (1 + 0.608 q) (common practice; REFERENCES.md "Methods").
+Tv, hence the thickness, by (1 + 0.608 q) (common practice; docs/references.md "Methods").
 
 Changes are read back from published files, so they must not depend on the order in which
 steps and cycles reach leeward, nor on a restart between them (leeward's output contract,
@@ -39,22 +39,22 @@ from conftest import FIGURES, run_leeward
 # --------------------------------------------------------------------------------------
 # Constants and check values (sources beside each one)
 # --------------------------------------------------------------------------------------
-R = gribgen.R_DRY  # 287.05 J kg-1 K-1 (REFERENCES.md "Constants")
-G = gribgen.G0  # 9.80665 m s-2 (CGPM 1901; REFERENCES.md)
+R = gribgen.R_DRY  # 287.05 J kg-1 K-1 (docs/references.md "Constants")
+G = gribgen.G0  # 9.80665 m s-2 (CGPM 1901; docs/references.md)
 
 #: Isobaric levels (hPa) of the inputs.
 LEVELS_HPA = (1000, 925, 850, 700, 500)
 #: Layers (bottom, top) in hPa: leeward's default list (docs/configuration.md
 #: `thickness.layers_hpa`, the output contract).
 LAYERS = ((1000, 500), (1000, 850), (850, 700), (700, 500))
-#: US Standard Atmosphere 1976 thicknesses, m (REFERENCES.md "Check values").
+#: US Standard Atmosphere 1976 thicknesses, m (docs/references.md "Check values").
 STD_THICKNESS = {(1000, 500): 5463.6, (1000, 850): 1346.4, (850, 700): 1554.9, (700, 500): 2562.3}
-#: US Standard Atmosphere 1976 geopotential heights, m (REFERENCES.md "Check values").
+#: US Standard Atmosphere 1976 geopotential heights, m (docs/references.md "Check values").
 STD_HEIGHT = {1000: 110.9, 925: 762.0, 850: 1457.3, 700: 3012.2, 500: 5574.4}
 
 #: WMO code table 4.2, discipline 0, category 1 (moisture), number 0: specific humidity, kg kg-1.
 PARAM_Q = (1, 0)
-#: Virtual temperature Tv = T (1 + 0.608 q) (common practice; REFERENCES.md "Methods").
+#: Virtual temperature Tv = T (1 + 0.608 q) (common practice; docs/references.md "Methods").
 EPS_TV = 0.608
 Q_UNIFORM = 0.01
 
@@ -72,12 +72,12 @@ CENTRE = 98
 
 def hypsometric_change(dT, bottom_hpa, top_hpa):
     """(R dT / g0) ln(p_bottom/p_top): thickness change of a uniform warming dT
-    (hypsometric equation, REFERENCES.md "Methods")."""
+    (hypsometric equation, docs/references.md "Methods")."""
     return R * dT / G * math.log(bottom_hpa / top_hpa)
 
 
 def std_temperature(level_hpa):
-    """US Standard Atmosphere 1976 troposphere, T = T0 (p/p0)^(R gamma/g) (REFERENCES.md)."""
+    """US Standard Atmosphere 1976 troposphere, T = T0 (p/p0)^(R gamma/g) (docs/references.md)."""
     return float(gribgen.lapse_rate_temperature(level_hpa * 100.0))
 
 
@@ -112,7 +112,7 @@ INPUTS = {
     # Two cycles valid at 12 UTC: 00 UTC + 12 h, and 06 UTC + 6 h 1 K warmer.
     "c00_f012": dict(hhmm=0, step=12),
     "c06_f006_warm1": dict(hhmm=600, step=6, warming=1.0),
-    # Heights of REFERENCES.md on every level.
+    # Heights of docs/references.md on every level.
     "c00_f000_gh": dict(hhmm=0, step=0, heights=STD_HEIGHT),
     # Heights on 1000, 925, 850 and 500 hPa only, 500 hPa raised by 25 m: inconsistent with
     # T on purpose, so that the geopotential and hypsometric paths give different numbers.
@@ -287,7 +287,7 @@ CHG_ORDERS = ("chg_earlier_first", "chg_later_first")
 
 @pytest.mark.parametrize("scenario", CHG_ORDERS)
 def test_thickness_change_of_uniform_warming(scenario, scenarios):
-    # Hypsometric equation (REFERENCES.md "Methods"): a uniform +2 K changes each layer's
+    # Hypsometric equation (docs/references.md "Methods"): a uniform +2 K changes each layer's
     # thickness by (R 2 / g0) ln(p_bottom/p_top); 40.58 m for 1000-500 hPa.
     sc = scenarios(scenario)
     later, earlier = sc.file(F_C00_006), sc.file(F_C00_000)
@@ -356,7 +356,7 @@ def test_late_change_keeps_published_values(scenarios):
 # 2. US Standard Atmosphere thicknesses, from temperature and from geopotential height
 # --------------------------------------------------------------------------------------
 def test_standard_atmosphere_thickness_from_temperature(scenarios):
-    # US Standard Atmosphere 1976 thicknesses (REFERENCES.md "Check values"), from T alone
+    # US Standard Atmosphere 1976 thicknesses (docs/references.md "Check values"), from T alone
     # through the hypsometric equation; no humidity in the input, so dry.
     path = scenarios("t_only").file(F_C00_000)
     thick, attrs, _ = read_layer_var(path, "thick")
@@ -365,8 +365,8 @@ def test_standard_atmosphere_thickness_from_temperature(scenarios):
         got = _uniform(thick[lay], f"thick {lay}")
         exact = float(gribgen.lapse_rate_height(lay[1] * 100.0) - gribgen.lapse_rate_height(lay[0] * 100.0))
         _figure(f"thick {lay[0]}-{lay[1]} hPa from T only: {got:.3f} m "
-                f"(REFERENCES.md {STD_THICKNESS[lay]} m, closed form {exact:.3f} m; method: {meth[lay]})")
-        assert abs(got - STD_THICKNESS[lay]) <= TOL_STD_M, f"{lay}: {got} m, REFERENCES.md {STD_THICKNESS[lay]} m"
+                f"(docs/references.md {STD_THICKNESS[lay]} m, closed form {exact:.3f} m; method: {meth[lay]})")
+        assert abs(got - STD_THICKNESS[lay]) <= TOL_STD_M, f"{lay}: {got} m, docs/references.md {STD_THICKNESS[lay]} m"
         assert "hypsometric" in meth[lay] and "geopotential" not in meth[lay], f"{lay}: method {meth[lay]!r}"
         assert "dry" in meth[lay], f"{lay}: method {meth[lay]!r}, no humidity in the input"
         assert "humidity" not in meth[lay] or "no humidity" in meth[lay], f"{lay}: method {meth[lay]!r}"
@@ -394,7 +394,7 @@ def _decoded_heights(path):
 
 def test_thickness_from_geopotential_height(scenarios, inputs):
     # Output contract: where both levels carry geopotential height, thick = z(top) - z(bottom)
-    # and leeward_method says so. Heights from REFERENCES.md, read back with ecCodes.
+    # and leeward_method says so. Heights from docs/references.md, read back with ecCodes.
     path = scenarios("gh").file(F_C00_000)
     z = _decoded_heights(inputs["c00_f000_gh"])
     assert set(z) == set(LEVELS_HPA)
@@ -410,7 +410,7 @@ def test_thickness_from_geopotential_height(scenarios, inputs):
         # reference value, WMO-No. 306 template 5.0).
         assert abs(got - want) <= rounding_tol(want, attrs) + 1e-3, (
             f"{lay}: thick {got} m != z(top) - z(bottom) = {want} m")
-        assert abs(got - STD_THICKNESS[lay]) <= TOL_STD_M  # REFERENCES.md "Check values"
+        assert abs(got - STD_THICKNESS[lay]) <= TOL_STD_M  # docs/references.md "Check values"
     # Output contract: z written when the input has it, equal to the input's heights.
     with netCDF4.Dataset(path) as ds:
         assert "z" in ds.variables, "no z although the input has geopotential height"
@@ -441,8 +441,8 @@ def test_thickness_method_chosen_per_layer(scenarios, inputs):
     for lay in ((850, 700), (700, 500)):
         got = _uniform(thick[lay], f"thick {lay}")
         assert "hypsometric" in meth[lay], f"{lay}: method {meth[lay]!r} although 700 hPa has no height"
-        # US Standard Atmosphere 1976 from T (REFERENCES.md "Check values").
-        assert abs(got - STD_THICKNESS[lay]) <= TOL_STD_M, f"{lay}: {got} m, REFERENCES.md {STD_THICKNESS[lay]}"
+        # US Standard Atmosphere 1976 from T (docs/references.md "Check values").
+        assert abs(got - STD_THICKNESS[lay]) <= TOL_STD_M, f"{lay}: {got} m, docs/references.md {STD_THICKNESS[lay]}"
     _figure(f"mixed heights: thick 1000-500 {float(thick[(1000, 500)].flat[0]):.3f} m (z difference "
             f"{z[500] - z[1000]:.3f}), 700-500 {float(thick[(700, 500)].flat[0]):.3f} m (hypsometric)")
 
@@ -451,7 +451,7 @@ def test_thickness_method_chosen_per_layer(scenarios, inputs):
 # 3. Specific humidity: virtual temperature
 # --------------------------------------------------------------------------------------
 def test_specific_humidity_thickens_by_virtual_temperature(scenarios):
-    # Tv = T (1 + 0.608 q) (common practice; REFERENCES.md "Methods"): with q uniform the
+    # Tv = T (1 + 0.608 q) (common practice; docs/references.md "Methods"): with q uniform the
     # hypsometric thickness grows by 0.608 q of the dry value.
     dry, _, _ = read_layer_var(scenarios("t_only").file(F_C00_000), "thick")
     moist, attrs, _ = read_layer_var(scenarios("q").file(F_C00_000), "thick")
@@ -473,7 +473,7 @@ R2R_CASES = ("r2r_older_first", "r2r_newer_first", "r2r_one_run")
 
 @pytest.mark.parametrize("scenario", R2R_CASES)
 def test_run_to_run_difference(scenario, scenarios):
-    # Hypsometric equation (REFERENCES.md "Methods"): the newer cycle 1 K warmer at the same
+    # Hypsometric equation (docs/references.md "Methods"): the newer cycle 1 K warmer at the same
     # valid time is (R/g0) ln(p_bottom/p_top) thicker; 20.29 m for 1000-500 hPa.
     sc = scenarios(scenario)
     newer, older = sc.file(F_C06_006), sc.file(F_C00_012)
@@ -511,7 +511,7 @@ def test_run_to_run_same_bits_every_order(scenarios):
 def test_changes_within_cycle_and_across_cycles(scenarios):
     # Runs, one at a time into one folder: 06 UTC +12 h (5 K), 06 UTC +6 h (2 K),
     # 00 UTC +6 h (3 K), 06 UTC +0 h (0 K). 00 UTC +6 h and 06 UTC +0 h are valid at the same
-    # time. Closed forms from the hypsometric equation (REFERENCES.md "Methods"):
+    # time. Closed forms from the hypsometric equation (docs/references.md "Methods"):
     #  - 06+6 h: thick_chg_06h against 06+0 h (+2 K), never against 00+6 h (-1 K);
     #  - 06+12 h: thick_chg_06h against 06+6 h (+3 K), thick_chg_12h against 06+0 h (+5 K);
     #  - 06+0 h: thick_r2r against 00+6 h (-3 K).
@@ -537,7 +537,7 @@ def test_changes_within_cycle_and_across_cycles(scenarios):
 # --------------------------------------------------------------------------------------
 def test_cf_compliance_after_late_update(scenarios, tmp_path):
     # IOOS compliance checker (PyPI compliance-checker, CF 1.11 suite, bundled standard name
-    # table; REFERENCES.md): no failed high-priority check in files that leeward updated in
+    # table; docs/references.md): no failed high-priority check in files that leeward updated in
     # place (change added after the file was first published).
     # The checker installed with this interpreter (the test venv), before any on PATH.
     beside = Path(sys.executable).parent / "compliance-checker"

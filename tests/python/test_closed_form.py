@@ -1,13 +1,13 @@
 """Closed-form checks of leeward's diagnostics on inputs encoded by ecCodes (gribgen.py).
 
 Flow: solid-body zonal wind u = u0 cos(lat), v = 0 (Williamson et al. 1992, J. Comput.
-Phys. 102, 211-224, test case 2; REFERENCES.md "Check values"), whose relative vorticity is
+Phys. 102, 211-224, test case 2; docs/references.md "Check values"), whose relative vorticity is
 exactly 2 u0 sin(lat) / a, on every grid type leeward reads; on projected and rotated grids
 the winds are rotated into grid axes by an angle computed with pyproj, or left earth-relative
 as the file's flag table 3.3 bit 5 says.
 
 Column: horizontally uniform constant-lapse-rate atmosphere, T = T0 (p/p0)^(R gamma/g)
-(REFERENCES.md "Check values"), so potential temperature, -dtheta/dp and N^2 are known in
+(docs/references.md "Check values"), so potential temperature, -dtheta/dp and N^2 are known in
 closed form.
 """
 
@@ -75,7 +75,7 @@ def _compare(name, got, want, lat, mask, scale_at_low_lat):
 
 @pytest.mark.parametrize("case", GEOMETRY_CASES)
 def test_relative_vorticity_solid_body(case, closed_form_runs, closed_form_inputs):
-    # zeta = 2 u0 sin(lat) / a exactly (Williamson et al. 1992, test case 2; REFERENCES.md),
+    # zeta = 2 u0 sin(lat) / a exactly (Williamson et al. 1992, test case 2; docs/references.md),
     # a from GRIB2 code table 3.2 of the file (WMO-No. 306).
     run, prod, lat, _ = _product_and_reference(case, closed_form_runs, closed_form_inputs)
     grid, glob = _edge(case)
@@ -93,7 +93,7 @@ def test_relative_vorticity_solid_body(case, closed_form_runs, closed_form_input
 
 @pytest.mark.parametrize("case", GEOMETRY_CASES)
 def test_absolute_vorticity_solid_body(case, closed_form_runs, closed_form_inputs):
-    # eta = zeta + f, f = 2 Omega sin(lat), Omega = 7.292115e-5 s-1 (REFERENCES.md).
+    # eta = zeta + f, f = 2 Omega sin(lat), Omega = 7.292115e-5 s-1 (docs/references.md).
     run, prod, lat, _ = _product_and_reference(case, closed_form_runs, closed_form_inputs)
     grid, glob = _edge(case)
     a = grid.earth_radius
@@ -136,11 +136,11 @@ def test_orientation_and_levels(case, closed_form_runs, closed_form_inputs):
 # ---------------------------------------------------------------------------------------
 # Potential temperature and static stability of the constant-lapse-rate atmosphere
 # ---------------------------------------------------------------------------------------
-#: kappa = R/cp: 0.2857 is common practice (REFERENCES.md), and R = 287.05 with
+#: kappa = R/cp: 0.2857 is common practice (docs/references.md), and R = 287.05 with
 #: cp = 1004 to 1005.7 J kg-1 K-1 gives 0.28542 to 0.28590.
 KAPPA = 0.2857
 KAPPA_SPREAD = 4e-4
-P_REF = 1e5  # reference pressure of theta, 1000 hPa (REFERENCES.md)
+P_REF = 1e5  # reference pressure of theta, 1000 hPa (docs/references.md)
 
 
 def _theta_tolerance(p_pa):
@@ -172,7 +172,7 @@ STABILITY_CASES = ["latlon_europe_1p0", "lambert_tangent_25", "column_dense_leve
 
 @pytest.mark.parametrize("case", STABILITY_CASES)
 def test_potential_temperature_closed_form(case, closed_form_runs, closed_form_inputs):
-    # theta = T (1e5/p)^kappa (Poisson's equation, REFERENCES.md), T of the encoded
+    # theta = T (1e5/p)^kappa (Poisson's equation, docs/references.md), T of the encoded
     # constant-lapse-rate atmosphere.
     run, prod, _, _ = _product_and_reference(case, closed_form_runs, closed_form_inputs)
     theta = _uniform_column(prod, "theta")
@@ -185,7 +185,7 @@ def test_potential_temperature_closed_form(case, closed_form_runs, closed_form_i
 
 # US Standard Atmosphere 1976 (NOAA/NASA/USAF), computed from its defining constants:
 # T0 = 288.15 K, lapse rate 6.5 K/km below 11 km, p0 = 1013.25 hPa, g0 = 9.80665 m s-2,
-# R* = 8.31432 J mol-1 K-1, M0 = 28.9644 g mol-1 (REFERENCES.md "Constants", "Check values").
+# R* = 8.31432 J mol-1 K-1, M0 = 28.9644 g mol-1 (docs/references.md "Constants", "Check values").
 def _ussa1976_temperature(p_hpa):
     r = 8.31432 / 28.9644e-3
     return 288.15 * (p_hpa / 1013.25) ** (r * 0.0065 / 9.80665)
@@ -194,7 +194,7 @@ def _ussa1976_temperature(p_hpa):
 @pytest.mark.parametrize("level_hpa", [850, 500, 300])
 def test_potential_temperature_standard_atmosphere(level_hpa, closed_form_runs, closed_form_inputs):
     # All three levels lie below 11 km in the 1976 standard atmosphere (300 hPa is at
-    # 9164 m, REFERENCES.md), i.e. in its constant-lapse-rate troposphere.
+    # 9164 m, docs/references.md), i.e. in its constant-lapse-rate troposphere.
     run, prod, _, _ = _product_and_reference("latlon_europe_1p0", closed_form_runs, closed_form_inputs)
     theta = _uniform_column(prod, "theta")[level_index(prod, level_hpa)]
     want = _ussa1976_temperature(level_hpa) * (1000.0 / level_hpa) ** KAPPA
@@ -206,7 +206,7 @@ def test_potential_temperature_standard_atmosphere(level_hpa, closed_form_runs, 
 def _three_point_derivative(x, f, i):
     """First derivative at x[i] of the quadratic through three neighbouring points
     (centred where possible, one-sided at the ends): the three-point non-uniform
-    difference of REFERENCES.md "Methods"."""
+    difference of docs/references.md "Methods"."""
     n = len(x)
     j = min(max(i - 1, 0), n - 3)
     xs, fs = x[j:j + 3], f[j:j + 3]
@@ -224,7 +224,7 @@ def _stability_tolerances(p_sorted, c):
     """Per-level relative tolerance on -dtheta/dp for theta proportional to p^c: the
     larger of 0.5% (interior) / 2% (end levels) and twice the actual truncation error of a
     three-point non-uniform difference on these levels, in p or in ln p, whichever is worse
-    (both are allowed by REFERENCES.md "Methods")."""
+    (both are allowed by docs/references.md "Methods")."""
     p = np.asarray(p_sorted, dtype=float)
     th = p ** c
     exact = c * p ** (c - 1)
@@ -242,7 +242,7 @@ def _stability_tolerances(p_sorted, c):
 def test_static_stability_closed_form(case, closed_form_runs, closed_form_inputs):
     # theta = T0 p0^-b 1e5^kappa p^(b - kappa), b = R gamma / g, so
     # -dtheta/dp = (kappa - b) theta / p and N^2 = (g^2 p / (R T theta)) (-dtheta/dp)
-    # = g^2 (kappa - b) / (R T) (REFERENCES.md "Methods": static stability, N^2 with
+    # = g^2 (kappa - b) / (R T) (docs/references.md "Methods": static stability, N^2 with
     # hydrostatic balance). kappa is the one leeward used, read from its own theta (checked
     # against 0.2857 +- 4e-4 above), so that the cp choice does not enter the tolerance.
     run, prod, _, _ = _product_and_reference(case, closed_form_runs, closed_form_inputs)
@@ -306,9 +306,10 @@ def _decoded_winds(path):
 def test_packings_agree_within_packing_precision(case, closed_form_runs, closed_form_inputs):
     # zeta from each packing against zeta from simple packing. Bound: error propagation of
     # the decoded-value differences (ecCodes' decode of each file, never the original
-    # values: REFERENCES.md practical notes) through a difference stencil whose weights sum
-    # to at most 1.5 in absolute value per direction (covers second- and fourth-order
-    # centred stencils; common practice), plus float32 decoding and output rounding.
+    # values: docs/references.md "Outside references used by the tests") through a
+    # difference stencil whose weights sum to at most 1.5 in absolute value per direction
+    # (covers second- and fourth-order centred stencils; common practice), plus float32
+    # decoding and output rounding.
     ref_case = "packing_grid_simple"
     _, ref, lat, _ = _product_and_reference(ref_case, closed_form_runs, closed_form_inputs)
     _, prod, _, _ = _product_and_reference(case, closed_form_runs, closed_form_inputs)

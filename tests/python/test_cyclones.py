@@ -36,10 +36,10 @@ from conftest import FIGURES, run_leeward
 from ncproducts import align_to_product, read_product
 
 A = gribgen.RADIUS_SHAPE_6  # sphere of GRIB2 code table 3.2 value 6 (WMO-No. 306)
-OMEGA = gribgen.OMEGA  # IERS (REFERENCES.md)
+OMEGA = gribgen.OMEGA  # IERS (docs/references.md)
 G = gribgen.G0
 R_DRY = gribgen.R_DRY
-#: cp of dry air, J kg-1 K-1 (REFERENCES.md: 1004 to 1005.7, common practice).
+#: cp of dry air, J kg-1 K-1 (docs/references.md: 1004 to 1005.7, common practice).
 CP = 1004.6
 #: Levels of the cyclone inputs, hPa.
 LEVELS = (1000, 950, 900, 850, 800, 750, 700, 600, 500, 400, 300)
@@ -109,8 +109,8 @@ P_ENV = 101_200.0  # Pa
 
 
 def write_cycle(folder: Path, grid, lows, wind, name, centre=98):
-    """One GRIB2 file per lead: T and Z of a constant-lapse-rate column (REFERENCES.md check
-    values), winds `wind(lat, lon)` -> (east, north) on every level, and mean sea-level
+    """One GRIB2 file per lead: T and Z of a constant-lapse-rate column (docs/references.md "Check
+    values"), winds `wind(lat, lon)` -> (east, north) on every level, and mean sea-level
     pressure P_ENV minus the lows' depressions (code table 4.5 type 101)."""
     geo = gribgen.geometry(grid)
     grid_rel = grid.projected

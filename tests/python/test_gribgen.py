@@ -63,7 +63,7 @@ def test_fields_levels_and_flags(case, decoded):
 @pytest.mark.parametrize("level_hpa,z_ref", [(1000, 110.9), (850, 1457.3), (700, 3012.2),
                                              (500, 5574.4), (300, 9164.0), (250, 10362.9)])
 def test_heights_are_the_standard_atmosphere(level_hpa, z_ref, decoded):
-    # US Standard Atmosphere 1976 geopotential heights (REFERENCES.md "Check values",
+    # US Standard Atmosphere 1976 geopotential heights (docs/references.md "Check values",
     # computed from its defining constants): the encoded constant-lapse-rate Z.
     z = [f["values"] for f in decoded["latlon_europe_1p0"]
          if (f["category"], f["number"]) == gribgen.PARAM_GH and f["level"] == level_hpa][0]
@@ -87,7 +87,7 @@ def test_grid_relative_winds_keep_speed(case, decoded):
 @pytest.mark.parametrize("grid_name", ["lambert_tangent_25", "lambert_secant_30_60", "polar_north_60"])
 def test_rotation_angle_is_cone_constant_times_longitude(grid_name):
     # The pyproj-derived angle between east and the grid x axis against the closed form
-    # n (lambda - LoV) (REFERENCES.md "Methods"; Snyder 1987, USGS PP 1395, from memory:
+    # n (lambda - LoV) (docs/references.md "Methods"; Snyder 1987, USGS PP 1395, from memory:
     # n = sin(phi1) for a tangent cone, n = ln(cos phi1 / cos phi2) /
     # ln(tan(pi/4 + phi2/2) / tan(pi/4 + phi1/2)) for a secant one, n = 1 at a pole).
     grid = GRIDS[grid_name]

@@ -1,6 +1,6 @@
 """Closed-form checks of leeward's isentropic family on inputs encoded by ecCodes (gribgen.py).
 
-Column: the horizontally uniform constant-lapse-rate atmosphere of REFERENCES.md "Check
+Column: the horizontally uniform constant-lapse-rate atmosphere of docs/references.md "Check
 values", T = T0 (p/p0)^c and z = (T0/gamma)(1 - (p/p0)^c) with c = R gamma/g. With Poisson's
 equation theta = T (1e5/p)^kappa this is theta = theta_c (p/p0)^(c - kappa),
 theta_c = T0 (1e5/p0)^kappa, so
@@ -12,16 +12,16 @@ and ln theta is linear in ln p: interpolation linear in ln p with ln theta as th
 interpolating variable is exact here.
 
 Flow: solid-body zonal wind u = u0 cos(lat), v = 0, the same on every level (Williamson et
-al. 1992 test case 2; REFERENCES.md), absolute vorticity eta = 2 u0 sin(lat)/a + f on every
+al. 1992 test case 2; docs/references.md), absolute vorticity eta = 2 u0 sin(lat)/a + f on every
 isobaric and isentropic surface. Ertel PV is then P = -g eta dtheta/dp (Hoskins et al. 1985;
-REFERENCES.md "Methods"), on isobaric surfaces too since the baroclinic terms vanish for a
-horizontally uniform theta (Bluestein 1992; REFERENCES.md), and |P| = g |eta| (kappa - c)
+docs/references.md "Methods"), on isobaric surfaces too since the baroclinic terms vanish for a
+horizontally uniform theta (Bluestein 1992; docs/references.md), and |P| = g |eta| (kappa - c)
 theta/p falls monotonically with pressure, so the 2 PVU crossing of each column is known
 in closed form (or known not to exist below the top level).
 
 kappa: leeward documents R = 287.05 and cp = 1004.6 J kg-1 K-1 (docs/output.md); the checks
 use the same kappa = 287.05/1004.6 = 0.28574, within the common-practice 0.2857 of
-REFERENCES.md "Constants" (using the program's own constants is common practice).
+docs/references.md "Constants" (using the program's own constants is common practice).
 """
 
 from __future__ import annotations
@@ -43,13 +43,13 @@ GRIDS = gribgen.closed_form_grids()
 ISEN_CASES = ["tall_latlon_global_2p5", "tall_gaussian_n48", "tall_lambert_tangent_25",
               "column_dense_levels"]
 
-#: Gas constant (REFERENCES.md) and the cp leeward documents (docs/output.md), in range
-#: 1004 to 1005.7 of REFERENCES.md "Constants".
+#: Gas constant (docs/references.md) and the cp leeward documents (docs/output.md), in range
+#: 1004 to 1005.7 of docs/references.md "Constants".
 R_DRY = gribgen.R_DRY
 CP = 1004.6
 KAPPA = R_DRY / CP
 G = gribgen.G0
-PVU = 1e-6  # K m2 kg-1 s-1 (Hoskins et al. 1985; REFERENCES.md "Constants")
+PVU = 1e-6  # K m2 kg-1 s-1 (Hoskins et al. 1985; docs/references.md "Constants")
 
 #: Output contract defaults of the isentropic family.
 DEFAULT_SURFACES = np.arange(280.0, 360.0 + 1e-9, 5.0)
@@ -152,7 +152,7 @@ ON_SURFACES = ("isen_p", "isen_z", "isen_t", "isen_u", "isen_v", "isen_m", "isen
 
 @pytest.mark.parametrize("case", ISEN_CASES)
 def test_surfaces_outside_the_column_are_missing(case, closed_form_runs, closed_form_inputs):
-    # REFERENCES.md "Methods" (interpolation to isentropic surfaces) and the output
+    # docs/references.md "Methods" (interpolation to isentropic surfaces) and the output
     # contract: a surface below the lowest level or above the top level is missing, every
     # variable on it; every surface inside the column has a pressure at every point (a
     # column operation, no horizontal stencil).
@@ -177,9 +177,9 @@ def test_surfaces_outside_the_column_are_missing(case, closed_form_runs, closed_
 def test_isentropic_pressure_temperature_height(case, closed_form_runs, closed_form_inputs):
     # p(theta) = p0 (theta/theta_c)^(1/(c - kappa)) within 1 hPa (closed form above);
     # isen_t = theta (p/1e5)^kappa (Poisson's equation), isen_z = (T0/gamma)(1 - (p/p0)^c)
-    # (REFERENCES.md), isen_m = cp T + g z (Montgomery streamfunction; Bluestein 1992, from
+    # (docs/references.md), isen_m = cp T + g z (Montgomery streamfunction; Bluestein 1992, from
     # memory) at that p. T and z may be interpolated linearly in ln p between the bracketing
-    # levels (REFERENCES.md "Methods"), which is not exact for them: the bound is that
+    # levels (docs/references.md "Methods"), which is not exact for them: the bound is that
     # method's own error on these levels, computed here, plus a float32/packing margin.
     s = _setup(case, closed_form_runs, closed_form_inputs)
     lev = _levels_pa(case)
@@ -248,7 +248,7 @@ def _compare_rel(s, name, got, want, mask, tol):
 @pytest.mark.parametrize("case", ISEN_CASES)
 def test_isentropic_pv_closed_form(case, closed_form_runs, closed_form_inputs):
     # P = -g (2 u0 sin(lat)/a + f) dtheta/dp, dtheta/dp = (c - kappa) theta/p at p(theta)
-    # (Hoskins et al. 1985; Williamson et al. 1992; REFERENCES.md), in PVU, on the 300-340 K
+    # (Hoskins et al. 1985; Williamson et al. 1992; docs/references.md), in PVU, on the 300-340 K
     # surfaces inside the column, within 2% where |lat| >= 20.
     s = _setup(case, closed_form_runs, closed_form_inputs)
     lo, hi = _column_theta_range(case)
@@ -270,7 +270,7 @@ def test_isentropic_pv_closed_form(case, closed_form_runs, closed_form_inputs):
 @pytest.mark.parametrize("case", ISEN_CASES)
 def test_isobaric_pv_closed_form(case, closed_form_runs, closed_form_inputs):
     # The same closed form on every isobaric level (the baroclinic terms of the full
-    # isobaric form vanish for a horizontally uniform theta; Bluestein 1992, REFERENCES.md),
+    # isobaric form vanish for a horizontally uniform theta; Bluestein 1992, docs/references.md),
     # within 2% where |lat| >= 20, end levels included.
     s = _setup(case, closed_form_runs, closed_form_inputs)
     mask = _pv_mask(s)
@@ -349,7 +349,7 @@ def _check_tropopause(s: Setup, case, pvu_levels):
 
 @pytest.mark.parametrize("case", ISEN_CASES)
 def test_dynamic_tropopause_closed_form(case, closed_form_runs, closed_form_inputs):
-    # |PV| = 2 PVU, +2 north and -2 south of the equator (REFERENCES.md "Methods": dynamic
+    # |PV| = 2 PVU, +2 north and -2 south of the equator (docs/references.md "Methods": dynamic
     # tropopause, common practice), against the closed-form PV profile of each column.
     s = _setup(case, closed_form_runs, closed_form_inputs)
     reports, bad = _check_tropopause(s, case, s.prod.pv_level)
@@ -377,7 +377,7 @@ def _check_layers(s: Setup, case, bounds):
         assert np.all(err <= P_TOL_PA), (f"{case} layer_dp {bot:g}-{top:g} K: max |error| {np.nanmax(err):.4g} Pa "
                                          f"(closed form {dp:.2f} Pa; {int(np.isnan(err).sum())} missing)")
         worst_dp = max(worst_dp, float(err.max()))
-        # layer_pv = (zeta + f)/(p_bottom - p_top) (REFERENCES.md "Methods": layer PV in
+        # layer_pv = (zeta + f)/(p_bottom - p_top) (docs/references.md "Methods": layer PV in
         # pressure depth; potential_vorticity_of_atmosphere_layer, CF standard name table):
         # eta is the same at every level, so its layer mean is eta; within 2% for |lat| >= 20.
         worst_pv = max(worst_pv, _compare_rel(s, f"layer_pv {bot:g}-{top:g} K", s.prod.fields["layer_pv"][k],
@@ -457,7 +457,7 @@ def test_configured_layers_closed_form(configured):
 # ---------------------------------------------------------------------------------------
 #: Lapse rate 12 K/km, above the dry adiabatic g/cp = 9.8 K/km: theta falls with height
 #: at every level (c = R gamma/g = 0.351 > kappa), so every surface inside the column's
-#: theta range is bracketed by unstable layers only (REFERENCES.md "Methods": stability).
+#: theta range is bracketed by unstable layers only (docs/references.md "Methods": stability).
 UNSTABLE_GAMMA = 0.012
 
 
@@ -473,7 +473,7 @@ def unstable(leeward_bin, tmp_path_factory):
 
 
 def test_unstable_column_surfaces_missing(unstable):
-    # Output contract and REFERENCES.md "Methods": a surface whose bracketing layer is
+    # Output contract and docs/references.md "Methods": a surface whose bracketing layer is
     # statically unstable is missing. Here theta runs from 286.8 K at 1000 hPa down to
     # 246.7 K at 100 hPa: the 280 and 285 K surfaces lie inside that range, bracketed only
     # by unstable layers; nothing on them may be present.

@@ -1,6 +1,6 @@
 """leeward's isentropic and isobaric PV against an independent computation with MetPy.
 
-MetPy (PyPI `metpy`, pinned in requirements.txt; REFERENCES.md "Outside references") is a
+MetPy (PyPI `metpy`, pinned in requirements.txt; docs/references.md "Outside references") is a
 general-purpose meteorology library, used here only as a reference computation on the same
 input: the GFS sample's temperature and winds on its isobaric levels (read with ecCodes),
 interpolated by MetPy to isentropic surfaces (`isentropic_interpolation_as_dataset`, which
@@ -35,7 +35,7 @@ SURFACES_K = [310.0, 315.0, 320.0, 325.0, 330.0]
 ISOBARIC_HPA = [400, 300, 250, 200]
 #: Latitude band compared (see the module note).
 MIN_ABS_LAT, MAX_ABS_LAT = 20.0, 85.0
-#: 1 PVU = 1e-6 K m2 kg-1 s-1 (Hoskins et al. 1985; REFERENCES.md "Constants").
+#: 1 PVU = 1e-6 K m2 kg-1 s-1 (Hoskins et al. 1985; docs/references.md "Constants").
 SI_PV = "K m^2 / kg / s"
 PVU = 1e-6
 
@@ -65,7 +65,7 @@ def reference(samples_dir):
     mpcalc, units = _metpy()
     import xarray as xr
 
-    g0 = gribgen.G0 * units("m/s^2")  # standard gravity (REFERENCES.md "Constants")
+    g0 = gribgen.G0 * units("m/s^2")  # standard gravity (docs/references.md "Constants")
 
     path = samples_dir / GFS_SAMPLE
     if not path.is_file():
@@ -168,7 +168,7 @@ def _pv_bounds(ours, theirs):
 
 
 def test_isentropic_pv_320K_vs_metpy(compared):
-    # Ertel PV on 320 K (Hoskins et al. 1985; REFERENCES.md): leeward's isen_pv against
+    # Ertel PV on 320 K (Hoskins et al. 1985; docs/references.md): leeward's isen_pv against
     # MetPy's potential_vorticity_baroclinic on MetPy's own isentropic interpolation;
     # correlation >= 0.95 poleward of 20 degrees (judgement).
     prod, band, ref = compared
@@ -210,7 +210,7 @@ def test_isentropic_pressure_320K_vs_metpy(compared):
 
 @pytest.mark.parametrize("level_hpa", ISOBARIC_HPA)
 def test_isobaric_pv_vs_metpy(level_hpa, compared):
-    # Isobaric Ertel PV with its baroclinic terms (Bluestein 1992; REFERENCES.md "Methods"),
+    # Isobaric Ertel PV with its baroclinic terms (Bluestein 1992; docs/references.md "Methods"),
     # which the closed-form column cannot test (they vanish there): leeward's pv against
     # MetPy's potential_vorticity_baroclinic on the isobaric levels; correlation >= 0.95
     # poleward of 20 degrees (judgement, as on 320 K).
@@ -224,7 +224,7 @@ def test_isobaric_pv_vs_metpy(level_hpa, compared):
                    f"{rel:.3f} (|PV| >= {REL_FLOOR_PVU}), slope {slope:.3f} over {n} points")
     print(FIGURES[-1])
     assert n >= MIN_SHARE * band.sum(), f"only {n} of {int(band.sum())} points have PV from both"
-    # MetPy differences theta in p, leeward in ln p (REFERENCES.md "Methods"); around the
+    # MetPy differences theta in p, leeward in ln p (docs/references.md "Methods"); around the
     # tropopause, where theta grows nearly exponentially with -ln p, their dtheta/dp differ
     # by 4-5% in the median at 300-200 hPa (measured: leeward's stab / MetPy's -dtheta/dp
     # 0.96, 0.95, 0.96; absolute vorticity agrees to 1e-4), so the full PV is bounded at a
@@ -243,7 +243,7 @@ TILT_FLOOR_PVU = 0.1
 @pytest.mark.parametrize("level_hpa", ISOBARIC_HPA)
 def test_isobaric_pv_tilting_terms_vs_metpy(level_hpa, compared):
     # The baroclinic (tilting) part of isobaric PV, -g [ -(dv/dp)(dtheta/dx) + (du/dp)(dtheta/dy) ]
-    # (Bluestein 1992; REFERENCES.md "Methods"): leeward's pv minus g eta stab from the same
+    # (Bluestein 1992; docs/references.md "Methods"): leeward's pv minus g eta stab from the same
     # file, against MetPy's potential_vorticity_baroclinic minus -g (zeta + f) dtheta/dp from
     # MetPy's own functions. Dropping the terms gives a slope of 0, flipping their sign -1,
     # dropping one of the two or flipping its sign moves the slope and the median relative

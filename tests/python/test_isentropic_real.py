@@ -30,12 +30,12 @@ from ncproducts import align_to_product, read_isentropic, vertical_index
 #: Exit codes of `leeward process`: 0 all done, 3 some input unusable but products written.
 OK_CODES = (0, 3)
 
-#: Code table 4.5 value 109, potential vorticity surface (WMO-No. 306; REFERENCES.md).
+#: Code table 4.5 value 109, potential vorticity surface (WMO-No. 306; docs/references.md).
 PV_SURFACE = 109
 #: Code table 4.2, discipline 0: (category, number) of the model's fields on it.
 MODEL_PARAMS = {"p": (3, 0), "t": (0, 0), "z": (3, 5), "u": (2, 2), "v": (2, 3)}
 #: Poisson's equation with kappa = 287.05/1004.6, the constants leeward documents
-#: (docs/output.md), within the common-practice 0.2857 (REFERENCES.md).
+#: (docs/output.md), within the common-practice 0.2857 (docs/references.md).
 KAPPA = 287.05 / 1004.6
 
 #: Hemispheres compared: (PV surface in PVU, latitude band), the bands of the samples
@@ -48,7 +48,7 @@ def _signed_level_pvu(h) -> float:
     raw = eccodes.codes_get_long(h, "scaledValueOfFirstFixedSurface")
     scale = eccodes.codes_get_long(h, "scaleFactorOfFirstFixedSurface")
     sign = -1.0 if raw & 0x80000000 else 1.0
-    # value = scaled / 10^scale K m2 kg-1 s-1; in PVU (1e-6, REFERENCES.md) divide by 1e-6.
+    # value = scaled / 10^scale K m2 kg-1 s-1; in PVU (1e-6, docs/references.md) divide by 1e-6.
     return sign * (raw & 0x7FFFFFFF) / 10.0 ** (scale - 6)
 
 
@@ -203,7 +203,7 @@ def test_folds_are_consistent_and_rare(gfs):
 
 def _model_theta(m):
     """The model's potential temperature on its PV surface: Poisson's equation on its own
-    temperature and pressure there (REFERENCES.md "Methods")."""
+    temperature and pressure there (docs/references.md "Methods")."""
     return m["t"] * (1e5 / m["p"]) ** KAPPA
 
 

@@ -98,11 +98,12 @@ CLIENT_KINDS = [k for k in KINDS if k not in ("latlon_from_minus_180", "latlon_r
 
 
 def wavy_step(path: Path, grid: gribgen.Grid, lead: int) -> Path:
-    """One step on `grid`: the constant-lapse-rate column (REFERENCES.md check values) with
+    """One step on `grid`: the constant-lapse-rate column (docs/references.md "Check values") with
     waves in longitude: T + 3 K cos(lat) cos(lon), z + 80 m cos(lat) sin(lon) + 0.05 m per
     degree east of 0 E (so that no two columns of a parallel agree), u = 30 cos(lat) +
-    3 sin(2 lon) m/s, v = 4 cos(lat) sin(lon) m/s, toward east and north; the waves move
-    east 10 degrees per 6 h, so that a later step differs."""
+    3 sin(2 lon) m/s, v = 4 cos(lat) sin(lon) m/s, toward east and north, relative humidity
+    60 + 20 cos(lat) sin(lon) %, mean sea-level pressure 1010 + 15 cos(lat) cos(lon) hPa;
+    the waves move east 10 degrees per 6 h, so that a later step differs."""
     geo = gribgen.geometry(grid)
     lat = np.radians(geo.lat)
     east = np.mod(geo.lon + 10.0 * lead / 6.0, 360.0)
@@ -117,9 +118,12 @@ def wavy_step(path: Path, grid: gribgen.Grid, lead: int) -> Path:
         v = 4.0 * np.cos(lat) * np.sin(lon)
         kw = dict(times=gribgen.Times(step=lead), centre=98, grid_relative=False,
                   packing="grid_simple", bits=24)
+        rh = 60.0 + 20.0 * np.cos(lat) * np.sin(lon)
         for values, param in ((t, gribgen.PARAM_T), (z, gribgen.PARAM_GH), (u, gribgen.PARAM_U),
-                              (v, gribgen.PARAM_V)):
+                              (v, gribgen.PARAM_V), (rh, gribgen.PARAM_RH)):
             msgs.append(gribgen.encode_field(grid, geo, values, param, lev, **kw))
+    mslp = 101_000.0 + 1500.0 * np.cos(lat) * np.cos(lon)
+    msgs.append(gribgen.encode_field(grid, geo, mslp, gribgen.PARAM_MSLP, 0, level_type=gribgen.LEVEL_MSL, **kw))
     path.write_bytes(b"".join(msgs))
     return path
 
@@ -207,9 +211,16 @@ def made(leeward_bin, tmp_path_factory) -> dict[str, Made]:
 
 
 def _data_variables(ds) -> list[str]:
-    """Names of the data variables: the variables of four dimensions (time, vertical, y, x;
-    output contract). Not chosen by their grid_mapping, so that one without it is checked."""
-    return [n for n, v in ds.variables.items() if v.ndim == 4]
+    """Names of the data variables: four dimensions (time, vertical, y, x), or three for a
+    single-level field (time, y, x) (output contract, docs/output.md). Not chosen by their
+    grid_mapping, so that one without it is checked."""
+    return [n for n, v in ds.variables.items() if v.ndim in (3, 4)]
+
+
+#: The single-level fields (time, y, x) the inputs below give (docs/output.md "Single-level
+#: fields"): mean sea-level pressure from the input, the steering wind, the Eady growth rate
+#: and the low-level PV of their layers; mslp_chg_06h in the step with changes.
+SINGLE_LEVEL = {"mslp", "steer_u", "steer_v", "eady", "low_pv"}
 
 
 def test_cf_1_11_attributes(made):
@@ -230,11 +241,22 @@ def test_cf_1_11_attributes(made):
                 assert not any(k.startswith("leeward_significant") for k in a), (kind, n)
                 if a.get("units") == "K":
                     assert a.get("units_metadata") == "temperature: on_scale", (kind, n)
-                vdim = ds[n].dimensions[1]
-                assert ds[vdim].getncattr("axis") == "Z", (kind, n, vdim)
+                if ds[n].ndim == 4:
+                    vdim = ds[n].dimensions[1]
+                    assert ds[vdim].getncattr("axis") == "Z", (kind, n, vdim)
                 coords = a["coordinates"].split()
                 assert ("realization" in coords) == (kind == "ensemble_member"), (kind, n, coords)
             assert "leeward_member" not in ds.ncattrs()
+            # The single-level fields: (time, y, x), no vertical dimension; the layer a
+            # field stands for said in leeward_layer_hpa.
+            flat = {n for n in _data_variables(ds) if ds[n].ndim == 3}
+            assert SINGLE_LEVEL <= flat, (kind, sorted(flat))
+            for n in flat:
+                assert ds[n].dimensions[0] == "time" and ds[n].dimensions[1:] == ds["z"].dimensions[2:], (kind, n)
+            assert ds["eady"].getncattr("leeward_layer_hpa") == "850-500"
+            assert ds["low_pv"].getncattr("leeward_layer_hpa") == "900-700"
+            # Humidity in the input gives theta-e and humidity on isentropes.
+            assert {"theta_e", "isen_rh", "isen_q"} <= set(_data_variables(ds)), kind
             if kind == "ensemble_member":
                 r = ds["realization"]
                 assert (r.getncattr("standard_name"), int(r[...])) == ("realization", 7)
@@ -248,7 +270,7 @@ def test_the_budget_and_changes_are_in_the_file_checked(made):
     # time", "PV budget"): the checks below then cover those variables too.
     with netCDF4.Dataset(made["changes_and_budget"].file) as ds:
         names = set(ds.variables)
-        assert {"bud_dpvdt", "bud_zeta", "bud_stretch"} <= names, sorted(names)
+        assert {"bud_dpvdt", "bud_zeta", "bud_stretch", "mslp_chg_06h"} <= names, sorted(names)
         assert any(n.startswith("thick_chg_06h_") for n in names), sorted(names)
         assert isinstance(ds["bud_dpvdt"].getncattr("leeward_budget_interval_h"), (float, np.floating))
 
@@ -416,11 +438,14 @@ def test_iris_loads_without_warnings(kind, made):
     assert not said, f"{kind}: Iris warns: {said}"
     with netCDF4.Dataset(made[kind].file) as ds:
         names = set(_data_variables(ds))
+        single = {n for n in names if ds[n].ndim == 3}
     data = [c for c in cubes if c.var_name in names]
     assert {c.var_name for c in data} == names, f"{kind}: Iris did not load {names - {c.var_name for c in data}}"
     for c in data:
         assert c.coord_system() is not None, f"{kind}:{c.var_name}: no coordinate system"
         assert not c.units.is_unknown(), f"{kind}:{c.var_name}: units {c.units}"
+        if c.var_name in single:
+            continue  # a single-level field: its level is in its standard name or leeward_layer_hpa
         z = c.coords(axis="Z")
         assert z, f"{kind}:{c.var_name}: no vertical coordinate ({[x.name() for x in c.coords()]})"
 
@@ -432,8 +457,10 @@ def test_iris_loads_without_warnings(kind, made):
 def test_cf_xarray_finds_every_axis(kind, made):
     pytest.importorskip("cf_xarray", reason="cf_xarray (PyPI cf-xarray) is not installed")
     with xr.open_dataset(made[kind].file) as ds:
-        missing = {v: sorted(ds[v].cf.axes) for v in ds.data_vars if ds[v].ndim == 4
-                   and not {"X", "Y", "Z", "T"} <= set(ds[v].cf.axes)}
+        # Single-level fields (time, y, x) have no Z.
+        want = {4: {"X", "Y", "Z", "T"}, 3: {"X", "Y", "T"}}
+        missing = {v: sorted(ds[v].cf.axes) for v in ds.data_vars if ds[v].ndim in want
+                   and "grid_mapping" in ds[v].attrs and not want[ds[v].ndim] <= set(ds[v].cf.axes)}
     assert not missing, f"{kind}: axes found by cf_xarray {missing}"
 
 
@@ -443,7 +470,8 @@ def test_metpy_crs_units_and_vertical(kind, made):
     problems = {}
     with xr.open_dataset(made[kind].file) as ds:
         parsed = ds.metpy.parse_cf()
-        names = [v for v in parsed.data_vars if parsed[v].ndim == 4]
+        names = [v for v in parsed.data_vars if parsed[v].ndim in (3, 4)
+                 and "grid_mapping" in ds[v].attrs]
         # Every variable gets the grid mapping as its metpy_crs; PROJ builds it once here
         # (building it costs most of a second and is the same for every variable).
         crs = parsed[names[0]].metpy.pyproj_crs
@@ -451,7 +479,8 @@ def test_metpy_crs_units_and_vertical(kind, made):
             try:
                 assert parsed[v].metpy.crs == parsed[names[0]].metpy.crs, "another CRS"
                 parsed[v].metpy.units
-                parsed[v].metpy.vertical
+                if parsed[v].ndim == 4:
+                    parsed[v].metpy.vertical
                 parsed[v].metpy.quantify()
             except Exception as e:  # noqa: BLE001  (any failure is the finding)
                 problems[v] = f"{type(e).__name__}: {e}"
@@ -463,7 +492,7 @@ def test_pv_units_read_by_every_unit_library(made):
     # The PV units of the files (isen_pv, pv, pv_level; bud_dpvdt) read by pint as MetPy
     # reads a units attribute (parse_units), by cf_units (Iris) and by UDUNITS itself (the
     # udunits2 program, Debian udunits-bin); 1 PVU = 1e-6 K m2 kg-1 s-1 and 1 PVU per hour
-    # = 1e-6/3600 K m2 kg-1 s-2 (Hoskins et al. 1985; REFERENCES.md "Constants"). The
+    # = 1e-6/3600 K m2 kg-1 s-2 (Hoskins et al. 1985; docs/references.md "Constants"). The
     # former "1e-6 K m2 kg-1 s-1" is refused by pint, which the first assertion shows.
     from metpy.units import units as mu
     import cf_units

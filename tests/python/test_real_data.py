@@ -74,7 +74,7 @@ def test_eta_lambert_vorticity_500hpa(real_runs, samples_dir):
     # Match by lat/lon (leeward may flip rows); the latitudes are ecCodes' own.
     lat, lon, absv = align_to_product(prod, ref["lat"], ref["lon"], ref["values"])
     # The model's relative vorticity: its absolute vorticity minus f = 2 Omega sin(lat)
-    # at its own latitudes (Omega 7.292115e-5 s-1, REFERENCES.md).
+    # at its own latitudes (Omega 7.292115e-5 s-1, docs/references.md).
     model_zeta = absv - gribgen.coriolis(lat)
     k = level_index(prod, 500)
     zeta = prod.fields["zeta"][k]

@@ -1,9 +1,9 @@
 """The dynamic tropopause and its folds on columns whose PV is known, encoded with ecCodes.
 
 A global 2.5-degree grid at rest (u = v = 0), so that absolute vorticity is the Coriolis
-parameter f = 2 Omega sin(lat) exactly (REFERENCES.md "Methods", Omega 7.292115e-5 s-1), and
+parameter f = 2 Omega sin(lat) exactly (docs/references.md "Methods", Omega 7.292115e-5 s-1), and
 Ertel PV on isobaric levels is P = -g f dtheta/dp with no tilting terms (Bluestein 1992;
-REFERENCES.md "Methods": they vanish without vertical wind shear). Temperature depends on
+docs/references.md "Methods": they vanish without vertical wind shear). Temperature depends on
 latitude and pressure only, one profile per latitude band, both hemispheres alike:
 
 - |lat| < 20: a tropical column, troposphere at 6.5 K/km up to 100 hPa and warming above;
@@ -37,7 +37,7 @@ from ncproducts import align_to_product, read_isentropic, vertical_index
 
 LEVELS_HPA = (10, 20, 30, 50, 70, 100, 150, 200, 250, 300, 350, 400, 450, 500, 550, 600, 650,
               700, 750, 800, 850, 900, 950, 1000)
-#: Constants leeward documents (docs/output.md): R, cp, g0; REFERENCES.md "Constants".
+#: Constants leeward documents (docs/output.md): R, cp, g0; docs/references.md "Constants".
 KAPPA = gribgen.R_DRY / 1004.6
 G = gribgen.G0
 C = gribgen.lapse_rate_exponent()  # R gamma / g for 6.5 K/km

@@ -68,6 +68,26 @@ impl Mask {
     pub fn any(&self) -> bool {
         self.cover.iter().any(|&c| c > 0.0)
     }
+
+    /// The covered pixels only, to lay on an image.
+    pub fn strokes(&self) -> Strokes {
+        let covered = self
+            .cover
+            .iter()
+            .enumerate()
+            .filter(|(_, &c)| c > 0.0)
+            .map(|(k, &c)| (k as u32, c))
+            .collect();
+        Strokes { w: self.w, covered }
+    }
+}
+
+/// The covered pixels of a [`Mask`], row by row: (pixel index, coverage).
+pub struct Strokes {
+    /// Width of the mask, pixels.
+    pub w: usize,
+    /// Index (row times width plus column) and coverage of each covered pixel.
+    pub covered: Vec<(u32, f32)>,
 }
 
 /// Where the level crosses the edge between two corner values, as a fraction

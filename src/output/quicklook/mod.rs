@@ -294,11 +294,32 @@ pub fn render(q: &Quicklook<'_>) -> Result<Vec<u8>, String> {
 /// at each point and a larger one at its last. A segment that jumps more than
 /// half the grid's width (across the seam of a global grid) is not drawn.
 pub fn render_with_marks(q: &Quicklook<'_>, marks: &[Vec<(f64, f64)>]) -> Result<Vec<u8>, String> {
-    let shape = q.values.dim();
-    let mut shapes = vec![("lat", q.lat.dim()), ("lon", q.lon.dim())];
-    if let Outline::Terrain { height, .. } = q.outline {
-        shapes.push(("terrain", height.dim()));
+    if let Some((name, s)) = [("lat", q.lat.dim()), ("lon", q.lon.dim())]
+        .into_iter()
+        .find(|(_, s)| *s != q.values.dim())
+    {
+        return Err(format!(
+            "quicklook: shapes differ: values {:?}, {name} {s:?}",
+            q.values.dim()
+        ));
     }
+    draw_on(q, &Backdrop::new(q.lat, q.lon, &q.outline)?, marks)
+}
+
+/// Draw `q` on a backdrop already worked out for its grid and outline (by
+/// [`Backdrop::new`] from `q.lat`, `q.lon` and `q.outline`, or from those
+/// of another image of the same grid): what [`render`] does, without
+/// working out the same geometry again for every image of a step.
+///
+/// Errors as [`render`]; a backdrop of another shape than the values is one.
+pub fn render_on(q: &Quicklook<'_>, b: &Backdrop) -> Result<Vec<u8>, String> {
+    draw_on(q, b, &[])
+}
+
+/// [`render_on`] with the marks of [`render_with_marks`].
+fn draw_on(q: &Quicklook<'_>, b: &Backdrop, marks: &[Vec<(f64, f64)>]) -> Result<Vec<u8>, String> {
+    let shape = q.values.dim();
+    let mut shapes = vec![("backdrop", (b.place.ny, b.place.nx))];
     if let Some(c) = &q.contour {
         shapes.push(("contour field", c.values.dim()));
     }
@@ -316,21 +337,15 @@ pub fn render_with_marks(q: &Quicklook<'_>, marks: &[Vec<(f64, f64)>]) -> Result
     let mut img = Canvas::new(lay.width, lay.height, BACKGROUND);
 
     draw_bands(&mut img, &lay, q.title, q.subtitle);
-    let flip = flip_rows(&q.lat);
-    draw_map(&mut img, &lay, q, flip);
-    let place = Placement {
-        nx,
-        ny,
-        w: lay.map_w,
-        h: lay.map_h,
-        flip,
-    };
-    let note = draw_outline(&mut img, &lay, &place, &q.outline);
+    draw_map(&mut img, &lay, q, b);
+    for (strokes, alpha) in &b.outline {
+        ink_strokes(&mut img, &lay, strokes, *alpha);
+    }
     if let Some(c) = &q.contour {
-        draw_contour(&mut img, &lay, &place, c);
+        draw_contour(&mut img, &lay, &b.place, c);
     }
     if !marks.is_empty() {
-        draw_marks(&mut img, &lay, &place, marks);
+        draw_marks(&mut img, &lay, &b.place, marks);
     }
     img.frame(lay.map_x, lay.map_y, lay.map_w, lay.map_h, FRAME);
     draw_colour_bar(&mut img, &lay, &q.scale);
@@ -339,9 +354,67 @@ pub fn render_with_marks(q: &Quicklook<'_>, marks: &[Vec<(f64, f64)>]) -> Result
         &lay,
         q.units,
         q.contour.as_ref().map(|c| c.label),
-        &note,
+        &b.note,
     );
     img.encode()
+}
+
+/// What every image of one grid shares, worked out once for all of them:
+/// which way up the rows go, the map pixels the graticule passes through
+/// and the strokes of the outline with the note that says where it comes
+/// from. It depends on the grid's coordinates and the outline only, not on
+/// the field drawn.
+pub struct Backdrop {
+    place: Placement,
+    /// Map pixels (row by row) the graticule passes through.
+    graticule: Vec<u32>,
+    /// The outline's strokes in the order they are inked, each at its opacity.
+    outline: Vec<(lines::Strokes, f32)>,
+    note: String,
+}
+
+impl Backdrop {
+    /// The backdrop of a grid with these coordinates (as [`Quicklook::lat`]
+    /// and [`Quicklook::lon`]) and outline. Errors: the arrays differ in shape
+    /// (the message names the shapes) or the grid is empty.
+    pub fn new(
+        lat: ArrayView2<'_, f64>,
+        lon: ArrayView2<'_, f64>,
+        outline: &Outline<'_>,
+    ) -> Result<Backdrop, String> {
+        let shape = lat.dim();
+        let mut shapes = vec![("lon", lon.dim())];
+        if let Outline::Terrain { height, .. } = outline {
+            shapes.push(("terrain", height.dim()));
+        }
+        if let Some((name, s)) = shapes.iter().find(|(_, s)| *s != shape) {
+            return Err(format!(
+                "quicklook: shapes differ: lat {shape:?}, {name} {s:?}"
+            ));
+        }
+        let (ny, nx) = shape;
+        if ny == 0 || nx == 0 {
+            return Err(format!("quicklook: empty grid {shape:?}"));
+        }
+        let lay = layout(nx, ny);
+        let flip = flip_rows(&lat);
+        let place = Placement {
+            nx,
+            ny,
+            w: lay.map_w,
+            h: lay.map_h,
+            flip,
+        };
+        let (plat, plon) = pixel_coordinates(&lat, &lon, &place);
+        let graticule = graticule_pixels(&plat, &plon, place.w, place.h);
+        let (outline, note) = outline_strokes(&place, outline);
+        Ok(Backdrop {
+            place,
+            graticule,
+            outline,
+            note,
+        })
+    }
 }
 
 /// Where each part of the image goes.
@@ -474,10 +547,16 @@ impl Placement {
 
 /// Latitude and longitude at the centre of each map pixel, interpolated
 /// bilinearly between the four surrounding grid points (longitudes unwrapped
-/// about the first of them, so a seam between them does not matter).
-fn pixel_coordinates(q: &Quicklook<'_>, lay: &Layout, flip: bool) -> (Vec<f64>, Vec<f64>) {
-    let (ny, nx) = q.values.dim();
-    let (w, h) = (lay.map_w, lay.map_h);
+/// about the first of them, so a seam between them does not matter); rows of
+/// pixels on every core.
+fn pixel_coordinates(
+    glat: &ArrayView2<'_, f64>,
+    glon: &ArrayView2<'_, f64>,
+    place: &Placement,
+) -> (Vec<f64>, Vec<f64>) {
+    use rayon::prelude::*;
+    let (ny, nx) = (place.ny, place.nx);
+    let (w, h) = (place.w, place.h);
     let mut lat = vec![f64::NAN; w * h];
     let mut lon = vec![f64::NAN; w * h];
     let columns: Vec<(usize, usize, f64)> = (0..w)
@@ -487,33 +566,35 @@ fn pixel_coordinates(q: &Quicklook<'_>, lay: &Layout, flip: bool) -> (Vec<f64>, 
             (i0, (i0 + 1).min(nx - 1), g - i0 as f64)
         })
         .collect();
-    for py in 0..h {
-        let gd = fractional(py, h, ny);
-        let g = if flip { (ny - 1) as f64 - gd } else { gd };
-        let j0 = (g.floor() as usize).min(ny - 1);
-        let j1 = (j0 + 1).min(ny - 1);
-        let fy = g - j0 as f64;
-        for (px, &(i0, i1, fx)) in columns.iter().enumerate() {
-            let bilinear = |a: f64, b: f64, c: f64, d: f64| {
-                (1.0 - fy) * ((1.0 - fx) * a + fx * b) + fy * ((1.0 - fx) * c + fx * d)
-            };
-            let k = py * w + px;
-            lat[k] = bilinear(
-                q.lat[[j0, i0]],
-                q.lat[[j0, i1]],
-                q.lat[[j1, i0]],
-                q.lat[[j1, i1]],
-            );
-            let base = q.lon[[j0, i0]];
-            let un = |x: f64| base + wrap180(x - base);
-            lon[k] = bilinear(
-                base,
-                un(q.lon[[j0, i1]]),
-                un(q.lon[[j1, i0]]),
-                un(q.lon[[j1, i1]]),
-            );
-        }
-    }
+    lat.par_chunks_mut(w)
+        .zip(lon.par_chunks_mut(w))
+        .enumerate()
+        .for_each(|(py, (lat_row, lon_row))| {
+            let gd = fractional(py, h, ny);
+            let g = if place.flip { (ny - 1) as f64 - gd } else { gd };
+            let j0 = (g.floor() as usize).min(ny - 1);
+            let j1 = (j0 + 1).min(ny - 1);
+            let fy = g - j0 as f64;
+            for (px, &(i0, i1, fx)) in columns.iter().enumerate() {
+                let bilinear = |a: f64, b: f64, c: f64, d: f64| {
+                    (1.0 - fy) * ((1.0 - fx) * a + fx * b) + fy * ((1.0 - fx) * c + fx * d)
+                };
+                lat_row[px] = bilinear(
+                    glat[[j0, i0]],
+                    glat[[j0, i1]],
+                    glat[[j1, i0]],
+                    glat[[j1, i1]],
+                );
+                let base = glon[[j0, i0]];
+                let un = |x: f64| base + wrap180(x - base);
+                lon_row[px] = bilinear(
+                    base,
+                    un(glon[[j0, i1]]),
+                    un(glon[[j1, i0]]),
+                    un(glon[[j1, i1]]),
+                );
+            }
+        });
     (lat, lon)
 }
 
@@ -550,8 +631,9 @@ fn graticule_step(lon: &[f64], w: usize, h: usize) -> f64 {
 /// Map pixels the graticule passes through: for each pair of neighbouring
 /// pixels, across and down, whose latitudes or longitudes straddle a
 /// multiple of the step, the one nearer the line. The poles are points,
-/// not parallels: a grid row at 90 N or S gets no line.
-fn graticule_mask(lat: &[f64], lon: &[f64], w: usize, h: usize) -> Vec<bool> {
+/// not parallels: a grid row at 90 N or S gets no line. The pixels are
+/// given by their index, row by row.
+fn graticule_pixels(lat: &[f64], lon: &[f64], w: usize, h: usize) -> Vec<u32> {
     let step = graticule_step(lon, w, h);
     let mut mask = vec![false; w * h];
     let mut mark = |a: usize, b: usize| {
@@ -575,7 +657,7 @@ fn graticule_mask(lat: &[f64], lon: &[f64], w: usize, h: usize) -> Vec<bool> {
             }
         }
     }
-    mask
+    (0..w * h).filter(|&k| mask[k]).map(|k| k as u32).collect()
 }
 
 /// Whether a line over colour `c` is better dark (light ground) or light.
@@ -583,40 +665,60 @@ fn dark_over(c: [u8; 3]) -> bool {
     ramps::lightness(c) > 0.62
 }
 
-/// A graticule pixel over `c`: a faint line, darkened over light colours and
-/// lightened over dark ones.
-fn graticule_colour(c: [u8; 3]) -> [u8; 3] {
-    let (target, amount) = if dark_over(c) {
-        (0.0, 0.3)
-    } else {
-        (255.0, 0.35)
-    };
+/// A graticule pixel over `c`: a faint line, darkened over light colours
+/// (`dark`, [`dark_over`]) and lightened over dark ones.
+fn graticule_colour(c: [u8; 3], dark: bool) -> [u8; 3] {
+    let (target, amount) = if dark { (0.0, 0.3) } else { (255.0, 0.35) };
     c.map(|v| (f64::from(v) + amount * (target - f64::from(v))).round() as u8)
 }
 
-fn draw_map(img: &mut Canvas, lay: &Layout, q: &Quicklook<'_>, flip: bool) {
+/// The field in its bands, nearest grid point to each map pixel, then the
+/// graticule over it.
+fn draw_map(img: &mut Canvas, lay: &Layout, q: &Quicklook<'_>, b: &Backdrop) {
     let (ny, nx) = q.values.dim();
     let (w, h) = (lay.map_w, lay.map_h);
     let columns: Vec<usize> = (0..w).map(|px| nearest(px, w, nx)).collect();
-    let (lat, lon) = pixel_coordinates(q, lay, flip);
-    let mask = graticule_mask(&lat, &lon, w, h);
     let bands: Vec<[u8; 3]> = (0..q.scale.bands())
         .map(|k| q.scale.band_colour(k))
         .collect();
     for py in 0..h {
         let rd = nearest(py, h, ny);
-        let r = if flip { ny - 1 - rd } else { rd };
+        let row = q.values.row(if b.place.flip { ny - 1 - rd } else { rd });
         for (px, &c) in columns.iter().enumerate() {
-            let v = q.values[[r, c]];
-            let mut colour = if v.is_finite() {
+            let v = row[c];
+            let colour = if v.is_finite() {
                 bands[q.scale.band_of(f64::from(v))]
             } else {
                 MISSING
             };
-            if mask[py * w + px] {
-                colour = graticule_colour(colour);
-            }
             img.set(lay.map_x + px, lay.map_y + py, colour);
+        }
+    }
+    let mut shade = Recall::default();
+    for &k in &b.graticule {
+        let (x, y) = (lay.map_x + k as usize % w, lay.map_y + k as usize / w);
+        let under = img.px(x, y);
+        let dark = shade.dark_over(under);
+        img.set(x, y, graticule_colour(under, dark));
+    }
+}
+
+/// [`dark_over`] of the last colour asked about, kept: neighbouring pixels
+/// under a line are mostly of one band.
+#[derive(Default)]
+struct Recall {
+    last: Option<([u8; 3], bool)>,
+}
+
+impl Recall {
+    fn dark_over(&mut self, c: [u8; 3]) -> bool {
+        match self.last {
+            Some((l, d)) if l == c => d,
+            _ => {
+                let d = dark_over(c);
+                self.last = Some((c, d));
+                d
+            }
         }
     }
 }
@@ -624,33 +726,29 @@ fn draw_map(img: &mut Canvas, lay: &Layout, q: &Quicklook<'_>, flip: bool) {
 // ---------------------------------------------------------------------------
 // Lines over the map
 
-/// Lay a mask's strokes on the map: dark ink where the ground is light,
-/// near-white where it is dark, at `alpha` of their coverage.
-fn ink_mask(img: &mut Canvas, lay: &Layout, m: &Mask, alpha: f32) {
-    for y in 0..m.h {
-        for x in 0..m.w {
-            let c = m.cover[y * m.w + x];
-            if c > 0.0 {
-                let (ix, iy) = (lay.map_x + x, lay.map_y + y);
-                let under = img.px(ix, iy);
-                let ink = if dark_over(under) {
-                    INK
-                } else {
-                    [250, 250, 250]
-                };
-                img.blend(ix, iy, ink, c * alpha);
-            }
-        }
+/// Lay strokes on the map: dark ink where the ground is light, near-white
+/// where it is dark, at `alpha` of their coverage.
+fn ink_strokes(img: &mut Canvas, lay: &Layout, s: &lines::Strokes, alpha: f32) {
+    let mut shade = Recall::default();
+    for &(k, c) in &s.covered {
+        let (x, y) = (lay.map_x + k as usize % s.w, lay.map_y + k as usize / s.w);
+        let ink = if shade.dark_over(img.px(x, y)) {
+            INK
+        } else {
+            [250, 250, 250]
+        };
+        img.blend(x, y, ink, c * alpha);
     }
 }
 
-/// Draw the outline; returns the note that says where it comes from.
-fn draw_outline(img: &mut Canvas, lay: &Layout, place: &Placement, o: &Outline<'_>) -> String {
+/// The outline's strokes, in the order they are inked with their opacity,
+/// and the note that says where the outline comes from.
+fn outline_strokes(place: &Placement, o: &Outline<'_>) -> (Vec<(lines::Strokes, f32)>, String) {
     match o {
-        Outline::None => String::new(),
+        Outline::None => (Vec::new(), String::new()),
         Outline::Coastlines(grid) => {
             if grid.shape() != (place.ny, place.nx) {
-                return String::new();
+                return (Vec::new(), String::new());
             }
             let mut coast = Mask::new(place.w, place.h);
             let mut border = Mask::new(place.w, place.h);
@@ -661,18 +759,21 @@ fn draw_outline(img: &mut Canvas, lay: &Layout, place: &Placement, o: &Outline<'
                 };
                 stroke_geographic(m, place, grid, &line.points, half);
             }
-            ink_mask(img, lay, &border, 0.55);
-            ink_mask(img, lay, &coast, 0.9);
-            "coastlines and borders: Natural Earth".into()
+            (
+                vec![(border.strokes(), 0.55), (coast.strokes(), 0.9)],
+                "coastlines and borders: Natural Earth".into(),
+            )
         }
         Outline::Terrain { height, levels } => {
             let mut m = Mask::new(place.w, place.h);
             for &level in levels.iter() {
-                stroke_contour(&mut m, place, height, level, 0.55);
+                stroke_segments(&mut m, place, &lines::contour(height, level), 0.55);
             }
-            ink_mask(img, lay, &m, 0.85);
             let heights: Vec<String> = levels.iter().map(|l| format!("{l}")).collect();
-            format!("outline: model terrain at {} m", heights.join(", "))
+            (
+                vec![(m.strokes(), 0.85)],
+                format!("outline: model terrain at {} m", heights.join(", ")),
+            )
         }
     }
 }
@@ -695,20 +796,22 @@ fn stroke_geographic(m: &mut Mask, place: &Placement, grid: &Grid, pts: &[(f64, 
     }
 }
 
-fn stroke_contour(m: &mut Mask, place: &Placement, v: &ArrayView2<'_, f32>, level: f64, half: f64) {
-    for [a, b] in lines::contour(v, level) {
+/// Stroke contour segments given in grid coordinates.
+fn stroke_segments(m: &mut Mask, place: &Placement, segs: &[[(f64, f64); 2]], half: f64) {
+    for [a, b] in segs {
         m.segment(place.pixel(a.0, a.1), place.pixel(b.0, b.1), half);
     }
 }
 
 /// The contour line: a dark core in a light halo, readable on any colour.
 fn draw_contour(img: &mut Canvas, lay: &Layout, place: &Placement, c: &Contour<'_>) {
+    let segs = lines::contour(&c.values, c.level);
     let mut halo = Mask::new(place.w, place.h);
     let mut core = Mask::new(place.w, place.h);
-    stroke_contour(&mut halo, place, &c.values, c.level, 2.4);
-    stroke_contour(&mut core, place, &c.values, c.level, 1.3);
-    blend_mask(img, lay, &halo, [255, 255, 255], 0.85);
-    blend_mask(img, lay, &core, CONTOUR_INK, 1.0);
+    stroke_segments(&mut halo, place, &segs, 2.4);
+    stroke_segments(&mut core, place, &segs, 1.3);
+    blend_strokes(img, lay, &halo.strokes(), [255, 255, 255], 0.85);
+    blend_strokes(img, lay, &core.strokes(), CONTOUR_INK, 1.0);
 }
 
 /// Tracks over the map: dark lines and dots with a white halo.
@@ -730,21 +833,17 @@ fn draw_marks(img: &mut Canvas, lay: &Layout, place: &Placement, marks: &[Vec<(f
             core.segment(c, c, r);
         }
     }
-    blend_mask(img, lay, &halo, [255, 255, 255], 0.9);
-    blend_mask(img, lay, &core, CONTOUR_INK, 1.0);
+    blend_strokes(img, lay, &halo.strokes(), [255, 255, 255], 0.9);
+    blend_strokes(img, lay, &core.strokes(), CONTOUR_INK, 1.0);
 }
 
 /// Colour of the contour line's core.
 const CONTOUR_INK: [u8; 3] = [12, 12, 16];
 
-fn blend_mask(img: &mut Canvas, lay: &Layout, m: &Mask, ink: [u8; 3], alpha: f32) {
-    for y in 0..m.h {
-        for x in 0..m.w {
-            let c = m.cover[y * m.w + x];
-            if c > 0.0 {
-                img.blend(lay.map_x + x, lay.map_y + y, ink, c * alpha);
-            }
-        }
+fn blend_strokes(img: &mut Canvas, lay: &Layout, s: &lines::Strokes, ink: [u8; 3], alpha: f32) {
+    for &(k, c) in &s.covered {
+        let (x, y) = (lay.map_x + k as usize % s.w, lay.map_y + k as usize / s.w);
+        img.blend(x, y, ink, c * alpha);
     }
 }
 
@@ -956,7 +1055,7 @@ impl Canvas {
         for (dst, &over) in self.rgb[k..k + 3].iter_mut().zip(&c) {
             let under = linear[usize::from(*dst)];
             let mixed = under + a * (linear[usize::from(over)] - under);
-            *dst = (ramps::encode(mixed) * 255.0).round() as u8;
+            *dst = ramps::encode_u8(mixed);
         }
     }
 

@@ -92,7 +92,17 @@ pub fn linear_table() -> &'static [f64; 256] {
 
 /// 8-bit sRGB to linear light.
 pub fn to_linear(c: [u8; 3]) -> [f64; 3] {
-    c.map(|v| decode(f64::from(v) / 255.0))
+    let t = linear_table();
+    c.map(|v| t[usize::from(v)])
+}
+
+/// Linear light (0..1) to the nearest 8-bit sRGB value: the same as
+/// `(encode(x) * 255).round()`, found among the 255 linear values halfway
+/// between neighbouring 8-bit values instead of through a power.
+pub fn encode_u8(x: f64) -> u8 {
+    static HALFWAY: OnceLock<[f64; 255]> = OnceLock::new();
+    let h = HALFWAY.get_or_init(|| std::array::from_fn(|v| decode((v as f64 + 0.5) / 255.0)));
+    h.partition_point(|&t| t <= x) as u8
 }
 
 fn in_gamut(c: [f64; 3]) -> bool {
@@ -268,6 +278,21 @@ mod tests {
                 assert!((back[k] - c[k]).abs() < 1e-6, "{c:?} -> {back:?}");
             }
         }
+    }
+
+    #[test]
+    fn the_8_bit_encoding_by_table_is_the_transfer_function_rounded() {
+        // IEC 61966-2-1: every 8-bit value survives decode then encode, and
+        // any linear value lands on round(255 encode(x)).
+        for v in 0..=255u8 {
+            assert_eq!(encode_u8(linear_table()[usize::from(v)]), v);
+        }
+        for k in 0..=100_003u32 {
+            let x = f64::from(k) / 100_003.0;
+            let want = (encode(x) * 255.0).round() as u8;
+            assert_eq!(encode_u8(x), want, "{x}");
+        }
+        assert_eq!((encode_u8(-0.5), encode_u8(1.5)), (0, 255));
     }
 
     #[test]
