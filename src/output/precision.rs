@@ -226,41 +226,78 @@ mod tests {
         }
     }
 
+    /// Difference cases: a value of the product and a small step of the trade
+    /// for it: 2.3 m of a 5,500 m layer thickness, 10 m of a 10 km height,
+    /// 1 hPa of a 250 hPa tropopause, 0.5 hPa of a 1008 hPa sea-level
+    /// pressure, 0.1 m/s of a 60 m/s wind, 0.05 PVU of 8 PVU, 1 hPa of a
+    /// 100 hPa layer depth (common practice: the smallest contour steps of such
+    /// charts are larger, from memory). No step is a whole multiple of the
+    /// rounding spacing of the product's measured count, where the difference
+    /// would come out exact and the case could not see the floor.
+    const DIFFERENCE_CASES: &[(&str, f32, f32)] = &[
+        ("thick", 5512.37, 2.3),
+        ("z", 10_234.6, 10.0),
+        ("trop_p", 25_013.3, 100.0),
+        ("mslp", 100_812.4, 50.0),
+        ("layer_u", 61.37, 0.1),
+        ("layer_v", -43.91, 0.1),
+        ("isen_u", 58.22, 0.1),
+        ("isen_v", 39.07, 0.1),
+        ("layer_pv", 8.13e-6, 5e-8),
+        ("isen_pv", 7.77e-6, 5e-8),
+        ("layer_dp", 10_037.0, 100.0),
+    ];
+
+    /// The largest relative error of a change `change` taken from two values
+    /// rounded to `n` bits, over many phases of the value against the
+    /// rounding lattice (all in the binade of `x`).
+    fn worst_difference_error(x: f32, change: f32, n: u32) -> f64 {
+        let mut worst = 0.0f64;
+        for i in 0..997 {
+            let a = x * (1.0 + i as f32 * 1.3e-4);
+            let b = a + change;
+            let published = f64::from(bit_round(b, n)) - f64::from(bit_round(a, n));
+            let exact = f64::from(b) - f64::from(a);
+            worst = worst.max((published - exact).abs() / exact.abs());
+        }
+        worst
+    }
+
     /// A change taken from two published values is the change of the exact
-    /// values to within 5 % when the change is a small step of the trade: 2 m
-    /// of a 5,500 m layer thickness, 10 m of a 10 km height, 1 hPa of a
-    /// 250 hPa tropopause or of a 1008 hPa sea-level pressure, 0.1 m/s of a
-    /// 60 m/s wind, 0.05 PVU of 8 PVU, 1 hPa of a 100 hPa layer depth (common practice: the smallest contour steps
-    /// of such charts are larger, from memory).
+    /// values to within 5 % for each case above.
     #[test]
     fn a_difference_of_published_values_is_not_dominated_by_rounding() {
-        let cases: &[(&str, f32, f32)] = &[
-            ("thick", 5512.37, 2.0),
-            ("z", 10_234.6, 10.0),
-            ("trop_p", 25_013.3, 100.0),
-            ("mslp", 100_812.4, 100.0),
-            ("layer_u", 61.37, 0.1),
-            ("layer_v", -43.91, 0.1),
-            ("isen_u", 58.22, 0.1),
-            ("isen_v", 39.07, 0.1),
-            ("layer_pv", 8.13e-6, 5e-8),
-            ("isen_pv", 7.77e-6, 5e-8),
-            ("layer_dp", 10_037.0, 100.0),
-        ];
-        for &(name, x, change) in cases {
+        for &(name, x, change) in DIFFERENCE_CASES {
             let n = default_bits(name);
-            // Many phases of the value against the rounding lattice.
-            let mut worst = 0.0f64;
-            for i in 0..997 {
-                let a = x * (1.0 + i as f32 * 1.3e-4);
-                let b = a + change;
-                let published = f64::from(bit_round(b, n)) - f64::from(bit_round(a, n));
-                let exact = f64::from(b) - f64::from(a);
-                worst = worst.max((published - exact).abs() / exact.abs());
-            }
+            let worst = worst_difference_error(x, change, n);
             assert!(
                 worst <= 0.05,
                 "{name}: {n} bits change a {change} step by {:.2} %",
+                worst * 100.0
+            );
+        }
+    }
+
+    /// The cases can fail: every differenced product has one, and at its
+    /// measured count alone (without the floor) its step comes out more than
+    /// 5 % wrong.
+    #[test]
+    fn each_difference_case_sees_its_floor() {
+        for n in DIFFERENCED {
+            assert!(
+                DIFFERENCE_CASES.iter().any(|(c, _, _)| c == n),
+                "{n} has no difference case"
+            );
+        }
+        for &(name, x, change) in DIFFERENCE_CASES {
+            let measured = lookup(MEASURED, name).unwrap_or(UNLISTED_BITS);
+            if measured >= DIFFERENCE_FLOOR {
+                continue;
+            }
+            let worst = worst_difference_error(x, change, measured);
+            assert!(
+                worst > 0.05,
+                "{name}: at its measured {measured} bits a {change} step is off by only {:.2} %",
                 worst * 100.0
             );
         }

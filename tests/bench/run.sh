@@ -156,6 +156,24 @@ if st:
           f"{b['first']['bytes']/f['bytes']:.2f} x smaller (target >= 2): {verdict(b['first']['bytes'] >= 2 * f['bytes'])}; "
           f"later step {b['later']['bytes']/1e6:.1f} MB and {n['bytes']/1e6:.1f} MB")
     print(f"     before (16 bits): first {b['first']['wall_s']:.2f} s, later {b['later']['wall_s']:.2f} s, peaks {b['first']['peak_rss_mib']:.0f} and {b['later']['peak_rss_mib']:.0f} MiB")
+    sys.path.insert(0, "tests/bench")
+    import information
+    from sizes import documented_bits
+    kept = documented_bits()
+    for label in ("first", "later"):
+        vb, va = b[label].get("variables", {}), a[label].get("variables", {})
+        print(f"     per variable, {label} step, bytes stored in leeward's file at 16 bits -> kept bits (HDF5's own count):")
+        for name in sorted(vb, key=lambda k: -vb[k]):
+            if vb[name] < 1000:
+                continue
+            after = va.get(name, 0)
+            prod = information.product_name(name)
+            prod = next((c for c in ("thick_chg", "mslp_chg") if prod.startswith(c + "_")), prod)
+            bits = kept.get(prod, 16)
+            print(f"       {name:16s} {bits:2d} bits: {vb[name]/1e6:8.2f} -> {after/1e6:8.2f} MB ({vb[name]/max(after, 1):.2f} x)")
+        tb, ta = sum(vb.values()), sum(va.values())
+        if ta:
+            print(f"       all variables: {tb/1e6:.1f} -> {ta/1e6:.1f} MB ({tb/ta:.2f} x)")
 z = lines("sizes.jsonl")
 if z:
     print("     per product, stored size at 16 bits -> kept bits (zlib stand-in for libdeflate):")
