@@ -16,7 +16,10 @@
 #   7. precision: each product's real information on the step and its stored
 #      size before and after (tests/bench/information.py, sizes.py).
 #
-#   bash tests/bench/run.sh [--res 0.25|0.5|1.0] [--skip-yardstick] [--skip-latency] [--skip-scaling] [--skip-precision]
+#   bash tests/bench/run.sh [--res 0.25|0.5|1.0] [--skip-step-bench] [--skip-yardstick] [--skip-latency] [--skip-scaling] [--skip-precision]
+#
+# --skip-step-bench leaves out stage 2 (its own build and repeated steps); targets 1 to 5 come
+# from stages 1, 4 and 6 and are printed without it.
 #
 # The machine is shared: read the ratios within one run, not the seconds across runs.
 set -euo pipefail
@@ -26,6 +29,7 @@ skip_yard=0
 skip_lat=0
 skip_scal=0
 skip_prec=0
+skip_stepb=0
 while [ $# -gt 0 ]; do
   case "$1" in
     --res) res="$2"; shift 2 ;;
@@ -33,7 +37,8 @@ while [ $# -gt 0 ]; do
     --skip-latency) skip_lat=1; shift ;;
     --skip-scaling) skip_scal=1; shift ;;
     --skip-precision) skip_prec=1; shift ;;
-    *) echo "usage: bash tests/bench/run.sh [--res R] [--skip-yardstick] [--skip-latency] [--skip-scaling] [--skip-precision]" >&2; exit 2 ;;
+    --skip-step-bench) skip_stepb=1; shift ;;
+    *) echo "usage: bash tests/bench/run.sh [--res R] [--skip-step-bench] [--skip-yardstick] [--skip-latency] [--skip-scaling] [--skip-precision]" >&2; exit 2 ;;
   esac
 done
 bash tests/setup-system.sh
@@ -53,13 +58,15 @@ echo "machine: $(nproc) cores, $(free -g | awk '/Mem:/{print $2}') GiB, $(uname 
 echo "== 1. ecCodes decode alone"
 "$py" tests/bench/eccodes_decode.py "$input" --runs 3 | tee "$out/eccodes.jsonl"
 
-echo "== 2. leeward: decode, whole step, next step"
-rm -rf target/bench/out
-cargo bench --quiet --bench step -- "$input" target/bench/out "$next" | tee "$out/leeward.jsonl"
-rm -rf target/bench/out
+if [ "$skip_stepb" = 0 ]; then
+  echo "== 2. leeward: decode, whole step, next step"
+  rm -rf target/bench/out
+  cargo bench --quiet --bench step -- "$input" target/bench/out "$next" | tee "$out/leeward.jsonl"
+  rm -rf target/bench/out
 
-echo "== 2b. quicklook images of a grid this size (five, best of three each)"
-cargo bench --quiet --bench quicklook -- "$res" | tee "$out/quicklook.jsonl"
+  echo "== 2b. quicklook images of a grid this size (five, best of three each)"
+  cargo bench --quiet --bench quicklook -- "$res" | tee "$out/quicklook.jsonl"
+fi
 
 if [ "$skip_scal" = 0 ]; then
   echo "== 3. scaling in grid points and threads, peak memory"
@@ -110,26 +117,31 @@ def lines(name):
     return [json.loads(l) for l in p.read_text().splitlines() if l.startswith("{")] if p.exists() else []
 ecc = lines("eccodes.jsonl")[0]
 rows = lines("leeward.jsonl")
-dec = {r["threads"]: r for r in rows if r["what"] == "decode"}
-step = min((r for r in rows if r["what"] == "step"), key=lambda r: r["step_s"])
-pipe = [r for r in rows if r["what"] == "pipeline"][0]
-one, many = dec[1], dec[max(dec)]
 e = ecc["seconds"]
 def verdict(ok):
     return "met" if ok else "NOT met"
-print(f"decode, 1 thread: leeward {one['mpoints_per_s']} vs ecCodes {ecc['mpoints_per_s']} M points/s: {one['mpoints_per_s']/ecc['mpoints_per_s']:.2f}")
-print(f"decode, {max(dec)} threads: leeward {many['seconds']:.2f} s vs ecCodes {e:.2f} s: {e/many['seconds']:.2f} x faster")
-print(f"[1] whole step, every product: leeward {pipe['seconds']:.2f} s (decode {step['decode_s']:.2f}, diagnostics {step['diagnostics_s']:.2f}, write {step['write_s']:.2f}) "
-      f"vs ecCodes decode alone {e:.2f} s: ratio {pipe['seconds']/e:.2f} (target <= 1, stretch 0.5): {verdict(pipe['seconds'] <= e)}")
-nxt = [r for r in rows if r["what"] == "next_step"]
-if nxt:
-    print(f"    next step 6 h later: {nxt[0]['step_s']:.2f} s, of which changes in time and PV budget {nxt[0]['changes_and_budget_s']:.2f} s")
+pipe = None
+if rows:
+    dec = {r["threads"]: r for r in rows if r["what"] == "decode"}
+    step = min((r for r in rows if r["what"] == "step"), key=lambda r: r["step_s"])
+    pipe = [r for r in rows if r["what"] == "pipeline"][0]
+    one, many = dec[1], dec[max(dec)]
+    print(f"decode, 1 thread: leeward {one['mpoints_per_s']} vs ecCodes {ecc['mpoints_per_s']} M points/s: {one['mpoints_per_s']/ecc['mpoints_per_s']:.2f}")
+    print(f"decode, {max(dec)} threads: leeward {many['seconds']:.2f} s vs ecCodes {e:.2f} s: {e/many['seconds']:.2f} x faster")
+    print(f"[1] whole step, every product: leeward {pipe['seconds']:.2f} s (decode {step['decode_s']:.2f}, diagnostics {step['diagnostics_s']:.2f}, write {step['write_s']:.2f}) "
+          f"vs ecCodes decode alone {e:.2f} s: ratio {pipe['seconds']/e:.2f} (target <= 1, stretch 0.5): {verdict(pipe['seconds'] <= e)}")
+    nxt = [r for r in rows if r["what"] == "next_step"]
+    if nxt:
+        print(f"    next step 6 h later: {nxt[0]['step_s']:.2f} s, of which changes in time and PV budget {nxt[0]['changes_and_budget_s']:.2f} s")
 y = lines("yardstick.jsonl")
 if y:
     y = y[0]
     ok = all(v.get("pass", True) for v in y.get("agreement", {}).values() if isinstance(v, dict))
-    print(f"[2] yardstick (ecCodes + MetPy + netCDF4): {y['total_s']:.1f} s vs leeward {pipe['seconds']:.2f} s: "
-          f"{y['total_s']/pipe['seconds']:.1f} x (target >= 20): {verdict(y['total_s']/pipe['seconds'] >= 20)}; products agree: {ok}")
+    if pipe:
+        print(f"[2] yardstick (ecCodes + MetPy + netCDF4): {y['total_s']:.1f} s vs leeward {pipe['seconds']:.2f} s: "
+              f"{y['total_s']/pipe['seconds']:.1f} x (target >= 20): {verdict(y['total_s']/pipe['seconds'] >= 20)}; products agree: {ok}")
+    else:
+        print(f"[2] yardstick (ecCodes + MetPy + netCDF4): {y['total_s']:.1f} s; products agree: {ok}")
 s = lines("scaling.jsonl")
 if s:
     s = s[0]
