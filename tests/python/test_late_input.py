@@ -72,10 +72,27 @@ class ManifestWatch(threading.Thread):
         self.seen: dict[str, dict[int, str]] = {}
         self.last: dict[str, int] = {}
         self.failures: list[str] = []
+        self.reads = 0
+
+    def manifests(self) -> list[Path]:
+        """The JSON files now in the tree. A directory taken away during the
+        walk (a publication's staging directory) makes the walk start again."""
+        for _ in range(100):
+            try:
+                return list(self.out.rglob("*.json")) if self.out.exists() else []
+            except FileNotFoundError:
+                continue
+        return []
 
     def run(self):
+        try:
+            self.watch()
+        except Exception as e:  # noqa: BLE001 - a watcher that dies must fail the test
+            self.failures.append(f"the watcher stopped: {e!r}")
+
+    def watch(self):
         while not self.stop_flag:
-            for p in list(self.out.rglob("*.json")) if self.out.exists() else []:
+            for p in self.manifests():
                 if any(part.startswith(".") for part in p.relative_to(self.out).parts):
                     continue
                 try:
@@ -89,6 +106,7 @@ class ManifestWatch(threading.Thread):
                     continue
                 if rev is None:
                     continue  # not a manifest
+                self.reads += 1
                 h = hashlib.sha256(raw).hexdigest()
                 got = self.seen.setdefault(p.name, {}).setdefault(rev, h)
                 if got != h:
@@ -145,6 +163,7 @@ def test_a_step_written_in_pieces_is_made_again_until_it_is_whole(tmp_path, rule
     watch.stop_flag = True
     watch.join(timeout=10)
     assert watch.failures == [], watch.failures[:5]
+    assert not watch.is_alive() and watch.reads > 0, "the manifests were not watched"
     assert "not used" not in log, [ln for ln in log.splitlines() if "not used" in ln][:3]
     # Each step made once per piece, no more: a late piece re-makes it once.
     assert [outcomes(svc, lead) for lead in (6, 12)] == [PIECES, PIECES]
