@@ -34,7 +34,15 @@ from pathlib import Path
 import pytest
 
 from test_arrival_order import compare_trees
-from test_service import Service, demo_inputs, messages, reference_products, step_key, wait_for
+from test_service import (
+    Service,
+    demo_inputs,
+    messages,
+    reference_products,
+    step_key,
+    visible_files,
+    wait_for,
+)
 
 CYCLE = "2026031400"
 PIECES = 3
@@ -74,15 +82,6 @@ class ManifestWatch(threading.Thread):
         self.failures: list[str] = []
         self.reads = 0
 
-    def manifests(self) -> list[Path]:
-        """The JSON files now in the tree. A directory taken away during the
-        walk (a publication's staging directory) makes the walk start again."""
-        for _ in range(100):
-            try:
-                return list(self.out.rglob("*.json")) if self.out.exists() else []
-            except FileNotFoundError:
-                continue
-        return []
 
     def run(self):
         try:
@@ -92,9 +91,7 @@ class ManifestWatch(threading.Thread):
 
     def watch(self):
         while not self.stop_flag:
-            for p in self.manifests():
-                if any(part.startswith(".") for part in p.relative_to(self.out).parts):
-                    continue
+            for p in (f for f in visible_files(self.out) if f.suffix == ".json"):
                 try:
                     raw = p.read_bytes()
                 except FileNotFoundError:

@@ -195,7 +195,10 @@ class Service:
         return [r for r in self.ledger() if r["event"] == "published"]
 
     def out_files(self):
-        return sorted(p for p in (self.root / "out").rglob("*") if p.is_file())
+        # os.walk passes over a directory that vanishes while it walks (a
+        # publication's staging directory); Path.rglob raises.
+        found = [Path(d) / f for d, _, files in os.walk(self.root / "out") for f in files]
+        return sorted(p for p in found if p.is_file())
 
 
 def wait_for(pred, timeout, what):
@@ -212,6 +215,18 @@ def step_key(rec):
     return (s["feed"], s["cycle"], s["lead"], s.get("member"), s["grid"])
 
 
+def visible_files(out: Path) -> list[Path]:
+    """The files of an output tree that a downstream reader sees. Hidden names
+    and hidden directories (leeward's work in progress, such as a publication's
+    staging directory) are not entered, and a directory that vanishes during the
+    walk is passed over (os.walk ignores it), never an error."""
+    found = []
+    for d, dirs, files in os.walk(out):
+        dirs[:] = [x for x in dirs if not x.startswith(".")]
+        found += [Path(d) / f for f in files if not f.startswith(".")]
+    return found
+
+
 class Reader(threading.Thread):
     """A downstream reader polling the output tree all the time, opening every
     visible product and manifest: it must never meet a partial file."""
@@ -224,12 +239,14 @@ class Reader(threading.Thread):
         self.opened = 0
 
     def run(self):
+        try:
+            self.read_all_the_time()
+        except Exception as e:  # noqa: BLE001 - a reader that dies must fail the test
+            self.failures.append(f"the reader stopped: {e!r}")
+
+    def read_all_the_time(self):
         while not self.stop_flag:
-            for p in list(self.out.rglob("*")) if self.out.exists() else []:
-                # Hidden names and hidden directories (a batch job's staging
-                # directory) are leeward's work in progress, not products.
-                if any(part.startswith(".") for part in p.relative_to(self.out).parts):
-                    continue
+            for p in visible_files(self.out):
                 if not p.is_file():
                     continue
                 try:
