@@ -16,6 +16,7 @@
 //! - [`pipeline`]: one cycle step end to end, shared by `process` and the service.
 //! - [`demo`]: an invented scenario written as GRIB2 by our own encoder.
 //! - [`service`]: the watcher of the incoming directory and the ledger of the daemon.
+//! - [`recent`]: facts read from files, remembered for the cycles used last.
 //! - [`escape`]: paths and texts made safe to print in logs, listings and manifests.
 //! - [`cli`]: the command line, kept thin.
 
@@ -30,4 +31,5 @@ pub mod geometry;
 pub mod ingest;
 pub mod output;
 pub mod pipeline;
+pub mod recent;
 pub mod service;

@@ -1,6 +1,6 @@
 //! A published step file read for its cyclones: the centres on its mean
 //! sea-level pressure and the facts round each, remembered per file (path,
-//! size, modification time), so that a cycle's tracks can be made again from
+//! size, modification time; for the cycles used last), so that a cycle's tracks can be made again from
 //! every step published whenever one more arrives, reading only the files that
 //! changed.
 //!
@@ -19,6 +19,7 @@ use super::detect::{find_centres, Centre, Settings as DetectSettings, Surface};
 use super::facts::{facts, nearest_surface, upper_pv, Facts, Fields, Grid};
 use crate::output::cf::{layer_suffix, FILL_F32};
 use crate::output::variables::PVU;
+use crate::recent::ByCycle;
 
 /// How centres are found and summarised.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -276,33 +277,34 @@ pub fn step_centres(path: &Path, set: &Settings) -> Result<StepCentres, String> 
     })
 }
 
-type Key = (PathBuf, u64, Option<SystemTime>);
+/// What is remembered of a file: (size, modification time, settings, centres).
+type Known = (u64, Option<SystemTime>, Settings, StepCentres);
+
+/// Cycles whose files' centres are remembered: a step's tracks need only the
+/// steps of its own cycle; a few more cover feeds and members running at once.
+const CYCLES_REMEMBERED: usize = 8;
 
 /// [`step_centres`], remembered for each file until its size or modification
-/// time changes (a later step adds its budget to it) or the settings do.
+/// time changes (a later step adds its budget to it) or the settings do, for
+/// the files of the cycles used last ([`crate::recent::ByCycle`]).
 pub fn step_centres_cached(path: &Path, set: &Settings) -> Result<StepCentres, String> {
-    static CACHE: OnceLock<Mutex<HashMap<Key, (Settings, StepCentres)>>> = OnceLock::new();
+    static CACHE: OnceLock<Mutex<ByCycle<NaiveDateTime, Known>>> = OnceLock::new();
     let meta = std::fs::metadata(path).map_err(|e| format!("cannot read: {e}"))?;
-    let key = (path.to_path_buf(), meta.len(), meta.modified().ok());
-    let cache = CACHE.get_or_init(Default::default);
-    if let Some((s, c)) = cache
+    let (size, mtime) = (meta.len(), meta.modified().ok());
+    let cache = CACHE.get_or_init(|| Mutex::new(ByCycle::new(CYCLES_REMEMBERED)));
+    if let Some((s, m, k, c)) = cache
         .lock()
         .unwrap_or_else(std::sync::PoisonError::into_inner)
-        .get(&key)
+        .get(path)
     {
-        if s == set {
+        if *s == size && *m == mtime && k == set {
             return Ok(c.clone());
         }
     }
     let c = step_centres(path, set)?;
-    let mut m = cache
+    cache
         .lock()
-        .unwrap_or_else(std::sync::PoisonError::into_inner);
-    // Files of earlier versions of the same path are of no more use.
-    m.retain(|k, _| k.0 != key.0);
-    if m.len() >= 20_000 {
-        m.clear();
-    }
-    m.insert(key, (*set, c.clone()));
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .insert(path, c.reference_time, (size, mtime, *set, c.clone()));
     Ok(c)
 }

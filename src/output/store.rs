@@ -8,7 +8,6 @@
 //! hidden temporary, adds to the copy, fsyncs it and renames it over the
 //! original: a reader sees the old file or the new one, never a mix.
 
-use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 use chrono::{NaiveDateTime, TimeDelta};
@@ -193,16 +192,24 @@ struct Identity {
     times: Option<(NaiveDateTime, NaiveDateTime)>,
 }
 
+/// Cycles whose files' identities are remembered: a step looks up the steps
+/// of its own cycle and of a few before it (changes within a cycle and from
+/// run to run).
+const CYCLES_REMEMBERED: usize = 64;
+
 /// A file's identity, read once per (path, size, mtime) in this process: a
 /// service looking up earlier steps for every new one would otherwise open
 /// the same files again and again (each open costs libhdf5 memory it keeps).
-/// `None` when the file cannot be opened.
+/// Remembered for the files of the cycles used last
+/// ([`crate::recent::ByCycle`]), so that the memory of a process running for
+/// months stays bounded. `None` when the file cannot be opened.
 fn identity(path: &Path) -> Option<Identity> {
-    type Cache = HashMap<PathBuf, (u64, Option<std::time::SystemTime>, Identity)>;
+    type Known = (u64, Option<std::time::SystemTime>, Identity);
+    type Cache = crate::recent::ByCycle<Option<NaiveDateTime>, Known>;
     static CACHE: std::sync::OnceLock<std::sync::Mutex<Cache>> = std::sync::OnceLock::new();
     let meta = std::fs::metadata(path).ok()?;
     let (size, mtime) = (meta.len(), meta.modified().ok());
-    let cache = CACHE.get_or_init(Default::default);
+    let cache = CACHE.get_or_init(|| std::sync::Mutex::new(Cache::new(CYCLES_REMEMBERED)));
     if let Some((s, m, id)) = cache
         .lock()
         .unwrap_or_else(std::sync::PoisonError::into_inner)
@@ -225,13 +232,10 @@ fn identity(path: &Path) -> Option<Identity> {
         times: times(&f),
     };
     drop(f);
-    let mut c = cache
+    cache
         .lock()
-        .unwrap_or_else(std::sync::PoisonError::into_inner);
-    if c.len() >= 200_000 {
-        c.clear(); // files of months ago; the next lookups fill it again
-    }
-    c.insert(path.to_path_buf(), (size, mtime, id.clone()));
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .insert(path, id.times.map(|t| t.0), (size, mtime, id.clone()));
     Some(id)
 }
 

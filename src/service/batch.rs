@@ -603,7 +603,7 @@ fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
     };
     let staged = || -> std::io::Result<Ended> {
         let name = own.file_name().unwrap_or_default();
-        let product = StagedFile::read(&own, spec.dir.join(name))?;
+        let product = StagedFile::read_made(&own, spec.dir.join(name))?;
         let mut images = Vec::new();
         for i in &rep.images {
             images.push(StagedFile::read(
@@ -619,7 +619,7 @@ fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
                     u.display()
                 )));
             };
-            updated.push(StagedFile::read(u, target)?);
+            updated.push(StagedFile::read_made(u, target)?);
         }
         Ok(Ended::Made {
             product,
@@ -802,10 +802,12 @@ pub fn stage_tracks(cfg: &Config, store: &Path, key: &StepKey, made: &mut commit
     }
 }
 
-/// A staged file is checked by its size and, for a NetCDF file, by opening
-/// it: the job wrote it under a temporary name, fsynced it, renamed it and
-/// only then hashed it and wrote the record, so a file of the recorded size
-/// at the staged name is the one hashed. Reading every product again here
+/// A staged file is checked by its size and, for a NetCDF file, by its
+/// having opened in the job that made it (or, with no such word in the
+/// record, by opening it here): the job wrote it under a temporary name,
+/// fsynced it, renamed it and only then hashed it, opened it again and wrote
+/// the record, so a file of the recorded size at the staged name is the one
+/// hashed and read back. Reading every product again here
 /// would cost the service a second pass over each file (about 1 s for the
 /// 0.25-degree step).
 fn check_staged(f: &StagedFile, stage: &Path, store: &Path) -> Result<(), String> {
@@ -825,9 +827,14 @@ fn check_staged(f: &StagedFile, stage: &Path, store: &Path) -> Result<(), String
             f.bytes
         ));
     }
+    // The process that made a NetCDF file read it back (its `netcdf` facts);
+    // one whose record has none (it did not open there, or an earlier
+    // version made it) is opened here.
     let is_nc = f.staged.extension().is_some_and(|x| x == "nc");
-    crate::output::quiet_hdf5_errors();
-    if is_nc && netcdf::open(&f.staged).is_err() {
+    if is_nc && f.netcdf.is_none() && {
+        crate::output::quiet_hdf5_errors();
+        netcdf::open(&f.staged).is_err()
+    } {
         return Err(format!("{}: does not open as NetCDF", f.staged.display()));
     }
     Ok(())

@@ -63,6 +63,39 @@ pub struct StagedFile {
     pub bytes: u64,
     /// SHA-256, hex.
     pub sha256: String,
+    /// For a NetCDF file, what the process that made it read back from it
+    /// (absent in records of earlier versions, and where it did not open):
+    /// the service then need not open the file itself.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub netcdf: Option<NcFacts>,
+}
+
+/// What a staged NetCDF file holds, as its manifest tells it, read back by
+/// the step process that wrote it. Opening files costs the opening process
+/// memory that libnetcdf and libhdf5 keep; the step process ends, the service
+/// runs for months, so the service takes these facts from the result record.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct NcFacts {
+    /// Its variables' names.
+    pub variables: Vec<String>,
+    /// Points whose budget trajectories did not converge (None: no budget).
+    pub not_converged: Option<u64>,
+}
+
+impl NcFacts {
+    /// The facts of the NetCDF file at `path`; None when it does not open.
+    pub fn of(path: &Path) -> Option<NcFacts> {
+        crate::output::quiet_hdf5_errors();
+        let variables = netcdf::open(path)
+            .ok()?
+            .variables()
+            .map(|v| v.name())
+            .collect();
+        Some(NcFacts {
+            variables,
+            not_converged: crate::changes::not_converged_in(path),
+        })
+    }
 }
 
 impl StagedFile {
@@ -74,7 +107,18 @@ impl StagedFile {
             target,
             bytes,
             sha256,
+            netcdf: None,
         })
+    }
+
+    /// [`StagedFile::read`], and for a NetCDF file (`.nc`) its [`NcFacts`],
+    /// read back from it: for the process that made the file.
+    pub fn read_made(staged: &Path, target: PathBuf) -> std::io::Result<StagedFile> {
+        let mut f = StagedFile::read(staged, target)?;
+        if staged.extension().is_some_and(|x| x == "nc") {
+            f.netcdf = NcFacts::of(staged);
+        }
+        Ok(f)
     }
 
     fn as_move(&self) -> Move {
@@ -185,7 +229,7 @@ pub fn stage_manifests(
         .collect();
     for u in updated {
         let known = (u.bytes, u.sha256.clone());
-        if let Some(m) = publish::revised_manifest(&u.target, &u.staged, known) {
+        if let Some(m) = publish::revised_manifest(&u.target, &u.staged, known, u.netcdf.as_ref()) {
             let mut f = write(&publish::manifest_path(&u.staged), &m)?;
             f.target = publish::manifest_path(&u.target);
             moves.push(f.as_move());
@@ -196,6 +240,7 @@ pub fn stage_manifests(
         &p.target,
         &p.staged,
         (p.bytes, p.sha256.clone()),
+        p.netcdf.as_ref(),
         rep,
         facts,
     );
@@ -432,6 +477,47 @@ mod tests {
         // A file at its place that is not the one recorded cannot be taken for it.
         std::fs::write(out.join("b.nc"), "something else").unwrap();
         assert!(matches!(finish(&p), Err(Unfinished::Lost(_))));
+        let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn a_made_netcdf_file_carries_its_variables_read_back() {
+        let d = dir("ncfacts");
+        let nc = d.join("a_006h.nc");
+        {
+            let mut f = netcdf::create(&nc).unwrap();
+            f.add_dimension("x", 3).unwrap();
+            f.add_variable::<f32>("relative_vorticity", &["x"]).unwrap();
+            f.add_variable::<f64>("x", &["x"]).unwrap();
+        }
+        let s = StagedFile::read_made(&nc, d.join("out.nc")).unwrap();
+        let mut vars = s.netcdf.as_ref().unwrap().variables.clone();
+        vars.sort();
+        assert_eq!(vars, ["relative_vorticity", "x"]);
+        // No budget variables: no count of unconverged trajectories.
+        assert_eq!(s.netcdf.as_ref().unwrap().not_converged, None);
+        // The facts go through the result record and come back the same.
+        let back: StagedFile = serde_json::from_str(&serde_json::to_string(&s).unwrap()).unwrap();
+        assert_eq!(back, s);
+        // A record of an earlier version (no facts) still reads, as None.
+        let mut old = serde_json::to_value(&s).unwrap();
+        old.as_object_mut().unwrap().remove("netcdf");
+        let old: StagedFile = serde_json::from_value(old).unwrap();
+        assert_eq!(old.netcdf, None);
+        // A file that does not open as NetCDF has none (the service then opens
+        // it itself and refuses it); nor has a file that is not NetCDF.
+        let bad = d.join("b_006h.nc");
+        std::fs::write(&bad, b"CDF\x01 cut short").unwrap();
+        assert_eq!(
+            StagedFile::read_made(&bad, d.join("b.nc")).unwrap().netcdf,
+            None
+        );
+        let png = d.join("a_006h.png");
+        std::fs::write(&png, b"picture").unwrap();
+        assert_eq!(
+            StagedFile::read_made(&png, d.join("a.png")).unwrap().netcdf,
+            None
+        );
         let _ = std::fs::remove_dir_all(&d);
     }
 

@@ -22,6 +22,7 @@ use super::child;
 use super::commit;
 use super::ledger::{FailKind, Journal, Ledger, Outcome, Record, StepTag};
 use super::metrics::Metrics;
+use super::pool::Pool;
 use super::publish;
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::systemd::{status_line, Notifier};
@@ -411,6 +412,8 @@ struct Daemon {
     notifier: Notifier,
     done_tx: Sender<JobDone>,
     done_rx: Receiver<JobDone>,
+    /// The threads local steps and the taking of batch results run on.
+    pool: Pool,
     running: HashMap<StepTag, Instant>,
     /// Steps on the batch scheduler.
     jobs: HashMap<StepTag, InFlight>,
@@ -1378,7 +1381,7 @@ impl Daemon {
         let stage = commit::local_stage(&job.store, &tag);
         let log_format = self.opts.log_format.clone();
         let tx = self.done_tx.clone();
-        std::thread::spawn(move || {
+        self.pool.run(move || {
             crate::output::quiet_hdf5_errors();
             let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
                 run_local(&job, &spec, &stage, &log_format)
@@ -1486,7 +1489,7 @@ impl Daemon {
                 let lock = self.lock_of(&tag.feed);
                 let journal = self.ledger.journal();
                 let tx = self.done_tx.clone();
-                std::thread::spawn(move || {
+                self.pool.run(move || {
                     crate::output::quiet_hdf5_errors();
                     let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
                         let t = taken_outcome(batch::take(&spec, &stage, &lock, &journal));
@@ -2359,6 +2362,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
         notifier: Notifier::from_env(),
         done_tx,
         done_rx,
+        pool: Pool::new("leeward-worker"),
         running: HashMap::new(),
         jobs: HashMap::new(),
         sched_down: None,

@@ -12,6 +12,7 @@
 //! - [`publish`]: output tree, manifests, temporaries, retention, quarantine.
 //! - [`commit`]: a step's publication as one act: recorded, renamed, finished after a crash.
 //! - [`ledger`]: the durable journal of what happened.
+//! - [`pool`]: the worker threads steps run on, kept for the service's life.
 //! - [`metrics`]: the health and metrics endpoint.
 //! - [`systemd`]: readiness, watchdog and status notifications.
 //! - [`status`]: `leeward status`, from the ledger.
@@ -24,6 +25,7 @@ pub mod commit;
 pub mod daemon;
 pub mod ledger;
 pub mod metrics;
+pub mod pool;
 pub mod publish;
 pub mod settings;
 pub mod status;

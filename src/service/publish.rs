@@ -139,11 +139,15 @@ pub fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
     Ok((n, digest.iter().map(|b| format!("{b:02x}")).collect()))
 }
 
-fn variables_of(path: &Path) -> Vec<String> {
-    crate::output::quiet_hdf5_errors();
-    netcdf::open(path)
-        .map(|f| f.variables().map(|v| v.name()).collect())
-        .unwrap_or_default()
+/// The manifest's variables and budget flag count of the NetCDF file at
+/// `path`: as its maker reported them (`known`), else read from the file.
+fn nc_facts(path: &Path, known: Option<&super::commit::NcFacts>) -> (Vec<String>, Option<u64>) {
+    match known {
+        Some(k) => (k.variables.clone(), k.not_converged),
+        None => super::commit::NcFacts::of(path)
+            .map(|k| (k.variables, k.not_converged))
+            .unwrap_or_default(),
+    }
 }
 
 /// What the service knows of a step beyond the pipeline's report.
@@ -200,15 +204,18 @@ impl<'a> StepFacts<'a> {
 /// product's place in the output tree) once the staged file `staged` is
 /// renamed there: `bytes` and `sha256` are the staged file's. The revision
 /// goes on from the manifest at `target`'s place, if there is one (a step
-/// made again).
+/// made again). `nc`: the staged file's variables and budget flags as the
+/// process that made it read them back (else they are read here).
 pub fn new_manifest(
     target: &Path,
     staged: &Path,
     (bytes, checksum): (u64, String),
+    nc: Option<&super::commit::NcFacts>,
     rep: &StepReport,
     facts: &StepFacts<'_>,
 ) -> Manifest {
     let now = now_iso();
+    let (variables, budget_not_converged) = nc_facts(staged, nc);
     let latency = (Utc::now().timestamp_millis() as f64 / 1000.0 - facts.last_input).max(0.0);
     Manifest {
         manifest_version: 1,
@@ -227,7 +234,7 @@ pub fn new_manifest(
             .unwrap_or_default(),
         product_bytes: bytes,
         product_checksum: checksum,
-        variables: variables_of(staged),
+        variables,
         images: rep
             .images
             .iter()
@@ -256,24 +263,25 @@ pub fn new_manifest(
         // A step made again (reprocess, late input) goes on from the revision it had.
         revision: read_manifest(&manifest_path(target)).map_or(1, |m| m.revision + 1),
         revised_at: now,
-        budget_not_converged: crate::changes::not_converged_in(staged),
+        budget_not_converged,
     }
 }
 
 /// The manifest of the published `target` once its staged copy `staged`
 /// (with a later step's additions) replaces it: size, checksum and
 /// variables of the copy, the revision one higher. `None` when `target` has
-/// no manifest (its own step writes one when it is published).
+/// no manifest (its own step writes one when it is published). `nc` as for
+/// [`new_manifest`].
 pub fn revised_manifest(
     target: &Path,
     staged: &Path,
     (bytes, checksum): (u64, String),
+    nc: Option<&super::commit::NcFacts>,
 ) -> Option<Manifest> {
     let mut m = read_manifest(&manifest_path(target))?;
     m.product_bytes = bytes;
     m.product_checksum = checksum;
-    m.variables = variables_of(staged);
-    m.budget_not_converged = crate::changes::not_converged_in(staged);
+    (m.variables, m.budget_not_converged) = nc_facts(staged, nc);
     m.revision += 1;
     m.revised_at = now_iso();
     Some(m)
@@ -334,7 +342,7 @@ pub fn repair_manifest(product: &Path) -> std::io::Result<bool> {
         return Ok(false);
     }
     let known = file_checksum(product)?;
-    match revised_manifest(product, product, known) {
+    match revised_manifest(product, product, known, None) {
         Some(m) => write_manifest(&manifest_path(product), &m).map(|()| true),
         None => Ok(false),
     }
@@ -477,6 +485,24 @@ mod tests {
         let _ = std::fs::remove_dir_all(&d);
         std::fs::create_dir_all(&d).unwrap();
         d
+    }
+
+    #[test]
+    fn the_manifest_takes_what_the_maker_read_back_without_opening_the_file() {
+        let d = dir("ncfacts");
+        // A path with no file at all: only the record's facts can give these.
+        let absent = d.join("gone.nc");
+        let known = super::super::commit::NcFacts {
+            variables: vec!["relative_vorticity".into(), "latitude".into()],
+            not_converged: Some(7),
+        };
+        assert_eq!(
+            nc_facts(&absent, Some(&known)),
+            (known.variables.clone(), Some(7))
+        );
+        // Without them the file is read, here in vain.
+        assert_eq!(nc_facts(&absent, None), (Vec::new(), None));
+        let _ = std::fs::remove_dir_all(&d);
     }
 
     #[test]

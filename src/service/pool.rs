@@ -1,0 +1,186 @@
+//! The service's worker threads, kept for its whole life.
+//!
+//! Each local step and each taking of a batch result runs on a worker
+//! thread. A thread started per step and ended after it costs the service
+//! memory that is not given back: the C allocator keeps the pages of its
+//! per-thread arenas, and the NetCDF/HDF5 libraries keep per-thread state
+//! of their own. The pool starts a thread only when none is idle, and a
+//! thread that finished its task waits for the next one, so the number of
+//! threads follows the most tasks ever running at once (bounded by the
+//! configured workers and the batch jobs taken at once), not the number of
+//! steps.
+
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::mpsc::{channel, Receiver, Sender};
+use std::sync::{Arc, Mutex};
+
+type Task = Box<dyn FnOnce() + Send + 'static>;
+
+struct Shared {
+    queue: Mutex<Receiver<Task>>,
+    /// Threads waiting for a task and not yet promised one.
+    idle: AtomicUsize,
+    /// Threads started so far.
+    started: AtomicUsize,
+}
+
+/// A pool of worker threads that grows on demand and never shrinks.
+pub struct Pool {
+    tx: Sender<Task>,
+    shared: Arc<Shared>,
+    name: &'static str,
+}
+
+impl Pool {
+    /// An empty pool; its threads are named `name`.
+    pub fn new(name: &'static str) -> Pool {
+        let (tx, rx) = channel();
+        Pool {
+            tx,
+            shared: Arc::new(Shared {
+                queue: Mutex::new(rx),
+                idle: AtomicUsize::new(0),
+                started: AtomicUsize::new(0),
+            }),
+            name,
+        }
+    }
+
+    /// Run `task` on an idle thread of the pool, or on a new one if none is
+    /// idle. Never waits for a thread to come free.
+    pub fn run(&self, task: impl FnOnce() + Send + 'static) {
+        let claimed = self
+            .shared
+            .idle
+            .fetch_update(Ordering::AcqRel, Ordering::Acquire, |n| n.checked_sub(1))
+            .is_ok();
+        if !claimed && !self.start_thread() {
+            // No thread can be started: run it on a thread of its own as
+            // before, rather than not at all.
+            std::thread::spawn(task);
+            return;
+        }
+        if let Err(e) = self.tx.send(Box::new(task)) {
+            // The queue is held by the pool itself and never closed while
+            // the pool lives; should it be, the task still runs.
+            std::thread::spawn(e.0);
+        }
+    }
+
+    /// Threads started so far.
+    pub fn threads(&self) -> usize {
+        self.shared.started.load(Ordering::Acquire)
+    }
+
+    /// Threads idle now.
+    pub fn idle(&self) -> usize {
+        self.shared.idle.load(Ordering::Acquire)
+    }
+
+    fn start_thread(&self) -> bool {
+        let shared = self.shared.clone();
+        let started = std::thread::Builder::new()
+            .name(self.name.to_string())
+            .spawn(move || worker(&shared));
+        match started {
+            Ok(_) => {
+                self.shared.started.fetch_add(1, Ordering::AcqRel);
+                true
+            }
+            Err(e) => {
+                tracing::warn!(error = %e, "cannot start a worker thread");
+                false
+            }
+        }
+    }
+}
+
+/// A worker: take a task, run it, say it is idle, wait for the next one.
+/// Ends when the pool is dropped.
+fn worker(shared: &Shared) {
+    loop {
+        let task = {
+            let q = shared
+                .queue
+                .lock()
+                .unwrap_or_else(std::sync::PoisonError::into_inner);
+            q.recv()
+        };
+        let Ok(task) = task else {
+            return;
+        };
+        // The tasks catch their own panics; one that escapes must not take
+        // the thread's place in the pool with it.
+        let _ = std::panic::catch_unwind(std::panic::AssertUnwindSafe(task));
+        shared.idle.fetch_add(1, Ordering::AcqRel);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::sync::mpsc::channel;
+    use std::time::{Duration, Instant};
+
+    /// Wait (up to a minute, for a loaded machine) until `cond` holds.
+    fn wait_for(cond: impl Fn() -> bool) {
+        let end = Instant::now() + Duration::from_secs(60);
+        while !cond() {
+            assert!(Instant::now() < end, "condition not reached in 60 s");
+            std::thread::sleep(Duration::from_millis(2));
+        }
+    }
+
+    #[test]
+    fn one_task_after_another_runs_on_one_thread() {
+        let pool = Pool::new("test-worker");
+        let (tx, rx) = channel();
+        for k in 0..200 {
+            let tx = tx.clone();
+            pool.run(move || {
+                tx.send((k, std::thread::current().id())).unwrap();
+            });
+            let (got, _) = rx.recv().unwrap();
+            assert_eq!(got, k);
+            // The thread is back in the pool before the next task comes.
+            wait_for(|| pool.idle() == 1);
+        }
+        // A thread per task would have started 200.
+        assert_eq!(pool.threads(), 1);
+    }
+
+    #[test]
+    fn tasks_at_once_get_a_thread_each_and_no_more() {
+        let pool = Pool::new("test-worker");
+        let (tx, rx) = channel();
+        let gate = Arc::new(std::sync::Barrier::new(5));
+        for round in 0..20 {
+            // Four tasks that can only end together: each needs a thread.
+            for _ in 0..4 {
+                let (tx, gate) = (tx.clone(), gate.clone());
+                pool.run(move || {
+                    gate.wait();
+                    tx.send(std::thread::current().id()).unwrap();
+                });
+            }
+            gate.wait();
+            let ids: std::collections::BTreeSet<_> = (0..4)
+                .map(|_| format!("{:?}", rx.recv().unwrap()))
+                .collect();
+            assert_eq!(ids.len(), 4, "round {round}: four tasks on four threads");
+            wait_for(|| pool.idle() == 4);
+        }
+        assert_eq!(pool.threads(), 4);
+    }
+
+    #[test]
+    fn a_task_that_panics_leaves_its_thread_in_the_pool() {
+        let pool = Pool::new("test-worker");
+        pool.run(|| panic!("planted"));
+        wait_for(|| pool.idle() == 1);
+        let (tx, rx) = channel();
+        pool.run(move || tx.send(1).unwrap());
+        assert_eq!(rx.recv().unwrap(), 1);
+        assert_eq!(pool.threads(), 1);
+    }
+}
