@@ -44,8 +44,18 @@ fn level_index(p: &[f64], hpa: f64) -> Option<usize> {
     p.iter().position(|x| (x / 100.0 - hpa).abs() < 1e-6)
 }
 
-fn with_layer(mut prod: Product, l: [f64; 2]) -> Product {
+/// The product of the layer `l` (hPa): on the layer's pressure coordinate in
+/// the file (its middle, the layer's ends as its bounds), the layer also said
+/// in `leeward_layer_hpa`; a mean over the layer says so in `cell_methods`
+/// (a mean over a pressure cell weighs by mass, dm = dp/g: CF 1.11 section 7.3).
+fn with_layer(mut prod: Product, l: [f64; 2], mean: bool) -> Product {
+    let pa = [l[0] * 100.0, l[1] * 100.0];
     prod.notes.push(("leeward_layer_hpa", layer_text(l)));
+    if mean {
+        let coord = crate::output::cf::layer_coordinate(pa);
+        prod.notes.push(("cell_methods", format!("{coord}: mean")));
+    }
+    prod.layer = Some(pa);
     prod
 }
 
@@ -116,6 +126,7 @@ pub(super) fn eady(s: &Stacks<'_>, l: [f64; 2]) -> Result<Product, String> {
     Ok(with_layer(
         Product::new(variables::EADY, Vertical::Surface, data),
         l,
+        false,
     ))
 }
 
@@ -153,7 +164,11 @@ fn layer_mean(a: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Array2<f32> {
 /// The low-level PV mean of the layer `l` (hPa) from isobaric PV.
 pub(super) fn low_pv(pv: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Product {
     let data = layer_mean(pv, p, l).insert_axis(Axis(0));
-    with_layer(Product::new(variables::LOW_PV, Vertical::Surface, data), l)
+    with_layer(
+        Product::new(variables::LOW_PV, Vertical::Surface, data),
+        l,
+        true,
+    )
 }
 
 /// The steering wind, earth-relative, of the layer `l` (hPa).
@@ -177,6 +192,7 @@ pub(super) fn steering(s: &Stacks<'_>, l: [f64; 2]) -> Option<[Product; 2]> {
         with_layer(
             Product::new(spec, Vertical::Surface, a.insert_axis(Axis(0))),
             l,
+            true,
         )
     };
     Some([mk(variables::STEER_U, ue), mk(variables::STEER_V, ve)])
@@ -254,3 +270,4 @@ pub(super) fn isentropic_humidity(
         Product::new(variables::ISEN_RH, Vertical::Theta, rh_s),
     ]
 }
+
