@@ -310,3 +310,195 @@ fn a_listing_into_a_closed_pipe_ends_quietly() {
         "{status:?}"
     );
 }
+
+/// Run leeward with a deadline: (exit code, stdout, stderr), or a failure
+/// naming the command when it has not ended by then (it waited on something).
+fn run_within(args: &[&std::ffi::OsStr], secs: u64) -> (i32, String, String) {
+    use std::process::Stdio;
+    let mut child = Command::new(common::leeward_bin())
+        .args(args)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start leeward");
+    let t = std::time::Instant::now();
+    while child.try_wait().expect("wait").is_none() {
+        if t.elapsed() > std::time::Duration::from_secs(secs) {
+            let _ = child.kill();
+            let _ = child.wait();
+            panic!("leeward {args:?} still running after {secs} s: it waited on its input");
+        }
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    let out = child.wait_with_output().expect("output");
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+#[test]
+fn special_files_are_refused_at_once_naming_path_and_kind() {
+    let d = tmp("special");
+    let fifo = d.join("pipe_000.grib2");
+    let made = Command::new("mkfifo").arg(&fifo).status().expect("mkfifo");
+    assert!(made.success());
+    let sock = d.join("sock_000.grib2");
+    let _listener = std::os::unix::net::UnixListener::bind(&sock).expect("socket");
+    let dir = d.join("dir_000.grib2");
+    std::fs::create_dir(&dir).unwrap();
+    let out = d.join("out");
+    let expect = [
+        (&fifo, "a FIFO (named pipe), not a regular file"),
+        (&sock, "a socket, not a regular file"),
+        (&dir, "a directory, not a regular file"),
+    ];
+    for cmd in [
+        vec!["inspect"],
+        vec!["process", "--out", out.to_str().unwrap()],
+    ] {
+        let mut args: Vec<&std::ffi::OsStr> = cmd.iter().map(std::ffi::OsStr::new).collect();
+        args.extend([fifo.as_os_str(), sock.as_os_str(), dir.as_os_str()]);
+        args.push(std::ffi::OsStr::new("/dev/null"));
+        // A FIFO opened for reading with no writer waits for ever: the
+        // command must refuse it by its kind without opening it.
+        let (code, _, stderr) = run_within(&args, 60);
+        assert_eq!(code, 4, "{cmd:?}: {stderr}");
+        for (path, why) in &expect {
+            let line = format!("leeward: {}: {why}", path.display());
+            assert!(
+                stderr.lines().any(|l| l == line),
+                "{cmd:?}: {line}\n{stderr}"
+            );
+        }
+        assert!(
+            stderr
+                .lines()
+                .any(|l| l == "leeward: /dev/null: a character device, not a regular file"),
+            "{stderr}"
+        );
+    }
+    let _ = std::fs::remove_dir_all(&d);
+}
+
+/// The messages of a GRIB2 file (section 0 gives each one's total length,
+/// octets 9-16; WMO-No. 306, Manual on Codes, GRIB2 regulations).
+fn grib_messages(bytes: &[u8]) -> Vec<&[u8]> {
+    let mut out = Vec::new();
+    let mut k = 0;
+    while k + 16 <= bytes.len() && &bytes[k..k + 4] == b"GRIB" {
+        let n = u64::from_be_bytes(bytes[k + 8..k + 16].try_into().unwrap()) as usize;
+        out.push(&bytes[k..k + n]);
+        k += n;
+    }
+    out
+}
+
+#[test]
+fn a_file_with_nothing_usable_says_what_was_missing_on_standard_error() {
+    let d = tmp("nothing");
+    let inputs =
+        leeward::demo::write_inputs(&d.join("in"), leeward::demo::default_cycle(), &[0]).unwrap();
+    let bytes = std::fs::read(&inputs[0]).unwrap();
+    // Only the eastward wind (discipline 0, category 2, number 2; WMO code
+    // table 4.2) of the demo step: no product can be made from it alone.
+    let cat = leeward::ingest::catalogue::catalogue(&bytes);
+    let u_only: Vec<u8> = grib_messages(&bytes)
+        .into_iter()
+        .filter(|m| {
+            let c = leeward::ingest::catalogue::catalogue(m);
+            c.fields
+                .iter()
+                .all(|f| (f.discipline, f.category, f.number) == (0, 2, 2))
+        })
+        .flatten()
+        .copied()
+        .collect();
+    assert!(cat.fields.len() > 10 && !u_only.is_empty());
+    let file = d.join("in/u_only.grib2");
+    std::fs::write(&file, &u_only).unwrap();
+    let out = d.join("out");
+    let (code, stdout, stderr) = run_within(
+        &[
+            "process".as_ref(),
+            "--out".as_ref(),
+            out.as_os_str(),
+            file.as_os_str(),
+        ],
+        120,
+    );
+    assert_eq!(code, 4, "{stdout}\n{stderr}");
+    let line = stderr
+        .lines()
+        .find(|l| l.starts_with(&format!("leeward: {}: nothing usable: ", file.display())))
+        .unwrap_or_else(|| panic!("no line names the file:\n{stderr}"));
+    assert!(
+        line.contains("no isobaric temperature, v, geopotential height for step"),
+        "{line}"
+    );
+    assert!(
+        line.contains("u-component of wind"),
+        "what the file gave: {line}"
+    );
+    // The real sample with one surface field (no isobaric ones at all), where
+    // the samples are.
+    if let Some(s) = common::samples_dir("nothing usable in a real sample") {
+        let f = s.join("scanning-mode.grib2");
+        let (code, _, stderr) = run_within(
+            &[
+                "process".as_ref(),
+                "--out".as_ref(),
+                out.as_os_str(),
+                f.as_os_str(),
+            ],
+            120,
+        );
+        assert_eq!(code, 4, "{stderr}");
+        let want = format!(
+            "leeward: {}: nothing usable: no isobaric temperature, u, v, geopotential height",
+            f.display()
+        );
+        assert!(stderr.lines().any(|l| l.starts_with(&want)), "{stderr}");
+    }
+    let _ = std::fs::remove_dir_all(&d);
+}
+
+#[test]
+fn inspect_says_on_standard_error_what_made_its_exit_code() {
+    // A message whose grid definition template is not one leeward reads (our
+    // own demo message with section 3's template number, octets 13-14, set to
+    // 3.32769, in the centre-local range of code table 3.1) beside a good one.
+    let d = tmp("inspect-stderr");
+    let inputs =
+        leeward::demo::write_inputs(&d.join("in"), leeward::demo::default_cycle(), &[0]).unwrap();
+    let bytes = std::fs::read(&inputs[0]).unwrap();
+    let msgs = grib_messages(&bytes);
+    let mut bad = msgs[0].to_vec();
+    // Section 1's length, then section 3 (the demo writes no section 2).
+    let s1 = u32::from_be_bytes(bad[16..20].try_into().unwrap()) as usize;
+    let s3 = 16 + s1;
+    assert_eq!(bad[s3 + 4], 3, "section 3 follows section 1");
+    bad[s3 + 12..s3 + 14].copy_from_slice(&32769u16.to_be_bytes());
+    let mut data = bad.clone();
+    data.extend_from_slice(msgs[1]);
+    let file = d.join("in/local_grid.grib2");
+    std::fs::write(&file, &data).unwrap();
+    let (code, stdout, stderr) = run_within(&["inspect".as_ref(), file.as_os_str()], 60);
+    assert_eq!(code, 3, "{stdout}\n{stderr}");
+    let lines: Vec<&str> = stderr.lines().collect();
+    assert_eq!(
+        lines.len(),
+        1,
+        "one line for the one unusable field: {stderr}"
+    );
+    assert!(
+        lines[0].starts_with(&format!("leeward: {}: field 0 (", file.display()))
+            && lines[0].contains("template 3.32769"),
+        "{stderr}"
+    );
+    // A good file alone: exit 0 and nothing on standard error.
+    let (code, _, stderr) = run_within(&["inspect".as_ref(), inputs[0].as_os_str()], 60);
+    assert_eq!((code, stderr.as_str()), (0, ""));
+    let _ = std::fs::remove_dir_all(&d);
+}

@@ -1,4 +1,4 @@
-"""1,000 mutated GRIB2 files through `leeward inspect` and `leeward process`
+"""2,000 mutated GRIB2 files through `leeward inspect` and `leeward process`
 (tests/python/mutation.py: the seeds, the mutations and the rules). Seeded,
 so a failure can be run again; the failing cases are kept in
 target/mutation-failures. The benchmark runs the same loop on 100,000 files
@@ -12,7 +12,7 @@ import os
 import mutation
 from conftest import REPO_ROOT, samples_path
 
-FILES = 1000
+FILES = 2000
 SEED = 20260314
 
 
