@@ -158,7 +158,10 @@ fn layer_depth(s: &Stacks<'_>, kb: usize, kt: usize) -> Option<Array2<f64>> {
 /// whole column.
 fn layer_levels(p: &[f64], p_bottom: f64, p_top: f64) -> std::ops::Range<usize> {
     let lo = p.iter().rposition(|&x| x < p_top).unwrap_or(0);
-    let hi = p.iter().position(|&x| x > p_bottom).map_or(p.len(), |k| k + 1);
+    let hi = p
+        .iter()
+        .position(|&x| x > p_bottom)
+        .map_or(p.len(), |k| k + 1);
     lo..hi.max(lo)
 }
 
@@ -335,7 +338,11 @@ mod tests {
                 let col: Vec<f64> = (0..p.len()).map(|k| f64::from(a[(k, j, i)])).collect();
                 let want =
                     baroclinic::pressure_weighted_mean(&col, &p, l[0] * 100.0, l[1] * 100.0) as f32;
-                assert_eq!(g.to_bits(), want.to_bits(), "{l:?} ({j}, {i}): {g} vs {want}");
+                assert_eq!(
+                    g.to_bits(),
+                    want.to_bits(),
+                    "{l:?} ({j}, {i}): {g} vs {want}"
+                );
             }
         }
     }
@@ -349,18 +356,31 @@ mod tests {
         let got = layer_mean(&a, &p, [900.0, 700.0]);
         for ((j, i), g) in got.indexed_iter() {
             let want = (j as f64 * 3.0 - 7.0) + 1e-4 * (i as f64 + 1.0) * 80_000.0;
-            assert!((f64::from(*g) - want).abs() < 1e-5 * want.abs().max(1.0), "{g} vs {want}");
+            assert!(
+                (f64::from(*g) - want).abs() < 1e-5 * want.abs().max(1.0),
+                "{g} vs {want}"
+            );
         }
     }
 
     #[test]
     fn the_levels_of_a_layer() {
         let p = levels();
-        let at = |hpa: f64| p.iter().position(|x| (x - hpa * 100.0).abs() < 1e-6).unwrap();
+        let at = |hpa: f64| {
+            p.iter()
+                .position(|x| (x - hpa * 100.0).abs() < 1e-6)
+                .unwrap()
+        };
         // Bounds on levels: one level more on each side.
-        assert_eq!(layer_levels(&p, 90_000.0, 70_000.0), at(650.0)..at(950.0) + 1);
+        assert_eq!(
+            layer_levels(&p, 90_000.0, 70_000.0),
+            at(650.0)..at(950.0) + 1
+        );
         // Bounds between levels: the levels that bracket them.
-        assert_eq!(layer_levels(&p, 92_500.0, 67_500.0), at(650.0)..at(950.0) + 1);
+        assert_eq!(
+            layer_levels(&p, 92_500.0, 67_500.0),
+            at(650.0)..at(950.0) + 1
+        );
         // A layer beyond the column: the whole column.
         assert_eq!(layer_levels(&p, 105_000.0, 8_000.0), 0..p.len());
     }
