@@ -18,6 +18,7 @@ use ndarray::Array3;
 use tracing::{info, warn};
 
 use crate::output::cf::{Product, Vertical};
+use crate::output::precision::KeptBits;
 use crate::output::store::{
     add_variables, add_variables_to, published_where, read_field, Published,
 };
@@ -289,7 +290,7 @@ fn update(
     path: &Path,
     products: Vec<Product>,
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Option<PathBuf> {
     // Nothing that holds no value is added to a file.
     let (products, left_out) = crate::output::cf::leave_out_empty(products);
@@ -301,7 +302,7 @@ fn update(
     }
     let target = run.staged(path);
     let written = if target == path {
-        add_variables(path, &products, deflate, nsb)
+        add_variables(path, &products, deflate, kept)
     } else {
         let from = if target.exists() {
             target.clone()
@@ -313,7 +314,7 @@ fn update(
                 path: target.clone(),
                 source,
             })
-            .and_then(|()| add_variables_to(&from, &target, &products, deflate, nsb))
+            .and_then(|()| add_variables_to(&from, &target, &products, deflate, kept))
     };
     match written {
         Ok(()) => Some(target),
@@ -334,7 +335,7 @@ pub fn update_later(
     fields: &Fields<'_>,
     intervals: &[u32],
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Vec<PathBuf> {
     let files = published_where(
         run.out_dir,
@@ -356,7 +357,7 @@ pub fn update_later(
             thick,
             intervals,
             deflate,
-            nsb,
+            kept,
         ));
     }
     // The next cycle at the same valid time, if this cycle is its previous one.
@@ -388,7 +389,7 @@ pub fn update_later(
                     prods.push(p);
                 }
             }
-            updated.extend(update(run, &next.path, prods, deflate, nsb));
+            updated.extend(update(run, &next.path, prods, deflate, kept));
         }
     }
     updated
@@ -403,7 +404,7 @@ fn later_in_cycle(
     (coords, this): (&[f64], &Array3<f32>),
     intervals: &[u32],
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Vec<PathBuf> {
     let mut updated = Vec::new();
     for &h in intervals {
@@ -421,7 +422,7 @@ fn later_in_cycle(
             earlier_value(&later.path, what.name, coords).and_then(|l| difference(&l, this))
         {
             let prods = vec![Product::new((what.spec)(h), what.vertical, d)];
-            updated.extend(update(run, &later.path, prods, deflate, nsb));
+            updated.extend(update(run, &later.path, prods, deflate, kept));
         }
     }
     updated
@@ -435,7 +436,7 @@ pub fn update_later_of(
     this: (&[f64], &Array3<f32>),
     intervals: &[u32],
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Vec<PathBuf> {
     let files = published_where(
         run.out_dir,
@@ -445,7 +446,7 @@ pub fn update_later_of(
         run.reference_time,
         |r, v| r == run.reference_time && v > run.valid_time,
     );
-    later_in_cycle(run, &files, what, this, intervals, deflate, nsb)
+    later_in_cycle(run, &files, what, this, intervals, deflate, kept)
 }
 
 /// Budget variables on isentropic layers and surfaces.
@@ -824,7 +825,7 @@ pub fn update_budgets(
     g: &Geometry<'_>,
     max_interval_h: u32,
     deflate: i32,
-    nsb: u32,
+    kept: &KeptBits,
 ) -> Vec<PathBuf> {
     let files = published_where(
         run.out_dir,
@@ -848,7 +849,7 @@ pub fn update_budgets(
         let dt = run.valid_time - prev.valid_time;
         if dt <= max {
             let prods = pv_budget(g, &prev.path, this_file, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(run, this_file, prods, deflate, nsb));
+            updated.extend(update(run, this_file, prods, deflate, kept));
         }
     }
     let next = same_cycle
@@ -859,7 +860,7 @@ pub fn update_budgets(
         let dt = next.valid_time - run.valid_time;
         if dt <= max {
             let prods = pv_budget(g, this_file, &next.path, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(run, &next.path, prods, deflate, nsb));
+            updated.extend(update(run, &next.path, prods, deflate, kept));
         }
     }
     updated

@@ -378,9 +378,12 @@ impl Default for Cyclones {
 pub struct Output {
     /// zlib deflate level for data variables, 0 (none) to 9; shuffle is always on when > 0.
     pub deflate_level: i32,
-    /// Mantissa bits kept in data values, 1 to 23 (23: exact float32). Fewer bits
-    /// compress better and faster; 16 keeps a relative precision of 7.6e-6.
-    pub significant_bits: u32,
+    /// Mantissa bits kept in every data value, 1 to 23 (23: exact float32),
+    /// if set; unset, each product keeps the bits measured to hold 99 % of its
+    /// real information ([`crate::output::precision`]). Fewer bits compress
+    /// better and faster; 16 keeps a relative precision of 7.6e-6.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub significant_bits: Option<u32>,
     /// Range of the longitudes in the files: `"auto"`, `"-180..180"` or
     /// `"0..360"`. A global grid is rolled into it; a limited area keeps its
     /// columns in order and takes the range in which its longitudes run without
@@ -392,20 +395,34 @@ pub struct Output {
     /// or a local model whose files say 255, "missing"); for example
     /// `[output.institutions]` `255 = "Our local model"`.
     pub institutions: std::collections::BTreeMap<String, String>,
+    /// Mantissa bits kept by single products, by product name (`thick`, `pv`,
+    /// `thick_chg` for every thickness change), 1 to 23; wins over
+    /// `significant_bits` and over the measured table. (A table: after the
+    /// plain values, as TOML writes them.)
+    pub kept_bits: std::collections::BTreeMap<String, u32>,
 }
 
 impl Default for Output {
     fn default() -> Self {
         Output {
             deflate_level: 1,
-            significant_bits: 16,
+            significant_bits: None,
             longitudes: crate::geometry::LongitudeRange::Auto,
             institutions: std::collections::BTreeMap::new(),
+            kept_bits: std::collections::BTreeMap::new(),
         }
     }
 }
 
 impl Output {
+    /// The mantissa bits each product keeps, as configured.
+    pub fn kept_bits(&self) -> crate::output::precision::KeptBits {
+        crate::output::precision::KeptBits {
+            all: self.significant_bits,
+            by_name: self.kept_bits.clone(),
+        }
+    }
+
     /// The institution named in the files for centre `c`: the configured name,
     /// else leeward's own list.
     pub fn institution(&self, c: u16) -> String {
@@ -464,11 +481,17 @@ impl Config {
                 self.output.deflate_level
             ));
         }
-        if !(1..=23).contains(&self.output.significant_bits) {
-            p.push(format!(
-                "output.significant_bits: {} is outside 1 to 23",
-                self.output.significant_bits
-            ));
+        if let Some(b) = self
+            .output
+            .significant_bits
+            .filter(|b| !(1..=23).contains(b))
+        {
+            p.push(format!("output.significant_bits: {b} is outside 1 to 23"));
+        }
+        for (name, b) in &self.output.kept_bits {
+            if !(1..=23).contains(b) {
+                p.push(format!("output.kept_bits.{name}: {b} is outside 1 to 23"));
+            }
         }
         for (k, name) in &self.output.institutions {
             if k.parse::<u16>().is_err() {

@@ -993,10 +993,11 @@ pub fn run_step(
     // as soon as it is made, or once nothing else needs its plain values; only
     // compressed bytes wait for the writer. The seconds count as writing.
     let packing = std::cell::Cell::new(0.0);
+    let kept = cfg.output.kept_bits();
     let seal = |mut p: Product| {
         let t = Instant::now();
         in_si_units(&mut p);
-        p.pack(cfg.output.significant_bits, cfg.output.deflate_level);
+        p.pack(kept.bits(p.spec.name), cfg.output.deflate_level);
         packing.set(packing.get() + t.elapsed().as_secs_f64());
         p
     };
@@ -1007,7 +1008,7 @@ pub fn run_step(
         let p = if spec.units == variables::PV_UNITS {
             let mut p = Product::new(spec, vertical, data.clone());
             in_si_units(&mut p);
-            p.pack(cfg.output.significant_bits, cfg.output.deflate_level);
+            p.pack(kept.bits(p.spec.name), cfg.output.deflate_level);
             p
         } else {
             Product::packed_copy(spec, vertical, data, &cfg.output)
@@ -1479,11 +1480,11 @@ pub fn run_step(
     let mut change_products = Vec::new();
     // Changes are taken between values as published (bit-rounded), so that the
     // order in which steps and cycles arrive cannot change a single bit.
-    let nsb = cfg.output.significant_bits;
+    let kept = cfg.output.kept_bits();
     let as_published: Vec<(&'static str, Array3<f32>)> = fields
         .iter()
         .filter(|f| matches!(f.spec.name, "thick" | "z" | "trop_p" | "mslp"))
-        .map(|f| (f.spec.name, f.published(nsb)))
+        .map(|f| (f.spec.name, f.published(kept.bits(f.spec.name))))
         .collect();
     let find = |n: &str| as_published.iter().find(|(m, _)| *m == n).map(|(_, a)| a);
     // The fields of this step that run-to-run changes compare, with their coordinates:
@@ -1583,7 +1584,7 @@ pub fn run_step(
         winds,
         inputs: inputs_used,
         deflate: cfg.output.deflate_level,
-        significant_bits: cfg.output.significant_bits,
+        kept_bits: kept.clone(),
     };
     let name = output_name(&step.key, grid_suffix);
     let t_write = Instant::now();
@@ -1599,7 +1600,7 @@ pub fn run_step(
                 &r2r_fields,
                 &cfg.changes.intervals_h,
                 cfg.output.deflate_level,
-                nsb,
+                &kept,
             );
             if let Some(m) = mslp_now {
                 rep.updated.extend(changes::update_later_of(
@@ -1608,7 +1609,7 @@ pub fn run_step(
                     m,
                     &cfg.changes.intervals_h,
                     cfg.output.deflate_level,
-                    nsb,
+                    &kept,
                 ));
             }
             if pr.pv_budget && want_layer {
@@ -1653,7 +1654,7 @@ pub fn run_step(
                     &geom,
                     cfg.changes.budget_max_interval_h,
                     cfg.output.deflate_level,
-                    nsb,
+                    &kept,
                 ));
             }
             // The cycle's tracks, from every step published so far; a batch job's

@@ -91,8 +91,8 @@ pub struct StepProducts {
     pub inputs: Vec<String>,
     /// deflate level 0-9.
     pub deflate: i32,
-    /// Mantissa bits kept in data values (1-23; 23 keeps them exact).
-    pub significant_bits: u32,
+    /// Mantissa bits kept by each data variable (1-23; 23 keeps it exact).
+    pub kept_bits: super::precision::KeptBits,
 }
 
 /// Round a float to `nsb` significant mantissa bits, to nearest with ties to
@@ -239,7 +239,7 @@ impl Product {
         let values = if out.deflate_level > 0 {
             Values::Packed(super::pack::Packed::new(
                 data,
-                out.significant_bits,
+                out.kept_bits().bits(spec.name),
                 out.deflate_level as u32,
             ))
         } else {
@@ -512,7 +512,7 @@ fn write_contents(
     if aux_latlon {
         coords.push_str(" lat lon");
     }
-    if p.significant_bits < 23 {
+    if p.fields.iter().any(|x| p.kept_bits.bits(x.spec.name) < 23) {
         quantization_container(f)?;
     }
     let mut direct = Vec::new();
@@ -564,14 +564,11 @@ fn data_variable(
     let (ydim, xdim, _) = horizontal_dims(&p.grid);
     let mut v = f.add_variable::<f32>(&t.name, &target_dims(t, ydim, xdim))?;
     declare_storage(&mut v, p.deflate, p.grid.shape())?;
-    describe_variable(&mut v, prod, coords, p.significant_bits, t.layer)?;
+    let nsb = p.kept_bits.bits(prod.spec.name);
+    describe_variable(&mut v, prod, coords, nsb, t.layer)?;
     if t.vertical.is_empty() {
         // One level, no vertical dimension: through libnetcdf, which packs it.
-        let buf: Vec<f32> = prod
-            .level(0)
-            .iter()
-            .map(|&x| stored(x, p.significant_bits))
-            .collect();
+        let buf: Vec<f32> = prod.level(0).iter().map(|&x| stored(x, nsb)).collect();
         v.put_values(&buf, (0, .., ..))?;
         return Ok(None);
     }
@@ -585,7 +582,7 @@ fn data_variable(
                 let buf: Vec<f32> = data
                     .index_axis(ndarray::Axis(0), k)
                     .iter()
-                    .map(|&x| stored(x, p.significant_bits))
+                    .map(|&x| stored(x, nsb))
                     .collect();
                 v.put_values(&buf, (0, n, .., ..))?;
             }

@@ -7,6 +7,7 @@ pub mod cf;
 pub mod images;
 pub mod pack;
 pub mod page;
+pub mod precision;
 pub mod quicklook;
 pub mod scales;
 pub mod store;

@@ -328,9 +328,9 @@ pub fn add_variables(
     path: &Path,
     vars: &[Product],
     deflate: i32,
-    significant_bits: u32,
+    kept: &super::precision::KeptBits,
 ) -> Result<(), OutputError> {
-    add_variables_to(path, path, vars, deflate, significant_bits)
+    add_variables_to(path, path, vars, deflate, kept)
 }
 
 /// [`add_variables`] with the result at `path` and the file it starts from at
@@ -341,7 +341,7 @@ pub fn add_variables_to(
     path: &Path,
     vars: &[Product],
     deflate: i32,
-    significant_bits: u32,
+    kept: &super::precision::KeptBits,
 ) -> Result<(), OutputError> {
     let io = |p: &Path| {
         let p = p.to_path_buf();
@@ -389,7 +389,7 @@ pub fn add_variables_to(
         } else {
             ("y", "x")
         };
-        if significant_bits < 23 {
+        if vars.iter().any(|v| kept.bits(v.spec.name) < 23) {
             super::cf::quantization_container(&mut f).map_err(e)?;
         }
         // New variables are declared here with leeward's chunks and filters, so
@@ -439,7 +439,7 @@ pub fn add_variables_to(
                     &t,
                     (ydim, xdim),
                     &coords,
-                    (deflate, significant_bits),
+                    (deflate, kept.bits(prod.spec.name)),
                     &mut direct,
                 )
                 .map_err(e)?;

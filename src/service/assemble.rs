@@ -86,6 +86,96 @@ fn arrived(p: &Pending, q: Param, level: i64) -> bool {
             && p.have.contains(&(Quantity::Geopotential.param(), level)))
 }
 
+/// What a step lacks by its feed's rule (see `Assembly::lacks`).
+#[derive(Debug, Clone, PartialEq)]
+pub enum Lack {
+    /// Required quantities with the level keys they lack, in the order of
+    /// `require`; `wanted` are the rule's level keys, `elsewhere` the keys
+    /// that arrived for required quantities but are not among them.
+    Fields {
+        wanted: Vec<i64>,
+        lacking: Vec<(Param, Vec<i64>)>,
+        elsewhere: Vec<i64>,
+    },
+    /// Fewer files than a step has.
+    Files { have: usize, want: usize },
+    /// The marker of the cycle has not arrived.
+    Marker { cycle: String, pattern: String },
+}
+
+/// A level key (Pa times 100, see `level_key`) in hPa.
+fn hpa(k: i64) -> String {
+    format!("{}", k as f64 / 1e4)
+}
+
+/// A quantity's name as `leeward inspect` prints it.
+fn quantity_name(q: Param) -> String {
+    parameter(q).map_or_else(|| q.to_string(), |e| e.name.to_string())
+}
+
+impl Lack {
+    /// One item per quantity and level, level by level ("Temperature at
+    /// 500 hPa (not arrived)"), as a manifest lists them.
+    pub fn items(&self) -> Vec<String> {
+        match self {
+            Lack::Fields {
+                wanted, lacking, ..
+            } => wanted
+                .iter()
+                .flat_map(|k| {
+                    lacking
+                        .iter()
+                        .filter(move |(_, ks)| ks.contains(k))
+                        .map(move |(q, _)| {
+                            format!("{} at {} hPa (not arrived)", quantity_name(*q), hpa(*k))
+                        })
+                })
+                .collect(),
+            Lack::Files { have, want } => {
+                vec![format!("{} of {want} files (not arrived)", want - have)]
+            }
+            Lack::Marker { .. } => vec!["the marker file (not arrived)".into()],
+        }
+    }
+
+    /// Briefly, for a step still waiting: each quantity with its levels, and
+    /// the levels that arrived but are not the rule's.
+    pub fn brief(&self) -> Vec<String> {
+        match self {
+            Lack::Fields {
+                lacking, elsewhere, ..
+            } => {
+                let mut out: Vec<String> = lacking
+                    .iter()
+                    .map(|(q, ks)| {
+                        let levels: Vec<String> = ks.iter().map(|k| hpa(*k)).collect();
+                        format!("{} at {} hPa", quantity_name(*q), levels.join(", "))
+                    })
+                    .collect();
+                if !elsewhere.is_empty() {
+                    let levels: Vec<String> = elsewhere.iter().map(|k| hpa(*k)).collect();
+                    out.push(format!(
+                        "(arrived on levels not in levels_hpa: {} hPa)",
+                        levels.join(", ")
+                    ));
+                }
+                out
+            }
+            Lack::Files { have, want } => {
+                vec![format!(
+                    "{} more file(s): {have} of {want} arrived",
+                    want - have
+                )]
+            }
+            Lack::Marker { cycle, pattern } => {
+                vec![format!(
+                    "the marker file of cycle {cycle} (a name matching {pattern:?})"
+                )]
+            }
+        }
+    }
+}
+
 /// A step being assembled.
 #[derive(Debug, Clone)]
 pub struct Pending {
@@ -188,115 +278,86 @@ impl Assembly {
 
     /// Is the step complete by its feed's rule?
     pub fn complete(&self, p: &Pending, rule: &FeedRule) -> bool {
-        match rule.feed.complete {
-            Completeness::Fields => rule
-                .levels_pa()
-                .iter()
-                .all(|&pa| rule.required.iter().all(|q| arrived(p, *q, level_key(pa)))),
-            Completeness::Files => p.files.len() >= rule.feed.files_per_step as usize,
-            Completeness::Marker => {
-                self.markers
-                    .contains(&(p.tag.feed.clone(), p.tag.cycle.clone(), None))
-                    || self.markers.contains(&(
-                        p.tag.feed.clone(),
-                        p.tag.cycle.clone(),
-                        Some(p.tag.lead),
-                    ))
-            }
-        }
+        self.lacks(p, rule).is_none()
     }
 
-    /// What the feed's rule expected of a step and did not get.
-    pub fn not_arrived(&self, p: &Pending, rule: &FeedRule) -> Vec<String> {
-        match rule.feed.complete {
+    /// Has the marker of the step's cycle (or of the step itself) arrived?
+    fn marker_seen(&self, p: &Pending) -> bool {
+        let (feed, cycle) = (p.tag.feed.clone(), p.tag.cycle.clone());
+        self.markers.contains(&(feed.clone(), cycle.clone(), None))
+            || self.markers.contains(&(feed, cycle, Some(p.tag.lead)))
+    }
+
+    /// What the step still lacks by its feed's rule; `None` when complete.
+    /// The one judgement behind `complete`, the manifest's list of what did
+    /// not arrive (`not_arrived`) and a waiting step's reason (`waiting_for`).
+    pub fn lacks(&self, p: &Pending, rule: &FeedRule) -> Option<Lack> {
+        let lack = match rule.feed.complete {
             Completeness::Fields => {
-                let mut out = Vec::new();
-                for pa in rule.levels_pa() {
-                    for q in &rule.required {
-                        if !arrived(p, *q, level_key(pa)) {
-                            let name =
-                                parameter(*q).map_or_else(|| q.to_string(), |e| e.name.to_string());
-                            out.push(format!("{name} at {} hPa (not arrived)", pa / 100.0));
-                        }
-                    }
+                let wanted: Vec<i64> = rule.levels_pa().iter().map(|&pa| level_key(pa)).collect();
+                let lacking: Vec<(Param, Vec<i64>)> = rule
+                    .required
+                    .iter()
+                    .map(|q| {
+                        (
+                            *q,
+                            wanted
+                                .iter()
+                                .copied()
+                                .filter(|k| !arrived(p, *q, *k))
+                                .collect(),
+                        )
+                    })
+                    .filter(|(_, ks): &(Param, Vec<i64>)| !ks.is_empty())
+                    .collect();
+                if lacking.is_empty() {
+                    return None;
                 }
-                out
+                let mut elsewhere: Vec<i64> = p
+                    .have
+                    .iter()
+                    .filter(|(q, k)| rule.required.contains(q) && !wanted.contains(k))
+                    .map(|(_, k)| *k)
+                    .collect();
+                elsewhere.sort_unstable();
+                elsewhere.dedup();
+                Lack::Fields {
+                    wanted,
+                    lacking,
+                    elsewhere,
+                }
             }
             Completeness::Files => {
-                let n = p.files.len();
-                let want = rule.feed.files_per_step as usize;
-                if n < want {
-                    vec![format!("{} of {want} files (not arrived)", want - n)]
-                } else {
-                    Vec::new()
+                let (have, want) = (p.files.len(), rule.feed.files_per_step as usize);
+                if have >= want {
+                    return None;
                 }
+                Lack::Files { have, want }
             }
             Completeness::Marker => {
-                if self.complete(p, rule) {
-                    Vec::new()
-                } else {
-                    vec!["the marker file (not arrived)".into()]
+                if self.marker_seen(p) {
+                    return None;
+                }
+                Lack::Marker {
+                    cycle: p.tag.cycle.clone(),
+                    pattern: rule.feed.marker_pattern.clone(),
                 }
             }
-        }
+        };
+        Some(lack)
+    }
+
+    /// What the feed's rule expected of a step and did not get, one item per
+    /// quantity and level (the manifest's `missing`).
+    pub fn not_arrived(&self, p: &Pending, rule: &FeedRule) -> Vec<String> {
+        self.lacks(p, rule).map_or_else(Vec::new, |l| l.items())
     }
 
     /// What a waiting step still lacks by its feed's rule, said briefly: each
     /// quantity with the levels it lacks (and the levels that arrived but are
     /// not among `levels_hpa`), the files not yet there, or the marker.
     pub fn waiting_for(&self, p: &Pending, rule: &FeedRule) -> Vec<String> {
-        match rule.feed.complete {
-            Completeness::Fields => {
-                let hpa = |k: i64| format!("{}", k as f64 / 1e4);
-                let wanted: Vec<i64> = rule.levels_pa().iter().map(|&pa| level_key(pa)).collect();
-                let mut out = Vec::new();
-                for q in &rule.required {
-                    let lacking: Vec<String> = wanted
-                        .iter()
-                        .filter(|k| !p.have.contains(&(*q, **k)))
-                        .map(|k| hpa(*k))
-                        .collect();
-                    if !lacking.is_empty() {
-                        let name =
-                            parameter(*q).map_or_else(|| q.to_string(), |e| e.name.to_string());
-                        out.push(format!("{name} at {} hPa", lacking.join(", ")));
-                    }
-                }
-                let mut other: Vec<i64> = p
-                    .have
-                    .iter()
-                    .filter(|(q, k)| rule.required.contains(q) && !wanted.contains(k))
-                    .map(|(_, k)| *k)
-                    .collect();
-                other.sort_unstable();
-                other.dedup();
-                if !out.is_empty() && !other.is_empty() {
-                    out.push(format!(
-                        "(arrived on levels not in levels_hpa: {} hPa)",
-                        other.iter().map(|k| hpa(*k)).collect::<Vec<_>>().join(", ")
-                    ));
-                }
-                out
-            }
-            Completeness::Files => {
-                let (n, want) = (p.files.len(), rule.feed.files_per_step as usize);
-                if n < want {
-                    vec![format!("{} more file(s): {n} of {want} arrived", want - n)]
-                } else {
-                    Vec::new()
-                }
-            }
-            Completeness::Marker => {
-                if self.complete(p, rule) {
-                    Vec::new()
-                } else {
-                    vec![format!(
-                        "the marker file of cycle {} (a name matching {:?})",
-                        p.tag.cycle, rule.feed.marker_pattern
-                    )]
-                }
-            }
-        }
+        self.lacks(p, rule).map_or_else(Vec::new, |l| l.brief())
     }
 
     /// Move waiting steps that are complete, or past the timeout, to ready;
@@ -564,12 +625,20 @@ mod tests {
         );
         assert!(a.complete(&a.steps[&tag], &r));
         assert!(a.not_arrived(&a.steps[&tag], &r).is_empty());
-        // Without it, heights are still awaited.
+        assert!(a.waiting_for(&a.steps[&tag], &r).is_empty());
+        // Without it, heights are still awaited, and both renderings say so.
         fields.pop();
         let (tag2, key2) = step(0, 12);
         a.add(tag2.clone(), key2, contribution("b"), &fields, 0.0, false);
         assert!(!a.complete(&a.steps[&tag2], &r));
-        assert_eq!(a.not_arrived(&a.steps[&tag2], &r).len(), 1);
+        assert_eq!(
+            a.not_arrived(&a.steps[&tag2], &r),
+            vec!["Geopotential height at 500 hPa (not arrived)".to_string()]
+        );
+        assert_eq!(
+            a.waiting_for(&a.steps[&tag2], &r),
+            vec!["Geopotential height at 500 hPa".to_string()]
+        );
     }
 
     #[test]

@@ -94,6 +94,21 @@ def run_leeward(binary: Path, inputs, out_dir: Path, name: str = "", timeout: fl
     return Run(name, list(inputs), out_dir, rc, so, se, time.monotonic() - t0)
 
 
+@pytest.fixture(autouse=True)
+def _no_service_outlives_its_test():
+    """A test that fails half-way must not leave its service running: the
+    services started through test_service.Service (used by several test
+    modules) are killed when each test ends."""
+    yield
+    mod = sys.modules.get("test_service")
+    started = getattr(mod, "_STARTED", None) if mod else None
+    while started:
+        p = started.pop()
+        if p.poll() is None:
+            p.kill()
+            p.wait(timeout=30)
+
+
 @pytest.fixture(scope="session")
 def leeward_bin() -> Path:
     b = leeward_bin_path()

@@ -34,7 +34,15 @@ from pathlib import Path
 import pytest
 
 from test_arrival_order import compare_trees
-from test_service import Service, demo_inputs, messages, reference_products, step_key, wait_for
+from test_service import (
+    Service,
+    demo_inputs,
+    messages,
+    reference_products,
+    step_key,
+    visible_files,
+    wait_for,
+)
 
 CYCLE = "2026031400"
 PIECES = 3
@@ -72,12 +80,18 @@ class ManifestWatch(threading.Thread):
         self.seen: dict[str, dict[int, str]] = {}
         self.last: dict[str, int] = {}
         self.failures: list[str] = []
+        self.reads = 0
+
 
     def run(self):
+        try:
+            self.watch()
+        except Exception as e:  # noqa: BLE001 - a watcher that dies must fail the test
+            self.failures.append(f"the watcher stopped: {e!r}")
+
+    def watch(self):
         while not self.stop_flag:
-            for p in list(self.out.rglob("*.json")) if self.out.exists() else []:
-                if any(part.startswith(".") for part in p.relative_to(self.out).parts):
-                    continue
+            for p in (f for f in visible_files(self.out) if f.suffix == ".json"):
                 try:
                     raw = p.read_bytes()
                 except FileNotFoundError:
@@ -89,6 +103,7 @@ class ManifestWatch(threading.Thread):
                     continue
                 if rev is None:
                     continue  # not a manifest
+                self.reads += 1
                 h = hashlib.sha256(raw).hexdigest()
                 got = self.seen.setdefault(p.name, {}).setdefault(rev, h)
                 if got != h:
@@ -145,6 +160,7 @@ def test_a_step_written_in_pieces_is_made_again_until_it_is_whole(tmp_path, rule
     watch.stop_flag = True
     watch.join(timeout=10)
     assert watch.failures == [], watch.failures[:5]
+    assert not watch.is_alive() and watch.reads > 0, "the manifests were not watched"
     assert "not used" not in log, [ln for ln in log.splitlines() if "not used" in ln][:3]
     # Each step made once per piece, no more: a late piece re-makes it once.
     assert [outcomes(svc, lead) for lead in (6, 12)] == [PIECES, PIECES]

@@ -45,14 +45,17 @@ import xarray as xr
 
 import gribgen
 from conftest import FIGURES, REPO_ROOT, run_leeward
+from test_information import _documented_kept_bits, table_name
 
 HERE = Path(__file__).resolve().parent
 #: Levels of the inputs: 1000 to 100 hPa every 50 hPa, so that isentropic surfaces,
 #: the tropopause and every thickness layer have values.
 LEVELS = gribgen.TALL_LEVELS_HPA
-#: Mantissa bits kept in the files (output.significant_bits default): relative rounding
+#: Mantissa bits kept by the heights (16, docs/output.md "Precision"): relative rounding
 #: error at most 2^-17 (Kloewer et al. 2021; docs/configuration.md).
 ROUNDING = 2.0 ** -17
+#: Mantissa bits each product keeps by default (docs/output.md, "Precision").
+KEPT = _documented_kept_bits()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -247,7 +250,7 @@ def test_cf_1_11_attributes(made):
             for n in _data_variables(ds):
                 a = {k: ds[n].getncattr(k) for k in ds[n].ncattrs()}
                 assert a.get("grid_mapping") == "crs", (kind, n, a.get("grid_mapping"))
-                assert (a.get("quantization"), a.get("quantization_nsb")) == ("quantization_info", 16), (kind, n)
+                assert (a.get("quantization"), a.get("quantization_nsb")) == ("quantization_info", KEPT[table_name(n)]), (kind, n)
                 assert not any(k.startswith("leeward_significant") for k in a), (kind, n)
                 if a.get("units") == "K":
                     assert a.get("units_metadata") == "temperature: on_scale", (kind, n)

@@ -113,18 +113,9 @@ levels_hpa = {LEVELS_HPA}
 """
 
 
+# Every `leeward serve` started by a test; conftest.py's autouse fixture kills
+# those still running when the test ends, whichever module the test is in.
 _STARTED: list = []
-
-
-@pytest.fixture(autouse=True)
-def _no_service_outlives_its_test():
-    """A test that fails half-way must not leave its service running."""
-    yield
-    while _STARTED:
-        p = _STARTED.pop()
-        if p.poll() is None:
-            p.kill()
-            p.wait(timeout=30)
 
 
 class Service:
@@ -204,7 +195,10 @@ class Service:
         return [r for r in self.ledger() if r["event"] == "published"]
 
     def out_files(self):
-        return sorted(p for p in (self.root / "out").rglob("*") if p.is_file())
+        # os.walk passes over a directory that vanishes while it walks (a
+        # publication's staging directory); Path.rglob raises.
+        found = [Path(d) / f for d, _, files in os.walk(self.root / "out") for f in files]
+        return sorted(p for p in found if p.is_file())
 
 
 def wait_for(pred, timeout, what):
@@ -221,6 +215,18 @@ def step_key(rec):
     return (s["feed"], s["cycle"], s["lead"], s.get("member"), s["grid"])
 
 
+def visible_files(out: Path) -> list[Path]:
+    """The files of an output tree that a downstream reader sees. Hidden names
+    and hidden directories (leeward's work in progress, such as a publication's
+    staging directory) are not entered, and a directory that vanishes during the
+    walk is passed over (os.walk ignores it), never an error."""
+    found = []
+    for d, dirs, files in os.walk(out):
+        dirs[:] = [x for x in dirs if not x.startswith(".")]
+        found += [Path(d) / f for f in files if not f.startswith(".")]
+    return found
+
+
 class Reader(threading.Thread):
     """A downstream reader polling the output tree all the time, opening every
     visible product and manifest: it must never meet a partial file."""
@@ -233,12 +239,14 @@ class Reader(threading.Thread):
         self.opened = 0
 
     def run(self):
+        try:
+            self.read_all_the_time()
+        except Exception as e:  # noqa: BLE001 - a reader that dies must fail the test
+            self.failures.append(f"the reader stopped: {e!r}")
+
+    def read_all_the_time(self):
         while not self.stop_flag:
-            for p in list(self.out.rglob("*")) if self.out.exists() else []:
-                # Hidden names and hidden directories (a batch job's staging
-                # directory) are leeward's work in progress, not products.
-                if any(part.startswith(".") for part in p.relative_to(self.out).parts):
-                    continue
+            for p in visible_files(self.out):
                 if not p.is_file():
                     continue
                 try:
@@ -662,6 +670,9 @@ def test_retention_removes_old_cycles_and_timeout_publishes_partial(tmp_path):
     deliver_renamed(f[0].read_bytes(), tmp_path / "in" / f[0].name)
     wait_for(lambda: len(svc.published()) == 1, 60, "partial step at the timeout")
     assert svc.published()[0]["partial"] is True
+    # The manifest says what the rule waited for and did not get.
+    m = json.loads(Path(svc.published()[0]["manifest"]).read_text())
+    assert "the marker file (not arrived)" in m["missing"], m["missing"]
     # The ledger record comes first, the counter just after it.
     wait_for(lambda: svc.metric("leeward_steps_published_total", feed="demo", state="partial") >= 1,
              30, "the publication counted")

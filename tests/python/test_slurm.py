@@ -35,10 +35,9 @@ from pathlib import Path
 import pytest
 
 from conftest import REPO_ROOT, leeward_bin_path
-from test_service import (  # noqa: F401  (the fixture keeps services from outliving a test)
+from test_service import (
     Reader,
     Service,
-    _no_service_outlives_its_test,
     assert_same_products,
     data_variables,
     deliver_renamed,
