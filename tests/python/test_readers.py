@@ -551,6 +551,7 @@ def test_each_thickness_layer_is_selected_by_its_pressures(kind, made):
     # geopotential height (the inputs have z on every level: the method's first branch,
     # docs/output.md "Thickness"), within the rounding of the three stored values.
     iris = pytest.importorskip("iris", reason="Iris (PyPI scitools-iris) is not installed")
+    pytest.importorskip("cf_xarray", reason="cf_xarray (PyPI cf-xarray) is not installed")
     path = made[kind].file
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -619,6 +620,7 @@ def test_each_layer_field_is_read_on_its_layer(kind, made):
     # method over it) and MetPy (.metpy.vertical) each find that layer, for each field.
     iris = pytest.importorskip("iris", reason="Iris (PyPI scitools-iris) is not installed")
     import metpy.xarray  # noqa: F401  (the .metpy accessor)
+    pytest.importorskip("cf_xarray", reason="cf_xarray (PyPI cf-xarray) is not installed")  # the .cf accessor
     path = made[kind].file
     problems = {}
     with netCDF4.Dataset(path) as ds:
