@@ -271,6 +271,7 @@ pub fn main() -> ExitCode {
                 watch_dir,
                 out_dir,
                 state_dir,
+                log_format: cli.log_format.clone(),
             },
         )),
         Command::Status {

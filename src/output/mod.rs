@@ -97,24 +97,6 @@ pub fn ensure_space(dir: &std::path::Path, bytes: u64) -> std::io::Result<()> {
     Ok(())
 }
 
-/// Temporaries of this process whose writing failed and that libnetcdf
-/// still holds open (deleted, so their blocks are not freed): paths seen in
-/// `/proc/self/fd` under `root`.
-pub fn held_temporaries(root: &std::path::Path) -> Vec<std::path::PathBuf> {
-    let Ok(rd) = std::fs::read_dir("/proc/self/fd") else {
-        return Vec::new();
-    };
-    rd.flatten()
-        .filter_map(|e| std::fs::read_link(e.path()).ok())
-        .filter(|t| {
-            let s = t.to_string_lossy();
-            t.starts_with(root)
-                && s.ends_with(" (deleted)")
-                && (s.contains(".partial-") || s.contains(".update-"))
-        })
-        .collect()
-}
-
 /// `<pid>-<n>`: a temporary name used once, so that a retry never meets the
 /// temporary of an earlier, failed attempt.
 pub fn temporary_suffix() -> String {

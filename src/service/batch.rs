@@ -54,7 +54,8 @@ const TIME_FORMAT: &str = "%Y-%m-%dT%H:%M:%S";
 /// An input of the step, as the service catalogued it.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SpecInput {
-    /// The file.
+    /// The file (its name escaped in the record: any bytes, see [`escaped_path`]).
+    #[serde(with = "escaped_path")]
     pub path: PathBuf,
     /// Its size then.
     pub size: u64,
@@ -107,6 +108,24 @@ pub struct JobSpec {
     pub threads: u32,
     /// The feed's configuration as the service uses it.
     pub config: Config,
+}
+
+/// An input's path in a spec or result record: JSON strings are UTF-8 and a
+/// file name is any bytes, so the name goes as [`crate::escape::path`] writes
+/// it and comes back through [`crate::escape::unescape_path`], byte for byte.
+mod escaped_path {
+    use serde::{Deserialize, Deserializer, Serializer};
+    use std::path::{Path, PathBuf};
+
+    pub fn serialize<S: Serializer>(p: &Path, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(&crate::escape::path(p))
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<PathBuf, D::Error> {
+        let s = String::deserialize(d)?;
+        crate::escape::unescape_path(&s)
+            .ok_or_else(|| serde::de::Error::custom(format!("not an escaped path: {s}")))
+    }
 }
 
 fn hex(b: &[u8]) -> String {
@@ -247,6 +266,14 @@ fn shell_quote(s: &str) -> String {
     format!("'{}'", s.replace('\'', r"'\''"))
 }
 
+/// Write a job's spec into its staging directory (all a step process on
+/// this machine needs; a batch job gets its script too, [`prepare`]).
+pub fn write_spec(dir: &Path, spec: &JobSpec) -> std::io::Result<()> {
+    std::fs::create_dir_all(dir)?;
+    let text = serde_json::to_vec_pretty(spec).map_err(std::io::Error::other)?;
+    publish::write_atomic(&dir.join(SPEC), &text)
+}
+
 /// Write a job's spec and script into its staging directory.
 pub fn prepare(
     dir: &Path,
@@ -254,9 +281,7 @@ pub fn prepare(
     program: &Path,
     setup: &[String],
 ) -> std::io::Result<()> {
-    std::fs::create_dir_all(dir)?;
-    let text = serde_json::to_vec_pretty(spec).map_err(std::io::Error::other)?;
-    publish::write_atomic(&dir.join(SPEC), &text)?;
+    write_spec(dir, spec)?;
     let mut script = String::from("#!/bin/sh\n");
     script.push_str(&format!(
         "# leeward step job: feed {}, cycle {}, lead {} h, attempt {}.\n",
@@ -306,6 +331,7 @@ pub enum Ended {
     /// An input could not be read as catalogued (retried).
     Vanished {
         /// The file.
+        #[serde(with = "escaped_path")]
         file: PathBuf,
         /// Why.
         reason: String,
@@ -397,6 +423,22 @@ pub struct JobResult {
     pub ended: Ended,
     /// The pipeline's report.
     pub report: JobReport,
+    /// The job process's peak resident memory, KiB (`VmHWM` of proc(5)).
+    #[serde(default)]
+    pub peak_rss_kib: Option<u64>,
+}
+
+/// This process's peak resident memory so far, KiB (`VmHWM` of /proc/self/status).
+pub fn peak_rss_kib() -> Option<u64> {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()?
+        .lines()
+        .find_map(|l| l.strip_prefix("VmHWM:"))?
+        .trim()
+        .strip_suffix("kB")?
+        .trim()
+        .parse()
+        .ok()
 }
 
 fn host_name() -> String {
@@ -463,7 +505,9 @@ pub fn run_in_job(dir: &Path) -> u8 {
         .ok()
         .and_then(|s| s.parse().ok())
         .unwrap_or(0);
-    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, job = ?job_id, restarts, threads, dir = %dir.display(), "step job started");
+    // Every line the step logs says which step it is.
+    let _step = tracing::info_span!("step", feed = %spec.tag.feed, cycle = %spec.tag.cycle, lead = spec.tag.lead).entered();
+    info!(job = ?job_id, restarts, threads, dir = %dir.display(), "step job started");
     crate::output::quiet_hdf5_errors();
     let made = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| make(&spec, dir)))
         .unwrap_or_else(|p| {
@@ -489,6 +533,7 @@ pub fn run_in_job(dir: &Path) -> u8 {
             .to_string(),
         ended: made.0,
         report: made.1,
+        peak_rss_kib: peak_rss_kib(),
     };
     let text = match serde_json::to_vec_pretty(&result) {
         Ok(t) => t,
@@ -511,7 +556,7 @@ pub fn run_in_job(dir: &Path) -> u8 {
         Ended::Vanished { .. } => "input vanished",
         Ended::Internal { .. } => "internal error",
     };
-    info!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, outcome = what, seconds = result.report.timings.total, "step job finished");
+    info!(outcome = what, seconds = result.report.timings.total, peak_rss_kib = ?result.peak_rss_kib, "step job finished");
     0
 }
 
@@ -1171,6 +1216,35 @@ mod tests {
         assert_eq!(back, spec);
         assert_eq!(back.key().unwrap().grid_key, vec![1, 2, 255]);
         let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    #[test]
+    fn an_input_whose_name_is_not_utf8_goes_through_the_records_byte_for_byte() {
+        use std::os::unix::ffi::OsStrExt;
+        // A file name is any bytes but NUL and '/' (POSIX.1-2017, 3.170);
+        // JSON strings are UTF-8 (RFC 8259, 8.1).
+        let path = PathBuf::from(std::ffi::OsStr::from_bytes(b"/in/step\\\xff\n.grib2"));
+        let input = SpecInput {
+            path: path.clone(),
+            size: 1,
+            checksum: String::new(),
+            messages: vec![(0, 1)],
+            digest: String::new(),
+            seen_at: 0.0,
+        };
+        let text = serde_json::to_string(&input).unwrap();
+        assert!(text.contains(r#""/in/step\\\\\\xff\\n.grib2""#), "{text}");
+        let back: SpecInput = serde_json::from_str(&text).unwrap();
+        assert_eq!(
+            back.path.as_os_str().as_bytes(),
+            path.as_os_str().as_bytes()
+        );
+        let gone = Ended::Vanished {
+            file: path.clone(),
+            reason: "gone".into(),
+        };
+        let back: Ended = serde_json::from_str(&serde_json::to_string(&gone).unwrap()).unwrap();
+        assert_eq!(back, gone);
     }
 
     #[test]

@@ -6,7 +6,7 @@
 //! PV budget (each of those has a manifest), and the cycle's cyclone tracks,
 //! made from the published steps and this step's staged files. Everything is first written
 //! into a staging directory on the output tree's file system (a local
-//! worker's `<out>/<feed>/.publish/<step>_<ms>/`, or a batch job's staging
+//! step's `<out>/<feed>/.publish/<step>_<ms>/`, or a batch job's staging
 //! directory): the files, then the manifests that will describe them. Then:
 //!
 //! 1. the ledger records `publishing`: every rename, in order, with each
@@ -34,7 +34,7 @@ use super::ledger::{Journal, Move, Publishing, Record, StepTag};
 use super::publish::{self, file_checksum, StepFacts};
 use crate::pipeline::StepReport;
 
-/// Directory of a feed's output tree that holds local workers' staging directories.
+/// Directory of a feed's output tree that holds local steps' staging directories.
 pub const STAGE_DIR: &str = ".publish";
 
 /// Environment variable naming a point of the publication sequence at which
@@ -87,7 +87,7 @@ impl StagedFile {
     }
 }
 
-/// A new staging directory for a local worker's step: `<store>/.publish/<name>_<ms>`.
+/// A new staging directory for a local step: `<store>/.publish/<name>_<ms>`.
 pub fn local_stage(store: &Path, tag: &StepTag) -> PathBuf {
     let ms = chrono::Utc::now().timestamp_millis();
     let grid: String = tag.grid.chars().take(8).collect();

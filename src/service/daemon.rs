@@ -18,10 +18,11 @@ use tracing::{debug, error, info, warn};
 
 use super::assemble::{isobaric, Assembly, Contribution, Phase};
 use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
-use super::commit::{self, StagedFile};
+use super::child;
+use super::commit;
 use super::ledger::{FailKind, Journal, Ledger, Outcome, Record, StepTag};
 use super::metrics::Metrics;
-use super::publish::{self, StepFacts};
+use super::publish;
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::systemd::{status_line, Notifier};
 use super::waiting::{self, Waiting, WaitingStep};
@@ -32,9 +33,7 @@ use crate::ingest::catalogue::{catalogue, catalogue_file};
 use crate::ingest::grid::parse_grid;
 use crate::ingest::source::{checksum_file, checksum_ranges, open_input, InputError, Opened};
 use crate::output::store::cycle_dir_name;
-use crate::pipeline::{
-    grid_id, output_name, plan, run_step, Destination, InputFile, Step, StepKey, StepReport,
-};
+use crate::pipeline::{grid_id, output_name, plan, InputFile, Step, StepKey, StepReport};
 
 /// Where `leeward serve` takes its settings from.
 #[derive(Debug, Clone)]
@@ -47,6 +46,8 @@ pub struct ServeOptions {
     pub out_dir: Option<PathBuf>,
     /// Overrides `service.state_dir`.
     pub state_dir: Option<PathBuf>,
+    /// The log format (`text` or `json`), which the step processes use too.
+    pub log_format: String,
 }
 
 /// Exit codes of `serve`.
@@ -55,9 +56,6 @@ pub mod code {
     pub const OK: u8 = 0;
     /// Configuration or state directory unusable: do not restart until fixed.
     pub const CONFIG: u8 = 2;
-    /// libnetcdf holds a failed temporary open (its blocks are not freed):
-    /// stopped so that the service manager starts a fresh process.
-    pub const RESTART: u8 = 3;
 }
 
 /// A request, dropped into `<state_dir>/requests/` by `leeward reprocess`.
@@ -287,117 +285,59 @@ pub(super) fn load_step(
         .map(|s| (s, inputs)))
 }
 
-fn run_job(job: &Job) -> JobOutcome {
-    let (step, inputs) = match load_step(&job.files, &job.key) {
-        Ok(Some(x)) => x,
-        Ok(None) => {
-            return JobOutcome::InputFailed("the step's fields are no longer in its files".into())
-        }
-        Err((file, e)) => return JobOutcome::Vanished(file, e),
-    };
-    // The step's files and its additions to published ones are written into
-    // a staging directory, then published as one act (see `commit`).
-    let stage = commit::local_stage(&job.store, &job.tag);
-    if let Err(e) = std::fs::create_dir_all(&job.dir).and_then(|()| std::fs::create_dir_all(&stage))
+/// Make a step on this machine in a process of its own (see [`child`]): its
+/// spec into a staging directory of the feed's `.publish`, `leeward process
+/// --job` on it, and its result taken and published as a batch job's is
+/// ([`batch::take`]: the recorded publication, the cycle's tracks with it).
+/// The staging directory is gone when this returns, unless a stop cut the
+/// publication short (the next start finishes it from there).
+fn run_local(job: &Job, spec: &JobSpec, stage: &Path, log_format: &str) -> JobOutcome {
+    if let Err(e) = std::fs::create_dir_all(&job.dir).and_then(|()| batch::write_spec(stage, spec))
     {
-        return JobOutcome::OutputFailed(format!("cannot create {}: {e}", stage.display()));
-    }
-    let facts = StepFacts::of(
-        &job.tag.feed,
-        &job.key,
-        job.partial,
-        &job.files,
-        job.last_input,
-        job.not_arrived.clone(),
-    );
-    let written: Mutex<Option<(PathBuf, PathBuf, f64)>> = Mutex::new(None);
-    let hook = |rep: &StepReport| -> Result<(), String> {
-        let mut made = staged_files(rep, &job.tag, &stage, &job.store, &job.dir)?;
-        // Staged, the step could not see the others: the cycle's tracks are
-        // made under the lock and published with it.
-        batch::stage_tracks(&job.cfg, &job.store, &job.key, &mut made);
-        let intent = commit::stage_manifests(&made, rep, &facts)?;
-        commit::publish(&job.journal, &intent)?;
-        let latency = (unix_now() - facts.last_input).max(0.0);
-        *written
-            .lock()
-            .unwrap_or_else(std::sync::PoisonError::into_inner) = Some((
-            made.product.target.clone(),
-            PathBuf::from(&intent.publishing.manifest),
-            latency,
+        commit::remove_stage(stage);
+        return JobOutcome::OutputFailed(format!(
+            "cannot prepare the staging directory {}: {e}",
+            stage.display()
         ));
-        Ok(())
+    }
+    let outcome = match child::run(stage, log_format) {
+        Ok(ran) => local_outcome(batch::take(spec, stage, &job.lock, &job.journal), ran),
+        Err(reason) => JobOutcome::Internal(reason),
     };
-    let dest = Destination {
-        store: &job.store,
-        dir: &job.dir,
-        lock: Some(&job.lock),
-        on_published: Some(&hook),
-        stage: Some(&stage),
-    };
-    let mut rep = run_step(&step, &inputs, &job.cfg, &dest, job.suffix);
-    commit::remove_stage(&stage);
-    let published = written
-        .lock()
-        .unwrap_or_else(std::sync::PoisonError::into_inner)
-        .take();
-    if rep.output_failed {
-        JobOutcome::OutputFailed(rep.skipped.clone().unwrap_or_else(|| "write failed".into()))
-    } else if let Some((path, manifest, latency)) = published {
-        rep.output = Some(path.clone());
-        JobOutcome::Published {
+    commit::remove_stage(stage);
+    outcome
+}
+
+/// What a step process's taken result means for the step: as a local
+/// worker's outcome (output failures and unreadable inputs retried here).
+fn local_outcome(t: Taken, ran: child::Ran) -> JobOutcome {
+    match t {
+        Taken::Published {
             path,
             manifest,
             latency,
-            report: Box::new(rep),
+            report,
+            result,
+        } => {
+            debug!(feed = %result.tag.feed, cycle = %result.tag.cycle, step = result.tag.lead, process_s = ran.seconds, peak_rss_mib = result.peak_rss_kib.map(|k| k / 1024), "step process's result taken");
+            JobOutcome::Published {
+                path,
+                manifest,
+                latency,
+                report,
+            }
         }
-    } else {
-        JobOutcome::InputFailed(
-            rep.skipped
-                .clone()
-                .unwrap_or_else(|| "nothing could be made from the input".into()),
-        )
+        Taken::Ended(r) => match r.ended {
+            batch::Ended::InputFailed { reason } => JobOutcome::InputFailed(reason),
+            batch::Ended::Internal { reason } => JobOutcome::Internal(reason),
+            batch::Ended::OutputFailed { reason } => JobOutcome::OutputFailed(reason),
+            batch::Ended::Vanished { file, reason } => JobOutcome::Vanished(file, reason),
+            batch::Ended::Made { .. } => {
+                JobOutcome::Internal("a made result was not taken (a defect in leeward)".into())
+            }
+        },
+        Taken::Unusable(reason) => JobOutcome::OutputFailed(reason),
     }
-}
-
-/// The files a step made in its staging directory, each with its place in
-/// the output tree (`dir` for its own, the cycle directory under `store` for
-/// an update of a published file).
-fn staged_files<'a>(
-    rep: &StepReport,
-    tag: &'a StepTag,
-    stage: &'a Path,
-    store: &Path,
-    dir: &Path,
-) -> Result<commit::Made<'a>, String> {
-    let Some(own) = &rep.output else {
-        return Err("no product file".into());
-    };
-    let read = |staged: &Path, target: PathBuf| {
-        StagedFile::read(staged, target)
-            .map_err(|e| format!("staged file {} unreadable: {e}", staged.display()))
-    };
-    let beside = |p: &Path| dir.join(p.file_name().unwrap_or_default());
-    let product = read(own, beside(own))?;
-    let images = rep
-        .images
-        .iter()
-        .map(|i| read(i, beside(i)))
-        .collect::<Result<Vec<_>, _>>()?;
-    let mut updated = Vec::new();
-    for u in rep.updated.iter().filter(|u| *u != own) {
-        let target = commit::update_target(stage, store, u)
-            .ok_or_else(|| format!("{}: an update outside the staging layout", u.display()))?;
-        updated.push(read(u, target)?);
-    }
-    Ok(commit::Made {
-        step: tag,
-        stage,
-        product,
-        images,
-        updated,
-        tracks: Vec::new(),
-    })
 }
 
 /// What a caught panic said.
@@ -483,7 +423,6 @@ struct Daemon {
     too_old: BTreeSet<(String, String)>,
     last_status: String,
     last_published: Option<String>,
-    restart_needed: bool,
     last_ping: Instant,
     /// Files read with their last message cut off at their end: (size, mtime
     /// then, since when). Read again once settled, or when they change.
@@ -1420,16 +1359,36 @@ impl Daemon {
         let tag = job.tag.clone();
         info!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, partial = job.partial, files = job.files.len(), "processing");
         self.running.insert(tag.clone(), Instant::now());
+        let attempt = self.asm.steps.get(&tag).map_or(0, |p| p.attempts) + 1;
+        let threads = std::thread::available_parallelism().map_or(1, |n| n.get()) as u32;
+        let spec = JobSpec::new(
+            &job.tag,
+            attempt,
+            &job.key,
+            &job.files,
+            &job.store,
+            &job.dir,
+            job.suffix,
+            job.partial,
+            job.last_input,
+            job.not_arrived.clone(),
+            threads,
+            (*job.cfg).clone(),
+        );
+        let stage = commit::local_stage(&job.store, &tag);
+        let log_format = self.opts.log_format.clone();
         let tx = self.done_tx.clone();
         std::thread::spawn(move || {
             crate::output::quiet_hdf5_errors();
-            let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_job(&job)))
-                .unwrap_or_else(|p| {
-                    JobOutcome::Internal(format!(
-                        "internal error (a defect in leeward): {}",
-                        panic_text(&*p)
-                    ))
-                });
+            let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                run_local(&job, &spec, &stage, &log_format)
+            }))
+            .unwrap_or_else(|p| {
+                JobOutcome::Internal(format!(
+                    "internal error (a defect in leeward): {}",
+                    panic_text(&*p)
+                ))
+            });
             crate::output::release_hdf5_free_lists();
             let _ = tx.send(JobDone {
                 tag: job.tag.clone(),
@@ -1928,11 +1887,6 @@ impl Daemon {
                         partial: was_partial,
                     };
                 }
-                let held = crate::output::held_temporaries(&self.cfg.service.out_dir);
-                if !held.is_empty() {
-                    error!(files = ?held, "libnetcdf keeps failed temporaries open and their space is not freed; stopping for a fresh start");
-                    self.restart_needed = true;
-                }
             }
             JobOutcome::Vanished(_, _) if self.asm.steps.get(&tag).is_some_and(|p| p.more) => {
                 // The file changed after it was handed out, and its new
@@ -2414,7 +2368,6 @@ pub fn serve(opts: ServeOptions) -> u8 {
         too_old: BTreeSet::new(),
         last_status: String::new(),
         last_published: None,
-        restart_needed: false,
         last_ping: Instant::now(),
         growing: HashMap::new(),
         last_waiting: Vec::new(),
@@ -2464,7 +2417,6 @@ pub fn serve(opts: ServeOptions) -> u8 {
     let mut last_orphans = Instant::now();
     let ping_every = d.notifier.watchdog.map(|w| w / 2);
     let mut stopping: Option<Instant> = None;
-    let mut exit_code = code::OK;
     if let Some(w) = ping_every {
         d.notifier.send("WATCHDOG=1");
         debug!(every_s = w.as_secs_f64(), "watchdog pings");
@@ -2493,15 +2445,6 @@ pub fn serve(opts: ServeOptions) -> u8 {
                     }
                 }
             }
-        }
-        if d.restart_needed && stopping.is_none() {
-            d.notifier.send(&format!(
-                "STOPPING=1\n{}",
-                status_line("stopping for a fresh start: a failed write holds disk space")
-            ));
-            d.watchers.clear();
-            stopping = Some(Instant::now());
-            exit_code = code::RESTART;
         }
         let taking = stopping.is_none() && d.state_problem.is_none();
         if taking {
@@ -2556,14 +2499,10 @@ pub fn serve(opts: ServeOptions) -> u8 {
                 if d.running.is_empty() && !taking {
                     info!("stopped cleanly");
                     d.record(Record::Stopped {
-                        reason: if exit_code == code::OK {
-                            "signal".into()
-                        } else {
-                            "fresh start needed".into()
-                        },
+                        reason: "signal".into(),
                         at: Utc::now().timestamp(),
                     });
-                    return exit_code;
+                    return code::OK;
                 }
                 if t0.elapsed().as_secs_f64() >= d.cfg.service.shutdown_grace_s {
                     let left: Vec<String> = d.running.keys().map(ToString::to_string).collect();
@@ -2572,9 +2511,9 @@ pub fn serve(opts: ServeOptions) -> u8 {
                         reason: format!("signal; abandoned {}", left.join(", ")),
                         at: Utc::now().timestamp(),
                     });
-                    // Workers cannot be interrupted safely; their hidden
-                    // temporaries are removed at the next start.
-                    std::process::exit(i32::from(exit_code));
+                    // The step processes die with the service; their
+                    // staging directories are removed at the next start.
+                    std::process::exit(i32::from(code::OK));
                 }
             }
         }

@@ -8,6 +8,7 @@
 //! - [`assemble`]: fields grouped into steps; completeness; order.
 //! - [`daemon`]: the main loop, workers, signals, reprocess requests.
 //! - [`batch`]: step jobs on a batch scheduler (Slurm): spec, result, taking it.
+//! - [`child`]: step processes on this machine, made and taken as batch jobs are.
 //! - [`publish`]: output tree, manifests, temporaries, retention, quarantine.
 //! - [`commit`]: a step's publication as one act: recorded, renamed, finished after a crash.
 //! - [`ledger`]: the durable journal of what happened.
@@ -18,6 +19,7 @@
 
 pub mod assemble;
 pub mod batch;
+pub mod child;
 pub mod commit;
 pub mod daemon;
 pub mod ledger;

@@ -31,7 +31,7 @@ pub struct Service {
     pub quarantine: QuarantineMode,
     /// Quarantine directory; empty: `<state_dir>/quarantine`.
     pub quarantine_dir: PathBuf,
-    /// Steps processed at the same time.
+    /// Steps processed at the same time, each in a process of its own.
     pub workers: u32,
     /// Which ready step goes first: `newest-first` (newest cycle, then lowest
     /// lead) or `oldest-first` (in cycle order; the newest cycle still keeps a
@@ -71,7 +71,8 @@ pub struct Service {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Executor {
-    /// The service's own worker threads on this machine.
+    /// Processes of their own on this machine (`service.workers` at a time),
+    /// started and taken by the service as batch jobs are.
     Local,
     /// One Slurm batch job per step (`[service.slurm]`), on nodes that see the
     /// same output tree; the service stays the only one that publishes.

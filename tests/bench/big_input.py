@@ -13,7 +13,9 @@ Then, each in a fresh output tree:
    child (`ru_maxrss` from os.wait4, for that child alone) and wall time;
 2. `leeward serve` given the one step, and (a fresh service) the big file, renamed into
    its incoming directory: the service's peak resident memory (`VmHWM` of
-   /proc/PID/status) once every step of it is published.
+   /proc/PID/status, the service alone) once every step of it is published, and the
+   largest peak of its step processes (each logs its own `VmHWM` as `peak_rss_kib` when
+   it ends).
 
 A file is catalogued section by section and each step reads only its own messages, so
 the big file should cost about what one step costs, not its size. Printed: a table, and
@@ -25,6 +27,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import shutil
 import socket
 import subprocess
@@ -125,14 +128,19 @@ levels_hpa = {LEVELS_HPA}
             if published >= steps or p.poll() is not None:
                 break
             time.sleep(1.0)
-        return {"seconds": round(time.perf_counter() - t0, 1), "published": published,
-                "steps": steps, "rss_before_mib": round(before, 1),
-                "peak_rss_mib": round(vm_hwm_mib(p.pid), 1)}
+        took = round(time.perf_counter() - t0, 1)
+        peak = round(vm_hwm_mib(p.pid), 1)
     finally:
         p.terminate()
         p.wait(timeout=120)
         log.close()
-        shutil.rmtree(root / "out", ignore_errors=True)
+    steps_kib = [int(k) for k in re.findall(r"peak_rss_kib=Some\((\d+)\)",
+                                            (root / "serve.log").read_text(errors="replace"))]
+    shutil.rmtree(root / "out", ignore_errors=True)
+    return {"seconds": took, "published": published,
+            "steps": steps, "rss_before_mib": round(before, 1), "peak_rss_mib": peak,
+            "step_processes": len(steps_kib),
+            "step_process_peak_mib": round(max(steps_kib) / 1024, 1) if steps_kib else None}
 
 
 def main() -> int:
@@ -143,6 +151,8 @@ def main() -> int:
     ap.add_argument("--gib", type=float, default=2.0)
     ap.add_argument("--timeout", type=float, default=7200.0)
     ap.add_argument("--json", action="store_true")
+    ap.add_argument("--skip-process", action="store_true",
+                    help="measure the service only, not `leeward process`")
     a = ap.parse_args()
     py = sys.executable
     work = Path(a.work).resolve()
@@ -156,10 +166,11 @@ def main() -> int:
           f"{big.stat().st_size / 2**30:.2f} GiB, {n} steps", flush=True)
     r = {"what": "big_input", "res": a.res, "step_mib": round(step.stat().st_size / 2**20, 1),
          "big_gib": round(big.stat().st_size / 2**30, 2), "steps": n}
-    r["process_step"] = process_peak(binary, step, work / "out-step")
-    print(f"process, one step:  {r['process_step']}", flush=True)
-    r["process_big"] = process_peak(binary, big, work / "out-big")
-    print(f"process, big file:  {r['process_big']}", flush=True)
+    if not a.skip_process:
+        r["process_step"] = process_peak(binary, step, work / "out-step")
+        print(f"process, one step:  {r['process_step']}", flush=True)
+        r["process_big"] = process_peak(binary, big, work / "out-big")
+        print(f"process, big file:  {r['process_big']}", flush=True)
     r["serve_step"] = serve_peak(binary, step, work / "serve-step", 1, a.timeout)
     print(f"serve, one step:    {r['serve_step']}", flush=True)
     r["serve_big"] = serve_peak(binary, big, work / "serve-big", n, a.timeout)

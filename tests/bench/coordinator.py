@@ -2,6 +2,7 @@
 """The coordinator's own limits, on a synthetic backlog of many steps.
 
     python3 tests/bench/coordinator.py --leeward BIN [--steps 10000] [--jobs 1000] [--work DIR]
+        [--skip-slurm] [--max-s 7200]
 
 1. Writes a backlog of --steps small steps (T, Z, u, v on 1000, 850, 700 and
    500 hPa on a 10-degree global grid; 16 GRIB2 messages per step, encoded
@@ -172,16 +173,19 @@ def vm_rss_kib(pid: int) -> float:
     return float("nan")
 
 
-def growth_per_step(samples: list[tuple[int, float]], after: int = 1000) -> float | None:
+def growth_per_step(samples: list[tuple[int, float]], after: int = 1000
+                    ) -> tuple[float, float] | None:
     """Least-squares slope of resident memory (KiB) over steps published, from `after` on,
-    in KB (1000 bytes) per step; None with too few samples."""
+    in KB (1000 bytes) per step, and its standard error (from the fit's residuals; the
+    samples are a second apart and not independent, so take it as a lower bound of the
+    uncertainty); None with too few samples."""
     pts = [(n, r) for n, r in samples if n >= after]
-    if len(pts) < 3 or pts[-1][0] - pts[0][0] < 100:
+    if len(pts) < 4 or pts[-1][0] - pts[0][0] < 100:
         return None
     x = np.array([n for n, _ in pts], dtype=float)
     y = np.array([r for _, r in pts], dtype=float) * 1.024  # KiB to KB
-    slope = np.polyfit(x, y, 1)[0]
-    return float(slope)
+    (slope, _), cov = np.polyfit(x, y, 1, cov=True)
+    return float(slope), float(np.sqrt(cov[0, 0]))
 
 
 def thread_cpu_s(pid: int, tid: int) -> float:
@@ -207,7 +211,7 @@ def emit(rec: dict):
     print(json.dumps(rec), flush=True)
 
 
-def service_part(leeward: str, root: Path, steps: int) -> dict:
+def service_part(leeward: str, root: Path, steps: int, max_s: float = 7200.0) -> dict:
     (root / "in").mkdir(parents=True, exist_ok=True)
     t0 = time.monotonic()
     files = write_backlog(root / "in", steps)
@@ -227,6 +231,7 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
     hwm = 0.0
     samples = []
     rss = []  # (steps published, resident KiB)
+    trace = open(root / "rss.jsonl", "w")  # the samples, as they are taken
     try:
         while True:
             time.sleep(1.0)
@@ -236,18 +241,20 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
             hwm = max(hwm, vm_hwm_mib(p.pid))
             rss.append((c.get("published", 0), vm_rss_kib(p.pid)))
             now = time.monotonic() - t_start
+            trace.write(json.dumps({"s": round(now, 1), "published": rss[-1][0],
+                                    "rss_kib": rss[-1][1]}) + "\n")
+            trace.flush()
             samples.append((now, c.get("seen", 0), c.get("published", 0)))
             if first_seen is None and c.get("seen", 0) > 0:
                 first_seen = now
             if seen_at is None and c.get("seen", 0) >= steps:
                 seen_at = now
-            if c.get("published", 0) + c.get("failed", 0) >= steps:
+            if c.get("published", 0) + c.get("failed", 0) >= steps or now > max_s:
+                # Out of time (--max-s): what was done so far is reported.
                 published_at = now
                 main_cpu = thread_cpu_s(p.pid, p.pid)
                 all_cpu = process_cpu_s(p.pid)
                 break
-            if now > 7200:
-                raise SystemExit("not done within 2 h")
         c = ledger_counts(root / "state")
         records = sum(c.values())
         ledger_bytes = (root / "state" / "ledger.jsonl").stat().st_size
@@ -255,7 +262,9 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
         rate = records / published_at
         first_pub = next(t for t, _, n in samples if n > 0)
         pub_rate = (c.get("published", 0)) / (published_at - first_pub) if published_at > first_pub else float("nan")
+        growth = growth_per_step(rss)
         res = {"what": "backlog worked off (local executor)", "steps": steps,
+               "done": c.get("published", 0) + c.get("failed", 0),
                # The files were there before the start, so they count only after
                # the settle time (10 s): the rate is from the first to the last.
                "catalogued_all_s": round(seen_at, 1) if seen_at else None,
@@ -270,8 +279,8 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
                "rss_end_mib": round(rss[-1][1] / 1024, 1) if rss else None,
                # Growth of resident memory per step published after the first 1,000
                # (least squares over the samples taken each second).
-               "rss_growth_kb_per_step_after_1000": (
-                   None if growth_per_step(rss) is None else round(growth_per_step(rss), 2)),
+               "rss_growth_kb_per_step_after_1000": None if growth is None else round(growth[0], 3),
+               "rss_growth_kb_per_step_stderr": None if growth is None else round(growth[1], 3),
                # The main loop is the coordinator (watching is a thread of its
                # own, steps run on worker threads): its CPU per step is what
                # bounds how many steps one service can coordinate.
@@ -305,6 +314,7 @@ def service_part(leeward: str, root: Path, steps: int) -> dict:
         if p.poll() is None:
             p.kill()
         log.close()
+        trace.close()
 
 
 def slurm_part(jobs: int, repo: Path) -> dict | None:
@@ -357,13 +367,15 @@ def main(argv=None) -> int:
     ap.add_argument("--jobs", type=int, default=1000)
     ap.add_argument("--work", type=Path)
     ap.add_argument("--skip-slurm", action="store_true")
+    ap.add_argument("--max-s", type=float, default=7200.0,
+                    help="stop the backlog after this many seconds and report the steps done")
     a = ap.parse_args(argv)
     work = a.work or Path(tempfile.mkdtemp(prefix="leeward-coord-"))
     if work.exists():
         shutil.rmtree(work)
     work.mkdir(parents=True)
     repo = HERE.parents[1]
-    svc = service_part(a.leeward, work, a.steps)
+    svc = service_part(a.leeward, work, a.steps, a.max_s)
     sl = None if a.skip_slurm else slurm_part(a.jobs, repo)
     print()
     print(f"coordinator on a backlog of {a.steps} steps ({len(LEADS)} leads x "
@@ -371,7 +383,7 @@ def main(argv=None) -> int:
     print(f"  files catalogued            {svc['files_catalogued_per_s']} per s "
           f"(all in {svc['catalogued_all_s']} s)")
     print(f"  steps published (tiny)      {svc['steps_published_per_s']} per s "
-          f"(all in {svc['published_all_s']} s; {svc['failed']} failed)")
+          f"({svc['done']} of {a.steps} in {svc['published_all_s']} s; {svc['failed']} failed)")
     print(f"  ledger records, fsynced     {svc['ledger_records_per_s']} per s "
           f"({svc['ledger_records']} records, {svc['ledger_bytes'] / 1e6:.1f} MB)")
     print(f"  main loop CPU               {svc['main_loop_ms_per_step']} ms per step "
@@ -379,7 +391,7 @@ def main(argv=None) -> int:
     print(f"  peak resident memory        {svc['peak_rss_mib']} MiB "
           f"(at the end {svc['rss_end_mib']} MiB)")
     print(f"  memory growth               {svc['rss_growth_kb_per_step_after_1000']} KB per step "
-          "published after the first 1,000")
+          f"(standard error {svc['rss_growth_kb_per_step_stderr']}) published after the first 1,000")
     print(f"  restart: ready after        {svc['restart_ready_s']} s "
           f"({svc['restart_republished']} steps published again)")
     if sl:

@@ -265,8 +265,9 @@ def campaign(binary: Path, seeds: list[bytes], files: int, seed: int, workdir: P
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--files", type=int, default=2000)
-    ap.add_argument("--long", action="store_true", help="100,000 files")
+    ap.add_argument("--files", type=int, default=None, help="how many (2,000; 100,000 with --long)")
+    ap.add_argument("--long", action="store_true",
+                    help="100,000 files, the large samples' first messages among the seeds")
     ap.add_argument("--seed", type=int, default=20260314)
     ap.add_argument("--jobs", type=int, default=os.cpu_count() or 2)
     ap.add_argument("--bin", default=os.environ.get("LEEWARD_BIN", "target/release/leeward"))
@@ -274,7 +275,7 @@ def main() -> int:
     ap.add_argument("--keep", default="target/mutation-failures",
                     help="where failing cases are kept")
     a = ap.parse_args()
-    files = 100_000 if a.long else a.files
+    files = a.files if a.files is not None else (100_000 if a.long else 2000)
     binary = Path(a.bin).resolve()
     with tempfile.TemporaryDirectory(prefix="leeward-mutation-") as d:
         wd = Path(d)

@@ -310,7 +310,10 @@ ReturnToService=2
 SlurmctldTimeout=30
 SlurmdTimeout=60
 InactiveLimit=0
-KillWait=5
+# A job whose processes ignore SIGTERM stays COMPLETING this long after
+# scancel before SIGKILL: long enough for a test to watch the service look
+# at a COMPLETING job many times, also on a loaded machine.
+KillWait=20
 Waittime=0
 # Finished jobs stay visible to 'scontrol show job' for this long (seconds).
 MinJobAge=3600
