@@ -133,8 +133,10 @@ pub enum Vertical {
     /// on its own coordinate `p_layer_<bottom>_<top>` with the layer as bounds
     /// (layers may overlap, which one coordinate with bounds cannot hold).
     PressureLayer,
-    /// A single field with no vertical dimension (mean sea-level pressure, a
-    /// layer's mean): (time, y, x); a layer it stands for is said in its attributes.
+    /// A single field (mean sea-level pressure, a layer's mean): (time, y, x);
+    /// one that describes an isobaric layer ([`Product::layer`]) is written on
+    /// that layer's coordinate `p_layer_<bottom>_<top>` of length 1, as the
+    /// thickness layers are: (time, p_layer_<bottom>_<top>, y, x).
     Surface,
 }
 
@@ -198,6 +200,10 @@ pub struct Product {
     pub notes: Vec<(&'static str, String)>,
     /// Further numeric attributes of this variable (name, value).
     pub numbers: Vec<(&'static str, f64)>,
+    /// The isobaric layer (bottom, top; Pa) a single field describes (a layer
+    /// mean, or a quantity of the layer's ends), if any: its vertical
+    /// coordinate in the file ([`Product::vertical_name`]).
+    pub layer: Option<[f64; 2]>,
 }
 
 /// A product's values: as computed, or already packed as the file stores them.
@@ -218,6 +224,7 @@ impl Product {
             values: Values::Plain(data),
             notes: Vec::new(),
             numbers: Vec::new(),
+            layer: None,
         }
     }
 
@@ -244,6 +251,18 @@ impl Product {
             values,
             notes: Vec::new(),
             numbers: Vec::new(),
+            layer: None,
+        }
+    }
+
+    /// Its vertical dimension in the file: the coordinate of its isobaric layer
+    /// for a single field of a layer, none ("") for another single field, else
+    /// that of its vertical coordinate (a product on isobaric layers has one
+    /// per layer, named by [`layer_coordinate`]).
+    pub fn vertical_name(&self) -> String {
+        match (self.vertical, self.layer) {
+            (Vertical::Surface, Some(l)) => layer_coordinate(l),
+            (v, _) => v.dim().to_string(),
         }
     }
 
@@ -511,7 +530,7 @@ fn write_contents(
         } else {
             let target = Target {
                 name: prod.spec.name.to_string(),
-                vertical: prod.vertical.dim().to_string(),
+                vertical: prod.vertical_name(),
                 level: None,
                 layer: None,
             };
@@ -547,7 +566,7 @@ fn data_variable(
     declare_storage(&mut v, p.deflate, p.grid.shape())?;
     let nsb = p.kept_bits.bits(prod.spec.name);
     describe_variable(&mut v, prod, coords, nsb, t.layer)?;
-    if prod.vertical == Vertical::Surface {
+    if t.vertical.is_empty() {
         // One level, no vertical dimension: through libnetcdf, which packs it.
         let buf: Vec<f32> = prod.level(0).iter().map(|&x| stored(x, nsb)).collect();
         v.put_values(&buf, (0, .., ..))?;
@@ -752,7 +771,7 @@ fn vertical_coordinates(f: &mut netcdf::FileMut, p: &StepProducts) -> netcdf::Re
             ),
         });
     }
-    let one_layer: Vec<(String, [[f64; 2]; 1])> = if uses(Vertical::PressureLayer) {
+    let mut one_layer: Vec<(String, [[f64; 2]; 1])> = if uses(Vertical::PressureLayer) {
         p.p_layers
             .iter()
             .map(|l| (layer_coordinate(*l), [*l]))
@@ -760,6 +779,15 @@ fn vertical_coordinates(f: &mut netcdf::FileMut, p: &StepProducts) -> netcdf::Re
     } else {
         Vec::new()
     };
+    // The layers of single fields, each once (a thickness layer may be one of them).
+    for l in p.fields.iter().filter(|x| x.vertical == Vertical::Surface) {
+        if let Some(l) = l.layer {
+            let name = layer_coordinate(l);
+            if !one_layer.iter().any(|(n, _)| *n == name) {
+                one_layer.push((name, [l]));
+            }
+        }
+    }
     if uses(Vertical::ThetaLayer) && !p.layers.is_empty() {
         coords.push(VerticalCoord {
             name: "theta_layer",

@@ -239,16 +239,28 @@ fn identity(path: &Path) -> Option<Identity> {
     Some(id)
 }
 
-/// The isobaric layers of a file: (coordinate name, middle, [bottom, top]),
-/// from the ground up (the order of the configured layers, see
-/// [`crate::config::Config::from_toml`]).
+/// The isobaric layers of a file's per-layer variables (`<name>_<bottom>_<top>`,
+/// such as the thickness): (coordinate name, middle, [bottom, top]), from the
+/// ground up (the order of the configured layers, see
+/// [`crate::config::Config::from_toml`]). The layer of a single field only
+/// (`low_pv` on `p_layer_900_700`) is not one of them.
 fn pressure_layers(f: &netcdf::File) -> Vec<(String, f64, [f64; 2])> {
+    let per_layer = |coord: &str| {
+        let suffix = coord.strip_prefix("p_layer").unwrap_or_default();
+        f.variables().any(|v| {
+            let dims = v.dimensions();
+            v.name().ends_with(suffix) && dims.len() == 4 && dims[1].name() == coord
+        })
+    };
     let mut out: Vec<(String, f64, [f64; 2])> = f
         .variables()
         .filter_map(|v| {
             let name = v.name();
             let dims = v.dimensions();
             if !name.starts_with("p_layer_") || dims.len() != 1 || dims[0].name() != name {
+                return None;
+            }
+            if !per_layer(&name) {
                 return None;
             }
             let mid: f64 = v.get_value(0).ok()?;
@@ -412,9 +424,14 @@ pub fn add_variables_to(
                     })
                     .collect()
             } else {
+                let vertical = prod.vertical_name();
+                if !vertical.is_empty() && f.dimension(&vertical).is_none() {
+                    tracing::warn!(file = %path.display(), variable = prod.spec.name, dimension = %vertical, "the file has no such vertical coordinate: not added");
+                    continue;
+                }
                 vec![super::cf::Target {
                     name: prod.spec.name.to_string(),
-                    vertical: prod.vertical.dim().to_string(),
+                    vertical,
                     level: None,
                     layer: None,
                 }]

@@ -296,7 +296,7 @@ pub const STEER_U: VarSpec = VarSpec {
     standard_name: Some("eastward_wind"),
     long_name: "pressure-weighted mean eastward wind of the steering layer",
     units: "m s-1",
-    formula: "(1/(p_bottom - p_top)) integral u dp over the layer in cyclones.steering_layer_hpa, trapezoidal, toward east whatever the input's axes; the layer is in leeward_layer_hpa",
+    formula: "(1/(p_bottom - p_top)) integral u dp over the layer in cyclones.steering_layer_hpa, trapezoidal, toward east whatever the input's axes; the layer is the bounds of its vertical coordinate (and in leeward_layer_hpa)",
 };
 
 /// Steering wind of the cyclone tracks: north component.
@@ -305,7 +305,7 @@ pub const STEER_V: VarSpec = VarSpec {
     standard_name: Some("northward_wind"),
     long_name: "pressure-weighted mean northward wind of the steering layer",
     units: "m s-1",
-    formula: "(1/(p_bottom - p_top)) integral v dp over the layer in cyclones.steering_layer_hpa, trapezoidal, toward north whatever the input's axes; the layer is in leeward_layer_hpa",
+    formula: "(1/(p_bottom - p_top)) integral v dp over the layer in cyclones.steering_layer_hpa, trapezoidal, toward north whatever the input's axes; the layer is the bounds of its vertical coordinate (and in leeward_layer_hpa)",
 };
 
 /// Maximum Eady growth rate of an isobaric layer.
@@ -314,7 +314,7 @@ pub const EADY: VarSpec = VarSpec {
     standard_name: None,
     long_name: "maximum Eady growth rate of the isobaric layer",
     units: "s-1",
-    formula: "sigma = 0.31 |f| |V_top - V_bottom| / (dz N), N^2 = g ln(theta_top/theta_bottom) / dz, dz = z_top - z_bottom (Lindzen and Farrell 1980; Hoskins and Valdes 1990); the layer is in leeward_layer_hpa",
+    formula: "sigma = 0.31 |f| |V_top - V_bottom| / (dz N), N^2 = g ln(theta_top/theta_bottom) / dz, dz = z_top - z_bottom (Lindzen and Farrell 1980; Hoskins and Valdes 1990); the layer is the bounds of its vertical coordinate (and in leeward_layer_hpa)",
 };
 
 /// Equivalent potential temperature on isobaric levels.
@@ -350,7 +350,7 @@ pub const LOW_PV: VarSpec = VarSpec {
     standard_name: None,
     long_name: "mass-weighted mean Ertel potential vorticity of the low-level isobaric layer (1 PVU = 1e-6 K m2 kg-1 s-1)",
     units: PV_UNITS,
-    formula: "(1/(p_bottom - p_top)) integral pv dp over the layer in leeward_layer_hpa, trapezoidal on the isobaric levels, bounds linear in ln p; over the part of the layer above ground when that is at least half of it",
+    formula: "(1/(p_bottom - p_top)) integral pv dp over the layer (the bounds of its vertical coordinate), trapezoidal on the isobaric levels, bounds linear in ln p; over the part of the layer above ground when that is at least half of it",
 };
 
 /// Every data variable of the isobaric diagnostics, in the order written.

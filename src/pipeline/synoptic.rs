@@ -9,6 +9,7 @@
 //! functions of [`crate::diagnostics`]; this module only walks the grid.
 
 use ndarray::{Array2, Array3, Axis, Zip};
+use rayon::prelude::*;
 
 use crate::diagnostics::{baroclinic, moisture, sea_level, thickness};
 use crate::output::cf::{Product, Vertical};
@@ -44,8 +45,18 @@ fn level_index(p: &[f64], hpa: f64) -> Option<usize> {
     p.iter().position(|x| (x / 100.0 - hpa).abs() < 1e-6)
 }
 
-fn with_layer(mut prod: Product, l: [f64; 2]) -> Product {
+/// The product of the layer `l` (hPa): on the layer's pressure coordinate in
+/// the file (its middle, the layer's ends as its bounds), the layer also said
+/// in `leeward_layer_hpa`; a mean over the layer says so in `cell_methods`
+/// (a mean over a pressure cell weighs by mass, dm = dp/g: CF 1.11 section 7.3).
+fn with_layer(mut prod: Product, l: [f64; 2], mean: bool) -> Product {
+    let pa = [l[0] * 100.0, l[1] * 100.0];
     prod.notes.push(("leeward_layer_hpa", layer_text(l)));
+    if mean {
+        let coord = crate::output::cf::layer_coordinate(pa);
+        prod.notes.push(("cell_methods", format!("{coord}: mean")));
+    }
+    prod.layer = Some(pa);
     prod
 }
 
@@ -116,6 +127,7 @@ pub(super) fn eady(s: &Stacks<'_>, l: [f64; 2]) -> Result<Product, String> {
     Ok(with_layer(
         Product::new(variables::EADY, Vertical::Surface, data),
         l,
+        false,
     ))
 }
 
@@ -139,21 +151,51 @@ fn layer_depth(s: &Stacks<'_>, kb: usize, kt: usize) -> Option<Array2<f64>> {
     Some(out)
 }
 
-/// Pressure-weighted mean of `a` over the layer `l` (hPa) in every column.
+/// The levels of `p` (Pa, increasing) a mean over the layer from `p_bottom` up
+/// to `p_top` reads: from the last level above the top to the first below the
+/// bottom, so that every pair of levels that brackets a bound is among them and
+/// [`baroclinic::pressure_weighted_mean`] gives on them what it gives on the
+/// whole column.
+fn layer_levels(p: &[f64], p_bottom: f64, p_top: f64) -> std::ops::Range<usize> {
+    let lo = p.iter().rposition(|&x| x < p_top).unwrap_or(0);
+    let hi = p
+        .iter()
+        .position(|&x| x > p_bottom)
+        .map_or(p.len(), |k| k + 1);
+    lo..hi.max(lo)
+}
+
+/// Pressure-weighted mean of `a` over the layer `l` (hPa) in every column: the
+/// rows on every core, each column read on the layer's levels only.
 fn layer_mean(a: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Array2<f32> {
-    let (nz, ny, nx) = a.dim();
+    let (p_bottom, p_top) = (l[0] * 100.0, l[1] * 100.0);
+    let ks = layer_levels(p, p_bottom, p_top);
+    let ps = &p[ks.clone()];
+    let (_, ny, nx) = a.dim();
     let mut out = Array2::from_elem((ny, nx), f32::NAN);
-    Zip::indexed(&mut out).par_for_each(|(j, i), o| {
-        let col: Vec<f64> = (0..nz).map(|k| f64::from(a[(k, j, i)])).collect();
-        *o = baroclinic::pressure_weighted_mean(&col, p, l[0] * 100.0, l[1] * 100.0) as f32;
-    });
+    out.axis_iter_mut(Axis(0))
+        .into_par_iter()
+        .enumerate()
+        .for_each(|(j, mut row)| {
+            let mut col = vec![f64::NAN; ps.len()];
+            for (i, o) in row.iter_mut().enumerate() {
+                for (c, k) in col.iter_mut().zip(ks.clone()) {
+                    *c = f64::from(a[(k, j, i)]);
+                }
+                *o = baroclinic::pressure_weighted_mean(&col, ps, p_bottom, p_top) as f32;
+            }
+        });
     out
 }
 
 /// The low-level PV mean of the layer `l` (hPa) from isobaric PV.
 pub(super) fn low_pv(pv: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Product {
     let data = layer_mean(pv, p, l).insert_axis(Axis(0));
-    with_layer(Product::new(variables::LOW_PV, Vertical::Surface, data), l)
+    with_layer(
+        Product::new(variables::LOW_PV, Vertical::Surface, data),
+        l,
+        true,
+    )
 }
 
 /// The steering wind, earth-relative, of the layer `l` (hPa).
@@ -177,6 +219,7 @@ pub(super) fn steering(s: &Stacks<'_>, l: [f64; 2]) -> Option<[Product; 2]> {
         with_layer(
             Product::new(spec, Vertical::Surface, a.insert_axis(Axis(0))),
             l,
+            true,
         )
     };
     Some([mk(variables::STEER_U, ue), mk(variables::STEER_V, ve)])
@@ -253,4 +296,92 @@ pub(super) fn isentropic_humidity(
         Product::new(variables::ISEN_Q, Vertical::Theta, q),
         Product::new(variables::ISEN_RH, Vertical::Theta, rh_s),
     ]
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Levels 1000 to 100 hPa every 50 hPa, Pa, increasing.
+    fn levels() -> Vec<f64> {
+        (2..=20).map(|k| f64::from(k) * 5_000.0).collect()
+    }
+
+    /// A stack whose columns differ: f = a + b p with a, b from the column, and
+    /// levels below ground (NaN) from the bottom up in every third column.
+    fn stack(p: &[f64], ny: usize, nx: usize) -> Array3<f32> {
+        Array3::from_shape_fn((p.len(), ny, nx), |(k, j, i)| {
+            let (a, b) = (j as f64 * 3.0 - 7.0, 1e-4 * (i as f64 + 1.0));
+            let below = (i % 3 == 0) && p[k] > 100_000.0 - 2_500.0 * (j as f64);
+            if below {
+                f32::NAN
+            } else {
+                (a + b * p[k]) as f32
+            }
+        })
+    }
+
+    #[test]
+    fn a_layer_mean_reads_its_levels_only_and_gives_the_whole_column_result() {
+        // The same function on the whole column and on the layer's levels: the same bits.
+        let p = levels();
+        let a = stack(&p, 9, 7);
+        for l in [
+            [900.0, 700.0],
+            [850.0, 500.0],
+            [925.0, 675.0],
+            [1000.0, 100.0],
+            [1050.0, 80.0],
+        ] {
+            let got = layer_mean(&a, &p, l);
+            for ((j, i), g) in got.indexed_iter() {
+                let col: Vec<f64> = (0..p.len()).map(|k| f64::from(a[(k, j, i)])).collect();
+                let want =
+                    baroclinic::pressure_weighted_mean(&col, &p, l[0] * 100.0, l[1] * 100.0) as f32;
+                assert_eq!(
+                    g.to_bits(),
+                    want.to_bits(),
+                    "{l:?} ({j}, {i}): {g} vs {want}"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn the_mean_of_a_linear_profile_is_its_value_at_the_middle() {
+        // Closed form: f = a + b p has the pressure-weighted mean a + b (p_b + p_t) / 2
+        // over [p_t, p_b] (trapezoids are exact for a linear integrand; both bounds on levels).
+        let p = levels();
+        let a = stack(&p, 3, 4);
+        let got = layer_mean(&a, &p, [900.0, 700.0]);
+        for ((j, i), g) in got.indexed_iter() {
+            let want = (j as f64 * 3.0 - 7.0) + 1e-4 * (i as f64 + 1.0) * 80_000.0;
+            assert!(
+                (f64::from(*g) - want).abs() < 1e-5 * want.abs().max(1.0),
+                "{g} vs {want}"
+            );
+        }
+    }
+
+    #[test]
+    fn the_levels_of_a_layer() {
+        let p = levels();
+        let at = |hpa: f64| {
+            p.iter()
+                .position(|x| (x - hpa * 100.0).abs() < 1e-6)
+                .unwrap()
+        };
+        // Bounds on levels: one level more on each side.
+        assert_eq!(
+            layer_levels(&p, 90_000.0, 70_000.0),
+            at(650.0)..at(950.0) + 1
+        );
+        // Bounds between levels: the levels that bracket them.
+        assert_eq!(
+            layer_levels(&p, 92_500.0, 67_500.0),
+            at(650.0)..at(950.0) + 1
+        );
+        // A layer beyond the column: the whole column.
+        assert_eq!(layer_levels(&p, 105_000.0, 8_000.0), 0..p.len());
+    }
 }

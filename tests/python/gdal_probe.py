@@ -2,11 +2,12 @@
 own bindings (Debian's python3-gdal under /usr/bin/python3, GDAL 3.6), since the bindings
 must match the system library; the test suite's own environment calls it as a subprocess.
 
-For every data variable (four dimensions): whether GDAL gives it a CRS, and the units GDAL
-reports for it. For one data variable (the first named on the command line, else the first in the
-file): GDAL's geolocation of sampled pixel centres (its geotransform and CRS, through
-osr to geographic WGS 84 order lon/lat) against the file's own latitudes and longitudes,
-in units of the local grid spacing; and a gdal.Warp of its first level to EPSG:4326
+For every data variable (four dimensions): whether GDAL gives it a CRS, the units GDAL
+reports for it, and its vertical coordinate as GDAL reads it (value, bounds). For one
+data variable (the first named on the command line, else the first in the file): GDAL's
+geolocation of sampled pixel centres (its geotransform and CRS, through osr to geographic
+WGS 84 order lon/lat) against the file's own latitudes and longitudes, in units of the
+local grid spacing; and a gdal.Warp of its first level to EPSG:4326
 (nearest neighbour), read back at the file's own coordinates of the sampled points, against
 the source values there.
 
@@ -34,6 +35,28 @@ def data_variables(path):
     return out
 
 
+def vertical_of(root, var, name):
+    """GDAL's view of a variable's vertical coordinate: its dimension, the value the classic
+    raster driver gives the first band (metadata NETCDF_DIM_<dimension>), and through the
+    multidimensional API the coordinate's values and the bounds variable its `bounds`
+    attribute names (None when it names none)."""
+    dim = root.OpenMDArray(var).GetDimensions()[1]
+    coord = dim.GetIndexingVariable()
+    ds = gdal.Open(name)  # kept: a band does not keep its dataset alive
+    band = ds.GetRasterBand(1).GetMetadata()
+    out = dict(dim=dim.GetName(), band_value=band.get(f"NETCDF_DIM_{dim.GetName()}"), values=None, bounds=None)
+    if coord is not None:
+        out["values"] = [float(x) for x in coord.ReadAsArray().ravel()]
+        names = [a.GetName() for a in coord.GetAttributes()]
+        attr = coord.GetAttribute("bounds") if "bounds" in names else None
+        if attr is not None:
+            b = root.OpenMDArray(attr.Read())
+            out["bounds"] = None if b is None else b.ReadAsArray().tolist()
+    if out["band_value"] is not None:
+        out["band_value"] = float(out["band_value"])
+    return out
+
+
 def great_circle_deg(lat1, lon1, lat2, lon2):
     p1, p2 = math.radians(lat1), math.radians(lat2)
     dl = math.radians(lon2 - lon1)
@@ -53,6 +76,8 @@ def main():
         srs = s.GetSpatialRef()
         crs[var] = srs.ExportToWkt() if srs is not None else None
         units[var] = s.GetRasterBand(1).GetUnitType()
+    multidim = gdal.OpenEx(path, gdal.OF_MULTIDIM_RASTER).GetRootGroup()
+    vertical = {var: vertical_of(multidim, var, name) for var, name in variables}
     var, name = next(((v, n) for v, n in variables if v == want), variables[0])
     src = gdal.Open(name)
     nx, ny = src.RasterXSize, src.RasterYSize
@@ -114,7 +139,7 @@ def main():
     gdal.Unlink("/vsimem/warped.tif")
     gdal.Unlink("/vsimem/level.vrt")
     print(json.dumps(dict(variable=var, crs=crs, units=units, points=points, messages=messages,
-                          gdal_version=gdal.__version__)))
+                          vertical=vertical, gdal_version=gdal.__version__)))
 
 
 if __name__ == "__main__":

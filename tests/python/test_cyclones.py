@@ -356,9 +356,13 @@ def shear_run(leeward_bin, tmp_path_factory):
 
 def test_eady_growth_rate_of_uniform_shear_and_constant_n(shear_run):
     with netCDF4.Dataset(shear_run) as ds:
-        assert ds["eady"].dimensions == ("time", "lat", "lon")
+        # Output contract (docs/output.md "Fields of a layer"): on the layer's own pressure
+        # coordinate, its middle as the value and the layer as the bounds.
+        assert ds["eady"].dimensions == ("time", "p_layer_850_500", "lat", "lon")
         assert ds["eady"].getncattr("leeward_layer_hpa") == "850-500"
-        eady = np.ma.filled(ds["eady"][0].astype(float), np.nan)
+        assert float(ds["p_layer_850_500"][0]) == 67500.0
+        assert ds["p_layer_850_500_bounds"][:].tolist() == [[85000.0, 50000.0]]
+        eady = np.ma.filled(ds["eady"][0, 0].astype(float), np.nan)
         lat = ds["lat"][:]
     lat2 = np.repeat(lat[:, None], eady.shape[1], axis=1)
     f = 2 * OMEGA * np.sin(np.radians(lat2))

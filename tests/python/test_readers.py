@@ -218,9 +218,22 @@ def _data_variables(ds) -> list[str]:
 
 
 #: The single-level fields (time, y, x) the inputs below give (docs/output.md "Single-level
-#: fields"): mean sea-level pressure from the input, the steering wind, the Eady growth rate
-#: and the low-level PV of their layers; mslp_chg_06h in the step with changes.
-SINGLE_LEVEL = {"mslp", "steer_u", "steer_v", "eady", "low_pv"}
+#: fields"): mean sea-level pressure from the input; mslp_chg_06h in the step with changes.
+SINGLE_LEVEL = {"mslp"}
+#: The fields of one isobaric layer (docs/output.md "Fields of a layer"), with their layer
+#: (bottom, top; Pa) by the defaults of docs/configuration.md (cyclones.steering_layer_hpa,
+#: eady_layer_hpa, low_pv_layer_hpa): each on the length-1 coordinate p_layer_<b>_<t>, its
+#: middle as the value and the layer as its bounds (CF 1.11 section 7.1), as the thickness.
+LAYER_FIELDS = {"steer_u": (85000.0, 50000.0), "steer_v": (85000.0, 50000.0),
+                "eady": (85000.0, 50000.0), "low_pv": (90000.0, 70000.0)}
+#: ... of which the means over the layer, said by cell_methods "<coordinate>: mean" (CF 1.11
+#: section 7.3: a mean over a pressure cell weighs by mass).
+LAYER_MEANS = {"steer_u", "steer_v", "low_pv"}
+
+
+def _layer_coordinate(layer) -> str:
+    """p_layer_<bottom>_<top> in hPa (docs/output.md)."""
+    return "p_layer_{:g}_{:g}".format(layer[0] / 100.0, layer[1] / 100.0)
 
 
 def test_cf_1_11_attributes(made):
@@ -247,14 +260,17 @@ def test_cf_1_11_attributes(made):
                 coords = a["coordinates"].split()
                 assert ("realization" in coords) == (kind == "ensemble_member"), (kind, n, coords)
             assert "leeward_member" not in ds.ncattrs()
-            # The single-level fields: (time, y, x), no vertical dimension; the layer a
-            # field stands for said in leeward_layer_hpa.
+            # The single-level fields: (time, y, x), no vertical dimension.
             flat = {n for n in _data_variables(ds) if ds[n].ndim == 3}
             assert SINGLE_LEVEL <= flat, (kind, sorted(flat))
             for n in flat:
                 assert ds[n].dimensions[0] == "time" and ds[n].dimensions[1:] == ds["z"].dimensions[2:], (kind, n)
-            assert ds["eady"].getncattr("leeward_layer_hpa") == "850-500"
-            assert ds["low_pv"].getncattr("leeward_layer_hpa") == "900-700"
+            # The fields of a layer: on the layer's own coordinate, the layer also said in
+            # leeward_layer_hpa.
+            for n, layer in LAYER_FIELDS.items():
+                coord = _layer_coordinate(layer)
+                assert ds[n].dimensions == ("time", coord) + ds["z"].dimensions[2:], (kind, n, ds[n].dimensions)
+                assert ds[n].getncattr("leeward_layer_hpa") == "{:g}-{:g}".format(layer[0] / 100, layer[1] / 100)
             # Humidity in the input gives theta-e and humidity on isentropes.
             assert {"theta_e", "isen_rh", "isen_q"} <= set(_data_variables(ds)), kind
             if kind == "ensemble_member":
@@ -535,6 +551,7 @@ def test_each_thickness_layer_is_selected_by_its_pressures(kind, made):
     # geopotential height (the inputs have z on every level: the method's first branch,
     # docs/output.md "Thickness"), within the rounding of the three stored values.
     iris = pytest.importorskip("iris", reason="Iris (PyPI scitools-iris) is not installed")
+    pytest.importorskip("cf_xarray", reason="cf_xarray (PyPI cf-xarray) is not installed")
     path = made[kind].file
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -571,6 +588,86 @@ def test_each_thickness_layer_is_selected_by_its_pressures(kind, made):
             worst = max(worst, float(np.max(np.abs(got - want))))
     FIGURES.append(f"thickness {kind}: Iris and cf_xarray select each of {len(LAYERS_PA)} layers once by its "
                    f"bounds; largest |thick - (z_top - z_bottom)| {worst:.3f} m")
+
+
+# ---------------------------------------------------------------------------------------
+# Fields of a layer: every reader finds the layer each one describes
+# ---------------------------------------------------------------------------------------
+def _layer_problems_netcdf4(ds, n, layer) -> list:
+    coord = _layer_coordinate(layer)
+    c = ds[coord]
+    a = {k: c.getncattr(k) for k in c.ncattrs()}
+    out = []
+    want = {"standard_name": "air_pressure", "units": "Pa", "positive": "down", "axis": "Z",
+            "bounds": f"{coord}_bounds"}
+    out += [f"netCDF4: {coord}.{k} = {a.get(k)!r}, want {v!r}" for k, v in want.items() if a.get(k) != v]
+    if c[:].tolist() != [0.5 * (layer[0] + layer[1])]:
+        out.append(f"netCDF4: {coord} = {c[:].tolist()}")
+    if a.get("bounds") in ds.variables and ds[a["bounds"]][:].tolist() != [list(layer)]:
+        out.append(f"netCDF4: {a['bounds']} = {ds[a['bounds']][:].tolist()}")
+    cm = ds[n].getncattr("cell_methods") if "cell_methods" in ds[n].ncattrs() else None
+    if (cm == f"{coord}: mean") != (n in LAYER_MEANS):
+        out.append(f"netCDF4: cell_methods {cm!r}")
+    return out
+
+
+@pytest.mark.parametrize("kind", CLIENT_KINDS)
+def test_each_layer_field_is_read_on_its_layer(kind, made):
+    # CF 1.11 section 7.1 (cell boundaries): the layer a field describes (its bottom and top
+    # pressures, docs/output.md "Fields of a layer") is the cell of its vertical coordinate.
+    # netCDF4 (the file as written), xarray with cf_xarray (the Z coordinate and its bounds),
+    # Iris (the cube's Z coordinate: its point, its bound, its units; the mean as a cell
+    # method over it) and MetPy (.metpy.vertical) each find that layer, for each field.
+    iris = pytest.importorskip("iris", reason="Iris (PyPI scitools-iris) is not installed")
+    import metpy.xarray  # noqa: F401  (the .metpy accessor)
+    pytest.importorskip("cf_xarray", reason="cf_xarray (PyPI cf-xarray) is not installed")  # the .cf accessor
+    path = made[kind].file
+    problems = {}
+    with netCDF4.Dataset(path) as ds:
+        for n, layer in LAYER_FIELDS.items():
+            problems[n] = _layer_problems_netcdf4(ds, n, layer)
+    with xr.open_dataset(path) as ds:
+        parsed = ds.metpy.parse_cf(list(LAYER_FIELDS))
+        for n, layer in LAYER_FIELDS.items():
+            mid = 0.5 * (layer[0] + layer[1])
+            zc = ds[n].cf["Z"]
+            got = (zc.values.tolist(), np.asarray(ds.cf.get_bounds(zc.name)).tolist() if "bounds" in zc.attrs else None)
+            if got != ([mid], [list(layer)]):
+                problems[n].append(f"cf_xarray: Z {got}")
+            mv = parsed[n].metpy.vertical
+            if mv.values.tolist() != [mid]:
+                problems[n].append(f"MetPy: vertical {mv.name} {mv.values.tolist()}")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cubes = iris.load(str(path), iris.Constraint(cube_func=lambda c: c.var_name in LAYER_FIELDS))
+    assert {c.var_name for c in cubes} == set(LAYER_FIELDS), (kind, [c.var_name for c in cubes])
+    for c in cubes:
+        layer = LAYER_FIELDS[c.var_name]
+        z = c.coords(axis="Z")
+        got = (z[0].points.tolist(), z[0].bounds.tolist() if z[0].has_bounds() else None, str(z[0].units)) if len(z) == 1 else z
+        if got != ([0.5 * (layer[0] + layer[1])], [list(layer)], "Pa"):
+            problems[c.var_name].append(f"Iris: Z {got}")
+        means = [(m.method, m.coord_names) for m in c.cell_methods]
+        if (means == [("mean", (z[0].name(),))]) != (c.var_name in LAYER_MEANS):
+            problems[c.var_name].append(f"Iris: cell methods {means}")
+    problems = {n: p for n, p in problems.items() if p}
+    assert not problems, f"{kind}: {problems}"
+
+
+@pytest.mark.parametrize("kind", CLIENT_KINDS)
+def test_gdal_reads_each_layer_field_on_its_layer(kind, gdal_views):
+    # GDAL's netCDF driver: the band's NETCDF_DIM_<coordinate> value is the layer's middle;
+    # its multidimensional API finds the coordinate and, through its bounds attribute, the
+    # layer's bottom and top.
+    v = gdal_views[kind]["vertical"]
+    wrong = {}
+    for n, layer in LAYER_FIELDS.items():
+        mid = 0.5 * (layer[0] + layer[1])
+        want = dict(dim=_layer_coordinate(layer), band_value=mid, values=[mid], bounds=[list(layer)])
+        if v.get(n) != want:
+            wrong[n] = v.get(n)
+    assert not wrong, f"{kind}: GDAL reads {wrong}"
+    FIGURES.append(f"GDAL {kind}: {len(LAYER_FIELDS)} layer fields read on their layer with its bounds")
 
 
 # ---------------------------------------------------------------------------------------
