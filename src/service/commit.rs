@@ -31,7 +31,7 @@ use serde::{Deserialize, Serialize};
 use tracing::{error, info, warn};
 
 use super::ledger::{Journal, Move, Publishing, Record, StepTag};
-use super::publish::{self, file_checksum, StepFacts};
+use super::publish::{self, file_checksum, NcFacts, StepFacts};
 use crate::pipeline::StepReport;
 
 /// Directory of a feed's output tree that holds local steps' staging directories.
@@ -68,34 +68,6 @@ pub struct StagedFile {
     /// the service then need not open the file itself.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub netcdf: Option<NcFacts>,
-}
-
-/// What a staged NetCDF file holds, as its manifest tells it, read back by
-/// the step process that wrote it. Opening files costs the opening process
-/// memory that libnetcdf and libhdf5 keep; the step process ends, the service
-/// runs for months, so the service takes these facts from the result record.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct NcFacts {
-    /// Its variables' names.
-    pub variables: Vec<String>,
-    /// Points whose budget trajectories did not converge (None: no budget).
-    pub not_converged: Option<u64>,
-}
-
-impl NcFacts {
-    /// The facts of the NetCDF file at `path`; None when it does not open.
-    pub fn of(path: &Path) -> Option<NcFacts> {
-        crate::output::quiet_hdf5_errors();
-        let variables = netcdf::open(path)
-            .ok()?
-            .variables()
-            .map(|v| v.name())
-            .collect();
-        Some(NcFacts {
-            variables,
-            not_converged: crate::changes::not_converged_in(path),
-        })
-    }
 }
 
 impl StagedFile {

@@ -139,12 +139,40 @@ pub fn file_checksum(path: &Path) -> std::io::Result<(u64, String)> {
     Ok((n, digest.iter().map(|b| format!("{b:02x}")).collect()))
 }
 
+/// What a staged NetCDF file holds, as its manifest tells it, read back by
+/// the step process that wrote it. Opening files costs the opening process
+/// memory that libnetcdf and libhdf5 keep; the step process ends, the service
+/// runs for months, so the service takes these facts from the result record.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct NcFacts {
+    /// Its variables' names.
+    pub variables: Vec<String>,
+    /// Points whose budget trajectories did not converge (None: no budget).
+    pub not_converged: Option<u64>,
+}
+
+impl NcFacts {
+    /// The facts of the NetCDF file at `path`; None when it does not open.
+    pub fn of(path: &Path) -> Option<NcFacts> {
+        crate::output::quiet_hdf5_errors();
+        let variables = netcdf::open(path)
+            .ok()?
+            .variables()
+            .map(|v| v.name())
+            .collect();
+        Some(NcFacts {
+            variables,
+            not_converged: crate::changes::not_converged_in(path),
+        })
+    }
+}
+
 /// The manifest's variables and budget flag count of the NetCDF file at
 /// `path`: as its maker reported them (`known`), else read from the file.
-fn nc_facts(path: &Path, known: Option<&super::commit::NcFacts>) -> (Vec<String>, Option<u64>) {
+fn nc_facts(path: &Path, known: Option<&NcFacts>) -> (Vec<String>, Option<u64>) {
     match known {
         Some(k) => (k.variables.clone(), k.not_converged),
-        None => super::commit::NcFacts::of(path)
+        None => NcFacts::of(path)
             .map(|k| (k.variables, k.not_converged))
             .unwrap_or_default(),
     }
@@ -210,7 +238,7 @@ pub fn new_manifest(
     target: &Path,
     staged: &Path,
     (bytes, checksum): (u64, String),
-    nc: Option<&super::commit::NcFacts>,
+    nc: Option<&NcFacts>,
     rep: &StepReport,
     facts: &StepFacts<'_>,
 ) -> Manifest {
@@ -276,7 +304,7 @@ pub fn revised_manifest(
     target: &Path,
     staged: &Path,
     (bytes, checksum): (u64, String),
-    nc: Option<&super::commit::NcFacts>,
+    nc: Option<&NcFacts>,
 ) -> Option<Manifest> {
     let mut m = read_manifest(&manifest_path(target))?;
     m.product_bytes = bytes;
@@ -492,7 +520,7 @@ mod tests {
         let d = dir("ncfacts");
         // A path with no file at all: only the record's facts can give these.
         let absent = d.join("gone.nc");
-        let known = super::super::commit::NcFacts {
+        let known = super::NcFacts {
             variables: vec!["relative_vorticity".into(), "latitude".into()],
             not_converged: Some(7),
         };
