@@ -1072,7 +1072,7 @@ pub fn run_step(
             v: vg3,
             z: z3.as_ref(),
             theta: st.as_ref().map(|s| &s.theta),
-            rh: rh_moist.as_ref(),
+            rh: rh_moist.as_deref(),
             f: &plane.f,
             rotation: plane.rotation.as_ref(),
         };

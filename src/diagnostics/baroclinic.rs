@@ -60,7 +60,10 @@ pub fn pressure_weighted_mean(f: &[f64], p: &[f64], p_bottom: f64, p_top: f64) -
     let at = |target: f64| -> Option<f64> {
         (0..n.saturating_sub(1)).find_map(|k| {
             let (pa, pb) = (p[k], p[k + 1]);
-            if pa <= target && target <= pb && f[k].is_finite() && f[k + 1].is_finite() {
+            if target == pa && f[k].is_finite() {
+                // A bound on a level (the usual case) needs no interpolation.
+                Some(f[k])
+            } else if pa <= target && target <= pb && f[k].is_finite() && f[k + 1].is_finite() {
                 let w = (target.ln() - pa.ln()) / (pb.ln() - pa.ln());
                 Some(f[k] + w * (f[k + 1] - f[k]))
             } else {

@@ -58,6 +58,11 @@ pub fn lcl_temperature(t: f64, e: f64) -> f64 {
 /// with r the mixing ratio in g kg-1, T_L from [`lcl_temperature`] and kappa
 /// leeward's R/cp (Bolton writes 0.2854; leeward's 0.2857 keeps theta_e equal to
 /// theta in dry air). `e` is the vapour pressure, Pa; dry air (e <= 0) gives theta.
+///
+/// Evaluated as one exponential of the sum of the three factors' logarithms,
+/// theta_e = T exp[kappa ln(p0 / (p - e)) + 0.28e-3 r (ln T - ln T_L) + (3.036 / T_L - 0.00178) r (1 + 0.448e-3 r)],
+/// the same quantity with four logarithms and one exponential instead of two
+/// powers, two logarithms and an exponential (it runs at every point of every level).
 pub fn equivalent_potential_temperature(t: f64, p: f64, e: f64) -> f64 {
     if !(t.is_finite() && p.is_finite() && e.is_finite()) || e >= p {
         return f64::NAN;
@@ -66,9 +71,12 @@ pub fn equivalent_potential_temperature(t: f64, p: f64, e: f64) -> f64 {
         return t * (P0 / p).powf(KAPPA);
     }
     let r = 1000.0 * mixing_ratio(e, p);
-    let tl = lcl_temperature(t, e);
-    let theta_dl = t * (P0 / (p - e)).powf(KAPPA) * (t / tl).powf(0.28e-3 * r);
-    theta_dl * ((3.036 / tl - 0.00178) * r * (1.0 + 0.448e-3 * r)).exp()
+    let ln_t = t.ln();
+    let tl = 2840.0 / (3.5 * ln_t - (e / 100.0).ln() - 4.805) + 55.0;
+    let exponent = KAPPA * (P0 / (p - e)).ln()
+        + 0.28e-3 * r * (ln_t - tl.ln())
+        + (3.036 / tl - 0.00178) * r * (1.0 + 0.448e-3 * r);
+    t * exponent.exp()
 }
 
 #[cfg(test)]
@@ -106,6 +114,33 @@ mod tests {
         // (Bolton 1980, equation 15 gives 290.68 K here; from the formula above).
         let tl = lcl_temperature(293.15, e);
         assert!((tl - 290.68).abs() < 0.05, "{tl}");
+    }
+
+    /// Bolton's equation 39 written factor by factor, as printed.
+    fn theta_e_as_printed(t: f64, p: f64, e: f64) -> f64 {
+        let r = 1000.0 * mixing_ratio(e, p);
+        let tl = lcl_temperature(t, e);
+        t * (P0 / (p - e)).powf(KAPPA)
+            * (t / tl).powf(0.28e-3 * r)
+            * ((3.036 / tl - 0.00178) * r * (1.0 + 0.448e-3 * r)).exp()
+    }
+
+    #[test]
+    fn one_exponential_equals_the_printed_factors() {
+        // Every factor active: moist air from the tropics to the upper troposphere.
+        for (t, p, rh) in [
+            (303.0, 100_000.0, 0.9),
+            (288.0, 85_000.0, 0.5),
+            (250.0, 50_000.0, 1.0),
+            (220.0, 20_000.0, 0.3),
+        ] {
+            let e = rh * saturation_vapour_pressure(t);
+            let (a, b) = (
+                equivalent_potential_temperature(t, p, e),
+                theta_e_as_printed(t, p, e),
+            );
+            assert!((a - b).abs() < 1e-9 * b, "{t} {p}: {a} vs {b}");
+        }
     }
 
     #[test]

@@ -8,6 +8,8 @@
 //! the layer it stands for in its attributes. The formulas are the pure
 //! functions of [`crate::diagnostics`]; this module only walks the grid.
 
+use std::borrow::Cow;
+
 use ndarray::{Array2, Array3, Axis, Zip};
 use rayon::prelude::*;
 
@@ -60,16 +62,17 @@ fn with_layer(mut prod: Product, l: [f64; 2], mean: bool) -> Product {
     prod
 }
 
-/// Relative humidity over water on the levels, %: the input's own, or from its
-/// specific humidity, temperature and pressure (100 e / e_s(T)).
-pub(super) fn relative_humidity(
+/// Relative humidity over water on the levels, %: the input's own (borrowed,
+/// not copied), or from its specific humidity, temperature and pressure
+/// (100 e / e_s(T)).
+pub(super) fn relative_humidity<'a>(
     q: Option<&Array3<f32>>,
-    rh: Option<&Array3<f32>>,
+    rh: Option<&'a Array3<f32>>,
     t: Option<&Array3<f32>>,
     p: &[f64],
-) -> Option<Array3<f32>> {
+) -> Option<Cow<'a, Array3<f32>>> {
     if let Some(rh) = rh {
-        return Some(rh.clone());
+        return Some(Cow::Borrowed(rh));
     }
     let (q, t) = (q?, t?);
     let mut out = Array3::from_elem(q.dim(), f32::NAN);
@@ -79,7 +82,7 @@ pub(super) fn relative_humidity(
         .par_for_each(|(k, _, _), o, &q, &tk| {
             *o = moisture::relative_humidity(f64::from(q), f64::from(tk), p[k]) as f32;
         });
-    Some(out)
+    Some(Cow::Owned(out))
 }
 
 /// Equivalent potential temperature on every level (Bolton 1980).
