@@ -456,6 +456,21 @@ def statistics(ours, theirs, band, vcoord):
     return st
 
 
+def leeward_variable(ds, name):
+    """A variable of leeward's file as (levels, lat, lon) float64 with NaN where missing,
+    its vertical dimension and coordinate. `thick` stacks the per-layer variables."""
+    def read(var):
+        var.set_auto_mask(True)
+        return np.ma.filled(np.ma.asarray(var[0], dtype=np.float64), np.nan)
+    if name == "thick":
+        layers = thickness_layers(ds)
+        data = np.concatenate([read(ds.variables[n]) for n, _, _ in layers])
+        return data, "p_layer", np.array([mid for _, mid, _ in layers])
+    var = ds.variables[name]
+    vdim = var.dimensions[1]
+    return read(var), vdim, np.asarray(ds.variables[vdim][:], dtype=float)
+
+
 def agreement(prods, leeward_path, lat):
     """Per family and variable: statistics and checks. leeward's variables are read one
     at a time, so that its file does not add to the yardstick's memory."""
@@ -466,12 +481,7 @@ def agreement(prods, leeward_path, lat):
         for family, checks in CHECKS.items():
             fam = {"pass": True, "vars": {}}
             for name, tests in checks.items():
-                var = ds.variables[name]
-                var.set_auto_mask(True)
-                theirs = np.ma.filled(np.ma.asarray(var[0], dtype=np.float64), np.nan)
-                vdim = var.dimensions[1]
-                vcoord = np.asarray(ds.variables["p_layer_mid" if vdim == "p_layer" else vdim][:],
-                                    dtype=float)
+                theirs, vdim, vcoord = leeward_variable(ds, name)
                 st = statistics(prods[name], theirs, np.broadcast_to(band, theirs.shape), vcoord)
                 st["vertical"] = vdim
                 del theirs
@@ -486,14 +496,31 @@ def agreement(prods, leeward_path, lat):
     return result
 
 
+def thickness_layers(ds):
+    """leeward's thickness variables in file order: (name, layer mid-pressure, bounds), Pa.
+    Each layer is its own variable, `thick_<bottom>_<top>` on the coordinate
+    `p_layer_<bottom>_<top>` with its bounds (docs/output.md)."""
+    out = []
+    for name, var in ds.variables.items():
+        if name.startswith("thick_") and not name.startswith("thick_chg") and var.ndim == 4:
+            dim = var.dimensions[1]
+            out.append((name, float(ds.variables[dim][0]),
+                        tuple(float(b) for b in ds.variables[f"{dim}_bounds"][0])))
+    if not out:
+        raise SystemExit("leeward's file has no thickness variable (thick_<bottom>_<top>)")
+    return out
+
+
 def read_leeward_layout(path):
     """leeward's coordinates (what to compute) and its deflate settings (how to write)."""
     with netCDF4.Dataset(path) as ds:
         coords = {k: np.asarray(ds.variables[k][:], dtype=float)
-                  for k in ("pressure", "lat", "lon", "theta_level", "pv_level", "p_layer_mid",
-                            "p_layer_bounds", "theta_layer", "theta_layer_bounds")}
+                  for k in ("pressure", "lat", "lon", "theta_level", "pv_level",
+                            "theta_layer", "theta_layer_bounds")}
+        layers = thickness_layers(ds)
         filt = ds.variables["zeta"].filters()
-    coords["p_layer"] = coords.pop("p_layer_mid")
+    coords["p_layer"] = np.array([mid for _, mid, _ in layers])
+    coords["p_layer_bounds"] = np.array([bounds for _, _, bounds in layers])
     return coords, filt
 
 
