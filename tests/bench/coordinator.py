@@ -141,6 +141,7 @@ thickness = true
 thickness_change = true
 run_to_run = true
 pv_budget = false
+cyclones = {cyclones}
 """
 
 
@@ -211,7 +212,8 @@ def emit(rec: dict):
     print(json.dumps(rec), flush=True)
 
 
-def service_part(leeward: str, root: Path, steps: int, max_s: float = 7200.0) -> dict:
+def service_part(leeward: str, root: Path, steps: int, max_s: float = 7200.0,
+                 cyclones: bool = True) -> dict:
     (root / "in").mkdir(parents=True, exist_ok=True)
     t0 = time.monotonic()
     files = write_backlog(root / "in", steps)
@@ -221,7 +223,7 @@ def service_part(leeward: str, root: Path, steps: int, max_s: float = 7200.0) ->
           "seconds": round(gen_s, 1)})
     port = free_port()
     cfg = root / "leeward.toml"
-    cfg.write_text(CONFIG.format(root=root, port=port))
+    cfg.write_text(CONFIG.format(root=root, port=port, cyclones=str(cyclones).lower()))
     log = open(root / "serve.log", "wb")
     env = dict(os.environ, LEEWARD_LOG="warn")
     t_start = time.monotonic()
@@ -369,13 +371,16 @@ def main(argv=None) -> int:
     ap.add_argument("--skip-slurm", action="store_true")
     ap.add_argument("--max-s", type=float, default=7200.0,
                     help="stop the backlog after this many seconds and report the steps done")
+    ap.add_argument("--no-cyclones", action="store_true",
+                    help="turn the cyclone tracks off (the service makes them from the "
+                         "published steps when it takes each result)")
     a = ap.parse_args(argv)
     work = a.work or Path(tempfile.mkdtemp(prefix="leeward-coord-"))
     if work.exists():
         shutil.rmtree(work)
     work.mkdir(parents=True)
     repo = HERE.parents[1]
-    svc = service_part(a.leeward, work, a.steps, a.max_s)
+    svc = service_part(a.leeward, work, a.steps, a.max_s, cyclones=not a.no_cyclones)
     sl = None if a.skip_slurm else slurm_part(a.jobs, repo)
     print()
     print(f"coordinator on a backlog of {a.steps} steps ({len(LEADS)} leads x "

@@ -456,6 +456,16 @@ def statistics(ours, theirs, band, vcoord):
     return st
 
 
+def to_pvu(var):
+    """The factor that takes a PV variable of leeward's file to PVU, from its units."""
+    units = getattr(var, "units", "")
+    if units == "K m2 kg-1 s-1":
+        return 1e6
+    if units in ("PVU", "1e-6 K m2 kg-1 s-1"):
+        return 1.0
+    raise SystemExit(f"{var.name}: PV in units {units!r} the yardstick does not know")
+
+
 def leeward_variable(ds, name):
     """A variable of leeward's file as (levels, lat, lon) float64 with NaN where missing,
     its vertical dimension and coordinate. `thick` stacks the per-layer variables."""
@@ -468,7 +478,13 @@ def leeward_variable(ds, name):
         return data, "p_layer", np.array([mid for _, mid, _ in layers])
     var = ds.variables[name]
     vdim = var.dimensions[1]
-    return read(var), vdim, np.asarray(ds.variables[vdim][:], dtype=float)
+    data = read(var)
+    if VARIABLES[name][1] == "1e-6 K m2 kg-1 s-1":
+        data *= to_pvu(var)
+    vcoord = np.asarray(ds.variables[vdim][:], dtype=float)
+    if vdim == "pv_level":
+        vcoord = vcoord * to_pvu(ds.variables[vdim])
+    return data, vdim, vcoord
 
 
 def agreement(prods, leeward_path, lat):
@@ -518,6 +534,8 @@ def read_leeward_layout(path):
                   for k in ("pressure", "lat", "lon", "theta_level", "pv_level",
                             "theta_layer", "theta_layer_bounds")}
         layers = thickness_layers(ds)
+        # The yardstick works in PVU (1e-6 K m2 kg-1 s-1); leeward's files are in SI.
+        coords["pv_level"] = coords["pv_level"] * to_pvu(ds.variables["pv_level"])
         filt = ds.variables["zeta"].filters()
     coords["p_layer"] = np.array([mid for _, mid, _ in layers])
     coords["p_layer_bounds"] = np.array([bounds for _, _, bounds in layers])
