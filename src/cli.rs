@@ -58,10 +58,10 @@ pub enum Command {
         #[arg(long)]
         config: Option<PathBuf>,
         /// Output directory (created if missing).
-        #[arg(long, required_unless_present = "job")]
+        #[arg(long, required_unless_present_any = ["job", "tracks"])]
         out: Option<PathBuf>,
         /// GRIB2 files, any number, in any order.
-        #[arg(required_unless_present = "job")]
+        #[arg(required_unless_present_any = ["job", "tracks"])]
         inputs: Vec<PathBuf>,
         /// Run one step as a batch job of `leeward serve`: the staging
         /// directory the service prepared (its spec says inputs, step and
@@ -69,6 +69,10 @@ pub enum Command {
         /// the service to publish).
         #[arg(long, value_name = "DIR", conflicts_with_all = ["config", "out", "inputs"])]
         job: Option<PathBuf>,
+        /// Make the cycle's cyclone tracks for the step whose result `leeward
+        /// serve` is taking in this staging directory (the service runs this).
+        #[arg(long, value_name = "DIR", hide = true, conflicts_with_all = ["config", "out", "inputs", "job"])]
+        tracks: Option<PathBuf>,
     },
     /// Play the invented demo cycle through the real service: its GRIB2 files are delivered
     /// one step at a time into a directory `leeward serve` watches, and a table says per step
@@ -248,10 +252,12 @@ pub fn main() -> ExitCode {
             out,
             inputs,
             job,
-        } => match (job, out) {
-            (Some(dir), _) => ExitCode::from(crate::service::batch::run_in_job(&dir)),
-            (None, Some(out)) => ExitCode::from(process(config, out, inputs)),
-            (None, None) => ExitCode::from(exit::USAGE),
+            tracks,
+        } => match (job, tracks, out) {
+            (_, Some(dir), _) => ExitCode::from(crate::service::batch::tracks_in_job(&dir)),
+            (Some(dir), None, _) => ExitCode::from(crate::service::batch::run_in_job(&dir)),
+            (None, None, Some(out)) => ExitCode::from(process(config, out, inputs)),
+            (None, None, None) => ExitCode::from(exit::USAGE),
         },
         Command::Demo {
             dir,

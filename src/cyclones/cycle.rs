@@ -12,6 +12,7 @@ use chrono::NaiveDateTime;
 use tracing::{info, warn};
 
 use super::detect::Settings as DetectSettings;
+use super::memo::Memo;
 use super::read::{step_centres_cached, Settings, StepCentres};
 use super::track::{deepening, link, Deepening, Fix, Settings as TrackSettings, Step, Track};
 use crate::changes::Run;
@@ -128,11 +129,16 @@ pub fn update(
     let files: Vec<PathBuf> = cycle_files(run).into_iter().map(|p| p.path).collect();
     let dir = this_file.parent().unwrap_or(Path::new("."));
     let base = base_name(this_file);
-    match from_files(run, &files, cfg) {
-        Some(cycle) => write_all(&cycle, dir, &base, look, grid)
-            .into_iter()
-            .map(|(p, _)| p)
-            .collect(),
+    let (set, _) = settings(cfg);
+    let read = |p: &PathBuf| step_centres_cached(p, &set);
+    match from_files(&files, cfg, read) {
+        Some(cycle) => {
+            said(run, &cycle, None);
+            write_all(&cycle, dir, &base, look, grid)
+                .into_iter()
+                .map(|(p, _)| p)
+                .collect()
+        }
         None => Vec::new(),
     }
 }
@@ -143,7 +149,9 @@ pub fn update(
 /// steps are read from the store, except those the publication replaces,
 /// which are read from their staged copies, so the tracks are renamed into
 /// place with the step as one recorded act and a stop cannot leave them
-/// behind. Returns (staged file, its place) for each file written.
+/// behind. A step file's centres are taken from the memo in `stage`
+/// ([`super::memo`]) where it knows the file as it is, and the memo is
+/// written back there. Returns (staged file, its place) for each file written.
 pub fn staged(
     run: &Run<'_>,
     product: (&Path, &Path),
@@ -154,30 +162,78 @@ pub fn staged(
     grid: Option<&Grid>,
 ) -> Vec<(PathBuf, PathBuf)> {
     let (staged_product, target) = product;
-    let mut files: Vec<PathBuf> = cycle_files(run)
+    // (where to read it, its name once published)
+    let mut files: Vec<(PathBuf, String)> = cycle_files(run)
         .into_iter()
         .filter(|p| p.path != target)
         .map(|p| {
-            revised
+            let read = revised
                 .iter()
                 .find(|(_, t)| *t == p.path)
-                .map_or(p.path, |(s, _)| s.to_path_buf())
+                .map_or(p.path.clone(), |(s, _)| s.to_path_buf());
+            (read, file_name(&p.path))
         })
         .collect();
-    files.push(staged_product.to_path_buf());
-    let Some(cycle) = from_files(run, &files, cfg) else {
+    files.push((staged_product.to_path_buf(), file_name(target)));
+    let memo_path = stage.join(super::memo::FILE);
+    let (set, _) = settings(cfg);
+    let mut memo = Memo::load(&memo_path, &set);
+    let read = |(p, name): &(PathBuf, String)| memo.centres(p, name, &set);
+    let made = from_files(&files, cfg, read);
+    if let Some(c) = &made {
+        said(run, c, Some(&memo));
+    }
+    if let Err(e) = memo.save(&memo_path) {
+        warn!(file = %memo_path.display(), error = %e, "memo of the cycle's centres not written");
+    }
+    let Some(cycle) = made else {
         return Vec::new();
     };
     let dir = stage.join("tracks");
+    let into = target.parent().unwrap_or(Path::new("."));
     if let Err(e) = std::fs::create_dir_all(&dir) {
         warn!(file = %dir.display(), error = %e, "cyclone tracks not written");
         return Vec::new();
     }
-    let into = target.parent().unwrap_or(Path::new("."));
     write_all(&cycle, &dir, &base_name(target), look, grid)
         .into_iter()
         .map(|(p, name)| (p, into.join(name)))
         .collect()
+}
+
+/// Say that the tracks of `c` were made, and where the centres came from.
+fn said(run: &Run<'_>, c: &Cycle, memo: Option<&Memo>) {
+    info!(
+        cycle = %run.reference_time.format("%Y-%m-%dT%H:%MZ"),
+        steps = c.steps.len(),
+        tracks = c.tracks.len(),
+        steps_from_memo = memo.map(|m| m.hits),
+        steps_read = memo.map(|m| m.reads),
+        "cyclone tracks made"
+    );
+}
+
+/// A step file to read: where it is.
+trait Filelike {
+    fn path(&self) -> &Path;
+}
+
+impl Filelike for PathBuf {
+    fn path(&self) -> &Path {
+        self
+    }
+}
+
+impl Filelike for (PathBuf, String) {
+    fn path(&self) -> &Path {
+        &self.0
+    }
+}
+
+fn file_name(p: &Path) -> String {
+    p.file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default()
 }
 
 /// The steps of `run`'s cycle published in its store.
@@ -193,26 +249,23 @@ fn cycle_files(run: &Run<'_>) -> Vec<crate::output::store::Published> {
 }
 
 /// The tracks of the cycle whose step files are `files`; `None` when no step
-/// could be read.
-fn from_files(run: &Run<'_>, files: &[PathBuf], cfg: &crate::config::Cyclones) -> Option<Cycle> {
+/// could be read. `read` gives a file's centres.
+fn from_files<F: Filelike>(
+    files: &[F],
+    cfg: &crate::config::Cyclones,
+    mut read: impl FnMut(&F) -> Result<StepCentres, String>,
+) -> Option<Cycle> {
     let (set, search) = settings(cfg);
     let mut steps = Vec::with_capacity(files.len());
-    for p in files {
-        match step_centres_cached(p, &set) {
+    for f in files {
+        match read(f) {
             Ok(s) => steps.push(s),
             Err(e) => {
-                warn!(file = %p.display(), reason = %e, "step passed over by the cyclone tracks")
+                warn!(file = %f.path().display(), reason = %e, "step passed over by the cyclone tracks")
             }
         }
     }
-    let cycle = build(steps, set, search)?;
-    info!(
-        cycle = %run.reference_time.format("%Y-%m-%dT%H:%MZ"),
-        steps = cycle.steps.len(),
-        tracks = cycle.tracks.len(),
-        "cyclone tracks made"
-    );
-    Some(cycle)
+    build(steps, set, search)
 }
 
 /// Write a cycle's tracks into `dir` as `<base>.nc`, `<base>.geojson` and,

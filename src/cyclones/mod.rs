@@ -13,6 +13,7 @@
 pub mod cycle;
 pub mod detect;
 pub mod facts;
+pub mod memo;
 pub mod read;
 pub mod track;
 pub mod write;

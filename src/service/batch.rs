@@ -734,10 +734,9 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
         tracks: Vec::new(),
     };
     // The job could not see the other steps published: the cycle's cyclone
-    // tracks are made here, under the lock, and published with the step.
-    if let Some(key) = spec.key() {
-        stage_tracks(&spec.config, &spec.store, &key, &mut made);
-    }
+    // tracks are made now, under the lock, by a process of their own, and
+    // published with the step.
+    stage_tracks(spec, &mut made);
     let intent = match commit::stage_manifests(&made, &report, &facts) {
         Ok(i) => i,
         Err(e) => return Taken::Unusable(e),
@@ -756,16 +755,148 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
     }
 }
 
+/// The file a tracks process leaves in the staging directory: the tracks'
+/// staged files ([`StagedFile`], JSON).
+pub const TRACKS_LIST: &str = "tracks.json";
+
 /// The cycle's cyclone tracks as they will be once `made` is published, made
-/// from the published steps and this publication's staged files and added to
-/// it: the tracks are renamed into place with the step, in the recorded
-/// publication, so a stop at any point of it leaves them as a run without the
-/// stop would. Called under the feed's publishing lock (the steps read stay
-/// as read). A file that cannot be made is said so and left out.
-pub fn stage_tracks(cfg: &Config, store: &Path, key: &StepKey, made: &mut commit::Made<'_>) {
-    if !cfg.products.cyclones {
+/// by a short-lived process of their own ([`super::child::tracks`],
+/// `leeward process --tracks`) from the published steps and this
+/// publication's staged files, and added to it: the tracks are renamed into
+/// place with the step, in the recorded publication, so a stop at any point
+/// of it leaves them as a run without the stop would. Called under the feed's
+/// publishing lock (the steps read stay as read). The NetCDF and HDF5
+/// libraries' memory for the files read and written goes with that process,
+/// so the service's own memory does not grow with the steps it publishes.
+/// Tracks that cannot be made are said so and left out; the step is
+/// published all the same.
+pub fn stage_tracks(spec: &JobSpec, made: &mut commit::Made<'_>) {
+    if !spec.config.products.cyclones {
         return;
     }
+    let stage = made.stage;
+    let memo = stage.join(crate::cyclones::memo::FILE);
+    let cycle_dir = made.product.target.parent().map(Path::to_path_buf);
+    if let Some(text) = cycle_dir.as_deref().and_then(memo_of) {
+        if let Err(e) = std::fs::write(&memo, text) {
+            warn!(file = %memo.display(), error = %e, "memo of the cycle's centres not passed on");
+        }
+    }
+    let listed = super::child::tracks(stage).and_then(|()| {
+        let b = std::fs::read(stage.join(TRACKS_LIST)).map_err(|e| e.to_string())?;
+        serde_json::from_slice::<Vec<StagedFile>>(&b).map_err(|e| e.to_string())
+    });
+    let files = match listed {
+        Ok(f) => f,
+        Err(e) => {
+            warn!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, stage = %stage.display(), reason = %e, "cyclone tracks not made");
+            return;
+        }
+    };
+    if let (Some(d), Ok(text)) = (cycle_dir, std::fs::read_to_string(&memo)) {
+        remember_memo(&d, text);
+    }
+    for f in files {
+        match check_staged(&f, stage, &spec.store) {
+            Ok(()) => made.tracks.push(f),
+            Err(e) => {
+                warn!(feed = %spec.tag.feed, cycle = %spec.tag.cycle, step = spec.tag.lead, reason = %e, "cyclone tracks file not staged")
+            }
+        }
+    }
+}
+
+/// Cycle directories whose memo of centres the service keeps: the cycles
+/// in hand; a few more cover feeds and members running at once.
+const MEMOS_KEPT: usize = 8;
+
+type Memos = crate::recent::ByCycle<PathBuf, String>;
+
+fn memos() -> &'static Mutex<Memos> {
+    static MEMOS: std::sync::OnceLock<Mutex<Memos>> = std::sync::OnceLock::new();
+    MEMOS.get_or_init(|| Mutex::new(Memos::new(MEMOS_KEPT)))
+}
+
+/// The memo of centres ([`crate::cyclones::memo`]) last made for the steps
+/// of `cycle_dir`.
+fn memo_of(cycle_dir: &Path) -> Option<String> {
+    memos()
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .get(cycle_dir)
+        .cloned()
+}
+
+fn remember_memo(cycle_dir: &Path, text: String) {
+    memos()
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .insert(cycle_dir, cycle_dir.to_path_buf(), text);
+}
+
+/// The tracks process (`leeward process --tracks DIR`): in the staging
+/// directory `dir` of a step whose result the service is taking (its taken
+/// spec and its result record), make the cycle's tracks as they will be once
+/// the step is published, and list them in [`TRACKS_LIST`]. Exit 0 with the
+/// list written (empty when the cycle has no tracks yet), 1 otherwise, with
+/// the reason on standard error.
+pub fn tracks_in_job(dir: &Path) -> u8 {
+    match make_tracks(dir) {
+        Ok(files) => match serde_json::to_vec(&files)
+            .map_err(|e| e.to_string())
+            .and_then(|t| {
+                publish::write_atomic(&dir.join(TRACKS_LIST), &t).map_err(|e| e.to_string())
+            }) {
+            Ok(()) => 0,
+            Err(e) => {
+                eprintln!(
+                    "leeward: {}: cannot write: {e}",
+                    dir.join(TRACKS_LIST).display()
+                );
+                1
+            }
+        },
+        Err(e) => {
+            eprintln!("leeward: {}: no cyclone tracks made: {e}", dir.display());
+            1
+        }
+    }
+}
+
+fn make_tracks(dir: &Path) -> Result<Vec<StagedFile>, String> {
+    let read = |name: &str| {
+        std::fs::read(dir.join(name)).map_err(|e| format!("{}: {e}", dir.join(name).display()))
+    };
+    let spec: JobSpec = serde_json::from_slice(&read(CLAIMED)?)
+        .map_err(|e| format!("{}: not a job spec: {e}", dir.join(CLAIMED).display()))?;
+    let result: JobResult = serde_json::from_slice(&read(RESULT)?)
+        .map_err(|e| format!("{}: not a result record: {e}", dir.join(RESULT).display()))?;
+    let Ended::Made {
+        product, updated, ..
+    } = &result.ended
+    else {
+        return Err("the step made no product".into());
+    };
+    let key = spec.key().ok_or("the job spec's step does not parse")?;
+    let written = tracks_of(&spec.config, &spec.store, &key, product, updated, dir);
+    written
+        .into_iter()
+        .map(|(staged, target)| {
+            StagedFile::read_made(&staged, target).map_err(|e| format!("{}: {e}", staged.display()))
+        })
+        .collect()
+}
+
+/// The cycle's tracks with `product` (and the published files `updated`
+/// replaces) staged in `stage`: (staged file, its place) of each file written.
+fn tracks_of(
+    cfg: &Config,
+    store: &Path,
+    key: &StepKey,
+    product: &StagedFile,
+    updated: &[StagedFile],
+    stage: &Path,
+) -> Vec<(PathBuf, PathBuf)> {
     let gid = crate::pipeline::grid_id(&key.grid_key);
     let run = crate::changes::Run {
         out_dir: store,
@@ -780,26 +911,19 @@ pub fn stage_tracks(cfg: &Config, store: &Path, key: &StepKey, made: &mut commit
     let grid = crate::ingest::grid::parse_grid(&key.grid_key)
         .ok()
         .map(|(g, _)| g);
-    let revised: Vec<(&Path, &Path)> = made
-        .updated
+    let revised: Vec<(&Path, &Path)> = updated
         .iter()
         .map(|u| (u.staged.as_path(), u.target.as_path()))
         .collect();
-    let written = crate::cyclones::cycle::staged(
+    crate::cyclones::cycle::staged(
         &run,
-        (&made.product.staged, &made.product.target),
+        (&product.staged, &product.target),
         &revised,
-        made.stage,
+        stage,
         &cfg.cyclones,
         &cfg.quicklook,
         grid.as_ref(),
-    );
-    for (staged, target) in written {
-        match StagedFile::read(&staged, target) {
-            Ok(f) => made.tracks.push(f),
-            Err(e) => warn!(file = %staged.display(), error = %e, "cyclone tracks not staged"),
-        }
-    }
+    )
 }
 
 /// A staged file is checked by its size and, for a NetCDF file, by its

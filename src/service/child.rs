@@ -12,10 +12,11 @@
 //!   memory does not grow with the steps it publishes;
 //! - a defect that kills a step's process (a crash in a library, memory
 //!   exhausted) fails that step and nothing else;
-//! - the service writes no step's product itself (only the cycle's small
-//!   cyclone-track files, made from the published steps when it takes a
-//!   result), so a failed product write's held disk space goes with the
-//!   step's process.
+//! - the service writes no product itself: a step's goes with the step's
+//!   process, and the cycle's cyclone tracks, made from the published steps
+//!   when the service takes a result, are made by a short-lived process of
+//!   their own ([`tracks`]), so a failed write's held disk space goes with
+//!   the process that wrote.
 //!
 //! The step's process is the service's own program (`/proc/self/exe`, the
 //! binary the service started from even when a newer one has been installed
@@ -86,6 +87,44 @@ pub fn die_with_parent(cmd: &mut Command) {
             Ok(())
         });
     }
+}
+
+/// The log format the service's processes write in (its `--log-format`),
+/// for the processes it starts without a step's own (the tracks').
+static LOG_FORMAT: std::sync::OnceLock<String> = std::sync::OnceLock::new();
+
+/// Set once, when the service starts: the log format of its processes.
+pub fn set_log_format(f: &str) {
+    let _ = LOG_FORMAT.set(f.to_string());
+}
+
+/// Make the cycle's cyclone tracks for the step whose result is being taken
+/// in `stage`, in a short-lived process of its own (`leeward process
+/// --tracks`, [`super::batch::tracks_in_job`]), and wait for it. `Ok` when it
+/// listed what it made.
+pub fn tracks(stage: &Path) -> Result<(), String> {
+    let format = LOG_FORMAT.get().map_or("text", String::as_str);
+    let mut cmd = Command::new(PROGRAM);
+    cmd.arg0("leeward")
+        .args(["--log-format", format, "process", "--tracks"])
+        .arg(stage)
+        .stdin(Stdio::null());
+    for v in NOT_INHERITED {
+        cmd.env_remove(v);
+    }
+    die_with_parent(&mut cmd);
+    let t0 = Instant::now();
+    let status = cmd
+        .status()
+        .map_err(|e| format!("the tracks' process could not be started: {e}"))?;
+    if status.success() {
+        return Ok(());
+    }
+    Err(format!(
+        "the tracks' process ended with {} after {:.1} s (its messages are in this log just before)",
+        ended(status),
+        t0.elapsed().as_secs_f64()
+    ))
 }
 
 /// How a process ended, in words.

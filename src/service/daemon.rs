@@ -2238,6 +2238,7 @@ impl Daemon {
 
 /// Run the service until SIGTERM or SIGINT. Returns the exit code.
 pub fn serve(opts: ServeOptions) -> u8 {
+    child::set_log_format(&opts.log_format);
     let cfg = match load(&opts) {
         Ok(c) => c,
         Err(e) => {
