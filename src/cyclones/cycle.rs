@@ -8,33 +8,17 @@
 
 use std::path::{Path, PathBuf};
 
-use chrono::NaiveDateTime;
 use tracing::{info, warn};
 
 use super::detect::Settings as DetectSettings;
 use super::memo::Memo;
 use super::read::{step_centres_cached, Settings, StepCentres};
-use super::track::{deepening, link, Deepening, Fix, Settings as TrackSettings, Step, Track};
+use super::track::{deepening, link, Fix, Settings as TrackSettings, Step};
 use crate::changes::Run;
 use crate::geometry::Grid;
 use crate::output::store::published_where;
 
-/// The tracks of one cycle.
-#[derive(Debug, Clone)]
-pub struct Cycle {
-    /// Reference time.
-    pub reference_time: NaiveDateTime,
-    /// The steps, in time order.
-    pub steps: Vec<StepCentres>,
-    /// The tracks: (step, centre) in time order, numbered from 1 in this order.
-    pub tracks: Vec<Track>,
-    /// The deepening rate of each point of each track.
-    pub deepening: Vec<Vec<Deepening>>,
-    /// How the centres were found and summarised.
-    pub settings: Settings,
-    /// Search radius of the linking for steps 6 h apart, m.
-    pub search_radius_6h: f64,
-}
+pub use super::tracked::Cycle;
 
 /// The settings of the configuration, in metres and pascals.
 pub fn settings(c: &crate::config::Cyclones) -> (Settings, f64) {

@@ -16,4 +16,5 @@ pub mod facts;
 pub mod memo;
 pub mod read;
 pub mod track;
+pub mod tracked;
 pub mod write;

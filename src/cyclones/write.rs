@@ -13,11 +13,11 @@ use std::path::Path;
 
 use serde_json::{json, Map, Value};
 
-use super::cycle::Cycle;
 use super::detect::Centre;
 use super::facts::Facts;
 use super::read::StepCentres;
 use super::track::{Deepening, BERGERON};
+use super::tracked::Cycle;
 use crate::output::cf::{CAUTION, FILL_F32};
 use crate::output::variables::{PVU, PV_UNITS};
 
