@@ -515,7 +515,7 @@ pub fn run_in_job(dir: &Path) -> u8 {
                 Ended::Internal {
                     reason: format!(
                         "internal error (a defect in leeward): {}",
-                        super::daemon::panic_text(&*p)
+                        super::pool::panic_text(&*p)
                     ),
                 },
                 JobReport::default(),
@@ -569,7 +569,7 @@ fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
             JobReport::default(),
         );
     };
-    let (step, inputs) = match super::daemon::load_step(&spec.contributions(), &key) {
+    let (step, inputs) = match super::intake::load_step(&spec.contributions(), &key) {
         Ok(Some(x)) => x,
         Ok(None) => {
             return (
@@ -1022,54 +1022,7 @@ pub struct JobFacts {
     pub exit_code: String,
 }
 
-/// The base job states in which a Slurm job has ended for good: it runs no
-/// more and writes nothing more into its staging directory (Slurm's
-/// `squeue(1)` and `sacct(1)`, "JOB STATE CODES"). Every other state, and a
-/// state leeward does not know, means the job is still going: it is pending,
-/// running, being configured, completing (its processes are being killed or
-/// its epilog runs), requeued, resized, suspended, staging out, held, or
-/// signalled.
-pub const ENDED_STATES: [&str; 9] = [
-    "COMPLETED",
-    "FAILED",
-    "CANCELLED",
-    "TIMEOUT",
-    "OUT_OF_MEMORY",
-    "NODE_FAIL",
-    "PREEMPTED",
-    "BOOT_FAIL",
-    "DEADLINE",
-];
-
-/// True when a job state as `squeue --format=%T`, `scontrol show job`
-/// (`JobState=`) or `sacct --parsable` prints it says the job has ended:
-/// one of [`ENDED_STATES`]. `sacct` may add who cancelled it (`CANCELLED by
-/// 0`); that is read as `CANCELLED`.
-pub fn has_ended(state: &str) -> bool {
-    let base = state
-        .split_whitespace()
-        .next()
-        .unwrap_or("")
-        .trim_end_matches('+')
-        .to_ascii_uppercase();
-    ENDED_STATES.contains(&base.as_str())
-}
-
-/// How a step job ended when leeward itself found the end, not the
-/// scheduler: leeward's own lower-case words, kept apart from the states
-/// the scheduler reports (upper case, such as `FAILED` or `TIMEOUT`).
-pub mod outcome {
-    /// The job could not write the step's products.
-    pub const UNWRITTEN: &str = "unwritten";
-    /// The job could not read one of the step's input files.
-    pub const UNREADABLE: &str = "unreadable";
-    /// The job's result (a staged file) could not be used.
-    pub const UNUSABLE: &str = "unusable";
-    /// The job's staging directory was gone after a restart.
-    pub const LOST: &str = "lost";
-    /// Every one of them.
-    pub const ALL: [&str; 4] = [UNWRITTEN, UNREADABLE, UNUSABLE, LOST];
-}
+pub use super::job_state::{has_ended, outcome, ENDED_STATES};
 
 /// The Slurm commands, as `[service.slurm]` configures them.
 #[derive(Debug, Clone)]

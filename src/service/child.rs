@@ -149,15 +149,15 @@ pub fn ended(status: std::process::ExitStatus) -> String {
 }
 
 /// Make the step staged in `stage` in a process of its own and wait for it.
-/// `Ok` when the process wrote its result record (whatever that says);
-/// otherwise why there is none.
-pub fn run(stage: &Path, log_format: &str) -> Result<Ran, String> {
+/// `Ok` when the process wrote its result record, the file `record` in
+/// `stage` (whatever that says); otherwise why there is none.
+pub fn run(stage: &Path, log_format: &str, record: &str) -> Result<Ran, String> {
     let t0 = Instant::now();
     let status = command(stage, log_format)
         .status()
         .map_err(|e| format!("the step's process could not be started: {e}"))?;
     let seconds = t0.elapsed().as_secs_f64();
-    if status.success() && stage.join(super::batch::RESULT).is_file() {
+    if status.success() && stage.join(record).is_file() {
         return Ok(Ran { seconds });
     }
     Err(format!(

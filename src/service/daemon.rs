@@ -30,11 +30,11 @@ use super::waiting::{self, Waiting, WaitingStep};
 use super::watch::{watch, FinishedFiles};
 use crate::config::Config;
 use crate::escape::shown;
-use crate::ingest::catalogue::{catalogue, catalogue_file};
+use crate::ingest::catalogue::catalogue_file;
 use crate::ingest::grid::parse_grid;
 use crate::ingest::source::{checksum_file, checksum_ranges, open_input, InputError, Opened};
 use crate::output::store::cycle_dir_name;
-use crate::pipeline::{grid_id, output_name, plan, InputFile, Step, StepKey, StepReport};
+use crate::pipeline::{grid_id, output_name, StepKey, StepReport};
 
 /// Where `leeward serve` takes its settings from.
 #[derive(Debug, Clone)]
@@ -227,65 +227,6 @@ struct JobDone {
     outcome: JobOutcome,
 }
 
-/// Read a step's messages from a file as they were catalogued, opened
-/// without blocking and refused unless it is a regular file. With their
-/// digest known, the messages must be the very bytes catalogued (a file
-/// written in place may have grown by other steps' messages since); without
-/// it (a spec of an earlier version), the file must have its size of then.
-fn read_messages(c: &Contribution) -> Result<Vec<u8>, String> {
-    let o = open_input(&c.path, true).map_err(|e| e.to_string())?;
-    let expect = if c.digest.is_empty() { c.size } else { o.size };
-    let out = crate::ingest::source::read_ranges(&o.file, expect, &c.messages).map_err(|e| {
-        if c.digest.is_empty() {
-            e.to_string()
-        } else {
-            format!(
-                "changed since it was catalogued ({} bytes then, {} now: {e})",
-                c.size, o.size
-            )
-        }
-    })?;
-    if !c.digest.is_empty() {
-        let now = super::ledger::checksum(&out);
-        if now != c.digest {
-            return Err(format!(
-                "changed since it was catalogued (the step's messages {} then, {now} now)",
-                c.digest
-            ));
-        }
-    }
-    Ok(out)
-}
-
-/// Read a step's messages from its files as they were catalogued, and find
-/// the step among them: the inputs and the step, or the file that cannot be
-/// read (with why), or `Ok(None)` when the step's fields are no longer there.
-#[allow(clippy::type_complexity)]
-pub(super) fn load_step(
-    files: &[Contribution],
-    key: &StepKey,
-) -> Result<Option<(Step, Vec<InputFile>)>, (PathBuf, String)> {
-    let mut inputs = Vec::new();
-    for c in files {
-        match read_messages(c) {
-            Ok(bytes) => {
-                let cat = catalogue(&bytes);
-                inputs.push(InputFile {
-                    path: c.path.clone(),
-                    bytes: Arc::new(bytes),
-                    catalogue: cat,
-                });
-            }
-            Err(e) => return Err((c.path.clone(), e)),
-        }
-    }
-    let (steps, _) = plan(&inputs);
-    Ok(steps
-        .into_iter()
-        .find(|s| s.key == *key)
-        .map(|s| (s, inputs)))
-}
-
 /// Make a step on this machine in a process of its own (see [`child`]): its
 /// spec into a staging directory of the feed's `.publish`, `leeward process
 /// --job` on it, and its result taken and published as a batch job's is
@@ -301,7 +242,7 @@ fn run_local(job: &Job, spec: &JobSpec, stage: &Path, log_format: &str) -> JobOu
             stage.display()
         ));
     }
-    let outcome = match child::run(stage, log_format) {
+    let outcome = match child::run(stage, log_format, batch::RESULT) {
         Ok(ran) => local_outcome(batch::take(spec, stage, &job.lock, &job.journal), ran),
         Err(reason) => JobOutcome::Internal(reason),
     };
@@ -339,14 +280,6 @@ fn local_outcome(t: Taken, ran: child::Ran) -> JobOutcome {
         },
         Taken::Unusable(reason) => JobOutcome::OutputFailed(reason),
     }
-}
-
-/// What a caught panic said.
-pub(super) fn panic_text(p: &(dyn std::any::Any + Send)) -> String {
-    p.downcast_ref::<&str>()
-        .map(|s| s.to_string())
-        .or_else(|| p.downcast_ref::<String>().cloned())
-        .unwrap_or_else(|| "unknown".into())
 }
 
 /// What a taken batch result means for the step.
@@ -1389,7 +1322,7 @@ impl Daemon {
             .unwrap_or_else(|p| {
                 JobOutcome::Internal(format!(
                     "internal error (a defect in leeward): {}",
-                    panic_text(&*p)
+                    super::pool::panic_text(&*p)
                 ))
             });
             crate::output::release_hdf5_free_lists();

@@ -89,7 +89,7 @@ pub struct SchedulerCounters {
     /// Step jobs submitted.
     pub submitted: u64,
     /// Step jobs that ended without a result, by the scheduler's state or
-    /// leeward's own outcome word (`crate::service::batch::outcome`).
+    /// leeward's own outcome word (`crate::service::job_state::outcome`).
     pub ended: BTreeMap<String, u64>,
     /// Step jobs submitted again after one ended without a result.
     pub retries: u64,
@@ -345,7 +345,7 @@ impl Metrics {
             o.push_str("# HELP leeward_scheduler_jobs_ended_total Step jobs that ended without a result, by the scheduler's state or leeward's own outcome.\n# TYPE leeward_scheduler_jobs_ended_total counter\n");
             for (state, n) in &self.scheduler.ended {
                 // leeward's own words go under their own label, apart from the scheduler's states.
-                let label = if crate::service::batch::outcome::ALL.contains(&state.as_str()) {
+                let label = if crate::service::job_state::outcome::ALL.contains(&state.as_str()) {
                     "outcome"
                 } else {
                     "state"
@@ -750,9 +750,9 @@ mod tests {
             assert!(!t.contains(&format!("state=\"{word}\"")), "{t}");
         }
         // leeward's words are lower case, the scheduler's upper case: never the same.
-        for w in crate::service::batch::outcome::ALL {
+        for w in crate::service::job_state::outcome::ALL {
             assert_eq!(w, w.to_lowercase());
-            assert!(!crate::service::batch::has_ended(w), "{w}");
+            assert!(!crate::service::job_state::has_ended(w), "{w}");
         }
     }
 }

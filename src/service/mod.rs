@@ -6,9 +6,11 @@
 //! - [`settings`]: the `[service]` and `[[feed]]` tables.
 //! - [`watch`]: which files in an incoming directory are finished.
 //! - [`assemble`]: fields grouped into steps; completeness; order.
+//! - [`intake`]: a step's messages read again from its files, the step found among them.
 //! - [`daemon`]: the main loop, workers, signals, reprocess requests.
 //! - [`batch`]: step jobs on a batch scheduler (Slurm): spec, result, taking it.
 //! - [`child`]: step processes on this machine, made and taken as batch jobs are.
+//! - [`job_state`]: the words a job's state is said in (Slurm's ended states, leeward's own).
 //! - [`publish`]: output tree, manifests, temporaries, retention, quarantine.
 //! - [`commit`]: a step's publication as one act: recorded, renamed, finished after a crash.
 //! - [`ledger`]: the durable journal of what happened.
@@ -23,6 +25,8 @@ pub mod batch;
 pub mod child;
 pub mod commit;
 pub mod daemon;
+pub mod intake;
+pub mod job_state;
 pub mod ledger;
 pub mod metrics;
 pub mod pool;
