@@ -56,9 +56,15 @@ pub struct Ran {
 
 /// The command that makes the step staged in `stage`.
 pub fn command(stage: &Path, log_format: &str) -> Command {
+    on_stage("--job", stage, log_format)
+}
+
+/// `leeward process <option> <stage>`, this very binary, in the service's
+/// log format, without the service's own environment, dying with its parent.
+fn on_stage(option: &str, stage: &Path, log_format: &str) -> Command {
     let mut cmd = Command::new(PROGRAM);
     cmd.arg0("leeward")
-        .args(["--log-format", log_format, "process", "--job"])
+        .args(["--log-format", log_format, "process", option])
         .arg(stage)
         .stdin(Stdio::null());
     for v in NOT_INHERITED {
@@ -104,17 +110,8 @@ pub fn set_log_format(f: &str) {
 /// listed what it made.
 pub fn tracks(stage: &Path) -> Result<(), String> {
     let format = LOG_FORMAT.get().map_or("text", String::as_str);
-    let mut cmd = Command::new(PROGRAM);
-    cmd.arg0("leeward")
-        .args(["--log-format", format, "process", "--tracks"])
-        .arg(stage)
-        .stdin(Stdio::null());
-    for v in NOT_INHERITED {
-        cmd.env_remove(v);
-    }
-    die_with_parent(&mut cmd);
     let t0 = Instant::now();
-    let status = cmd
+    let status = on_stage("--tracks", stage, format)
         .status()
         .map_err(|e| format!("the tracks' process could not be started: {e}"))?;
     if status.success() {

@@ -51,3 +51,54 @@ pub mod outcome {
     /// Every one of them.
     pub const ALL: [&str; 4] = [UNWRITTEN, UNREADABLE, UNUSABLE, LOST];
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn only_the_terminal_states_say_a_job_has_ended() {
+        // Slurm's job state codes (squeue(1), "JOB STATE CODES", Slurm 22.05;
+        // from memory): the nine base states after which a job runs no more.
+        for s in [
+            "COMPLETED",
+            "FAILED",
+            "CANCELLED",
+            "TIMEOUT",
+            "OUT_OF_MEMORY",
+            "NODE_FAIL",
+            "PREEMPTED",
+            "BOOT_FAIL",
+            "DEADLINE",
+            // sacct --parsable names who cancelled a job.
+            "CANCELLED by 0",
+        ] {
+            assert!(has_ended(s), "{s} is an end");
+        }
+        // Still going: queued, starting, running, its processes being killed
+        // or its epilog running (COMPLETING), requeued, resized, suspended,
+        // staging out, held, signalled; and any state not known here.
+        for s in [
+            "PENDING",
+            "CONFIGURING",
+            "RUNNING",
+            "COMPLETING",
+            "REQUEUED",
+            "REQUEUE_HOLD",
+            "REQUEUE_FED",
+            "RESIZING",
+            "SUSPENDED",
+            "STOPPED",
+            "SIGNALING",
+            "STAGE_OUT",
+            "SPECIAL_EXIT",
+            "RESV_DEL_HOLD",
+            "REVOKED",
+            "POWER_UP_NODE",
+            "",
+            "SOMETHING_NEW",
+        ] {
+            assert!(!has_ended(s), "{s} is not an end");
+        }
+    }
+}
