@@ -202,11 +202,16 @@ pub fn catalogue_of<O: Octets + ?Sized>(o: &O) -> Catalogue {
             }
         }
     }
-    if messages == 0 && cat.fields.is_empty() && cat.problems.is_empty() {
+    if cat.fields.is_empty() && cat.problems.is_empty() {
+        let reason = if messages == 0 {
+            "no GRIB message found (no 'GRIB' marker in the file)".to_string()
+        } else {
+            format!("{messages} GRIB2 message(s) but no field in them (no section 7)")
+        };
         cat.problems.push(Problem {
             offset: 0,
             field: None,
-            reason: "no GRIB message found (no 'GRIB' marker in the file)".into(),
+            reason,
         });
     }
     cat
@@ -261,6 +266,9 @@ fn walk_message<O: Octets + ?Sized>(
     let mut open = Open::default();
     let mut p = start + SECTION0_LEN;
     let mut finished = false;
+    // Offset of a product definition (section 4) not yet followed by its data
+    // (section 7): a field described but never given values.
+    let mut described: Option<usize> = None;
     while p + 4 <= end {
         let h = o.read(p..(p + 6).min(end))?;
         if h.get(..4) == Some(b"7777".as_slice()) {
@@ -297,7 +305,13 @@ fn walk_message<O: Octets + ?Sized>(
             1 => open.s1 = whole(r)?,
             2 => {}
             3 => open.s3 = whole(r)?,
-            4 => open.s4 = whole(r)?,
+            4 => {
+                if let Some(at) = described {
+                    cat.problems.push(no_data_section(at));
+                }
+                open.s4 = whole(r)?;
+                described = Some(p);
+            }
             5 => open.s5 = whole(r)?,
             6 => {
                 let ind = u8_at(&h, 5).unwrap_or(255);
@@ -312,6 +326,7 @@ fn walk_message<O: Octets + ?Sized>(
                 }
             }
             7 => {
+                described = None;
                 let field_index = cat.fields.len();
                 match build_field(start, discipline, &open, r, field_index) {
                     Ok(f) => cat.fields.push(f),
@@ -342,6 +357,9 @@ fn walk_message<O: Octets + ?Sized>(
     for f in &mut cat.fields[first_field..] {
         f.message_len = end - start;
     }
+    if let (Some(at), true) = (described, finished) {
+        cat.problems.push(no_data_section(at));
+    }
     if truncated {
         cat.cut_at_end = true;
         cat.problems.push(Problem {
@@ -361,6 +379,17 @@ fn walk_message<O: Octets + ?Sized>(
         });
     }
     Ok(start + total)
+}
+
+/// A product definition (section 4 at `at`) never followed by its data.
+fn no_data_section(at: usize) -> Problem {
+    Problem {
+        offset: at,
+        field: None,
+        reason:
+            "a field's product definition (section 4) has no data section 7 after it: field skipped"
+                .into(),
+    }
 }
 
 fn placeholder(start: usize, discipline: u8, index: usize, reason: String) -> FieldEntry {
@@ -586,6 +615,57 @@ mod tests {
         let c = catalogue(&m);
         assert!(c.fields.is_empty());
         assert!(c.problems.iter().any(|p| p.reason.contains("truncated")));
+    }
+
+    /// A message of section 0, the given (number, body length) sections and
+    /// '7777', with every length true (WMO-No. 306 GRIB2 layout).
+    fn message_of(sections: &[(u8, usize)]) -> Vec<u8> {
+        let mut body = Vec::new();
+        for &(num, len) in sections {
+            body.extend_from_slice(&((len + 5) as u32).to_be_bytes());
+            body.push(num);
+            body.extend(std::iter::repeat_n(0u8, len));
+        }
+        let total = (16 + body.len() + 4) as u64;
+        let mut m = b"GRIB\0\0\0\x02".to_vec();
+        m.extend_from_slice(&total.to_be_bytes());
+        m.extend_from_slice(&body);
+        m.extend_from_slice(b"7777");
+        m
+    }
+
+    #[test]
+    fn a_message_with_no_field_is_a_problem_not_silence() {
+        // A well-formed message of sections 0, 1 and 7777 only: no field.
+        // Found by the mutation run (bit flips that turn a section number
+        // into 2, or '7777' early); before, the file read as 0 fields and
+        // no problem, and `process` could not say which file was empty.
+        let c = catalogue(&message_of(&[(1, 16)]));
+        assert!(c.fields.is_empty());
+        assert_eq!(c.problems.len(), 1, "{:?}", c.problems);
+        assert!(
+            c.problems[0].reason.contains("no field"),
+            "{:?}",
+            c.problems
+        );
+        // A product definition with no data section before '7777'.
+        let c = catalogue(&message_of(&[(1, 16), (3, 30), (4, 29), (5, 16)]));
+        assert!(c.fields.is_empty());
+        assert!(
+            c.problems
+                .iter()
+                .any(|p| p.reason.contains("no data section 7")),
+            "{:?}",
+            c.problems
+        );
+        // Two product definitions, the first never given its data: its loss is
+        // said even though the message holds another field's sections.
+        let c = catalogue(&message_of(&[(1, 16), (3, 30), (4, 29), (4, 29), (5, 16)]));
+        let lost = c
+            .problems
+            .iter()
+            .filter(|p| p.reason.contains("no data section 7"));
+        assert_eq!(lost.count(), 2, "{:?}", c.problems);
     }
 
     #[test]

@@ -119,8 +119,10 @@ EXTREMES32 = [0, 1, 4, 5, 0x7FFFFFFF, 0x80000000, 0xFFFFFFFF]
 def mutate(rng: random.Random, seeds: list[bytes]) -> tuple[str, bytes]:
     """One mutated file from the seeds: (what was done, bytes)."""
     b = bytearray(rng.choice(seeds))
-    kind = rng.randrange(11)
+    kind = rng.randrange(12)
     n = len(b)
+    if kind == 11:
+        return fields_taken_out(rng, bytes(b))
     if kind == 0:
         for _ in range(rng.randint(1, 8)):
             i = rng.randrange(n)
@@ -183,6 +185,33 @@ def mutate(rng: random.Random, seeds: list[bytes]) -> tuple[str, bytes]:
         return "messages repeated with junk", junk.join(msgs)
     msgs[mi] = bytes(m)
     return what, b"".join(msgs)
+
+
+def fields_taken_out(rng: random.Random, data: bytes) -> tuple[str, bytes]:
+    """Messages left well formed (true lengths, '7777' at the end) but holding no
+    complete field: only sections 0, 1 and 7777; a section 7 renumbered 2; every
+    section 7 dropped. The long mutation run found such files read as "0 fields"
+    and no problem, so a refusal could not name them."""
+    how = rng.randrange(3)
+    out = []
+    for msg in split_messages(data) or [data]:
+        secs = sections(msg)
+        keep = []
+        for off, length, num in secs:
+            body = bytearray(msg[off:off + length])
+            if how == 0 and num != 1:
+                continue
+            if how == 2 and num == 7:
+                continue
+            if how == 1 and num == 7 and rng.random() < 0.7:
+                body[4] = 2
+            keep.append(bytes(body))
+        body = b"".join(keep)
+        head = bytearray(msg[:16])
+        head[8:16] = (16 + len(body) + 4).to_bytes(8, "big")
+        out.append(bytes(head) + body + b"7777")
+    what = ("sections 0, 1 and 7777 only", "section 7 renumbered 2", "every section 7 dropped")
+    return what[how], b"".join(out)
 
 
 @dataclass
