@@ -16,8 +16,7 @@ use thiserror::Error;
 use super::variables::VarSpec;
 use crate::geometry::{Conformal, Earth, Grid, Horizontal};
 
-/// The netCDF default fill value for floats, used as `_FillValue`.
-pub const FILL_F32: f32 = 9.969_21e36;
+pub use super::pack::{bit_round, FILL_F32};
 
 /// Version of the file layout, in the global attribute `leeward_layout`: the
 /// changes in time read and add to published files of this layout only (2:
@@ -93,29 +92,6 @@ pub struct StepProducts {
     pub deflate: i32,
     /// Mantissa bits kept by each data variable (1-23; 23 keeps it exact).
     pub kept_bits: super::precision::KeptBits,
-}
-
-/// Round a float to `nsb` significant mantissa bits, to nearest with ties to
-/// even, and clear the rest ("bit rounding"; Kloewer et al. 2021, Nature
-/// Computational Science 1, 713-724; from memory). The relative error is at
-/// most 2^-(nsb+1); zeroed trailing bits make deflate faster and smaller.
-/// Non-finite values pass unchanged.
-#[inline]
-pub fn bit_round(x: f32, nsb: u32) -> f32 {
-    if !x.is_finite() || nsb >= 23 {
-        return x;
-    }
-    let shift = 23 - nsb.max(1);
-    let b = x.to_bits();
-    let half_minus_one = (1u32 << (shift - 1)) - 1;
-    let odd = (b >> shift) & 1;
-    let r = b.wrapping_add(half_minus_one + odd) & !((1u32 << shift) - 1);
-    let y = f32::from_bits(r);
-    if y.is_finite() {
-        y
-    } else {
-        x
-    }
 }
 
 /// The vertical coordinate of a product.
@@ -234,7 +210,7 @@ impl Product {
         spec: VarSpec,
         vertical: Vertical,
         data: &Array3<f32>,
-        out: &crate::config::Output,
+        out: &crate::config::settings::Output,
     ) -> Self {
         let values = if out.deflate_level > 0 {
             Values::Packed(super::pack::Packed::new(
@@ -1059,26 +1035,4 @@ pub fn describe_variable(
         // it rounds itself, and both CF checkers (IOOS, NCAS) refuse it.
     }
     Ok(())
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn bit_rounding_bounds_the_relative_error() {
-        // Closed form: keeping n mantissa bits bounds the relative error by 2^-(n+1).
-        for &x in &[1.0f32, 1.234_567, -2.7e-5, 287.05, 1.0e30, 1.2e-38] {
-            for n in [7u32, 12, 16] {
-                let y = bit_round(x, n);
-                let rel = ((y - x) / x).abs();
-                assert!(rel <= 2f32.powi(-(n as i32 + 1)) * 1.0001, "{x} {n}: {y}");
-                assert_eq!(y.to_bits() & ((1 << (23 - n)) - 1), 0);
-            }
-        }
-        assert!(bit_round(f32::NAN, 8).is_nan());
-        assert_eq!(bit_round(1.5, 23), 1.5);
-        // Ties go to even: 1 + 2^-8 with 7 bits kept is halfway between 1 and 1 + 2^-7.
-        assert_eq!(bit_round(1.0 + 2f32.powi(-8), 7), 1.0);
-    }
 }

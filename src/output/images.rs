@@ -22,7 +22,7 @@ use tracing::{debug, warn};
 use super::cf::{Product, StepProducts, Vertical};
 use super::quicklook::{self, render_on, Backdrop, Contour, Outline, Quicklook, Scale};
 use super::scales;
-use crate::config::{OutlineKind, Quicklooks};
+use crate::config::settings::{OutlineKind, Quicklooks};
 
 /// One image asked for.
 #[derive(Debug, Clone, PartialEq)]

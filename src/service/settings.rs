@@ -14,7 +14,7 @@ use chrono::NaiveDateTime;
 use regex::Regex;
 use serde::{Deserialize, Serialize};
 
-use crate::config::Products;
+use crate::config::settings::Products;
 use crate::ingest::params::{param_from_words, Param, Quantity};
 
 /// The `[service]` table.
