@@ -502,3 +502,45 @@ fn inspect_says_on_standard_error_what_made_its_exit_code() {
     assert_eq!((code, stderr.as_str()), (0, ""));
     let _ = std::fs::remove_dir_all(&d);
 }
+
+#[test]
+fn command_line_overrides_meet_the_same_checks_as_the_file() {
+    // The directory overrides used to be applied after validation, so an
+    // output tree or state directory put inside the watched one by the
+    // command line got past the check the same setting in the file meets.
+    // The rule is leeward's own: an override is a setting like any other.
+    let d = tmp("overrides");
+    let cfg = d.join("leeward.toml");
+    std::fs::write(
+        &cfg,
+        "[[feed]]\nname = \"m\"\ncomplete = \"files\"\nfiles_per_step = 1\n",
+    )
+    .unwrap();
+    let w = d.join("in");
+    for (flag, key) in [
+        ("--state-dir", "service.state_dir"),
+        ("--out-dir", "service.out_dir"),
+    ] {
+        let mut args: Vec<std::ffi::OsString> = vec![
+            "serve".into(),
+            "--config".into(),
+            cfg.clone().into(),
+            "--watch-dir".into(),
+            w.clone().into(),
+            "--out-dir".into(),
+            d.join("out").into(),
+            "--state-dir".into(),
+            d.join("state").into(),
+        ];
+        let k = args.iter().position(|a| a == flag).unwrap();
+        args[k + 1] = w.join("mine").into();
+        let refs: Vec<&std::ffi::OsStr> = args.iter().map(|a| a.as_os_str()).collect();
+        let (code, _, stderr) = run_within(&refs, 30);
+        assert_eq!(code, 2, "{flag} inside the watched directory: {stderr}");
+        assert!(
+            stderr.contains(key) && stderr.contains("inside service.watch_dir"),
+            "{flag} inside the watched directory not refused by name:\n{stderr}"
+        );
+    }
+    let _ = std::fs::remove_dir_all(&d);
+}

@@ -146,11 +146,21 @@ impl Output {
 impl Config {
     /// Parse and validate TOML text; `origin` names it in messages.
     pub fn from_toml(text: &str, origin: &str) -> Result<Config, ConfigError> {
-        let cfg: Config = toml::from_str(text).map_err(|e| ConfigError::Parse {
+        Config::from_toml_with(text, origin, |_| {})
+    }
+
+    /// Parse TOML text, apply `overrides` (the command line's), then validate
+    /// the result, so that an override meets the same checks as the file.
+    pub fn from_toml_with(
+        text: &str,
+        origin: &str,
+        overrides: impl FnOnce(&mut Config),
+    ) -> Result<Config, ConfigError> {
+        let mut cfg: Config = toml::from_str(text).map_err(|e| ConfigError::Parse {
             path: origin.to_string(),
             reason: e.to_string(),
         })?;
-        let mut cfg = cfg;
+        overrides(&mut cfg);
         // Layers are kept in order of their middle potential temperature, so that the
         // layer coordinate in the files is monotonic as CF requires.
         cfg.isentropic
@@ -175,11 +185,19 @@ impl Config {
 
     /// Read, parse and validate a file.
     pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        Config::load_with(path, |_| {})
+    }
+
+    /// Read and parse a file, apply `overrides`, then validate.
+    pub fn load_with(
+        path: &Path,
+        overrides: impl FnOnce(&mut Config),
+    ) -> Result<Config, ConfigError> {
         let text = std::fs::read_to_string(path).map_err(|e| ConfigError::Read {
             path: path.display().to_string(),
             reason: e.to_string(),
         })?;
-        Config::from_toml(&text, &path.display().to_string())
+        Config::from_toml_with(&text, &path.display().to_string(), overrides)
     }
 
     /// Every problem with the values, as "key: reason".

@@ -80,16 +80,20 @@ pub use super::ledger::lock_path;
 
 /// Load the configuration and apply the command-line overrides.
 pub fn load(opts: &ServeOptions) -> Result<Config, String> {
-    let mut cfg = Config::load(&opts.config).map_err(|e| e.to_string())?;
-    if let Some(d) = &opts.watch_dir {
-        cfg.service.watch_dir = d.clone();
-    }
-    if let Some(d) = &opts.out_dir {
-        cfg.service.out_dir = d.clone();
-    }
-    if let Some(d) = &opts.state_dir {
-        cfg.service.state_dir = d.clone();
-    }
+    // The overrides go in before validation: `--state-dir ""` meets the
+    // same empty-path check as `state_dir = ""` in the file.
+    let cfg = Config::load_with(&opts.config, |cfg| {
+        if let Some(d) = &opts.watch_dir {
+            cfg.service.watch_dir = d.clone();
+        }
+        if let Some(d) = &opts.out_dir {
+            cfg.service.out_dir = d.clone();
+        }
+        if let Some(d) = &opts.state_dir {
+            cfg.service.state_dir = d.clone();
+        }
+    })
+    .map_err(|e| e.to_string())?;
     if cfg.feed.is_empty() {
         return Err(format!(
             "config {}: no [[feed]] table; the service needs at least one feed",

@@ -23,7 +23,8 @@ use crate::ingest::params::{param_from_words, Param, Quantity};
 pub struct Service {
     /// Base of the feeds' incoming directories (a feed's relative `incoming` is under it).
     pub watch_dir: PathBuf,
-    /// Root of the output tree: `<out_dir>/<feed>/<cycle>/`.
+    /// Root of the output tree: `<out_dir>/<feed>/<cycle>/`. It, the state
+    /// directory and the quarantine may not lie inside `watch_dir`.
     pub out_dir: PathBuf,
     /// Where the ledger, requests and quarantine live.
     pub state_dir: PathBuf,
@@ -546,6 +547,25 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
     ] {
         if path.as_os_str().is_empty() {
             p.push(format!("service.{key}: empty"));
+        }
+    }
+    // The service's own files inside what it watches would come back to it
+    // as arrivals: products, the ledger and quarantined files beside the
+    // model's output (a lexical test, as the paths are written).
+    for (key, path) in [
+        ("out_dir", &s.out_dir),
+        ("state_dir", &s.state_dir),
+        ("quarantine_dir", &s.quarantine_dir),
+    ] {
+        if !path.as_os_str().is_empty()
+            && !s.watch_dir.as_os_str().is_empty()
+            && path.starts_with(&s.watch_dir)
+        {
+            p.push(format!(
+                "service.{key}: {} is inside service.watch_dir {}: the service would watch its own files",
+                path.display(),
+                s.watch_dir.display()
+            ));
         }
     }
     let mut names: Vec<&str> = Vec::new();
