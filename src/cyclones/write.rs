@@ -98,29 +98,12 @@ fn nc_err(path: &Path) -> impl Fn(netcdf::Error) -> String + '_ {
 
 /// Write the tracks as a CF trajectory file at `path`, atomically.
 pub fn netcdf(path: &Path, c: &Cycle) -> Result<(), String> {
-    let dir = path.parent().unwrap_or(Path::new("."));
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
-    let tmp = dir.join(format!(
-        ".{name}.partial-{}",
-        crate::output::temporary_suffix()
-    ));
-    let r = write_netcdf(&tmp, c).and_then(|()| {
-        let io = |e: std::io::Error| format!("{}: {e}", path.display());
-        std::fs::File::open(&tmp)
-            .and_then(|f| f.sync_all())
-            .map_err(io)?;
-        std::fs::rename(&tmp, path).map_err(io)?;
-        std::fs::File::open(dir)
-            .and_then(|d| d.sync_all())
-            .map_err(io)
-    });
-    if r.is_err() {
-        let _ = std::fs::remove_file(&tmp);
-    }
-    r
+    crate::output::publish_atomically(
+        path,
+        "partial",
+        |tmp| write_netcdf(tmp, c),
+        |p, e| format!("{}: {e}", p.display()),
+    )
 }
 
 fn write_netcdf(path: &Path, c: &Cycle) -> Result<(), String> {

@@ -384,7 +384,6 @@ fn nc(path: &Path) -> impl Fn(netcdf::Error) -> OutputError + '_ {
 /// Write `p` to `dir/name` atomically (temporary, fsync, rename).
 pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, OutputError> {
     let final_path = dir.join(name);
-    let tmp = dir.join(format!(".{name}.partial-{}", super::temporary_suffix()));
     let (ny, nx) = p.grid.shape();
     let points = (ny * nx) as u64;
     let raw: u64 = p
@@ -401,24 +400,15 @@ pub fn write_step(dir: &Path, name: &str, p: &StepProducts) -> Result<PathBuf, O
         path: final_path.clone(),
         source,
     })?;
-    let result = write_file(&tmp, p).and_then(|()| {
-        let io = |path: &Path| {
-            let path = path.to_path_buf();
-            move |source| OutputError::Io { path, source }
-        };
-        fs::File::open(&tmp)
-            .and_then(|f| f.sync_all())
-            .map_err(io(&tmp))?;
-        fs::rename(&tmp, &final_path).map_err(io(&final_path))?;
-        // Make the rename itself durable.
-        fs::File::open(dir)
-            .and_then(|d| d.sync_all())
-            .map_err(io(dir))?;
-        Ok(())
-    });
-    if result.is_err() {
-        let _ = fs::remove_file(&tmp);
-    }
+    let result = super::publish_atomically(
+        &final_path,
+        "partial",
+        |tmp| write_file(tmp, p),
+        |path, source| OutputError::Io {
+            path: path.to_path_buf(),
+            source,
+        },
+    );
     result.map(|()| final_path).map_err(|e| explain(dir, e))
 }
 

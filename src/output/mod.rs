@@ -108,25 +108,85 @@ pub fn temporary_suffix() -> String {
     )
 }
 
-/// Write `bytes` to `path` atomically: a hidden temporary beside it, fsync,
-/// rename, fsync of the directory. A reader sees the old file or the new one.
-pub fn write_file_atomic(path: &std::path::Path, bytes: &[u8]) -> std::io::Result<()> {
-    use std::io::Write;
-    let dir = path.parent().unwrap_or(std::path::Path::new("."));
+/// Publish the file at `path` atomically, the one way leeward does it: `write`
+/// makes the file at a hidden temporary beside it (`.<name>.<tag>-<pid>-<n>`),
+/// which is then fsynced and renamed over `path`, and the directory fsynced so
+/// that the rename itself survives a crash. A reader sees the old file or the
+/// new one, never a part; on any error the temporary is removed. `io_err`
+/// names the path a system call failed on.
+pub fn publish_atomically<E>(
+    path: &std::path::Path,
+    tag: &str,
+    write: impl FnOnce(&std::path::Path) -> Result<(), E>,
+    io_err: impl Fn(&std::path::Path, std::io::Error) -> E,
+) -> Result<(), E> {
+    use std::fs::File;
+    let dir = path
+        .parent()
+        .filter(|d| !d.as_os_str().is_empty())
+        .unwrap_or(std::path::Path::new("."));
     let name = path
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let tmp = dir.join(format!(".{name}.partial-{}", temporary_suffix()));
-    let r = (|| {
-        let mut f = std::fs::File::create(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-        std::fs::rename(&tmp, path)?;
-        std::fs::File::open(dir)?.sync_all()
-    })();
+    let tmp = dir.join(format!(".{name}.{tag}-{}", temporary_suffix()));
+    let r = write(&tmp).and_then(|()| {
+        File::open(&tmp)
+            .and_then(|f| f.sync_all())
+            .map_err(|e| io_err(&tmp, e))?;
+        std::fs::rename(&tmp, path).map_err(|e| io_err(path, e))?;
+        File::open(dir)
+            .and_then(|d| d.sync_all())
+            .map_err(|e| io_err(dir, e))
+    });
     if r.is_err() {
         let _ = std::fs::remove_file(&tmp);
     }
     r
+}
+
+/// Write `bytes` to `path` atomically ([`publish_atomically`]).
+pub fn write_file_atomic(path: &std::path::Path, bytes: &[u8]) -> std::io::Result<()> {
+    publish_atomically(path, "partial", |tmp| std::fs::write(tmp, bytes), |_, e| e)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn entries(dir: &std::path::Path) -> Vec<String> {
+        let mut v: Vec<String> = std::fs::read_dir(dir)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect();
+        v.sort();
+        v
+    }
+
+    #[test]
+    fn a_failed_publication_leaves_the_old_file_and_no_temporary() {
+        // The promise of every published file (leeward's own rule): a reader
+        // sees the old file or the new one, and nothing is left behind.
+        let d = std::env::temp_dir().join(format!("leeward-atomic-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&d);
+        std::fs::create_dir_all(&d).unwrap();
+        let path = d.join("a.nc");
+        write_file_atomic(&path, b"old").unwrap();
+        let failed = publish_atomically(
+            &path,
+            "partial",
+            |tmp| {
+                std::fs::write(tmp, b"half")?;
+                Err(std::io::Error::other("the writer failed"))
+            },
+            |_, e| e,
+        );
+        assert!(failed.is_err());
+        assert_eq!(std::fs::read(&path).unwrap(), b"old");
+        assert_eq!(entries(&d), vec!["a.nc".to_string()]);
+        write_file_atomic(&path, b"new").unwrap();
+        assert_eq!(std::fs::read(&path).unwrap(), b"new");
+        assert_eq!(entries(&d), vec!["a.nc".to_string()]);
+        let _ = std::fs::remove_dir_all(&d);
+    }
 }

@@ -352,11 +352,6 @@ pub fn add_variables_to(
         move |source| OutputError::Io { path: p, source }
     };
     let dir = path.parent().unwrap_or(Path::new("."));
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
-    let tmp = dir.join(format!(".{name}.update-{}", super::temporary_suffix()));
     let existing = std::fs::metadata(from).map(|m| m.len()).unwrap_or(0);
     let added: u64 = vars
         .iter()
@@ -366,111 +361,119 @@ pub fn add_variables_to(
         })
         .sum();
     super::ensure_space(dir, existing + added + (1 << 20)).map_err(io(path))?;
-    std::fs::copy(from, &tmp).map_err(io(&tmp))?;
-    let result = (|| -> Result<(), OutputError> {
-        let e = |source| OutputError::NetCdf {
-            path: tmp.clone(),
+    super::publish_atomically(
+        path,
+        "update",
+        |tmp| {
+            std::fs::copy(from, tmp).map_err(io(tmp))?;
+            add_to_copy(tmp, path, vars, deflate, kept)
+        },
+        |p, source| OutputError::Io {
+            path: p.to_path_buf(),
             source,
-        };
-        super::quiet_hdf5_errors();
-        let mut f = netcdf::append(&tmp).map_err(e)?;
-        // The coordinates every data variable of the file names (the file's
-        // own, from any data variable), so that an added one names the same.
-        let coords = f
-            .variables()
-            .filter(|v| v.dimensions().len() == 4)
-            .find_map(|v| match v.attribute("coordinates")?.value().ok()? {
-                netcdf::AttributeValue::Str(s) => Some(s),
-                _ => None,
-            })
-            .unwrap_or_else(|| "reference_time lead_time".to_string());
-        let (ydim, xdim) = if f.dimension("lat").is_some()
-            && f.variable("lon").is_some_and(|v| v.dimensions().len() == 1)
-        {
-            ("lat", "lon")
-        } else if f.dimension("rlat").is_some() {
-            ("rlat", "rlon")
-        } else {
-            ("y", "x")
-        };
-        if vars.iter().any(|v| kept.bits(v.spec.name) < 23) {
-            super::cf::quantization_container(&mut f).map_err(e)?;
-        }
-        // New variables are declared here with leeward's chunks and filters, so
-        // their levels are packed on every core and stored directly after the
-        // file is closed; a variable already in the file keeps its own
-        // declaration and is rewritten through libnetcdf, its attributes
-        // replaced by this version's.
-        let mut direct: Vec<(String, super::pack::Packed)> = Vec::new();
-        let layers = pressure_layers(&f);
-        for prod in vars {
-            let targets: Vec<super::cf::Target> = if prod.vertical
-                == super::cf::Vertical::PressureLayer
-            {
-                // Level k of a layer product is the file's k-th layer (changes are
-                // taken only between files whose layers agree).
-                if layers.len() != prod.dim().0 {
-                    tracing::warn!(file = %path.display(), variable = prod.spec.name, "layers differ from the file's: not added");
-                    continue;
-                }
-                layers
-                    .iter()
-                    .enumerate()
-                    .map(|(k, (coord, _, bounds))| super::cf::Target {
-                        name: format!("{}_{}", prod.spec.name, super::cf::layer_suffix(*bounds)),
-                        vertical: coord.clone(),
-                        level: Some(k),
-                        layer: Some(*bounds),
-                    })
-                    .collect()
-            } else {
-                let vertical = prod.vertical_name();
-                if !vertical.is_empty() && f.dimension(&vertical).is_none() {
-                    tracing::warn!(file = %path.display(), variable = prod.spec.name, dimension = %vertical, "the file has no such vertical coordinate: not added");
-                    continue;
-                }
-                vec![super::cf::Target {
-                    name: prod.spec.name.to_string(),
-                    vertical,
-                    level: None,
-                    layer: None,
-                }]
-            };
-            for t in targets {
-                add_one(
-                    &mut f,
-                    prod,
-                    &t,
-                    (ydim, xdim),
-                    &coords,
-                    (deflate, kept.bits(prod.spec.name)),
-                    &mut direct,
-                )
-                .map_err(e)?;
-            }
-        }
-        f.close().map_err(e)?;
-        if !direct.is_empty() {
-            let refs: Vec<(&str, &super::pack::Packed)> =
-                direct.iter().map(|(n, p)| (n.as_str(), p)).collect();
-            super::pack::write_chunks(&tmp, &refs).map_err(|m| OutputError::NetCdf {
-                path: tmp.clone(),
-                source: netcdf::Error::from(m.as_str()),
-            })?;
-        }
-        std::fs::File::open(&tmp)
-            .and_then(|f| f.sync_all())
-            .map_err(io(&tmp))?;
-        std::fs::rename(&tmp, path).map_err(io(path))?;
-        std::fs::File::open(dir)
-            .and_then(|d| d.sync_all())
-            .map_err(io(dir))?;
-        Ok(())
-    })();
-    if result.is_err() {
-        let _ = std::fs::remove_file(&tmp);
+        },
+    )
+}
+
+/// Add `vars` to the copy at `tmp` of the file to be published at `path`
+/// (named in warnings), and store their packed levels.
+fn add_to_copy(
+    tmp: &Path,
+    path: &Path,
+    vars: &[Product],
+    deflate: i32,
+    kept: &super::precision::KeptBits,
+) -> Result<(), OutputError> {
+    let e = |source| OutputError::NetCdf {
+        path: tmp.to_path_buf(),
+        source,
+    };
+    super::quiet_hdf5_errors();
+    let mut f = netcdf::append(tmp).map_err(e)?;
+    // The coordinates every data variable of the file names (the file's
+    // own, from any data variable), so that an added one names the same.
+    let coords = f
+        .variables()
+        .filter(|v| v.dimensions().len() == 4)
+        .find_map(|v| match v.attribute("coordinates")?.value().ok()? {
+            netcdf::AttributeValue::Str(s) => Some(s),
+            _ => None,
+        })
+        .unwrap_or_else(|| "reference_time lead_time".to_string());
+    let (ydim, xdim) = if f.dimension("lat").is_some()
+        && f.variable("lon").is_some_and(|v| v.dimensions().len() == 1)
+    {
+        ("lat", "lon")
+    } else if f.dimension("rlat").is_some() {
+        ("rlat", "rlon")
+    } else {
+        ("y", "x")
+    };
+    if vars.iter().any(|v| kept.bits(v.spec.name) < 23) {
+        super::cf::quantization_container(&mut f).map_err(e)?;
     }
-    result
+    // New variables are declared here with leeward's chunks and filters, so
+    // their levels are packed on every core and stored directly after the
+    // file is closed; a variable already in the file keeps its own
+    // declaration and is rewritten through libnetcdf, its attributes
+    // replaced by this version's.
+    let mut direct: Vec<(String, super::pack::Packed)> = Vec::new();
+    let layers = pressure_layers(&f);
+    for prod in vars {
+        let targets: Vec<super::cf::Target> = if prod.vertical == super::cf::Vertical::PressureLayer
+        {
+            // Level k of a layer product is the file's k-th layer (changes are
+            // taken only between files whose layers agree).
+            if layers.len() != prod.dim().0 {
+                tracing::warn!(file = %path.display(), variable = prod.spec.name, "layers differ from the file's: not added");
+                continue;
+            }
+            layers
+                .iter()
+                .enumerate()
+                .map(|(k, (coord, _, bounds))| super::cf::Target {
+                    name: format!("{}_{}", prod.spec.name, super::cf::layer_suffix(*bounds)),
+                    vertical: coord.clone(),
+                    level: Some(k),
+                    layer: Some(*bounds),
+                })
+                .collect()
+        } else {
+            let vertical = prod.vertical_name();
+            if !vertical.is_empty() && f.dimension(&vertical).is_none() {
+                tracing::warn!(file = %path.display(), variable = prod.spec.name, dimension = %vertical, "the file has no such vertical coordinate: not added");
+                continue;
+            }
+            vec![super::cf::Target {
+                name: prod.spec.name.to_string(),
+                vertical,
+                level: None,
+                layer: None,
+            }]
+        };
+        for t in targets {
+            add_one(
+                &mut f,
+                prod,
+                &t,
+                (ydim, xdim),
+                &coords,
+                (deflate, kept.bits(prod.spec.name)),
+                &mut direct,
+            )
+            .map_err(e)?;
+        }
+    }
+    f.close().map_err(e)?;
+    if !direct.is_empty() {
+        let refs: Vec<(&str, &super::pack::Packed)> =
+            direct.iter().map(|(n, p)| (n.as_str(), p)).collect();
+        super::pack::write_chunks(tmp, &refs).map_err(|m| OutputError::NetCdf {
+            path: tmp.to_path_buf(),
+            source: netcdf::Error::from(m.as_str()),
+        })?;
+    }
+    Ok(())
 }
 
 /// Add or replace one variable of an update (a whole product, or one level
