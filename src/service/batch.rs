@@ -508,19 +508,8 @@ pub fn run_in_job(dir: &Path) -> u8 {
     // Every line the step logs says which step it is.
     let _step = tracing::info_span!("step", feed = %spec.tag.feed, cycle = %spec.tag.cycle, lead = spec.tag.lead).entered();
     info!(job = ?job_id, restarts, threads, dir = %dir.display(), "step job started");
-    crate::output::quiet_hdf5_errors();
-    let made = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| make(&spec, dir)))
-        .unwrap_or_else(|p| {
-            (
-                Ended::Internal {
-                    reason: format!(
-                        "internal error (a defect in leeward): {}",
-                        super::pool::panic_text(&*p)
-                    ),
-                },
-                JobReport::default(),
-            )
-        });
+    let made = super::pool::guarded(|| make(&spec, dir))
+        .unwrap_or_else(|reason| (Ended::Internal { reason }, JobReport::default()));
     let result = JobResult {
         result_version: 1,
         tag: spec.tag.clone(),

@@ -1319,17 +1319,8 @@ impl Daemon {
         let log_format = self.opts.log_format.clone();
         let tx = self.done_tx.clone();
         self.pool.run(move || {
-            crate::output::quiet_hdf5_errors();
-            let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                run_local(&job, &spec, &stage, &log_format)
-            }))
-            .unwrap_or_else(|p| {
-                JobOutcome::Internal(format!(
-                    "internal error (a defect in leeward): {}",
-                    super::pool::panic_text(&*p)
-                ))
-            });
-            crate::output::release_hdf5_free_lists();
+            let outcome = super::pool::guarded(|| run_local(&job, &spec, &stage, &log_format))
+                .unwrap_or_else(JobOutcome::Internal);
             let _ = tx.send(JobDone {
                 tag: job.tag.clone(),
                 outcome,
@@ -1427,12 +1418,9 @@ impl Daemon {
                 let journal = self.ledger.journal();
                 let tx = self.done_tx.clone();
                 self.pool.run(move || {
-                    crate::output::quiet_hdf5_errors();
-                    let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                        let t = taken_outcome(batch::take(&spec, &stage, &lock, &journal));
-                        crate::output::release_hdf5_free_lists();
-                        t
-                    }))
+                    let outcome = super::pool::guarded(|| {
+                        taken_outcome(batch::take(&spec, &stage, &lock, &journal))
+                    })
                     .unwrap_or_else(|_| JobOutcome::BatchRetry {
                         state: "TAKE_FAILED".into(),
                         reason: "internal error while taking the result".into(),

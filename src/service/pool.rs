@@ -116,6 +116,24 @@ fn worker(shared: &Shared) {
     }
 }
 
+/// Run `work`, which may touch libnetcdf and HDF5, the one way leeward does:
+/// HDF5's own error printing off, a panic caught and returned as the words
+/// of a defect ([`defect`]), HDF5's free lists given back afterwards, panic
+/// or not. The service's step and take tasks and a batch job's step go
+/// through it.
+pub fn guarded<T>(work: impl FnOnce() -> T) -> Result<T, String> {
+    crate::output::quiet_hdf5_errors();
+    let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(work))
+        .map_err(|p| defect(&panic_text(&*p)));
+    crate::output::release_hdf5_free_lists();
+    r
+}
+
+/// The words of an internal error: a defect in leeward, not in the input.
+pub fn defect(what: &str) -> String {
+    format!("internal error (a defect in leeward): {what}")
+}
+
 /// What a caught panic said.
 pub fn panic_text(p: &(dyn std::any::Any + Send)) -> String {
     p.downcast_ref::<&str>()
@@ -190,5 +208,19 @@ mod tests {
         pool.run(move || tx.send(1).unwrap());
         assert_eq!(rx.recv().unwrap(), 1);
         assert_eq!(pool.threads(), 1);
+    }
+
+    #[test]
+    fn a_guarded_panic_comes_back_as_the_words_of_a_defect() {
+        assert_eq!(guarded(|| 3), Ok(3));
+        let e = guarded(|| -> u8 { panic!("planted {}", 7) }).unwrap_err();
+        assert_eq!(e, "internal error (a defect in leeward): planted 7");
+        let e = guarded(|| -> u8 { std::panic::panic_any(5u8) }).unwrap_err();
+        assert!(e.ends_with("unknown"), "{e}");
+        // libnetcdf still writes a file after a caught panic on this thread.
+        let p = std::env::temp_dir().join(format!("leeward-guard-{}.nc", std::process::id()));
+        let made = guarded(|| netcdf::create(&p).map(|_| ()).is_ok());
+        assert_eq!(made, Ok(true));
+        let _ = std::fs::remove_file(&p);
     }
 }
