@@ -2164,117 +2164,36 @@ impl Daemon {
 /// Run the service until SIGTERM or SIGINT. Returns the exit code.
 pub fn serve(opts: ServeOptions) -> u8 {
     child::set_log_format(&opts.log_format);
-    let cfg = match load(&opts) {
-        Ok(c) => c,
-        Err(e) => {
-            error!(error = %e, "cannot start");
-            eprintln!("leeward: {e}");
-            return code::CONFIG;
-        }
-    };
-    let (rules, feed_cfgs) = match rules_of(&cfg) {
-        Ok(r) => r,
-        Err(e) => {
-            eprintln!("leeward: {e}");
-            return code::CONFIG;
-        }
-    };
-    let sdir = cfg.service.state_dir.clone();
-    // One service per state directory: a hold that survives the directory's
-    // removal, and the lock file that `leeward status` reads.
-    let _held = match super::ledger::hold_state_dir(&sdir) {
-        Ok(h) => h,
-        Err(e) if e.kind() == std::io::ErrorKind::AddrInUse => {
-            eprintln!(
-                "leeward: another leeward serve is using the state directory {}",
-                sdir.display()
-            );
-            return code::CONFIG;
-        }
-        Err(e) => {
-            eprintln!(
-                "leeward: cannot hold the state directory {}: {e}",
-                sdir.display()
-            );
-            return code::CONFIG;
-        }
-    };
-    if let Err(e) = std::fs::create_dir_all(requests_dir(&sdir)) {
-        eprintln!(
-            "leeward: cannot use the state directory {}: {e}",
-            sdir.display()
-        );
-        return code::CONFIG;
+    match start(opts) {
+        // The hold on the state directory lives as long as the loop.
+        Ok((_held, d, signals)) => run(d, signals),
+        Err(code) => code,
     }
-    let lock = match super::ledger::take_lock(&sdir) {
-        Ok(f) => f,
-        Err(e) => {
-            eprintln!("leeward: {e}");
-            return code::CONFIG;
-        }
-    };
-    let mut ledger = match Ledger::open(&sdir) {
-        Ok(l) => l,
-        Err(e) => {
-            eprintln!("leeward: {e}");
-            return code::CONFIG;
-        }
-    };
-    if let Err(e) = ledger.hold(lock) {
-        eprintln!("leeward: {e}");
-        return code::CONFIG;
-    }
-    if cfg.service.quarantine == QuarantineMode::Move {
-        if let Err(e) = std::fs::create_dir_all(cfg.service.quarantine_dir()) {
-            warn!(dir = %cfg.service.quarantine_dir().display(), error = %e, "cannot create the quarantine directory; bad files are recorded only");
-        }
-    }
-    if let Err(e) = std::fs::create_dir_all(&cfg.service.out_dir) {
-        // Not fatal: the output may come back (a mount); steps are retried.
-        error!(dir = %cfg.service.out_dir.display(), error = %e, "output directory unusable; steps will be retried");
-    }
+}
+
+/// Refuse to start: the reason on standard error, the configuration's exit code.
+fn refuse(e: &dyn std::fmt::Display) -> u8 {
+    eprintln!("leeward: {e}");
+    code::CONFIG
+}
+
+/// Everything before the loop: the configuration, the state directory held,
+/// the ledger, the output tree, the metrics endpoint, the signals, then the
+/// recovery of publications and jobs and the watchers' first scan.
+fn start(
+    opts: ServeOptions,
+) -> Result<(std::os::unix::net::UnixListener, Daemon, Receiver<Event>), u8> {
+    let cfg = load(&opts).map_err(|e| {
+        error!(error = %e, "cannot start");
+        refuse(&e)
+    })?;
+    let (rules, feed_cfgs) = rules_of(&cfg).map_err(|e| refuse(&e))?;
+    let (held, ledger) = open_state(&cfg.service.state_dir)?;
+    prepare_dirs(&cfg.service);
     crate::output::limit_hdf5_free_lists();
     let removed = publish::clean_temporaries(&cfg.service.out_dir);
-    let metrics = Arc::new(Mutex::new(Metrics {
-        started: unix_now(),
-        heartbeat: Some(Instant::now()),
-        ..Metrics::default()
-    }));
-    for r in &rules {
-        let mut m = metrics
-            .lock()
-            .unwrap_or_else(std::sync::PoisonError::into_inner);
-        m.feed(&r.feed.name);
-        if r.feed.executor == Executor::Slurm {
-            m.scheduler.used = true;
-            m.scheduler.reachable = true;
-        }
-    }
-    if !cfg.service.metrics_listen.is_empty() {
-        if let Err(e) = super::metrics::serve(&cfg.service.metrics_listen, metrics.clone()) {
-            error!(address = %cfg.service.metrics_listen, error = %e, "metrics endpoint not started");
-        }
-    }
-    let (sig_tx, sig_rx) = channel::<Event>();
-    match signal_hook::iterator::Signals::new([
-        signal_hook::consts::SIGTERM,
-        signal_hook::consts::SIGINT,
-        signal_hook::consts::SIGHUP,
-    ]) {
-        Ok(mut signals) => {
-            std::thread::spawn(move || {
-                for s in signals.forever() {
-                    if sig_tx.send(Event::Signal(s)).is_err() {
-                        return;
-                    }
-                }
-            });
-        }
-        Err(e) => {
-            eprintln!("leeward: cannot handle signals: {e}");
-            return code::CONFIG;
-        }
-    }
+    let metrics = start_metrics(&cfg.service, &rules);
+    let sig_rx = signal_events().map_err(|e| refuse(&format!("cannot handle signals: {e}")))?;
     let (done_tx, done_rx) = channel();
     let mut d = Daemon {
         opts,
@@ -2303,48 +2222,251 @@ pub fn serve(opts: ServeOptions) -> u8 {
         last_waiting: Vec::new(),
         state_problem: None,
     };
-    for (tag, st) in &d.ledger.state.steps {
-        if let Outcome::Published { at, .. } = st.outcome {
-            let mut m = d.metrics();
-            let f = m.feed(&tag.feed);
-            f.last_success = Some(f.last_success.unwrap_or(0.0).max(at as f64));
+    d.begin(removed);
+    Ok((held, d, sig_rx))
+}
+
+/// Hold the state directory (one service per directory: a hold that survives
+/// the directory's removal, and the lock file that `leeward status` reads)
+/// and open its ledger.
+fn open_state(sdir: &Path) -> Result<(std::os::unix::net::UnixListener, Ledger), u8> {
+    let held = super::ledger::hold_state_dir(sdir).map_err(|e| {
+        if e.kind() == std::io::ErrorKind::AddrInUse {
+            refuse(&format!(
+                "another leeward serve is using the state directory {}",
+                sdir.display()
+            ))
+        } else {
+            refuse(&format!(
+                "cannot hold the state directory {}: {e}",
+                sdir.display()
+            ))
+        }
+    })?;
+    std::fs::create_dir_all(requests_dir(sdir)).map_err(|e| {
+        refuse(&format!(
+            "cannot use the state directory {}: {e}",
+            sdir.display()
+        ))
+    })?;
+    let lock = super::ledger::take_lock(sdir).map_err(|e| refuse(&e))?;
+    let mut ledger = Ledger::open(sdir).map_err(|e| refuse(&e))?;
+    ledger.hold(lock).map_err(|e| refuse(&e))?;
+    Ok((held, ledger))
+}
+
+/// The quarantine and the output tree; neither is fatal when it fails.
+fn prepare_dirs(svc: &super::settings::Service) {
+    if svc.quarantine == QuarantineMode::Move {
+        if let Err(e) = std::fs::create_dir_all(svc.quarantine_dir()) {
+            warn!(dir = %svc.quarantine_dir().display(), error = %e, "cannot create the quarantine directory; bad files are recorded only");
         }
     }
-    d.record(Record::Started {
-        version: env!("CARGO_PKG_VERSION").into(),
-        pid: std::process::id(),
-        at: Utc::now().timestamp(),
-    });
-    // Steps the ledger knows as waiting keep their first-seen time; their
-    // files come back through the watchers' first scan (the catch-up).
-    let waiting = d
-        .ledger
-        .state
-        .steps
-        .values()
-        .filter(|s| matches!(s.outcome, Outcome::Waiting))
-        .count();
-    d.recover_publications();
-    d.recover_jobs();
-    d.start_watchers();
-    d.retention();
-    info!(
-        version = env!("CARGO_PKG_VERSION"),
-        feeds = %super::settings::describe_dirs(&d.rules),
-        out_dir = %d.cfg.service.out_dir.display(),
-        state_dir = %d.cfg.service.state_dir.display(),
-        workers = d.cfg.service.workers,
-        stale_temporaries_removed = removed,
-        steps_waiting_from_before = waiting,
-        "leeward serve started"
-    );
-    d.notifier.send("READY=1");
-    d.update_status();
+    if let Err(e) = std::fs::create_dir_all(&svc.out_dir) {
+        // Not fatal: the output may come back (a mount); steps are retried.
+        error!(dir = %svc.out_dir.display(), error = %e, "output directory unusable; steps will be retried");
+    }
+}
 
+/// The service's metrics, one entry per feed, served at `metrics_listen` if set.
+fn start_metrics(svc: &super::settings::Service, rules: &[FeedRule]) -> Arc<Mutex<Metrics>> {
+    let metrics = Arc::new(Mutex::new(Metrics {
+        started: unix_now(),
+        heartbeat: Some(Instant::now()),
+        ..Metrics::default()
+    }));
+    for r in rules {
+        let mut m = metrics
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        m.feed(&r.feed.name);
+        if r.feed.executor == Executor::Slurm {
+            m.scheduler.used = true;
+            m.scheduler.reachable = true;
+        }
+    }
+    if !svc.metrics_listen.is_empty() {
+        if let Err(e) = super::metrics::serve(&svc.metrics_listen, metrics.clone()) {
+            error!(address = %svc.metrics_listen, error = %e, "metrics endpoint not started");
+        }
+    }
+    metrics
+}
+
+/// SIGTERM, SIGINT and SIGHUP as events of the loop.
+fn signal_events() -> std::io::Result<Receiver<Event>> {
+    let (sig_tx, sig_rx) = channel::<Event>();
+    let mut signals = signal_hook::iterator::Signals::new([
+        signal_hook::consts::SIGTERM,
+        signal_hook::consts::SIGINT,
+        signal_hook::consts::SIGHUP,
+    ])?;
+    std::thread::spawn(move || {
+        for s in signals.forever() {
+            if sig_tx.send(Event::Signal(s)).is_err() {
+                return;
+            }
+        }
+    });
+    Ok(sig_rx)
+}
+
+/// When the loop's periodic work last ran.
+struct Timers {
+    second: Instant,
+    retention: Instant,
+    orphans: Instant,
+}
+
+impl Daemon {
+    /// The start's last acts: what the ledger knows, the recovery, the
+    /// watchers, the log line and systemd's READY.
+    fn begin(&mut self, removed: usize) {
+        for (tag, st) in &self.ledger.state.steps {
+            if let Outcome::Published { at, .. } = st.outcome {
+                let mut m = self.metrics();
+                let f = m.feed(&tag.feed);
+                f.last_success = Some(f.last_success.unwrap_or(0.0).max(at as f64));
+            }
+        }
+        self.record(Record::Started {
+            version: env!("CARGO_PKG_VERSION").into(),
+            pid: std::process::id(),
+            at: Utc::now().timestamp(),
+        });
+        // Steps the ledger knows as waiting keep their first-seen time; their
+        // files come back through the watchers' first scan (the catch-up).
+        let waiting = self
+            .ledger
+            .state
+            .steps
+            .values()
+            .filter(|s| matches!(s.outcome, Outcome::Waiting))
+            .count();
+        self.recover_publications();
+        self.recover_jobs();
+        self.start_watchers();
+        self.retention();
+        info!(
+            version = env!("CARGO_PKG_VERSION"),
+            feeds = %super::settings::describe_dirs(&self.rules),
+            out_dir = %self.cfg.service.out_dir.display(),
+            state_dir = %self.cfg.service.state_dir.display(),
+            workers = self.cfg.service.workers,
+            stale_temporaries_removed = removed,
+            steps_waiting_from_before = waiting,
+            "leeward serve started"
+        );
+        self.notifier.send("READY=1");
+        self.update_status();
+    }
+
+    /// Signals: SIGHUP reloads; SIGTERM and SIGINT begin the stop (no new
+    /// work, the steps in hand finished within the grace time).
+    fn on_signals(&mut self, sig_rx: &Receiver<Event>, stopping: &mut Option<Instant>) {
+        while let Ok(Event::Signal(s)) = sig_rx.try_recv() {
+            if s == signal_hook::consts::SIGHUP {
+                self.reload();
+            } else if stopping.is_none() {
+                info!(
+                    signal = s,
+                    running = self.running.len(),
+                    grace_s = self.cfg.service.shutdown_grace_s,
+                    "stopping: no new work; finishing the steps in hand"
+                );
+                self.notifier.send(&format!(
+                    "STOPPING=1\n{}",
+                    status_line(&format!(
+                        "stopping: finishing {} step(s) in hand",
+                        self.running.len()
+                    ))
+                ));
+                self.watchers.clear();
+                *stopping = Some(Instant::now());
+            }
+        }
+    }
+
+    /// One round of the loop's work: new files (when `taking`), finished
+    /// steps, the scheduler's jobs, and the periodic checks.
+    fn round(&mut self, taking: bool, t: &mut Timers) {
+        if taking {
+            let mut files = Vec::new();
+            for (_, w) in &self.watchers {
+                while let Some(p) = w.next(Duration::ZERO) {
+                    files.push(p);
+                }
+            }
+            for p in files {
+                self.ingest(&p, None);
+                self.keepalive();
+            }
+        }
+        while let Ok(done) = self.done_rx.try_recv() {
+            self.finished(done);
+        }
+        if taking && self.last_poll.elapsed().as_secs_f64() >= self.cfg.service.slurm.poll_s {
+            self.last_poll = Instant::now();
+            self.poll_jobs();
+        }
+        if t.second.elapsed() >= Duration::from_secs(1) {
+            t.second = Instant::now();
+            self.watch_state();
+            if taking {
+                self.requests();
+                self.recheck_growing();
+                self.report_waiting();
+            }
+            self.timeouts();
+        }
+        if t.retention.elapsed() >= Duration::from_secs(600) {
+            t.retention = Instant::now();
+            self.retention();
+        }
+        if t.orphans.elapsed() >= Duration::from_secs(60) {
+            t.orphans = Instant::now();
+            self.expire_orphans();
+        }
+    }
+
+    /// While stopping since `t0`: the exit code once the steps in hand are
+    /// done (jobs on the scheduler go on without the service and are followed
+    /// again after its restart; a result being taken is finished first), or
+    /// the exit when the grace time is over.
+    fn stopped(&mut self, t0: Instant) -> Option<u8> {
+        let taking = self.jobs.values().any(|j| j.phase == JobPhase::Taking);
+        if self.running.is_empty() && !taking {
+            info!("stopped cleanly");
+            self.record(Record::Stopped {
+                reason: "signal".into(),
+                at: Utc::now().timestamp(),
+            });
+            return Some(code::OK);
+        }
+        if t0.elapsed().as_secs_f64() >= self.cfg.service.shutdown_grace_s {
+            let left: Vec<String> = self.running.keys().map(ToString::to_string).collect();
+            warn!(steps = ?left, "grace time over: abandoning the steps in hand; they are made again at the next start");
+            self.record(Record::Stopped {
+                reason: format!("signal; abandoned {}", left.join(", ")),
+                at: Utc::now().timestamp(),
+            });
+            // The step processes die with the service; their staging
+            // directories are removed at the next start.
+            std::process::exit(i32::from(code::OK));
+        }
+        None
+    }
+}
+
+/// The loop: signals, a round of work, dispatch or the stop, the watchdog
+/// and the status line, then a wait of at most a tick for a finished step.
+fn run(mut d: Daemon, sig_rx: Receiver<Event>) -> u8 {
     let tick = Duration::from_millis(100);
-    let mut last_second = Instant::now();
-    let mut last_retention = Instant::now();
-    let mut last_orphans = Instant::now();
+    let mut timers = Timers {
+        second: Instant::now(),
+        retention: Instant::now(),
+        orphans: Instant::now(),
+    };
     let ping_every = d.notifier.watchdog.map(|w| w / 2);
     let mut stopping: Option<Instant> = None;
     if let Some(w) = ping_every {
@@ -2352,68 +2474,9 @@ pub fn serve(opts: ServeOptions) -> u8 {
         debug!(every_s = w.as_secs_f64(), "watchdog pings");
     }
     loop {
-        while let Ok(Event::Signal(s)) = sig_rx.try_recv() {
-            match s {
-                signal_hook::consts::SIGHUP => d.reload(),
-                _ => {
-                    if stopping.is_none() {
-                        info!(
-                            signal = s,
-                            running = d.running.len(),
-                            grace_s = d.cfg.service.shutdown_grace_s,
-                            "stopping: no new work; finishing the steps in hand"
-                        );
-                        d.notifier.send(&format!(
-                            "STOPPING=1\n{}",
-                            status_line(&format!(
-                                "stopping: finishing {} step(s) in hand",
-                                d.running.len()
-                            ))
-                        ));
-                        d.watchers.clear();
-                        stopping = Some(Instant::now());
-                    }
-                }
-            }
-        }
+        d.on_signals(&sig_rx, &mut stopping);
         let taking = stopping.is_none() && d.state_problem.is_none();
-        if taking {
-            let mut files = Vec::new();
-            for (_, w) in &d.watchers {
-                while let Some(p) = w.next(Duration::ZERO) {
-                    files.push(p);
-                }
-            }
-            for p in files {
-                d.ingest(&p, None);
-                d.keepalive();
-            }
-        }
-        while let Ok(done) = d.done_rx.try_recv() {
-            d.finished(done);
-        }
-        if taking && d.last_poll.elapsed().as_secs_f64() >= d.cfg.service.slurm.poll_s {
-            d.last_poll = Instant::now();
-            d.poll_jobs();
-        }
-        if last_second.elapsed() >= Duration::from_secs(1) {
-            last_second = Instant::now();
-            d.watch_state();
-            if taking {
-                d.requests();
-                d.recheck_growing();
-                d.report_waiting();
-            }
-            d.timeouts();
-        }
-        if last_retention.elapsed() >= Duration::from_secs(600) {
-            last_retention = Instant::now();
-            d.retention();
-        }
-        if last_orphans.elapsed() >= Duration::from_secs(60) {
-            last_orphans = Instant::now();
-            d.expire_orphans();
-        }
+        d.round(taking, &mut timers);
         match stopping {
             None => {
                 d.timeouts();
@@ -2422,28 +2485,8 @@ pub fn serve(opts: ServeOptions) -> u8 {
                 }
             }
             Some(t0) => {
-                // Jobs on the scheduler go on without the service and are
-                // followed again after its restart; a result being taken is
-                // finished first.
-                let taking = d.jobs.values().any(|j| j.phase == JobPhase::Taking);
-                if d.running.is_empty() && !taking {
-                    info!("stopped cleanly");
-                    d.record(Record::Stopped {
-                        reason: "signal".into(),
-                        at: Utc::now().timestamp(),
-                    });
-                    return code::OK;
-                }
-                if t0.elapsed().as_secs_f64() >= d.cfg.service.shutdown_grace_s {
-                    let left: Vec<String> = d.running.keys().map(ToString::to_string).collect();
-                    warn!(steps = ?left, "grace time over: abandoning the steps in hand; they are made again at the next start");
-                    d.record(Record::Stopped {
-                        reason: format!("signal; abandoned {}", left.join(", ")),
-                        at: Utc::now().timestamp(),
-                    });
-                    // The step processes die with the service; their
-                    // staging directories are removed at the next start.
-                    std::process::exit(i32::from(code::OK));
+                if let Some(code) = d.stopped(t0) {
+                    return code;
                 }
             }
         }
