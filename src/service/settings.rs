@@ -457,7 +457,22 @@ fn has_cycle_part(pattern: &str) -> bool {
 /// Every problem of the service settings and feeds, as "key: reason".
 pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
     let mut p = Vec::new();
-    let s = service;
+    service_limits(service, &mut p);
+    slurm_problems(&service.slurm, &mut p);
+    directory_problems(service, &mut p);
+    let mut names: Vec<&str> = Vec::new();
+    for (k, f) in feeds.iter().enumerate() {
+        let key = |k2: &str| format!("feed[{k}].{k2}");
+        feed_naming(f, &key, &mut names, &mut p);
+        feed_completeness(f, &key, &mut p);
+        feed_contents(f, &key, &mut p);
+        feed_links(f, &key, &mut p);
+    }
+    p
+}
+
+/// The service's numbers within their ranges.
+fn service_limits(s: &Service, p: &mut Vec<String>) {
     if !(1..=64).contains(&s.workers) {
         p.push(format!("service.workers: {} is outside 1 to 64", s.workers));
     }
@@ -473,7 +488,26 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
             p.push(format!("service.{key}: {v} is outside {lo} to {hi}"));
         }
     }
-    let b = &s.slurm;
+    if s.ledger_days > 36_500 {
+        p.push(format!(
+            "service.ledger_days: {} is more than 36500 (100 years)",
+            s.ledger_days
+        ));
+    }
+    if s.retry_max_s < s.retry_first_s {
+        p.push("service.retry_max_s: smaller than service.retry_first_s".into());
+    }
+    use std::net::ToSocketAddrs;
+    if !s.metrics_listen.is_empty() && s.metrics_listen.to_socket_addrs().is_err() {
+        p.push(format!(
+            "service.metrics_listen: {:?} is not an address and port such as 127.0.0.1:7478",
+            s.metrics_listen
+        ));
+    }
+}
+
+/// The batch scheduler's settings.
+fn slurm_problems(b: &Slurm, p: &mut Vec<String>) {
     for (key, v, lo, hi) in [
         ("poll_s", b.poll_s, 0.1, 600.0),
         ("command_timeout_s", b.command_timeout_s, 1.0, 600.0),
@@ -524,22 +558,10 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
             b.program.display()
         ));
     }
-    if s.ledger_days > 36_500 {
-        p.push(format!(
-            "service.ledger_days: {} is more than 36500 (100 years)",
-            s.ledger_days
-        ));
-    }
-    if s.retry_max_s < s.retry_first_s {
-        p.push("service.retry_max_s: smaller than service.retry_first_s".into());
-    }
-    use std::net::ToSocketAddrs;
-    if !s.metrics_listen.is_empty() && s.metrics_listen.to_socket_addrs().is_err() {
-        p.push(format!(
-            "service.metrics_listen: {:?} is not an address and port such as 127.0.0.1:7478",
-            s.metrics_listen
-        ));
-    }
+}
+
+/// The directories: none empty, and none of the service's own inside the watched one.
+fn directory_problems(s: &Service, p: &mut Vec<String>) {
     for (key, path) in [
         ("watch_dir", &s.watch_dir),
         ("out_dir", &s.out_dir),
@@ -568,112 +590,128 @@ pub fn problems(service: &Service, feeds: &[Feed]) -> Vec<String> {
             ));
         }
     }
-    let mut names: Vec<&str> = Vec::new();
-    for (k, f) in feeds.iter().enumerate() {
-        let key = |k2: &str| format!("feed[{k}].{k2}");
-        if f.name.is_empty()
-            || !f
-                .name
-                .chars()
-                .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
-        {
+}
+
+/// A feed's name (usable in a path, not taken twice) and its patterns.
+fn feed_naming<'a>(
+    f: &'a Feed,
+    key: &dyn Fn(&str) -> String,
+    names: &mut Vec<&'a str>,
+    p: &mut Vec<String>,
+) {
+    if f.name.is_empty()
+        || !f
+            .name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+    {
+        p.push(format!(
+            "{}: {:?} must be letters, digits, - and _ only",
+            key("name"),
+            f.name
+        ));
+    }
+    if names.contains(&f.name.as_str()) {
+        p.push(format!(
+            "{}: {:?} is used by two feeds",
+            key("name"),
+            f.name
+        ));
+    }
+    names.push(&f.name);
+    for (k2, pat) in [
+        ("file_pattern", &f.file_pattern),
+        ("marker_pattern", &f.marker_pattern),
+    ] {
+        if let Err(e) = (!pat.is_empty()).then(|| compile(pat)).transpose() {
+            p.push(format!("{}: not a regular expression: {e}", key(k2)));
+        }
+    }
+}
+
+/// What makes a step complete, and what that needs.
+fn feed_completeness(f: &Feed, key: &dyn Fn(&str) -> String, p: &mut Vec<String>) {
+    match f.complete {
+        Completeness::Fields => {
+            if f.levels_hpa.is_empty() {
+                p.push(format!(
+                    "{}: needed when complete = \"fields\" (the isobaric levels a complete step has)",
+                    key("levels_hpa")
+                ));
+            }
+            if let Some(l) = f.levels_hpa.iter().find(|l| !(**l > 0.0 && **l <= 1100.0)) {
+                p.push(format!(
+                    "{}: {l} hPa is outside 0 to 1100",
+                    key("levels_hpa")
+                ));
+            }
+        }
+        Completeness::Files => {
+            if f.files_per_step == 0 {
+                p.push(format!("{}: must be at least 1", key("files_per_step")));
+            }
+        }
+        Completeness::Marker => {
+            if f.marker_pattern.is_empty() {
+                p.push(format!(
+                    "{}: needed when complete = \"marker\"",
+                    key("marker_pattern")
+                ));
+            } else if !has_cycle_part(&f.marker_pattern) {
+                p.push(format!(
+                    "{}: needs a named part (?P<cycle>...), or (?P<date>...) and (?P<hour>...)",
+                    key("marker_pattern")
+                ));
+            }
+        }
+    }
+}
+
+/// A feed's products, required fields and cycle format.
+fn feed_contents(f: &Feed, key: &dyn Fn(&str) -> String, p: &mut Vec<String>) {
+    if let Some(pr) = &f.products {
+        if !pr.any() {
             p.push(format!(
-                "{}: {:?} must be letters, digits, - and _ only",
-                key("name"),
-                f.name
+                "{}: every product is switched off; nothing would be made",
+                key("products")
             ));
         }
-        if names.contains(&f.name.as_str()) {
+    }
+    for (k, n) in f.require.iter().enumerate() {
+        if let Err(e) = param_from_words(n) {
+            p.push(format!("{}[{k}]: {e}", key("require")));
+        }
+    }
+    let bad_format = f.cycle_format.is_empty()
+        || chrono::format::StrftimeItems::new(&f.cycle_format)
+            .any(|i| matches!(i, chrono::format::Item::Error));
+    if bad_format {
+        p.push(format!("{}: not a usable time format", key("cycle_format")));
+    }
+}
+
+/// A feed's symbolic-link policy.
+fn feed_links(f: &Feed, key: &dyn Fn(&str) -> String, p: &mut Vec<String>) {
+    for r in &f.link_roots {
+        if !r.is_absolute() {
             p.push(format!(
-                "{}: {:?} is used by two feeds",
-                key("name"),
-                f.name
+                "{}: {} must be an absolute directory",
+                key("link_roots"),
+                crate::escape::path(r)
             ));
-        }
-        names.push(&f.name);
-        for (k2, pat) in [
-            ("file_pattern", &f.file_pattern),
-            ("marker_pattern", &f.marker_pattern),
-        ] {
-            if let Err(e) = (!pat.is_empty()).then(|| compile(pat)).transpose() {
-                p.push(format!("{}: not a regular expression: {e}", key(k2)));
-            }
-        }
-        match f.complete {
-            Completeness::Fields => {
-                if f.levels_hpa.is_empty() {
-                    p.push(format!(
-                        "{}: needed when complete = \"fields\" (the isobaric levels a complete step has)",
-                        key("levels_hpa")
-                    ));
-                }
-                if let Some(l) = f.levels_hpa.iter().find(|l| !(**l > 0.0 && **l <= 1100.0)) {
-                    p.push(format!(
-                        "{}: {l} hPa is outside 0 to 1100",
-                        key("levels_hpa")
-                    ));
-                }
-            }
-            Completeness::Files => {
-                if f.files_per_step == 0 {
-                    p.push(format!("{}: must be at least 1", key("files_per_step")));
-                }
-            }
-            Completeness::Marker => {
-                if f.marker_pattern.is_empty() {
-                    p.push(format!(
-                        "{}: needed when complete = \"marker\"",
-                        key("marker_pattern")
-                    ));
-                } else if !has_cycle_part(&f.marker_pattern) {
-                    p.push(format!(
-                        "{}: needs a named part (?P<cycle>...), or (?P<date>...) and (?P<hour>...)",
-                        key("marker_pattern")
-                    ));
-                }
-            }
-        }
-        if let Some(pr) = &f.products {
-            if !pr.any() {
-                p.push(format!(
-                    "{}: every product is switched off; nothing would be made",
-                    key("products")
-                ));
-            }
-        }
-        for (k, n) in f.require.iter().enumerate() {
-            if let Err(e) = param_from_words(n) {
-                p.push(format!("{}[{k}]: {e}", key("require")));
-            }
-        }
-        let bad_format = f.cycle_format.is_empty()
-            || chrono::format::StrftimeItems::new(&f.cycle_format)
-                .any(|i| matches!(i, chrono::format::Item::Error));
-        if bad_format {
-            p.push(format!("{}: not a usable time format", key("cycle_format")));
-        }
-        for r in &f.link_roots {
-            if !r.is_absolute() {
-                p.push(format!(
-                    "{}: {} must be an absolute directory",
-                    key("link_roots"),
-                    crate::escape::path(r)
-                ));
-            } else if r.parent().is_none() {
-                p.push(format!(
-                    "{}: \"/\" would let links point anywhere; say follow_links = \"anywhere\" instead",
-                    key("link_roots")
-                ));
-            }
-        }
-        if !f.link_roots.is_empty() && f.follow_links != FollowLinks::Inside {
+        } else if r.parent().is_none() {
             p.push(format!(
-                "{}: only used with follow_links = \"inside\"",
+                "{}: \"/\" would let links point anywhere; say follow_links = \"anywhere\" instead",
                 key("link_roots")
             ));
         }
     }
-    p
+    if !f.link_roots.is_empty() && f.follow_links != FollowLinks::Inside {
+        p.push(format!(
+            "{}: only used with follow_links = \"inside\"",
+            key("link_roots")
+        ));
+    }
 }
 
 /// The directories a feed list watches, for messages.
@@ -692,6 +730,38 @@ mod tests {
     fn rule(toml_feed: &str) -> FeedRule {
         let f: Feed = toml::from_str(toml_feed).unwrap();
         FeedRule::new(&f, &Service::default(), &Products::default()).unwrap()
+    }
+
+    #[test]
+    fn every_group_of_checks_speaks_for_its_own_keys() {
+        // One planted error per named check (leeward's own rules); each must
+        // be reported by its key, and a clean service and feed by none.
+        let clean: Feed =
+            toml::from_str("name = \"m\"\ncomplete = \"files\"\nfiles_per_step = 1\n").unwrap();
+        let none = problems(&Service::default(), &[clean]);
+        assert!(none.is_empty(), "{none:?}");
+        let mut s = Service {
+            workers: 0,
+            ..Service::default()
+        };
+        s.slurm.time_limit = "soon".into();
+        s.out_dir = s.watch_dir.join("products");
+        let bad: Feed = toml::from_str(
+            "name = \"a b\"\ncomplete = \"marker\"\nrequire = [\"no such field\"]\nlink_roots = [\"relative\"]\nfollow_links = \"inside\"\n",
+        )
+        .unwrap();
+        let p = problems(&s, &[bad]);
+        for key in [
+            "service.workers",
+            "service.slurm.time_limit",
+            "service.out_dir",
+            "feed[0].name",
+            "feed[0].marker_pattern",
+            "feed[0].require[0]",
+            "feed[0].link_roots",
+        ] {
+            assert!(p.iter().any(|x| x.starts_with(key)), "{key}: {p:?}");
+        }
     }
 
     #[test]
