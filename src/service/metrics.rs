@@ -134,13 +134,16 @@ impl Metrics {
     /// The Prometheus text exposition.
     pub fn render(&self) -> String {
         let mut o = String::new();
-        let mut family = |name: &str, kind: &str, help: &str, rows: Vec<(String, String)>| {
-            o.push_str(&format!("# HELP {name} {help}\n# TYPE {name} {kind}\n"));
-            for (labels, v) in rows {
-                o.push_str(&format!("{name}{labels} {v}\n"));
-            }
-        };
+        self.render_feeds(&mut o);
+        self.render_latency(&mut o);
+        self.render_service(&mut o);
+        o
+    }
+
+    /// The build, the start and each feed's counters and gauges.
+    fn render_feeds(&self, o: &mut String) {
         family(
+            o,
             "leeward_build_info",
             "gauge",
             "leeward version.",
@@ -150,6 +153,7 @@ impl Metrics {
             )],
         );
         family(
+            o,
             "leeward_start_time_seconds",
             "gauge",
             "Unix time the service started.",
@@ -165,6 +169,7 @@ impl Metrics {
                 .collect()
         };
         family(
+            o,
             "leeward_steps_published_total",
             "counter",
             "Steps published, complete or partial (made at the timeout with what was there).",
@@ -179,6 +184,7 @@ impl Metrics {
             }),
         );
         family(
+            o,
             "leeward_steps_failed_total",
             "counter",
             "Steps that produced nothing, by reason: missing (incomplete at the timeout), input, output (retried), internal, skipped (older than catch_up_hours).",
@@ -196,36 +202,42 @@ impl Metrics {
             }),
         );
         family(
+            o,
             "leeward_step_retries_total",
             "counter",
             "Retries scheduled after a step could not be written or its input read.",
             per(&|c| vec![(String::new(), c.retries.to_string())]),
         );
         family(
+            o,
             "leeward_files_quarantined_total",
             "counter",
             "Input files set aside as corrupt or unsupported.",
             per(&|c| vec![(String::new(), c.quarantined.to_string())]),
         );
         family(
+            o,
             "leeward_files_seen_total",
             "counter",
             "Input files found finished and catalogued.",
             per(&|c| vec![(String::new(), c.files_seen.to_string())]),
         );
         family(
+            o,
             "leeward_late_files_total",
             "counter",
             "Input files that arrived after their step was made and were not used (cycle older than catch_up_hours, or the step's other inputs gone; reprocess to use them).",
             per(&|c| vec![(String::new(), c.late_files.to_string())]),
         );
         family(
+            o,
             "leeward_steps_remade_total",
             "counter",
             "Steps made again because more input came after, or while, they were made (each a new revision of its manifest).",
             per(&|c| vec![(String::new(), c.remade.to_string())]),
         );
         family(
+            o,
             "leeward_queue_steps",
             "gauge",
             "Steps by phase: waiting for input, ready, running, waiting to retry.",
@@ -239,6 +251,7 @@ impl Metrics {
             }),
         );
         family(
+            o,
             "leeward_last_success_timestamp_seconds",
             "gauge",
             "Unix time of the feed's last publication (0: none yet).",
@@ -250,6 +263,7 @@ impl Metrics {
             }),
         );
         family(
+            o,
             "leeward_last_publish_latency_seconds",
             "gauge",
             "Seconds from the last input file of the last published step to its publication.",
@@ -260,82 +274,93 @@ impl Metrics {
                 )]
             }),
         );
-        let mut hist = String::new();
-        hist.push_str("# HELP leeward_publish_latency_seconds Seconds from a step's last input file to its publication.\n# TYPE leeward_publish_latency_seconds histogram\n");
+    }
+
+    /// Each feed's histogram of publication latency.
+    fn render_latency(&self, o: &mut String) {
+        o.push_str("# HELP leeward_publish_latency_seconds Seconds from a step's last input file to its publication.\n# TYPE leeward_publish_latency_seconds histogram\n");
         for (n, c) in &self.feeds {
             let mut cum = 0;
             for (k, b) in LATENCY_BUCKETS.iter().enumerate() {
                 cum += c.latency_counts[k];
-                hist.push_str(&format!(
+                o.push_str(&format!(
                     "leeward_publish_latency_seconds_bucket{{feed=\"{}\",le=\"{b}\"}} {cum}\n",
                     esc(n)
                 ));
             }
             cum += c.latency_counts[LATENCY_BUCKETS.len()];
-            hist.push_str(&format!(
+            o.push_str(&format!(
                 "leeward_publish_latency_seconds_bucket{{feed=\"{0}\",le=\"+Inf\"}} {cum}\nleeward_publish_latency_seconds_sum{{feed=\"{0}\"}} {1:.3}\nleeward_publish_latency_seconds_count{{feed=\"{0}\"}} {cum}\n",
                 esc(n),
                 c.latency_sum
             ));
         }
-        o.push_str(&hist);
-        let mut family = |name: &str, kind: &str, help: &str, v: String| {
-            o.push_str(&format!(
-                "# HELP {name} {help}\n# TYPE {name} {kind}\n{name} {v}\n"
-            ));
-        };
+    }
+
+    /// The scheduler's, the ledger's, the state directory's and the
+    /// configuration's own figures.
+    fn render_service(&self, o: &mut String) {
         if self.scheduler.used {
             let c = &self.scheduler;
-            family(
+            single(
+                o,
                 "leeward_scheduler_up",
                 "gauge",
                 "1 when the batch scheduler's commands answered at the last try.",
                 u8::from(c.reachable).to_string(),
             );
-            family(
+            single(
+                o,
                 "leeward_scheduler_jobs_in_flight",
                 "gauge",
                 "Step jobs submitted and not yet published or ended.",
                 c.in_flight.to_string(),
             );
-            family(
+            single(
+                o,
                 "leeward_scheduler_jobs_submitted_total",
                 "counter",
                 "Step jobs submitted to the scheduler.",
                 c.submitted.to_string(),
             );
-            family(
+            single(
+                o,
                 "leeward_scheduler_job_retries_total",
                 "counter",
                 "Step jobs submitted again after a run ended without a result.",
                 c.retries.to_string(),
             );
-            family(
+            single(
+                o,
                 "leeward_scheduler_local_fallback_total",
                 "counter",
                 "Steps of scheduler feeds run on this machine because the scheduler was unusable.",
                 c.local_fallback.to_string(),
             );
         }
-        family(
+        single(
+            o,
             "leeward_ledger_errors_total",
             "counter",
             "Failures to write the ledger in the state directory.",
             self.ledger_errors.to_string(),
         );
-        family(
+        single(
+            o,
             "leeward_state_dir_usable",
             "gauge",
             "1 while the state directory and its ledger are this service's and writable; 0 while not (no new work is taken).",
             u8::from(self.state_problem.is_none()).to_string(),
         );
-        family(
+        single(
+            o,
             "leeward_config_reloads_total",
             "counter",
             "Configuration reloads accepted (SIGHUP).",
             self.reloads.0.to_string(),
         );
-        family(
+        single(
+            o,
             "leeward_config_reloads_refused_total",
             "counter",
             "Configuration reloads refused because the new file was invalid.",
@@ -356,8 +381,22 @@ impl Metrics {
                 ));
             }
         }
-        o
     }
+}
+
+/// One metric family of labelled rows, in the Prometheus text format.
+fn family(o: &mut String, name: &str, kind: &str, help: &str, rows: Vec<(String, String)>) {
+    o.push_str(&format!("# HELP {name} {help}\n# TYPE {name} {kind}\n"));
+    for (labels, v) in rows {
+        o.push_str(&format!("{name}{labels} {v}\n"));
+    }
+}
+
+/// One metric family of a single unlabelled value.
+fn single(o: &mut String, name: &str, kind: &str, help: &str, v: String) {
+    o.push_str(&format!(
+        "# HELP {name} {help}\n# TYPE {name} {kind}\n{name} {v}\n"
+    ));
 }
 
 /// How long the main loop may be silent before /health says 503.
