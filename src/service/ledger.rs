@@ -495,35 +495,19 @@ impl State {
                 steps,
                 digests,
                 at,
-            } => {
-                for s in steps {
-                    self.step_mut(s, *at);
-                    let g = self.grids.entry(feed.clone()).or_default();
-                    if !g.contains(&s.grid) {
-                        g.push(s.grid.clone());
-                    }
-                }
-                self.seen.insert(
-                    file.clone(),
-                    SeenFile {
-                        feed: feed.clone(),
-                        size: *size,
-                        mtime_ns: *mtime_ns,
-                        checksum: checksum.clone(),
-                        steps: steps.clone(),
-                        digests: digests.clone(),
-                        at: *at,
-                    },
-                );
-            }
-            Record::Reopened { step, in_hand, .. } => {
-                let s = self.step_mut(step, 0);
-                if *in_hand {
-                    s.more = true;
-                } else {
-                    s.reopen();
-                }
-            }
+            } => self.on_seen(
+                file,
+                SeenFile {
+                    feed: feed.clone(),
+                    size: *size,
+                    mtime_ns: *mtime_ns,
+                    checksum: checksum.clone(),
+                    steps: steps.clone(),
+                    digests: digests.clone(),
+                    at: *at,
+                },
+            ),
+            Record::Reopened { step, in_hand, .. } => self.on_reopened(step, *in_hand),
             Record::Published {
                 step,
                 path,
@@ -532,17 +516,13 @@ impl State {
                 at,
             } => {
                 self.publishing.remove(step);
-                let s = self.step_mut(step, *at);
-                s.job = None;
-                s.outcome = Outcome::Published {
+                let outcome = Outcome::Published {
                     path: path.clone(),
                     manifest: manifest.clone(),
                     partial: *partial,
                     at: *at,
                 };
-                if s.more {
-                    s.reopen();
-                }
+                self.on_ended(step, outcome, *at, true);
             }
             Record::Failed {
                 step,
@@ -550,16 +530,13 @@ impl State {
                 reason,
                 at,
             } => {
-                let s = self.step_mut(step, *at);
-                s.job = None;
-                s.outcome = Outcome::Failed {
+                let outcome = Outcome::Failed {
                     kind: *kind,
                     reason: reason.clone(),
                     at: *at,
                 };
-                if s.more && *kind != FailKind::Output {
-                    s.reopen();
-                }
+                // An output failure is retried as it is: more input waits for it.
+                self.on_ended(step, outcome, *at, *kind != FailKind::Output);
             }
             Record::Quarantined {
                 feed,
@@ -584,16 +561,15 @@ impl State {
                 staging,
                 attempt,
                 at,
-            } => {
-                let s = self.step_mut(step, *at);
-                s.job = Some(JobRef {
+            } => self.on_submitted(
+                step,
+                JobRef {
                     job: job.clone(),
                     staging: staging.clone(),
                     attempt: *attempt,
                     at: *at,
-                });
-                s.job_attempts = s.job_attempts.max(*attempt);
-            }
+                },
+            ),
             Record::JobEnded { step, job, .. } => {
                 if let Some(s) = self.steps.get_mut(step) {
                     if s.job.as_ref().is_some_and(|j| &j.job == job) {
@@ -631,16 +607,11 @@ impl State {
                 job_attempts,
             } => {
                 let s = self.step_mut(step, *first_seen);
-                s.first_seen = *first_seen;
-                s.job_attempts = *job_attempts;
-                s.more = false;
+                (s.first_seen, s.job_attempts, s.more) = (*first_seen, *job_attempts, false);
             }
             Record::Grids { feed, grids } => {
-                let g = self.grids.entry(feed.clone()).or_default();
                 for x in grids {
-                    if !g.contains(x) {
-                        g.push(x.clone());
-                    }
+                    self.know_grid(feed, x);
                 }
             }
             Record::Reprocess {
@@ -648,26 +619,72 @@ impl State {
                 cycle,
                 lead,
                 at,
-            } => {
-                for (tag, st) in self.steps.iter_mut() {
-                    if &tag.feed == feed
-                        && &tag.cycle == cycle
-                        && lead.is_none_or(|l| l == tag.lead)
-                    {
-                        st.outcome = Outcome::Waiting;
-                        st.first_seen = *at;
-                        st.job_attempts = 0;
-                    }
-                }
-                // Files of the cycle are looked at again.
-                self.seen.retain(|_, f| {
-                    !(f.feed == *feed
-                        && f.steps
-                            .iter()
-                            .any(|t| &t.cycle == cycle && lead.is_none_or(|l| l == t.lead)))
-                });
+            } => self.on_reprocess(feed, cycle, *lead, *at),
+        }
+    }
+
+    /// A file catalogued: its steps known, their grids kept, the file remembered.
+    fn on_seen(&mut self, file: &str, f: SeenFile) {
+        for s in &f.steps {
+            self.step_mut(s, f.at);
+            self.know_grid(&f.feed, &s.grid);
+        }
+        self.seen.insert(file.to_string(), f);
+    }
+
+    /// A grid the feed uses, kept once.
+    fn know_grid(&mut self, feed: &str, grid: &str) {
+        let g = self.grids.entry(feed.to_string()).or_default();
+        if !g.iter().any(|x| x == grid) {
+            g.push(grid.to_string());
+        }
+    }
+
+    /// More input for a step: made again at once, or after the making in
+    /// hand (`in_hand`) ends.
+    fn on_reopened(&mut self, step: &StepTag, in_hand: bool) {
+        let s = self.step_mut(step, 0);
+        if in_hand {
+            s.more = true;
+        } else {
+            s.reopen();
+        }
+    }
+
+    /// A step's job submitted to the scheduler.
+    fn on_submitted(&mut self, step: &StepTag, j: JobRef) {
+        let s = self.step_mut(step, j.at);
+        s.job_attempts = s.job_attempts.max(j.attempt);
+        s.job = Some(j);
+    }
+
+    /// A step published or failed: no job any more, its outcome set, and made
+    /// again if more input came meanwhile and `reopen` allows.
+    fn on_ended(&mut self, step: &StepTag, outcome: Outcome, at: i64, reopen: bool) {
+        let s = self.step_mut(step, at);
+        s.job = None;
+        s.outcome = outcome;
+        if s.more && reopen {
+            s.reopen();
+        }
+    }
+
+    /// A reprocess request: the cycle's (or one lead's) steps wait again and
+    /// their files are looked at again.
+    fn on_reprocess(&mut self, feed: &str, cycle: &str, lead: Option<i64>, at: i64) {
+        for (tag, st) in self.steps.iter_mut() {
+            if tag.feed == feed && tag.cycle == cycle && lead.is_none_or(|l| l == tag.lead) {
+                st.outcome = Outcome::Waiting;
+                st.first_seen = at;
+                st.job_attempts = 0;
             }
         }
+        self.seen.retain(|_, f| {
+            !(f.feed == feed
+                && f.steps
+                    .iter()
+                    .any(|t| t.cycle == cycle && lead.is_none_or(|l| l == t.lead)))
+        });
     }
 
     /// Records that replay into this very state: what a ledger written anew
@@ -1600,6 +1617,36 @@ mod tests {
         assert!(l.state.settled(&tag(6)));
         assert_eq!(read_state(&d).unwrap(), l.state);
         let _ = std::fs::remove_dir_all(&d);
+    }
+
+    #[test]
+    fn more_input_during_a_failed_run_reopens_the_step_unless_the_output_failed() {
+        // An input failure with more input in hand is made again with it; an
+        // output failure keeps its outcome (its retry is the output's, on a
+        // timer) and the reopening waits (leeward's own rules).
+        for (kind, reopened) in [(FailKind::Input, true), (FailKind::Output, false)] {
+            let mut st = State::default();
+            st.apply(&Record::Reopened {
+                step: tag(6),
+                file: "/in/a".into(),
+                in_hand: true,
+                at: 10,
+            });
+            st.apply(&Record::Failed {
+                step: tag(6),
+                kind,
+                reason: "r".into(),
+                at: 20,
+            });
+            let s = &st.steps[&tag(6)];
+            assert_eq!(
+                matches!(s.outcome, Outcome::Waiting),
+                reopened,
+                "{kind:?}: {:?}",
+                s.outcome
+            );
+            assert_eq!(s.more, !reopened, "{kind:?}");
+        }
     }
 
     #[test]
