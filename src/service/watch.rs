@@ -146,6 +146,121 @@ fn note_skip(said: &mut HashMap<PathBuf, String>, p: &Path, level: tracing::Leve
     said.insert(p.to_path_buf(), why);
 }
 
+/// The watching thread's memory of one directory.
+struct Watching {
+    dir: PathBuf,
+    settle: Duration,
+    /// Files seen and not yet finished.
+    cands: HashMap<PathBuf, Candidate>,
+    /// Files handed out, with the size and time they had then.
+    emitted: HashMap<PathBuf, (u64, Option<SystemTime>)>,
+    /// Entries skipped, with the reason already logged.
+    said: HashMap<PathBuf, String>,
+}
+
+fn fresh(size: u64, mtime: Option<SystemTime>) -> Candidate {
+    Candidate {
+        size,
+        mtime,
+        since: Instant::now(),
+        closed: false,
+    }
+}
+
+impl Watching {
+    /// List the directory: new files become candidates, skipped entries are
+    /// logged once, and files gone from it are forgotten, so that months of
+    /// deliveries do not accumulate here.
+    fn scan(&mut self) {
+        let t_scan = Instant::now();
+        let rd = match std::fs::read_dir(&self.dir) {
+            Ok(rd) => rd,
+            Err(e) => {
+                warn!(dir = %self.dir.display(), error = %e, "cannot scan the incoming directory");
+                return;
+            }
+        };
+        let mut present = std::collections::HashSet::new();
+        for e in rd.flatten() {
+            let p = e.path();
+            present.insert(p.clone());
+            if self.cands.contains_key(&p) {
+                continue;
+            }
+            match look(&p) {
+                Some(Look::Candidate(size, mtime)) => {
+                    self.said.remove(&p);
+                    if self.emitted.get(&p) != Some(&(size, mtime)) {
+                        self.cands.insert(p, fresh(size, mtime));
+                    }
+                }
+                Some(Look::Skipped(level, why)) => note_skip(&mut self.said, &p, level, why),
+                None => {}
+            }
+        }
+        self.emitted.retain(|p, _| present.contains(p));
+        self.said.retain(|p, _| present.contains(p));
+        debug!(dir = %self.dir.display(), files = present.len(), pending = self.cands.len(), seconds = t_scan.elapsed().as_secs_f64(), "incoming directory scanned");
+    }
+
+    /// An inotify event: its files become (or stay) candidates; a close after
+    /// writing or a rename into the directory marks them finished.
+    fn on_event(&mut self, ev: notify::Event) {
+        let finished = matches!(
+            ev.kind,
+            EventKind::Access(AccessKind::Close(AccessMode::Write))
+                | EventKind::Modify(ModifyKind::Name(RenameMode::To))
+                | EventKind::Modify(ModifyKind::Name(RenameMode::Both))
+        );
+        for p in ev.paths {
+            let (size, mtime) = match look(&p) {
+                Some(Look::Candidate(size, mtime)) => (size, mtime),
+                Some(Look::Skipped(level, why)) => {
+                    note_skip(&mut self.said, &p, level, why);
+                    continue;
+                }
+                None => continue,
+            };
+            let c = self.cands.entry(p).or_insert(fresh(size, mtime));
+            if (c.size, c.mtime) != (size, mtime) {
+                *c = fresh(size, mtime);
+            }
+            c.closed |= finished;
+        }
+    }
+
+    /// Look at every candidate again: one that changed starts over, one
+    /// closed or unchanged for the settle time is handed out once for its
+    /// size and time. False when nobody listens any more.
+    fn pass(&mut self, out_tx: &Sender<PathBuf>) -> bool {
+        let mut done = Vec::new();
+        for (p, c) in self.cands.iter_mut() {
+            match look(p) {
+                None | Some(Look::Skipped(..)) => done.push((p.clone(), None)),
+                Some(Look::Candidate(size, mtime)) => {
+                    if (size, mtime) != (c.size, c.mtime) {
+                        *c = fresh(size, mtime);
+                    } else if c.closed || c.since.elapsed() >= self.settle {
+                        done.push((p.clone(), Some((size, mtime))));
+                    }
+                }
+            }
+        }
+        for (p, st) in done {
+            self.cands.remove(&p);
+            if let Some(st) = st {
+                if self.emitted.get(&p) != Some(&st) {
+                    self.emitted.insert(p.clone(), st);
+                    if out_tx.send(p).is_err() {
+                        return false;
+                    }
+                }
+            }
+        }
+        true
+    }
+}
+
 /// Start watching `dir`.
 pub fn watch(
     dir: &Path,
@@ -154,23 +269,25 @@ pub fn watch(
 ) -> Result<FinishedFiles, WatchError> {
     let dir = dir.to_path_buf();
     let (ev_tx, ev_rx) = channel::<notify::Result<notify::Event>>();
-    let mut watcher = notify::recommended_watcher(ev_tx).map_err(|source| WatchError::Notify {
+    let notify_err = |source| WatchError::Notify {
         path: dir.clone(),
         source,
-    })?;
+    };
+    let mut watcher = notify::recommended_watcher(ev_tx).map_err(notify_err)?;
     watcher
         .watch(&dir, RecursiveMode::NonRecursive)
-        .map_err(|source| WatchError::Notify {
-            path: dir.clone(),
-            source,
-        })?;
+        .map_err(notify_err)?;
     let (out_tx, out_rx) = channel();
     let (stop_tx, stop_rx) = channel();
     let thread = std::thread::spawn(move || {
         let _watcher = watcher; // lives as long as the thread
-        let mut cands: HashMap<PathBuf, Candidate> = HashMap::new();
-        let mut emitted: HashMap<PathBuf, (u64, Option<SystemTime>)> = HashMap::new();
-        let mut said: HashMap<PathBuf, String> = HashMap::new();
+        let mut w = Watching {
+            dir,
+            settle,
+            cands: HashMap::new(),
+            emitted: HashMap::new(),
+            said: HashMap::new(),
+        };
         let mut last_scan: Option<Instant> = None;
         let mut last_pass = Instant::now();
         loop {
@@ -178,89 +295,17 @@ pub fn watch(
                 return;
             }
             if last_scan.is_none_or(|t| t.elapsed() >= scan_every) {
-                let t_scan = Instant::now();
-                last_scan = Some(t_scan);
-                match std::fs::read_dir(&dir) {
-                    Ok(rd) => {
-                        let mut present = std::collections::HashSet::new();
-                        for e in rd.flatten() {
-                            let p = e.path();
-                            present.insert(p.clone());
-                            if cands.contains_key(&p) {
-                                continue;
-                            }
-                            match look(&p) {
-                                Some(Look::Candidate(size, mtime)) => {
-                                    said.remove(&p);
-                                    if emitted.get(&p) != Some(&(size, mtime)) {
-                                        cands.insert(
-                                            p,
-                                            Candidate {
-                                                size,
-                                                mtime,
-                                                since: Instant::now(),
-                                                closed: false,
-                                            },
-                                        );
-                                    }
-                                }
-                                Some(Look::Skipped(level, why)) => {
-                                    note_skip(&mut said, &p, level, why)
-                                }
-                                None => {}
-                            }
-                        }
-                        // Files gone from the directory are forgotten, so that
-                        // months of deliveries do not accumulate here.
-                        emitted.retain(|p, _| present.contains(p));
-                        said.retain(|p, _| present.contains(p));
-                        debug!(dir = %dir.display(), files = present.len(), pending = cands.len(), seconds = t_scan.elapsed().as_secs_f64(), "incoming directory scanned");
-                    }
-                    Err(e) => {
-                        warn!(dir = %dir.display(), error = %e, "cannot scan the incoming directory")
-                    }
-                }
+                last_scan = Some(Instant::now());
+                w.scan();
             }
             let mut evented = false;
             match ev_rx.recv_timeout(Duration::from_millis(50)) {
                 Ok(Ok(ev)) => {
                     evented = true;
-                    let finished = matches!(
-                        ev.kind,
-                        EventKind::Access(AccessKind::Close(AccessMode::Write))
-                            | EventKind::Modify(ModifyKind::Name(RenameMode::To))
-                            | EventKind::Modify(ModifyKind::Name(RenameMode::Both))
-                    );
-                    for p in ev.paths {
-                        let (size, mtime) = match look(&p) {
-                            Some(Look::Candidate(size, mtime)) => (size, mtime),
-                            Some(Look::Skipped(level, why)) => {
-                                note_skip(&mut said, &p, level, why);
-                                continue;
-                            }
-                            None => continue,
-                        };
-                        {
-                            let c = cands.entry(p).or_insert(Candidate {
-                                size,
-                                mtime,
-                                since: Instant::now(),
-                                closed: false,
-                            });
-                            if (c.size, c.mtime) != (size, mtime) {
-                                *c = Candidate {
-                                    size,
-                                    mtime,
-                                    since: Instant::now(),
-                                    closed: false,
-                                };
-                            }
-                            c.closed |= finished;
-                        }
-                    }
+                    w.on_event(ev);
                 }
                 Ok(Err(e)) => {
-                    warn!(dir = %dir.display(), error = %e, "watch event error; the periodic scan goes on")
+                    warn!(dir = %w.dir.display(), error = %e, "watch event error; the periodic scan goes on")
                 }
                 Err(RecvTimeoutError::Timeout) => {}
                 Err(RecvTimeoutError::Disconnected) => return,
@@ -271,34 +316,8 @@ pub fn watch(
                 continue;
             }
             last_pass = Instant::now();
-            let mut done = Vec::new();
-            for (p, c) in cands.iter_mut() {
-                match look(p) {
-                    None | Some(Look::Skipped(..)) => done.push((p.clone(), None)),
-                    Some(Look::Candidate(size, mtime)) => {
-                        if (size, mtime) != (c.size, c.mtime) {
-                            *c = Candidate {
-                                size,
-                                mtime,
-                                since: Instant::now(),
-                                closed: false,
-                            };
-                        } else if c.closed || c.since.elapsed() >= settle {
-                            done.push((p.clone(), Some((size, mtime))));
-                        }
-                    }
-                }
-            }
-            for (p, st) in done {
-                cands.remove(&p);
-                if let Some(st) = st {
-                    if emitted.get(&p) != Some(&st) {
-                        emitted.insert(p.clone(), st);
-                        if out_tx.send(p).is_err() {
-                            return;
-                        }
-                    }
-                }
+            if !w.pass(&out_tx) {
+                return;
             }
         }
     });
