@@ -14,9 +14,8 @@ use tracing_subscriber::EnvFilter;
 
 use crate::config::Config;
 use crate::escape::shown;
-use crate::pipeline::{
-    grid_suffixes, index_input, load_step_input, plan, run_step, Destination, Issue, StepReport,
-};
+use crate::pipeline::{grid_suffixes, index_input, load_step_input, plan, Issue, StepReport};
+use crate::products::{run_step, Destination};
 
 /// Exit codes of every command.
 pub mod exit {

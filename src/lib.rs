@@ -31,5 +31,6 @@ pub mod geometry;
 pub mod ingest;
 pub mod output;
 pub mod pipeline;
+pub mod products;
 pub mod recent;
 pub mod service;

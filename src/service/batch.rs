@@ -33,7 +33,8 @@ use super::ledger::{Journal, StepTag};
 use super::publish::{self, StepFacts, Timings};
 use super::settings::Slurm;
 use crate::config::Config;
-use crate::pipeline::{run_step, Destination, Issue, StepKey, StepReport};
+use crate::pipeline::{Issue, StepKey, StepReport};
+use crate::products::{run_step, Destination};
 
 /// The job's spec, written by the service.
 pub const SPEC: &str = "spec.json";

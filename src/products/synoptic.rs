@@ -85,6 +85,31 @@ pub(super) fn relative_humidity<'a>(
     Some(Cow::Owned(out))
 }
 
+/// The Eady growth rate of its layer and the steering wind, into `surface`, as the
+/// products ask (`both`: the step has temperature and winds); a layer the levels do not
+/// cover is said in `missing`.
+pub(super) fn eady_and_steering(
+    s: &Stacks<'_>,
+    cfg: &crate::config::Config,
+    both: bool,
+    surface: &mut Vec<Product>,
+    missing: &mut Vec<String>,
+) {
+    if cfg.products.eady && both {
+        match eady(s, cfg.cyclones.eady_layer_hpa) {
+            Ok(p) => surface.push(p),
+            Err(m) => missing.push(m),
+        }
+    }
+    if cfg.products.cyclones {
+        surface.extend(
+            steering(s, cfg.cyclones.steering_layer_hpa)
+                .into_iter()
+                .flatten(),
+        );
+    }
+}
+
 /// Equivalent potential temperature on every level (Bolton 1980).
 pub(super) fn theta_e(s: &Stacks<'_>) -> Option<Product> {
     let (t, rh) = (s.t?, s.rh?);
