@@ -1,6 +1,6 @@
 //! One cycle step end to end: catalogue, group, decode, compute, write.
 //!
-//! In: GRIB2 files (paths), a [`Config`] and an output directory. Out: one
+//! In: GRIB2 files (paths), a [`Config`](crate::config::Config) and an output directory. Out: one
 //! NetCDF file per (cycle, step, grid) and a [`StepReport`] for each, plus the
 //! [`Issue`]s met on the way (file, field, reason). Shared by `leeward process`
 //! and the service. A bad file or field is reported and skipped; the rest of
@@ -389,7 +389,7 @@ pub struct StepReport {
     pub output_failed: bool,
 }
 
-/// True for the fields a step's products may use, as [`inventory`] sorts
+/// True for the fields a step's products may use, as `products::inputs::inventory` sorts
 /// them: quantities leeward knows on isobaric levels, surface pressure or
 /// orography at the ground, and mean sea-level pressure.
 pub fn may_use(e: &FieldEntry) -> bool {

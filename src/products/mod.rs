@@ -4,14 +4,14 @@
 //! configuration and a [`Destination`]. Out: the step's NetCDF file, the changes it adds
 //! to files published before, its images, and a [`StepReport`]. Stages, each a module:
 //!
-//! - [`inputs`]: the step's fields sorted by quantity and level, decoded;
-//! - [`needs`]: which families the input allows and which fields they need;
-//! - [`columns`]: the quantities stacked on the product levels, masked below the ground;
-//! - [`winds`]: the winds along the grid's axes;
-//! - the families: [`vorticity`], [`isobaric_pv`], [`tropopause`], [`isentropic`],
-//!   [`layer_pv`], [`thickness`] and [`synoptic`] (the fields round a cyclone), each
-//!   product packed by [`seal`] as soon as it is made;
-//! - [`publish`]: the changes in time, the file, the budgets, the tracks, the images and
+//! - `inputs`: the step's fields sorted by quantity and level, decoded;
+//! - `needs`: which families the input allows and which fields they need;
+//! - `columns`: the quantities stacked on the product levels, masked below the ground;
+//! - `winds`: the winds along the grid's axes;
+//! - the families: `vorticity`, `isobaric_pv`, `tropopause`, `isentropic`,
+//!   `layer_pv`, `thickness` and `synoptic` (the fields round a cyclone), each
+//!   product packed by `seal` as soon as it is made;
+//! - `publish`: the changes in time, the file, the budgets, the tracks, the images and
 //!   the caller's hook, under the caller's lock.
 //!
 //! The formulas themselves are the pure functions of [`crate::diagnostics`].
@@ -71,7 +71,7 @@ pub struct Destination<'a> {
     pub on_published: Option<&'a PublishHook<'a>>,
     /// A batch job's staging directory: the step's file and images are
     /// written there instead of `dir`, and additions to files already
-    /// published go to staged copies there (see [`changes::Run::staged`]);
+    /// published go to staged copies there (see [`crate::changes::Run::staged`]);
     /// the service moves them into place. Nothing published is touched.
     pub stage: Option<&'a Path>,
 }

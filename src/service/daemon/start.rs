@@ -1,0 +1,202 @@
+//! Starting `leeward serve`: settings checked, the state directory locked and its
+//! ledger replayed, directories prepared, the metrics endpoint and signal handling
+//! started, unfinished publications and jobs of an earlier run followed.
+
+use super::*;
+
+/// Run the service until SIGTERM or SIGINT. Returns the exit code.
+pub fn serve(opts: ServeOptions) -> u8 {
+    child::set_log_format(&opts.log_format);
+    match start(opts) {
+        // The hold on the state directory lives as long as the loop.
+        Ok((_held, d, signals)) => run(d, signals),
+        Err(code) => code,
+    }
+}
+
+/// Refuse to start: the reason on standard error, the configuration's exit code.
+pub(super) fn refuse(e: &dyn std::fmt::Display) -> u8 {
+    eprintln!("leeward: {e}");
+    code::CONFIG
+}
+
+/// Everything before the loop: the configuration, the state directory held,
+/// the ledger, the output tree, the metrics endpoint, the signals, then the
+/// recovery of publications and jobs and the watchers' first scan.
+pub(super) fn start(
+    opts: ServeOptions,
+) -> Result<(std::os::unix::net::UnixListener, Daemon, Receiver<Event>), u8> {
+    let cfg = load(&opts).map_err(|e| {
+        error!(error = %e, "cannot start");
+        refuse(&e)
+    })?;
+    let (rules, feed_cfgs) = rules_of(&cfg).map_err(|e| refuse(&e))?;
+    let (held, ledger) = open_state(&cfg.service.state_dir)?;
+    prepare_dirs(&cfg.service);
+    crate::output::limit_hdf5_free_lists();
+    let removed = publish::clean_temporaries(&cfg.service.out_dir);
+    let metrics = start_metrics(&cfg.service, &rules);
+    let sig_rx = signal_events().map_err(|e| refuse(&format!("cannot handle signals: {e}")))?;
+    let (done_tx, done_rx) = channel();
+    let mut d = Daemon {
+        opts,
+        cfg,
+        rules,
+        feed_cfgs,
+        ledger,
+        asm: Assembly::default(),
+        watchers: Vec::new(),
+        metrics,
+        notifier: Notifier::from_env(),
+        done_tx,
+        done_rx,
+        pool: Pool::new("leeward-worker"),
+        running: HashMap::new(),
+        jobs: HashMap::new(),
+        sched_down: None,
+        sched_retry: Instant::now(),
+        last_poll: Instant::now(),
+        locks: HashMap::new(),
+        too_old: BTreeSet::new(),
+        last_status: String::new(),
+        last_published: None,
+        last_ping: Instant::now(),
+        growing: HashMap::new(),
+        last_waiting: Vec::new(),
+        state_problem: None,
+    };
+    d.begin(removed);
+    Ok((held, d, sig_rx))
+}
+
+/// Hold the state directory (one service per directory: a hold that survives
+/// the directory's removal, and the lock file that `leeward status` reads)
+/// and open its ledger.
+pub(super) fn open_state(sdir: &Path) -> Result<(std::os::unix::net::UnixListener, Ledger), u8> {
+    let held = crate::service::ledger::hold_state_dir(sdir).map_err(|e| {
+        if e.kind() == std::io::ErrorKind::AddrInUse {
+            refuse(&format!(
+                "another leeward serve is using the state directory {}",
+                sdir.display()
+            ))
+        } else {
+            refuse(&format!(
+                "cannot hold the state directory {}: {e}",
+                sdir.display()
+            ))
+        }
+    })?;
+    std::fs::create_dir_all(requests_dir(sdir)).map_err(|e| {
+        refuse(&format!(
+            "cannot use the state directory {}: {e}",
+            sdir.display()
+        ))
+    })?;
+    let lock = crate::service::ledger::take_lock(sdir).map_err(|e| refuse(&e))?;
+    let mut ledger = Ledger::open(sdir).map_err(|e| refuse(&e))?;
+    ledger.hold(lock).map_err(|e| refuse(&e))?;
+    Ok((held, ledger))
+}
+
+/// The quarantine and the output tree; neither is fatal when it fails.
+pub(super) fn prepare_dirs(svc: &crate::service::settings::Service) {
+    if svc.quarantine == QuarantineMode::Move {
+        if let Err(e) = std::fs::create_dir_all(svc.quarantine_dir()) {
+            warn!(dir = %svc.quarantine_dir().display(), error = %e, "cannot create the quarantine directory; bad files are recorded only");
+        }
+    }
+    if let Err(e) = std::fs::create_dir_all(&svc.out_dir) {
+        // Not fatal: the output may come back (a mount); steps are retried.
+        error!(dir = %svc.out_dir.display(), error = %e, "output directory unusable; steps will be retried");
+    }
+}
+
+/// The service's metrics, one entry per feed, served at `metrics_listen` if set.
+pub(super) fn start_metrics(
+    svc: &crate::service::settings::Service,
+    rules: &[FeedRule],
+) -> Arc<Mutex<Metrics>> {
+    let metrics = Arc::new(Mutex::new(Metrics {
+        started: unix_now(),
+        heartbeat: Some(Instant::now()),
+        ..Metrics::default()
+    }));
+    for r in rules {
+        let mut m = metrics
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        m.feed(&r.feed.name);
+        if r.feed.executor == Executor::Slurm {
+            m.scheduler.used = true;
+            m.scheduler.reachable = true;
+        }
+    }
+    if !svc.metrics_listen.is_empty() {
+        if let Err(e) = crate::service::metrics::serve(&svc.metrics_listen, metrics.clone()) {
+            error!(address = %svc.metrics_listen, error = %e, "metrics endpoint not started");
+        }
+    }
+    metrics
+}
+
+/// SIGTERM, SIGINT and SIGHUP as events of the loop.
+pub(super) fn signal_events() -> std::io::Result<Receiver<Event>> {
+    let (sig_tx, sig_rx) = channel::<Event>();
+    let mut signals = signal_hook::iterator::Signals::new([
+        signal_hook::consts::SIGTERM,
+        signal_hook::consts::SIGINT,
+        signal_hook::consts::SIGHUP,
+    ])?;
+    std::thread::spawn(move || {
+        for s in signals.forever() {
+            if sig_tx.send(Event::Signal(s)).is_err() {
+                return;
+            }
+        }
+    });
+    Ok(sig_rx)
+}
+
+impl Daemon {
+    /// The start's last acts: what the ledger knows, the recovery, the
+    /// watchers, the log line and systemd's READY.
+    pub(super) fn begin(&mut self, removed: usize) {
+        for (tag, st) in &self.ledger.state.steps {
+            if let Outcome::Published { at, .. } = st.outcome {
+                let mut m = self.metrics();
+                let f = m.feed(&tag.feed);
+                f.last_success = Some(f.last_success.unwrap_or(0.0).max(at as f64));
+            }
+        }
+        self.record(Record::Started {
+            version: env!("CARGO_PKG_VERSION").into(),
+            pid: std::process::id(),
+            at: Utc::now().timestamp(),
+        });
+        // Steps the ledger knows as waiting keep their first-seen time; their
+        // files come back through the watchers' first scan (the catch-up).
+        let waiting = self
+            .ledger
+            .state
+            .steps
+            .values()
+            .filter(|s| matches!(s.outcome, Outcome::Waiting))
+            .count();
+        self.recover_publications();
+        self.recover_jobs();
+        self.start_watchers();
+        self.retention();
+        info!(
+            version = env!("CARGO_PKG_VERSION"),
+            feeds = %crate::service::settings::describe_dirs(&self.rules),
+            out_dir = %self.cfg.service.out_dir.display(),
+            state_dir = %self.cfg.service.state_dir.display(),
+            workers = self.cfg.service.workers,
+            stale_temporaries_removed = removed,
+            steps_waiting_from_before = waiting,
+            "leeward serve started"
+        );
+        self.notifier.send("READY=1");
+        self.update_status();
+    }
+}
