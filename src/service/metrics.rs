@@ -15,7 +15,9 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use tracing::{info, warn};
+use tracing::{debug, info, warn};
+
+use super::shutdown::Shutdown;
 
 /// Upper bounds of the latency histogram, seconds.
 pub const LATENCY_BUCKETS: [f64; 9] = [5.0, 10.0, 20.0, 30.0, 60.0, 120.0, 300.0, 600.0, 1800.0];
@@ -590,21 +592,31 @@ impl Drop for Slot {
 /// cannot make the service hold more). The protocol is the small part of
 /// HTTP/1.1 these two answers need (a GET, `Connection: close`); a general
 /// HTTP server would bring more than it serves here.
-pub fn serve(addr: &str, metrics: Arc<Mutex<Metrics>>) -> std::io::Result<SocketAddr> {
+pub fn serve(
+    addr: &str,
+    metrics: Arc<Mutex<Metrics>>,
+    shutdown: Shutdown,
+) -> std::io::Result<Endpoint> {
     let listener = TcpListener::bind(addr)?;
     let bound = listener.local_addr()?;
     if !bound.ip().is_loopback() {
         warn!(address = %bound, "metrics endpoint listens beyond localhost");
     }
+    // Accepting without blocking, so that the thread sees the stop.
+    listener.set_nonblocking(true)?;
     info!(address = %bound, "metrics and health endpoint listening");
     let in_hand = Arc::new(AtomicUsize::new(0));
-    std::thread::Builder::new()
+    let thread = std::thread::Builder::new()
         .name("leeward-http".into())
         .spawn(move || {
             let mut refused_said = false;
-            for s in listener.incoming() {
-                let s = match s {
-                    Ok(s) => s,
+            while !shutdown.is_ended() {
+                let s = match listener.accept() {
+                    Ok((s, _)) => s,
+                    Err(e) if e.kind() == std::io::ErrorKind::WouldBlock => {
+                        std::thread::sleep(ACCEPT_PAUSE);
+                        continue;
+                    }
                     Err(e) => {
                         warn!(error = %e, "metrics endpoint: a connection could not be accepted");
                         // Out of descriptors, say: do not spin.
@@ -612,6 +624,10 @@ pub fn serve(addr: &str, metrics: Arc<Mutex<Metrics>>) -> std::io::Result<Socket
                         continue;
                     }
                 };
+                // The connection itself is read and written with time-outs.
+                if s.set_nonblocking(false).is_err() {
+                    continue;
+                }
                 if in_hand.fetch_add(1, Ordering::AcqRel) >= MAX_CONNECTIONS {
                     in_hand.fetch_sub(1, Ordering::AcqRel);
                     if !refused_said {
@@ -634,8 +650,32 @@ pub fn serve(addr: &str, metrics: Arc<Mutex<Metrics>>) -> std::io::Result<Socket
                     warn!(error = %e, "metrics endpoint: no thread for a connection");
                 }
             }
+            debug!("metrics endpoint closed");
         })?;
-    Ok(bound)
+    Ok(Endpoint {
+        addr: bound,
+        thread,
+    })
+}
+
+/// How long the endpoint's thread sleeps when no connection is waiting (a request
+/// waits at most this long to be accepted; the stop is seen within it).
+const ACCEPT_PAUSE: Duration = Duration::from_millis(10);
+
+/// The running endpoint: its address, and its thread, which ends once the service's
+/// [`Shutdown`] has ended.
+pub struct Endpoint {
+    /// The address it listens on.
+    pub addr: SocketAddr,
+    thread: std::thread::JoinHandle<()>,
+}
+
+impl Endpoint {
+    /// Wait for the endpoint's thread to end (after [`Shutdown::end`]); connections in
+    /// hand end on their own time-outs.
+    pub fn join(self) {
+        let _ = self.thread.join();
+    }
 }
 
 #[cfg(test)]
@@ -667,7 +707,13 @@ mod tests {
             body_len > 4 << 20,
             "{body_len}: more than the socket buffers hold"
         );
-        let addr = serve("127.0.0.1:0", Arc::new(Mutex::new(metrics))).unwrap();
+        let addr = serve(
+            "127.0.0.1:0",
+            Arc::new(Mutex::new(metrics)),
+            Shutdown::new(),
+        )
+        .unwrap()
+        .addr;
         let mut stuck = TcpStream::connect(addr).unwrap();
         stuck.write_all(b"GET /metrics HTTP/1.1\r\n\r\n").unwrap();
         std::thread::sleep(Duration::from_millis(300));
@@ -694,7 +740,9 @@ mod tests {
             heartbeat: Some(Instant::now()),
             ..Metrics::default()
         }));
-        let addr = serve("127.0.0.1:0", m.clone()).unwrap();
+        let addr = serve("127.0.0.1:0", m.clone(), Shutdown::new())
+            .unwrap()
+            .addr;
         let idle: Vec<TcpStream> = (0..MAX_CONNECTIONS)
             .map(|_| TcpStream::connect(addr).unwrap())
             .collect();
@@ -793,5 +841,32 @@ mod tests {
             assert_eq!(w, w.to_lowercase());
             assert!(!crate::service::job_state::has_ended(w), "{w}");
         }
+    }
+
+    #[test]
+    fn the_endpoint_thread_ends_with_the_service() {
+        let stop = Shutdown::new();
+        let m = Arc::new(Mutex::new(Metrics::default()));
+        let ep = serve("127.0.0.1:0", m, stop.clone()).unwrap();
+        assert!(
+            get(ep.addr, "/health").unwrap().starts_with("HTTP/1.1"),
+            "answers while running"
+        );
+        stop.begin(Duration::from_secs(60));
+        assert!(
+            get(ep.addr, "/health").is_ok(),
+            "still answers while the steps in hand finish"
+        );
+        stop.end();
+        let (tx, rx) = std::sync::mpsc::channel();
+        std::thread::spawn(move || {
+            ep.join();
+            let _ = tx.send(());
+        });
+        // Generous: the thread looks every 10 ms; this only fails if it never ends.
+        assert!(
+            rx.recv_timeout(Duration::from_secs(30)).is_ok(),
+            "the endpoint's thread did not end"
+        );
     }
 }

@@ -16,6 +16,7 @@
 //! - [`ledger`]: the durable journal of what happened.
 //! - [`pool`]: the worker threads steps run on, kept for the service's life.
 //! - [`metrics`]: the health and metrics endpoint.
+//! - [`shutdown`]: the one stop the loop, the workers and the endpoint share.
 //! - [`systemd`]: readiness, watchdog and status notifications.
 //! - [`status`]: `leeward status`, from the ledger.
 //! - [`waiting`]: what each waiting step lacks and when it is made anyway.
@@ -32,6 +33,7 @@ pub mod metrics;
 pub mod pool;
 pub mod publish;
 pub mod settings;
+pub mod shutdown;
 pub mod status;
 pub mod systemd;
 pub mod waiting;

@@ -18,6 +18,8 @@ type Task = Box<dyn FnOnce() + Send + 'static>;
 
 struct Shared {
     queue: Mutex<Receiver<Task>>,
+    /// The threads, to be joined when the pool closes.
+    threads: Mutex<Vec<std::thread::JoinHandle<()>>>,
     /// Threads waiting for a task and not yet promised one.
     idle: AtomicUsize,
     /// Threads started so far.
@@ -39,6 +41,7 @@ impl Pool {
             tx,
             shared: Arc::new(Shared {
                 queue: Mutex::new(rx),
+                threads: Mutex::new(Vec::new()),
                 idle: AtomicUsize::new(0),
                 started: AtomicUsize::new(0),
             }),
@@ -67,6 +70,31 @@ impl Pool {
         }
     }
 
+    /// Close the pool and join its threads: each ends once its task is done.
+    /// Returns the threads still running at `deadline` (left behind, not joined).
+    pub fn close(self, deadline: std::time::Instant) -> usize {
+        let Pool { tx, shared, .. } = self;
+        drop(tx);
+        let handles = std::mem::take(
+            &mut *shared
+                .threads
+                .lock()
+                .unwrap_or_else(std::sync::PoisonError::into_inner),
+        );
+        let mut left = 0;
+        for h in handles {
+            while !h.is_finished() && std::time::Instant::now() < deadline {
+                std::thread::sleep(std::time::Duration::from_millis(5));
+            }
+            if h.is_finished() {
+                let _ = h.join();
+            } else {
+                left += 1;
+            }
+        }
+        left
+    }
+
     /// Threads started so far.
     pub fn threads(&self) -> usize {
         self.shared.started.load(Ordering::Acquire)
@@ -83,8 +111,13 @@ impl Pool {
             .name(self.name.to_string())
             .spawn(move || worker(&shared));
         match started {
-            Ok(_) => {
+            Ok(handle) => {
                 self.shared.started.fetch_add(1, Ordering::AcqRel);
+                self.shared
+                    .threads
+                    .lock()
+                    .unwrap_or_else(std::sync::PoisonError::into_inner)
+                    .push(handle);
                 true
             }
             Err(e) => {
@@ -222,5 +255,48 @@ mod tests {
         let made = guarded(|| netcdf::create(&p).map(|_| ()).is_ok());
         assert_eq!(made, Ok(true));
         let _ = std::fs::remove_file(&p);
+    }
+
+    /// A pool of three tasks that each wait for a go; what each finished sends.
+    fn three_waiting(name: &'static str) -> (Pool, Sender<()>, Receiver<usize>) {
+        let pool = Pool::new(name);
+        let (go_tx, go_rx) = channel::<()>();
+        let go_rx = Arc::new(Mutex::new(go_rx));
+        let (done_tx, done_rx) = channel::<usize>();
+        for k in 0..3 {
+            let (go, done) = (go_rx.clone(), done_tx.clone());
+            pool.run(move || {
+                let _ = go.lock().map(|g| g.recv());
+                let _ = done.send(k);
+            });
+        }
+        assert_eq!(pool.threads(), 3);
+        (pool, go_tx, done_rx)
+    }
+
+    #[test]
+    fn closing_joins_every_thread_once_its_task_is_done() {
+        // Tasks still running at the deadline are left behind, not joined.
+        let (held, go, _) = three_waiting("leeward-test-held");
+        assert_eq!(held.close(Instant::now()), 3);
+        for _ in 0..3 {
+            let _ = go.send(());
+        }
+        // Tasks that end before the deadline are waited for and their threads joined.
+        let (pool, go, done) = three_waiting("leeward-test-close");
+        std::thread::spawn(move || {
+            std::thread::sleep(Duration::from_millis(50));
+            for _ in 0..3 {
+                let _ = go.send(());
+            }
+        });
+        assert_eq!(pool.close(Instant::now() + Duration::from_secs(60)), 0);
+        let mut ran: Vec<usize> = done.try_iter().collect();
+        ran.sort_unstable();
+        assert_eq!(
+            ran,
+            vec![0, 1, 2],
+            "every task ran to its end before the join"
+        );
     }
 }

@@ -60,8 +60,7 @@ pub fn ignored(name: &str) -> bool {
 /// Finished files, as they come.
 pub struct FinishedFiles {
     rx: Receiver<PathBuf>,
-    stop: Sender<()>,
-    thread: Option<JoinHandle<()>>,
+    _watcher: Watcher,
 }
 
 impl FinishedFiles {
@@ -71,7 +70,14 @@ impl FinishedFiles {
     }
 }
 
-impl Drop for FinishedFiles {
+/// A directory being watched by a thread of its own, which hands each finished file to
+/// the function it was given ([`watch_with`]). Dropping it stops and joins the thread.
+pub struct Watcher {
+    stop: Sender<()>,
+    thread: Option<JoinHandle<()>>,
+}
+
+impl Drop for Watcher {
     fn drop(&mut self) {
         let _ = self.stop.send(());
         if let Some(t) = self.thread.take() {
@@ -232,7 +238,7 @@ impl Watching {
     /// Look at every candidate again: one that changed starts over, one
     /// closed or unchanged for the settle time is handed out once for its
     /// size and time. False when nobody listens any more.
-    fn pass(&mut self, out_tx: &Sender<PathBuf>) -> bool {
+    fn pass(&mut self, deliver: &dyn Fn(PathBuf) -> bool) -> bool {
         let mut done = Vec::new();
         for (p, c) in self.cands.iter_mut() {
             match look(p) {
@@ -251,7 +257,7 @@ impl Watching {
             if let Some(st) = st {
                 if self.emitted.get(&p) != Some(&st) {
                     self.emitted.insert(p.clone(), st);
-                    if out_tx.send(p).is_err() {
+                    if !deliver(p) {
                         return false;
                     }
                 }
@@ -267,6 +273,23 @@ pub fn watch(
     settle: Duration,
     scan_every: Duration,
 ) -> Result<FinishedFiles, WatchError> {
+    let (out_tx, out_rx) = channel();
+    let watcher = watch_with(dir, settle, scan_every, move |p| out_tx.send(p).is_ok())?;
+    Ok(FinishedFiles {
+        rx: out_rx,
+        _watcher: watcher,
+    })
+}
+
+/// Watch `dir` as [`watch`] does, handing each finished file to `deliver`, on the
+/// watcher's thread; the thread ends when `deliver` returns false or the [`Watcher`] is
+/// dropped.
+pub fn watch_with(
+    dir: &Path,
+    settle: Duration,
+    scan_every: Duration,
+    deliver: impl Fn(PathBuf) -> bool + Send + 'static,
+) -> Result<Watcher, WatchError> {
     let dir = dir.to_path_buf();
     let (ev_tx, ev_rx) = channel::<notify::Result<notify::Event>>();
     let notify_err = |source| WatchError::Notify {
@@ -277,7 +300,6 @@ pub fn watch(
     watcher
         .watch(&dir, RecursiveMode::NonRecursive)
         .map_err(notify_err)?;
-    let (out_tx, out_rx) = channel();
     let (stop_tx, stop_rx) = channel();
     let thread = std::thread::spawn(move || {
         let _watcher = watcher; // lives as long as the thread
@@ -316,13 +338,12 @@ pub fn watch(
                 continue;
             }
             last_pass = Instant::now();
-            if !w.pass(&out_tx) {
+            if !w.pass(&deliver) {
                 return;
             }
         }
     });
-    Ok(FinishedFiles {
-        rx: out_rx,
+    Ok(Watcher {
         stop: stop_tx,
         thread: Some(thread),
     })

@@ -14,8 +14,8 @@ Then, each in a fresh output tree:
 2. `leeward serve` given the one step, and (a fresh service) the big file, renamed into
    its incoming directory: the service's peak resident memory (`VmHWM` of
    /proc/PID/status, the service alone) once every step of it is published, and the
-   largest peak of its step processes (each logs its own `VmHWM` as `peak_rss_kib` when
-   it ends).
+   largest and median peak of its step processes (each reports its own `VmHWM`, logged at
+   debug level as `peak_rss_mib` when its result is taken).
 
 A file is catalogued section by section and each step reads only its own messages, so
 the big file should cost about what one step costs, not its size. Printed: a table, and
@@ -108,8 +108,10 @@ name = "big"
 levels_hpa = {LEVELS_HPA}
 """)
     log = open(root / "serve.log", "wb")
+    # The step processes' own peaks are logged at debug level ("step process's result taken").
+    env = dict(os.environ, LEEWARD_LOG="info,leeward::service=debug")
     p = subprocess.Popen([binary, "serve", "--config", str(cfg)], stdout=log,
-                         stderr=subprocess.STDOUT)
+                         stderr=subprocess.STDOUT, env=env)
     try:
         time.sleep(1.0)
         before = vm_hwm_mib(p.pid)
@@ -134,13 +136,14 @@ levels_hpa = {LEVELS_HPA}
         p.terminate()
         p.wait(timeout=120)
         log.close()
-    steps_kib = [int(k) for k in re.findall(r"peak_rss_kib=Some\((\d+)\)",
+    steps_mib = [int(k) for k in re.findall(r"result taken.*peak_rss_mib=(\d+)",
                                             (root / "serve.log").read_text(errors="replace"))]
     shutil.rmtree(root / "out", ignore_errors=True)
     return {"seconds": took, "published": published,
             "steps": steps, "rss_before_mib": round(before, 1), "peak_rss_mib": peak,
-            "step_processes": len(steps_kib),
-            "step_process_peak_mib": round(max(steps_kib) / 1024, 1) if steps_kib else None}
+            "step_processes": len(steps_mib),
+            "step_process_peak_mib": max(steps_mib) if steps_mib else None,
+            "step_process_median_mib": sorted(steps_mib)[len(steps_mib) // 2] if steps_mib else None}
 
 
 def main() -> int:

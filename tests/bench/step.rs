@@ -14,7 +14,8 @@ use std::time::Instant;
 use leeward::config::Config;
 use leeward::ingest::catalogue::catalogue;
 use leeward::ingest::decode::decode_raw;
-use leeward::pipeline::{grid_suffixes, plan, read_input, run_step, Destination};
+use leeward::pipeline::{grid_suffixes, plan, read_input};
+use leeward::products::{run_step, Destination};
 use rayon::prelude::*;
 
 fn main() {

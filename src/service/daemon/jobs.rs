@@ -345,15 +345,15 @@ impl Daemon {
         );
         let stage = commit::local_stage(&job.store, &tag);
         let log_format = self.opts.log_format.clone();
-        let tx = self.done_tx.clone();
+        let tx = self.events.clone();
         self.pool.run(move || {
             let outcome =
                 crate::service::pool::guarded(|| run_local(&job, &spec, &stage, &log_format))
                     .unwrap_or_else(JobOutcome::Internal);
-            let _ = tx.send(JobDone {
+            let _ = tx.send(Event::Done(JobDone {
                 tag: job.tag.clone(),
                 outcome,
-            });
+            }));
         });
     }
 

@@ -33,13 +33,14 @@ use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
 use super::child;
 use super::commit;
 use super::ledger::{FailKind, Journal, Ledger, Outcome, Record, StepTag};
-use super::metrics::Metrics;
+use super::metrics::{Endpoint, Metrics};
 use super::pool::Pool;
 use super::publish;
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
+use super::shutdown::Shutdown;
 use super::systemd::{status_line, Notifier};
 use super::waiting::{self, Waiting, WaitingStep};
-use super::watch::{watch, FinishedFiles};
+use super::watch::{watch_with, Watcher};
 use crate::config::Config;
 use crate::escape::shown;
 use crate::ingest::catalogue::catalogue_file;
@@ -157,8 +158,15 @@ fn mtime_ns(m: &std::fs::Metadata) -> i64 {
         .unwrap_or(0)
 }
 
+/// Everything the loop waits for, on one channel ([`Daemon::inbox`]): the loop
+/// blocks on it for at most a tick, then does its periodic work.
 enum Event {
+    /// SIGTERM or SIGINT (stop), SIGHUP (reload).
     Signal(i32),
+    /// A finished file in an incoming directory, from its watcher.
+    File(PathBuf),
+    /// A worker's report: a step made on this machine, or a batch result taken.
+    Done(JobDone),
 }
 
 struct Daemon {
@@ -168,11 +176,18 @@ struct Daemon {
     feed_cfgs: HashMap<String, Arc<Config>>,
     ledger: Ledger,
     asm: Assembly,
-    watchers: Vec<(String, FinishedFiles)>,
+    watchers: Vec<(String, Watcher)>,
     metrics: Arc<Mutex<Metrics>>,
+    /// The metrics and health endpoint, if it listens.
+    endpoint: Option<Endpoint>,
+    /// The stop, shared with the endpoint's thread.
+    shutdown: Shutdown,
     notifier: Notifier,
-    done_tx: Sender<JobDone>,
-    done_rx: Receiver<JobDone>,
+    /// Where watchers, workers and the signal thread send their [`Event`]s.
+    events: Sender<Event>,
+    inbox: Receiver<Event>,
+    /// Files finished while the state directory could not be used: taken once it can.
+    deferred: Vec<PathBuf>,
     /// The threads local steps and the taking of batch results run on.
     pool: Pool,
     running: HashMap<StepTag, Instant>,
@@ -341,7 +356,10 @@ impl Daemon {
                 continue;
             }
             dirs.push(r.dir.clone());
-            match watch(&r.dir, settle, scan) {
+            let tx = self.events.clone();
+            match watch_with(&r.dir, settle, scan, move |p| {
+                tx.send(Event::File(p)).is_ok()
+            }) {
                 Ok(w) => {
                     info!(feed = %r.feed.name, dir = %r.dir.display(), "watching");
                     self.watchers.push((r.feed.name.clone(), w));
@@ -362,49 +380,55 @@ struct Timers {
 }
 
 impl Daemon {
-    /// Signals: SIGHUP reloads; SIGTERM and SIGINT begin the stop (no new
+    /// A signal: SIGHUP reloads; SIGTERM and SIGINT begin the stop (no new
     /// work, the steps in hand finished within the grace time).
-    fn on_signals(&mut self, sig_rx: &Receiver<Event>, stopping: &mut Option<Instant>) {
-        while let Ok(Event::Signal(s)) = sig_rx.try_recv() {
-            if s == signal_hook::consts::SIGHUP {
-                self.reload();
-            } else if stopping.is_none() {
-                info!(
-                    signal = s,
-                    running = self.running.len(),
-                    grace_s = self.cfg.service.shutdown_grace_s,
-                    "stopping: no new work; finishing the steps in hand"
-                );
-                self.notifier.send(&format!(
-                    "STOPPING=1\n{}",
-                    status_line(&format!(
-                        "stopping: finishing {} step(s) in hand",
-                        self.running.len()
-                    ))
-                ));
-                self.watchers.clear();
-                *stopping = Some(Instant::now());
-            }
+    fn on_signal(&mut self, s: i32) {
+        if s == signal_hook::consts::SIGHUP {
+            self.reload();
+        } else if !self.shutdown.is_stopping() {
+            info!(
+                signal = s,
+                running = self.running.len(),
+                grace_s = self.cfg.service.shutdown_grace_s,
+                "stopping: no new work; finishing the steps in hand"
+            );
+            self.notifier.send(&format!(
+                "STOPPING=1\n{}",
+                status_line(&format!(
+                    "stopping: finishing {} step(s) in hand",
+                    self.running.len()
+                ))
+            ));
+            self.watchers.clear();
+            let grace = Duration::from_secs_f64(self.cfg.service.shutdown_grace_s.max(0.0));
+            self.shutdown.begin(grace);
         }
     }
 
-    /// One round of the loop's work: new files (when `taking`), finished
-    /// steps, the scheduler's jobs, and the periodic checks.
-    fn round(&mut self, taking: bool, t: &mut Timers) {
-        if taking {
-            let mut files = Vec::new();
-            for (_, w) in &self.watchers {
-                while let Some(p) = w.next(Duration::ZERO) {
-                    files.push(p);
-                }
-            }
-            for p in files {
+    /// One event. A file found while stopping is left for the next start's scan;
+    /// one found while the state directory cannot be used waits until it can.
+    fn handle(&mut self, ev: Event) {
+        match ev {
+            Event::Signal(s) => self.on_signal(s),
+            Event::File(_) if self.shutdown.is_stopping() => {}
+            Event::File(p) if self.state_problem.is_some() => self.deferred.push(p),
+            Event::File(p) => {
                 self.ingest(&p, None);
                 self.keepalive();
             }
+            Event::Done(done) => self.finished(done),
         }
-        while let Ok(done) = self.done_rx.try_recv() {
-            self.finished(done);
+    }
+
+    /// One round of the loop's periodic work: files held back while the state
+    /// directory could not be used (when `taking`), the scheduler's jobs, and
+    /// the periodic checks.
+    fn round(&mut self, taking: bool, t: &mut Timers) {
+        if taking {
+            for p in std::mem::take(&mut self.deferred) {
+                self.ingest(&p, None);
+                self.keepalive();
+            }
         }
         if taking && self.last_poll.elapsed().as_secs_f64() >= self.cfg.service.slurm.poll_s {
             self.last_poll = Instant::now();
@@ -430,21 +454,30 @@ impl Daemon {
         }
     }
 
-    /// While stopping since `t0`: the exit code once the steps in hand are
-    /// done (jobs on the scheduler go on without the service and are followed
-    /// again after its restart; a result being taken is finished first), or
-    /// the exit when the grace time is over.
-    fn stopped(&mut self, t0: Instant) -> Option<u8> {
+    /// While stopping: the exit code once the steps in hand are done (jobs on
+    /// the scheduler go on without the service and are followed again after
+    /// its restart; a result being taken is finished first), with the worker
+    /// threads and the endpoint's joined; or the exit when the grace time is
+    /// over.
+    fn stopped(&mut self) -> Option<u8> {
         let taking = self.jobs.values().any(|j| j.phase == JobPhase::Taking);
         if self.running.is_empty() && !taking {
-            info!("stopped cleanly");
+            self.shutdown.end();
+            let deadline = self.shutdown.deadline().unwrap_or_else(Instant::now);
+            let pool = std::mem::replace(&mut self.pool, Pool::new("leeward-worker"));
+            let left = pool.close(deadline);
+            if let Some(ep) = self.endpoint.take() {
+                ep.join();
+            }
+            info!(threads_left = left, "stopped cleanly");
             self.record(Record::Stopped {
                 reason: "signal".into(),
                 at: Utc::now().timestamp(),
             });
             return Some(code::OK);
         }
-        if t0.elapsed().as_secs_f64() >= self.cfg.service.shutdown_grace_s {
+        if self.shutdown.grace_over() {
+            self.shutdown.end();
             let left: Vec<String> = self.running.keys().map(ToString::to_string).collect();
             warn!(steps = ?left, "grace time over: abandoning the steps in hand; they are made again at the next start");
             self.record(Record::Stopped {
@@ -459,9 +492,10 @@ impl Daemon {
     }
 }
 
-/// The loop: signals, a round of work, dispatch or the stop, the watchdog
-/// and the status line, then a wait of at most a tick for a finished step.
-fn run(mut d: Daemon, sig_rx: Receiver<Event>) -> u8 {
+/// The loop: a round of periodic work, dispatch or the stop, the watchdog and
+/// the status line, then the events: a wait of at most a tick for the first,
+/// and every one already there.
+fn run(mut d: Daemon) -> u8 {
     let tick = Duration::from_millis(100);
     let mut timers = Timers {
         second: Instant::now(),
@@ -469,32 +503,28 @@ fn run(mut d: Daemon, sig_rx: Receiver<Event>) -> u8 {
         orphans: Instant::now(),
     };
     let ping_every = d.notifier.watchdog.map(|w| w / 2);
-    let mut stopping: Option<Instant> = None;
     if let Some(w) = ping_every {
         d.notifier.send("WATCHDOG=1");
         debug!(every_s = w.as_secs_f64(), "watchdog pings");
     }
     loop {
-        d.on_signals(&sig_rx, &mut stopping);
-        let taking = stopping.is_none() && d.state_problem.is_none();
+        let stopping = d.shutdown.is_stopping();
+        let taking = !stopping && d.state_problem.is_none();
         d.round(taking, &mut timers);
-        match stopping {
-            None => {
-                d.timeouts();
-                if d.state_problem.is_none() {
-                    d.dispatch();
-                }
+        if !stopping {
+            d.timeouts();
+            if d.state_problem.is_none() {
+                d.dispatch();
             }
-            Some(t0) => {
-                if let Some(code) = d.stopped(t0) {
-                    return code;
-                }
-            }
+        } else if let Some(code) = d.stopped() {
+            return code;
         }
         d.keepalive();
         d.update_status();
-        if let Ok(done) = d.done_rx.recv_timeout(tick) {
-            d.finished(done);
+        let mut next = d.inbox.recv_timeout(tick).ok();
+        while let Some(ev) = next {
+            d.handle(ev);
+            next = d.inbox.try_recv().ok();
         }
     }
 }

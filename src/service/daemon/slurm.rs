@@ -133,7 +133,7 @@ impl Daemon {
                 let (spec, stage) = (j.spec.clone(), j.stage.clone());
                 let lock = self.lock_of(&tag.feed);
                 let journal = self.ledger.journal();
-                let tx = self.done_tx.clone();
+                let tx = self.events.clone();
                 self.pool.run(move || {
                     let outcome = crate::service::pool::guarded(|| {
                         taken_outcome(batch::take(&spec, &stage, &lock, &journal))
@@ -142,10 +142,10 @@ impl Daemon {
                         state: "TAKE_FAILED".into(),
                         reason: "internal error while taking the result".into(),
                     });
-                    let _ = tx.send(JobDone {
+                    let _ = tx.send(Event::Done(JobDone {
                         tag: spec.tag.clone(),
                         outcome,
-                    });
+                    }));
                 });
                 continue;
             }

@@ -9,7 +9,7 @@ pub fn serve(opts: ServeOptions) -> u8 {
     child::set_log_format(&opts.log_format);
     match start(opts) {
         // The hold on the state directory lives as long as the loop.
-        Ok((_held, d, signals)) => run(d, signals),
+        Ok((_held, d)) => run(d),
         Err(code) => code,
     }
 }
@@ -23,9 +23,7 @@ pub(super) fn refuse(e: &dyn std::fmt::Display) -> u8 {
 /// Everything before the loop: the configuration, the state directory held,
 /// the ledger, the output tree, the metrics endpoint, the signals, then the
 /// recovery of publications and jobs and the watchers' first scan.
-pub(super) fn start(
-    opts: ServeOptions,
-) -> Result<(std::os::unix::net::UnixListener, Daemon, Receiver<Event>), u8> {
+pub(super) fn start(opts: ServeOptions) -> Result<(std::os::unix::net::UnixListener, Daemon), u8> {
     let cfg = load(&opts).map_err(|e| {
         error!(error = %e, "cannot start");
         refuse(&e)
@@ -35,9 +33,10 @@ pub(super) fn start(
     prepare_dirs(&cfg.service);
     crate::output::limit_hdf5_free_lists();
     let removed = publish::clean_temporaries(&cfg.service.out_dir);
-    let metrics = start_metrics(&cfg.service, &rules);
-    let sig_rx = signal_events().map_err(|e| refuse(&format!("cannot handle signals: {e}")))?;
-    let (done_tx, done_rx) = channel();
+    let shutdown = Shutdown::new();
+    let (metrics, endpoint) = start_metrics(&cfg.service, &rules, &shutdown);
+    let (events, inbox) = channel();
+    signal_events(events.clone()).map_err(|e| refuse(&format!("cannot handle signals: {e}")))?;
     let mut d = Daemon {
         opts,
         cfg,
@@ -47,9 +46,12 @@ pub(super) fn start(
         asm: Assembly::default(),
         watchers: Vec::new(),
         metrics,
+        endpoint,
+        shutdown,
         notifier: Notifier::from_env(),
-        done_tx,
-        done_rx,
+        events,
+        inbox,
+        deferred: Vec::new(),
         pool: Pool::new("leeward-worker"),
         running: HashMap::new(),
         jobs: HashMap::new(),
@@ -66,7 +68,7 @@ pub(super) fn start(
         state_problem: None,
     };
     d.begin(removed);
-    Ok((held, d, sig_rx))
+    Ok((held, d))
 }
 
 /// Hold the state directory (one service per directory: a hold that survives
@@ -115,7 +117,8 @@ pub(super) fn prepare_dirs(svc: &crate::service::settings::Service) {
 pub(super) fn start_metrics(
     svc: &crate::service::settings::Service,
     rules: &[FeedRule],
-) -> Arc<Mutex<Metrics>> {
+    shutdown: &Shutdown,
+) -> (Arc<Mutex<Metrics>>, Option<Endpoint>) {
     let metrics = Arc::new(Mutex::new(Metrics {
         started: unix_now(),
         heartbeat: Some(Instant::now()),
@@ -131,17 +134,22 @@ pub(super) fn start_metrics(
             m.scheduler.reachable = true;
         }
     }
-    if !svc.metrics_listen.is_empty() {
-        if let Err(e) = crate::service::metrics::serve(&svc.metrics_listen, metrics.clone()) {
+    if svc.metrics_listen.is_empty() {
+        return (metrics, None);
+    }
+    let served =
+        crate::service::metrics::serve(&svc.metrics_listen, metrics.clone(), shutdown.clone());
+    match served {
+        Ok(ep) => (metrics, Some(ep)),
+        Err(e) => {
             error!(address = %svc.metrics_listen, error = %e, "metrics endpoint not started");
+            (metrics, None)
         }
     }
-    metrics
 }
 
 /// SIGTERM, SIGINT and SIGHUP as events of the loop.
-pub(super) fn signal_events() -> std::io::Result<Receiver<Event>> {
-    let (sig_tx, sig_rx) = channel::<Event>();
+pub(super) fn signal_events(tx: Sender<Event>) -> std::io::Result<()> {
     let mut signals = signal_hook::iterator::Signals::new([
         signal_hook::consts::SIGTERM,
         signal_hook::consts::SIGINT,
@@ -149,12 +157,12 @@ pub(super) fn signal_events() -> std::io::Result<Receiver<Event>> {
     ])?;
     std::thread::spawn(move || {
         for s in signals.forever() {
-            if sig_tx.send(Event::Signal(s)).is_err() {
+            if tx.send(Event::Signal(s)).is_err() {
                 return;
             }
         }
     });
-    Ok(sig_rx)
+    Ok(())
 }
 
 impl Daemon {
