@@ -20,6 +20,26 @@ pub(super) struct Job {
     pub(super) journal: Arc<Journal>,
 }
 
+impl Job {
+    /// The spec of this job's run number `attempt`, on `threads` threads.
+    fn spec(&self, attempt: u32, threads: u32) -> JobSpec {
+        JobSpec::new(
+            &self.tag,
+            attempt,
+            &self.key,
+            &self.files,
+            &self.store,
+            &self.dir,
+            self.suffix,
+            self.partial,
+            self.last_input,
+            self.not_arrived.clone(),
+            threads,
+            (*self.cfg).clone(),
+        )
+    }
+}
+
 /// What a worker reports.
 pub(super) enum JobOutcome {
     Published {
@@ -280,20 +300,7 @@ impl Daemon {
                     .get(&tag)
                     .map_or(0, |s| s.job_attempts)
                     + 1;
-                let spec = JobSpec::new(
-                    &job.tag,
-                    attempt,
-                    &job.key,
-                    &job.files,
-                    &job.store,
-                    &job.dir,
-                    job.suffix,
-                    job.partial,
-                    job.last_input,
-                    job.not_arrived.clone(),
-                    self.cfg.service.slurm.cpus_per_step,
-                    (*job.cfg).clone(),
-                );
+                let spec = job.spec(attempt, self.cfg.service.slurm.cpus_per_step);
                 match self.submit(spec) {
                     Ok(()) => continue,
                     Err(e) => {
@@ -329,20 +336,7 @@ impl Daemon {
         self.running.insert(tag.clone(), Instant::now());
         let attempt = self.asm.steps.get(&tag).map_or(0, |p| p.attempts) + 1;
         let threads = std::thread::available_parallelism().map_or(1, |n| n.get()) as u32;
-        let spec = JobSpec::new(
-            &job.tag,
-            attempt,
-            &job.key,
-            &job.files,
-            &job.store,
-            &job.dir,
-            job.suffix,
-            job.partial,
-            job.last_input,
-            job.not_arrived.clone(),
-            threads,
-            (*job.cfg).clone(),
-        );
+        let spec = job.spec(attempt, threads);
         let stage = commit::local_stage(&job.store, &tag);
         let log_format = self.opts.log_format.clone();
         let tx = self.events.clone();
