@@ -14,6 +14,7 @@ use tracing_subscriber::EnvFilter;
 
 use crate::config::Config;
 use crate::escape::shown;
+use crate::outcome::StepOutcome;
 use crate::pipeline::{grid_suffixes, index_input, load_step_input, plan, Issue, StepReport};
 use crate::products::{run_step, Destination};
 
@@ -318,8 +319,8 @@ fn summary(r: &StepReport) {
     if !r.grid.is_empty() {
         line.push_str(&format!(" [{}]", r.grid));
     }
-    match (&r.output, &r.skipped) {
-        (Some(p), _) => line.push_str(&format!(
+    match &r.outcome {
+        StepOutcome::Made(p) => line.push_str(&format!(
             ": {} fields used, products {} -> {} ({:.2} s: decode {:.2}, diagnostics {:.2}, write {:.2}, changes and tracks {:.2}, images {:.2})",
             r.fields_used,
             r.products.join(" "),
@@ -331,8 +332,10 @@ fn summary(r: &StepReport) {
             r.changes_seconds,
             r.images_seconds
         )),
-        (None, Some(why)) => line.push_str(&format!(": nothing written: {why}")),
-        (None, None) => line.push_str(": nothing written"),
+        other => line.push_str(&format!(
+            ": nothing written: {}",
+            other.reason().unwrap_or_default()
+        )),
     }
     println!("{line}");
     if !r.missing.is_empty() {
@@ -406,12 +409,14 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
                     .format("%Y-%m-%dT%H:%MZ")
                     .to_string(),
                 lead_hours: step.lead_hours(),
-                skipped: Some(issue.reason.clone()),
+                outcome: StepOutcome::InputFailed {
+                    reason: issue.reason.clone(),
+                },
                 issues: vec![issue],
                 ..StepReport::default()
             },
         };
-        if r.output.is_some() {
+        if r.outcome.made().is_some() {
             written += 1;
             // With quicklooks on, a page per cycle beside the products shows
             // them, written again after each step.
@@ -440,15 +445,15 @@ pub fn process(config: Option<PathBuf>, out: PathBuf, inputs: Vec<PathBuf>) -> u
     for i in &issues {
         print_issue(i);
     }
-    for r in reports.iter().filter(|r| r.output_failed) {
+    for r in reports.iter().filter(|r| r.outcome.output_failed()) {
         eprintln!(
             "leeward: step {} +{:03}h not written: {}",
             r.cycle,
             r.lead_hours,
-            crate::escape::text(r.skipped.as_deref().unwrap_or("write failed"))
+            crate::escape::text(r.outcome.reason().unwrap_or_default())
         );
     }
-    let failed_writes = reports.iter().filter(|r| r.output_failed).count();
+    let failed_writes = reports.iter().filter(|r| r.outcome.output_failed()).count();
     println!(
         "{} step file(s) written to {} in {:.2} s; {} input problem(s)",
         written,

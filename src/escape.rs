@@ -191,6 +191,26 @@ impl<'w> tracing_subscriber::fmt::FormatFields<'w> for LogFields {
     }
 }
 
+/// A path in a record (JSON strings are UTF-8, a file name is any bytes): written as
+/// [`path`] writes it and read back through [`unescape_path`], byte for byte.
+/// For `#[serde(with = "crate::escape::serde_path")]`.
+pub mod serde_path {
+    use serde::{Deserialize, Deserializer, Serializer};
+    use std::path::{Path, PathBuf};
+
+    /// Write `p` escaped.
+    pub fn serialize<S: Serializer>(p: &Path, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(&crate::escape::path(p))
+    }
+
+    /// Read an escaped path back.
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<PathBuf, D::Error> {
+        let s = String::deserialize(d)?;
+        crate::escape::unescape_path(&s)
+            .ok_or_else(|| serde::de::Error::custom(format!("not an escaped path: {s}")))
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

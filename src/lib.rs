@@ -12,8 +12,11 @@
 //! - [`geometry`]: grids, projections and derivative operators; no GRIB, no NetCDF.
 //! - [`diagnostics`]: pure functions, each written as its formula.
 //! - [`output`]: CF NetCDF files, written whole or not at all.
-//! - [`changes`]: thickness change within a cycle and run-to-run change, from published files.
-//! - [`pipeline`]: one cycle step end to end, shared by `process` and the service.
+//! - [`changes`]: changes within a cycle and between runs, and the PV budget, from published files.
+//! - [`pipeline`]: input files read, catalogued and planned into steps.
+//! - [`products`]: one step made and published, family by family, shared by `process` and the service.
+//! - [`outcome`]: how a step ended, one type from the pipeline to the ledger.
+//! - [`cyclones`]: cyclone centres found, tracked through the cycle and described.
 //! - [`demo`]: an invented scenario written as GRIB2 by our own encoder.
 //! - [`service`]: the watcher of the incoming directory and the ledger of the daemon.
 //! - [`recent`]: facts read from files, remembered for the cycles used last.
@@ -29,6 +32,7 @@ pub mod diagnostics;
 pub mod escape;
 pub mod geometry;
 pub mod ingest;
+pub mod outcome;
 pub mod output;
 pub mod pipeline;
 pub mod products;

@@ -15,6 +15,7 @@ use chrono::NaiveDateTime;
 use crate::ingest::catalogue::{catalogue, catalogue_file, Catalogue, FieldEntry};
 use crate::ingest::params::{surface, Quantity};
 use crate::ingest::source::{open_input, read_ranges};
+use crate::outcome::StepOutcome;
 use crate::output::cf::step_file_name;
 
 /// A problem with the input, said so an operator can act on it.
@@ -357,8 +358,8 @@ pub struct StepReport {
     /// Variables made but left out of the file because no point has a value,
     /// each as "name: why".
     pub left_out: Vec<String>,
-    /// The file written, if any.
-    pub output: Option<PathBuf>,
+    /// How the step ended: made (the file written), or why not.
+    pub outcome: StepOutcome<PathBuf>,
     /// Files published earlier that this step completed (changes added to them).
     pub updated: Vec<PathBuf>,
     /// Problems with this step's input.
@@ -378,15 +379,10 @@ pub struct StepReport {
     pub images_seconds: f64,
     /// Diagnostics time by family (vorticity, stability, isobaric PV, isentropic, tropopause, layer PV).
     pub family_seconds: Vec<(&'static str, f64)>,
-    /// Why nothing was written, when nothing was.
-    pub skipped: Option<String>,
     /// Quicklook images written beside the product.
     pub images: Vec<PathBuf>,
     /// The cycle's cyclone tracks, written again with this step.
     pub tracks: Vec<PathBuf>,
-    /// True when the products were made but could not be written (disk full,
-    /// permission denied): worth trying again, unlike a problem with the input.
-    pub output_failed: bool,
 }
 
 /// True for the fields a step's products may use, as `products::inputs::inventory` sorts

@@ -16,9 +16,9 @@
 //!
 //! The formulas themselves are the pure functions of [`crate::diagnostics`].
 
+use crate::outcome::StepOutcome;
 use std::borrow::Cow;
 use std::path::Path;
-use std::sync::Mutex;
 use std::time::Instant;
 
 use ndarray::{Array2, Array3};
@@ -62,13 +62,6 @@ pub struct Destination<'a> {
     pub store: &'a Path,
     /// Directory the step file is written into (`store` itself or below it).
     pub dir: &'a Path,
-    /// Held while earlier files are read, this one written and later ones
-    /// updated, so that steps processed at the same time see each other.
-    pub lock: Option<&'a Mutex<()>>,
-    /// Called once the file is in place and later files are updated, still
-    /// holding `lock` (the service writes manifests here). An error means the
-    /// step is not published and is worth trying again.
-    pub on_published: Option<&'a PublishHook<'a>>,
     /// A batch job's staging directory: the step's file and images are
     /// written there instead of `dir`, and additions to files already
     /// published go to staged copies there (see [`crate::changes::Run::staged`]);
@@ -76,17 +69,12 @@ pub struct Destination<'a> {
     pub stage: Option<&'a Path>,
 }
 
-/// What [`Destination::on_published`] is.
-pub type PublishHook<'a> = dyn Fn(&StepReport) -> Result<(), String> + Sync + 'a;
-
 impl<'a> Destination<'a> {
     /// Everything in one directory, one step at a time (`leeward process`).
     pub fn flat(dir: &'a Path) -> Self {
         Destination {
             store: dir,
             dir,
-            lock: None,
-            on_published: None,
             stage: None,
         }
     }
@@ -124,10 +112,12 @@ pub fn run_step(
         Err(lacking) => {
             issues.extend(nothing_usable(step, inputs, &lacking, &cycle, lead));
             rep.issues = issues;
-            rep.skipped = Some(format!(
-                "no fields for any product: {lacking} ({})",
-                rep.missing.join("; ")
-            ));
+            rep.outcome = StepOutcome::InputFailed {
+                reason: format!(
+                    "no fields for any product: {lacking} ({})",
+                    rep.missing.join("; ")
+                ),
+            };
             rep.seconds = t0.elapsed().as_secs_f64();
             return rep;
         }
@@ -216,7 +206,9 @@ fn grid_of(
     rep: &mut StepReport,
 ) -> Option<(Grid, Scan)> {
     let Some(first) = step.fields.first() else {
-        rep.skipped = Some("no fields".into());
+        rep.outcome = StepOutcome::InputFailed {
+            reason: "no fields".into(),
+        };
         return None;
     };
     match parse_grid(&first.entry.grid_definition).map_err(|e| e.to_string()) {
@@ -240,7 +232,7 @@ fn grid_of(
                 }
             }
             tracing::warn!(cycle = %rep.cycle, step = rep.lead_hours, %reason, "grid refused");
-            rep.skipped = Some(reason);
+            rep.outcome = StepOutcome::InputFailed { reason };
             None
         }
     }

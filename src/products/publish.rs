@@ -16,6 +16,7 @@ use crate::changes;
 use crate::config::Config;
 use crate::diagnostics::budget;
 use crate::geometry::{Grid, Horizontal};
+use crate::outcome::StepOutcome;
 use crate::output::cf::{write_step, Product, StepProducts, Vertical};
 use crate::pipeline::{grid_id, output_name, InputFile, Issue, Step, StepReport};
 
@@ -78,11 +79,8 @@ pub(super) fn finish(
         ..
     } = made;
     // Changes in time, from the published files of earlier steps and cycles.
-    // Steps processed side by side take turns from here to the end.
-    let _publishing = p
-        .out
-        .lock
-        .map(|m| m.lock().unwrap_or_else(std::sync::PoisonError::into_inner));
+    // The caller runs the steps of one run one at a time (the service chains
+    // them), so that each sees what the ones before it published.
     let gid = grid_id(&p.step.key.grid_key);
     let run = run_of(p, &gid);
     let p_layer_coords: Vec<f64> = p_layers.iter().map(|l| 0.5 * (l[0] + l[1])).collect();
@@ -144,23 +142,13 @@ pub(super) fn finish(
                 terrain_m: made.terrain_m.as_ref(),
             };
             after_writing(p, &after, &path, &products, &mut rep);
-            rep.output = Some(path);
-            if let Some(hook) = p.out.on_published {
-                rep.issues = issues;
-                rep.seconds = t0.elapsed().as_secs_f64();
-                if let Err(e) = hook(&rep) {
-                    warn!(cycle = %rep.cycle, step = rep.lead_hours, error = %e, "step written but not published");
-                    rep.output_failed = true;
-                    rep.skipped = Some(e);
-                }
-                rep.seconds = t0.elapsed().as_secs_f64();
-                return rep;
-            }
+            rep.outcome = StepOutcome::Made(path);
         }
         Err(e) => {
             warn!(cycle = %rep.cycle, step = rep.lead_hours, error = %e, "step not written");
-            rep.output_failed = true;
-            rep.skipped = Some(e.to_string());
+            rep.outcome = StepOutcome::OutputFailed {
+                reason: e.to_string(),
+            };
         }
     }
     rep.issues.extend(issues);

@@ -33,6 +33,7 @@ use super::ledger::{Journal, StepTag};
 use super::publish::{self, StepFacts, Timings};
 use super::settings::Slurm;
 use crate::config::Config;
+use crate::outcome::StepOutcome;
 use crate::pipeline::{Issue, StepKey, StepReport};
 use crate::products::{run_step, Destination};
 
@@ -55,8 +56,8 @@ const TIME_FORMAT: &str = "%Y-%m-%dT%H:%M:%S";
 /// An input of the step, as the service catalogued it.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SpecInput {
-    /// The file (its name escaped in the record: any bytes, see [`escaped_path`]).
-    #[serde(with = "escaped_path")]
+    /// The file (its name escaped in the record: any bytes, see [`crate::escape::serde_path`]).
+    #[serde(with = "crate::escape::serde_path")]
     pub path: PathBuf,
     /// Its size then.
     pub size: u64,
@@ -109,24 +110,6 @@ pub struct JobSpec {
     pub threads: u32,
     /// The feed's configuration as the service uses it.
     pub config: Config,
-}
-
-/// An input's path in a spec or result record: JSON strings are UTF-8 and a
-/// file name is any bytes, so the name goes as [`crate::escape::path`] writes
-/// it and comes back through [`crate::escape::unescape_path`], byte for byte.
-mod escaped_path {
-    use serde::{Deserialize, Deserializer, Serializer};
-    use std::path::{Path, PathBuf};
-
-    pub fn serialize<S: Serializer>(p: &Path, s: S) -> Result<S::Ok, S::Error> {
-        s.serialize_str(&crate::escape::path(p))
-    }
-
-    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<PathBuf, D::Error> {
-        let s = String::deserialize(d)?;
-        crate::escape::unescape_path(&s)
-            .ok_or_else(|| serde::de::Error::custom(format!("not an escaped path: {s}")))
-    }
 }
 
 fn hex(b: &[u8]) -> String {
@@ -306,43 +289,19 @@ pub fn prepare(
 /// A file the job left in its staging directory, and where it goes.
 pub use super::commit::StagedFile;
 
-/// How the job ended.
+/// A step's products as a job staged them, for the service to check and publish.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(tag = "outcome", rename_all = "snake_case")]
-pub enum Ended {
-    /// Products made and staged.
-    Made {
-        /// The step's product file.
-        product: StagedFile,
-        /// Its quicklook images.
-        images: Vec<StagedFile>,
-        /// Copies of files already published with this step's additions.
-        updated: Vec<StagedFile>,
-    },
-    /// Nothing could be made from the input (not retried).
-    InputFailed {
-        /// Why.
-        reason: String,
-    },
-    /// The products could not be written (retried).
-    OutputFailed {
-        /// Why.
-        reason: String,
-    },
-    /// An input could not be read as catalogued (retried).
-    Vanished {
-        /// The file.
-        #[serde(with = "escaped_path")]
-        file: PathBuf,
-        /// Why.
-        reason: String,
-    },
-    /// A defect in leeward (a caught panic; not retried).
-    Internal {
-        /// What.
-        reason: String,
-    },
+pub struct Staged {
+    /// The step's product file.
+    pub product: StagedFile,
+    /// Its quicklook images.
+    pub images: Vec<StagedFile>,
+    /// Copies of files already published with this step's additions.
+    pub updated: Vec<StagedFile>,
 }
+
+/// How the job ended, as its result record says: made means staged.
+pub type Ended = StepOutcome<Staged>;
 
 /// The pipeline's report, as far as the manifest and the log need it.
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
@@ -394,7 +353,7 @@ impl JobReport {
             compute_seconds: self.timings.diagnostics,
             write_seconds: self.timings.write,
             changes_seconds: self.timings.changes,
-            output: Some(output.to_path_buf()),
+            outcome: StepOutcome::Made(output.to_path_buf()),
             images,
             updated,
             ..StepReport::default()
@@ -539,14 +498,7 @@ pub fn run_in_job(dir: &Path) -> u8 {
         );
         return 1;
     }
-    let what = match &result.ended {
-        Ended::Made { .. } => "made",
-        Ended::InputFailed { .. } => "input failed",
-        Ended::OutputFailed { .. } => "output failed",
-        Ended::Vanished { .. } => "input vanished",
-        Ended::Internal { .. } => "internal error",
-    };
-    info!(outcome = what, seconds = result.report.timings.total, peak_rss_kib = ?result.peak_rss_kib, "step job finished");
+    info!(outcome = result.ended.word(), seconds = result.report.timings.total, peak_rss_kib = ?result.peak_rss_kib, "step job finished");
     0
 }
 
@@ -574,22 +526,13 @@ fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
     let dest = Destination {
         store: &spec.store,
         dir: &spec.dir,
-        lock: None,
-        on_published: None,
         stage: Some(stage),
     };
     let rep = run_step(&step, &inputs, &spec.config, &dest, spec.suffix);
     let report = JobReport::of(&rep);
-    if rep.output_failed {
-        let reason = rep.skipped.clone().unwrap_or_else(|| "write failed".into());
-        return (Ended::OutputFailed { reason }, report);
-    }
-    let Some(own) = rep.output.clone() else {
-        let reason = rep
-            .skipped
-            .clone()
-            .unwrap_or_else(|| "nothing could be made from the input".into());
-        return (Ended::InputFailed { reason }, report);
+    let own = match &rep.outcome {
+        StepOutcome::Made(own) => own.clone(),
+        other => return (other.failure().unwrap_or_default(), report),
     };
     let staged = || -> std::io::Result<Ended> {
         let name = own.file_name().unwrap_or_default();
@@ -611,11 +554,11 @@ fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
             };
             updated.push(StagedFile::read_made(u, target)?);
         }
-        Ok(Ended::Made {
+        Ok(Ended::Made(Staged {
             product,
             images,
             updated,
-        })
+        }))
     };
     match staged() {
         Ok(e) => (e, report),
@@ -628,70 +571,80 @@ fn make(spec: &JobSpec, stage: &Path) -> (Ended, JobReport) {
     }
 }
 
-/// What became of a job's result when the service took it.
-pub enum Taken {
-    /// Published: the product, its manifest and the report.
-    Published {
-        /// Product.
-        path: PathBuf,
-        /// Manifest.
-        manifest: PathBuf,
-        /// Seconds from the last input to now.
-        latency: f64,
-        /// The report.
-        report: Box<StepReport>,
-        /// The job's own account.
-        result: Box<JobResult>,
-    },
-    /// The job said it could not make the step.
-    Ended(Box<JobResult>),
-    /// The result is unusable (unreadable, a staged file missing or changed):
-    /// the step runs again.
-    Unusable(String),
+/// A step the service published from a job's result.
+#[derive(Debug)]
+pub struct Published {
+    /// Product.
+    pub path: PathBuf,
+    /// Manifest.
+    pub manifest: PathBuf,
+    /// Seconds from the last input to now.
+    pub latency: f64,
+    /// The report.
+    pub report: Box<StepReport>,
+}
+
+/// A job's result as the service took it: how the step ended (made means
+/// published now) and the job's own account.
+pub struct Taken {
+    /// How the step ended.
+    pub outcome: StepOutcome<Published>,
+    /// The job's result record.
+    pub result: Box<JobResult>,
 }
 
 /// Take a job's result: check each staged file against the record, stage
 /// the manifests beside them and publish the whole as one act
 /// ([`super::commit`]): recorded in the ledger, renamed into place, finished
-/// at the next start if a stop cuts it short.
-pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -> Taken {
+/// at the next start if a stop cuts it short. An error says why the result
+/// is unusable (unreadable, a staged file missing or changed): the step runs
+/// again.
+pub fn take(
+    spec: &JobSpec,
+    stage: &Path,
+    lock: &Mutex<()>,
+    journal: &Journal,
+) -> Result<Taken, String> {
     let result: JobResult = match std::fs::read(stage.join(RESULT))
         .map_err(|e| e.to_string())
         .and_then(|b| serde_json::from_slice(&b).map_err(|e| e.to_string()))
     {
         Ok(r) => r,
         Err(e) => {
-            return Taken::Unusable(format!(
+            return Err(format!(
                 "{}: unreadable result record: {e}",
                 stage.join(RESULT).display()
             ))
         }
     };
     if result.tag != spec.tag {
-        return Taken::Unusable(format!(
+        return Err(format!(
             "{}: the result is for {}, not {}",
             stage.join(RESULT).display(),
             result.tag,
             spec.tag
         ));
     }
-    let Ended::Made {
+    let Ended::Made(Staged {
         product,
         images,
         updated,
-    } = &result.ended
+    }) = &result.ended
     else {
-        return Taken::Ended(Box::new(result));
+        return Ok(Taken {
+            outcome: result.ended.failure().unwrap_or_default(),
+            result: Box::new(result),
+        });
     };
     // From here on a job that starts again finds no spec and does nothing.
     if stage.join(SPEC).exists() {
         if let Err(e) = std::fs::rename(stage.join(SPEC), stage.join(CLAIMED)) {
-            return Taken::Unusable(format!("{}: cannot take the spec: {e}", stage.display()));
+            return Err(format!("{}: cannot take the spec: {e}", stage.display()));
         }
     }
     let expected = spec.product_path();
     if expected.as_deref() != Some(product.target.as_path()) {
-        return Taken::Unusable(format!(
+        return Err(format!(
             "the job's product {} is not the step's file {}",
             product.target.display(),
             expected
@@ -703,9 +656,7 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
         .lock()
         .unwrap_or_else(std::sync::PoisonError::into_inner);
     for f in std::iter::once(product).chain(images).chain(updated) {
-        if let Err(e) = check_staged(f, stage, &spec.store) {
-            return Taken::Unusable(e);
-        }
+        check_staged(f, stage, &spec.store)?;
     }
     let image_paths: Vec<PathBuf> = images.iter().map(|f| f.target.clone()).collect();
     let updated_paths: Vec<PathBuf> = updated.iter().map(|f| f.target.clone()).collect();
@@ -713,7 +664,7 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
         .report
         .report(&product.target, image_paths, updated_paths);
     let Some(facts) = spec.facts() else {
-        return Taken::Unusable("the job spec's times do not parse".into());
+        return Err("the job spec's times do not parse".into());
     };
     let mut made = commit::Made {
         step: &spec.tag,
@@ -727,22 +678,19 @@ pub fn take(spec: &JobSpec, stage: &Path, lock: &Mutex<()>, journal: &Journal) -
     // tracks are made now, under the lock, by a process of their own, and
     // published with the step.
     stage_tracks(spec, &mut made);
-    let intent = match commit::stage_manifests(&made, &report, &facts) {
-        Ok(i) => i,
-        Err(e) => return Taken::Unusable(e),
-    };
-    if let Err(e) = commit::publish(journal, &intent) {
-        return Taken::Unusable(e);
-    }
+    let intent = commit::stage_manifests(&made, &report, &facts)?;
+    commit::publish(journal, &intent)?;
     let latency =
         (chrono::Utc::now().timestamp_millis() as f64 / 1000.0 - spec.last_input).max(0.0);
-    Taken::Published {
-        path: product.target.clone(),
-        manifest: PathBuf::from(&intent.publishing.manifest),
-        latency,
-        report: Box::new(report),
+    Ok(Taken {
+        outcome: StepOutcome::Made(Published {
+            path: product.target.clone(),
+            manifest: PathBuf::from(&intent.publishing.manifest),
+            latency,
+            report: Box::new(report),
+        }),
         result: Box::new(result),
-    }
+    })
 }
 
 /// The file a tracks process leaves in the staging directory: the tracks'
@@ -861,9 +809,9 @@ fn make_tracks(dir: &Path) -> Result<Vec<StagedFile>, String> {
         .map_err(|e| format!("{}: not a job spec: {e}", dir.join(CLAIMED).display()))?;
     let result: JobResult = serde_json::from_slice(&read(RESULT)?)
         .map_err(|e| format!("{}: not a result record: {e}", dir.join(RESULT).display()))?;
-    let Ended::Made {
+    let Ended::Made(Staged {
         product, updated, ..
-    } = &result.ended
+    }) = &result.ended
     else {
         return Err("the step made no product".into());
     };

@@ -8,6 +8,7 @@
 //! - [`assemble`]: fields grouped into steps; completeness; order.
 //! - [`intake`]: a step's messages read again from its files, the step found among them.
 //! - [`daemon`]: the main loop, workers, signals, reprocess requests.
+//! - [`decide`]: the daemon's decisions (where a step runs, what a run's end means) as pure functions.
 //! - [`batch`]: step jobs on a batch scheduler (Slurm): spec, result, taking it.
 //! - [`child`]: step processes on this machine, made and taken as batch jobs are.
 //! - [`job_state`]: the words a job's state is said in (Slurm's ended states, leeward's own).
@@ -26,6 +27,7 @@ pub mod batch;
 pub mod child;
 pub mod commit;
 pub mod daemon;
+pub mod decide;
 pub mod intake;
 pub mod job_state;
 pub mod ledger;

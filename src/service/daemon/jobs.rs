@@ -40,25 +40,8 @@ impl Job {
     }
 }
 
-/// What a worker reports.
-pub(super) enum JobOutcome {
-    Published {
-        path: PathBuf,
-        manifest: PathBuf,
-        latency: f64,
-        report: Box<StepReport>,
-    },
-    OutputFailed(String),
-    Vanished(PathBuf, String),
-    InputFailed(String),
-    Internal(String),
-    /// A batch job ended without a usable result (failed, cancelled, timed
-    /// out, lost, or its staged files did not check): run it again or give up.
-    BatchRetry {
-        state: String,
-        reason: String,
-    },
-}
+/// What a worker reports: how the step's run ended, made meaning published.
+pub(super) type JobOutcome = StepOutcome<batch::Published>;
 
 /// Where a step's batch job stands.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -103,95 +86,42 @@ pub(super) fn run_local(job: &Job, spec: &JobSpec, stage: &Path, log_format: &st
     if let Err(e) = std::fs::create_dir_all(&job.dir).and_then(|()| batch::write_spec(stage, spec))
     {
         commit::remove_stage(stage);
-        return JobOutcome::OutputFailed(format!(
-            "cannot prepare the staging directory {}: {e}",
-            stage.display()
-        ));
+        return JobOutcome::OutputFailed {
+            reason: format!(
+                "cannot prepare the staging directory {}: {e}",
+                stage.display()
+            ),
+        };
     }
     let outcome = match child::run(stage, log_format, batch::RESULT) {
-        Ok(ran) => local_outcome(batch::take(spec, stage, &job.lock, &job.journal), ran),
-        Err(reason) => JobOutcome::Internal(reason),
+        Ok(ran) => {
+            let taken = batch::take(spec, stage, &job.lock, &job.journal);
+            said_taken(&taken, Place::Here, Some(ran.seconds));
+            decide::taken_outcome(taken, Place::Here)
+        }
+        Err(reason) => JobOutcome::Internal { reason },
     };
     commit::remove_stage(stage);
     outcome
 }
 
-/// What a step process's taken result means for the step: as a local
-/// worker's outcome (output failures and unreadable inputs retried here).
-pub(super) fn local_outcome(t: Taken, ran: child::Ran) -> JobOutcome {
-    match t {
-        Taken::Published {
-            path,
-            manifest,
-            latency,
-            report,
-            result,
-        } => {
-            debug!(feed = %result.tag.feed, cycle = %result.tag.cycle, step = result.tag.lead, process_s = ran.seconds, peak_rss_mib = result.peak_rss_kib.map(|k| k / 1024), "step process's result taken");
-            JobOutcome::Published {
-                path,
-                manifest,
-                latency,
-                report,
-            }
+/// Say in the log that a job's result was taken (on the scheduler, with the
+/// job's facts at info; here, with the process's time and memory at debug).
+pub(super) fn said_taken(t: &Result<Taken, String>, at: Place, process_s: Option<f64>) {
+    let Ok(Taken {
+        outcome: StepOutcome::Made(_),
+        result: r,
+    }) = t
+    else {
+        return;
+    };
+    match at {
+        Place::Here => {
+            debug!(feed = %r.tag.feed, cycle = %r.tag.cycle, step = r.tag.lead, process_s, peak_rss_mib = r.peak_rss_kib.map(|k| k / 1024), "step process's result taken");
         }
-        Taken::Ended(r) => match r.ended {
-            batch::Ended::InputFailed { reason } => JobOutcome::InputFailed(reason),
-            batch::Ended::Internal { reason } => JobOutcome::Internal(reason),
-            batch::Ended::OutputFailed { reason } => JobOutcome::OutputFailed(reason),
-            batch::Ended::Vanished { file, reason } => JobOutcome::Vanished(file, reason),
-            batch::Ended::Made { .. } => {
-                JobOutcome::Internal("a made result was not taken (a defect in leeward)".into())
-            }
-        },
-        Taken::Unusable(reason) => JobOutcome::OutputFailed(reason),
-    }
-}
-
-/// What a taken batch result means for the step.
-pub(super) fn taken_outcome(t: Taken) -> JobOutcome {
-    match t {
-        Taken::Published {
-            path,
-            manifest,
-            latency,
-            report,
-            result,
-        } => {
-            info!(feed = %result.tag.feed, cycle = %result.tag.cycle, step = result.tag.lead, job = ?result.job_id, host = %result.host, restarts = result.restarts, attempt = result.attempt, "step job's result taken");
-            JobOutcome::Published {
-                path,
-                manifest,
-                latency,
-                report,
-            }
+        Place::Scheduler => {
+            info!(feed = %r.tag.feed, cycle = %r.tag.cycle, step = r.tag.lead, job = ?r.job_id, host = %r.host, restarts = r.restarts, attempt = r.attempt, "step job's result taken");
         }
-        Taken::Ended(r) => match r.ended {
-            batch::Ended::InputFailed { reason } => JobOutcome::InputFailed(reason),
-            batch::Ended::Internal { reason } => JobOutcome::Internal(reason),
-            batch::Ended::OutputFailed { reason } => JobOutcome::BatchRetry {
-                state: batch::outcome::UNWRITTEN.into(),
-                reason: format!(
-                    "the job on {} could not write the products: {reason}",
-                    r.host
-                ),
-            },
-            batch::Ended::Vanished { file, reason } => JobOutcome::BatchRetry {
-                state: batch::outcome::UNREADABLE.into(),
-                reason: format!(
-                    "the job on {} could not read {}: {reason}",
-                    r.host,
-                    file.display()
-                ),
-            },
-            batch::Ended::Made { .. } => {
-                JobOutcome::Internal("a made result was not taken (a defect in leeward)".into())
-            }
-        },
-        Taken::Unusable(reason) => JobOutcome::BatchRetry {
-            state: batch::outcome::UNUSABLE.into(),
-            reason,
-        },
     }
 }
 
@@ -222,21 +152,15 @@ impl Daemon {
                 .cloned()
                 .collect();
             let busy_chains: BTreeSet<(&str, Option<u8>, &str)> = busy.iter().map(chain).collect();
-            let local_free = self.running.len() < workers;
-            let sched_ok = self.scheduler_usable();
-            let jobs_free = self.jobs.len() < max_jobs;
+            let free = decide::Free {
+                worker: self.running.len() < workers,
+                job: self.jobs.len() < max_jobs,
+                scheduler: self.scheduler_usable(),
+                fallback,
+            };
             let pick = self.asm.next_where(self.cfg.service.order, &busy, |p| {
-                if busy_chains.contains(&chain(&p.tag)) {
-                    return false;
-                }
-                if self.executor(&p.tag.feed) == Executor::Local {
-                    return local_free;
-                }
-                if sched_ok {
-                    jobs_free
-                } else {
-                    fallback && local_free
-                }
+                !busy_chains.contains(&chain(&p.tag))
+                    && decide::place(self.executor(&p.tag.feed), free).is_some()
             });
             let Some(tag) = pick else {
                 break;
@@ -292,7 +216,8 @@ impl Daemon {
                     job_attempts,
                 });
             }
-            if self.executor(&tag.feed) == Executor::Slurm && sched_ok {
+            let at = decide::place(self.executor(&tag.feed), free);
+            if at == Some(Place::Scheduler) {
                 let attempt = self
                     .ledger
                     .state
@@ -305,7 +230,12 @@ impl Daemon {
                     Ok(()) => continue,
                     Err(e) => {
                         self.scheduler_down(&e);
-                        if !fallback || self.running.len() >= workers {
+                        let down = decide::Free {
+                            scheduler: false,
+                            worker: self.running.len() < workers,
+                            ..free
+                        };
+                        if decide::place(Executor::Slurm, down).is_none() {
                             if let Some(p) = self.asm.steps.get_mut(&tag) {
                                 p.phase = Phase::Ready { partial };
                             }
@@ -343,7 +273,7 @@ impl Daemon {
         self.pool.run(move || {
             let outcome =
                 crate::service::pool::guarded(|| run_local(&job, &spec, &stage, &log_format))
-                    .unwrap_or_else(JobOutcome::Internal);
+                    .unwrap_or_else(|reason| JobOutcome::Internal { reason });
             let _ = tx.send(Event::Done(JobDone {
                 tag: job.tag.clone(),
                 outcome,
@@ -353,8 +283,6 @@ impl Daemon {
 
     pub(super) fn backoff(&self, attempts: u32) -> Duration {
         let s = &self.cfg.service;
-        let secs = (s.retry_first_s * 2f64.powi(attempts.saturating_sub(1).min(30) as i32))
-            .min(s.retry_max_s);
-        Duration::from_secs_f64(secs)
+        decide::backoff(s.retry_first_s, s.retry_max_s, attempts)
     }
 }

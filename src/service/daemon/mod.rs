@@ -32,6 +32,7 @@ use super::assemble::{isobaric, Assembly, Contribution, Phase};
 use super::batch::{self, JobSpec, Scheduler, SchedulerError, Taken};
 use super::child;
 use super::commit;
+use super::decide::{self, AfterJob, AfterRun, Place};
 use super::ledger::{FailKind, Journal, Ledger, Outcome, Record, StepTag};
 use super::metrics::{Endpoint, Metrics};
 use super::pool::Pool;
@@ -46,8 +47,9 @@ use crate::escape::shown;
 use crate::ingest::catalogue::catalogue_file;
 use crate::ingest::grid::parse_grid;
 use crate::ingest::source::{checksum_file, checksum_ranges, open_input, InputError, Opened};
+use crate::outcome::StepOutcome;
 use crate::output::store::cycle_dir_name;
-use crate::pipeline::{grid_id, output_name, StepKey, StepReport};
+use crate::pipeline::{grid_id, output_name, StepKey};
 
 mod files;
 mod jobs;
@@ -56,7 +58,7 @@ mod slurm;
 mod start;
 mod upkeep;
 
-use jobs::{taken_outcome, InFlight, Job, JobDone, JobOutcome, JobPhase};
+use jobs::{said_taken, InFlight, Job, JobDone, JobOutcome, JobPhase};
 pub use start::serve;
 
 /// Where `leeward serve` takes its settings from.

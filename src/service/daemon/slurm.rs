@@ -136,9 +136,11 @@ impl Daemon {
                 let tx = self.events.clone();
                 self.pool.run(move || {
                     let outcome = crate::service::pool::guarded(|| {
-                        taken_outcome(batch::take(&spec, &stage, &lock, &journal))
+                        let taken = batch::take(&spec, &stage, &lock, &journal);
+                        said_taken(&taken, Place::Scheduler, None);
+                        decide::taken_outcome(taken, Place::Scheduler)
                     })
-                    .unwrap_or_else(|_| JobOutcome::BatchRetry {
+                    .unwrap_or_else(|_| JobOutcome::JobFailed {
                         state: "TAKE_FAILED".into(),
                         reason: "internal error while taking the result".into(),
                     });
@@ -235,27 +237,34 @@ impl Daemon {
             .or_default() += 1;
         let max = self.cfg.service.slurm.max_attempts;
         let attempt = j.spec.attempt;
-        if let Some(p) = self.asm.steps.get_mut(tag).filter(|p| p.more) {
-            // Input came since the job's spec was written: the next job is
-            // written afresh with all of it.
-            p.more = false;
-            p.phase = Phase::Waiting;
-            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, reason = %reason, log = %log_text, "step job ended without a result; made again with the input that came meanwhile");
-        } else if attempt < max {
-            let wait = self.backoff(attempt);
-            warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, attempt, max_attempts = max, retry_in_s = wait.as_secs_f64(), reason = %reason, log = %log_text, "step job ended without a result; submitting again");
-            self.metrics().scheduler.retries += 1;
-            j.phase = JobPhase::Resubmit {
-                at: Instant::now() + wait,
-            };
-            self.jobs.insert(tag.clone(), j);
-        } else {
-            self.asm.steps.remove(tag);
-            self.fail(
-                tag,
-                FailKind::Job,
-                format!("{reason}; {attempt} of {max} attempts used; {log_text}"),
-            );
+        let more = self.asm.steps.get(tag).is_some_and(|p| p.more);
+        match decide::after_job(more, attempt, max) {
+            AfterJob::WaitAgain => {
+                // Input came since the job's spec was written: the next job is
+                // written afresh with all of it.
+                if let Some(p) = self.asm.steps.get_mut(tag) {
+                    p.more = false;
+                    p.phase = Phase::Waiting;
+                }
+                warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, reason = %reason, log = %log_text, "step job ended without a result; made again with the input that came meanwhile");
+            }
+            AfterJob::Resubmit => {
+                let wait = self.backoff(attempt);
+                warn!(feed = %tag.feed, cycle = %tag.cycle, step = tag.lead, job = %j.job, state = %state, attempt, max_attempts = max, retry_in_s = wait.as_secs_f64(), reason = %reason, log = %log_text, "step job ended without a result; submitting again");
+                self.metrics().scheduler.retries += 1;
+                j.phase = JobPhase::Resubmit {
+                    at: Instant::now() + wait,
+                };
+                self.jobs.insert(tag.clone(), j);
+            }
+            AfterJob::GiveUp => {
+                self.asm.steps.remove(tag);
+                self.fail(
+                    tag,
+                    FailKind::Job,
+                    format!("{reason}; {attempt} of {max} attempts used; {log_text}"),
+                );
+            }
         }
     }
 
