@@ -144,6 +144,19 @@ impl Output {
 }
 
 impl Config {
+    /// The settings a step of feed `f` is made with, and all a job spec
+    /// carries: the file's product, output, quicklook and cyclone settings,
+    /// with the feed's own `products` table where it has one; no service
+    /// settings and no feed but none (the step needs neither).
+    pub fn for_feed(&self, f: &crate::service::settings::Feed) -> Config {
+        Config {
+            products: f.products.clone().unwrap_or_else(|| self.products.clone()),
+            service: crate::service::settings::Service::default(),
+            feed: Vec::new(),
+            ..self.clone()
+        }
+    }
+
     /// Parse and validate TOML text; `origin` names it in messages.
     pub fn from_toml(text: &str, origin: &str) -> Result<Config, ConfigError> {
         Config::from_toml_with(text, origin, |_| {})
@@ -509,6 +522,34 @@ fn prune(v: &mut toml::Value, known: &toml::Value, feed: &toml::Value, products:
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_feeds_step_settings_hold_its_products_and_nothing_of_the_service_or_other_feeds() {
+        let text = r#"
+[products]
+vorticity = true
+[service]
+watch_dir = "/srv/in"
+out_dir = "/srv/out"
+state_dir = "/srv/state"
+[[feed]]
+name = "alps"
+levels_hpa = [500.0]
+[feed.products]
+vorticity = false
+[[feed]]
+name = "coast"
+levels_hpa = [500.0]
+"#;
+        let cfg = Config::from_toml(text, "test").unwrap();
+        let alps = cfg.for_feed(&cfg.feed[0]);
+        assert!(!alps.products.vorticity);
+        assert!(alps.feed.is_empty());
+        assert_eq!(alps.service, crate::service::settings::Service::default());
+        assert_eq!(alps.isentropic, cfg.isentropic);
+        let coast = cfg.for_feed(&cfg.feed[1]);
+        assert!(coast.products.vorticity);
+    }
 
     #[test]
     fn check_reports_every_planted_error_in_one_run() {

@@ -909,7 +909,7 @@ pub fn keep_log(stage: &Path, state_dir: &Path, tag: &StepTag, job: &str) -> Opt
     if !from.exists() {
         return None;
     }
-    let dir = state_dir.join("job-logs");
+    let dir = super::state_dir::StateDir(state_dir).job_logs();
     std::fs::create_dir_all(&dir).ok()?;
     let to = dir.join(format!("{}.{job}.log", job_name(tag)));
     std::fs::copy(&from, &to).ok()?;

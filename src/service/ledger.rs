@@ -19,6 +19,8 @@ use std::sync::{Arc, Mutex};
 use serde::{Deserialize, Serialize};
 use thiserror::Error;
 
+use super::state_dir::StateDir;
+
 /// Why the ledger could not be used.
 #[derive(Debug, Error)]
 pub enum LedgerError {
@@ -871,12 +873,12 @@ fn replay(file: &File, state: &mut State) -> std::io::Result<(u64, usize, usize)
 }
 
 /// The journal's file name in the state directory.
-pub const FILE_NAME: &str = "ledger.jsonl";
+pub const FILE_NAME: &str = super::state_dir::JOURNAL;
 
 /// Read the state of a journal without changing it (for `leeward status`,
 /// which may run beside the service).
 pub fn read_state(state_dir: &Path) -> Result<State, LedgerError> {
-    let path = state_dir.join(FILE_NAME);
+    let path = StateDir(state_dir).journal();
     let io = |source| LedgerError::Io {
         path: path.clone(),
         source,
@@ -895,7 +897,7 @@ fn identity(m: &std::fs::Metadata) -> (u64, u64) {
 
 /// The lock file that keeps two services off one state directory.
 pub fn lock_path(state_dir: &Path) -> PathBuf {
-    state_dir.join("leeward.lock")
+    StateDir(state_dir).lock()
 }
 
 /// Hold the state directory for this process, in a way that survives the
@@ -1114,7 +1116,7 @@ pub struct Ledger {
 impl Ledger {
     /// Open (or create) the journal in `state_dir`, replay it, and cut a torn last line.
     pub fn open(state_dir: &Path) -> Result<Ledger, LedgerError> {
-        let path = state_dir.join(FILE_NAME);
+        let path = StateDir(state_dir).journal();
         let io = |source| LedgerError::Io {
             path: path.clone(),
             source,

@@ -17,6 +17,7 @@
 //! - [`ledger`]: the durable journal of what happened.
 //! - [`pool`]: the worker threads steps run on, kept for the service's life.
 //! - [`metrics`]: the health and metrics endpoint.
+//! - [`state_dir`]: every path under the state directory.
 //! - [`shutdown`]: the one stop the loop, the workers and the endpoint share.
 //! - [`systemd`]: readiness, watchdog and status notifications.
 //! - [`status`]: `leeward status`, from the ledger.
@@ -36,6 +37,7 @@ pub mod pool;
 pub mod publish;
 pub mod settings;
 pub mod shutdown;
+pub mod state_dir;
 pub mod status;
 pub mod systemd;
 pub mod waiting;

@@ -186,7 +186,7 @@ impl Service {
     /// The quarantine directory in effect.
     pub fn quarantine_dir(&self) -> PathBuf {
         if self.quarantine_dir.as_os_str().is_empty() {
-            self.state_dir.join("quarantine")
+            super::state_dir::StateDir(&self.state_dir).quarantine()
         } else {
             self.quarantine_dir.clone()
         }

@@ -73,7 +73,7 @@ pub struct Waiting {
 
 /// The file's path in a state directory.
 pub fn path(state_dir: &Path) -> PathBuf {
-    state_dir.join("waiting.json")
+    super::state_dir::StateDir(state_dir).waiting()
 }
 
 /// Replace the file.

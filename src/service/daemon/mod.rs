@@ -39,6 +39,7 @@ use super::pool::Pool;
 use super::publish;
 use super::settings::{Executor, FeedRule, FileRole, QuarantineMode, Unreachable};
 use super::shutdown::Shutdown;
+use super::state_dir::StateDir;
 use super::systemd::{status_line, Notifier};
 use super::waiting::{self, Waiting, WaitingStep};
 use super::watch::{watch_with, Watcher};
@@ -97,7 +98,7 @@ pub struct ReprocessRequest {
 
 /// The requests directory of a state directory.
 pub fn requests_dir(state_dir: &Path) -> PathBuf {
-    state_dir.join("requests")
+    StateDir(state_dir).requests()
 }
 
 /// The lock file that keeps two services off one state directory.
@@ -137,12 +138,7 @@ fn rules_of(cfg: &Config) -> Result<Rules, String> {
     for f in &cfg.feed {
         let r = FeedRule::new(f, &cfg.service, &cfg.products)
             .map_err(|e| format!("feed {}: {e}", f.name))?;
-        let mut c = cfg.clone();
-        if let Some(p) = &f.products {
-            c.products = p.clone();
-        }
-        c.feed.clear();
-        cfgs.insert(f.name.clone(), Arc::new(c));
+        cfgs.insert(f.name.clone(), Arc::new(cfg.for_feed(f)));
         rules.push(r);
     }
     Ok((rules, cfgs))
