@@ -148,6 +148,8 @@ impl Default for Isentropic {
 pub struct Products {
     /// Relative and absolute vorticity on isobaric levels (`zeta`, `eta`).
     pub vorticity: bool,
+    /// Horizontal divergence on isobaric levels (`div`); off unless asked for.
+    pub divergence: bool,
     /// Potential temperature, -dtheta/dp and N^2 on isobaric levels (`theta`, `stab`, `n2`).
     pub stability: bool,
     /// Mask isobaric levels below the ground where surface pressure or orography is in the input.
@@ -189,6 +191,7 @@ impl Products {
     /// changes in time and the budget only add to those).
     pub fn any(&self) -> bool {
         self.vorticity
+            || self.divergence
             || self.stability
             || self.isobaric_pv
             || self.isentropic
@@ -202,6 +205,7 @@ impl Default for Products {
     fn default() -> Self {
         Products {
             vorticity: true,
+            divergence: false,
             stability: true,
             mask_below_ground: true,
             isobaric_pv: true,

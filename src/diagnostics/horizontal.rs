@@ -8,6 +8,7 @@
 
 use ndarray::{Array2, ArrayView2};
 
+use super::divergence::{divergence_conformal, divergence_sphere};
 use super::vorticity::{relative_vorticity_conformal, relative_vorticity_sphere};
 use crate::geometry::ops::{ddx_uniform, ddy_nonuniform};
 use crate::geometry::{Grid, Horizontal};
@@ -65,6 +66,25 @@ impl<'g> Plane<'g> {
                 let dx = if x.len() > 1 { x[1] - x[0] } else { f64::NAN };
                 let dy = if y.len() > 1 { y[1] - y[0] } else { f64::NAN };
                 relative_vorticity_conformal(u, v, self.m.view(), dx, dy)
+            }
+        }
+    }
+
+    /// Horizontal divergence of a wind given in the grid's axes (see
+    /// [`divergence_sphere`] and [`divergence_conformal`]).
+    pub fn divergence(&self, u: ArrayView2<f64>, v: ArrayView2<f64>) -> Array2<f64> {
+        let g = self.grid;
+        match &g.horizontal {
+            Horizontal::LatLon { lat, lon, .. } => {
+                divergence_sphere(u, v, lat, lon, g.radius(), g.periodic())
+            }
+            Horizontal::Rotated { rlat, rlon, .. } => {
+                divergence_sphere(u, v, rlat, rlon, g.radius(), g.periodic())
+            }
+            Horizontal::Projected { x, y, .. } => {
+                let dx = if x.len() > 1 { x[1] - x[0] } else { f64::NAN };
+                let dy = if y.len() > 1 { y[1] - y[0] } else { f64::NAN };
+                divergence_conformal(u, v, self.m.view(), dx, dy)
             }
         }
     }

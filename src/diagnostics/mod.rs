@@ -8,6 +8,7 @@
 pub mod baroclinic;
 pub mod budget;
 pub mod constants;
+pub mod divergence;
 pub mod horizontal;
 pub mod isentropic;
 pub mod moisture;

@@ -37,6 +37,15 @@ pub const ETA: VarSpec = VarSpec {
     formula: "eta = zeta + f, f = 2 Omega sin(latitude), Omega = 7.292115e-5 s-1",
 };
 
+/// Horizontal divergence on isobaric levels.
+pub const DIV: VarSpec = VarSpec {
+    name: "div",
+    standard_name: Some("divergence_of_wind"),
+    long_name: "horizontal divergence",
+    units: "s-1",
+    formula: "D = (1/(a cos phi)) (du/dlambda + d(v cos phi)/dphi) on latitude/longitude grids; D = m^2 (d(u/m)/dx + d(v/m)/dy) on conformal projections (Holton; Haltiner and Williams 1980)",
+};
+
 /// Potential temperature on isobaric levels.
 pub const THETA: VarSpec = VarSpec {
     name: "theta",

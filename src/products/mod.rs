@@ -35,6 +35,7 @@ use crate::output::variables;
 use crate::pipeline::{describe, InputFile, Issue, Step, StepReport};
 
 mod columns;
+mod divergence;
 mod inputs;
 mod isentropic;
 mod isobaric_pv;
@@ -324,6 +325,10 @@ fn isobaric<'c>(
         if needs.vort {
             fields.push(seal.sealed(variables::ZETA, Vertical::Pressure, zeta));
             fields.push(seal.sealed_copy(variables::ETA, Vertical::Pressure, &eta));
+        }
+        if needs.div {
+            let d = divergence::divergence(cx.plane, ug, vg);
+            fields.push(seal.sealed(variables::DIV, Vertical::Pressure, d));
         }
         eta
     });

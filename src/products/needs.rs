@@ -32,6 +32,7 @@ pub(super) struct Needs {
     pub have_t: bool,
     pub have_w: bool,
     pub vort: bool,
+    pub div: bool,
     pub stab: bool,
     pub pv: bool,
     pub isen: bool,
@@ -87,6 +88,7 @@ impl Needs {
         let mslp = pr.mslp || pr.cyclones;
         let mut n = Needs {
             vort: pr.vorticity && have_w,
+            div: pr.divergence && have_w,
             stab: pr.stability && have_t,
             pv: pr.isobaric_pv && have_t && have_w,
             isen: pr.isentropic && have_t,
@@ -113,8 +115,10 @@ impl Needs {
             have_t,
             have_w,
         };
-        if (pr.vorticity || pr.isobaric_pv || pr.tropopause || pr.layer_pv) && !have_w {
-            missing.push("isobaric u and v: no vorticity or PV".into());
+        if (pr.vorticity || pr.divergence || pr.isobaric_pv || pr.tropopause || pr.layer_pv)
+            && !have_w
+        {
+            missing.push("isobaric u and v: no vorticity, divergence or PV".into());
         }
         if (pr.stability || pr.isentropic || pr.isobaric_pv || pr.tropopause || pr.layer_pv)
             && !have_t
@@ -123,11 +127,11 @@ impl Needs {
                 "isobaric temperature: no theta, stability, PV or isentropic products".into(),
             );
         }
-        if !(n.vort || n.stab || n.pv || n.isen || n.trop || n.layer || n.thick) {
+        if !(n.vort || n.div || n.stab || n.pv || n.isen || n.trop || n.layer || n.thick) {
             return Err(n.lacking(cfg));
         }
         n.need_t = n.stab || n.pv || n.isen || n.trop || n.layer || n.thick;
-        n.need_w = n.vort || n.pv || n.isen || n.trop || n.layer;
+        n.need_w = n.vort || n.div || n.pv || n.isen || n.trop || n.layer;
         n.need_z_products = n.isen || n.trop || n.thick;
         if n.need_z_products && n.z_levels.is_empty() {
             missing.push("isobaric geopotential height: no isen_z, isen_m, trop_z".into());
