@@ -8,6 +8,11 @@
 //! and updates of later steps or the next cycle published before this one
 //! (steps arrive in any order). A change is computed only from published
 //! files, which leeward writes only once a step is complete.
+//!
+//! Here the files are found, read and added to; the variables written are in
+//! [`crate::output::variables::changes`] and [`crate::output::variables::budget`],
+//! the formulas at each point in [`crate::diagnostics::change`] and
+//! [`crate::diagnostics::budget`].
 
 use std::path::{Path, PathBuf};
 
@@ -15,6 +20,7 @@ use chrono::{NaiveDateTime, TimeDelta};
 use ndarray::Array3;
 use tracing::{info, warn};
 
+use crate::diagnostics::change::difference;
 use crate::output::cf::{Product, Vertical};
 use crate::output::precision::KeptBits;
 use crate::output::store::{
@@ -60,11 +66,6 @@ impl Run<'_> {
             _ => path.to_path_buf(),
         }
     }
-}
-
-/// Change of a field between two times: later minus earlier, per point (NaN where either is missing).
-pub fn difference(later: &Array3<f32>, earlier: &Array3<f32>) -> Option<Array3<f32>> {
-    (later.dim() == earlier.dim()).then(|| later - earlier)
 }
 
 fn same_coords(a: &[f64], b: &[f64]) -> bool {
@@ -118,8 +119,8 @@ pub fn within_cycle_of(
         else {
             continue;
         };
-        if let Some(d) =
-            earlier_value(&earlier.path, what.name, this.0).and_then(|e| difference(this.1, &e))
+        if let Some(d) = earlier_value(&earlier.path, what.name, this.0)
+            .and_then(|e| difference(this.1.view(), e.view()))
         {
             info!(file = %earlier.path.display(), hours = h, field = what.name, "change from an earlier step");
             out.push(Product::new((what.spec)(h), what.vertical, d));
@@ -154,7 +155,9 @@ fn r2r_products(earlier: &Path, fields: &Fields<'_>) -> Vec<Product> {
         let Some((spec, vertical)) = r2r_spec(name) else {
             continue;
         };
-        if let Some(d) = earlier_value(earlier, name, coords).and_then(|e| difference(data, &e)) {
+        if let Some(d) =
+            earlier_value(earlier, name, coords).and_then(|e| difference(data.view(), e.view()))
+        {
             let mut p = Product::new(spec, vertical, d);
             p.notes.push((
                 "leeward_previous_cycle_file",
@@ -263,8 +266,8 @@ pub fn update_later(
                 let Some((spec, vertical)) = r2r_spec(name) else {
                     continue;
                 };
-                if let Some(d) =
-                    earlier_value(&next.path, name, coords).and_then(|l| difference(&l, this))
+                if let Some(d) = earlier_value(&next.path, name, coords)
+                    .and_then(|l| difference(l.view(), this.view()))
                 {
                     let mut p = Product::new(spec, vertical, d);
                     let name = this_file
@@ -304,8 +307,8 @@ fn later_in_cycle(
         else {
             continue;
         };
-        if let Some(d) =
-            earlier_value(&later.path, what.name, coords).and_then(|l| difference(&l, this))
+        if let Some(d) = earlier_value(&later.path, what.name, coords)
+            .and_then(|l| difference(l.view(), this.view()))
         {
             let prods = vec![Product::new((what.spec)(h), what.vertical, d)];
             updated.extend(update(run, &later.path, prods, deflate, kept));
@@ -419,7 +422,9 @@ fn layer_budget(
     dt_h: f64,
     read: &Read<'_>,
 ) -> Option<(Vec<Product>, usize)> {
-    use crate::diagnostics::budget::{at_departure, departure_points, stretching, Parts, Status};
+    use crate::diagnostics::budget::{
+        at_departure, departure_points, layer_absolute_vorticity, ColumnBudget, Status,
+    };
     use ndarray::Axis;
     let (uo, vo, un, vn) = (
         read(old, "layer_u")?,
@@ -449,7 +454,8 @@ fn layer_budget(
             &g.trajectories,
         );
         not_converged += d.not_converged();
-        let eta_old = &pvo.index_axis(Axis(0), l) * &dpo.index_axis(Axis(0), l);
+        let eta_old =
+            layer_absolute_vorticity(pvo.index_axis(Axis(0), l), dpo.index_axis(Axis(0), l));
         let eta_d = at_departure(eta_old.view(), &d, g.periodic);
         let dp_d = at_departure(dpo.index_axis(Axis(0), l), &d, g.periodic);
         let f_d = at_departure(g.f.view(), &d, g.periodic);
@@ -458,17 +464,22 @@ fn layer_budget(
             if *st != Status::Converged {
                 continue;
             }
-            let (dpa, fa) = (dpn[(l, j, i)], g.f[(j, i)]);
-            let parts = Parts::of(eta_d[(j, i)], f_d[(j, i)], fa, dp_d[(j, i)], dpa);
-            let actual = pvn[(l, j, i)] * dpa - fa;
+            let b = ColumnBudget::of(
+                eta_d[(j, i)],
+                f_d[(j, i)],
+                g.f[(j, i)],
+                dp_d[(j, i)],
+                dpn[(l, j, i)],
+                pvn[(l, j, i)],
+            );
             let values = [
-                parts.predicted(),
-                parts.zeta_departure,
-                parts.stretching,
-                parts.coriolis,
-                actual,
-                actual - parts.predicted(),
-                stretching(dp_d[(j, i)], dpa),
+                b.parts.predicted(),
+                b.parts.zeta_departure,
+                b.parts.stretching,
+                b.parts.coriolis,
+                b.actual,
+                b.residual,
+                b.stretch,
             ];
             for (k, x) in values.into_iter().enumerate() {
                 out[k][(l, j, i)] = x as f32;
@@ -510,7 +521,7 @@ fn surface_budget(
     dt_h: f64,
     read: &Read<'_>,
 ) -> Option<(Vec<Product>, usize)> {
-    use crate::diagnostics::budget::{at_departure, departure_points, Status};
+    use crate::diagnostics::budget::{at_departure, departure_points, lagrangian_rate, Status};
     use ndarray::Axis;
     let (uo, vo, un, vn) = (
         read(old, "isen_u")?,
@@ -547,7 +558,8 @@ fn surface_budget(
             flags[(s, j, i)] = flag(*st);
             if *st == Status::Converged {
                 // PV is read in K m2 kg-1 s-1: the rate is per second.
-                rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / (dt_h * 3600.0)) as f32;
+                rate[(s, j, i)] =
+                    lagrangian_rate(pvn[(s, j, i)], pv_d[(j, i)], dt_h * 3600.0) as f32;
             }
         }
     }
