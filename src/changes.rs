@@ -8,21 +8,26 @@
 //! and updates of later steps or the next cycle published before this one
 //! (steps arrive in any order). A change is computed only from published
 //! files, which leeward writes only once a step is complete.
+//!
+//! Here the files are found, read and added to; the variables written are in
+//! [`crate::output::variables::changes`] and [`crate::output::variables::budget`],
+//! the formulas at each point in [`crate::diagnostics::change`] and
+//! [`crate::diagnostics::budget`].
 
-use std::collections::HashMap;
 use std::path::{Path, PathBuf};
-use std::sync::{Mutex, OnceLock};
 
 use chrono::{NaiveDateTime, TimeDelta};
 use ndarray::Array3;
 use tracing::{info, warn};
 
+use crate::diagnostics::change::difference;
 use crate::output::cf::{Product, Vertical};
 use crate::output::precision::KeptBits;
 use crate::output::store::{
     add_variables, add_variables_to, published_where, read_field, Published,
 };
-use crate::output::variables::VarSpec;
+use crate::output::variables::budget::{self, NOT_CONVERGED_ATTR};
+use crate::output::variables::changes::{r2r_spec, Tendency, THICK_TENDENCY};
 
 /// What identifies the model run a step belongs to.
 #[derive(Debug, Clone)]
@@ -62,113 +67,6 @@ impl Run<'_> {
         }
     }
 }
-
-/// Change of a field between two times: later minus earlier, per point (NaN where either is missing).
-pub fn difference(later: &Array3<f32>, earlier: &Array3<f32>) -> Option<Array3<f32>> {
-    (later.dim() == earlier.dim()).then(|| later - earlier)
-}
-
-fn intern(name: String) -> &'static str {
-    static NAMES: OnceLock<Mutex<HashMap<String, &'static str>>> = OnceLock::new();
-    let map = NAMES.get_or_init(|| Mutex::new(HashMap::new()));
-    let mut m = match map.lock() {
-        Ok(m) => m,
-        Err(p) => p.into_inner(),
-    };
-    if let Some(s) = m.get(&name) {
-        return s;
-    }
-    let s: &'static str = Box::leak(name.clone().into_boxed_str());
-    m.insert(name, s);
-    s
-}
-
-/// The variable for the thickness change over `hours`.
-pub fn thickness_change_spec(hours: u32) -> VarSpec {
-    VarSpec {
-        name: intern(format!("thick_chg_{hours:02}h")),
-        standard_name: None,
-        long_name: intern(format!("change of layer thickness over the previous {hours} h")),
-        units: "m",
-        formula: "thick(this step) - thick(the step of the same cycle valid that many hours earlier), both read from published files",
-    }
-}
-
-/// The variable for the mean sea-level pressure change over `hours`.
-pub fn mslp_change_spec(hours: u32) -> VarSpec {
-    VarSpec {
-        name: intern(format!("mslp_chg_{hours:02}h")),
-        standard_name: None,
-        long_name: intern(format!(
-            "change of mean sea-level pressure over the previous {hours} h"
-        )),
-        units: "Pa",
-        formula: "mslp(this step) - mslp(the step of the same cycle valid that many hours earlier), both read from published files",
-    }
-}
-
-/// Run-to-run change of mean sea-level pressure.
-pub const MSLP_R2R: VarSpec = VarSpec {
-    name: "mslp_r2r",
-    standard_name: None,
-    long_name: "mean sea-level pressure of this cycle minus that of the previous cycle at the same valid time",
-    units: "Pa",
-    formula: "mslp(this cycle) - mslp(previous cycle), same valid time",
-};
-
-/// A field whose change over the intervals of a cycle is made, with its change
-/// variable and vertical coordinate.
-#[derive(Clone, Copy)]
-pub struct Tendency {
-    /// The field's name in the files.
-    pub name: &'static str,
-    /// The change's variable for an interval in hours.
-    pub spec: fn(u32) -> VarSpec,
-    /// Its vertical coordinate.
-    pub vertical: Vertical,
-}
-
-/// Thickness and its change.
-pub const THICK_TENDENCY: Tendency = Tendency {
-    name: "thick",
-    spec: thickness_change_spec,
-    vertical: Vertical::PressureLayer,
-};
-
-/// Mean sea-level pressure and its change.
-pub const MSLP_TENDENCY: Tendency = Tendency {
-    name: "mslp",
-    spec: mslp_change_spec,
-    vertical: Vertical::Surface,
-};
-
-/// Run-to-run change of the thickness.
-pub const THICK_R2R: VarSpec = VarSpec {
-    name: "thick_r2r",
-    standard_name: None,
-    long_name: "layer thickness of this cycle minus that of the previous cycle at the same valid time",
-    units: "m",
-    formula: "thick(this cycle) - thick(previous cycle), same valid time, previous cycle read from its published file",
-};
-
-/// Run-to-run change of isobaric geopotential height.
-pub const Z_R2R: VarSpec = VarSpec {
-    name: "z_r2r",
-    standard_name: None,
-    long_name:
-        "geopotential height of this cycle minus that of the previous cycle at the same valid time",
-    units: "m",
-    formula: "z(this cycle) - z(previous cycle), same valid time",
-};
-
-/// Run-to-run change of the dynamic tropopause pressure.
-pub const TROP_P_R2R: VarSpec = VarSpec {
-    name: "trop_p_r2r",
-    standard_name: None,
-    long_name: "dynamic tropopause pressure of this cycle minus that of the previous cycle at the same valid time",
-    units: "Pa",
-    formula: "trop_p(this cycle) - trop_p(previous cycle), same valid time",
-};
 
 fn same_coords(a: &[f64], b: &[f64]) -> bool {
     a.len() == b.len()
@@ -221,8 +119,8 @@ pub fn within_cycle_of(
         else {
             continue;
         };
-        if let Some(d) =
-            earlier_value(&earlier.path, what.name, this.0).and_then(|e| difference(this.1, &e))
+        if let Some(d) = earlier_value(&earlier.path, what.name, this.0)
+            .and_then(|e| difference(this.1.view(), e.view()))
         {
             info!(file = %earlier.path.display(), hours = h, field = what.name, "change from an earlier step");
             out.push(Product::new((what.spec)(h), what.vertical, d));
@@ -251,24 +149,15 @@ pub fn run_to_run(run: &Run<'_>, fields: &Fields<'_>) -> Vec<Product> {
     r2r_products(&prev.path, fields)
 }
 
-/// The run-to-run variable and its vertical coordinate for a compared field.
-fn r2r_spec(name: &str) -> Option<(VarSpec, Vertical)> {
-    match name {
-        "thick" => Some((THICK_R2R, Vertical::PressureLayer)),
-        "z" => Some((Z_R2R, Vertical::Pressure)),
-        "trop_p" => Some((TROP_P_R2R, Vertical::PvSurface)),
-        "mslp" => Some((MSLP_R2R, Vertical::Surface)),
-        _ => None,
-    }
-}
-
 fn r2r_products(earlier: &Path, fields: &Fields<'_>) -> Vec<Product> {
     let mut out = Vec::new();
     for (name, coords, data) in fields {
         let Some((spec, vertical)) = r2r_spec(name) else {
             continue;
         };
-        if let Some(d) = earlier_value(earlier, name, coords).and_then(|e| difference(data, &e)) {
+        if let Some(d) =
+            earlier_value(earlier, name, coords).and_then(|e| difference(data.view(), e.view()))
+        {
             let mut p = Product::new(spec, vertical, d);
             p.notes.push((
                 "leeward_previous_cycle_file",
@@ -377,8 +266,8 @@ pub fn update_later(
                 let Some((spec, vertical)) = r2r_spec(name) else {
                     continue;
                 };
-                if let Some(d) =
-                    earlier_value(&next.path, name, coords).and_then(|l| difference(&l, this))
+                if let Some(d) = earlier_value(&next.path, name, coords)
+                    .and_then(|l| difference(l.view(), this.view()))
                 {
                     let mut p = Product::new(spec, vertical, d);
                     let name = this_file
@@ -418,8 +307,8 @@ fn later_in_cycle(
         else {
             continue;
         };
-        if let Some(d) =
-            earlier_value(&later.path, what.name, coords).and_then(|l| difference(&l, this))
+        if let Some(d) = earlier_value(&later.path, what.name, coords)
+            .and_then(|l| difference(l.view(), this.view()))
         {
             let prods = vec![Product::new((what.spec)(h), what.vertical, d)];
             updated.extend(update(run, &later.path, prods, deflate, kept));
@@ -449,130 +338,13 @@ pub fn update_later_of(
     later_in_cycle(run, &files, what, this, intervals, deflate, kept)
 }
 
-/// Budget variables on isentropic layers and surfaces.
-pub mod budget_vars {
-    use crate::output::cf::Vertical;
-    use crate::output::variables::VarSpec;
-
-    /// Predicted relative vorticity.
-    pub const ZETA_PRED: VarSpec = VarSpec {
-        name: "bud_zeta_pred",
-        standard_name: None,
-        long_name: "relative vorticity the layer's column would have on arrival if (zeta + f)/depth were conserved along its trajectory since the previous step",
-        units: "s-1",
-        formula: "eta_d depth_a/depth_d - f_a = bud_zeta_dep + bud_zeta_stretch + bud_zeta_beta; eta_d, depth_d and f_d at the departure point of the layer-mean wind's semi-Lagrangian trajectory, depth_a and f_a on arrival (column-depth PV conservation; docs/references.md)",
-    };
-    /// Relative vorticity at the departure point.
-    pub const ZETA_DEP: VarSpec = VarSpec {
-        name: "bud_zeta_dep",
-        standard_name: None,
-        long_name: "relative vorticity of the layer at the departure point, at the previous step",
-        units: "s-1",
-        formula: "zeta_d = eta_d - f_d, bilinear at the departure point",
-    };
-    /// Stretching part of the predicted change.
-    pub const ZETA_STRETCH: VarSpec = VarSpec {
-        name: "bud_zeta_stretch",
-        standard_name: None,
-        long_name: "change of the layer's relative vorticity that the change of its pressure depth alone makes along the trajectory (stretching part)",
-        units: "s-1",
-        formula: "eta_d (depth_a/depth_d - 1); cyclonic (same sign as f) where the column is stretched",
-    };
-    /// Coriolis part of the predicted change.
-    pub const ZETA_BETA: VarSpec = VarSpec {
-        name: "bud_zeta_beta",
-        standard_name: None,
-        long_name: "change of the layer's relative vorticity that the change of the Coriolis parameter along the trajectory makes with absolute vorticity kept (Coriolis part)",
-        units: "s-1",
-        formula: "-(f_a - f_d): poleward motion takes relative vorticity away in the north",
-    };
-    /// Actual relative vorticity of the layer.
-    pub const ZETA: VarSpec = VarSpec {
-        name: "bud_zeta",
-        standard_name: None,
-        long_name: "relative vorticity of the layer-mean wind on arrival",
-        units: "s-1",
-        formula: "layer_pv * layer_dp - f",
-    };
-    /// Actual minus predicted.
-    pub const ZETA_DIFF: VarSpec = VarSpec {
-        name: "bud_zeta_diff",
-        standard_name: None,
-        long_name: "actual minus conserved-PV prediction of the layer's relative vorticity",
-        units: "s-1",
-        formula: "bud_zeta - bud_zeta_pred; non-zero where heating, radiation or friction changes the column's PV, and where the layer-mean trajectory does not follow the column (vertical wind shear across a deep layer), or the trajectory or interpolation is in error",
-    };
-    /// Fractional depth change.
-    pub const STRETCH: VarSpec = VarSpec {
-        name: "bud_stretch",
-        standard_name: None,
-        long_name:
-            "fractional change of the layer's pressure depth along the trajectory (stretching > 0)",
-        units: "1",
-        formula: "(depth_a - depth_d)/depth_d",
-    };
-    /// Layer trajectories that did not converge.
-    pub const UNCONVERGED: VarSpec = VarSpec {
-        name: "bud_unconverged",
-        standard_name: None,
-        long_name: "1 where the layer-mean wind's trajectory did not converge (the layer budget is missing there), 0 where it did",
-        units: "1",
-        formula: "midpoint iteration of each sub-step stopped when two successive departure points lie within the tolerance (leeward_trajectory_tolerance_m); missing where the trajectory left the grid or met missing winds",
-    };
-    /// Lagrangian rate of change of PV on isentropic surfaces.
-    pub const DPVDT: VarSpec = VarSpec {
-        name: "bud_dpvdt",
-        standard_name: None,
-        long_name:
-            "rate of change of Ertel potential vorticity following the wind on the isentropic surface (1 PVU per hour = 2.78e-10 K m2 kg-1 s-2)",
-        units: "K m2 kg-1 s-2",
-        formula:
-            "(P_a - P_d)/dt, P_d at the departure point of the surface's own winds; where air is heated or cooled it crosses the surface, which this trajectory does not follow",
-    };
-    /// Surface trajectories that did not converge.
-    pub const DPVDT_UNCONVERGED: VarSpec = VarSpec {
-        name: "bud_dpvdt_unconverged",
-        standard_name: None,
-        long_name: "1 where the isentropic surface wind's trajectory did not converge (bud_dpvdt is missing there), 0 where it did",
-        units: "1",
-        formula: "as bud_unconverged, for the trajectories of bud_dpvdt",
-    };
-
-    /// Every budget variable with its vertical coordinate (layers for the
-    /// column budget, surfaces for the PV change), as the budget writes them.
-    pub const ALL: [(VarSpec, Vertical); 10] = [
-        (ZETA_PRED, Vertical::ThetaLayer),
-        (ZETA_DEP, Vertical::ThetaLayer),
-        (ZETA_STRETCH, Vertical::ThetaLayer),
-        (ZETA_BETA, Vertical::ThetaLayer),
-        (ZETA, Vertical::ThetaLayer),
-        (ZETA_DIFF, Vertical::ThetaLayer),
-        (STRETCH, Vertical::ThetaLayer),
-        (UNCONVERGED, Vertical::ThetaLayer),
-        (DPVDT, Vertical::Theta),
-        (DPVDT_UNCONVERGED, Vertical::Theta),
-    ];
-
-    /// The budget variable called `name`.
-    pub fn find(name: &str) -> Option<(VarSpec, Vertical)> {
-        ALL.into_iter().find(|(v, _)| v.name == name)
-    }
-}
-
-/// The attribute of the budget's flag variables that counts the points whose
-/// trajectory did not converge.
-pub const NOT_CONVERGED_ATTR: &str = "leeward_trajectories_not_converged";
-
 /// Points whose budget trajectories did not converge in a published file: the sum
 /// of [`NOT_CONVERGED_ATTR`] over its flag variables, None where it has no budget.
 pub fn not_converged_in(path: &Path) -> Option<u64> {
     crate::output::quiet_hdf5_errors();
     let f = netcdf::open(path).ok()?;
     let mut total = None;
-    for name in [
-        budget_vars::UNCONVERGED.name,
-        budget_vars::DPVDT_UNCONVERGED.name,
-    ] {
+    for name in [budget::UNCONVERGED.name, budget::DPVDT_UNCONVERGED.name] {
         let Some(v) = f.variable(name) else { continue };
         // A number (this layout), or text (files of the layout before).
         let n = match v.attribute(NOT_CONVERGED_ATTR).map(|a| a.value()) {
@@ -650,7 +422,9 @@ fn layer_budget(
     dt_h: f64,
     read: &Read<'_>,
 ) -> Option<(Vec<Product>, usize)> {
-    use crate::diagnostics::budget::{at_departure, departure_points, stretching, Parts, Status};
+    use crate::diagnostics::budget::{
+        at_departure, departure_points, layer_absolute_vorticity, ColumnBudget, Status,
+    };
     use ndarray::Axis;
     let (uo, vo, un, vn) = (
         read(old, "layer_u")?,
@@ -680,7 +454,8 @@ fn layer_budget(
             &g.trajectories,
         );
         not_converged += d.not_converged();
-        let eta_old = &pvo.index_axis(Axis(0), l) * &dpo.index_axis(Axis(0), l);
+        let eta_old =
+            layer_absolute_vorticity(pvo.index_axis(Axis(0), l), dpo.index_axis(Axis(0), l));
         let eta_d = at_departure(eta_old.view(), &d, g.periodic);
         let dp_d = at_departure(dpo.index_axis(Axis(0), l), &d, g.periodic);
         let f_d = at_departure(g.f.view(), &d, g.periodic);
@@ -689,17 +464,22 @@ fn layer_budget(
             if *st != Status::Converged {
                 continue;
             }
-            let (dpa, fa) = (dpn[(l, j, i)], g.f[(j, i)]);
-            let parts = Parts::of(eta_d[(j, i)], f_d[(j, i)], fa, dp_d[(j, i)], dpa);
-            let actual = pvn[(l, j, i)] * dpa - fa;
+            let b = ColumnBudget::of(
+                eta_d[(j, i)],
+                f_d[(j, i)],
+                g.f[(j, i)],
+                dp_d[(j, i)],
+                dpn[(l, j, i)],
+                pvn[(l, j, i)],
+            );
             let values = [
-                parts.predicted(),
-                parts.zeta_departure,
-                parts.stretching,
-                parts.coriolis,
-                actual,
-                actual - parts.predicted(),
-                stretching(dp_d[(j, i)], dpa),
+                b.parts.predicted(),
+                b.parts.zeta_departure,
+                b.parts.stretching,
+                b.parts.coriolis,
+                b.actual,
+                b.residual,
+                b.stretch,
             ];
             for (k, x) in values.into_iter().enumerate() {
                 out[k][(l, j, i)] = x as f32;
@@ -707,14 +487,14 @@ fn layer_budget(
         }
     }
     let specs = [
-        budget_vars::ZETA_PRED,
-        budget_vars::ZETA_DEP,
-        budget_vars::ZETA_STRETCH,
-        budget_vars::ZETA_BETA,
-        budget_vars::ZETA,
-        budget_vars::ZETA_DIFF,
-        budget_vars::STRETCH,
-        budget_vars::UNCONVERGED,
+        budget::ZETA_PRED,
+        budget::ZETA_DEP,
+        budget::ZETA_STRETCH,
+        budget::ZETA_BETA,
+        budget::ZETA,
+        budget::ZETA_DIFF,
+        budget::STRETCH,
+        budget::UNCONVERGED,
     ];
     let notes = budget_notes(g, dt_h);
     let prods = specs
@@ -723,7 +503,7 @@ fn layer_budget(
         .map(|(spec, data)| {
             let mut p = Product::new(spec, Vertical::ThetaLayer, data);
             p.numbers.extend(notes.iter().cloned());
-            if spec.name == budget_vars::UNCONVERGED.name {
+            if spec.name == budget::UNCONVERGED.name {
                 p.numbers.push((NOT_CONVERGED_ATTR, not_converged as f64));
             }
             p
@@ -741,7 +521,7 @@ fn surface_budget(
     dt_h: f64,
     read: &Read<'_>,
 ) -> Option<(Vec<Product>, usize)> {
-    use crate::diagnostics::budget::{at_departure, departure_points, Status};
+    use crate::diagnostics::budget::{at_departure, departure_points, lagrangian_rate, Status};
     use ndarray::Axis;
     let (uo, vo, un, vn) = (
         read(old, "isen_u")?,
@@ -778,14 +558,15 @@ fn surface_budget(
             flags[(s, j, i)] = flag(*st);
             if *st == Status::Converged {
                 // PV is read in K m2 kg-1 s-1: the rate is per second.
-                rate[(s, j, i)] = ((pvn[(s, j, i)] - pv_d[(j, i)]) / (dt_h * 3600.0)) as f32;
+                rate[(s, j, i)] =
+                    lagrangian_rate(pvn[(s, j, i)], pv_d[(j, i)], dt_h * 3600.0) as f32;
             }
         }
     }
     let notes = budget_notes(g, dt_h);
-    let mut p = Product::new(budget_vars::DPVDT, Vertical::Theta, rate);
+    let mut p = Product::new(budget::DPVDT, Vertical::Theta, rate);
     p.numbers.extend(notes.iter().cloned());
-    let mut q = Product::new(budget_vars::DPVDT_UNCONVERGED, Vertical::Theta, flags);
+    let mut q = Product::new(budget::DPVDT_UNCONVERGED, Vertical::Theta, flags);
     q.numbers.extend(notes);
     q.numbers.push((NOT_CONVERGED_ATTR, not_converged as f64));
     Some((vec![p, q], not_converged))

@@ -408,6 +408,64 @@ pub fn stretching(depth_departure: f64, depth_arrival: f64) -> f64 {
     (depth_arrival - depth_departure) / depth_departure
 }
 
+/// Absolute vorticity of an isentropic layer from its column-depth PV, at every
+/// point: eta = P dp, with P = (zeta + f)/dp the layer PV and dp the layer's pressure
+/// depth (the column-depth form of PV; docs/references.md).
+pub fn layer_absolute_vorticity(
+    layer_pv: ArrayView2<f64>,
+    layer_dp: ArrayView2<f64>,
+) -> Array2<f64> {
+    &layer_pv * &layer_dp
+}
+
+/// The column budget of an isentropic layer at one arrival point, as written: the
+/// [`Parts`] of the prediction, the actual relative vorticity on arrival
+/// zeta_a = P_a depth_a - f_a (P_a the layer PV on arrival), the actual minus the
+/// predicted, zeta_a - (eta_d depth_a/depth_d - f_a) = depth_a (P_a - eta_d/depth_d), zero
+/// where the column kept its PV, and the fractional depth change [`stretching`]
+/// (column-depth PV conservation; docs/references.md).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ColumnBudget {
+    /// The parts of the conserved-PV prediction.
+    pub parts: Parts,
+    /// Actual relative vorticity on arrival, s-1.
+    pub actual: f64,
+    /// Actual minus predicted relative vorticity, s-1.
+    pub residual: f64,
+    /// Fractional depth change (depth_a - depth_d)/depth_d.
+    pub stretch: f64,
+}
+
+impl ColumnBudget {
+    /// The budget for eta_d, f_d, f_a, depth_d and depth_a (as [`Parts::of`]) and the
+    /// layer PV on arrival `pv_a` (Pa-1 s-1).
+    pub fn of(
+        eta_d: f64,
+        f_d: f64,
+        f_a: f64,
+        depth_d: f64,
+        depth_a: f64,
+        pv_a: f64,
+    ) -> ColumnBudget {
+        let parts = Parts::of(eta_d, f_d, f_a, depth_d, depth_a);
+        let actual = pv_a * depth_a - f_a;
+        ColumnBudget {
+            parts,
+            actual,
+            residual: actual - parts.predicted(),
+            stretch: stretching(depth_d, depth_a),
+        }
+    }
+}
+
+/// Lagrangian rate of change of a quantity along a trajectory over the time `dt`:
+/// dq/dt = (q_a - q_d)/dt, q_a on arrival and q_d at the departure point (the
+/// semi-Lagrangian difference along the trajectory; Staniforth and Cote 1991).
+#[inline]
+pub fn lagrangian_rate(arrival: f64, departure: f64, dt: f64) -> f64 {
+    (arrival - departure) / dt
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -722,5 +780,53 @@ mod tests {
         let f = Array2::from_shape_fn((3, 3), |(j, i)| (j * 3 + i) as f64);
         assert_eq!(bilinear(f.view(), 0.5, 0.5, false), 2.0);
         assert_eq!(bilinear(f.view(), 0.0, 2.5, true), 1.0); // seam: halfway between 2 and 0
+    }
+
+    #[test]
+    fn layer_absolute_vorticity_is_layer_pv_times_depth() {
+        // eta = 1.2e-4 s-1 in a 50 hPa deep layer has P = 2.4e-8 Pa-1 s-1; P dp gives eta back.
+        let pv = Array2::from_shape_fn((2, 3), |(j, i)| {
+            (1.2e-4 + 1e-5 * j as f64) / (5000.0 + 100.0 * i as f64)
+        });
+        let dp = Array2::from_shape_fn((2, 3), |(_, i)| 5000.0 + 100.0 * i as f64);
+        let eta = layer_absolute_vorticity(pv.view(), dp.view());
+        for ((j, _), e) in eta.indexed_iter() {
+            let exact = 1.2e-4 + 1e-5 * j as f64;
+            assert!((e - exact).abs() < 1e-19, "{e} vs {exact}");
+        }
+    }
+
+    #[test]
+    fn column_budget_of_a_column_that_keeps_or_gains_pv() {
+        // Stretched by 10% from f_d to f_a, keeping eta/depth: the actual relative
+        // vorticity on arrival is the prediction, eta_d 1.1 - f_a, and the residual is zero.
+        let (eta_d, f_d, f_a, depth_d, depth_a) = (1.2e-4, 1.0e-4, 1.1e-4, 100.0, 110.0);
+        let kept = ColumnBudget::of(eta_d, f_d, f_a, depth_d, depth_a, eta_d / depth_d);
+        assert_eq!(kept.parts, Parts::of(eta_d, f_d, f_a, depth_d, depth_a));
+        assert!(
+            (kept.actual - (eta_d * 1.1 - f_a)).abs() < 1e-18,
+            "{}",
+            kept.actual
+        );
+        assert!(kept.residual.abs() < 1e-18, "{}", kept.residual);
+        assert!((kept.stretch - 0.1).abs() < 1e-12);
+        // Heating that raises the layer PV by dP leaves a residual depth_a dP.
+        let gain = 2e-8;
+        let warmed = ColumnBudget::of(eta_d, f_d, f_a, depth_d, depth_a, eta_d / depth_d + gain);
+        assert!(
+            (warmed.residual - depth_a * gain).abs() < 1e-18,
+            "{}",
+            warmed.residual
+        );
+        assert!((warmed.actual - kept.actual - depth_a * gain).abs() < 1e-18);
+    }
+
+    #[test]
+    fn lagrangian_rate_over_an_interval() {
+        // PV rising from 1 to 1.5 PVU in 6 h: 0.5e-6 / 21600 K m2 kg-1 s-2; falling: minus that.
+        let rate = lagrangian_rate(1.5e-6, 1.0e-6, 6.0 * 3600.0);
+        assert!((rate - 0.5e-6 / 21_600.0).abs() < 1e-24, "{rate}");
+        assert_eq!(lagrangian_rate(1.0e-6, 1.5e-6, 6.0 * 3600.0), -rate);
+        assert_eq!(lagrangian_rate(2.0, 2.0, 3600.0), 0.0);
     }
 }

@@ -7,6 +7,7 @@
 
 pub mod baroclinic;
 pub mod budget;
+pub mod change;
 pub mod constants;
 pub mod divergence;
 pub mod horizontal;

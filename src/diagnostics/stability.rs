@@ -44,6 +44,52 @@ pub fn column_derivative(f: &[f64], x: &[f64], out: &mut [f64]) {
     derivative_on(&valid[..m], f, x, out);
 }
 
+/// d f / d p at level `k` of the column (`j`, `i`) of `f` (levels, rows, columns; NaN
+/// where missing), on the levels `p` (Pa, increasing) with `lnp` their logarithms:
+/// df/dp = (1/p) df/d ln p. Where both neighbouring levels hold `f` (nearly every point),
+/// df/d ln p is the three-point centred difference on the uneven levels,
+/// (h1^2 f(k+1) - h2^2 f(k-1) + (h2^2 - h1^2) f(k)) / (h1 h2 (h1 + h2)), h1 = ln p(k) - ln p(k-1),
+/// h2 = ln p(k+1) - ln p(k) (second-order; any numerical analysis text, from memory);
+/// elsewhere it is [`column_derivative`] of the whole column, whose nearest valid levels may
+/// lie beyond levels that lack `f`. Exact for f quadratic in ln p.
+pub fn vertical_derivative_at(
+    f: ArrayView3<f32>,
+    k: usize,
+    j: usize,
+    i: usize,
+    lnp: &[f64],
+    p: &[f64],
+) -> f64 {
+    let nz = lnp.len();
+    // Both neighbours valid (nearly every point): the centred difference the
+    // column rule takes there.
+    if k >= 1 && k + 1 < nz {
+        let (fm, f0, fp) = (
+            f64::from(f[(k - 1, j, i)]),
+            f64::from(f[(k, j, i)]),
+            f64::from(f[(k + 1, j, i)]),
+        );
+        if fm.is_finite() && f0.is_finite() && fp.is_finite() {
+            return nonuniform_centred(fm, f0, fp, lnp[k] - lnp[k - 1], lnp[k + 1] - lnp[k]) / p[k];
+        }
+    }
+    // Otherwise the column rule on the whole column: the nearest valid levels may lie
+    // beyond levels that lack this quantity.
+    let mut col = [0.0f64; 128];
+    let mut d = [0.0f64; 128];
+    if nz > col.len() {
+        let c: Vec<f64> = (0..nz).map(|kk| f64::from(f[(kk, j, i)])).collect();
+        let mut dv = vec![0.0; nz];
+        column_derivative(&c, lnp, &mut dv);
+        return dv[k] / p[k];
+    }
+    for (kk, c) in col.iter_mut().enumerate().take(nz) {
+        *c = f64::from(f[(kk, j, i)]);
+    }
+    column_derivative(&col[..nz], lnp, &mut d[..nz]);
+    d[k] / p[k]
+}
+
 /// [`column_derivative`] at the levels `v` (ascending indices of the valid levels).
 fn derivative_on(v: &[usize], f: &[f64], x: &[f64], out: &mut [f64]) {
     let m = v.len();
@@ -203,6 +249,41 @@ mod tests {
         let mut d1 = [0.0; 3];
         column_derivative(&one, &x[..3], &mut d1);
         assert!(d1.iter().all(|v| v.is_nan()));
+    }
+
+    #[test]
+    fn vertical_derivative_of_a_quadratic_in_ln_p() {
+        // f = 10 + 3 x + 2 x^2, x = ln(p / 1000 hPa): every three-point rule is exact for
+        // it, so df/dp = (3 + 4 x)/p at every level to the rounding of f to f32: centred
+        // inside, one-sided at the ends, and stepping over a level without f.
+        let p: Vec<f64> = [100.0, 200.0, 300.0, 500.0, 700.0, 850.0, 925.0, 1000.0]
+            .iter()
+            .map(|h| h * 100.0)
+            .collect();
+        let lnp: Vec<f64> = p.iter().map(|v| v.ln()).collect();
+        let x = |k: usize| (p[k] / 100_000.0).ln();
+        let f_of = |k: usize| 10.0 + 3.0 * x(k) + 2.0 * x(k) * x(k);
+        let mut f = Array3::from_shape_fn((p.len(), 2, 3), |(k, _, _)| f_of(k) as f32);
+        // Column (1, 2) lacks f at 700 hPa.
+        f[(4, 1, 2)] = f32::NAN;
+        let fmax = (0..p.len()).map(|k| f_of(k).abs()).fold(0.0, f64::max);
+        let hmin = lnp.windows(2).map(|w| w[1] - w[0]).fold(f64::MAX, f64::min);
+        for k in 0..p.len() {
+            let exact = (3.0 + 4.0 * x(k)) / p[k];
+            // Rounding f to f32 moves df/d ln p by at most a few eps |f| / h.
+            let tol = 64.0 * f64::from(f32::EPSILON) * fmax / hmin / p[k];
+            for (j, i) in [(0, 0), (1, 2)] {
+                let got = vertical_derivative_at(f.view(), k, j, i, &lnp, &p);
+                if (j, i) == (1, 2) && k == 4 {
+                    assert!(got.is_nan());
+                    continue;
+                }
+                assert!(
+                    (got - exact).abs() < tol,
+                    "level {k} column ({j}, {i}): {got} vs {exact}"
+                );
+            }
+        }
     }
 
     #[test]

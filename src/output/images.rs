@@ -109,7 +109,7 @@ fn level_index(
 /// A budget variable that the PV budget added to the published file after
 /// the step's own products were written, read back as a product.
 fn added_later(product: &Path, name: &str) -> Option<Product> {
-    let (spec, vertical) = crate::changes::budget_vars::find(name)?;
+    let (spec, vertical) = super::variables::budget::find(name)?;
     let (_, data) = super::store::read_field(product, name)?;
     Some(Product::new(spec, vertical, data))
 }

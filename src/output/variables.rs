@@ -3,6 +3,12 @@
 //! tests agree.
 //!
 //! Standard names from the CF Standard Name Table, version 93.
+//!
+//! The variables of the changes in time are in [`changes`], those of the PV
+//! budget in [`budget`].
+
+pub mod budget;
+pub mod changes;
 
 /// How one output variable is described in the file.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

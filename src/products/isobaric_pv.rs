@@ -3,13 +3,15 @@
 //! In: absolute vorticity, potential temperature and -dtheta/dp on the levels, and the
 //! winds along the grid's axes. Out: PV in PVU, level by level in parallel. The formula
 //! is [`pv::isobaric_pv`] (equation, source and closed-form tests there); the vertical
-//! derivatives of the winds are three-point differences in ln p.
+//! derivatives of the winds are three-point differences in ln p
+//! ([`vertical_derivative_at`]).
 
 use ndarray::{Array3, Axis};
 use rayon::prelude::*;
 
 use crate::diagnostics::horizontal::Plane;
-use crate::diagnostics::{pv, stability};
+use crate::diagnostics::pv;
+use crate::diagnostics::stability::vertical_derivative_at;
 
 /// Isobaric PV (PVU) from eta (s-1), theta (K), -dtheta/dp (K Pa-1) and the winds
 /// along the grid's axes, on the levels `p` (Pa, increasing).
@@ -21,6 +23,7 @@ pub(super) fn isobaric_pv(
     p: &[f64],
 ) -> Array3<f32> {
     let lnp: Vec<f64> = p.iter().map(|p| p.ln()).collect();
+    let (ug, vg) = (ug.view(), vg.view());
     let mut pv = Array3::from_elem(eta.dim(), f32::NAN);
     pv.axis_iter_mut(Axis(0))
         .into_par_iter()
@@ -40,50 +43,4 @@ pub(super) fn isobaric_pv(
             });
         });
     pv
-}
-
-/// d f / d p of every column of `f` (levels, rows, columns), from three-point
-/// differences in ln p (see `stability::column_derivative`): df/dp = (1/p) df/d ln p.
-fn vertical_derivative_at(
-    f: &Array3<f32>,
-    k: usize,
-    j: usize,
-    i: usize,
-    lnp: &[f64],
-    p: &[f64],
-) -> f64 {
-    let nz = lnp.len();
-    // Both neighbours valid (nearly every point): the centred difference the
-    // column rule takes there.
-    if k >= 1 && k + 1 < nz {
-        let (fm, f0, fp) = (
-            f64::from(f[(k - 1, j, i)]),
-            f64::from(f[(k, j, i)]),
-            f64::from(f[(k + 1, j, i)]),
-        );
-        if fm.is_finite() && f0.is_finite() && fp.is_finite() {
-            return crate::geometry::ops::nonuniform_centred(
-                fm,
-                f0,
-                fp,
-                lnp[k] - lnp[k - 1],
-                lnp[k + 1] - lnp[k],
-            ) / p[k];
-        }
-    }
-    // Otherwise the column rule on the whole column: the nearest valid levels may lie
-    // beyond levels that lack this quantity.
-    let mut col = [0.0f64; 128];
-    let mut d = [0.0f64; 128];
-    if nz > col.len() {
-        let c: Vec<f64> = (0..nz).map(|kk| f64::from(f[(kk, j, i)])).collect();
-        let mut dv = vec![0.0; nz];
-        stability::column_derivative(&c, lnp, &mut dv);
-        return dv[k] / p[k];
-    }
-    for (kk, c) in col.iter_mut().enumerate().take(nz) {
-        *c = f64::from(f[(kk, j, i)]);
-    }
-    stability::column_derivative(&col[..nz], lnp, &mut d[..nz]);
-    d[k] / p[k]
 }

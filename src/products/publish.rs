@@ -18,6 +18,7 @@ use crate::diagnostics::budget;
 use crate::geometry::{Grid, Horizontal};
 use crate::outcome::StepOutcome;
 use crate::output::cf::{write_step, Product, StepProducts, Vertical};
+use crate::output::variables::changes::MSLP_TENDENCY;
 use crate::pipeline::{grid_id, output_name, InputFile, Issue, Step, StepReport};
 
 use super::columns::Columns;
@@ -211,12 +212,7 @@ fn changes_now(run: &changes::Run<'_>, cfg: &Config, now: &Now<'_>) -> Vec<Produ
         out.extend(changes::within_cycle(run, th, intervals));
     }
     if let Some(m) = now.mslp {
-        out.extend(changes::within_cycle_of(
-            run,
-            changes::MSLP_TENDENCY,
-            m,
-            intervals,
-        ));
+        out.extend(changes::within_cycle_of(run, MSLP_TENDENCY, m, intervals));
     }
     if cfg.products.run_to_run {
         out.extend(changes::run_to_run(run, &now.r2r));
@@ -313,7 +309,7 @@ fn after_writing(
     if let Some(m) = a.now.mslp {
         rep.updated.extend(changes::update_later_of(
             a.run,
-            changes::MSLP_TENDENCY,
+            MSLP_TENDENCY,
             m,
             intervals,
             deflate,
