@@ -42,6 +42,7 @@ pub const DIFFERENCED: &[&str] = &[
 /// Mantissa bits that keep 99 % of each product's real information, the
 /// largest over the measured inputs (docs/output.md, "Precision").
 pub const MEASURED: &[(&str, u32)] = &[
+    ("div", 6),
     ("eady", 4),
     ("eta", 9),
     ("isen_m", 14),
@@ -122,6 +123,10 @@ pub const REFERENCE_FLOOR: &[(&str, u32)] = &[
     // Equivalent potential temperature within 0.1 K of MetPy's: rounding at
     // most 0.04 K at 350 K.
     ("theta_e", 12),
+    // Divergence within 0.1 % (median) and 0.5 % (largest) of the largest value
+    // of its closed form, of which truncation takes up to 0.07 %: rounding at
+    // most 2^-11 = 4.9e-4 of each value.
+    ("div", 10),
 ];
 
 /// The name a product's count is kept under (`thick_chg_06h` under

@@ -18,7 +18,7 @@ import numpy as np
 #: contract's _FillValue for every data variable.
 NC_FILL_FLOAT = 9.969209968386869e36
 
-DATA_VARIABLES = ("zeta", "eta", "theta", "stab", "n2")
+DATA_VARIABLES = ("zeta", "eta", "div", "theta", "stab", "n2")
 
 
 @dataclasses.dataclass

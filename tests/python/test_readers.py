@@ -74,14 +74,16 @@ def _kinds() -> dict[str, Kind]:
     ll = lambda name, lon1: gribgen.regular_ll(name, 90.0, -90.0, lon1, 144, 2.5, 2.5,  # noqa: E731
                                                north_to_south=True, global_=True)
     return {
-        "latlon_from_0": Kind(ll("ll0", 0.0)),
+        # Horizontal divergence is off by default: on here, so every reader sees it.
+        "latlon_from_0": Kind(ll("ll0", 0.0), config="[products]\ndivergence = true\n"),
         "latlon_from_180": Kind(ll("ll180", 180.0)),
         "latlon_from_minus_180": Kind(ll("llm180", 180.0), patch_negative_lon=True),
-        "latlon_rolled": Kind(ll("ll0", 0.0), config='[output]\nlongitudes = "-180..180"\n'),
+        "latlon_rolled": Kind(ll("ll0", 0.0), config='[output]\nlongitudes = "-180..180"\n'
+                                                     '[products]\ndivergence = true\n'),
         "latlon_dateline": Kind(gribgen.regular_ll("dateline", 20.0, 60.0, 170.0, 41, 1.0, 1.0,
                                                    north_to_south=False)),
         "gaussian": Kind(g["gaussian_n48"]),
-        "lambert": Kind(g["lambert_tangent_25"]),
+        "lambert": Kind(g["lambert_tangent_25"], config="[products]\ndivergence = true\n"),
         "polar_stereographic": Kind(g["polar_north_60"]),
         "rotated": Kind(g["rotated_europe_0p5"]),
         "mercator": Kind(g["mercator_pacific"]),
