@@ -87,6 +87,8 @@ pub fn default_scale(name: &str, level: &str) -> Option<Scale> {
         // Troughs, cut-off lows and stratospheric air dark.
         "eta" => reversed(f(S, 0.0, 32.0, 4.0)),
         "bud_zeta_diff" => f(D, -10.0, 10.0, 2.0),
+        // Spreading out and converging, symmetric about zero.
+        "div" => f(D, -10.0, 10.0, 2.0),
         "theta" => f(S, 260.0, 380.0, 10.0),
         "stab" => f(S, 0.0, 0.3, 0.025),
         "n2" => f(S, 0.0, 6.0, 0.5),
@@ -190,6 +192,7 @@ mod tests {
             "bud_dpvdt",
             "bud_zeta_diff",
             "zeta",
+            "div",
         ] {
             let s = default_scale(n, "1000-500").unwrap();
             assert_eq!(s.palette, Palette::Diverging, "{n}");
@@ -197,7 +200,7 @@ mod tests {
         }
         // Every default has whole bands within the limit.
         for n in [
-            "zeta", "theta", "stab", "n2", "pv", "layer_pv", "layer_dp", "isen_p", "isen_z",
+            "zeta", "div", "theta", "stab", "n2", "pv", "layer_pv", "layer_dp", "isen_p", "isen_z",
             "isen_t", "isen_m", "isen_u", "trop_z", "thick", "z",
         ] {
             for level in [
