@@ -8,7 +8,8 @@
 
 use ndarray::{Array2, ArrayView1, ArrayView2};
 
-use crate::geometry::ops::{ddx_uniform, ddy_nonuniform, nonuniform_centred};
+use super::vorticity::{pole_as_outer_point, SphereRows};
+use crate::geometry::ops::{ddx_uniform, ddy_nonuniform};
 
 /// Horizontal divergence on a (rotated) latitude/longitude sphere grid:
 ///
@@ -31,12 +32,14 @@ pub fn divergence_sphere(
 ) -> Array2<f64> {
     let (ny, nx) = u.dim();
     let mut div = Array2::from_elem((ny, nx), f64::NAN);
-    if ny < 2 || nx < 2 || lat_deg.len() != ny || lon_deg.len() != nx || v.dim() != (ny, nx) {
+    let Some(SphereRows {
+        phi,
+        cosphi,
+        dlambda,
+    }) = SphereRows::of(u, v, lat_deg, lon_deg)
+    else {
         return div;
-    }
-    let phi: Vec<f64> = lat_deg.iter().map(|d| d.to_radians()).collect();
-    let cosphi: Vec<f64> = phi.iter().map(|p| p.cos()).collect();
-    let dlambda = (lon_deg[nx - 1] - lon_deg[0]).to_radians() / (nx - 1) as f64;
+    };
     let vcos = Array2::from_shape_fn((ny, nx), |(j, i)| v[(j, i)] * cosphi[j]);
     let du_dlambda = ddx_uniform(u, dlambda, periodic);
     let mut dvcos_dphi = ddy_nonuniform(vcos.view(), &phi);
@@ -59,29 +62,6 @@ pub fn divergence_sphere(
         }
     }
     div
-}
-
-/// Edge rows next to (but not on) a pole on a grid that wraps round: the pole
-/// itself is the outer stencil point of d(v cos phi)/dphi, where v cos(phi) = 0.
-fn pole_as_outer_point(d: &mut Array2<f64>, vcos: ArrayView2<f64>, phi: &[f64]) {
-    let (ny, nx) = vcos.dim();
-    let half_pi = std::f64::consts::FRAC_PI_2;
-    let on_pole = |j: usize| (phi[j].abs() - half_pi).abs() < 1e-9;
-    let (jn, js) = (ny - 1, 0);
-    let hn = phi[jn] - phi[jn - 1];
-    if !on_pole(jn) && half_pi - phi[jn] <= 1.5 * hn.abs() {
-        for i in 0..nx {
-            d[(jn, i)] =
-                nonuniform_centred(vcos[(jn - 1, i)], vcos[(jn, i)], 0.0, hn, half_pi - phi[jn]);
-        }
-    }
-    let hs = phi[js + 1] - phi[js];
-    if !on_pole(js) && phi[js] + half_pi <= 1.5 * hs.abs() {
-        for i in 0..nx {
-            d[(js, i)] =
-                nonuniform_centred(0.0, vcos[(js, i)], vcos[(js + 1, i)], phi[js] + half_pi, hs);
-        }
-    }
 }
 
 /// Mean divergence of the cap poleward of latitude `phi1` (radians), from the

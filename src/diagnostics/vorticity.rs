@@ -54,46 +54,22 @@ pub fn relative_vorticity_sphere(
 ) -> Array2<f64> {
     let (ny, nx) = u.dim();
     let mut zeta = Array2::from_elem((ny, nx), f64::NAN);
-    if ny < 2 || nx < 2 || lat_deg.len() != ny || lon_deg.len() != nx || v.dim() != (ny, nx) {
+    let Some(SphereRows {
+        phi,
+        cosphi,
+        dlambda,
+    }) = SphereRows::of(u, v, lat_deg, lon_deg)
+    else {
         return zeta;
-    }
-    let phi: Vec<f64> = lat_deg.iter().map(|d| d.to_radians()).collect();
-    let cosphi: Vec<f64> = phi.iter().map(|p| p.cos()).collect();
-    let dlambda = (lon_deg[nx - 1] - lon_deg[0]).to_radians() / (nx - 1) as f64;
+    };
     let ucos = Array2::from_shape_fn((ny, nx), |(j, i)| u[(j, i)] * cosphi[j]);
     let dv_dlambda = ddx_uniform(v, dlambda, periodic);
     let mut ducos_dphi = ddy_nonuniform(ucos.view(), &phi);
 
     let half_pi = std::f64::consts::FRAC_PI_2;
     let on_pole = |j: usize| (phi[j].abs() - half_pi).abs() < 1e-9;
-    // Edge rows next to (but not on) a pole on a grid that wraps round:
-    // the pole itself is the outer stencil point, where u cos(phi) = 0.
-    if periodic && ny >= 2 {
-        let (jn, js) = (ny - 1, 0);
-        let hn = phi[jn] - phi[jn - 1];
-        if !on_pole(jn) && half_pi - phi[jn] <= 1.5 * hn.abs() {
-            for i in 0..nx {
-                ducos_dphi[(jn, i)] = nonuniform_centred(
-                    ucos[(jn - 1, i)],
-                    ucos[(jn, i)],
-                    0.0,
-                    hn,
-                    half_pi - phi[jn],
-                );
-            }
-        }
-        let hs = phi[js + 1] - phi[js];
-        if !on_pole(js) && phi[js] + half_pi <= 1.5 * hs.abs() {
-            for i in 0..nx {
-                ducos_dphi[(js, i)] = nonuniform_centred(
-                    0.0,
-                    ucos[(js, i)],
-                    ucos[(js + 1, i)],
-                    phi[js] + half_pi,
-                    hs,
-                );
-            }
-        }
+    if periodic {
+        pole_as_outer_point(&mut ducos_dphi, ucos.view(), &phi);
     }
     for j in 0..ny {
         if on_pole(j) {
@@ -125,6 +101,62 @@ pub fn relative_vorticity_sphere(
         }
     }
     zeta
+}
+
+/// The rows of a (rotated) latitude/longitude grid as the sphere's formulas take
+/// them: latitudes in radians, their cosines, and the longitude spacing in radians.
+pub(super) struct SphereRows {
+    pub phi: Vec<f64>,
+    pub cosphi: Vec<f64>,
+    pub dlambda: f64,
+}
+
+impl SphereRows {
+    /// The rows of `lat_deg` x `lon_deg` for winds `u`, `v`, or None when the
+    /// shapes do not fit or the grid has fewer than two rows or columns.
+    pub fn of(
+        u: ArrayView2<f64>,
+        v: ArrayView2<f64>,
+        lat_deg: &[f64],
+        lon_deg: &[f64],
+    ) -> Option<SphereRows> {
+        let (ny, nx) = u.dim();
+        if ny < 2 || nx < 2 || lat_deg.len() != ny || lon_deg.len() != nx || v.dim() != (ny, nx) {
+            return None;
+        }
+        let phi: Vec<f64> = lat_deg.iter().map(|d| d.to_radians()).collect();
+        let cosphi = phi.iter().map(|p| p.cos()).collect();
+        let dlambda = (lon_deg[nx - 1] - lon_deg[0]).to_radians() / (nx - 1) as f64;
+        Some(SphereRows {
+            phi,
+            cosphi,
+            dlambda,
+        })
+    }
+}
+
+/// d(q cos phi)/dphi on the edge rows next to (but not on) a pole of a grid that
+/// wraps round: the pole itself is the outer stencil point, where q cos(phi) = 0
+/// (q = u for vorticity, v for divergence). Other rows of `d` are left as they are.
+pub(super) fn pole_as_outer_point(d: &mut Array2<f64>, vcos: ArrayView2<f64>, phi: &[f64]) {
+    let (ny, nx) = vcos.dim();
+    let half_pi = std::f64::consts::FRAC_PI_2;
+    let on_pole = |j: usize| (phi[j].abs() - half_pi).abs() < 1e-9;
+    let (jn, js) = (ny - 1, 0);
+    let hn = phi[jn] - phi[jn - 1];
+    if !on_pole(jn) && half_pi - phi[jn] <= 1.5 * hn.abs() {
+        for i in 0..nx {
+            d[(jn, i)] =
+                nonuniform_centred(vcos[(jn - 1, i)], vcos[(jn, i)], 0.0, hn, half_pi - phi[jn]);
+        }
+    }
+    let hs = phi[js + 1] - phi[js];
+    if !on_pole(js) && phi[js] + half_pi <= 1.5 * hs.abs() {
+        for i in 0..nx {
+            d[(js, i)] =
+                nonuniform_centred(0.0, vcos[(js, i)], vcos[(js + 1, i)], phi[js] + half_pi, hs);
+        }
+    }
 }
 
 /// Relative vorticity on a conformal projection with map factor m, from wind
