@@ -112,7 +112,7 @@ pub enum Vertical {
     /// A single field (mean sea-level pressure, a layer's mean): (time, y, x);
     /// one that describes an isobaric layer ([`Product::layer`]) is written on
     /// that layer's coordinate `p_layer_<bottom>_<top>` of length 1, as the
-    /// thickness layers are: (time, p_layer_<bottom>_<top>, y, x).
+    /// thickness layers are: `(time, p_layer_<bottom>_<top>, y, x)`.
     Surface,
 }
 

@@ -250,7 +250,7 @@ impl std::fmt::Display for Unfinished {
     }
 }
 
-/// Publish a staged step: [`commit`], and if the file system refuses a
+/// Publish a staged step: record the intent, then [`finish`]; if the file system refuses a
 /// rename once the intent is recorded, keep trying (the tree must not stay
 /// half changed; the feed's other steps wait on its lock meanwhile; a stop
 /// leaves it to the next start). `Err` when nothing was renamed (the intent

@@ -6,7 +6,7 @@
 //! ledger, logs, notifications to systemd, the metrics endpoint. The main
 //! thread owns the state; workers run one step each and report back.
 //!
-//! This file holds the state ([`Daemon`]) and its loop; the state's methods
+//! This file holds the state (`Daemon`) and its loop; the state's methods
 //! are grouped by concern in the files beside it:
 //!
 //! - `start`: settings checked, the state directory locked, the ledger replayed;
