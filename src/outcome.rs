@@ -7,7 +7,7 @@
 //! holds something different once the step is made: the file written, the
 //! files staged for publication, the publication itself. So the type is
 //! generic over that one thing, `M`, and every way of failing is the same
-//! variant everywhere.
+//! variant everywhere ([`StepOutcome::failure`] hands it to the next stage).
 
 use serde::{Deserialize, Serialize};
 use std::path::PathBuf;
@@ -74,20 +74,6 @@ impl<M> StepOutcome<M> {
         match self {
             StepOutcome::Made(m) => Some(m),
             _ => None,
-        }
-    }
-
-    /// The same outcome with what a made step holds turned into `f(m)`
-    /// (how a stage hands the step on to the next).
-    pub fn map_made<N>(self, f: impl FnOnce(M) -> N) -> StepOutcome<N> {
-        self.and_then_made(|m| StepOutcome::Made(f(m)))
-    }
-
-    /// As [`Self::map_made`], where the next stage may fail too.
-    pub fn and_then_made<N>(self, f: impl FnOnce(M) -> StepOutcome<N>) -> StepOutcome<N> {
-        match self {
-            StepOutcome::Made(m) => f(m),
-            other => other.failure().unwrap_or_default(),
         }
     }
 
@@ -189,15 +175,26 @@ mod tests {
         let failed: StepOutcome<u8> = StepOutcome::OutputFailed {
             reason: "disk full".into(),
         };
-        let next = failed.clone().map_made(|n| u32::from(n) * 2);
+        let next: StepOutcome<u32> = failed.failure().unwrap();
         assert_eq!(next.reason(), Some("disk full"));
         assert!(next.output_failed());
-        assert_eq!(StepOutcome::Made(3u8).map_made(u32::from).made(), Some(&3));
-        let refused = StepOutcome::Made(3u8)
-            .and_then_made(|_| StepOutcome::<u8>::Internal { reason: "x".into() });
-        assert_eq!(refused.word(), "internal error");
-        assert_eq!(StepOutcome::<u8>::default().made(), None);
+        let gone: StepOutcome<u8> = StepOutcome::Vanished {
+            file: PathBuf::from("/in/a.grb2"),
+            reason: "truncated".into(),
+        };
+        assert_eq!(
+            gone.failure::<u32>(),
+            Some(StepOutcome::Vanished {
+                file: PathBuf::from("/in/a.grb2"),
+                reason: "truncated".into(),
+            })
+        );
         assert_eq!(StepOutcome::Made(1u8).failure::<u32>(), None);
-        assert_eq!(failed.failure::<u32>(), Some(next));
+        assert_eq!(StepOutcome::Made(3u8).made(), Some(&3));
+        assert_eq!(
+            StepOutcome::<u8>::Internal { reason: "x".into() }.word(),
+            "internal error"
+        );
+        assert_eq!(StepOutcome::<u8>::default().made(), None);
     }
 }
