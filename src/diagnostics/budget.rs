@@ -129,31 +129,56 @@ impl Departures {
 /// Bilinear interpolation at fractional index (fj, fi); periodic in i when asked;
 /// NaN outside the grid or where a corner is missing.
 pub fn bilinear(f: ArrayView2<f64>, fj: f64, fi: f64, periodic: bool) -> f64 {
-    let (ny, nx) = f.dim();
-    if !(fj.is_finite() && fi.is_finite()) || ny < 2 || nx < 2 {
-        return f64::NAN;
+    Corners::at(f.dim(), fj, fi, periodic).map_or(f64::NAN, |c| c.of(f))
+}
+
+/// The four grid points round a fractional index and their weights: found once,
+/// applied to every field on the grid (the two winds at two times, along a
+/// trajectory).
+#[derive(Debug, Clone, Copy)]
+pub struct Corners {
+    j0: usize,
+    i0: usize,
+    i1: usize,
+    wj: f64,
+    wi: f64,
+}
+
+impl Corners {
+    /// The corners of (fj, fi) on a grid of `dim` (rows, columns); None outside it.
+    pub fn at((ny, nx): (usize, usize), fj: f64, fi: f64, periodic: bool) -> Option<Self> {
+        if !(fj.is_finite() && fi.is_finite()) || ny < 2 || nx < 2 {
+            return None;
+        }
+        if fj < 0.0 || fj > (ny - 1) as f64 {
+            return None;
+        }
+        let fi = if periodic {
+            fi.rem_euclid(nx as f64)
+        } else {
+            fi
+        };
+        if !periodic && (fi < 0.0 || fi > (nx - 1) as f64) {
+            return None;
+        }
+        let j0 = (fj.floor() as usize).min(ny - 2);
+        let i0 = (fi.floor() as usize).min(nx - 1);
+        let i1 = if periodic {
+            (i0 + 1) % nx
+        } else {
+            (i0 + 1).min(nx - 1)
+        };
+        let (wj, wi) = (fj - j0 as f64, fi - i0 as f64);
+        Some(Self { j0, i0, i1, wj, wi })
     }
-    if fj < 0.0 || fj > (ny - 1) as f64 {
-        return f64::NAN;
+
+    /// (1 - wj) ((1 - wi) f00 + wi f01) + wj ((1 - wi) f10 + wi f11): `f` at the point.
+    #[inline]
+    pub fn of(&self, f: ArrayView2<f64>) -> f64 {
+        let Self { j0, i0, i1, wj, wi } = *self;
+        let (a, b, c, d) = (f[(j0, i0)], f[(j0, i1)], f[(j0 + 1, i0)], f[(j0 + 1, i1)]);
+        (1.0 - wj) * ((1.0 - wi) * a + wi * b) + wj * ((1.0 - wi) * c + wi * d)
     }
-    let fi = if periodic {
-        fi.rem_euclid(nx as f64)
-    } else {
-        fi
-    };
-    if !periodic && (fi < 0.0 || fi > (nx - 1) as f64) {
-        return f64::NAN;
-    }
-    let j0 = (fj.floor() as usize).min(ny - 2);
-    let i0 = (fi.floor() as usize).min(nx - 1);
-    let i1 = if periodic {
-        (i0 + 1) % nx
-    } else {
-        (i0 + 1).min(nx - 1)
-    };
-    let (wj, wi) = (fj - j0 as f64, fi - i0 as f64);
-    let (a, b, c, d) = (f[(j0, i0)], f[(j0, i1)], f[(j0 + 1, i0)], f[(j0 + 1, i1)]);
-    (1.0 - wj) * ((1.0 - wi) * a + wi * b) + wj * ((1.0 - wi) * c + wi * d)
 }
 
 fn frac_index(axis: &[f64], v: f64) -> f64 {
@@ -262,6 +287,10 @@ pub fn departure_points(
     let mut dj = Array2::from_elem((ny, nx), f64::NAN);
     let mut di = Array2::from_elem((ny, nx), f64::NAN);
     let mut status = Array2::from_elem((ny, nx), Status::None);
+    if [u_old.dim(), v_old.dim(), v_new.dim()] != [(ny, nx); 3] {
+        // Winds on different grids have no trajectories (the four share corners below).
+        return Departures { dj, di, status };
+    }
     let radius = layout.radius();
     let n = if settings.max_substep > 0.0 {
         ((dt.abs() / settings.max_substep).ceil() as usize).max(1)
@@ -271,9 +300,10 @@ pub fn departure_points(
     let s = dt / n as f64 / radius;
     let tol = settings.tolerance / radius;
     let wind_at = |fj: f64, fi: f64, tau: f64, periodic: bool| -> Option<(f64, f64)> {
-        let at = |f: ArrayView2<f64>| bilinear(f, fj, fi, periodic);
-        let u = (1.0 - tau) * at(u_old) + tau * at(u_new);
-        let v = (1.0 - tau) * at(v_old) + tau * at(v_new);
+        // One set of corners for the four fields (they share the grid).
+        let c = Corners::at(u_new.dim(), fj, fi, periodic)?;
+        let u = (1.0 - tau) * c.of(u_old) + tau * c.of(u_new);
+        let v = (1.0 - tau) * c.of(v_old) + tau * c.of(v_new);
         (u.is_finite() && v.is_finite()).then_some((u, v))
     };
     // Where the trajectory of the point (j, i) ends, as fractional indices, or None.
@@ -359,9 +389,14 @@ pub fn departure_points(
     Departures { dj, di, status }
 }
 
-/// Values of `f` at the departure points.
+/// Values of `f` at the departure points (NaN where there is none), on every core.
 pub fn at_departure(f: ArrayView2<f64>, d: &Departures, periodic: bool) -> Array2<f64> {
-    Array2::from_shape_fn(f.dim(), |ji| bilinear(f, d.dj[ji], d.di[ji], periodic))
+    let mut out = Array2::from_elem(d.dj.dim(), f64::NAN);
+    Zip::from(&mut out)
+        .and(&d.dj)
+        .and(&d.di)
+        .par_for_each(|o, &fj, &fi| *o = bilinear(f, fj, fi, periodic));
+    out
 }
 
 /// The parts of the column-depth PV budget at one point (any dynamics text; the
@@ -528,6 +563,52 @@ mod tests {
                 assert_eq!(d.status[(j, i)], Status::Converged);
             }
         }
+    }
+
+    #[test]
+    fn winds_on_different_grids_have_no_departure_points() {
+        // The earlier step's winds on another grid: no trajectories, no panic.
+        let (lat, lon) = global_axes();
+        let u = Array2::from_elem((73, 144), 10.0);
+        let small = Array2::from_elem((72, 144), 10.0);
+        let layout = Layout::Sphere {
+            lat: &lat,
+            lon: &lon,
+            radius: A,
+            periodic: true,
+        };
+        let d = departure_points(
+            &layout,
+            (small.view(), small.view()),
+            (u.view(), u.view()),
+            3600.0,
+            &settings(3.0),
+        );
+        assert!(d.status.iter().all(|s| *s == Status::None));
+        assert!(d.dj.iter().all(|x| x.is_nan()));
+    }
+
+    #[test]
+    fn bilinear_is_exact_for_a_bilinear_field() {
+        // Closed form: f = 2 + 3 j - i + 0.5 i j is reproduced anywhere inside the grid.
+        let f = Array2::from_shape_fn((5, 6), |(j, i)| {
+            let (j, i) = (j as f64, i as f64);
+            2.0 + 3.0 * j - i + 0.5 * i * j
+        });
+        for (fj, fi) in [
+            (0.25, 0.75),
+            (3.5, 4.1),
+            (4.0, 5.0),
+            (0.0, 0.0),
+            (2.9, 0.01),
+        ] {
+            let want = 2.0 + 3.0 * fj - fi + 0.5 * fi * fj;
+            let got = bilinear(f.view(), fj, fi, false);
+            assert!((got - want).abs() < 1e-12, "({fj}, {fi}): {got} vs {want}");
+        }
+        assert!(bilinear(f.view(), 4.5, 1.0, false).is_nan());
+        assert!(bilinear(f.view(), 1.0, 5.5, false).is_nan());
+        assert!(Corners::at((5, 6), 1.0, -0.5, false).is_none());
     }
 
     #[test]

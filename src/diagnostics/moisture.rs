@@ -79,6 +79,144 @@ pub fn equivalent_potential_temperature(t: f64, p: f64, e: f64) -> f64 {
     t * exponent.exp()
 }
 
+/// An isobaric level with its Poisson factor (p0 / p)^kappa, computed once for
+/// every point of the level.
+#[derive(Debug, Clone, Copy)]
+pub struct IsobaricLevel {
+    /// Pressure, Pa.
+    pub p: f64,
+    /// (p0 / p)^kappa: potential temperature over temperature on this level.
+    pub poisson: f64,
+    /// 1 / p, Pa-1.
+    pub inv_p: f64,
+}
+
+impl IsobaricLevel {
+    pub fn new(p: f64) -> Self {
+        Self {
+            p,
+            poisson: (P0 / p).powf(KAPPA),
+            inv_p: 1.0 / p,
+        }
+    }
+}
+
+/// ln y for y near 1, from z = (y - 1) / (y + 1): ln y = 2 atanh z =
+/// 2 (z + z^3/3 + z^5/5 + z^7/7 + z^9/9 + ...) (the series of the inverse hyperbolic
+/// tangent, common practice). Within |z| < 0.2 (y from 0.67 to 1.5) the terms left
+/// out add up to less than 2 z^11 / (11 (1 - z^2)) < 4e-9; beyond, the library's
+/// logarithm of y = (1 + z) / (1 - z).
+#[inline]
+fn ln_near_one_z(z: f64) -> f64 {
+    if z.abs() >= 0.2 || z.is_nan() {
+        return ((1.0 + z) / (1.0 - z)).ln();
+    }
+    let z2 = z * z;
+    2.0 * z * (1.0 + z2 * (1.0 / 3.0 + z2 * (1.0 / 5.0 + z2 * (1.0 / 7.0 + z2 / 9.0))))
+}
+
+/// Equivalent potential temperature, K, from temperature `t` (K) and relative
+/// humidity `rh` (%) on the isobaric level `level`: Bolton's equation 39 as in
+/// [`equivalent_potential_temperature`], with e = (RH/100) e_s(T) (his
+/// equation 10), the same quantity rearranged so that a point costs one
+/// logarithm and two exponentials instead of four and two, and fewer
+/// divisions in a row:
+///
+/// - with a = 17.67 (T - 273.15) / (T - 29.65), ln(e / 1 hPa) = ln(RH/100) + a + ln 6.112,
+///   so the denominator of T_L (equation 22) is D = 3.5 ln T - ln e - 4.805
+///   = ln(T^3 sqrt(T) / (RH/100)) - a - ln 6.112 - 4.805, T_L = (2840 + 55 D) / D;
+/// - ln(p0 / (p - e)) = ln(p0 / p) - ln(1 - e/p): the first is the level's Poisson
+///   factor, the second and ln(T / T_L) are logarithms of numbers near 1 ([`ln_near_one`],
+///   whose z = (y - 1) / (y + 1) is (T D - 2840 - 55 D) / (T D + 2840 + 55 D) for y = T / T_L).
+///
+/// Dry air (RH <= 0) gives theta; RH is clipped to 100 % as in [`vapour_pressure_from_rh`].
+pub fn theta_e_from_rh(t: f64, rh: f64, level: IsobaricLevel) -> f64 {
+    let s = ThetaEStart::of(t, rh);
+    s.finish(s.a.exp(), s.t35_over_h.ln(), level)
+}
+
+/// Equivalent potential temperature along a row of one isobaric level: what
+/// [`theta_e_from_rh`] gives point by point, bit for bit, with the exponentials
+/// and the logarithm taken a chunk of points at a time, so that they run one
+/// after another without waiting for each other.
+pub fn theta_e_from_rh_row(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
+    const CHUNK: usize = 64;
+    let mut starts = [ThetaEStart::default(); CHUNK];
+    let (mut exp_a, mut ln_x) = ([0.0f64; CHUNK], [0.0f64; CHUNK]);
+    let chunks = t.chunks(CHUNK).zip(rh.chunks(CHUNK));
+    for ((t, rh), out) in chunks.zip(out.chunks_mut(CHUNK)) {
+        let n = t.len().min(rh.len()).min(out.len());
+        for i in 0..n {
+            starts[i] = ThetaEStart::of(f64::from(t[i]), f64::from(rh[i]));
+        }
+        for i in 0..n {
+            exp_a[i] = starts[i].a.exp();
+        }
+        for i in 0..n {
+            ln_x[i] = starts[i].t35_over_h.ln();
+        }
+        for i in 0..n {
+            out[i] = starts[i].finish(exp_a[i], ln_x[i], level) as f32;
+        }
+    }
+}
+
+/// What a point of [`theta_e_from_rh`] needs before its exponential and logarithm.
+#[derive(Debug, Clone, Copy, Default)]
+struct ThetaEStart {
+    t: f64,
+    /// RH / 100, clipped to 1 (NaN where an input is missing).
+    h: f64,
+    /// 17.67 (T - 273.15) / (T - 29.65): e_s = 6.112 hPa exp(a).
+    a: f64,
+    /// T^3 sqrt(T) / (RH / 100).
+    t35_over_h: f64,
+}
+
+impl ThetaEStart {
+    #[inline]
+    fn of(t: f64, rh: f64) -> Self {
+        // Not `min`: a missing RH (NaN) must stay missing.
+        let h = if rh > 100.0 { 1.0 } else { rh / 100.0 };
+        Self {
+            t,
+            h,
+            a: 17.67 * (t - 273.15) / (t - 29.65),
+            t35_over_h: t * t * t * t.sqrt() / h,
+        }
+    }
+
+    /// theta_e from exp(a) and ln(T^3 sqrt(T) / (RH/100)).
+    #[inline]
+    fn finish(&self, exp_a: f64, ln_x: f64, level: IsobaricLevel) -> f64 {
+        let (t, h, p) = (self.t, self.h, level.p);
+        if !(t.is_finite() && h.is_finite() && p.is_finite()) {
+            return f64::NAN;
+        }
+        if h <= 0.0 {
+            return t * level.poisson;
+        }
+        let e = h * 611.2 * exp_a;
+        if e >= p {
+            return f64::NAN;
+        }
+        let r = 1000.0 * mixing_ratio(e, p);
+        let d = ln_x - self.a - LN_6_112 - 4.805;
+        let (num, tld) = (t * d, 2840.0 + 55.0 * d); // T D and T_L D
+        let ln_t_over_tl = ln_near_one_z((num - tld) / (num + tld));
+        let x = e * level.inv_p;
+        let ln_one_minus_x = ln_near_one_z(-x / (2.0 - x));
+        let inv_tl = d / tld;
+        let exponent = -KAPPA * ln_one_minus_x
+            + 0.28e-3 * r * ln_t_over_tl
+            + (3.036 * inv_tl - 0.00178) * r * (1.0 + 0.448e-3 * r);
+        t * level.poisson * exponent.exp()
+    }
+}
+
+/// ln 6.112 (Bolton's e_s at 0 C, hPa).
+const LN_6_112: f64 = 1.810_254_051_864_219_4;
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -166,5 +304,80 @@ mod tests {
         let e = 1500.0;
         let q = specific_humidity(e, p);
         assert!((mixing_ratio(e, p) - q / (1.0 - q)).abs() < 1e-12);
+    }
+
+    #[test]
+    fn the_logarithm_near_one_is_the_logarithm() {
+        assert_eq!(LN_6_112, 6.112f64.ln());
+        // Against the library's logarithm across the series' range and past it.
+        for k in 0..=400 {
+            let y = 0.5 + f64::from(k) * 0.0025;
+            let (a, b) = (ln_near_one_z((y - 1.0) / (y + 1.0)), y.ln());
+            assert!((a - b).abs() < 5e-9, "{y}: {a} vs {b}");
+        }
+    }
+
+    #[test]
+    fn theta_e_from_relative_humidity_equals_the_printed_factors() {
+        // Every factor active, and the corners: the warmest saturated surface air
+        // (e/p near 0.1), very dry air (T/T_L past the series' range), the
+        // upper troposphere and the stratosphere, supersaturation clipped.
+        let mut worst: f64 = 0.0;
+        for t in [190.0, 210.0, 230.0, 250.0, 270.0, 290.0, 303.0, 318.0] {
+            for p in [100_000.0, 85_000.0, 50_000.0, 20_000.0, 5_000.0, 1_000.0] {
+                for rh in [0.1, 1.0, 10.0, 50.0, 90.0, 100.0, 104.0] {
+                    let e = vapour_pressure_from_rh(rh, t);
+                    let want = equivalent_potential_temperature(t, p, e);
+                    let got = theta_e_from_rh(t, rh, IsobaricLevel::new(p));
+                    if !want.is_finite() {
+                        // Vapour at or near the level's pressure: missing or overflowing alike.
+                        assert_eq!(got.is_nan(), want.is_nan(), "{t} {p} {rh}: {got}");
+                        continue;
+                    }
+                    worst = worst.max((got - want).abs() / want);
+                    let printed = theta_e_as_printed(t, p, e);
+                    assert!(
+                        (got - printed).abs() < 1e-9 * want,
+                        "{t} {p} {rh}: {got} vs {printed}, {want}"
+                    );
+                }
+            }
+        }
+        // The series' bound, 4e-9 in a logarithm times kappa, is below float32's 6e-8.
+        assert!(worst < 2e-9, "largest relative difference {worst}");
+        // Dry air is theta; a missing input is missing.
+        let l = IsobaricLevel::new(50_000.0);
+        assert!((theta_e_from_rh(250.0, 0.0, l) - potential_temperature(250.0, 5e4)).abs() < 1e-9);
+        assert!(theta_e_from_rh(f64::NAN, 50.0, l).is_nan());
+        assert!(theta_e_from_rh(250.0, f64::NAN, l).is_nan());
+    }
+
+    #[test]
+    fn a_row_is_its_points_bit_for_bit() {
+        // More points than a chunk and a partial last chunk, with missing, dry,
+        // supersaturated and over-saturated-for-the-level points among them.
+        let n = 150;
+        let t: Vec<f32> = (0..n).map(|i| 190.0 + 0.8 * i as f32).collect();
+        let mut rh: Vec<f32> = (0..n).map(|i| (i * 37 % 110) as f32).collect();
+        rh[3] = f32::NAN;
+        rh[70] = 0.0;
+        rh[71] = -2.0;
+        let mut t = t;
+        t[5] = f32::NAN;
+        for p in [100_000.0, 30_000.0, 2_000.0] {
+            let level = IsobaricLevel::new(p);
+            let mut row = vec![0.0f32; n];
+            theta_e_from_rh_row(&t, &rh, level, &mut row);
+            for i in 0..n {
+                let one = theta_e_from_rh(f64::from(t[i]), f64::from(rh[i]), level) as f32;
+                assert_eq!(
+                    row[i].to_bits(),
+                    one.to_bits(),
+                    "{p} {i}: {} vs {one}",
+                    row[i]
+                );
+            }
+            assert!(row[3].is_nan() && row[5].is_nan());
+        }
     }
 }

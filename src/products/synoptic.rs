@@ -10,7 +10,7 @@
 
 use std::borrow::Cow;
 
-use ndarray::{Array2, Array3, Axis, Zip};
+use ndarray::{s, Array2, Array3, Axis, Zip};
 use rayon::prelude::*;
 
 use crate::diagnostics::{baroclinic, moisture, sea_level, thickness};
@@ -113,14 +113,21 @@ pub(super) fn eady_and_steering(
 /// Equivalent potential temperature on every level (Bolton 1980).
 pub(super) fn theta_e(s: &Stacks<'_>) -> Option<Product> {
     let (t, rh) = (s.t?, s.rh?);
+    let (_, ny, nx) = t.dim();
     let mut out = Array3::from_elem(t.dim(), f32::NAN);
-    Zip::indexed(&mut out)
-        .and(t)
-        .and(rh)
-        .par_for_each(|(k, _, _), o, &tk, &r| {
-            let e = moisture::vapour_pressure_from_rh(f64::from(r), f64::from(tk));
-            *o = moisture::equivalent_potential_temperature(f64::from(tk), s.p[k], e) as f32;
-        });
+    let rows = out.as_slice_mut()?.par_chunks_mut(nx).enumerate();
+    rows.for_each(|(row, o)| {
+        let (k, j) = (row / ny, row % ny);
+        let level = moisture::IsobaricLevel::new(s.p[k]);
+        let (t, rh) = (t.slice(s![k, j, ..]), rh.slice(s![k, j, ..]));
+        match (t.as_slice(), rh.as_slice()) {
+            (Some(t), Some(rh)) => moisture::theta_e_from_rh_row(t, rh, level, o),
+            _ => {
+                let (t, rh) = (t.to_vec(), rh.to_vec());
+                moisture::theta_e_from_rh_row(&t, &rh, level, o);
+            }
+        }
+    });
     Some(Product::new(variables::THETA_E, Vertical::Pressure, out))
 }
 
