@@ -554,29 +554,39 @@ mod tests {
         )
     }
 
-    /// Uniform solid-body rotation about the earth's axis, u = u0 cos(phi), v = 0
-    /// (Williamson et al. 1992 test case 1's flow; docs/references.md), moves every point
-    /// west-to-east by the angle u0 dt / a: the departure point is exactly that far west.
-    #[test]
-    fn solid_body_rotation_on_the_sphere() {
+    /// Departure points on the 2.5-degree global grid of [`global_axes`].
+    fn global_departures(
+        old: (&Array2<f64>, &Array2<f64>),
+        new: (&Array2<f64>, &Array2<f64>),
+        dt: f64,
+    ) -> Departures {
         let (lat, lon) = global_axes();
-        let u0 = 40.0;
-        let u = Array2::from_shape_fn((73, 144), |(j, _)| u0 * lat[j].to_radians().cos());
-        let v = Array2::zeros((73, 144));
-        let dt = 12.0 * 3600.0;
         let layout = Layout::Sphere {
             lat: &lat,
             lon: &lon,
             radius: A,
             periodic: true,
         };
-        let d = departure_points(
+        departure_points(
             &layout,
-            (u.view(), v.view()),
-            (u.view(), v.view()),
+            (old.0.view(), old.1.view()),
+            (new.0.view(), new.1.view()),
             dt,
             &settings(3.0),
-        );
+        )
+    }
+
+    /// Uniform solid-body rotation about the earth's axis, u = u0 cos(phi), v = 0
+    /// (Williamson et al. 1992 test case 1's flow; docs/references.md), moves every point
+    /// west-to-east by the angle u0 dt / a: the departure point is exactly that far west.
+    #[test]
+    fn solid_body_rotation_on_the_sphere() {
+        let (lat, _) = global_axes();
+        let u0 = 40.0;
+        let u = Array2::from_shape_fn((73, 144), |(j, _)| u0 * lat[j].to_radians().cos());
+        let v = Array2::zeros((73, 144));
+        let dt = 12.0 * 3600.0;
+        let d = global_departures((&u, &v), (&u, &v), dt);
         assert_eq!(d.not_converged(), 0);
         let shift = (u0 * dt / A).to_degrees() / 2.5; // in columns
         for (j, la) in lat.iter().enumerate().take(65).skip(8) {
@@ -600,22 +610,9 @@ mod tests {
     #[test]
     fn winds_on_different_grids_have_no_departure_points() {
         // The earlier step's winds on another grid: no trajectories, no panic.
-        let (lat, lon) = global_axes();
         let u = Array2::from_elem((73, 144), 10.0);
         let small = Array2::from_elem((72, 144), 10.0);
-        let layout = Layout::Sphere {
-            lat: &lat,
-            lon: &lon,
-            radius: A,
-            periodic: true,
-        };
-        let d = departure_points(
-            &layout,
-            (small.view(), small.view()),
-            (u.view(), u.view()),
-            3600.0,
-            &settings(3.0),
-        );
+        let d = global_departures((&small, &small), (&u, &u), 3600.0);
         assert!(d.status.iter().all(|s| *s == Status::None));
         assert!(d.dj.iter().all(|x| x.is_nan()));
     }

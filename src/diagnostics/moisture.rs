@@ -126,7 +126,7 @@ fn ln_near_one_z(z: f64) -> f64 {
 ///   so the denominator of T_L (equation 22) is D = 3.5 ln T - ln e - 4.805
 ///   = ln(T^3 sqrt(T) / (RH/100)) - a - ln 6.112 - 4.805, T_L = (2840 + 55 D) / D;
 /// - ln(p0 / (p - e)) = ln(p0 / p) - ln(1 - e/p): the first is the level's Poisson
-///   factor, the second and ln(T / T_L) are logarithms of numbers near 1 ([`ln_near_one`],
+///   factor, the second and ln(T / T_L) are logarithms of numbers near 1 (`ln_near_one_z`,
 ///   whose z = (y - 1) / (y + 1) is (T D - 2840 - 55 D) / (T D + 2840 + 55 D) for y = T / T_L).
 ///
 /// Dry air (RH <= 0) gives theta; RH is clipped to 100 % as in [`vapour_pressure_from_rh`].
