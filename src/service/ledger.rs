@@ -931,6 +931,16 @@ pub fn hold_state_dir(state_dir: &Path) -> std::io::Result<std::os::unix::net::U
 /// Take the lock file of `state_dir` (an advisory lock, which `leeward
 /// status` reads), with this process's id in it.
 pub fn take_lock(state_dir: &Path) -> Result<File, String> {
+    try_take_lock(state_dir)?.ok_or_else(|| {
+        format!(
+            "another leeward serve is using the state directory {}",
+            state_dir.display()
+        )
+    })
+}
+
+/// [`take_lock`], with `None` when another process holds the lock.
+pub fn try_take_lock(state_dir: &Path) -> Result<Option<File>, String> {
     let path = lock_path(state_dir);
     let mut f = OpenOptions::new()
         .create(true)
@@ -939,16 +949,17 @@ pub fn take_lock(state_dir: &Path) -> Result<File, String> {
         .write(true)
         .open(&path)
         .map_err(|e| format!("cannot open {}: {e}", path.display()))?;
-    if f.try_lock().is_err() {
-        return Err(format!(
-            "another leeward serve is using the state directory {}",
-            state_dir.display()
-        ));
+    match f.try_lock() {
+        Ok(()) => {}
+        Err(std::fs::TryLockError::WouldBlock) => return Ok(None),
+        Err(std::fs::TryLockError::Error(e)) => {
+            return Err(format!("cannot lock {}: {e}", path.display()))
+        }
     }
     let _ = f.set_len(0);
     let _ = f.write_all(format!("{}\n", std::process::id()).as_bytes());
     let _ = f.sync_all();
-    Ok(f)
+    Ok(Some(f))
 }
 
 /// Bytes that must be free in the state directory for the service to take

@@ -11,15 +11,24 @@
   ledger fails with ENOSPC): the same stop, and once there is room the records
   kept meanwhile are written in order and work goes on; every line of the
   ledger parses (a write that failed part of the way is cut back).
+- A holder that lets go within seconds (a service killed a moment ago can
+  leave a step process between fork and exec that still holds copies of the
+  socket and the lock): a new service waits for it and starts; one that does
+  not let go has the new service refused after the wait.
 
 Steps are the invented demo scenario's (`leeward demo --inputs-only`).
 """
 
 from __future__ import annotations
 
+import fcntl
+import hashlib
 import json
+import os
 import shutil
+import socket
 import subprocess
+import threading
 import time
 from pathlib import Path
 
@@ -119,3 +128,54 @@ def test_a_full_state_directory_stops_new_work_and_keeps_the_records(tmp_path, s
     seen6 = [k for k, x in enumerate(lines) if "lwdemo_2026031400_006" in x and '"seen"' in x]
     pub6 = [k for k, x in enumerate(lines) if '"published"' in x and '"lead":6' in x]
     assert len(seen6) == 1 and len(pub6) == 1 and seen6[0] < pub6[0], events
+
+
+def state_dir_socket(state: Path) -> socket.socket:
+    """Bind the abstract socket a service holds its state directory with: the
+    name is "leeward-state-" and the hex of the first 20 bytes of the SHA-256
+    of the directory's canonical path (docs/operations.md)."""
+    digest = hashlib.sha256(os.fsencode(os.path.realpath(state))).hexdigest()[:40]
+    s = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    s.bind("\0leeward-state-" + digest)
+    return s
+
+
+def let_go_after(seconds: float, release):
+    t = threading.Timer(seconds, release)
+    t.start()
+    return t
+
+
+@pytest.mark.parametrize("held", ["socket", "lock file"])
+def test_a_holder_that_lets_go_within_seconds_is_waited_for(tmp_path, held):
+    state = tmp_path / "state"
+    state.mkdir()
+    if held == "socket":
+        holder = state_dir_socket(state)
+        release = holder.close
+    else:
+        holder = open(state / "leeward.lock", "a+")
+        fcntl.flock(holder, fcntl.LOCK_EX)
+        release = holder.close
+    svc = Service(tmp_path)
+    t0 = time.monotonic()
+    timer = let_go_after(1.5, release)
+    svc.start()
+    timer.join()
+    assert time.monotonic() - t0 >= 1.5
+    assert "waiting for it to let go" in svc.log.read_text()
+    assert svc.stop() == 0
+
+
+def test_a_holder_that_does_not_let_go_has_the_new_service_refused_after_the_wait(tmp_path):
+    state = tmp_path / "state"
+    state.mkdir()
+    holder = state_dir_socket(state)
+    svc = Service(tmp_path)
+    t0 = time.monotonic()
+    r = second_service(svc)
+    waited = time.monotonic() - t0
+    holder.close()
+    assert r.returncode == 2 and "still held after 5 s" in r.stderr, (r.returncode, r.stderr)
+    assert waited >= 5.0, waited
+    assert not (state / "leeward.lock").exists(), "nothing taken in the directory"

@@ -71,30 +71,65 @@ pub(super) fn start(opts: ServeOptions) -> Result<(std::os::unix::net::UnixListe
     Ok((held, d))
 }
 
+/// How long a starting service waits for the state directory's last holder
+/// to let go before it refuses. A service killed a moment ago may leave a
+/// step process it was starting between fork and exec; that process holds
+/// copies of the socket and the lock until its exec closes them, which on a
+/// loaded machine can outlast a quick restart by some milliseconds.
+const HOLDER_PATIENCE: Duration = Duration::from_secs(5);
+
+/// Try `take` until it holds the directory (`Ok(Some)`) or fails, or until
+/// [`HOLDER_PATIENCE`] has passed while another process holds it (`Ok(None)`).
+/// Says once that it waits.
+fn patiently<T>(
+    sdir: &Path,
+    mut take: impl FnMut() -> Result<Option<T>, String>,
+) -> Result<T, String> {
+    let t0 = Instant::now();
+    let mut said = false;
+    loop {
+        if let Some(held) = take()? {
+            return Ok(held);
+        }
+        if t0.elapsed() >= HOLDER_PATIENCE {
+            return Err(format!(
+                "another leeward serve is using the state directory {} (still held after {} s)",
+                sdir.display(),
+                HOLDER_PATIENCE.as_secs()
+            ));
+        }
+        if !said {
+            info!(state_dir = %sdir.display(), patience_s = HOLDER_PATIENCE.as_secs(),
+                "the state directory is held by another process; waiting for it to let go");
+            said = true;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+}
+
 /// Hold the state directory (one service per directory: a hold that survives
 /// the directory's removal, and the lock file that `leeward status` reads)
 /// and open its ledger.
 pub(super) fn open_state(sdir: &Path) -> Result<(std::os::unix::net::UnixListener, Ledger), u8> {
-    let held = crate::service::ledger::hold_state_dir(sdir).map_err(|e| {
-        if e.kind() == std::io::ErrorKind::AddrInUse {
-            refuse(&format!(
-                "another leeward serve is using the state directory {}",
-                sdir.display()
-            ))
-        } else {
-            refuse(&format!(
+    let held = patiently(sdir, || {
+        match crate::service::ledger::hold_state_dir(sdir) {
+            Ok(h) => Ok(Some(h)),
+            Err(e) if e.kind() == std::io::ErrorKind::AddrInUse => Ok(None),
+            Err(e) => Err(format!(
                 "cannot hold the state directory {}: {e}",
                 sdir.display()
-            ))
+            )),
         }
-    })?;
+    })
+    .map_err(|e| refuse(&e))?;
     std::fs::create_dir_all(requests_dir(sdir)).map_err(|e| {
         refuse(&format!(
             "cannot use the state directory {}: {e}",
             sdir.display()
         ))
     })?;
-    let lock = crate::service::ledger::take_lock(sdir).map_err(|e| refuse(&e))?;
+    let lock =
+        patiently(sdir, || crate::service::ledger::try_take_lock(sdir)).map_err(|e| refuse(&e))?;
     let mut ledger = Ledger::open(sdir).map_err(|e| refuse(&e))?;
     ledger.hold(lock).map_err(|e| refuse(&e))?;
     Ok((held, ledger))
