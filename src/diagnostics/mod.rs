@@ -10,6 +10,7 @@ pub mod budget;
 pub mod change;
 pub mod constants;
 pub mod divergence;
+pub mod elementary;
 pub mod horizontal;
 pub mod isentropic;
 pub mod moisture;

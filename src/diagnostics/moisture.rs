@@ -6,6 +6,7 @@
 //! point, NaN where an input is missing. Pure functions: no I/O, no logging.
 
 use super::constants::{KAPPA, P0};
+use super::elementary;
 use super::thickness::{saturation_vapour_pressure, EPSILON};
 
 /// Vapour pressure from specific humidity, Pa: e = p q / (epsilon + (1 - epsilon) q)
@@ -87,8 +88,6 @@ pub struct IsobaricLevel {
     pub p: f64,
     /// (p0 / p)^kappa: potential temperature over temperature on this level.
     pub poisson: f64,
-    /// 1 / p, Pa-1.
-    pub inv_p: f64,
 }
 
 impl IsobaricLevel {
@@ -96,7 +95,6 @@ impl IsobaricLevel {
         Self {
             p,
             poisson: (P0 / p).powf(KAPPA),
-            inv_p: 1.0 / p,
         }
     }
 }
@@ -108,12 +106,21 @@ impl IsobaricLevel {
 /// logarithm of y = (1 + z) / (1 - z).
 #[inline]
 fn ln_near_one_z(z: f64) -> f64 {
-    if z.abs() >= 0.2 || z.is_nan() {
+    if z.abs() >= NEAR_ONE || z.is_nan() {
         return ((1.0 + z) / (1.0 - z)).ln();
     }
+    atanh_series(z)
+}
+
+/// The series of [`ln_near_one_z`] alone, for |z| < [`NEAR_ONE`].
+#[inline(always)]
+fn atanh_series(z: f64) -> f64 {
     let z2 = z * z;
     2.0 * z * (1.0 + z2 * (1.0 / 3.0 + z2 * (1.0 / 5.0 + z2 * (1.0 / 7.0 + z2 / 9.0))))
 }
+
+/// The |z| below which [`atanh_series`] is within 4e-9 of the logarithm.
+const NEAR_ONE: f64 = 0.2;
 
 /// Equivalent potential temperature, K, from temperature `t` (K) and relative
 /// humidity `rh` (%) on the isobaric level `level`: Bolton's equation 39 as in
@@ -129,34 +136,96 @@ fn ln_near_one_z(z: f64) -> f64 {
 ///   factor, the second and ln(T / T_L) are logarithms of numbers near 1 (`ln_near_one_z`,
 ///   whose z = (y - 1) / (y + 1) is (T D - 2840 - 55 D) / (T D + 2840 + 55 D) for y = T / T_L).
 ///
-/// Dry air (RH <= 0) gives theta; RH is clipped to 100 % as in [`vapour_pressure_from_rh`].
+/// Quotients are taken two at a time (a / b and c / d as a d / (b d) and c b / (b d)), so
+/// that a point costs three divisions besides the logarithm's. The exponentials and the
+/// logarithm are [`elementary`]'s, within a few units in the
+/// last place of the library's. Dry air (RH <= 0) gives theta; RH is clipped to 100 %
+/// as in [`vapour_pressure_from_rh`].
 pub fn theta_e_from_rh(t: f64, rh: f64, level: IsobaricLevel) -> f64 {
     let s = ThetaEStart::of(t, rh);
-    s.finish(s.a.exp(), s.t35_over_h.ln(), level)
+    s.one_point(elementary::exp(s.a), elementary::ln(s.t35_over_h), level)
 }
 
-/// Equivalent potential temperature along a row of one isobaric level: what
-/// [`theta_e_from_rh`] gives point by point, bit for bit, with the exponentials
-/// and the logarithm taken a chunk of points at a time, so that they run one
-/// after another without waiting for each other.
+/// Equivalent potential temperature along a row of one isobaric level, float32 in and
+/// out: [`theta_e_from_rh`] of each point (to float32's rounding), a chunk of points
+/// at a time in straight-line arithmetic that runs in vector registers, 4 points
+/// at once where the processor has AVX2.
 pub fn theta_e_from_rh_row(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
-    const CHUNK: usize = 64;
-    let mut starts = [ThetaEStart::default(); CHUNK];
-    let (mut exp_a, mut ln_x) = ([0.0f64; CHUNK], [0.0f64; CHUNK]);
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx2") {
+        // SAFETY: `theta_e_row_avx2` is `theta_e_row` compiled with AVX2 allowed; the only
+        // condition for calling it is a processor with AVX2, checked on the line above.
+        return unsafe { theta_e_row_avx2(t, rh, level, out) };
+    }
+    theta_e_row(t, rh, level, out);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+fn theta_e_row_avx2(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
+    theta_e_row(t, rh, level, out);
+}
+
+#[inline(always)]
+fn theta_e_row(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
     let chunks = t.chunks(CHUNK).zip(rh.chunks(CHUNK));
     for ((t, rh), out) in chunks.zip(out.chunks_mut(CHUNK)) {
-        let n = t.len().min(rh.len()).min(out.len());
-        for i in 0..n {
-            starts[i] = ThetaEStart::of(f64::from(t[i]), f64::from(rh[i]));
-        }
-        for i in 0..n {
-            exp_a[i] = starts[i].a.exp();
-        }
-        for i in 0..n {
-            ln_x[i] = starts[i].t35_over_h.ln();
-        }
-        for i in 0..n {
-            out[i] = starts[i].finish(exp_a[i], ln_x[i], level) as f32;
+        theta_e_chunk(t, rh, level, out);
+    }
+}
+
+/// Points a chunk: enough for the arithmetic to stay in cache between passes.
+const CHUNK: usize = 64;
+
+/// The passes over a chunk's points, one array per quantity.
+struct Passes {
+    start: [ThetaEStart; CHUNK],
+    exp_a: [f64; CHUNK],
+    ln_x: [f64; CHUNK],
+    factor: [f64; CHUNK],
+    exponent: [f64; CHUNK],
+    exp_exponent: [f64; CHUNK],
+    regular: [bool; CHUNK],
+}
+
+/// theta_e of up to [`CHUNK`] points: the regular ones (every input there, moist,
+/// e < p, both logarithms near one within the series' range, the exponent within
+/// [`elementary`]'s reduced range) in straight-line arithmetic; the rest again one by
+/// one through [`ThetaEStart::one_point`], which gives the regular ones the same bits.
+#[inline(always)]
+fn theta_e_chunk(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
+    let n = t.len().min(rh.len()).min(out.len()).min(CHUNK);
+    let mut w = Passes {
+        start: [ThetaEStart::default(); CHUNK],
+        exp_a: [0.0; CHUNK],
+        ln_x: [0.0; CHUNK],
+        factor: [0.0; CHUNK],
+        exponent: [0.0; CHUNK],
+        exp_exponent: [0.0; CHUNK],
+        regular: [false; CHUNK],
+    };
+    for i in 0..n {
+        w.start[i] = ThetaEStart::of(f64::from(t[i]), f64::from(rh[i]));
+        w.factor[i] = w.start[i].a; // the exponential's argument, for the moment
+        w.exponent[i] = w.start[i].t35_over_h; // the logarithm's
+    }
+    elementary::exp_slice(&w.factor[..n], &mut w.exp_a[..n]);
+    elementary::ln_slice(&w.exponent[..n], &mut w.ln_x[..n]);
+    for i in 0..n {
+        let s = &w.start[i];
+        let (x, regular) = s.regular(w.exp_a[i], w.ln_x[i], level);
+        w.regular[i] = regular;
+        w.exponent[i] = if regular { x } else { 0.0 };
+        w.factor[i] = s.t * level.poisson;
+    }
+    elementary::exp_slice(&w.exponent[..n], &mut w.exp_exponent[..n]);
+    let out = &mut out[..n];
+    for ((o, f), e) in out.iter_mut().zip(&w.factor).zip(&w.exp_exponent) {
+        *o = (f * e) as f32;
+    }
+    for (i, o) in out.iter_mut().enumerate() {
+        if !w.regular[i] {
+            *o = w.start[i].one_point(w.exp_a[i], w.ln_x[i], level) as f32;
         }
     }
 }
@@ -174,21 +243,68 @@ struct ThetaEStart {
 }
 
 impl ThetaEStart {
-    #[inline]
+    #[inline(always)]
     fn of(t: f64, rh: f64) -> Self {
         // Not `min`: a missing RH (NaN) must stay missing.
-        let h = if rh > 100.0 { 1.0 } else { rh / 100.0 };
+        let h = if rh > 100.0 { 1.0 } else { rh * 0.01 };
+        // One division for the two quotients: 1 / ((T - 29.65) h).
+        let inv = 1.0 / ((t - 29.65) * h);
         Self {
             t,
             h,
-            a: 17.67 * (t - 273.15) / (t - 29.65),
-            t35_over_h: t * t * t * t.sqrt() / h,
+            a: 17.67 * (t - 273.15) * h * inv,
+            t35_over_h: t * t * t * t.sqrt() * (t - 29.65) * inv,
         }
     }
 
-    /// theta_e from exp(a) and ln(T^3 sqrt(T) / (RH/100)).
-    #[inline]
-    fn finish(&self, exp_a: f64, ln_x: f64, level: IsobaricLevel) -> f64 {
+    /// Bolton's exponent, from exp(a), ln(T^3 sqrt(T) / (RH/100)) and the two logarithms
+    /// near one taken by `ln1` (their z as arguments): theta_e = T (p0/p)^kappa exp(exponent).
+    /// Also e, and the two z.
+    #[inline(always)]
+    fn exponent(
+        &self,
+        exp_a: f64,
+        ln_x: f64,
+        level: IsobaricLevel,
+        ln1: fn(f64) -> f64,
+    ) -> [f64; 4] {
+        let (e, p) = (self.h * 611.2 * exp_a, level.p);
+        // r = 1000 epsilon e / (p - e) and, with x = e / p, z_p = -x / (2 - x) = -e / (2p - e):
+        // one division for the two.
+        let inv = 1.0 / ((p - e) * (2.0 * p - e));
+        let r = 1000.0 * EPSILON * e * (2.0 * p - e) * inv;
+        let z_p = -e * (p - e) * inv;
+        let d = ln_x - self.a - LN_6_112 - 4.805;
+        // T D and T_L D; z_t = (T D - T_L D) / (T D + T_L D) and 1 / T_L = D / (T_L D):
+        // one division for the two.
+        let (num, tld) = (self.t * d, 2840.0 + 55.0 * d);
+        let inv = 1.0 / ((num + tld) * tld);
+        let z_t = (num - tld) * tld * inv;
+        let inv_tl = d * (num + tld) * inv;
+        let exponent = -KAPPA * ln1(z_p)
+            + 0.28e-3 * r * ln1(z_t)
+            + (3.036 * inv_tl - 0.00178) * r * (1.0 + 0.448e-3 * r);
+        [exponent, e, z_t, z_p]
+    }
+
+    /// The exponent of a regular point, and whether the point is regular. No branches:
+    /// the conditions are combined with `&`, not `&&`.
+    #[inline(always)]
+    fn regular(&self, exp_a: f64, ln_x: f64, level: IsobaricLevel) -> (f64, bool) {
+        let [x, e, z_t, z_p] = self.exponent(exp_a, ln_x, level, atanh_series);
+        let finite = (self.t.abs() < f64::INFINITY) & (self.h.abs() < f64::INFINITY);
+        let moist = (self.h > 0.0) & (e < level.p);
+        let near_one = (z_t.abs() < NEAR_ONE) & (z_p.abs() < NEAR_ONE);
+        (
+            x,
+            finite & moist & near_one & (x.abs() < 700.0) & (level.p < f64::INFINITY),
+        )
+    }
+
+    /// theta_e of any point, one at a time: missing where an input is missing or e >= p,
+    /// theta for dry air, else with the library's logarithm beyond the series' range.
+    /// For a regular point, the operations of [`theta_e_chunk`] in the same order.
+    fn one_point(&self, exp_a: f64, ln_x: f64, level: IsobaricLevel) -> f64 {
         let (t, h, p) = (self.t, self.h, level.p);
         if !(t.is_finite() && h.is_finite() && p.is_finite()) {
             return f64::NAN;
@@ -196,21 +312,11 @@ impl ThetaEStart {
         if h <= 0.0 {
             return t * level.poisson;
         }
-        let e = h * 611.2 * exp_a;
+        let [x, e, _, _] = self.exponent(exp_a, ln_x, level, ln_near_one_z);
         if e >= p {
             return f64::NAN;
         }
-        let r = 1000.0 * mixing_ratio(e, p);
-        let d = ln_x - self.a - LN_6_112 - 4.805;
-        let (num, tld) = (t * d, 2840.0 + 55.0 * d); // T D and T_L D
-        let ln_t_over_tl = ln_near_one_z((num - tld) / (num + tld));
-        let x = e * level.inv_p;
-        let ln_one_minus_x = ln_near_one_z(-x / (2.0 - x));
-        let inv_tl = d / tld;
-        let exponent = -KAPPA * ln_one_minus_x
-            + 0.28e-3 * r * ln_t_over_tl
-            + (3.036 * inv_tl - 0.00178) * r * (1.0 + 0.448e-3 * r);
-        t * level.poisson * exponent.exp()
+        t * level.poisson * elementary::exp(x)
     }
 }
 
@@ -368,6 +474,11 @@ mod tests {
             let level = IsobaricLevel::new(p);
             let mut row = vec![0.0f32; n];
             theta_e_from_rh_row(&t, &rh, level, &mut row);
+            // Where the processor has AVX2, that was the wide form: the plain one agrees.
+            let mut plain = vec![0.0f32; n];
+            theta_e_row(&t, &rh, level, &mut plain);
+            let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&row), bits(&plain));
             for i in 0..n {
                 let one = theta_e_from_rh(f64::from(t[i]), f64::from(rh[i]), level) as f32;
                 assert_eq!(
