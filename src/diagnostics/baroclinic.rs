@@ -103,6 +103,87 @@ pub fn pressure_weighted_mean(f: &[f64], p: &[f64], p_bottom: f64, p_top: f64) -
     }
 }
 
+/// [`pressure_weighted_mean`] planned once for a set of levels and a layer, for
+/// the columns where every level is valid (the usual case above ground): the points
+/// it integrates over, where each point's value comes from, and the layer's depth.
+/// A column then costs its sums only. The operations are those of
+/// [`pressure_weighted_mean`] in the same order, so a column gets the same bits.
+#[derive(Debug, Clone)]
+pub struct LayerPlan {
+    /// The points in increasing pressure: pressure, Pa, and where the value comes from.
+    points: Vec<(f64, Node)>,
+    /// Sum of the pressure steps between the points, Pa.
+    depth: f64,
+    /// Whether the points cover at least half of the layer (else the mean is NaN).
+    covers: bool,
+}
+
+/// Where a point's value comes from: a level, or between level k and k + 1 at weight w.
+#[derive(Debug, Clone, Copy)]
+enum Node {
+    Level(usize),
+    Between(usize, f64),
+}
+
+impl LayerPlan {
+    /// The plan for the levels `p` (Pa, increasing) and the layer from `p_bottom` up
+    /// to `p_top`; None where [`pressure_weighted_mean`] has no layer (bounds not in order).
+    pub fn new(p: &[f64], p_bottom: f64, p_top: f64) -> Option<Self> {
+        let n = p.len();
+        if p_bottom.partial_cmp(&p_top) != Some(std::cmp::Ordering::Greater) || n == 0 {
+            return None;
+        }
+        let at = |target: f64| {
+            (0..n - 1).find_map(|k| {
+                let (pa, pb) = (p[k], p[k + 1]);
+                if target == pa {
+                    Some(Node::Level(k))
+                } else if pa <= target && target <= pb {
+                    Some(Node::Between(
+                        k,
+                        (target.ln() - pa.ln()) / (pb.ln() - pa.ln()),
+                    ))
+                } else {
+                    None
+                }
+            })
+        };
+        let mut points = Vec::with_capacity(n + 2);
+        points.extend(at(p_top).map(|v| (p_top, v)));
+        let inside = (0..n).filter(|&k| p[k] > p_top && p[k] < p_bottom);
+        points.extend(inside.map(|k| (p[k], Node::Level(k))));
+        points.extend(at(p_bottom).map(|v| (p_bottom, v)));
+        points.sort_by(|a, b| a.0.total_cmp(&b.0));
+        points.dedup_by(|a, b| a.0 == b.0);
+        let depth = points.windows(2).fold(0.0, |d, w| d + (w[1].0 - w[0].0));
+        let covers = depth >= 0.5 * (p_bottom - p_top);
+        Some(Self {
+            points,
+            depth,
+            covers,
+        })
+    }
+
+    /// The mean of the column `f` on the plan's levels, every value finite (the
+    /// caller checks; a missing value belongs to [`pressure_weighted_mean`]).
+    pub fn mean(&self, f: &[f64]) -> f64 {
+        let value = |node: Node| match node {
+            Node::Level(k) => f[k],
+            Node::Between(k, w) => f[k] + w * (f[k + 1] - f[k]),
+        };
+        let mut sum = 0.0;
+        for w in self.points.windows(2) {
+            let ((pa, a), (pb, b)) = (w[0], w[1]);
+            sum += 0.5 * (value(a) + value(b)) * (pb - pa);
+        }
+        if self.covers {
+            sum / self.depth
+        } else {
+            f64::NAN
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -127,6 +208,41 @@ mod tests {
         // Unstable or neutral layers have no rate.
         assert!(eady_growth_rate(f, 10.0, 0.0, 4000.0, 300.0, 299.0).is_nan());
         assert!(eady_growth_rate(f, 10.0, 0.0, 4000.0, 300.0, 300.0).is_nan());
+    }
+
+    #[test]
+    fn a_planned_layer_gives_the_same_bits() {
+        // Bounds on levels, between levels, on the first and last level, beyond the
+        // column and covering less than half of it; columns linear, curved and lumpy.
+        let p: Vec<f64> = [100.0, 250.0, 300.0, 500.0, 700.0, 850.0, 925.0, 1000.0]
+            .iter()
+            .map(|h| h * 100.0)
+            .collect();
+        let layers = [
+            (90_000.0, 70_000.0),
+            (92_500.0, 67_500.0),
+            (100_000.0, 10_000.0),
+            (105_000.0, 5_000.0),
+            (101_000.0, 99_000.0),
+            (26_000.0, 24_000.0),
+            (85_000.0, 85_000.0),
+        ];
+        for (bottom, top) in layers {
+            let plan = LayerPlan::new(&p, bottom, top);
+            for c in 0..50 {
+                let c = f64::from(c);
+                let f: Vec<f64> = p.iter().map(|x| (x * 1e-4 * c).sin() * 7.0 + c).collect();
+                let want = pressure_weighted_mean(&f, &p, bottom, top);
+                let got = plan.as_ref().map_or(f64::NAN, |plan| plan.mean(&f));
+                assert_eq!(
+                    got.to_bits(),
+                    want.to_bits(),
+                    "{bottom} {top} {c}: {got} {want}"
+                );
+            }
+        }
+        assert!(LayerPlan::new(&p, 70_000.0, 90_000.0).is_none());
+        assert!(LayerPlan::new(&p, f64::NAN, 90_000.0).is_none());
     }
 
     #[test]

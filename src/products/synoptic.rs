@@ -201,12 +201,14 @@ fn layer_levels(p: &[f64], p_bottom: f64, p_top: f64) -> std::ops::Range<usize> 
 }
 
 /// Pressure-weighted mean of `a` over the layer `l` (hPa) in every column: the
-/// rows on every core, each column read on the layer's levels only.
+/// rows on every core, each column read on the layer's levels only, through the
+/// layer's [`baroclinic::LayerPlan`] where every level is valid.
 fn layer_mean(a: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Array2<f32> {
     let (p_bottom, p_top) = (l[0] * 100.0, l[1] * 100.0);
     let ks = layer_levels(p, p_bottom, p_top);
     let ps = &p[ks.clone()];
     let (_, ny, nx) = a.dim();
+    let plan = baroclinic::LayerPlan::new(ps, p_bottom, p_top);
     let mut out = Array2::from_elem((ny, nx), f32::NAN);
     out.axis_iter_mut(Axis(0))
         .into_par_iter()
@@ -217,7 +219,10 @@ fn layer_mean(a: &Array3<f32>, p: &[f64], l: [f64; 2]) -> Array2<f32> {
                 for (c, k) in col.iter_mut().zip(ks.clone()) {
                     *c = f64::from(a[(k, j, i)]);
                 }
-                *o = baroclinic::pressure_weighted_mean(&col, ps, p_bottom, p_top) as f32;
+                *o = match &plan {
+                    Some(plan) if col.iter().all(|c| c.is_finite()) => plan.mean(&col),
+                    _ => baroclinic::pressure_weighted_mean(&col, ps, p_bottom, p_top),
+                } as f32;
             }
         });
     out
