@@ -533,7 +533,11 @@ fn data_variable(
     let nsb = p.kept_bits.bits(prod.spec.name);
     describe_variable(&mut v, prod, coords, nsb, t.layer)?;
     if t.vertical.is_empty() {
-        // One level, no vertical dimension: through libnetcdf, which packs it.
+        // One level, no vertical dimension: packed as its chunk, or through
+        // libnetcdf, which packs it.
+        if let Values::Packed(packed) = &prod.values {
+            return Ok(Some((t.name.clone(), packed.levels(&[0]))));
+        }
         let buf: Vec<f32> = prod.level(0).iter().map(|&x| stored(x, nsb)).collect();
         v.put_values(&buf, (0, .., ..))?;
         return Ok(None);

@@ -11,6 +11,7 @@
 //! the file declares the same filters, and the tests compare the values read
 //! back by libnetcdf with those written through the library's own path.
 
+use std::cell::RefCell;
 use std::ffi::CString;
 use std::io::{Read, Write};
 use std::path::Path;
@@ -85,37 +86,117 @@ pub fn unshuffle4(bytes: &[u8]) -> Vec<u8> {
     out
 }
 
+thread_local! {
+    /// Per thread: the shuffled planes and the deflate output of the level being
+    /// packed, kept for the thread's next level, so that packing a level takes no
+    /// fresh pages from the kernel (and leaves no holes in the heap) besides its
+    /// stream's own bytes.
+    static SCRATCH: RefCell<(Vec<u8>, Vec<u8>)> = const { RefCell::new((Vec::new(), Vec::new())) };
+}
+
 /// One level as it is stored: bit-rounded to `nsb` significant bits, missing
-/// values as the fill value, little-endian, shuffled, deflated at `level`.
-pub fn pack_level(values: ArrayView2<'_, f32>, nsb: u32, level: u32) -> Vec<u8> {
-    let mut raw = Vec::with_capacity(values.len() * 4);
-    for &x in values.iter() {
-        let y = if x.is_finite() {
-            bit_round(x, nsb)
-        } else {
-            FILL_F32
-        };
-        raw.extend_from_slice(&y.to_le_bytes());
+/// values as the fill value, little-endian, shuffled, deflated at `level`; and
+/// the number of values not missing.
+pub fn pack_level(values: ArrayView2<'_, f32>, nsb: u32, level: u32) -> (Vec<u8>, usize) {
+    let pack = |(planes, out): &mut (Vec<u8>, Vec<u8>)| {
+        let valid = rounded_planes(values, nsb, planes);
+        (deflate_zlib(planes, level, out), valid)
+    };
+    SCRATCH.with(|s| match s.try_borrow_mut() {
+        Ok(mut scratch) => pack(&mut scratch),
+        // Not reached (nothing here packs within a pack); fresh buffers if it were.
+        Err(_) => pack(&mut (Vec::new(), Vec::new())),
+    })
+}
+
+/// The level's values bit-rounded ([`bit_round`]), missing ones as the fill
+/// value, little-endian and shuffled ([`shuffle4`]) into `out` in one pass;
+/// returns the number of values not missing.
+pub fn rounded_planes(values: ArrayView2<'_, f32>, nsb: u32, out: &mut Vec<u8>) -> usize {
+    let owned;
+    let flat = match values.as_slice() {
+        Some(v) => v,
+        None => {
+            owned = values.iter().copied().collect::<Vec<f32>>();
+            &owned
+        }
+    };
+    let n = flat.len();
+    out.clear();
+    out.resize(4 * n, 0);
+    let (b0, rest) = out.split_at_mut(n);
+    let (b1, rest) = rest.split_at_mut(n);
+    let (b2, b3) = rest.split_at_mut(n);
+    let round = Rounding::new(nsb);
+    let mut valid = 0;
+    let planes = b0.iter_mut().zip(b1.iter_mut()).zip(b2.iter_mut().zip(b3));
+    for (&x, ((o0, o1), (o2, o3))) in flat.iter().zip(planes) {
+        let finite = x.is_finite();
+        valid += usize::from(finite);
+        let y = if finite { round.apply(x) } else { FILL_F32 };
+        [*o0, *o1, *o2, *o3] = y.to_le_bytes();
     }
-    let shuffled = shuffle4(&raw);
-    drop(raw);
-    deflate_zlib(&shuffled, level)
+    valid
+}
+
+/// [`bit_round`] of finite values with its constants worked out once, without
+/// branches: the same bits.
+#[derive(Debug, Clone, Copy)]
+struct Rounding {
+    shift: u32,
+    /// Selects the last kept bit (zero when every bit is kept).
+    odd: u32,
+    half_minus_one: u32,
+    mask: u32,
+}
+
+impl Rounding {
+    fn new(nsb: u32) -> Self {
+        if nsb >= 23 {
+            return Rounding {
+                shift: 0,
+                odd: 0,
+                half_minus_one: 0,
+                mask: !0,
+            };
+        }
+        let shift = 23 - nsb.max(1);
+        Rounding {
+            shift,
+            odd: 1,
+            half_minus_one: (1u32 << (shift - 1)) - 1,
+            mask: !((1u32 << shift) - 1),
+        }
+    }
+
+    /// `x` finite: rounded, or `x` itself where rounding would overflow.
+    #[inline(always)]
+    fn apply(self, x: f32) -> f32 {
+        let b = x.to_bits();
+        let odd = (b >> self.shift) & self.odd;
+        let y = f32::from_bits(b.wrapping_add(self.half_minus_one + odd) & self.mask);
+        if y.is_finite() {
+            y
+        } else {
+            x
+        }
+    }
 }
 
 /// A zlib-format (RFC 1950) deflate stream of `data` at `level` (1-9), the
 /// format of HDF5's deflate filter. libdeflate: at level 1 as fast as zlib's
 /// fastest mode here and about a quarter smaller on shuffled bit-rounded floats
 /// (measured: 161 MB/s and ratio 3.91, against 162 MB/s and 2.97; docs/performance.md).
-fn deflate_zlib(data: &[u8], level: u32) -> Vec<u8> {
+/// `out` is the room for it, kept by the caller; the stream is returned in a
+/// vector of its own length.
+fn deflate_zlib(data: &[u8], level: u32, out: &mut Vec<u8>) -> Vec<u8> {
     let lvl = libdeflater::CompressionLvl::new(level.clamp(1, 9) as i32)
         .unwrap_or_else(|_| libdeflater::CompressionLvl::fastest());
     let mut c = libdeflater::Compressor::new(lvl);
-    let mut out = vec![0u8; c.zlib_compress_bound(data.len())];
-    match c.zlib_compress(data, &mut out) {
-        Ok(n) => {
-            out.truncate(n);
-            out
-        }
+    out.clear();
+    out.resize(c.zlib_compress_bound(data.len()), 0);
+    match c.zlib_compress(data, out) {
+        Ok(n) => out[..n].to_vec(),
         // The bound makes this unreachable; a stored-by-zlib stream is still correct.
         Err(_) => {
             let mut z =
@@ -129,14 +210,14 @@ fn deflate_zlib(data: &[u8], level: u32) -> Vec<u8> {
 impl Packed {
     /// Pack every level of `data`, levels in parallel.
     pub fn new(data: &Array3<f32>, nsb: u32, level: u32) -> Packed {
-        let chunks = (0..data.dim().0)
+        let (chunks, valid): (Vec<Vec<u8>>, Vec<usize>) = (0..data.dim().0)
             .into_par_iter()
             .map(|k| pack_level(data.index_axis(Axis(0), k), nsb, level))
-            .collect();
+            .unzip();
         Packed {
             shape: data.dim(),
             chunks,
-            valid: data.iter().filter(|x| x.is_finite()).count(),
+            valid: valid.iter().sum(),
         }
     }
 
@@ -169,11 +250,15 @@ impl Packed {
         if !ok || raw.len() != ny * nx * 4 {
             return Array2::from_elem((ny, nx), f32::NAN);
         }
-        let raw = unshuffle4(&raw);
-        let vals: Vec<f32> = raw
-            .chunks_exact(4)
-            .map(|b| {
-                let v = f32::from_le_bytes([b[0], b[1], b[2], b[3]]);
+        // Unshuffled and read in one pass: byte b of value i is at b * n + i.
+        let n = ny * nx;
+        let (b0, rest) = raw.split_at(n);
+        let (b1, rest) = rest.split_at(n);
+        let (b2, b3) = rest.split_at(n);
+        let planes = b0.iter().zip(b1).zip(b2.iter().zip(b3));
+        let vals: Vec<f32> = planes
+            .map(|((&a, &b), (&c, &d))| {
+                let v = f32::from_le_bytes([a, b, c, d]);
                 if v == FILL_F32 {
                     f32::NAN
                 } else {
@@ -202,9 +287,25 @@ impl Packed {
     }
 }
 
+/// The rank of the dataset `dset` (an open dataset id), if HDF5 gives it.
+fn dataset_rank(dset: hdf5_metno_sys::h5i::hid_t) -> Option<usize> {
+    use hdf5_metno_sys::{h5d, h5s};
+    // SAFETY: `dset` is a valid open dataset id (the caller's); the returned
+    // dataspace id is checked and closed exactly once.
+    let space = unsafe { h5d::H5Dget_space(dset) };
+    if space < 0 {
+        return None;
+    }
+    // SAFETY: `space` is the valid dataspace id obtained above.
+    let n = unsafe { h5s::H5Sget_simple_extent_ndims(space) };
+    // SAFETY: closing the dataspace id obtained above, once.
+    unsafe { h5s::H5Sclose(space) };
+    usize::try_from(n).ok()
+}
+
 /// Store packed chunks into the datasets of a closed NetCDF-4 file, which
-/// declared them with chunks `[1, 1, ny, nx]` and the shuffle and deflate
-/// filters. `vars` names each variable and its chunks (time index 0).
+/// declared them with chunks `[1, 1, ny, nx]` (`[1, ny, nx]` for a single
+/// field) and the shuffle and deflate filters. `vars` names each variable and its chunks (time index 0).
 pub fn write_chunks(path: &Path, vars: &[(&str, &Packed)]) -> Result<(), String> {
     use hdf5_metno_sys::{h5d, h5f, h5i::hid_t, h5p::H5P_DEFAULT};
     let cpath = CString::new(path.as_os_str().as_encoded_bytes())
@@ -236,14 +337,26 @@ pub fn write_chunks(path: &Path, vars: &[(&str, &Packed)]) -> Result<(), String>
             ));
             break;
         }
+        let rank = dataset_rank(dset);
+        if !(rank == Some(4) || (rank == Some(3) && packed.chunks.len() == 1)) {
+            result = Err(format!(
+                "{}: dataset {name} has rank {rank:?}, not 4, or 3 with one level",
+                path.display()
+            ));
+            // SAFETY: closing the dataset id opened above, once.
+            unsafe { h5d::H5Dclose(dset) };
+            break;
+        }
         for (k, chunk) in packed.chunks.iter().enumerate() {
+            // (time, vertical, y, x), or (time, y, x) for a single field.
             let offset: [u64; 4] = [0, k as u64, 0, 0];
             // SAFETY: `dset` is a valid dataset id of rank 4 (time, vertical,
-            // y, x) whose chunk shape is [1, 1, ny, nx], so `offset` (4
-            // elements, on a chunk boundary) is what H5Dwrite_chunk reads;
-            // `chunk` is a live buffer of exactly `chunk.len()` bytes, which
-            // the library copies into the file before returning. Filter mask
-            // 0: every declared filter was applied.
+            // y, x) with chunks [1, 1, ny, nx], or of rank 3 (time, y, x) with
+            // chunks [1, ny, nx] and then k = 0 (checked above); H5Dwrite_chunk
+            // reads the first `rank` elements of `offset`, all on a chunk
+            // boundary; `chunk` is a live buffer of exactly `chunk.len()` bytes,
+            // which the library copies into the file before returning. Filter
+            // mask 0: every declared filter was applied.
             let rc = unsafe {
                 h5d::H5Dwrite_chunk(
                     dset,
@@ -309,6 +422,122 @@ mod tests {
     }
 
     #[test]
+    fn the_one_pass_planes_are_bit_round_then_shuffle4() {
+        // Edges: zeros, subnormals, the largest float (rounding would overflow),
+        // infinities and NaN (the fill value), then a spread of magnitudes.
+        let mut v = vec![
+            0.0f32,
+            -0.0,
+            1.0e-45,
+            -1.2e-38,
+            f32::MAX,
+            -f32::MAX,
+            f32::INFINITY,
+            f32::NEG_INFINITY,
+            f32::NAN,
+            1.0 + 2f32.powi(-8),
+        ];
+        let mut x = 0.1234_f32;
+        for i in 0..2000 {
+            x = (x * 3.7 + 0.31).fract();
+            v.push((x - 0.5) * 10f32.powi(i % 60 - 30));
+        }
+        let a = Array2::from_shape_vec((10, v.len() / 10), v.clone()).unwrap();
+        for nsb in [1u32, 2, 7, 12, 16, 22, 23, 30] {
+            let mut raw = Vec::new();
+            for &x in &v {
+                let y = if x.is_finite() {
+                    bit_round(x, nsb)
+                } else {
+                    FILL_F32
+                };
+                raw.extend_from_slice(&y.to_le_bytes());
+            }
+            let mut planes = Vec::new();
+            let valid = rounded_planes(a.view(), nsb, &mut planes);
+            assert_eq!(planes, shuffle4(&raw), "nsb {nsb}");
+            assert_eq!(valid, v.iter().filter(|x| x.is_finite()).count());
+            // A view that is not contiguous gives the same bytes.
+            let t = a.t().to_owned();
+            let mut again = vec![7u8; 3];
+            rounded_planes(t.t(), nsb, &mut again);
+            assert_eq!(again, planes, "nsb {nsb}, transposed, into a used buffer");
+        }
+    }
+
+    /// A NetCDF-4 file with `name` declared as leeward declares its data
+    /// variables (rank 3 or 4, chunks of one level, shuffle and deflate 1).
+    fn declared(dir: &Path, name: &str, dims: &[(&str, usize)]) -> std::path::PathBuf {
+        let path = dir.join(format!("{name}.nc"));
+        let mut f = netcdf::create(&path).unwrap();
+        for (d, n) in dims {
+            f.add_dimension(d, *n).unwrap();
+        }
+        let names: Vec<&str> = dims.iter().map(|d| d.0).collect();
+        let mut v = f.add_variable::<f32>(name, &names).unwrap();
+        let (ny, nx) = (dims[dims.len() - 2].1, dims[dims.len() - 1].1);
+        crate::output::cf::declare_storage(&mut v, 1, (ny, nx)).unwrap();
+        f.close().unwrap();
+        path
+    }
+
+    #[test]
+    fn stored_chunks_read_back_through_libnetcdf_for_single_fields_and_levels() {
+        let dir = std::env::temp_dir().join(format!("leeward-chunks-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let a = Array3::from_shape_fn((3, 5, 7), |(k, j, i)| {
+            if (k * 35 + j * 7 + i) % 11 == 0 {
+                f32::NAN
+            } else {
+                1013.25 + k as f32 * 7.1 - j as f32 * 0.37 + i as f32 * 0.013
+            }
+        });
+        let expect = |x: f32| {
+            if x.is_finite() {
+                bit_round(x, 12)
+            } else {
+                f32::NAN
+            }
+        };
+        // A single field (time, y, x): its one level.
+        let one = Packed::new(&a, 12, 1).levels(&[1]);
+        let path = declared(&dir, "single", &[("time", 1), ("y", 5), ("x", 7)]);
+        write_chunks(&path, &[("single", &one)]).unwrap();
+        let f = netcdf::open(&path).unwrap();
+        let got: Vec<f32> = f
+            .variable("single")
+            .unwrap()
+            .get_values((0, .., ..))
+            .unwrap();
+        for (x, y) in a.index_axis(Axis(0), 1).iter().zip(&got) {
+            let want = expect(*x);
+            assert!(
+                want.to_bits() == y.to_bits() || (want.is_nan() && *y == FILL_F32),
+                "{x}: {y}"
+            );
+        }
+        // Every level (time, level, y, x).
+        let all = Packed::new(&a, 12, 1);
+        let path = declared(&dir, "levels", &[("time", 1), ("z", 3), ("y", 5), ("x", 7)]);
+        write_chunks(&path, &[("levels", &all)]).unwrap();
+        let f = netcdf::open(&path).unwrap();
+        let got: Vec<f32> = f
+            .variable("levels")
+            .unwrap()
+            .get_values((0, .., .., ..))
+            .unwrap();
+        for (x, y) in a.iter().zip(&got) {
+            let want = expect(*x);
+            assert!(want.to_bits() == y.to_bits() || (want.is_nan() && *y == FILL_F32));
+        }
+        // Three levels cannot go into a single field.
+        let path = declared(&dir, "wrong", &[("time", 1), ("y", 5), ("x", 7)]);
+        let e = write_chunks(&path, &[("wrong", &all)]).unwrap_err();
+        assert!(e.contains("rank Some(3)"), "{e}");
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    #[test]
     fn a_packed_level_unpacks_to_the_bit_rounded_values() {
         let a = Array3::from_shape_fn((3, 7, 11), |(k, j, i)| {
             if (k + j + i) % 13 == 0 {
@@ -328,5 +557,23 @@ mod tests {
         }
         // Deflate of a smooth field: smaller than the raw values.
         assert!(p.bytes() < a.len() * 4);
+        // The threads' kept buffers, used for a larger product in between, give
+        // the same streams, each of its own length.
+        let big = Array3::from_shape_fn((4, 40, 50), |(k, j, i)| (k * j + i) as f32 * 0.7);
+        let _ = Packed::new(&big, 23, 1);
+        let again = Packed::new(&a, 16, 1);
+        assert_eq!(again.chunks, p.chunks);
+        for c in &again.chunks {
+            // Each chunk is one whole zlib stream and nothing after it.
+            let mut z = flate2::Decompress::new(true);
+            let mut raw = vec![0u8; 7 * 11 * 4 + 16];
+            let status = z.decompress(c, &mut raw, flate2::FlushDecompress::Finish);
+            assert!(
+                matches!(status, Ok(flate2::Status::StreamEnd)),
+                "{status:?}"
+            );
+            assert_eq!((z.total_in(), z.total_out()), (c.len() as u64, 7 * 11 * 4));
+            assert_eq!(c.capacity(), c.len());
+        }
     }
 }

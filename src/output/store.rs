@@ -504,12 +504,9 @@ fn add_one(
         .variable_mut(&t.name)
         .ok_or_else(|| netcdf::Error::from("variable vanished"))?;
     super::cf::describe_variable(&mut v, prod, coords, nsb, t.layer)?;
+    // One level, no vertical dimension: its level 0 is the whole field.
     let surface = t.vertical.is_empty();
-    if surface {
-        // One level, no vertical dimension: through libnetcdf, which packs it.
-        let buf: Vec<f32> = prod.level(0).iter().map(|&x| stored(x, nsb)).collect();
-        return v.put_values(&buf, (0, .., ..));
-    }
+    let levels = if surface { vec![0] } else { levels };
     if is_new && deflate > 0 {
         let packed = match &prod.values {
             super::cf::Values::Plain(a) => super::pack::Packed::new(a, nsb, deflate as u32),
@@ -517,6 +514,11 @@ fn add_one(
         };
         direct.push((t.name.clone(), packed.levels(&levels)));
         return Ok(());
+    }
+    if surface {
+        // Rewritten in place: through libnetcdf, which packs it.
+        let buf: Vec<f32> = prod.level(0).iter().map(|&x| stored(x, nsb)).collect();
+        return v.put_values(&buf, (0, .., ..));
     }
     for (n, &k) in levels.iter().enumerate() {
         let buf: Vec<f32> = prod.level(k).iter().map(|&x| stored(x, nsb)).collect();

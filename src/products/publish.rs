@@ -103,6 +103,7 @@ pub(super) fn finish(
     fields.extend(change_products.into_iter().map(|c| p.seal.seal(c)));
     rep.family_seconds
         .push(("changes_read", t_family.elapsed().as_secs_f64()));
+    p.seal.seal_rest(&mut fields);
     let pack_seconds = p.seal.seconds();
     rep.family_seconds.push(("packing", pack_seconds));
     for (family, seconds) in &rep.family_seconds {

@@ -8,6 +8,7 @@ use std::cell::Cell;
 use std::time::Instant;
 
 use ndarray::Array3;
+use rayon::prelude::*;
 
 use crate::config::settings::Output;
 use crate::output::cf::{Product, Vertical};
@@ -43,6 +44,18 @@ impl<'a> Sealer<'a> {
         self.seconds
             .set(self.seconds.get() + t.elapsed().as_secs_f64());
         p
+    }
+
+    /// Pack those of `fields` still plain (the single fields, made whole
+    /// rather than level by level), the products in parallel.
+    pub fn seal_rest(&self, fields: &mut [Product]) {
+        let t = Instant::now();
+        let (kept, level) = (&self.kept, self.output.deflate_level);
+        fields
+            .par_iter_mut()
+            .for_each(|p| p.pack(kept.bits(p.spec.name), level));
+        self.seconds
+            .set(self.seconds.get() + t.elapsed().as_secs_f64());
     }
 
     /// A product of `data`, packed.
