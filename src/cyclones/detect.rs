@@ -21,6 +21,7 @@ use std::cmp::Reverse;
 use std::collections::BinaryHeap;
 
 use ndarray::ArrayView2;
+use rayon::prelude::*;
 
 /// The field the centres are found on, with its grid.
 #[derive(Clone, Copy)]
@@ -119,47 +120,92 @@ impl Surface<'_> {
     }
 }
 
-/// Every centre of `s`, in grid order.
+/// Every centre of `s`, in grid order: the grid-point minima found row by row
+/// on every core, then each one's closed isobars looked for, a share of the
+/// minima per task (each task with its own record of the points its floods took).
 pub fn find_centres(s: &Surface<'_>, set: &Settings) -> Vec<Centre> {
+    let (ny, nx) = s.dim();
+    let minima: Vec<(usize, usize)> = (0..ny)
+        .into_par_iter()
+        .flat_map_iter(|j| row_minima(s, j))
+        .collect();
+    let per_task = minima
+        .len()
+        .div_ceil(4 * rayon::current_num_threads())
+        .max(1);
+    minima
+        .par_chunks(per_task)
+        .flat_map_iter(|share| {
+            // Points taken by the flood of the minimum being looked at: the stamp
+            // of its turn, so that one array serves every minimum of the share.
+            let mut taken = Flood {
+                stamp: vec![0; ny * nx],
+                turn: 0,
+            };
+            let found: Vec<Centre> = share
+                .iter()
+                .filter_map(|&(j, i)| centre(s, set, j, i, &mut taken))
+                .collect();
+            found
+        })
+        .collect()
+}
+
+/// The grid-point minima of row `j`: finite points with no lower and no missing
+/// neighbour, not on an edge a region may not touch.
+fn row_minima(s: &Surface<'_>, j: usize) -> Vec<(usize, usize)> {
     let (ny, nx) = s.dim();
     let mut out = Vec::new();
     let mut nb = Vec::with_capacity(8);
-    // Points taken by the flood of the minimum being looked at: the stamp of
-    // its turn, so that one array serves every minimum.
-    let mut taken = Flood {
-        stamp: vec![0; ny * nx],
-        turn: 0,
+    let lower = |a: usize, b: usize, v: f64| {
+        let x = s.at(a, b);
+        x.is_nan() || x < v
     };
-    for j in 0..ny {
-        for i in 0..nx {
-            let v = s.at(j, i);
-            if !v.is_finite() {
-                continue;
-            }
+    for i in 0..nx {
+        let v = s.at(j, i);
+        if !v.is_finite() {
+            continue;
+        }
+        let inner = j > 0 && j + 1 < ny && i > 0 && i + 1 < nx;
+        let not_minimum = if inner {
+            // The eight neighbours straight away, none on an edge or across the seam.
+            [j - 1, j, j + 1].into_iter().any(|a| {
+                [i - 1, i, i + 1]
+                    .into_iter()
+                    .any(|b| (a, b) != (j, i) && lower(a, b, v))
+            })
+        } else {
             let open = s.neighbours(j, i, &mut nb);
-            if open
-                || nb
-                    .iter()
-                    .any(|&(a, b)| s.at(a, b).is_nan() || s.at(a, b) < v)
-            {
-                continue; // an edge, a missing or a lower neighbour
-            }
-            if let Some(outer) = outermost_closed(s, set, j, i, &mut taken) {
-                let (lat, lon, pressure) = refine(s, j, i);
-                out.push(Centre {
-                    j,
-                    i,
-                    lat,
-                    lon,
-                    pressure,
-                    grid_pressure: v,
-                    outer,
-                    depth: outer - v,
-                });
-            }
+            open || nb.iter().any(|&(a, b)| lower(a, b, v))
+        };
+        if !not_minimum {
+            out.push((j, i));
         }
     }
     out
+}
+
+/// The centre at the grid-point minimum (j, i), if an isobar is closed round it.
+fn centre(
+    s: &Surface<'_>,
+    set: &Settings,
+    j: usize,
+    i: usize,
+    taken: &mut Flood,
+) -> Option<Centre> {
+    let v = s.at(j, i);
+    let outer = outermost_closed(s, set, j, i, taken)?;
+    let (lat, lon, pressure) = refine(s, j, i);
+    Some(Centre {
+        j,
+        i,
+        lat,
+        lon,
+        pressure,
+        grid_pressure: v,
+        outer,
+        depth: outer - v,
+    })
 }
 
 /// The points one flood has taken, by turn.
@@ -439,6 +485,89 @@ mod tests {
         };
         let c = find_centres(&s, &settings());
         assert!(!c.iter().any(|c| (c.lat + 60.0).abs() < 0.1), "{c:?}");
+    }
+
+    /// A rough field: pseudo-random values from a few levels (so plateaus of
+    /// equal values), missing points here and there.
+    fn rough(ny: usize, nx: usize) -> Array2<f32> {
+        let mut x: u64 = 0x9e37_79b9_7f4a_7c15;
+        Array2::from_shape_fn((ny, nx), |_| {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            match x % 41 {
+                0 => f32::NAN,
+                r => 100_000.0 + 20.0 * (r % 6) as f32,
+            }
+        })
+    }
+
+    #[test]
+    fn the_minima_row_by_row_are_those_of_the_eight_neighbours_everywhere() {
+        // The inner points' shortcut against `neighbours` at every point, on a
+        // grid that wraps (pole rows, seam) and one that does not (edges).
+        let (lat, lon) = grid(-90.0, 0.0, 5.0, 37, 72);
+        let p = rough(37, 72);
+        for periodic in [true, false] {
+            let s = Surface {
+                values: p.view(),
+                lat: lat.view(),
+                lon: lon.view(),
+                periodic,
+                radius: A,
+            };
+            let mut nb = Vec::new();
+            let mut want = Vec::new();
+            for j in 0..37 {
+                for i in 0..72 {
+                    let v = s.at(j, i);
+                    let open = s.neighbours(j, i, &mut nb);
+                    let lower = nb
+                        .iter()
+                        .any(|&(a, b)| s.at(a, b).is_nan() || s.at(a, b) < v);
+                    if v.is_finite() && !open && !lower {
+                        want.push((j, i));
+                    }
+                }
+            }
+            let got: Vec<_> = (0..37).flat_map(|j| row_minima(&s, j)).collect();
+            assert!(want.len() > 20, "{}", want.len());
+            assert_eq!(got, want, "periodic {periodic}");
+        }
+    }
+
+    #[test]
+    fn centres_come_in_grid_order_as_one_flood_after_another_finds_them() {
+        // Many lows, their minima shared among tasks: the same centres, in grid
+        // order, as looking at each minimum in turn with one record of floods.
+        let (lat, lon) = grid(-90.0, 0.0, 2.5, 73, 144);
+        let mut p = Array2::from_elem(lat.dim(), 101_000.0f32);
+        for (n, la) in [-70.0, -45.0, -20.0, 5.0, 30.0, 55.0, 80.0]
+            .into_iter()
+            .enumerate()
+        {
+            for lo in (0..6).map(|k| 60.0 * f64::from(k) + 17.0 * n as f64) {
+                p = &p + &low(&lat, &lon, la, lo, 800.0 + 90.0 * n as f64, 4e5) - 101_000.0;
+            }
+        }
+        let s = Surface {
+            values: p.view(),
+            lat: lat.view(),
+            lon: lon.view(),
+            periodic: true,
+            radius: A,
+        };
+        let set = settings();
+        let mut taken = Flood {
+            stamp: vec![0; 73 * 144],
+            turn: 0,
+        };
+        let want: Vec<Centre> = (0..73)
+            .flat_map(|j| row_minima(&s, j))
+            .filter_map(|(j, i)| centre(&s, &set, j, i, &mut taken))
+            .collect();
+        assert!(want.len() >= 30, "{}", want.len());
+        assert_eq!(find_centres(&s, &set), want);
     }
 
     #[test]
