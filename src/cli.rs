@@ -104,8 +104,12 @@ pub enum Command {
     /// service.shutdown_grace_s), reloads the configuration on SIGHUP.
     /// Exit codes: 0 stopped on request; 2 configuration or state directory unusable.
     Serve {
-        /// Configuration file (TOML) with [service] and [[feed]] tables.
-        #[arg(long)]
+        // The help text names the TOML tables as they are written, brackets and
+        // all, which a doc comment would take for links.
+        #[arg(
+            long,
+            help = "Configuration file (TOML) with [service] and [[feed]] tables."
+        )]
         config: PathBuf,
         /// Base of the incoming directories (overrides service.watch_dir).
         #[arg(long)]
