@@ -1,19 +1,24 @@
 #!/usr/bin/env bash
 # What the cyclone products cost on top of the rest of a step: the benchmark step with
-# relative humidity and mean sea-level pressure added (tests/bench/add_humidity.py), run
-# through `cargo bench --bench step` twice, the new products switched off and on (the
-# default), each with the next step 6 h later (whose tracks are made from both steps).
+# relative humidity and mean sea-level pressure added (tests/bench/add_humidity.py) and
+# the same step 6 h later (whose tracks are made from both steps), through
+# `cargo bench --bench step` in paired rounds: in each round the two steps without the
+# new products, then the two with them (the default), side by side, so that the
+# machine's drift falls on both. Medians over the rounds, and the share of each round's
+# pair, first against the step without the products and then against the step with.
 #
-#   bash tests/bench/cyclones.sh [--res 0.25|0.5|1.0]
+#   bash tests/bench/cyclones.sh [--res 0.25|0.5|1.0] [--rounds N]
 #
 # Speed is never asserted; the figures go to docs/performance.md.
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 res=0.25
+rounds=5
 while [ $# -gt 0 ]; do
   case "$1" in
     --res) res="$2"; shift 2 ;;
-    *) echo "usage: bash tests/bench/cyclones.sh [--res R]" >&2; exit 2 ;;
+    --rounds) rounds="$2"; shift 2 ;;
+    *) echo "usage: bash tests/bench/cyclones.sh [--res R] [--rounds N]" >&2; exit 2 ;;
   esac
 done
 py="$(bash tests/setup-python.sh)"
@@ -35,27 +40,34 @@ low_level_pv = false
 cyclones = false
 TOML
 echo "machine: $(nproc) cores, $(uname -sr); commit $(git rev-parse --short HEAD 2>/dev/null || echo none); $(date -u +%Y-%m-%dT%H:%MZ); load $(cut -d' ' -f1-3 /proc/loadavg)"
-for mode in off on; do
-  echo "== new products $mode"
-  rm -rf target/bench/out-cyc
-  if [ "$mode" = off ]; then
-    LEEWARD_BENCH_CONFIG="$off" cargo bench --quiet --bench step -- "$input" target/bench/out-cyc "$next" | tee "target/bench/cyclones-$mode.jsonl"
-  else
-    cargo bench --quiet --bench step -- "$input" target/bench/out-cyc "$next" | tee "target/bench/cyclones-$mode.jsonl"
-  fi
-done
+rm -rf target/bench/out-cyc
+LEEWARD_BENCH_PAIRED="$off" LEEWARD_BENCH_ROUNDS="$rounds" \
+  cargo bench --quiet --bench step -- "$input" target/bench/out-cyc "$next" | tee target/bench/cyclones.jsonl
 rm -rf target/bench/out-cyc
 "$py" - <<'PY'
 import json
-def load(mode):
-    rows = [json.loads(l) for l in open(f"target/bench/cyclones-{mode}.jsonl") if l.startswith("{")]
-    pipe = min(r["seconds"] for r in rows if r["what"] == "pipeline")
-    nxt = [r for r in rows if r["what"] == "next_step"]
-    fam = {r["name"]: r["seconds"] for r in rows if r["what"] == "family"}
-    return pipe, (nxt[0]["step_s"] if nxt else float("nan")), fam
-(p0, n0, f0), (p1, n1, f1) = load("off"), load("on")
-print(f"step: {p0:.2f} s without the new products, {p1:.2f} s with them: +{p1 - p0:.2f} s ({100 * (p1 - p0) / p0:.1f} %)")
-print(f"next step (tracks from both steps): {n0:.2f} s and {n1:.2f} s: +{n1 - n0:.2f} s ({100 * (n1 - n0) / n0:.1f} %)")
-for k in sorted(set(f0) | set(f1)):
-    print(f"  {k:<12} {f0.get(k, 0.0):7.3f} s  {f1.get(k, 0.0):7.3f} s")
+import statistics as st
+rows = [json.loads(l) for l in open("target/bench/cyclones.jsonl") if l.startswith("{")]
+rows = [r for r in rows if r["what"] == "pair"]
+rounds = sorted({r["round"] for r in rows})
+def at(rnd, mode, step):
+    return next(r for r in rows if (r["round"], r["mode"], r["step"]) == (rnd, mode, step))
+for step, what in (("first", "first step"), ("next", "next step (changes, PV budget, tracks from both steps)")):
+    off = [at(k, "off", step)["seconds"] for k in rounds]
+    on = [at(k, "on", step)["seconds"] for k in rounds]
+    share_off = [100 * (b - a) / a for a, b in zip(off, on)]
+    share_on = [100 * (b - a) / b for a, b in zip(off, on)]
+    print(f"{what}, {len(rounds)} rounds: median {st.median(off):.2f} s without the new products, "
+          f"{st.median(on):.2f} s with them (rounds {min(off):.2f}-{max(off):.2f} and {min(on):.2f}-{max(on):.2f} s)")
+    print(f"  added, median of the rounds' pairs: {st.median(share_off):.1f} % of the step without "
+          f"(rounds {min(share_off):.1f} to {max(share_off):.1f} %), {st.median(share_on):.1f} % of the step with "
+          f"(rounds {min(share_on):.1f} to {max(share_on):.1f} %)")
+    fams = {}
+    for k in rounds:
+        for mode in ("off", "on"):
+            for n, s in at(k, mode, step)["families"].items():
+                fams.setdefault((n, mode), []).append(s)
+    for n in sorted({n for n, _ in fams}):
+        a, b = st.median(fams.get((n, "off"), [0.0])), st.median(fams.get((n, "on"), [0.0]))
+        print(f"    {n:<14} {a:7.3f} s  {b:7.3f} s  {b - a:+.3f} s")
 PY

@@ -8,6 +8,12 @@
 //! the images' time against the whole step's, measured in the same run. With
 //! a next step, it is processed into the same directory afterwards, which
 //! times the changes in time and the PV budget against the first.
+//!
+//! With `LEEWARD_BENCH_PAIRED=OFF.toml` (and a next step) it measures instead
+//! what the products that configuration switches off cost: `LEEWARD_BENCH_ROUNDS`
+//! rounds (default 5), each the first and the next step without those products
+//! and then with them (every default), one `pair` line per step and mode, so that
+//! each round's two modes ran side by side on a shared machine.
 
 use std::time::Instant;
 
@@ -63,6 +69,15 @@ fn main() {
         );
     }
     let out = std::path::PathBuf::from(out);
+    if let (Ok(off), Some(next)) = (std::env::var("LEEWARD_BENCH_PAIRED"), args.get(2)) {
+        let off = Config::load(std::path::Path::new(&off)).expect("the configuration without");
+        let rounds = std::env::var("LEEWARD_BENCH_ROUNDS")
+            .ok()
+            .and_then(|r| r.parse().ok())
+            .unwrap_or(5);
+        paired(path, next, &out, &off, rounds);
+        return;
+    }
     // LEEWARD_BENCH_CONFIG names a configuration file (for instance one with some
     // products switched off, to measure what they cost); default: every default.
     let cfg = match std::env::var("LEEWARD_BENCH_CONFIG") {
@@ -144,5 +159,45 @@ fn images_share(path: &str, out: &std::path::Path) {
             r.seconds,
             r.images_seconds / r.seconds
         );
+    }
+}
+
+/// Every step of `path`'s file with `cfg` into `out`: (seconds of the whole
+/// steps, each step's families' seconds).
+fn steps_of(path: &str, cfg: &Config, out: &std::path::Path) -> (f64, Vec<(&'static str, f64)>) {
+    let t = Instant::now();
+    let (file, _) = read_input(std::path::Path::new(path));
+    let files: Vec<_> = file.into_iter().collect();
+    let (steps, _) = plan(&files);
+    let suffixes = grid_suffixes(&steps);
+    let mut families = Vec::new();
+    for (s, g) in steps.iter().zip(suffixes) {
+        let r = run_step(s, &files, cfg, &Destination::flat(out), g);
+        families.extend(r.family_seconds);
+        families.push(("after_writing", r.changes_seconds));
+    }
+    (t.elapsed().as_secs_f64(), families)
+}
+
+/// `rounds` rounds of the first step into an empty directory and the next step
+/// after it, without the products `off` switches off, then with every default.
+fn paired(first: &str, next: &str, out: &std::path::Path, off: &Config, rounds: usize) {
+    let on = Config::default();
+    for round in 0..rounds {
+        for (mode, cfg) in [("off", off), ("on", &on)] {
+            let _ = std::fs::remove_dir_all(out);
+            std::fs::create_dir_all(out).expect("output dir");
+            for (step, path) in [("first", first), ("next", next)] {
+                let (seconds, families) = steps_of(path, cfg, out);
+                let fam: Vec<String> = families
+                    .iter()
+                    .map(|(n, s)| format!("\"{n}\":{s:.4}"))
+                    .collect();
+                println!(
+                    "{{\"what\":\"pair\",\"round\":{round},\"mode\":\"{mode}\",\"step\":\"{step}\",\"seconds\":{seconds:.4},\"families\":{{{}}}}}",
+                    fam.join(",")
+                );
+            }
+        }
     }
 }
