@@ -41,16 +41,17 @@ pub(super) struct Publishing<'a> {
     pub winds_grid_relative: bool,
 }
 
-/// What the families made.
-pub(super) struct Made<'a> {
+/// What the families made, owned, so that what the file does not hold can be
+/// let go once the file's contents are assembled.
+pub(super) struct Made {
     pub fields: Vec<Product>,
     /// Thickness layers made, Pa.
     pub p_layers: Vec<[f64; 2]>,
     pub grid: Grid,
     pub lat: Array2<f64>,
     pub lon: Array2<f64>,
-    pub cols: &'a Columns,
-    pub winds: &'a Winds,
+    pub cols: Columns,
+    pub winds: Winds,
     /// The layer PV was made, so the PV budget can be.
     pub budget_layer: bool,
     /// The model's terrain, m, for the images' outline.
@@ -68,7 +69,7 @@ struct Now<'a> {
 /// Changes in time, then the file, then what follows it.
 pub(super) fn finish(
     p: &Publishing<'_>,
-    made: Made<'_>,
+    made: Made,
     mut rep: StepReport,
     issues: Vec<Issue>,
     t0: Instant,
@@ -122,15 +123,19 @@ pub(super) fn finish(
         .flat_map(|f| crate::output::cf::file_names(f, &p_layers))
         .collect();
     rep.compute_seconds = made.t_compute.elapsed().as_secs_f64() - pack_seconds;
-    let products = step_products(
+    let mut products = step_products(
         p,
         fields,
         p_layers,
         made.grid,
         (made.lat, made.lon),
-        made.cols,
-        made.winds,
+        &made.cols,
+        &made.winds,
     );
+    // The input's columns and winds are spent: the PV budget after writing
+    // reads what it needs from the files.
+    drop(made.cols);
+    drop(made.winds);
     let name = output_name(&p.step.key, p.grid_suffix);
     let t_write = Instant::now();
     let written = write_step(p.out.stage.unwrap_or(p.out.dir), &name, &products);
@@ -143,6 +148,8 @@ pub(super) fn finish(
                 budget_layer: made.budget_layer,
                 terrain_m: made.terrain_m.as_ref(),
             };
+            keep_for_images(p.cfg, &mut products);
+            give_back_free_memory();
             after_writing(p, &after, &path, &products, &mut rep);
             rep.outcome = StepOutcome::Made(path);
         }
@@ -271,6 +278,39 @@ fn step_products(
         inputs: inputs_used,
         deflate: cfg.output.deflate_level,
         kept_bits: p.seal.kept.clone(),
+    }
+}
+
+/// Let go of the products written that no image is drawn from, before the
+/// changes, budgets and tracks, which read what they need from the files.
+fn keep_for_images(cfg: &Config, products: &mut StepProducts) {
+    let drawn: Vec<String> = if cfg.quicklook.enabled {
+        cfg.quicklook
+            .images
+            .iter()
+            .filter_map(|s| crate::output::images::parse(s).ok())
+            .map(|w| w.variable)
+            .collect()
+    } else {
+        Vec::new()
+    };
+    products
+        .fields
+        .retain(|f| drawn.iter().any(|d| d == f.spec.name));
+}
+
+/// Hand the heap's free pages back to the kernel, so that the work after
+/// writing (the PV budget's trajectories above all) starts from what is still
+/// held, not from the step's high-water mark of freed blocks that glibc keeps
+/// for reuse in every thread's arena.
+fn give_back_free_memory() {
+    // SAFETY: malloc_trim(3) takes a byte count and no pointer, has no
+    // precondition and takes each arena's lock itself, so calling it from any
+    // thread at any moment cannot touch memory Rust owns or race with another
+    // allocation.
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    unsafe {
+        libc::malloc_trim(0);
     }
 }
 
