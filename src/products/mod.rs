@@ -286,7 +286,25 @@ impl Laps {
     fn lap(&mut self, rep: &mut StepReport, family: &'static str) {
         rep.family_seconds
             .push((family, self.0.elapsed().as_secs_f64()));
+        give_back_free_memory();
         self.0 = Instant::now();
+    }
+}
+
+/// Hand the heap's free pages back to the kernel, between families and once
+/// the file is written, so that each family (and the PV budget's trajectories
+/// after writing) starts from what is still held, not from the high-water
+/// mark of freed blocks that glibc keeps for reuse in every thread's arena.
+/// At 0.25 degree it lowers the step's peak by about 150 MiB and the later
+/// step's by about 850 (docs/performance.md).
+fn give_back_free_memory() {
+    // SAFETY: malloc_trim(3) takes a byte count and no pointer, has no
+    // precondition and takes each arena's lock itself, so calling it from any
+    // thread at any moment cannot touch memory Rust owns or race with another
+    // allocation.
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    unsafe {
+        libc::malloc_trim(0);
     }
 }
 

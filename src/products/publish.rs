@@ -149,7 +149,7 @@ pub(super) fn finish(
                 terrain_m: made.terrain_m.as_ref(),
             };
             keep_for_images(p.cfg, &mut products);
-            give_back_free_memory();
+            super::give_back_free_memory();
             after_writing(p, &after, &path, &products, &mut rep);
             rep.outcome = StepOutcome::Made(path);
         }
@@ -297,21 +297,6 @@ fn keep_for_images(cfg: &Config, products: &mut StepProducts) {
     products
         .fields
         .retain(|f| drawn.iter().any(|d| d == f.spec.name));
-}
-
-/// Hand the heap's free pages back to the kernel, so that the work after
-/// writing (the PV budget's trajectories above all) starts from what is still
-/// held, not from the step's high-water mark of freed blocks that glibc keeps
-/// for reuse in every thread's arena.
-fn give_back_free_memory() {
-    // SAFETY: malloc_trim(3) takes a byte count and no pointer, has no
-    // precondition and takes each arena's lock itself, so calling it from any
-    // thread at any moment cannot touch memory Rust owns or race with another
-    // allocation.
-    #[cfg(all(target_os = "linux", target_env = "gnu"))]
-    unsafe {
-        libc::malloc_trim(0);
-    }
 }
 
 /// What the work after writing needs besides the file.
