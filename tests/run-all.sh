@@ -7,8 +7,17 @@ cd "$(dirname "$0")/.."
 bash tests/setup-system.sh
 py="$(bash tests/setup-python.sh)"
 
+# The places tests/python/conftest.py looks in, in the same order; the folder found is
+# handed to the Rust tests too (tests/common/mod.rs reads LEEWARD_SAMPLES), so that both
+# halves of the suite read the same samples or both say they skip.
 samples="${LEEWARD_SAMPLES:-$(pwd)/../shared/data/grib2}"
-if [ ! -f "$samples/reference-decode.json" ]; then
+if [ -z "${LEEWARD_SAMPLES:-}" ] && [ ! -d "$samples" ]; then
+  samples=/work/shared/data/grib2
+fi
+if [ -f "$samples/reference-decode.json" ]; then
+  export LEEWARD_SAMPLES="$samples"
+  echo "real GRIB2 samples: $samples"
+else
   echo "=================================================================="
   echo "NOTE: real GRIB2 samples not found at $samples:"
   echo "      the tests that need them are SKIPPED (set LEEWARD_SAMPLES)."
