@@ -24,7 +24,8 @@ use crate::diagnostics::change::difference;
 use crate::output::cf::{Product, Vertical};
 use crate::output::precision::KeptBits;
 use crate::output::store::{
-    add_variables, add_variables_to, published_where, read_field, Published,
+    add_variables, add_variables_to, level_shape, published_where, read_field, read_level,
+    Published,
 };
 use crate::output::variables::budget::{self, NOT_CONVERGED_ATTR};
 use crate::output::variables::changes::{r2r_spec, Tendency, THICK_TENDENCY};
@@ -389,7 +390,79 @@ fn to_grid(
     }
 }
 
-type Read<'a> = dyn Fn(&Path, &str) -> Option<ndarray::Array3<f64>> + 'a;
+/// Where a PV budget reads its fields, one level at a time: a published file,
+/// or the products of the step about to be written, as its readers will get them
+/// (bit-rounded, in the file's units), so that the budget is the same bit for bit
+/// whichever of the two steps is written first.
+pub enum Source<'a> {
+    /// A published file, open.
+    File {
+        /// Its path, named in logs.
+        path: &'a Path,
+        /// The file.
+        file: netcdf::File,
+    },
+    /// A step's products, packed for writing, and the file they will be written to.
+    Made {
+        /// The file the products will be written to, named in logs.
+        path: &'a Path,
+        /// The products.
+        products: &'a [Product],
+        /// The kept bits the writer rounds plain products to.
+        kept: &'a KeptBits,
+    },
+}
+
+impl<'a> Source<'a> {
+    /// The published file at `path`, opened; None where it cannot be.
+    pub fn file(path: &'a Path) -> Option<Self> {
+        crate::output::quiet_hdf5_errors();
+        match netcdf::open(path) {
+            Ok(file) => Some(Source::File { path, file }),
+            Err(e) => {
+                warn!(file = %path.display(), error = %e, "PV budget: cannot open a published step");
+                None
+            }
+        }
+    }
+
+    fn path(&self) -> &Path {
+        match self {
+            Source::File { path, .. } | Source::Made { path, .. } => path,
+        }
+    }
+
+    fn product(&self, name: &str) -> Option<&Product> {
+        match self {
+            Source::Made { products, .. } => products
+                .iter()
+                .find(|p| p.spec.name == name && p.valid_points() > 0),
+            Source::File { .. } => None,
+        }
+    }
+
+    /// (levels, rows, columns) of the field `name`; None where there is no such field.
+    fn shape(&self, name: &str) -> Option<(usize, usize, usize)> {
+        match self {
+            Source::File { file, .. } => level_shape(&file.variable(name)?),
+            Source::Made { .. } => Some(self.product(name)?.dim()),
+        }
+    }
+
+    /// Level `k` of the field `name`, NaN where missing.
+    fn level(&self, name: &str, k: usize) -> Option<ndarray::Array2<f64>> {
+        let a = match self {
+            Source::File { file, .. } => read_level(&file.variable(name)?, k)?,
+            Source::Made { kept, .. } => self.product(name)?.published_level(k, kept.bits(name)),
+        };
+        Some(a.mapv(f64::from))
+    }
+
+    /// The shapes of every field of `names`, or None if one is missing.
+    fn shapes(&self, names: &[&str]) -> Option<Vec<(usize, usize, usize)>> {
+        names.iter().map(|n| self.shape(n)).collect()
+    }
+}
 
 /// Numbers every budget variable carries: the interval and how trajectories were traced.
 fn budget_notes(g: &Geometry<'_>, dt_h: f64) -> Vec<(&'static str, f64)> {
@@ -414,78 +487,127 @@ fn flag(status: crate::diagnostics::budget::Status) -> f32 {
     }
 }
 
-/// The column budget of each isentropic layer along the layer-mean wind's trajectories.
-/// Returns the products and the points whose trajectory did not converge.
+/// The levels a budget can take of `names` in both sources: None where a
+/// field is missing; (levels of the later step's first field, levels in both,
+/// rows, columns) otherwise.
+fn budget_levels(
+    (old, new): (&Source<'_>, &Source<'_>),
+    names: &[&str],
+) -> Option<(usize, usize, usize, usize)> {
+    let (so, sn) = (old.shapes(names)?, new.shapes(names)?);
+    let (n, ny, nx) = sn[0];
+    let both = so.iter().chain(&sn).map(|s| s.0).min().unwrap_or(0);
+    Some((n, both, ny, nx))
+}
+
+/// Levels 0..n of `names`, old and new, handed to `work` one level at a time,
+/// read a level ahead on a thread of their own: reading (single-threaded in
+/// libnetcdf) overlaps the trajectories of the level before. Stops at the
+/// first level missing or `work` returning None, and then returns None.
+fn level_by_level<const N: usize>(
+    (old, new): (&Source<'_>, &Source<'_>),
+    names: [&str; N],
+    n: usize,
+    mut work: impl FnMut(usize, [ndarray::Array2<f64>; N], [ndarray::Array2<f64>; N]) -> Option<()>,
+) -> Option<()> {
+    type Level<const N: usize> = Option<([ndarray::Array2<f64>; N], [ndarray::Array2<f64>; N])>;
+    let read = |k: usize| -> Level<N> {
+        let o: Vec<_> = names
+            .iter()
+            .map(|m| old.level(m, k))
+            .collect::<Option<_>>()?;
+        let w: Vec<_> = names
+            .iter()
+            .map(|m| new.level(m, k))
+            .collect::<Option<_>>()?;
+        Some((o.try_into().ok()?, w.try_into().ok()?))
+    };
+    std::thread::scope(|scope| {
+        let (tx, rx) = std::sync::mpsc::sync_channel::<Level<N>>(1);
+        scope.spawn(move || {
+            for k in 0..n {
+                // The receiver gone (the work stopped): stop reading.
+                if tx.send(read(k)).is_err() {
+                    break;
+                }
+            }
+        });
+        for k in 0..n {
+            let (o, w) = rx.recv().ok()??;
+            work(k, o, w)?;
+        }
+        Some(())
+    })
+}
+
+/// The column budget of each isentropic layer along the layer-mean wind's trajectories,
+/// read and traced one layer at a time. Returns the products and the points whose
+/// trajectory did not converge.
 fn layer_budget(
     g: &Geometry<'_>,
-    (old, new): (&Path, &Path),
+    (old, new): (&Source<'_>, &Source<'_>),
     dt_h: f64,
-    read: &Read<'_>,
 ) -> Option<(Vec<Product>, usize)> {
     use crate::diagnostics::budget::{
         at_departure, departure_points, layer_absolute_vorticity, ColumnBudget, Status,
     };
-    use ndarray::Axis;
-    let (uo, vo, un, vn) = (
-        read(old, "layer_u")?,
-        read(old, "layer_v")?,
-        read(new, "layer_u")?,
-        read(new, "layer_v")?,
-    );
-    let (pvo, dpo, pvn, dpn) = (
-        read(old, "layer_pv")?,
-        read(old, "layer_dp")?,
-        read(new, "layer_pv")?,
-        read(new, "layer_dp")?,
-    );
-    let (nl, ny, nx) = un.dim();
+    let names = ["layer_u", "layer_v", "layer_pv", "layer_dp"];
+    let (nl, both, ny, nx) = budget_levels((old, new), &names)?;
     // pred, dep, stretch part, beta part, actual, diff, fractional stretch, flag
     let mut out: Vec<Array3<f32>> = (0..8)
         .map(|_| Array3::from_elem((nl, ny, nx), f32::NAN))
         .collect();
     let mut not_converged = 0;
-    for l in 0..nl.min(uo.dim().0) {
-        // Layer-mean winds are written along the grid's axes.
-        let d = departure_points(
-            &g.layout,
-            (uo.index_axis(Axis(0), l), vo.index_axis(Axis(0), l)),
-            (un.index_axis(Axis(0), l), vn.index_axis(Axis(0), l)),
-            dt_h * 3600.0,
-            &g.trajectories,
-        );
-        not_converged += d.not_converged();
-        let eta_old =
-            layer_absolute_vorticity(pvo.index_axis(Axis(0), l), dpo.index_axis(Axis(0), l));
-        let eta_d = at_departure(eta_old.view(), &d, g.periodic);
-        let dp_d = at_departure(dpo.index_axis(Axis(0), l), &d, g.periodic);
-        let f_d = at_departure(g.f.view(), &d, g.periodic);
-        for ((j, i), st) in d.status.indexed_iter() {
-            out[7][(l, j, i)] = flag(*st);
-            if *st != Status::Converged {
-                continue;
+    level_by_level(
+        (old, new),
+        names,
+        both,
+        |l, [uo, vo, pvo, dpo], [un, vn, pvn, dpn]| {
+            if [uo.dim(), un.dim()] != [(ny, nx); 2] {
+                return None;
             }
-            let b = ColumnBudget::of(
-                eta_d[(j, i)],
-                f_d[(j, i)],
-                g.f[(j, i)],
-                dp_d[(j, i)],
-                dpn[(l, j, i)],
-                pvn[(l, j, i)],
+            // Layer-mean winds are written along the grid's axes.
+            let d = departure_points(
+                &g.layout,
+                (uo.view(), vo.view()),
+                (un.view(), vn.view()),
+                dt_h * 3600.0,
+                &g.trajectories,
             );
-            let values = [
-                b.parts.predicted(),
-                b.parts.zeta_departure,
-                b.parts.stretching,
-                b.parts.coriolis,
-                b.actual,
-                b.residual,
-                b.stretch,
-            ];
-            for (k, x) in values.into_iter().enumerate() {
-                out[k][(l, j, i)] = x as f32;
+            not_converged += d.not_converged();
+            let eta_old = layer_absolute_vorticity(pvo.view(), dpo.view());
+            let eta_d = at_departure(eta_old.view(), &d, g.periodic);
+            let dp_d = at_departure(dpo.view(), &d, g.periodic);
+            let f_d = at_departure(g.f.view(), &d, g.periodic);
+            for ((j, i), st) in d.status.indexed_iter() {
+                out[7][(l, j, i)] = flag(*st);
+                if *st != Status::Converged {
+                    continue;
+                }
+                let b = ColumnBudget::of(
+                    eta_d[(j, i)],
+                    f_d[(j, i)],
+                    g.f[(j, i)],
+                    dp_d[(j, i)],
+                    dpn[(j, i)],
+                    pvn[(j, i)],
+                );
+                let values = [
+                    b.parts.predicted(),
+                    b.parts.zeta_departure,
+                    b.parts.stretching,
+                    b.parts.coriolis,
+                    b.actual,
+                    b.residual,
+                    b.stretch,
+                ];
+                for (k, x) in values.into_iter().enumerate() {
+                    out[k][(l, j, i)] = x as f32;
+                }
             }
-        }
-    }
+            Some(())
+        },
+    )?;
     let specs = [
         budget::ZETA_PRED,
         budget::ZETA_DEP,
@@ -513,56 +635,49 @@ fn layer_budget(
 }
 
 /// The Lagrangian rate of change of PV on each isentropic surface along the
-/// surface wind's trajectories. Returns the products and the points whose
-/// trajectory did not converge.
+/// surface wind's trajectories, read and traced one surface at a time. Returns
+/// the products and the points whose trajectory did not converge.
 fn surface_budget(
     g: &Geometry<'_>,
-    (old, new): (&Path, &Path),
+    (old, new): (&Source<'_>, &Source<'_>),
     dt_h: f64,
-    read: &Read<'_>,
 ) -> Option<(Vec<Product>, usize)> {
     use crate::diagnostics::budget::{at_departure, departure_points, lagrangian_rate, Status};
-    use ndarray::Axis;
-    let (uo, vo, un, vn) = (
-        read(old, "isen_u")?,
-        read(old, "isen_v")?,
-        read(new, "isen_u")?,
-        read(new, "isen_v")?,
-    );
-    let (pvo, pvn) = (read(old, "isen_pv")?, read(new, "isen_pv")?);
-    let (ns, ny, nx) = un.dim();
+    let names = ["isen_u", "isen_v", "isen_pv"];
+    let (ns, both, ny, nx) = budget_levels((old, new), &names)?;
     let mut rate = Array3::from_elem((ns, ny, nx), f32::NAN);
     let mut flags = rate.clone();
     let mut not_converged = 0;
-    for s in 0..ns.min(uo.dim().0) {
-        let old_w = to_grid(
-            g,
-            &uo.index_axis(Axis(0), s).to_owned(),
-            &vo.index_axis(Axis(0), s).to_owned(),
-        );
-        let new_w = to_grid(
-            g,
-            &un.index_axis(Axis(0), s).to_owned(),
-            &vn.index_axis(Axis(0), s).to_owned(),
-        );
-        let d = departure_points(
-            &g.layout,
-            (old_w.0.view(), old_w.1.view()),
-            (new_w.0.view(), new_w.1.view()),
-            dt_h * 3600.0,
-            &g.trajectories,
-        );
-        not_converged += d.not_converged();
-        let pv_d = at_departure(pvo.index_axis(Axis(0), s), &d, g.periodic);
-        for ((j, i), st) in d.status.indexed_iter() {
-            flags[(s, j, i)] = flag(*st);
-            if *st == Status::Converged {
-                // PV is read in K m2 kg-1 s-1: the rate is per second.
-                rate[(s, j, i)] =
-                    lagrangian_rate(pvn[(s, j, i)], pv_d[(j, i)], dt_h * 3600.0) as f32;
+    level_by_level(
+        (old, new),
+        names,
+        both,
+        |s, [uo, vo, pvo], [un, vn, pvn]| {
+            if [uo.dim(), un.dim()] != [(ny, nx); 2] {
+                return None;
             }
-        }
-    }
+            let old_w = to_grid(g, &uo, &vo);
+            let new_w = to_grid(g, &un, &vn);
+            let d = departure_points(
+                &g.layout,
+                (old_w.0.view(), old_w.1.view()),
+                (new_w.0.view(), new_w.1.view()),
+                dt_h * 3600.0,
+                &g.trajectories,
+            );
+            not_converged += d.not_converged();
+            let pv_d = at_departure(pvo.view(), &d, g.periodic);
+            for ((j, i), st) in d.status.indexed_iter() {
+                flags[(s, j, i)] = flag(*st);
+                if *st == Status::Converged {
+                    // PV is read in K m2 kg-1 s-1: the rate is per second.
+                    rate[(s, j, i)] =
+                        lagrangian_rate(pvn[(j, i)], pv_d[(j, i)], dt_h * 3600.0) as f32;
+                }
+            }
+            Some(())
+        },
+    )?;
     let notes = budget_notes(g, dt_h);
     let mut p = Product::new(budget::DPVDT, Vertical::Theta, rate);
     p.numbers.extend(notes.iter().cloned());
@@ -572,17 +687,15 @@ fn surface_budget(
     Some((vec![p, q], not_converged))
 }
 
-/// The PV budget of the later step `new` against the earlier `old`, both read from
-/// their published files, `dt_h` hours apart. Points whose trajectories did not
-/// converge are flagged, left missing, counted in the flag variables' attribute
-/// and logged.
-pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Product> {
-    let read = |p: &Path, n: &str| read_field(p, n).map(|(_, a)| a.mapv(f64::from));
+/// The PV budget of the later step `new` against the earlier `old`, `dt_h`
+/// hours apart. Points whose trajectories did not converge are flagged, left
+/// missing, counted in the flag variables' attribute and logged.
+pub fn pv_budget(g: &Geometry<'_>, old: &Source<'_>, new: &Source<'_>, dt_h: f64) -> Vec<Product> {
     let mut out = Vec::new();
     let mut not_converged = 0;
     for part in [
-        layer_budget(g, (old, new), dt_h, &read),
-        surface_budget(g, (old, new), dt_h, &read),
+        layer_budget(g, (old, new), dt_h),
+        surface_budget(g, (old, new), dt_h),
     ]
     .into_iter()
     .flatten()
@@ -590,17 +703,57 @@ pub fn pv_budget(g: &Geometry<'_>, old: &Path, new: &Path, dt_h: f64) -> Vec<Pro
         out.extend(part.0);
         not_converged += part.1;
     }
+    let file = new.path().display();
     if not_converged > 0 {
-        warn!(file = %new.display(), hours = dt_h, not_converged, "PV budget: trajectories that did not converge are left out");
+        warn!(file = %file, hours = dt_h, not_converged, "PV budget: trajectories that did not converge are left out");
     } else if !out.is_empty() {
-        info!(file = %new.display(), hours = dt_h, not_converged, "PV budget");
+        info!(file = %file, hours = dt_h, not_converged, "PV budget");
     }
     out
 }
 
-/// After this step is published: its budget against the previous step of the
-/// cycle, and the next step's budget against this one (steps in any order).
-pub fn update_budgets(
+/// The published steps of this step's cycle.
+fn same_cycle(run: &Run<'_>) -> Vec<Published> {
+    published_where(
+        run.out_dir,
+        run.centre,
+        run.grid_id,
+        run.member,
+        run.reference_time,
+        |r, _| r == run.reference_time,
+    )
+}
+
+/// Before this step is written: its budget against the previous step of the
+/// cycle already published, if it is within `max_interval_h` hours, from the
+/// step's own products (`this`) and the earlier file. Empty where there is none.
+pub fn budget_from_previous(
+    run: &Run<'_>,
+    this: &Source<'_>,
+    g: &Geometry<'_>,
+    max_interval_h: u32,
+) -> Vec<Product> {
+    let files = same_cycle(run);
+    let max = TimeDelta::try_hours(i64::from(max_interval_h)).unwrap_or_default();
+    let prev = files
+        .iter()
+        .filter(|p| p.valid_time < run.valid_time)
+        .max_by_key(|p| p.valid_time);
+    match prev {
+        Some(prev) if run.valid_time - prev.valid_time <= max => {
+            let dt = run.valid_time - prev.valid_time;
+            Source::file(&prev.path).map_or_else(Vec::new, |old| {
+                pv_budget(g, &old, this, dt.num_seconds() as f64 / 3600.0)
+            })
+        }
+        _ => Vec::new(),
+    }
+}
+
+/// After this step is published: the budget of the next step of the cycle,
+/// published before it (steps arrive in any order), against this one, added
+/// to the next step's file. Returns the file updated.
+pub fn update_next_budget(
     run: &Run<'_>,
     this_file: &Path,
     g: &Geometry<'_>,
@@ -608,41 +761,21 @@ pub fn update_budgets(
     deflate: i32,
     kept: &KeptBits,
 ) -> Vec<PathBuf> {
-    let files = published_where(
-        run.out_dir,
-        run.centre,
-        run.grid_id,
-        run.member,
-        run.reference_time,
-        |r, _| r == run.reference_time,
-    );
-    let same_cycle: Vec<&Published> = files
-        .iter()
-        .filter(|p| p.reference_time == run.reference_time)
-        .collect();
+    let files = same_cycle(run);
     let max = TimeDelta::try_hours(i64::from(max_interval_h)).unwrap_or_default();
-    let mut updated = Vec::new();
-    let prev = same_cycle
-        .iter()
-        .filter(|p| p.valid_time < run.valid_time)
-        .max_by_key(|p| p.valid_time);
-    if let Some(prev) = prev {
-        let dt = run.valid_time - prev.valid_time;
-        if dt <= max {
-            let prods = pv_budget(g, &prev.path, this_file, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(run, this_file, prods, deflate, kept));
-        }
-    }
-    let next = same_cycle
+    let next = files
         .iter()
         .filter(|p| p.valid_time > run.valid_time)
         .min_by_key(|p| p.valid_time);
-    if let Some(next) = next {
-        let dt = next.valid_time - run.valid_time;
-        if dt <= max {
-            let prods = pv_budget(g, this_file, &next.path, dt.num_seconds() as f64 / 3600.0);
-            updated.extend(update(run, &next.path, prods, deflate, kept));
-        }
-    }
-    updated
+    let Some(next) = next.filter(|n| n.valid_time - run.valid_time <= max) else {
+        return Vec::new();
+    };
+    let dt = next.valid_time - run.valid_time;
+    let prods = match (Source::file(this_file), Source::file(&next.path)) {
+        (Some(old), Some(new)) => pv_budget(g, &old, &new, dt.num_seconds() as f64 / 3600.0),
+        _ => return Vec::new(),
+    };
+    update(run, &next.path, prods, deflate, kept)
+        .into_iter()
+        .collect()
 }

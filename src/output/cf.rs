@@ -275,6 +275,16 @@ impl Product {
         }
     }
 
+    /// Level `k` as a reader of the file gets it (see [`Product::published`]).
+    pub fn published_level(&self, k: usize, nsb: u32) -> Array2<f32> {
+        match &self.values {
+            Values::Plain(a) => a
+                .index_axis(ndarray::Axis(0), k)
+                .mapv(|x| bit_round(x, nsb)),
+            Values::Packed(p) => p.level(k),
+        }
+    }
+
     /// Pack the values as the file will store them (deflate `level` > 0),
     /// on every core, and free the plain array.
     pub fn pack(&mut self, nsb: u32, level: i32) {

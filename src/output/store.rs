@@ -292,6 +292,39 @@ fn read_values(v: &netcdf::Variable<'_>) -> Option<Array3<f32>> {
     }))
 }
 
+/// (levels, rows, columns) of a (time, vertical, y, x) or (time, y, x) float
+/// variable (one level); None for any other shape.
+pub fn level_shape(v: &netcdf::Variable<'_>) -> Option<(usize, usize, usize)> {
+    let dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
+    match dims[..] {
+        [_, ny, nx] => Some((1, ny, nx)),
+        [_, nz, ny, nx] => Some((nz, ny, nx)),
+        _ => None,
+    }
+}
+
+/// Level `k` of the first time of a variable [`level_shape`] describes, fill as
+/// NaN; None where there is no such level or it cannot be read.
+pub fn read_level(v: &netcdf::Variable<'_>, k: usize) -> Option<ndarray::Array2<f32>> {
+    let (nz, ny, nx) = level_shape(v)?;
+    if k >= nz {
+        return None;
+    }
+    let data: Vec<f32> = if v.dimensions().len() == 3 {
+        v.get_values((0, .., ..)).ok()?
+    } else {
+        v.get_values((0, k, .., ..)).ok()?
+    };
+    let a = ndarray::Array2::from_shape_vec((ny, nx), data).ok()?;
+    Some(a.mapv(|x| {
+        if x == FILL_F32 || !x.is_finite() {
+            f32::NAN
+        } else {
+            x
+        }
+    }))
+}
+
 /// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
 /// with the values of its vertical coordinate. A variable on isobaric layers,
 /// written as one variable per layer, comes back with every layer the file

@@ -59,6 +59,16 @@ pub(super) struct Made {
     pub t_compute: Instant,
 }
 
+/// What the file says of the input's columns and winds.
+struct FromInput {
+    /// Isobaric levels, Pa.
+    levels: Vec<f64>,
+    /// How values below ground are masked.
+    masking: String,
+    /// How the winds were read.
+    winds: String,
+}
+
 /// The fields whose changes are taken, as published, with their coordinates.
 struct Now<'a> {
     thick: Option<(&'a [f64], &'a Array3<f32>)>,
@@ -105,6 +115,24 @@ pub(super) fn finish(
     rep.family_seconds
         .push(("changes_read", t_family.elapsed().as_secs_f64()));
     p.seal.seal_rest(&mut fields);
+    // The input's columns and winds are spent once the file's description
+    // is taken from them.
+    let from_input = FromInput {
+        levels: made.cols.p.clone(),
+        masking: made.cols.masking.clone(),
+        winds: made.winds.described.clone(),
+    };
+    drop(made.cols);
+    drop(made.winds);
+    let name = output_name(&p.step.key, p.grid_suffix);
+    let dir = p.out.stage.unwrap_or(p.out.dir);
+    if p.cfg.products.pv_budget && made.budget_layer {
+        let t_budget = Instant::now();
+        let budget = own_budget(p, &run, &made.grid, &dir.join(&name), &fields);
+        rep.family_seconds
+            .push(("pv_budget", t_budget.elapsed().as_secs_f64()));
+        fields.extend(budget.into_iter().map(|b| p.seal.seal(b)));
+    }
     let pack_seconds = p.seal.seconds();
     rep.family_seconds.push(("packing", pack_seconds));
     for (family, seconds) in &rep.family_seconds {
@@ -129,16 +157,10 @@ pub(super) fn finish(
         p_layers,
         made.grid,
         (made.lat, made.lon),
-        &made.cols,
-        &made.winds,
+        from_input,
     );
-    // The input's columns and winds are spent: the PV budget after writing
-    // reads what it needs from the files.
-    drop(made.cols);
-    drop(made.winds);
-    let name = output_name(&p.step.key, p.grid_suffix);
     let t_write = Instant::now();
-    let written = write_step(p.out.stage.unwrap_or(p.out.dir), &name, &products);
+    let written = write_step(dir, &name, &products);
     rep.write_seconds = t_write.elapsed().as_secs_f64() + pack_seconds;
     match written {
         Ok(path) => {
@@ -235,8 +257,7 @@ fn step_products(
     p_layers: Vec<[f64; 2]>,
     grid: Grid,
     (lat, lon): (Array2<f64>, Array2<f64>),
-    cols: &Columns,
-    winds: &Winds,
+    from_input: FromInput,
 ) -> StepProducts {
     let (key, cfg) = (&p.step.key, p.cfg);
     let mut inputs_used: Vec<String> = p
@@ -264,7 +285,7 @@ fn step_products(
         lat,
         lon,
         levels: if fields.iter().any(|f| f.vertical == Vertical::Pressure) {
-            cols.p.clone()
+            from_input.levels
         } else {
             Vec::new()
         },
@@ -273,8 +294,8 @@ fn step_products(
         layers: cfg.isentropic.layers.clone(),
         p_layers,
         fields,
-        masking: cols.masking.clone(),
-        winds: winds.described.clone(),
+        masking: from_input.masking,
+        winds: from_input.winds,
         inputs: inputs_used,
         deflate: cfg.output.deflate_level,
         kept_bits: p.seal.kept.clone(),
@@ -343,7 +364,8 @@ fn after_writing(
         ));
     }
     if pr.pv_budget && a.budget_layer {
-        rep.updated.extend(budgets(p, a.run, path, &products.grid));
+        rep.updated
+            .extend(next_budget(p, a.run, path, &products.grid));
     }
     // The cycle's tracks, from every step published so far; a batch job's
     // staged step is not published yet: the service makes them on taking it.
@@ -375,8 +397,45 @@ fn after_writing(
     }
 }
 
-/// The PV budgets this step completes, its own and those of later steps.
-fn budgets(p: &Publishing<'_>, run: &changes::Run<'_>, path: &Path, grid: &Grid) -> Vec<PathBuf> {
+/// This step's PV budget against the previous step of its cycle already
+/// published, from its own products as the file at `path` will hold them:
+/// computed before the file is written, so that it is published once, whole.
+fn own_budget(
+    p: &Publishing<'_>,
+    run: &changes::Run<'_>,
+    grid: &Grid,
+    path: &Path,
+    fields: &[Product],
+) -> Vec<Product> {
+    let this = changes::Source::Made {
+        path,
+        products: fields,
+        kept: &p.seal.kept,
+    };
+    let max = p.cfg.changes.budget_max_interval_h;
+    changes::budget_from_previous(run, &this, &geometry(p, grid), max)
+}
+
+/// The PV budget of the next step of the cycle, published before this one,
+/// added to its file.
+fn next_budget(
+    p: &Publishing<'_>,
+    run: &changes::Run<'_>,
+    path: &Path,
+    grid: &Grid,
+) -> Vec<PathBuf> {
+    changes::update_next_budget(
+        run,
+        path,
+        &geometry(p, grid),
+        p.cfg.changes.budget_max_interval_h,
+        p.cfg.output.deflate_level,
+        &p.seal.kept,
+    )
+}
+
+/// The grid as the PV budget's trajectories see it.
+fn geometry<'a>(p: &'a Publishing<'_>, grid: &'a Grid) -> changes::Geometry<'a> {
     let cfg = p.cfg;
     let layout = match &grid.horizontal {
         Horizontal::LatLon { lat, lon, .. } => budget::Layout::Sphere {
@@ -405,20 +464,12 @@ fn budgets(p: &Publishing<'_>, run: &changes::Run<'_>, path: &Path, grid: &Grid)
         tolerance: cfg.changes.budget_tolerance * layout.grid_length(),
         max_iterations: budget::MAX_ITERATIONS,
     };
-    let geom = changes::Geometry {
+    changes::Geometry {
         layout,
         f: &p.f,
         rotation: p.rotation.as_ref(),
         winds_grid_relative: p.winds_grid_relative,
         periodic: grid.periodic(),
         trajectories,
-    };
-    changes::update_budgets(
-        run,
-        path,
-        &geom,
-        cfg.changes.budget_max_interval_h,
-        cfg.output.deflate_level,
-        &p.seal.kept,
-    )
+    }
 }
