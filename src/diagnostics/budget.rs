@@ -153,11 +153,7 @@ impl Corners {
         if fj < 0.0 || fj > (ny - 1) as f64 {
             return None;
         }
-        let fi = if periodic {
-            fi.rem_euclid(nx as f64)
-        } else {
-            fi
-        };
+        let fi = if periodic { wrap(fi, nx as f64) } else { fi };
         if !periodic && (fi < 0.0 || fi > (nx - 1) as f64) {
             return None;
         }
@@ -178,6 +174,24 @@ impl Corners {
         let Self { j0, i0, i1, wj, wi } = *self;
         let (a, b, c, d) = (f[(j0, i0)], f[(j0, i1)], f[(j0 + 1, i0)], f[(j0 + 1, i1)]);
         (1.0 - wj) * ((1.0 - wi) * a + wi * b) + wj * ((1.0 - wi) * c + wi * d)
+    }
+}
+
+/// `x.rem_euclid(m)` for m > 0, the same bit for bit: the value itself, or
+/// one `m` added or taken away (exact: Sterbenz's lemma for the subtraction,
+/// and the very operation the library does for the addition) where that
+/// brings it into [0, m), which is every call on a trajectory; the library's
+/// remainder otherwise.
+#[inline]
+fn wrap(x: f64, m: f64) -> f64 {
+    if (0.0..m).contains(&x) {
+        x
+    } else if x > -m && x < 0.0 {
+        x + m
+    } else if x >= m && x < 2.0 * m {
+        x - m
+    } else {
+        x.rem_euclid(m)
     }
 }
 
@@ -226,11 +240,25 @@ fn latlon(x: [f64; 3]) -> (f64, f64) {
     )
 }
 
+/// Latitude and longitude, degrees, of a unit vector (no norm taken).
+#[inline]
+fn unit_latlon(x: [f64; 3]) -> (f64, f64) {
+    (
+        x[2].clamp(-1.0, 1.0).asin().to_degrees(),
+        x[1].atan2(x[0]).to_degrees(),
+    )
+}
+
+fn chord_squared(a: [f64; 3], b: [f64; 3]) -> f64 {
+    (a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2) + (a[2] - b[2]).powi(2)
+}
+
 fn normalise(x: [f64; 3]) -> [f64; 3] {
     let n = (x[0] * x[0] + x[1] * x[1] + x[2] * x[2]).sqrt();
     [x[0] / n, x[1] / n, x[2] / n]
 }
 
+#[cfg(test)]
 fn chord(a: [f64; 3], b: [f64; 3]) -> f64 {
     ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2) + (a[2] - b[2]).powi(2)).sqrt()
 }
@@ -265,45 +293,63 @@ fn step_back(xa: [f64; 3], xm: [f64; 3], lo: f64, (u, v): (f64, f64), s: f64) ->
 /// `wind(lat, lon, tau)` is the east and north wind at a position and at the
 /// fraction `tau` of the interval from the earlier step (None where missing or
 /// off the grid). `tol` is the convergence distance on the unit sphere.
+///
+/// `guess[m]` is the displacement over sub-step m (a vector in three
+/// dimensions) of a neighbouring arrival point whose sub-step converged, if
+/// any: the iteration starts from it instead of from no displacement, which
+/// saves about one iteration in three (the displacement of neighbours differs
+/// by the wind's change over one grid length). It is replaced by this point's.
 fn trace(
     xa: [f64; 3],
-    n: usize,
-    s: f64,
-    tol: f64,
-    max_iterations: usize,
+    how: Tracing,
     wind: impl Fn(f64, f64, f64) -> Option<(f64, f64)>,
+    guess: &mut [Option<[f64; 3]>],
 ) -> Option<([f64; 3], bool)> {
+    let Tracing {
+        n,
+        s,
+        tol,
+        max_iterations,
+    } = how;
     let mut x = xa;
     let mut all_converged = true;
     for m in (0..n).rev() {
         let tau = (m as f64 + 0.5) / n as f64;
         let start = x;
-        let mut xd = start;
+        let mut xd = match guess[m] {
+            Some(g) => normalise([start[0] + g[0], start[1] + g[1], start[2] + g[2]]),
+            None => start,
+        };
         let mut converged = false;
         for it in 0..max_iterations.max(1) {
             let xm = normalise([start[0] + xd[0], start[1] + xd[1], start[2] + xd[2]]);
-            let (la, lo) = latlon(xm);
+            let (la, lo) = unit_latlon(xm);
             let wind = wind(la, lo, tau)?;
             let next = step_back(start, xm, lo, wind, s);
-            let moved = chord(next, xd);
+            // Squared distances compared: no square root in the loop.
+            let moved2 = chord_squared(next, xd);
             xd = next;
-            if it > 0 && moved < tol {
+            if it > 0 && moved2 < tol * tol {
                 converged = true;
                 break;
             }
         }
         all_converged &= converged;
+        guess[m] = converged.then_some([xd[0] - start[0], xd[1] - start[1], xd[2] - start[2]]);
         x = xd;
     }
     Some((x, all_converged))
 }
 
-/// Latitude and longitude of the grid point (row, column).
-type Arrival<'a> = Box<dyn Fn(usize, usize) -> (f64, f64) + Sync + 'a>;
-/// Fractional (row, column) index of a latitude and longitude.
-type ToIndex<'a> = Box<dyn Fn(f64, f64) -> (f64, f64) + Sync + 'a>;
-/// East and north wind at a latitude, longitude and fraction of the interval.
-type Wind<'a> = Box<dyn Fn(f64, f64, f64) -> Option<(f64, f64)> + Sync + 'a>;
+/// How one trajectory is traced: sub-steps, their length on the unit sphere
+/// (h/a), the convergence distance on it, and the iterations allowed.
+#[derive(Clone, Copy)]
+struct Tracing {
+    n: usize,
+    s: f64,
+    tol: f64,
+    max_iterations: usize,
+}
 
 /// Departure points of the columns arriving at every grid point, as fractional
 /// (row, column) indices, from winds (u, v along the grid's axes, m/s) at the
@@ -316,9 +362,9 @@ pub fn departure_points(
     settings: &Settings,
 ) -> Departures {
     let (ny, nx) = u_new.dim();
-    let mut dj = Array2::from_elem((ny, nx), f64::NAN);
-    let mut di = Array2::from_elem((ny, nx), f64::NAN);
-    let mut status = Array2::from_elem((ny, nx), Status::None);
+    let dj = Array2::from_elem((ny, nx), f64::NAN);
+    let di = Array2::from_elem((ny, nx), f64::NAN);
+    let status = Array2::from_elem((ny, nx), Status::None);
     if [u_old.dim(), v_old.dim(), v_new.dim()] != [(ny, nx); 3] {
         // Winds on different grids have no trajectories (the four share corners below).
         return Departures { dj, di, status };
@@ -338,8 +384,16 @@ pub fn departure_points(
         let v = (1.0 - tau) * c.of(v_old) + tau * c.of(v_new);
         (u.is_finite() && v.is_finite()).then_some((u, v))
     };
-    // Where the trajectory of the point (j, i) ends, as fractional indices, or None.
-    let (arrival, to_index, wind): (Arrival<'_>, ToIndex<'_>, Wind<'_>) = match layout {
+    let how = Tracing {
+        n,
+        s,
+        tol,
+        max_iterations: settings.max_iterations,
+    };
+    let mut d = Departures { dj, di, status };
+    // Each layout's closures are passed by value, so that the tracing loop is
+    // compiled for each with the wind's interpolation inlined.
+    match layout {
         Layout::Sphere {
             lat, lon, periodic, ..
         } => {
@@ -350,7 +404,7 @@ pub fn departure_points(
                 f64::NAN
             };
             let to_index = move |la: f64, lo: f64| -> (f64, f64) {
-                let fi = (lo - lon[0]).rem_euclid(360.0) / dlon;
+                let fi = wrap(lo - lon[0], 360.0) / dlon;
                 let fi = if !periodic && fi > (nx - 1) as f64 + 0.5 {
                     fi - 360.0 / dlon
                 } else {
@@ -358,14 +412,18 @@ pub fn departure_points(
                 };
                 (frac_index(lat, la), fi)
             };
-            (
-                Box::new(move |j, i| (lat[j], lon[i])),
-                Box::new(to_index),
-                Box::new(move |la, lo, tau| {
-                    let (fj, fi) = to_index(la, lo);
-                    wind_at(fj, fi, tau, periodic)
-                }),
-            )
+            let wind = move |la, lo, tau| {
+                let (fj, fi) = to_index(la, lo);
+                wind_at(fj, fi, tau, periodic)
+            };
+            trace_all(
+                &mut d,
+                |j, i| (lat[j], lon[i]),
+                to_index,
+                wind,
+                how,
+                periodic,
+            );
         }
         Layout::Projected {
             proj,
@@ -379,46 +437,63 @@ pub fn departure_points(
                 let (x, y) = proj.forward(earth, la, lo);
                 ((y - y0) / dy, (x - x0) / dx)
             };
-            (
-                Box::new(move |j, i| proj.inverse(earth, x0 + i as f64 * dx, y0 + j as f64 * dy)),
-                Box::new(to_index),
-                Box::new(move |la, lo, tau| {
-                    let (fj, fi) = to_index(la, lo);
-                    let (ug, vg) = wind_at(fj, fi, tau, false)?;
-                    // Grid axes to east and north at the midpoint.
-                    let (sa, ca) = proj.grid_rotation(earth, la, lo).sin_cos();
-                    Some((ug * ca - vg * sa, ug * sa + vg * ca))
-                }),
-            )
-        }
-    };
-    let periodic = matches!(layout, Layout::Sphere { periodic: true, .. });
-    Zip::indexed(&mut dj)
-        .and(&mut di)
-        .and(&mut status)
-        .par_for_each(|(j, i), dj_out, di_out, st| {
-            let (la0, lo0) = arrival(j, i);
-            let Some((xd, converged)) =
-                trace(unit(la0, lo0), n, s, tol, settings.max_iterations, &wind)
-            else {
-                return;
+            let arrival = move |j, i| proj.inverse(earth, x0 + i as f64 * dx, y0 + j as f64 * dy);
+            let wind = move |la, lo, tau| {
+                let (fj, fi) = to_index(la, lo);
+                let (ug, vg) = wind_at(fj, fi, tau, false)?;
+                // Grid axes to east and north at the midpoint.
+                let (sa, ca) = proj.grid_rotation(earth, la, lo).sin_cos();
+                Some((ug * ca - vg * sa, ug * sa + vg * ca))
             };
-            let (la, lo) = latlon(xd);
-            let (fj, fi) = to_index(la, lo);
-            let inside = fj >= 0.0
-                && fj <= (ny - 1) as f64
-                && (periodic || (fi >= 0.0 && fi <= (nx - 1) as f64));
-            if fj.is_finite() && fi.is_finite() && inside {
-                *dj_out = fj;
-                *di_out = fi;
-                *st = if converged {
-                    Status::Converged
-                } else {
-                    Status::NotConverged
+            trace_all(&mut d, arrival, to_index, wind, how, false);
+        }
+    }
+    d
+}
+
+/// Trace every arrival point of `d`'s grid back, on every core: `arrival`
+/// gives a grid point's latitude and longitude, `to_index` a position's
+/// fractional (row, column) index, `wind` the east and north wind at a
+/// position and fraction of the interval.
+fn trace_all(
+    d: &mut Departures,
+    arrival: impl Fn(usize, usize) -> (f64, f64) + Sync,
+    to_index: impl Fn(f64, f64) -> (f64, f64) + Sync,
+    wind: impl Fn(f64, f64, f64) -> Option<(f64, f64)> + Sync,
+    how: Tracing,
+    periodic: bool,
+) {
+    let (ny, nx) = d.dj.dim();
+    // Row by row, each point starting from its western neighbour's
+    // displacements: the same guesses, and so the same result, however the
+    // rows are shared among threads.
+    Zip::indexed(d.dj.rows_mut())
+        .and(d.di.rows_mut())
+        .and(d.status.rows_mut())
+        .par_for_each(|j, mut dj_row, mut di_row, mut st_row| {
+            let mut guess = vec![None; how.n];
+            for i in 0..nx {
+                let (la0, lo0) = arrival(j, i);
+                let Some((xd, converged)) = trace(unit(la0, lo0), how, &wind, &mut guess) else {
+                    guess.fill(None);
+                    continue;
                 };
+                let (la, lo) = latlon(xd);
+                let (fj, fi) = to_index(la, lo);
+                let inside = fj >= 0.0
+                    && fj <= (ny - 1) as f64
+                    && (periodic || (fi >= 0.0 && fi <= (nx - 1) as f64));
+                if fj.is_finite() && fi.is_finite() && inside {
+                    dj_row[i] = fj;
+                    di_row[i] = fi;
+                    st_row[i] = if converged {
+                        Status::Converged
+                    } else {
+                        Status::NotConverged
+                    };
+                }
             }
         });
-    Departures { dj, di, status }
 }
 
 /// Values of `f` at the departure points (NaN where there is none), on every core.
@@ -605,6 +680,105 @@ mod tests {
                 assert_eq!(d.status[(j, i)], Status::Converged);
             }
         }
+    }
+
+    /// `wrap` is `rem_euclid`, bit for bit (the library remainder is exact, so
+    /// adding or taking away one period where that suffices must give the same).
+    #[test]
+    fn wrap_is_the_euclidean_remainder_bit_for_bit() {
+        for m in [360.0, 1440.0, 97.0] {
+            let mut xs = vec![0.0, -0.0, m, -m, 2.0 * m, -2.0 * m, 3.7 * m, -3.7 * m];
+            xs.extend([
+                f64::NAN,
+                f64::INFINITY,
+                f64::MIN_POSITIVE,
+                -f64::MIN_POSITIVE,
+            ]);
+            xs.extend([m - f64::EPSILON * m, -m + f64::EPSILON * m, 1e-300, -1e-300]);
+            // Pseudo-random values over (-3m, 3m).
+            let mut r = 0x2545_f491_4f6c_dd1du64;
+            for _ in 0..20_000 {
+                r ^= r << 13;
+                r ^= r >> 7;
+                r ^= r << 17;
+                xs.push((r as f64 / u64::MAX as f64 - 0.5) * 6.0 * m);
+            }
+            for x in xs {
+                let (got, want) = (wrap(x, m), x.rem_euclid(m));
+                assert!(
+                    got.to_bits() == want.to_bits() || (got.is_nan() && want.is_nan()),
+                    "{x} mod {m}: {got} != {want}"
+                );
+            }
+        }
+    }
+
+    /// A neighbour's displacement as first guess finds the same departure point
+    /// to within the convergence distance, in fewer iterations: points along a
+    /// parallel at 40 N in a sheared, rotating flow, each traced from no
+    /// displacement and then one after another with the guesses passed on.
+    #[test]
+    fn a_neighbours_displacement_as_first_guess_saves_iterations_and_nothing_else() {
+        let calls = std::cell::Cell::new(0usize);
+        let wind = |la: f64, lo: f64, tau: f64| {
+            calls.set(calls.get() + 1);
+            let (p, l) = (la.to_radians(), lo.to_radians());
+            let u = 35.0 * p.cos() + 12.0 * (2.0 * l).sin() * (1.0 + tau);
+            let v = 9.0 * (3.0 * l).cos() * p.cos();
+            Some((u, v))
+        };
+        let dt = 6.0 * 3600.0;
+        let how = Tracing {
+            n: 2,
+            s: dt / 2.0 / A,
+            tol: 0.01 * 0.25f64.to_radians(),
+            max_iterations: MAX_ITERATIONS,
+        };
+        let arrivals: Vec<[f64; 3]> = (0..360).map(|i| unit(40.0, i as f64)).collect();
+        let alone: Vec<[f64; 3]> = arrivals
+            .iter()
+            .map(|&x| trace(x, how, wind, &mut [None, None]).unwrap().0)
+            .collect();
+        let calls_alone = calls.replace(0);
+        let mut guess = [None, None];
+        for (x, want) in arrivals.iter().zip(&alone) {
+            let (got, converged) = trace(*x, how, wind, &mut guess).unwrap();
+            assert!(converged);
+            assert!(chord(got, *want) < how.tol, "{got:?} vs {want:?}");
+        }
+        let calls_guessed = calls.get();
+        assert!(
+            (calls_guessed as f64) < 0.8 * calls_alone as f64,
+            "{calls_guessed} wind readings with guesses, {calls_alone} without"
+        );
+    }
+
+    /// Each row is traced from its own first point on, so the departure points
+    /// do not depend on how rows are shared among threads (1 thread and 3).
+    #[test]
+    fn departures_are_the_same_bit_for_bit_on_any_number_of_threads() {
+        let (lat, lon) = global_axes();
+        // Wind that vanishes at the poles, where it would otherwise depend on
+        // the longitude it is read at.
+        let u = Array2::from_shape_fn((73, 144), |(j, i)| {
+            (30.0 + 8.0 * (lon[i].to_radians() * 2.0).sin()) * lat[j].to_radians().cos()
+        });
+        let v = Array2::from_shape_fn((73, 144), |(j, i)| {
+            6.0 * (lon[i].to_radians() * 3.0).cos() * lat[j].to_radians().cos()
+        });
+        let on = |threads: usize| {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            pool.install(|| global_departures((&u, &v), (&u, &v), 6.0 * 3600.0))
+        };
+        let (one, three) = (on(1), on(3));
+        let bits = |a: &Array2<f64>| a.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&one.dj), bits(&three.dj));
+        assert_eq!(bits(&one.di), bits(&three.di));
+        assert_eq!(one.status, three.status);
+        assert_eq!(one.not_converged(), 0);
     }
 
     #[test]
