@@ -168,8 +168,8 @@ def test_the_service_publishes_the_same_whole_files_in_every_order(inputs, tmp_p
     directory after the one before it is published."""
     # The step files and the cycle's cyclone tracks. The service makes the
     # tracks in a process of its own from a memo of each step file's centres,
-    # read again only where a file changed (a later step adds its budget to
-    # the earlier file); `process` reads every file each time, so a memo that
+    # read again only where a file changed (an earlier step arriving late adds
+    # the later step's budget to its file); `process` reads every file each time, so a memo that
     # kept a revised file's old centres differs here.
     ref = process_in_order(inputs, ORDERS["in-order"], tmp_path / "reference")
     for label in ("in-order", "reversed", "between"):
