@@ -434,18 +434,17 @@ impl<'a> Source<'a> {
 
     fn product(&self, name: &str) -> Option<&Product> {
         match self {
-            Source::Made { products, .. } => products
-                .iter()
-                .find(|p| p.spec.name == name && p.valid_points() > 0),
+            Source::Made { products, .. } => products.iter().find(|p| p.spec.name == name),
             Source::File { .. } => None,
         }
     }
 
-    /// (levels, rows, columns) of the field `name`; None where there is no such field.
+    /// (levels, rows, columns) of the field `name`; None where there is no such
+    /// field (a product without a valid point is not written, so not there).
     fn shape(&self, name: &str) -> Option<(usize, usize, usize)> {
         match self {
             Source::File { file, .. } => level_shape(&file.variable(name)?),
-            Source::Made { .. } => Some(self.product(name)?.dim()),
+            Source::Made { .. } => Some(self.product(name).filter(|p| p.valid_points() > 0)?.dim()),
         }
     }
 

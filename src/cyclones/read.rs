@@ -17,7 +17,8 @@ use ndarray::{Array2, Array3};
 
 use super::detect::{find_centres, Centre, Settings as DetectSettings, Surface};
 use super::facts::{facts, nearest_surface, upper_pv, Facts, Fields, Grid};
-use crate::output::cf::{layer_suffix, FILL_F32};
+use crate::output::cf::layer_suffix;
+use crate::output::store::{read_level, read_values};
 use crate::output::variables::PVU;
 use crate::recent::ByCycle;
 
@@ -48,37 +49,14 @@ pub struct StepCentres {
     pub centres: Vec<(Centre, Facts)>,
 }
 
-fn fill_to_nan(x: f32) -> f32 {
-    if x == FILL_F32 || !x.is_finite() {
-        f32::NAN
-    } else {
-        x
-    }
+/// Every level of a float variable (time 0), fill as NaN.
+fn whole(f: &netcdf::File, name: &str) -> Option<Array3<f32>> {
+    read_values(&f.variable(name)?)
 }
 
-/// A float variable's values (time 0), one level (`Some(k)`) or all, as (levels, rows, columns).
-fn read(f: &netcdf::File, name: &str, level: Option<usize>) -> Option<Array3<f32>> {
-    let v = f.variable(name)?;
-    let dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
-    let data: Vec<f32> = match (dims.len(), level) {
-        (3, _) => v.get_values::<f32, _>(..).ok()?,
-        (4, Some(k)) if k < dims[1] => v.get_values::<f32, _>((0, k, .., ..)).ok()?,
-        (4, None) => v.get_values::<f32, _>(..).ok()?,
-        _ => return None,
-    };
-    let (ny, nx) = (dims[dims.len() - 2], dims[dims.len() - 1]);
-    let nz = data.len() / (ny * nx).max(1);
-    Array3::from_shape_vec((nz, ny, nx), data)
-        .ok()
-        .map(|a| a.mapv(fill_to_nan))
-}
-
+/// Level `k` (0 where None) of a float variable (time 0), fill as NaN.
 fn plane(f: &netcdf::File, name: &str, level: Option<usize>) -> Option<Array2<f32>> {
-    read(f, name, level).and_then(|a| {
-        a.index_axis_move(ndarray::Axis(0), 0)
-            .into_dimensionality()
-            .ok()
-    })
+    read_level(&f.variable(name)?, level.unwrap_or(0))
 }
 
 fn values(f: &netcdf::File, name: &str) -> Vec<f64> {
@@ -180,9 +158,9 @@ fn fields(f: &netcdf::File) -> Fields {
         eady: plane(f, "eady", None),
         thick: plane(f, &thick, Some(0)),
         orog: plane(f, "orog", None),
-        stretch: read(f, "bud_stretch", None),
-        zeta_stretch: read(f, "bud_zeta_stretch", None),
-        zeta_diff: read(f, "bud_zeta_diff", None),
+        stretch: whole(f, "bud_stretch"),
+        zeta_stretch: whole(f, "bud_zeta_stretch"),
+        zeta_diff: whole(f, "bud_zeta_diff"),
         low_pv: plane_pvu(f, "low_pv", None),
         theta_e_850: index_of(&values(f, "pressure"), 85_000.0)
             .and_then(|k| plane(f, "theta_e", Some(k))),

@@ -300,9 +300,11 @@ fn step_back(xa: [f64; 3], xm: [f64; 3], lo: f64, (u, v): (f64, f64), s: f64) ->
 /// extrapolation to this point, 2 d1 - d2 (or d1 alone, or no displacement),
 /// and may stop after its first step when that step moves less than the
 /// convergence distance: the stopping test of every iteration, which bounds
-/// the distance to the fixed point the same way wherever it starts. Guesses
-/// save iterations only; the departure point is the iteration's as before.
-/// They are then moved on to this point's.
+/// the distance to the fixed point the same way wherever it starts. The
+/// departure point found lies within that bound of the one an iteration from
+/// no displacement finds where both converge; from a guess the test is also
+/// met at some points where the iteration does not contract. The guesses are
+/// then moved on to this point's.
 fn trace(
     xa: [f64; 3],
     how: Tracing,
@@ -499,9 +501,9 @@ fn trace_all(
     periodic: bool,
 ) {
     let (ny, nx) = d.dj.dim();
-    // Row by row, each point starting from its western neighbour's
-    // displacements: the same guesses, and so the same result, however the
-    // rows are shared among threads.
+    // Row by row, each point starting from the displacements of the two
+    // before it: the same guesses, and so the same result, however the rows
+    // are shared among threads.
     Zip::indexed(d.dj.rows_mut())
         .and(d.di.rows_mut())
         .and(d.status.rows_mut())

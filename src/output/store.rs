@@ -272,7 +272,18 @@ fn pressure_layers(f: &netcdf::File) -> Vec<(String, f64, [f64; 2])> {
     out
 }
 
-fn read_values(v: &netcdf::Variable<'_>) -> Option<Array3<f32>> {
+/// A value as read from a file: the fill value and anything not finite as NaN.
+pub(crate) fn fill_to_nan(x: f32) -> f32 {
+    if x == FILL_F32 || !x.is_finite() {
+        f32::NAN
+    } else {
+        x
+    }
+}
+
+/// Every level of the first time of a (time, vertical, y, x) or (time, y, x)
+/// float variable (one level), as (levels, rows, columns), fill as NaN.
+pub(crate) fn read_values(v: &netcdf::Variable<'_>) -> Option<Array3<f32>> {
     let mut dims: Vec<usize> = v.dimensions().iter().map(|d| d.len()).collect();
     // A field with no vertical dimension reads as one level.
     if dims.len() == 3 {
@@ -283,13 +294,7 @@ fn read_values(v: &netcdf::Variable<'_>) -> Option<Array3<f32>> {
     }
     let data: Vec<f32> = v.get_values(..).ok()?;
     let a = Array3::from_shape_vec((dims[1], dims[2], dims[3]), data).ok()?;
-    Some(a.mapv(|x| {
-        if x == FILL_F32 || !x.is_finite() {
-            f32::NAN
-        } else {
-            x
-        }
-    }))
+    Some(a.mapv(fill_to_nan))
 }
 
 /// (levels, rows, columns) of a (time, vertical, y, x) or (time, y, x) float
@@ -316,13 +321,7 @@ pub fn read_level(v: &netcdf::Variable<'_>, k: usize) -> Option<ndarray::Array2<
         v.get_values((0, k, .., ..)).ok()?
     };
     let a = ndarray::Array2::from_shape_vec((ny, nx), data).ok()?;
-    Some(a.mapv(|x| {
-        if x == FILL_F32 || !x.is_finite() {
-            f32::NAN
-        } else {
-            x
-        }
-    }))
+    Some(a.mapv(fill_to_nan))
 }
 
 /// Read a (time, vertical, y, x) float variable back as (vertical, y, x), fill as NaN,
