@@ -177,15 +177,30 @@ fn theta_e_row(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
 /// Points a chunk: enough for the arithmetic to stay in cache between passes.
 const CHUNK: usize = 64;
 
-/// The passes over a chunk's points, one array per quantity.
+/// The passes over a chunk's points, one array per quantity (the start of each
+/// point, [`ThetaEStart`], as four arrays, so that every pass runs in vector registers).
 struct Passes {
-    start: [ThetaEStart; CHUNK],
+    t: [f64; CHUNK],
+    h: [f64; CHUNK],
+    a: [f64; CHUNK],
+    t35_over_h: [f64; CHUNK],
     exp_a: [f64; CHUNK],
     ln_x: [f64; CHUNK],
     factor: [f64; CHUNK],
     exponent: [f64; CHUNK],
-    exp_exponent: [f64; CHUNK],
     regular: [bool; CHUNK],
+}
+
+impl Passes {
+    #[inline(always)]
+    fn start(&self, i: usize) -> ThetaEStart {
+        ThetaEStart {
+            t: self.t[i],
+            h: self.h[i],
+            a: self.a[i],
+            t35_over_h: self.t35_over_h[i],
+        }
+    }
 }
 
 /// theta_e of up to [`CHUNK`] points: the regular ones (every input there, moist,
@@ -195,37 +210,40 @@ struct Passes {
 #[inline(always)]
 fn theta_e_chunk(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
     let n = t.len().min(rh.len()).min(out.len()).min(CHUNK);
+    let (t, rh, out) = (&t[..n], &rh[..n], &mut out[..n]);
     let mut w = Passes {
-        start: [ThetaEStart::default(); CHUNK],
+        t: [0.0; CHUNK],
+        h: [0.0; CHUNK],
+        a: [0.0; CHUNK],
+        t35_over_h: [0.0; CHUNK],
         exp_a: [0.0; CHUNK],
         ln_x: [0.0; CHUNK],
         factor: [0.0; CHUNK],
         exponent: [0.0; CHUNK],
-        exp_exponent: [0.0; CHUNK],
         regular: [false; CHUNK],
     };
     for i in 0..n {
-        w.start[i] = ThetaEStart::of(f64::from(t[i]), f64::from(rh[i]));
-        w.factor[i] = w.start[i].a; // the exponential's argument, for the moment
-        w.exponent[i] = w.start[i].t35_over_h; // the logarithm's
+        let s = ThetaEStart::of(f64::from(t[i]), f64::from(rh[i]));
+        (w.t[i], w.h[i], w.a[i], w.t35_over_h[i]) = (s.t, s.h, s.a, s.t35_over_h);
     }
-    elementary::exp_slice(&w.factor[..n], &mut w.exp_a[..n]);
-    elementary::ln_slice(&w.exponent[..n], &mut w.ln_x[..n]);
+    elementary::exp_slice(&w.a[..n], &mut w.exp_a[..n]);
+    elementary::ln_slice(&w.t35_over_h[..n], &mut w.ln_x[..n]);
     for i in 0..n {
-        let s = &w.start[i];
-        let (x, regular) = s.regular(w.exp_a[i], w.ln_x[i], level);
+        let (x, regular) = w.start(i).regular(w.exp_a[i], w.ln_x[i], level);
         w.regular[i] = regular;
         w.exponent[i] = if regular { x } else { 0.0 };
-        w.factor[i] = s.t * level.poisson;
+        w.factor[i] = w.t[i] * level.poisson;
     }
-    elementary::exp_slice(&w.exponent[..n], &mut w.exp_exponent[..n]);
-    let out = &mut out[..n];
-    for ((o, f), e) in out.iter_mut().zip(&w.factor).zip(&w.exp_exponent) {
-        *o = (f * e) as f32;
+    // The exponentials of the exponents, into `exp_a`, spent.
+    elementary::exp_slice(&w.exponent[..n], &mut w.exp_a[..n]);
+    for i in 0..n {
+        out[i] = (w.factor[i] * w.exp_a[i]) as f32;
     }
     for (i, o) in out.iter_mut().enumerate() {
         if !w.regular[i] {
-            *o = w.start[i].one_point(w.exp_a[i], w.ln_x[i], level) as f32;
+            let s = w.start(i);
+            let exp_a = elementary::exp(s.a);
+            *o = s.one_point(exp_a, w.ln_x[i], level) as f32;
         }
     }
 }
