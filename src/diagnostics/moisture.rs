@@ -236,8 +236,8 @@ fn theta_e_chunk(t: &[f32], rh: &[f32], level: IsobaricLevel, out: &mut [f32]) {
     }
     // The exponentials of the exponents, into `exp_a`, spent.
     elementary::exp_slice(&w.exponent[..n], &mut w.exp_a[..n]);
-    for i in 0..n {
-        out[i] = (w.factor[i] * w.exp_a[i]) as f32;
+    for ((o, f), e) in out.iter_mut().zip(&w.factor).zip(&w.exp_a) {
+        *o = (f * e) as f32;
     }
     for (i, o) in out.iter_mut().enumerate() {
         if !w.regular[i] {
