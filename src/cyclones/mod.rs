@@ -15,6 +15,7 @@ pub mod detect;
 pub mod facts;
 pub mod memo;
 pub mod read;
+pub mod source;
 pub mod track;
 pub mod tracked;
 pub mod write;

@@ -160,10 +160,15 @@ pub(super) fn finish(
         from_input,
     );
     let t_write = Instant::now();
-    let written = write_step(dir, &name, &products);
+    let tracks = p.cfg.products.cyclones && p.out.stage.is_none() && now.mslp.is_some();
+    let (written, centres) = write_finding_centres(p.cfg, tracks, dir, &name, &products);
     rep.write_seconds = t_write.elapsed().as_secs_f64() + pack_seconds;
     match written {
         Ok(path) => {
+            if let Some(c) = centres {
+                let set = crate::cyclones::cycle::settings(&p.cfg.cyclones).0;
+                crate::cyclones::read::remember_written(&path, &set, &c);
+            }
             let after = After {
                 run: &run,
                 now: &now,
@@ -185,6 +190,30 @@ pub(super) fn finish(
     rep.issues.extend(issues);
     rep.seconds = t0.elapsed().as_secs_f64();
     rep
+}
+
+/// Write the step's file; with `tracks`, find its cyclone centres from the
+/// products on a thread of their own while it is written (the writer uses
+/// one core), so that the tracks made after it need not read it back.
+fn write_finding_centres(
+    cfg: &crate::config::Config,
+    tracks: bool,
+    dir: &Path,
+    name: &str,
+    products: &StepProducts,
+) -> (
+    Result<PathBuf, crate::output::cf::OutputError>,
+    Option<crate::cyclones::read::StepCentres>,
+) {
+    let set = crate::cyclones::cycle::settings(&cfg.cyclones).0;
+    let path = dir.join(name);
+    std::thread::scope(|sc| {
+        let centres =
+            tracks.then(|| sc.spawn(|| crate::cyclones::read::made_centres(products, &path, &set)));
+        let written = write_step(dir, name, products);
+        let centres = centres.and_then(|h| h.join().ok()).and_then(Result::ok);
+        (written, centres)
+    })
 }
 
 /// The step as the changes see it.
