@@ -57,6 +57,22 @@ fn settings_key(set: &Settings) -> String {
     )
 }
 
+/// The file in a staging directory that holds the centres of the step staged
+/// there, found from its products while it was written ([`write_made`]); the
+/// memo beside it takes them ([`Memo::load`]).
+pub const MADE: &str = "centres.made";
+
+/// Write the centres `c` of the step file staged at `path` (published as
+/// `name`) into [`MADE`] beside it, as a memo of that file alone, so that the
+/// tracks made when it is published do not read it back.
+pub fn write_made(path: &Path, name: &str, set: &Settings, c: &StepCentres) -> Result<(), String> {
+    let (size, mtime) = stamp(path)?;
+    let entry = (size, mtime, c.clone());
+    let text = format!("{}\n{}", settings_key(set), encode(name, &entry));
+    let made = path.parent().unwrap_or(Path::new(".")).join(MADE);
+    crate::output::write_file_atomic(&made, text.as_bytes()).map_err(|e| e.to_string())
+}
+
 /// A file's size and modification time in ns since 1970.
 fn stamp(path: &Path) -> Result<(u64, u128), String> {
     let m = std::fs::metadata(path).map_err(|e| format!("cannot read: {e}"))?;
@@ -211,10 +227,14 @@ impl Memo {
     pub fn load(path: &Path, set: &Settings) -> Memo {
         let settings = settings_key(set);
         let dir = path.parent().unwrap_or(Path::new("."));
-        let known = std::fs::read_to_string(path)
-            .ok()
-            .and_then(|t| decode(&t, &settings, dir))
-            .unwrap_or_default();
+        let read = |p: &Path| {
+            std::fs::read_to_string(p)
+                .ok()
+                .and_then(|t| decode(&t, &settings, dir))
+        };
+        let mut known = read(path).unwrap_or_default();
+        // The step staged beside the memo, as found while it was written.
+        known.extend(read(&dir.join(MADE)).unwrap_or_default());
         Memo {
             settings,
             known,

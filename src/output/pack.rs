@@ -122,7 +122,7 @@ pub fn rounded_planes(values: ArrayView2<'_, f32>, nsb: u32, out: &mut Vec<u8>) 
         }
     };
     let n = flat.len();
-    out.clear();
+    // Every byte is written below: a buffer already this long is not cleared first.
     out.resize(4 * n, 0);
     let (b0, rest) = out.split_at_mut(n);
     let (b1, rest) = rest.split_at_mut(n);
@@ -190,21 +190,35 @@ impl Rounding {
 /// `out` is the room for it, kept by the caller; the stream is returned in a
 /// vector of its own length.
 fn deflate_zlib(data: &[u8], level: u32, out: &mut Vec<u8>) -> Vec<u8> {
-    let lvl = libdeflater::CompressionLvl::new(level.clamp(1, 9) as i32)
-        .unwrap_or_else(|_| libdeflater::CompressionLvl::fastest());
-    let mut c = libdeflater::Compressor::new(lvl);
-    out.clear();
-    out.resize(c.zlib_compress_bound(data.len()), 0);
-    match c.zlib_compress(data, out) {
-        Ok(n) => out[..n].to_vec(),
-        // The bound makes this unreachable; a stored-by-zlib stream is still correct.
-        Err(_) => {
-            let mut z =
-                flate2::write::ZlibEncoder::new(Vec::new(), flate2::Compression::new(level));
-            let _ = z.write_all(data);
-            z.finish().unwrap_or_default()
+    let level = level.clamp(1, 9);
+    let stream = COMPRESSOR.with(|c| {
+        let mut c = c.try_borrow_mut().ok()?;
+        if c.as_ref().is_none_or(|(l, _)| *l != level) {
+            let lvl = libdeflater::CompressionLvl::new(level as i32)
+                .unwrap_or_else(|_| libdeflater::CompressionLvl::fastest());
+            *c = Some((level, libdeflater::Compressor::new(lvl)));
         }
-    }
+        let (_, c) = c.as_mut()?;
+        let bound = c.zlib_compress_bound(data.len());
+        // libdeflate writes what it returns: room already this long is not cleared.
+        if out.len() < bound {
+            out.resize(bound, 0);
+        }
+        let n = c.zlib_compress(data, &mut out[..bound]).ok()?;
+        Some(out[..n].to_vec())
+    });
+    // The bound makes a failure unreachable; a stream by zlib is still correct.
+    stream.unwrap_or_else(|| {
+        let mut z = flate2::write::ZlibEncoder::new(Vec::new(), flate2::Compression::new(level));
+        let _ = z.write_all(data);
+        z.finish().unwrap_or_default()
+    })
+}
+
+thread_local! {
+    /// Each thread's compressor and its level, made once rather than for every chunk.
+    static COMPRESSOR: std::cell::RefCell<Option<(u32, libdeflater::Compressor)>> =
+        const { std::cell::RefCell::new(None) };
 }
 
 impl Packed {

@@ -160,14 +160,13 @@ pub(super) fn finish(
         from_input,
     );
     let t_write = Instant::now();
-    let tracks = p.cfg.products.cyclones && p.out.stage.is_none() && now.mslp.is_some();
+    let tracks = p.cfg.products.cyclones && now.mslp.is_some();
     let (written, centres) = write_finding_centres(p.cfg, tracks, dir, &name, &products);
     rep.write_seconds = t_write.elapsed().as_secs_f64() + pack_seconds;
     match written {
         Ok(path) => {
             if let Some(c) = centres {
-                let set = crate::cyclones::cycle::settings(&p.cfg.cyclones).0;
-                crate::cyclones::read::remember_written(&path, &set, &c);
+                keep_centres(p, &path, &name, &c);
             }
             let after = After {
                 run: &run,
@@ -214,6 +213,27 @@ fn write_finding_centres(
         let centres = centres.and_then(|h| h.join().ok()).and_then(Result::ok);
         (written, centres)
     })
+}
+
+/// The centres of the step just written at `path`, found from its products, kept
+/// for its tracks: remembered for the file, or (a step staged for a batch job's
+/// publication) written beside it for the tracks the service makes on taking it.
+fn keep_centres(
+    p: &Publishing<'_>,
+    path: &Path,
+    name: &str,
+    c: &crate::cyclones::read::StepCentres,
+) {
+    use crate::cyclones::{memo, read};
+    let set = crate::cyclones::cycle::settings(&p.cfg.cyclones).0;
+    if p.out.stage.is_none() {
+        read::remember_written(path, &set, c);
+        return;
+    }
+    read::check_made(path, &set, c);
+    if let Err(e) = memo::write_made(path, name, &set, c) {
+        warn!(file = %path.display(), error = %e, "centres of the step not kept for its tracks");
+    }
 }
 
 /// The step as the changes see it.

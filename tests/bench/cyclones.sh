@@ -3,9 +3,10 @@
 # relative humidity and mean sea-level pressure added (tests/bench/add_humidity.py) and
 # the same step 6 h later (whose tracks are made from both steps), through
 # `cargo bench --bench step` in paired rounds: in each round the two steps without the
-# new products, then the two with them (the default), side by side, so that the
-# machine's drift falls on both. Medians over the rounds, and the share of each round's
-# pair, first against the step without the products and then against the step with.
+# new products and the two with them (the default), side by side, the order switched
+# every round, so that the machine's drift and the order fall on both. Medians over the
+# rounds, and the share of each round's pair, first against the step without the
+# products and then against the step with; then the same in processor seconds.
 #
 #   bash tests/bench/cyclones.sh [--res 0.25|0.5|1.0] [--rounds N]
 #
@@ -62,6 +63,14 @@ for step, what in (("first", "first step"), ("next", "next step (changes, PV bud
     print(f"  added, median of the rounds' pairs: {st.median(share_off):.1f} % of the step without "
           f"(rounds {min(share_off):.1f} to {max(share_off):.1f} %), {st.median(share_on):.1f} % of the step with "
           f"(rounds {min(share_on):.1f} to {max(share_on):.1f} %)")
+    # Processor seconds (every thread): what the products cost the machine, less
+    # swayed than the wall clock by other work on a shared machine.
+    c_off = [at(k, "off", step)["cpu_seconds"] for k in rounds]
+    c_on = [at(k, "on", step)["cpu_seconds"] for k in rounds]
+    c_share = [100 * (b - a) / a for a, b in zip(c_off, c_on)]
+    print(f"  processor seconds: median {st.median(c_off):.2f} without, {st.median(c_on):.2f} with; added, "
+          f"median of the pairs: {st.median(c_share):.1f} % of the step without "
+          f"(rounds {min(c_share):.1f} to {max(c_share):.1f} %)")
     fams = {}
     for k in rounds:
         for mode in ("off", "on"):

@@ -164,8 +164,25 @@ fn images_share(path: &str, out: &std::path::Path) {
 
 /// Every step of `path`'s file with `cfg` into `out`: (seconds of the whole
 /// steps, each step's families' seconds).
-fn steps_of(path: &str, cfg: &Config, out: &std::path::Path) -> (f64, Vec<(&'static str, f64)>) {
-    let t = Instant::now();
+/// Processor seconds (user and system, every thread) this process has used.
+fn cpu_seconds() -> f64 {
+    // SAFETY: getrusage writes one `rusage` into the zeroed struct we own, which
+    // lives across the call; RUSAGE_SELF needs nothing else.
+    let mut u: libc::rusage = unsafe { std::mem::zeroed() };
+    if unsafe { libc::getrusage(libc::RUSAGE_SELF, &mut u) } != 0 {
+        return f64::NAN;
+    }
+    let s = |t: libc::timeval| t.tv_sec as f64 + t.tv_usec as f64 * 1e-6;
+    s(u.ru_utime) + s(u.ru_stime)
+}
+
+/// Wall seconds, processor seconds and the family timings of the steps in `path`.
+fn steps_of(
+    path: &str,
+    cfg: &Config,
+    out: &std::path::Path,
+) -> (f64, f64, Vec<(&'static str, f64)>) {
+    let (t, cpu) = (Instant::now(), cpu_seconds());
     let (file, _) = read_input(std::path::Path::new(path));
     let files: Vec<_> = file.into_iter().collect();
     let (steps, _) = plan(&files);
@@ -176,25 +193,31 @@ fn steps_of(path: &str, cfg: &Config, out: &std::path::Path) -> (f64, Vec<(&'sta
         families.extend(r.family_seconds);
         families.push(("after_writing", r.changes_seconds));
     }
-    (t.elapsed().as_secs_f64(), families)
+    (t.elapsed().as_secs_f64(), cpu_seconds() - cpu, families)
 }
 
 /// `rounds` rounds of the first step into an empty directory and the next step
-/// after it, without the products `off` switches off, then with every default.
+/// after it, without the products `off` switches off and with every default: in
+/// even rounds without them first, in odd rounds with them first, so that what
+/// running second does to a step falls on both.
 fn paired(first: &str, next: &str, out: &std::path::Path, off: &Config, rounds: usize) {
     let on = Config::default();
     for round in 0..rounds {
-        for (mode, cfg) in [("off", off), ("on", &on)] {
+        let mut modes = [("off", off), ("on", &on)];
+        if round % 2 == 1 {
+            modes.reverse();
+        }
+        for (mode, cfg) in modes {
             let _ = std::fs::remove_dir_all(out);
             std::fs::create_dir_all(out).expect("output dir");
             for (step, path) in [("first", first), ("next", next)] {
-                let (seconds, families) = steps_of(path, cfg, out);
+                let (seconds, cpu, families) = steps_of(path, cfg, out);
                 let fam: Vec<String> = families
                     .iter()
                     .map(|(n, s)| format!("\"{n}\":{s:.4}"))
                     .collect();
                 println!(
-                    "{{\"what\":\"pair\",\"round\":{round},\"mode\":\"{mode}\",\"step\":\"{step}\",\"seconds\":{seconds:.4},\"families\":{{{}}}}}",
+                    "{{\"what\":\"pair\",\"round\":{round},\"mode\":\"{mode}\",\"step\":\"{step}\",\"seconds\":{seconds:.4},\"cpu_seconds\":{cpu:.4},\"families\":{{{}}}}}",
                     fam.join(",")
                 );
             }

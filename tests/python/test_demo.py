@@ -7,6 +7,7 @@ full demo is the same code with the default leads."""
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -51,6 +52,14 @@ def test_the_demo_publishes_every_step_through_the_service(tmp_path):
     assert len(lee) == 1 and lee[0]["points_count"] == 3, g["features"]
     assert "Cyclone tracks in products/regional/20260314T0000Z/c255_20260314T0000Z_cyclones.geojson" in out, out
     assert "Eady growth rate within 500 km" in out and "terrain within 500 km upstream" in out, out
+    # Each step's centres come from its own step process, found from its products while
+    # its file was written (centres.made beside the staged file), and the earlier steps'
+    # from the memo: the tracks process reads no step file back. (The test build also
+    # reads each step file in its step process and stops if the two differ.)
+    made = re.findall(r"cyclone tracks made .*steps=(\d+) .*steps_from_memo=(\d+) steps_read=(\d+)",
+                      (d / "service.log").read_text())
+    assert len(made) == 6, made
+    assert all(m == s and r == "0" for s, m, r in made), made
     for nc in ncs:
         m = json.loads(nc.with_suffix(".json").read_text())
         assert m["state"] == "complete"
