@@ -234,6 +234,9 @@ pub struct Cyclones {
     pub eady_layer_hpa: [f64; 2],
     /// Isobaric layer [bottom, top] of the low-level PV mean, hPa.
     pub low_pv_layer_hpa: [f64; 2],
+    /// Highest isobaric level of `theta_e`, hPa (0: every level); above it the
+    /// variable is missing.
+    pub theta_e_top_hpa: f64,
     /// Isobaric layer [bottom, top] whose pressure-weighted mean wind steers the
     /// tracks' first guess, hPa.
     pub steering_layer_hpa: [f64; 2],
@@ -253,6 +256,7 @@ impl Default for Cyclones {
         Cyclones {
             eady_layer_hpa: [850.0, 500.0],
             low_pv_layer_hpa: [900.0, 700.0],
+            theta_e_top_hpa: 100.0,
             steering_layer_hpa: [850.0, 500.0],
             contour_interval_hpa: 0.5,
             max_contour_radius_km: 2500.0,
@@ -319,6 +323,12 @@ impl Cyclones {
                     l[0], l[1]
                 ));
             }
+        }
+        if !(self.theta_e_top_hpa >= 0.0 && self.theta_e_top_hpa <= 1100.0) {
+            p.push(format!(
+                "cyclones.theta_e_top_hpa: {} is outside 0 to 1100 hPa",
+                self.theta_e_top_hpa
+            ));
         }
         if !(self.contour_interval_hpa >= 0.1 && self.contour_interval_hpa <= 10.0) {
             p.push(format!(

@@ -375,7 +375,8 @@ fn isobaric<'c>(
         rotation: cx.plane.rotation.as_ref(),
     };
     if pr.theta_e {
-        fields.extend(synoptic::theta_e(&syn).map(|p| seal.seal(p)));
+        let top = cx.cfg.cyclones.theta_e_top_hpa;
+        fields.extend(synoptic::theta_e(&syn, top).map(|p| seal.seal(p)));
     }
     let both = needs.have_t && needs.have_w;
     synoptic::eady_and_steering(&syn, cx.cfg, both, &mut surface, &mut rep.missing);

@@ -110,14 +110,19 @@ pub(super) fn eady_and_steering(
     }
 }
 
-/// Equivalent potential temperature on every level (Bolton 1980).
-pub(super) fn theta_e(s: &Stacks<'_>) -> Option<Product> {
+/// Equivalent potential temperature (Bolton 1980) on the levels at and below
+/// `top_hpa` (0: every level); missing above it, where the air holds so little
+/// vapour that theta-e is theta (docs/output.md).
+pub(super) fn theta_e(s: &Stacks<'_>, top_hpa: f64) -> Option<Product> {
     let (t, rh) = (s.t?, s.rh?);
     let (_, ny, nx) = t.dim();
     let mut out = Array3::from_elem(t.dim(), f32::NAN);
     let rows = out.as_slice_mut()?.par_chunks_mut(nx).enumerate();
     rows.for_each(|(row, o)| {
         let (k, j) = (row / ny, row % ny);
+        if s.p[k] < top_hpa * 100.0 {
+            return;
+        }
         let level = moisture::IsobaricLevel::new(s.p[k]);
         let (t, rh) = (t.slice(s![k, j, ..]), rh.slice(s![k, j, ..]));
         match (t.as_slice(), rh.as_slice()) {
@@ -128,7 +133,9 @@ pub(super) fn theta_e(s: &Stacks<'_>) -> Option<Product> {
             }
         }
     });
-    Some(Product::new(variables::THETA_E, Vertical::Pressure, out))
+    let mut prod = Product::new(variables::THETA_E, Vertical::Pressure, out);
+    prod.numbers.push(("leeward_top_hpa", top_hpa));
+    Some(prod)
 }
 
 /// The Eady growth rate of the layer `l` (hPa), when both its levels are there.
@@ -341,6 +348,7 @@ pub(super) fn isentropic_humidity(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::output::cf::Values;
 
     /// Levels 1000 to 100 hPa every 50 hPa, Pa, increasing.
     fn levels() -> Vec<f64> {
@@ -359,6 +367,56 @@ mod tests {
                 (a + b * p[k]) as f32
             }
         })
+    }
+
+    #[test]
+    fn theta_e_is_made_up_to_its_top_level_and_missing_above() {
+        // Levels 1000 to 100 hPa, top 300 hPa: the levels above 300 hPa are missing, the
+        // rest is Bolton's theta_e of each point (moisture::theta_e_from_rh); top 0 makes
+        // every level.
+        let p = levels();
+        let (ny, nx) = (3, 5);
+        let t = Array3::from_shape_fn((p.len(), ny, nx), |(k, j, i)| {
+            (210.0 + 80.0 * p[k] / 1e5 + j as f64 + 0.5 * i as f64) as f32
+        });
+        let rh = Array3::from_shape_fn(t.dim(), |(k, j, i)| ((k * 7 + j * 5 + i * 3) % 101) as f32);
+        let f = Array2::from_elem((ny, nx), 1e-4);
+        let s = Stacks {
+            p: &p,
+            t: Some(&t),
+            u: None,
+            v: None,
+            z: None,
+            theta: None,
+            rh: Some(&rh),
+            f: &f,
+            rotation: None,
+        };
+        for top in [300.0, 0.0] {
+            let prod = theta_e(&s, top).unwrap();
+            let Values::Plain(out) = &prod.values else {
+                panic!("theta_e not plain")
+            };
+            for ((k, j, i), &o) in out.indexed_iter() {
+                if p[k] < top * 100.0 {
+                    assert!(o.is_nan(), "{} hPa above the top {top}: {o}", p[k] / 100.0);
+                } else {
+                    let level = moisture::IsobaricLevel::new(p[k]);
+                    let want = moisture::theta_e_from_rh(
+                        f64::from(t[(k, j, i)]),
+                        f64::from(rh[(k, j, i)]),
+                        level,
+                    ) as f32;
+                    assert_eq!(
+                        o.to_bits(),
+                        want.to_bits(),
+                        "{} hPa ({j}, {i})",
+                        p[k] / 100.0
+                    );
+                }
+            }
+            assert!(prod.numbers.contains(&("leeward_top_hpa", top)));
+        }
     }
 
     #[test]
