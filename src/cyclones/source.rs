@@ -153,11 +153,15 @@ impl Source<'_> {
                     // The IUGG mean radius (2a + b)/3, as leeward's own derivatives use.
                     (2.0 * e.a + e.b) / 3.0
                 };
-                let periodic = match &p.grid.horizontal {
-                    Horizontal::LatLon { lon, .. } => periodic(lon),
-                    _ => false,
-                };
-                Some((p.lat.clone(), p.lon.clone(), periodic, radius))
+                // A regular grid's file holds its axes: the points' coordinates are
+                // taken from them, as a reader of the file takes them.
+                Some(match &p.grid.horizontal {
+                    Horizontal::LatLon { lat, lon, .. } => {
+                        let (la, lo) = from_axes(lat, lon);
+                        (la, lo, periodic(lon), radius)
+                    }
+                    _ => (p.lat.clone(), p.lon.clone(), false, radius),
+                })
             }
         }
     }
@@ -206,17 +210,22 @@ fn periodic(lo: &[f64]) -> bool {
     nx >= 3 && (d * nx as f64 - 360.0).abs() < 0.5 * d.abs()
 }
 
+/// Latitude and longitude of every point of a grid with these axes.
+fn from_axes(la: &[f64], lo: &[f64]) -> (Array2<f64>, Array2<f64>) {
+    let (ny, nx) = (la.len(), lo.len());
+    (
+        Array2::from_shape_fn((ny, nx), |(j, _)| la[j]),
+        Array2::from_shape_fn((ny, nx), |(_, i)| lo[i]),
+    )
+}
+
 /// [`Source::geography`] of a file.
 fn geography(f: &netcdf::File) -> Option<Geography> {
     let (la, lo) = (values(f, "lat"), values(f, "lon"));
     let var = f.variable("lat")?;
     let (lat, lon, periodic) = if var.dimensions().len() == 1 {
-        let (ny, nx) = (la.len(), lo.len());
-        (
-            Array2::from_shape_fn((ny, nx), |(j, _)| la[j]),
-            Array2::from_shape_fn((ny, nx), |(_, i)| lo[i]),
-            periodic(&lo),
-        )
+        let (lat, lon) = from_axes(&la, &lo);
+        (lat, lon, periodic(&lo))
     } else {
         let dims: Vec<usize> = var.dimensions().iter().map(|d| d.len()).collect();
         let shape = (*dims.first()?, *dims.get(1)?);
