@@ -6,12 +6,12 @@
 //! In: an open step file, or a step's products. Out: levels of its variables,
 //! its coordinates, attributes, times and geography. Reading only.
 
-use chrono::{NaiveDateTime, TimeDelta};
+use chrono::NaiveDateTime;
 use ndarray::{Array2, Array3, Axis};
 
 use crate::geometry::Horizontal;
 use crate::output::cf::{file_names, Product, StepProducts, Values};
-use crate::output::store::{read_level, read_values};
+use crate::output::store::{read_level, read_values, times};
 use crate::output::variables::{PVU, PV_UNITS};
 
 /// A step's variables, from its file or from its products.
@@ -247,16 +247,4 @@ fn geography(f: &netcdf::File) -> Option<Geography> {
         _ => return None,
     };
     Some((lat, lon, periodic, radius))
-}
-
-/// Reference and valid time of a step file ("hours since" units of `time`).
-fn times(f: &netcdf::File) -> Option<(NaiveDateTime, NaiveDateTime)> {
-    let v = f.variable("time")?;
-    let since = text(&v, "units")?.strip_prefix("hours since ")?.to_string();
-    let reference = NaiveDateTime::parse_from_str(&since, "%Y-%m-%d %H:%M:%S").ok()?;
-    let hours: f64 = v.get_value(0).ok()?;
-    Some((
-        reference,
-        reference + TimeDelta::try_seconds((hours * 3600.0).round() as i64)?,
-    ))
 }

@@ -43,7 +43,7 @@ fn int_attr(f: &netcdf::File, name: &str) -> Option<i64> {
 
 /// Reference and valid time of a file written by leeward: from its `time`
 /// units ("hours since REF") and value.
-fn times(f: &netcdf::File) -> Option<(NaiveDateTime, NaiveDateTime)> {
+pub fn times(f: &netcdf::File) -> Option<(NaiveDateTime, NaiveDateTime)> {
     let v = f.variable("time")?;
     let units = match v.attribute("units")?.value().ok()? {
         netcdf::AttributeValue::Str(s) => s,

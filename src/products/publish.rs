@@ -161,12 +161,13 @@ pub(super) fn finish(
     );
     let t_write = Instant::now();
     let tracks = p.cfg.products.cyclones && now.mslp.is_some();
-    let (written, centres) = write_finding_centres(p.cfg, tracks, dir, &name, &products);
+    let set = crate::cyclones::cycle::settings(&p.cfg.cyclones).0;
+    let (written, centres) = write_finding_centres(tracks.then_some(&set), dir, &name, &products);
     rep.write_seconds = t_write.elapsed().as_secs_f64() + pack_seconds;
     match written {
         Ok(path) => {
             if let Some(c) = centres {
-                keep_centres(p, &path, &name, &c);
+                keep_centres(p, &path, &name, &set, &c);
             }
             let after = After {
                 run: &run,
@@ -191,12 +192,11 @@ pub(super) fn finish(
     rep
 }
 
-/// Write the step's file; with `tracks`, find its cyclone centres from the
-/// products on a thread of their own while it is written (the writer uses
+/// Write the step's file; with cyclone settings (`tracks`), find its centres from
+/// the products on a thread of their own while it is written (the writer uses
 /// one core), so that the tracks made after it need not read it back.
 fn write_finding_centres(
-    cfg: &crate::config::Config,
-    tracks: bool,
+    tracks: Option<&crate::cyclones::read::Settings>,
     dir: &Path,
     name: &str,
     products: &StepProducts,
@@ -204,11 +204,10 @@ fn write_finding_centres(
     Result<PathBuf, crate::output::cf::OutputError>,
     Option<crate::cyclones::read::StepCentres>,
 ) {
-    let set = crate::cyclones::cycle::settings(&cfg.cyclones).0;
     let path = dir.join(name);
     std::thread::scope(|sc| {
-        let centres =
-            tracks.then(|| sc.spawn(|| crate::cyclones::read::made_centres(products, &path, &set)));
+        let centres = tracks
+            .map(|set| sc.spawn(|| crate::cyclones::read::made_centres(products, &path, set)));
         let written = write_step(dir, name, products);
         let centres = centres.and_then(|h| h.join().ok()).and_then(Result::ok);
         (written, centres)
@@ -222,16 +221,16 @@ fn keep_centres(
     p: &Publishing<'_>,
     path: &Path,
     name: &str,
+    set: &crate::cyclones::read::Settings,
     c: &crate::cyclones::read::StepCentres,
 ) {
     use crate::cyclones::{memo, read};
-    let set = crate::cyclones::cycle::settings(&p.cfg.cyclones).0;
     if p.out.stage.is_none() {
-        read::remember_written(path, &set, c);
+        read::remember_written(path, set, c);
         return;
     }
-    read::check_made(path, &set, c);
-    if let Err(e) = memo::write_made(path, name, &set, c) {
+    read::check_made(path, set, c);
+    if let Err(e) = memo::write_made(path, name, set, c) {
         warn!(file = %path.display(), error = %e, "centres of the step not kept for its tracks");
     }
 }
