@@ -294,39 +294,61 @@ pub fn stability_at(
 /// side.
 pub fn on_surfaces(field: ArrayView3<f32>, s: &Surfaces) -> Array3<f32> {
     let mut out = Array3::from_elem(s.upper.dim(), f32::NAN);
-    let nz = field.dim().0;
     Zip::indexed(&mut out)
         .and(&s.upper)
         .and(&s.lower)
         .and(&s.weight)
         .and(&s.pressure)
         .par_for_each(|(_, j, i), o, &u, &l, &w, &ps| {
-            if u < 0 || l < 0 {
-                return;
-            }
-            let (u, l) = (u as usize, l as usize);
-            let (fu, fl) = (f64::from(field[(u, j, i)]), f64::from(field[(l, j, i)]));
-            let between = (u + 1..l).any(|k| field[(k, j, i)].is_finite());
-            *o = if fu.is_finite() && fl.is_finite() && !between {
-                (fl + f64::from(w) * (fu - fl)) as f32
-            } else {
-                let x = f64::from(ps).ln();
-                let above = (0..nz)
-                    .rev()
-                    .find(|&k| s.ln_p[k] <= x && field[(k, j, i)].is_finite());
-                let below = (0..nz).find(|&k| s.ln_p[k] >= x && field[(k, j, i)].is_finite());
-                match (above, below) {
-                    (Some(a), Some(b)) if a == b => field[(a, j, i)],
-                    (Some(a), Some(b)) => {
-                        let t = (x - s.ln_p[b]) / (s.ln_p[a] - s.ln_p[b]);
-                        let (fa, fb) = (f64::from(field[(a, j, i)]), f64::from(field[(b, j, i)]));
-                        (fb + t * (fa - fb)) as f32
-                    }
-                    _ => f32::NAN,
-                }
-            };
+            *o = on_surface_at(field, &s.ln_p, (u, l, w, ps), (j, i));
         });
     out
+}
+
+/// Surface `k` of [`on_surfaces`] into `out` (rows, columns).
+pub fn on_surface(field: ArrayView3<f32>, s: &Surfaces, k: usize, out: &mut Array2<f32>) {
+    Zip::indexed(out)
+        .and(s.upper.index_axis(Axis(0), k))
+        .and(s.lower.index_axis(Axis(0), k))
+        .and(s.weight.index_axis(Axis(0), k))
+        .and(s.pressure.index_axis(Axis(0), k))
+        .for_each(|(j, i), o, &u, &l, &w, &ps| {
+            *o = on_surface_at(field, &s.ln_p, (u, l, w, ps), (j, i));
+        });
+}
+
+/// [`on_surfaces`] at one point (row `j`, column `i`) of a surface, from where
+/// the surface lies there: its bracketing levels, weight and pressure.
+fn on_surface_at(
+    field: ArrayView3<f32>,
+    ln_p: &[f64],
+    (u, l, w, ps): (i16, i16, f32, f32),
+    (j, i): (usize, usize),
+) -> f32 {
+    if u < 0 || l < 0 {
+        return f32::NAN;
+    }
+    let (u, l) = (u as usize, l as usize);
+    let (fu, fl) = (f64::from(field[(u, j, i)]), f64::from(field[(l, j, i)]));
+    let between = (u + 1..l).any(|k| field[(k, j, i)].is_finite());
+    if fu.is_finite() && fl.is_finite() && !between {
+        return (fl + f64::from(w) * (fu - fl)) as f32;
+    }
+    let x = f64::from(ps).ln();
+    let nz = field.dim().0;
+    let above = (0..nz)
+        .rev()
+        .find(|&k| ln_p[k] <= x && field[(k, j, i)].is_finite());
+    let below = (0..nz).find(|&k| ln_p[k] >= x && field[(k, j, i)].is_finite());
+    match (above, below) {
+        (Some(a), Some(b)) if a == b => field[(a, j, i)],
+        (Some(a), Some(b)) => {
+            let t = (x - ln_p[b]) / (ln_p[a] - ln_p[b]);
+            let (fa, fb) = (f64::from(field[(a, j, i)]), f64::from(field[(b, j, i)]));
+            (fb + t * (fa - fb)) as f32
+        }
+        _ => f32::NAN,
+    }
 }
 
 /// Temperature on an isentropic surface from its pressure: T = theta (p / p0)^kappa (Poisson's equation).

@@ -194,10 +194,15 @@ pub enum Values {
 impl Product {
     /// A product with no further attributes.
     pub fn new(spec: VarSpec, vertical: Vertical, data: Array3<f32>) -> Self {
+        Product::of(spec, vertical, Values::Plain(data))
+    }
+
+    /// A product of `values`, plain or packed, with no further attributes.
+    pub fn of(spec: VarSpec, vertical: Vertical, values: Values) -> Self {
         Product {
             spec,
             vertical,
-            values: Values::Plain(data),
+            values,
             notes: Vec::new(),
             numbers: Vec::new(),
             layer: None,

@@ -216,6 +216,8 @@ fn deflate_zlib(data: &[u8], level: u32, out: &mut Vec<u8>) -> Vec<u8> {
 }
 
 thread_local! {
+    /// Each thread's level buffers for [`Packed::made`], kept between levels.
+    static LEVELS: std::cell::RefCell<Vec<Vec<f32>>> = const { std::cell::RefCell::new(Vec::new()) };
     /// Each thread's compressor and its level, made once rather than for every chunk.
     static COMPRESSOR: std::cell::RefCell<Option<(u32, libdeflater::Compressor)>> =
         const { std::cell::RefCell::new(None) };
@@ -233,6 +235,51 @@ impl Packed {
             chunks,
             valid: valid.iter().sum(),
         }
+    }
+
+    /// `N` products of `shape` made and packed level by level, levels in parallel:
+    /// `make(k, levels)` writes level `k` of each product into `levels` (NaN
+    /// before it starts, so a point it leaves is missing), a buffer of the thread's
+    /// own that is packed at once (`nsb[n]` bits for product `n`) while it is
+    /// still in cache. The products' whole arrays never exist. The chunks are those
+    /// [`Packed::new`] makes of the same values.
+    pub fn made<const N: usize>(
+        shape: (usize, usize, usize),
+        nsb: [u32; N],
+        level: u32,
+        make: impl Fn(usize, &mut [Array2<f32>; N]) + Sync,
+    ) -> [Packed; N] {
+        let (nz, ny, nx) = shape;
+        let per_level: Vec<[(Vec<u8>, usize); N]> = (0..nz)
+            .into_par_iter()
+            .map(|k| {
+                // Taken, not borrowed: a task run here while `make` waits finds none and makes its own.
+                let mut bufs = LEVELS.with(|b| b.take());
+                let mut levels = std::array::from_fn(|_| {
+                    let mut v = bufs.pop().unwrap_or_default();
+                    v.clear();
+                    v.resize(ny * nx, f32::NAN);
+                    Array2::from_shape_vec((ny, nx), v).unwrap_or_else(|_| Array2::zeros((ny, nx)))
+                });
+                make(k, &mut levels);
+                let packed = std::array::from_fn(|n| pack_level(levels[n].view(), nsb[n], level));
+                bufs.extend(levels.into_iter().map(|a| a.into_raw_vec_and_offset().0));
+                LEVELS.with(|b| b.replace(bufs));
+                packed
+            })
+            .collect();
+        let mut out: [Packed; N] = std::array::from_fn(|_| Packed {
+            shape,
+            chunks: Vec::with_capacity(nz),
+            valid: 0,
+        });
+        for packed in per_level {
+            for (o, (chunk, valid)) in out.iter_mut().zip(packed) {
+                o.chunks.push(chunk);
+                o.valid += valid;
+            }
+        }
+        out
     }
 
     /// The chunks of `levels` only, in that order.
@@ -588,6 +635,42 @@ mod tests {
             );
             assert_eq!((z.total_in(), z.total_out()), (c.len() as u64, 7 * 11 * 4));
             assert_eq!(c.capacity(), c.len());
+        }
+    }
+    #[test]
+    fn products_made_level_by_level_pack_as_the_whole_array_would() {
+        // Two products made together, a level at a time: the chunks are those of
+        // Packed::new on the whole arrays, and a point `make` leaves is missing
+        // even where the thread's buffer held a value from an earlier level or call.
+        let a = Array3::from_shape_fn((5, 9, 13), |(k, j, i)| {
+            if (k + 2 * j + i) % 11 == 0 {
+                f32::NAN
+            } else {
+                250.0 + k as f32 * 7.3 + j as f32 * 0.41 - i as f32 * 0.017
+            }
+        });
+        let b = a.mapv(|x| x * 1e-3 + 0.5);
+        let [pa, pb] = Packed::made(a.dim(), [14, 9], 1, |k, [la, lb]| {
+            la.assign(&a.index_axis(Axis(0), k));
+            lb.assign(&b.index_axis(Axis(0), k));
+        });
+        assert_eq!(pa.chunks, Packed::new(&a, 14, 1).chunks);
+        assert_eq!(pb.chunks, Packed::new(&b, 9, 1).chunks);
+        assert_eq!(pa.valid, a.iter().filter(|x| x.is_finite()).count());
+        // Only the first row written: the rest of every level must come back missing.
+        let [first_rows] = Packed::made(a.dim(), [14], 1, |k, [l]| {
+            l.row_mut(0).assign(&a.slice(ndarray::s![k, 0, ..]));
+        });
+        let back = first_rows.unpack();
+        for ((_, j, _), x) in back.indexed_iter() {
+            assert!(
+                j == 0 || x.is_nan(),
+                "a point left by make is not missing: {x}"
+            );
+        }
+        let row0 = back.index_axis(Axis(1), 0);
+        for (x, y) in row0.iter().zip(a.index_axis(Axis(1), 0)) {
+            assert!(x.is_nan() && y.is_nan() || x.to_bits() == bit_round(*y, 14).to_bits());
         }
     }
 }

@@ -47,65 +47,27 @@ pub(super) fn products(
     winds: &Winds,
     seal: &Sealer<'_>,
 ) -> Vec<Product> {
-    let (_, ny, nx) = s.theta.dim();
     let mut surf = isentropic::surfaces(s.theta.view(), s.p, s.targets);
     for (k, g) in surf.gaps.iter().enumerate() {
         tracing::debug!(cycle = %s.cycle, step = s.lead, theta = s.targets[k], below = g.below, above = g.above, unstable = g.unstable, "isentropic surface gaps");
     }
-    let ns = s.targets.len();
     // Winds and PV first; each product is packed as soon as it is made.
-    let mut made: Vec<Product> = Vec::new();
-    let mut pv_prod = None;
-    if let Some(((u, v), (ug, vg))) = s.winds {
-        let ugs = isentropic::on_surfaces(ug.view(), &surf);
-        let vgs = isentropic::on_surfaces(vg.view(), &surf);
-        let mut pv_s = Array3::from_elem((ns, ny, nx), f32::NAN);
-        pv_s.axis_iter_mut(Axis(0))
-            .into_par_iter()
-            .enumerate()
-            .for_each(|(k, mut out)| {
-                let z = plane.vorticity(
-                    ugs.index_axis(Axis(0), k).mapv(f64::from).view(),
-                    vgs.index_axis(Axis(0), k).mapv(f64::from).view(),
-                );
-                let pv = isentropic::isentropic_pv(
-                    z.view(),
-                    plane.f.view(),
-                    surf.dtheta_dp.index_axis(Axis(0), k),
-                );
-                out.zip_mut_with(&pv, |o, &x| *o = x as f32);
-            });
-        // Winds as the input gives them: the same arrays when no turning was needed.
-        let (us, vs) = if winds.turned.is_none() {
-            (ugs, vgs)
-        } else {
-            (
-                isentropic::on_surfaces(u.view(), &surf),
-                isentropic::on_surfaces(v.view(), &surf),
-            )
-        };
-        let wind =
-            |name, spec| variables::wind(name, spec, "wind component on isentropic surfaces");
-        made.push(seal.sealed(wind("isen_u", winds.u_spec), Vertical::Theta, us));
-        made.push(seal.sealed(wind("isen_v", winds.v_spec), Vertical::Theta, vs));
-        pv_prod = Some(seal.sealed(variables::ISEN_PV, Vertical::Theta, pv_s));
-    }
+    let (mut made, pv_prod) = winds_and_pv(s, &surf, plane, winds, seal);
     let z_s = s.z.map(|z| isentropic::on_surfaces(z.view(), &surf));
-    let rh_s = s.rh.map(|r| isentropic::on_surfaces(r.view(), &surf));
-    let p_s = std::mem::take(&mut surf.pressure);
-    drop(surf);
-    let mut t_s = Array3::from_elem((ns, ny, nx), f32::NAN);
+    let mut t_s = Array3::from_elem(surf.pressure.dim(), f32::NAN);
     ndarray::Zip::indexed(&mut t_s)
-        .and(&p_s)
+        .and(&surf.pressure)
         .par_for_each(|(k, _, _), t, &p| {
             *t = isentropic::temperature_on_surface(s.targets[k], f64::from(p)) as f32;
         });
-    if let Some(rh_s) = rh_s {
-        made.extend(synoptic::isentropic_humidity(rh_s, &p_s, &t_s).map(|p| seal.seal(p)));
+    if let Some(rh) = s.rh {
+        made.extend(synoptic::isentropic_humidity(rh, &surf, &t_s, seal));
     }
+    let p_s = std::mem::take(&mut surf.pressure);
+    drop(surf);
     made.push(seal.sealed(variables::ISEN_P, Vertical::Theta, p_s));
     if let Some(z_s) = z_s {
-        let mut m = Array3::from_elem((ns, ny, nx), f32::NAN);
+        let mut m = Array3::from_elem(z_s.dim(), f32::NAN);
         ndarray::Zip::from(&mut m)
             .and(&t_s)
             .and(&z_s)
@@ -120,4 +82,54 @@ pub(super) fn products(
         made.extend(pv_prod);
     }
     made
+}
+
+/// The winds on the surfaces (as the input gives them), packed, and the PV on
+/// them, packed, when the step has winds.
+fn winds_and_pv(
+    s: &Sources<'_>,
+    surf: &isentropic::Surfaces,
+    plane: &Plane,
+    winds: &Winds,
+    seal: &Sealer<'_>,
+) -> (Vec<Product>, Option<Product>) {
+    let Some(((u, v), (ug, vg))) = s.winds else {
+        return (Vec::new(), None);
+    };
+    let ugs = isentropic::on_surfaces(ug.view(), surf);
+    let vgs = isentropic::on_surfaces(vg.view(), surf);
+    let mut pv_s = Array3::from_elem(ugs.dim(), f32::NAN);
+    pv_s.axis_iter_mut(Axis(0))
+        .into_par_iter()
+        .enumerate()
+        .for_each(|(k, mut out)| {
+            let z = plane.vorticity(
+                ugs.index_axis(Axis(0), k).mapv(f64::from).view(),
+                vgs.index_axis(Axis(0), k).mapv(f64::from).view(),
+            );
+            let pv = isentropic::isentropic_pv(
+                z.view(),
+                plane.f.view(),
+                surf.dtheta_dp.index_axis(Axis(0), k),
+            );
+            out.zip_mut_with(&pv, |o, &x| *o = x as f32);
+        });
+    // Winds as the input gives them: the same arrays when no turning was needed.
+    let (us, vs) = if winds.turned.is_none() {
+        (ugs, vgs)
+    } else {
+        (
+            isentropic::on_surfaces(u.view(), surf),
+            isentropic::on_surfaces(v.view(), surf),
+        )
+    };
+    let wind = |name, spec| variables::wind(name, spec, "wind component on isentropic surfaces");
+    let made = vec![
+        seal.sealed(wind("isen_u", winds.u_spec), Vertical::Theta, us),
+        seal.sealed(wind("isen_v", winds.v_spec), Vertical::Theta, vs),
+    ];
+    (
+        made,
+        Some(seal.sealed(variables::ISEN_PV, Vertical::Theta, pv_s)),
+    )
 }

@@ -376,7 +376,7 @@ fn isobaric<'c>(
     };
     if pr.theta_e {
         let top = cx.cfg.cyclones.theta_e_top_hpa;
-        fields.extend(synoptic::theta_e(&syn, top).map(|p| seal.seal(p)));
+        fields.extend(synoptic::theta_e(&syn, top, seal));
     }
     let both = needs.have_t && needs.have_w;
     synoptic::eady_and_steering(&syn, cx.cfg, both, &mut surface, &mut rep.missing);

@@ -10,12 +10,14 @@
 
 use std::borrow::Cow;
 
-use ndarray::{s, Array2, Array3, Axis, Zip};
+use ndarray::{Array2, Array3, ArrayView2, Axis, Zip};
 use rayon::prelude::*;
 
-use crate::diagnostics::{baroclinic, moisture, sea_level, thickness};
+use crate::diagnostics::{baroclinic, isentropic, moisture, sea_level, thickness};
 use crate::output::cf::{Product, Vertical};
 use crate::output::variables;
+
+use super::seal::Sealer;
 
 /// The step's isobaric stacks the fields are made from.
 pub(super) struct Stacks<'a> {
@@ -112,30 +114,47 @@ pub(super) fn eady_and_steering(
 
 /// Equivalent potential temperature (Bolton 1980) on the levels at and below
 /// `top_hpa` (0: every level); missing above it, where the air holds so little
-/// vapour that theta-e is theta (docs/output.md).
-pub(super) fn theta_e(s: &Stacks<'_>, top_hpa: f64) -> Option<Product> {
+/// vapour that theta-e is theta (docs/output.md). Made and packed level by level.
+pub(super) fn theta_e(s: &Stacks<'_>, top_hpa: f64, seal: &Sealer<'_>) -> Option<Product> {
     let (t, rh) = (s.t?, s.rh?);
-    let (_, ny, nx) = t.dim();
-    let mut out = Array3::from_elem(t.dim(), f32::NAN);
-    let rows = out.as_slice_mut()?.par_chunks_mut(nx).enumerate();
-    rows.for_each(|(row, o)| {
-        let (k, j) = (row / ny, row % ny);
-        if s.p[k] < top_hpa * 100.0 {
-            return;
-        }
-        let level = moisture::IsobaricLevel::new(s.p[k]);
-        let (t, rh) = (t.slice(s![k, j, ..]), rh.slice(s![k, j, ..]));
-        match (t.as_slice(), rh.as_slice()) {
-            (Some(t), Some(rh)) => moisture::theta_e_from_rh_row(t, rh, level, o),
-            _ => {
-                let (t, rh) = (t.to_vec(), rh.to_vec());
-                moisture::theta_e_from_rh_row(&t, &rh, level, o);
-            }
+    let spec = [variables::THETA_E];
+    let made = seal.made(spec, Vertical::Pressure, t.dim(), |k, [out]| {
+        if s.p[k] >= top_hpa * 100.0 {
+            let (t, rh) = (t.index_axis(Axis(0), k), rh.index_axis(Axis(0), k));
+            theta_e_level(t, rh, moisture::IsobaricLevel::new(s.p[k]), out);
         }
     });
-    let mut prod = Product::new(variables::THETA_E, Vertical::Pressure, out);
+    let mut prod = made.into_iter().next()?;
     prod.numbers.push(("leeward_top_hpa", top_hpa));
     Some(prod)
+}
+
+/// A row's values as one slice: borrowed when they lie in order, else copied.
+fn slice<'a>(a: ndarray::ArrayView1<'a, f32>) -> Cow<'a, [f32]> {
+    match a.to_slice() {
+        Some(v) => Cow::Borrowed(v),
+        None => Cow::Owned(a.to_vec()),
+    }
+}
+
+/// theta_e of one level, row by row.
+fn theta_e_level(
+    t: ArrayView2<'_, f32>,
+    rh: ArrayView2<'_, f32>,
+    level: moisture::IsobaricLevel,
+    out: &mut Array2<f32>,
+) {
+    for ((t, rh), mut o) in t.rows().into_iter().zip(rh.rows()).zip(out.rows_mut()) {
+        let (t, rh) = (slice(t), slice(rh));
+        match o.as_slice_mut() {
+            Some(o) => moisture::theta_e_from_rh_row(&t, &rh, level, o),
+            None => {
+                let mut row = vec![f32::NAN; o.len()];
+                moisture::theta_e_from_rh_row(&t, &rh, level, &mut row);
+                o.assign(&ndarray::ArrayView1::from(&row));
+            }
+        }
+    }
 }
 
 /// The Eady growth rate of the layer `l` (hPa), when both its levels are there.
@@ -320,29 +339,30 @@ pub(super) fn orography(oro: &Array2<f32>, scale: f64) -> Product {
     Product::new(variables::OROG, Vertical::Surface, data)
 }
 
-/// Specific and relative humidity on isentropic surfaces, from the isobaric
-/// relative humidity interpolated there (bounded as the input is, where a
-/// linear interpolation of specific humidity would exceed saturation between
-/// levels) and the surfaces' pressure and temperature: q = epsilon e / (p - (1 - epsilon) e),
-/// e = RH e_s(T).
+/// Specific and relative humidity on the isentropic surfaces `surf`, from the
+/// isobaric relative humidity `rh` interpolated there ([`isentropic::on_surface`];
+/// bounded as the input is, where a linear interpolation of specific humidity
+/// would exceed saturation between levels) and the surfaces' pressure and
+/// temperature `t_s`: q = epsilon e / (p - (1 - epsilon) e), e = RH e_s(T).
+/// Made and packed surface by surface.
 pub(super) fn isentropic_humidity(
-    rh_s: Array3<f32>,
-    p_s: &Array3<f32>,
+    rh: &Array3<f32>,
+    surf: &isentropic::Surfaces,
     t_s: &Array3<f32>,
-) -> [Product; 2] {
-    let mut q = Array3::from_elem(rh_s.dim(), f32::NAN);
-    Zip::from(&mut q)
-        .and(&rh_s)
-        .and(p_s)
-        .and(t_s)
-        .par_for_each(|q, &r, &p, &t| {
-            let e = moisture::vapour_pressure_from_rh(f64::from(r), f64::from(t));
-            *q = moisture::specific_humidity(e, f64::from(p)) as f32;
-        });
-    [
-        Product::new(variables::ISEN_Q, Vertical::Theta, q),
-        Product::new(variables::ISEN_RH, Vertical::Theta, rh_s),
-    ]
+    seal: &Sealer<'_>,
+) -> Vec<Product> {
+    let specs = [variables::ISEN_Q, variables::ISEN_RH];
+    seal.made(specs, Vertical::Theta, t_s.dim(), |k, [q, rh_k]| {
+        isentropic::on_surface(rh.view(), surf, k, rh_k);
+        Zip::from(q)
+            .and(&*rh_k)
+            .and(surf.pressure.index_axis(Axis(0), k))
+            .and(t_s.index_axis(Axis(0), k))
+            .for_each(|q, &r, &p, &t| {
+                let e = moisture::vapour_pressure_from_rh(f64::from(r), f64::from(t));
+                *q = moisture::specific_humidity(e, f64::from(p)) as f32;
+            });
+    })
 }
 
 #[cfg(test)]
@@ -392,11 +412,20 @@ mod tests {
             f: &f,
             rotation: None,
         };
-        for top in [300.0, 0.0] {
-            let prod = theta_e(&s, top).unwrap();
-            let Values::Plain(out) = &prod.values else {
-                panic!("theta_e not plain")
+        // Made whole (deflate off) and made and packed level by level (deflate on: the
+        // values bit-rounded as the file keeps them).
+        for (top, deflate) in [(300.0, 0), (0.0, 0), (300.0, 1), (0.0, 1)] {
+            let output = crate::config::settings::Output {
+                deflate_level: deflate,
+                ..Default::default()
             };
+            let seal = Sealer::new(&output);
+            let prod = theta_e(&s, top, &seal).unwrap();
+            let (out, bits) = match &prod.values {
+                Values::Plain(out) => (out.clone(), 23),
+                Values::Packed(p) => (p.unpack(), seal.kept.bits("theta_e")),
+            };
+            assert_eq!(deflate == 0, bits == 23, "plain only with deflate off");
             for ((k, j, i), &o) in out.indexed_iter() {
                 if p[k] < top * 100.0 {
                     assert!(o.is_nan(), "{} hPa above the top {top}: {o}", p[k] / 100.0);
@@ -407,6 +436,7 @@ mod tests {
                         f64::from(rh[(k, j, i)]),
                         level,
                     ) as f32;
+                    let want = crate::output::pack::bit_round(want, bits);
                     assert_eq!(
                         o.to_bits(),
                         want.to_bits(),
