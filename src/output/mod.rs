@@ -9,6 +9,7 @@ pub mod pack;
 pub mod page;
 pub mod precision;
 pub mod quicklook;
+pub mod runs;
 pub mod scales;
 pub mod store;
 pub mod variables;

@@ -183,22 +183,35 @@ impl Rounding {
     }
 }
 
-/// A zlib-format (RFC 1950) deflate stream of `data` at `level` (1-9), the
-/// format of HDF5's deflate filter. libdeflate: at level 1 as fast as zlib's
-/// fastest mode here and about a quarter smaller on shuffled bit-rounded floats
-/// (measured: 161 MB/s and ratio 3.91, against 162 MB/s and 2.97; docs/performance.md).
-/// `out` is the room for it, kept by the caller; the stream is returned in a
-/// vector of its own length.
+/// A zlib-format (RFC 1950) deflate stream of `data` (a shuffled level: four
+/// byte planes) at `level` (1-9), the format of HDF5's deflate filter. libdeflate:
+/// at level 1 as fast as zlib's fastest mode here and about a quarter smaller on
+/// shuffled bit-rounded floats (measured: 161 MB/s and ratio 3.91, against 162 MB/s
+/// and 2.97; docs/performance.md). Leading planes of one repeated byte (the low
+/// bytes cleared by bit rounding; all four in a level with no value) are written
+/// as run blocks instead ([`super::runs`]), which costs next to nothing where
+/// libdeflate spends as long as on data. `out` is the room for the compressed
+/// bytes, kept by the caller; the stream is returned in a vector of its own length.
 fn deflate_zlib(data: &[u8], level: u32, out: &mut Vec<u8>) -> Vec<u8> {
     let level = level.clamp(1, 9);
-    let stream = COMPRESSOR.with(|c| {
-        let mut c = c.try_borrow_mut().ok()?;
-        if c.as_ref().is_none_or(|(l, _)| *l != level) {
-            let lvl = libdeflater::CompressionLvl::new(level as i32)
-                .unwrap_or_else(|_| libdeflater::CompressionLvl::fastest());
-            *c = Some((level, libdeflater::Compressor::new(lvl)));
+    let raw_rest = |rest: &[u8], stream: &mut Vec<u8>| {
+        let n = with_compressor(level, |c| {
+            let bound = c.deflate_compress_bound(rest.len());
+            if out.len() < bound {
+                out.resize(bound, 0);
+            }
+            c.deflate_compress(rest, &mut out[..bound]).ok()
+        })??;
+        stream.extend_from_slice(&out[..n]);
+        Some(())
+    };
+    if data.len() / 4 >= MIN_RUN_PLANE {
+        if let Some(mut stream) = super::runs::zlib_with_runs(data, 4, raw_rest) {
+            stream.shrink_to_fit();
+            return stream;
         }
-        let (_, c) = c.as_mut()?;
+    }
+    let stream = with_compressor(level, |c| {
         let bound = c.zlib_compress_bound(data.len());
         // libdeflate writes what it returns: room already this long is not cleared.
         if out.len() < bound {
@@ -206,12 +219,32 @@ fn deflate_zlib(data: &[u8], level: u32, out: &mut Vec<u8>) -> Vec<u8> {
         }
         let n = c.zlib_compress(data, &mut out[..bound]).ok()?;
         Some(out[..n].to_vec())
-    });
+    })
+    .flatten();
     // The bound makes a failure unreachable; a stream by zlib is still correct.
     stream.unwrap_or_else(|| {
         let mut z = flate2::write::ZlibEncoder::new(Vec::new(), flate2::Compression::new(level));
         let _ = z.write_all(data);
         z.finish().unwrap_or_default()
+    })
+}
+
+/// Planes shorter than this are left to libdeflate whole: a run block's
+/// header (about 40 bytes) is then no saving.
+const MIN_RUN_PLANE: usize = 4096;
+
+/// `f` with the thread's compressor at `level`, made once rather than for every
+/// chunk; `None` if the compressor is in use (nothing here compresses within a compression).
+fn with_compressor<T>(level: u32, f: impl FnOnce(&mut libdeflater::Compressor) -> T) -> Option<T> {
+    COMPRESSOR.with(|c| {
+        let mut c = c.try_borrow_mut().ok()?;
+        if c.as_ref().is_none_or(|(l, _)| *l != level) {
+            let lvl = libdeflater::CompressionLvl::new(level as i32)
+                .unwrap_or_else(|_| libdeflater::CompressionLvl::fastest());
+            *c = Some((level, libdeflater::Compressor::new(lvl)));
+        }
+        let (_, c) = c.as_mut()?;
+        Some(f(c))
     })
 }
 
@@ -637,6 +670,49 @@ mod tests {
             assert_eq!(c.capacity(), c.len());
         }
     }
+    #[test]
+    fn levels_with_planes_of_one_byte_read_back_through_libnetcdf() {
+        // Levels of 6,300 points: at 7 kept bits the two low byte planes are zero
+        // (run blocks, then libdeflate), a level with no value is four planes of
+        // one byte each (run blocks alone), at 23 bits no plane is (libdeflate
+        // alone). libnetcdf's inflate (zlib, through HDF5) must give every value back.
+        let dir = std::env::temp_dir().join(format!("leeward-runs-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let a = Array3::from_shape_fn((3, 70, 90), |(k, j, i)| match k {
+            1 => f32::NAN,
+            _ if (j * 90 + i) % 17 == 0 => f32::NAN,
+            _ => 287.5 + k as f32 * 3.3 - j as f32 * 0.173 + (i as f32 * 0.05).sin(),
+        });
+        let (seven, full) = (Packed::new(&a, 7, 1), Packed::new(&a, 23, 1));
+        // The level with no value: four run blocks and nothing else.
+        let mut planes = Vec::new();
+        rounded_planes(a.index_axis(Axis(0), 1), 7, &mut planes);
+        let runs = super::super::runs::zlib_with_runs(&planes, 4, |_, _| None);
+        assert_eq!(Some(&seven.chunks[1]), runs.as_ref());
+        let dims = [("time", 1), ("z", 3), ("y", 70), ("x", 90)];
+        let path = declared(&dir, "seven", &dims);
+        write_chunks(&path, &[("seven", &seven)]).unwrap();
+        let path_full = declared(&dir, "full", &dims);
+        write_chunks(&path_full, &[("full", &full)]).unwrap();
+        for (path, name, nsb) in [(&path, "seven", 7), (&path_full, "full", 23)] {
+            let f = netcdf::open(path).unwrap();
+            let got: Vec<f32> = f
+                .variable(name)
+                .unwrap()
+                .get_values((0, .., .., ..))
+                .unwrap();
+            for (x, y) in a.iter().zip(&got) {
+                let want = if x.is_finite() {
+                    bit_round(*x, nsb)
+                } else {
+                    FILL_F32
+                };
+                assert_eq!(want.to_bits(), y.to_bits(), "{name}: {x} read as {y}");
+            }
+        }
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
     #[test]
     fn products_made_level_by_level_pack_as_the_whole_array_would() {
         // Two products made together, a level at a time: the chunks are those of
