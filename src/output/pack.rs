@@ -670,6 +670,7 @@ mod tests {
             assert_eq!(c.capacity(), c.len());
         }
     }
+
     #[test]
     fn levels_with_planes_of_one_byte_read_back_through_libnetcdf() {
         // Levels of 6,300 points: at 7 kept bits the two low byte planes are zero

@@ -72,13 +72,15 @@ const BYTE: (u32, u32) = (0b10, 2);
 const END: (u32, u32) = (0b11, 2);
 const DISTANCE_1: (u32, u32) = (0b0, 1);
 
+/// The code of code-length symbol `sym` (one of [`CL_CODES`]).
+fn cl(bits: &mut Bits, sym: usize) {
+    if let Some(&(_, len, code)) = CL_CODES.iter().find(|c| c.0 == sym) {
+        bits.code(code, len);
+    }
+}
+
 /// Write a code length sequence's `zeros` zero lengths with the run symbols 17 and 18.
 fn zero_lengths(bits: &mut Bits, mut zeros: usize) {
-    let cl = |bits: &mut Bits, sym: usize| {
-        if let Some(&(_, len, code)) = CL_CODES.iter().find(|c| c.0 == sym) {
-            bits.code(code, len);
-        }
-    };
     while zeros > 0 {
         if zeros >= 11 {
             let m = zeros.min(138);
@@ -112,11 +114,6 @@ fn run_block_header(bits: &mut Bits, byte: u8, last: bool) {
         let len = CL_CODES.iter().find(|c| c.0 == sym).map_or(0, |c| c.1);
         bits.put(len, 3);
     }
-    let cl = |bits: &mut Bits, sym: usize| {
-        if let Some(&(_, len, code)) = CL_CODES.iter().find(|c| c.0 == sym) {
-            bits.code(code, len);
-        }
-    };
     // Literal/length code lengths 0 to 285, then the one distance code length.
     let b = usize::from(byte);
     zero_lengths(bits, b);

@@ -4,7 +4,7 @@
 //! core) as soon as it is made, or once nothing else needs its plain values; only
 //! compressed bytes wait for the writer. The seconds spent count as writing.
 
-use std::sync::atomic::{AtomicU64, Ordering};
+use std::cell::Cell;
 use std::time::Instant;
 
 use ndarray::{Array2, Array3, Axis};
@@ -20,8 +20,7 @@ use crate::output::variables;
 pub(super) struct Sealer<'a> {
     output: &'a Output,
     pub kept: KeptBits,
-    /// Seconds spent packing, as the bits of an f64 (products are packed on several threads at once).
-    seconds: AtomicU64,
+    seconds: Cell<f64>,
 }
 
 impl<'a> Sealer<'a> {
@@ -29,22 +28,19 @@ impl<'a> Sealer<'a> {
         Sealer {
             output,
             kept: output.kept_bits(),
-            seconds: AtomicU64::new(0f64.to_bits()),
+            seconds: Cell::new(0.0),
         }
     }
 
     /// Seconds spent packing so far.
     pub fn seconds(&self) -> f64 {
-        f64::from_bits(self.seconds.load(Ordering::Relaxed))
+        self.seconds.get()
     }
 
     /// Count the seconds since `t` as spent packing.
     fn count(&self, t: Instant) {
-        let add = |b: u64| Some((f64::from_bits(b) + t.elapsed().as_secs_f64()).to_bits());
-        // The closure always gives a value: the update cannot fail.
-        let _ = self
-            .seconds
-            .fetch_update(Ordering::Relaxed, Ordering::Relaxed, add);
+        self.seconds
+            .set(self.seconds.get() + t.elapsed().as_secs_f64());
     }
 
     /// `p` in SI units and packed.
