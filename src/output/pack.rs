@@ -292,7 +292,8 @@ impl Packed {
                     let mut v = bufs.pop().unwrap_or_default();
                     v.clear();
                     v.resize(ny * nx, f32::NAN);
-                    Array2::from_shape_vec((ny, nx), v).unwrap_or_else(|_| Array2::zeros((ny, nx)))
+                    Array2::from_shape_vec((ny, nx), v)
+                        .unwrap_or_else(|_| Array2::from_elem((ny, nx), f32::NAN))
                 });
                 make(k, &mut levels);
                 let packed = std::array::from_fn(|n| pack_level(levels[n].view(), nsb[n], level));

@@ -144,16 +144,13 @@ fn theta_e_level(
     level: moisture::IsobaricLevel,
     out: &mut Array2<f32>,
 ) {
-    for ((t, rh), mut o) in t.rows().into_iter().zip(rh.rows()).zip(out.rows_mut()) {
-        let (t, rh) = (slice(t), slice(rh));
-        match o.as_slice_mut() {
-            Some(o) => moisture::theta_e_from_rh_row(&t, &rh, level, o),
-            None => {
-                let mut row = vec![f32::NAN; o.len()];
-                moisture::theta_e_from_rh_row(&t, &rh, level, &mut row);
-                o.assign(&ndarray::ArrayView1::from(&row));
-            }
-        }
+    let nx = out.ncols().max(1);
+    // A level of `Sealer::made` is in standard layout: its rows lie one after another.
+    let Some(out) = out.as_slice_mut() else {
+        return;
+    };
+    for ((t, rh), o) in t.rows().into_iter().zip(rh.rows()).zip(out.chunks_mut(nx)) {
+        moisture::theta_e_from_rh_row(&slice(t), &slice(rh), level, o);
     }
 }
 
