@@ -233,6 +233,15 @@ def test_a_step_whose_jobs_all_fail_is_reported_with_slurms_reason_and_the_log(t
         'max_attempts = 1\nsetup = ["trap \'\' TERM", "echo job-started", "sleep 30"]')).start()
     deliver_renamed(files[0].read_bytes(), tmp_path / "in" / files[0].name)
     job = wait_running(slurm, "lw_demo_20260314T0000Z_000h", 60)
+    # RUNNING says Slurm started the batch script, not that the script has
+    # reached its trap yet: cancelled before it, the job ends at the SIGTERM
+    # and is COMPLETING only for a moment. The line the job echoes after the
+    # trap says it is in place.
+    def job_trapped_term() -> bool:
+        return any("job-started" in log.read_text(errors="replace")
+                   for log in (tmp_path / "out" / "demo" / ".jobs").glob("*/job.log"))
+
+    wait_for(job_trapped_term, 60, f"job {job} past its trap of SIGTERM")
     slurm_cmd(slurm, "scancel", job)
     wait_for(lambda: squeue(slurm).get(job, ("",))[0] == "COMPLETING", 30,
              f"Slurm shows job {job} COMPLETING")
