@@ -28,4 +28,7 @@ cargo fmt --check
 cargo clippy --all-targets --quiet -- -D warnings
 cargo build --quiet
 cargo test --quiet
-LEEWARD_BIN="$(pwd)/target/debug/leeward" "$py" -m pytest -q -rs --durations=30 tests/python
+# The temporary folders of passed tests are removed (about 1.6 GB a run); a failed
+# test's stay under pytest's base temporary folder for a look.
+LEEWARD_BIN="$(pwd)/target/debug/leeward" "$py" -m pytest -q -rs --durations=30 \
+  -o tmp_path_retention_policy=failed tests/python

@@ -265,7 +265,8 @@ mod tests {
 
     #[test]
     fn checksum_of_ranges_is_that_of_the_ranges_joined() {
-        let p = tmp("ranges");
+        let dir = Scratch::new("checksum");
+        let p = dir.join("ranges");
         let data: Vec<u8> = (0..3_000_000u32).map(|i| (i * 7 % 251) as u8).collect();
         std::fs::write(&p, &data).unwrap();
         let f = File::open(&p).unwrap();
@@ -286,19 +287,34 @@ mod tests {
             checksum_ranges(&f, &[(2_999_990, 20)]).is_err(),
             "past the end"
         );
-        let _ = std::fs::remove_file(&p);
     }
 
-    fn tmp(name: &str) -> std::path::PathBuf {
-        let d = std::env::temp_dir().join(format!("leeward-source-{}", std::process::id()));
-        std::fs::create_dir_all(&d).unwrap();
-        d.join(name)
+    /// A folder of one test's own, removed when the test ends, failed or not.
+    struct Scratch(std::path::PathBuf);
+
+    impl Scratch {
+        fn new(test: &str) -> Self {
+            let d =
+                std::env::temp_dir().join(format!("leeward-source-{test}-{}", std::process::id()));
+            std::fs::create_dir_all(&d).unwrap();
+            Scratch(d)
+        }
+
+        fn join(&self, name: &str) -> std::path::PathBuf {
+            self.0.join(name)
+        }
+    }
+
+    impl Drop for Scratch {
+        fn drop(&mut self) {
+            let _ = std::fs::remove_dir_all(&self.0);
+        }
     }
 
     #[test]
     fn fifos_and_directories_are_refused_at_once_by_kind() {
-        let fifo = tmp("pipe.grib2");
-        let _ = std::fs::remove_file(&fifo);
+        let dir = Scratch::new("fifos");
+        let fifo = dir.join("pipe.grib2");
         let c = std::ffi::CString::new(fifo.as_os_str().as_encoded_bytes()).unwrap();
         // SAFETY: mkfifo(3) reads the NUL-terminated path for the duration of the call.
         assert_eq!(unsafe { libc::mkfifo(c.as_ptr(), 0o600) }, 0);
@@ -311,15 +327,14 @@ mod tests {
         assert_eq!(e.to_string(), "a directory, not a regular file");
         let e = open_input(Path::new("/dev/null"), true).err().unwrap();
         assert_eq!(e.to_string(), "a character device, not a regular file");
-        let _ = std::fs::remove_file(&fifo);
     }
 
     #[test]
     fn links_are_refused_when_not_followed() {
-        let target = tmp("target.grib2");
+        let dir = Scratch::new("links");
+        let target = dir.join("target.grib2");
         std::fs::write(&target, b"GRIB").unwrap();
-        let link = tmp("link.grib2");
-        let _ = std::fs::remove_file(&link);
+        let link = dir.join("link.grib2");
         std::os::unix::fs::symlink(&target, &link).unwrap();
         assert_eq!(open_input(&link, true).unwrap().size, 4);
         let e = open_input(&link, false).err().unwrap().to_string();
@@ -328,10 +343,11 @@ mod tests {
 
     #[test]
     fn file_octets_read_and_find_like_memory() {
+        let dir = Scratch::new("octets");
         // A marker across the boundary between two scan chunks.
         let mut data = vec![0u8; SCAN_CHUNK + 100];
         data[SCAN_CHUNK - 2..SCAN_CHUNK + 2].copy_from_slice(b"GRIB");
-        let p = tmp("octets.bin");
+        let p = dir.join("octets.bin");
         std::fs::write(&p, &data).unwrap();
         let o = open_input(&p, true).unwrap();
         let f = FileOctets::new(&o.file, o.size);

@@ -27,6 +27,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import shutil
 import subprocess
 import tempfile
 import time
@@ -65,6 +66,7 @@ def slurm():
     env = {"SLURM_CONF": line.split("=", 1)[1]}
     yield env
     subprocess.run(["bash", str(CLUSTER), "stop", str(d)], capture_output=True, timeout=120)
+    shutil.rmtree(d, ignore_errors=True)
 
 
 def slurm_cmd(env: dict, *args: str) -> str:
