@@ -240,8 +240,13 @@ def test_a_step_whose_jobs_all_fail_is_reported_with_slurms_reason_and_the_log(t
     # and is COMPLETING only for a moment. The line the job echoes after the
     # trap says it is in place.
     def job_trapped_term() -> bool:
-        return any("job-started" in log.read_text(errors="replace")
-                   for log in (tmp_path / "out" / "demo" / ".jobs").glob("*/job.log"))
+        for log in (tmp_path / "out" / "demo" / ".jobs").glob("*/job.log"):
+            try:
+                if "job-started" in log.read_text(errors="replace"):
+                    return True
+            except OSError:  # gone between the listing and the read: look again
+                pass
+        return False
 
     wait_for(job_trapped_term, 60, f"job {job} past its trap of SIGTERM")
     slurm_cmd(slurm, "scancel", job)
